@@ -1,0 +1,110 @@
+"""TOML text → validated :class:`Case`. Reads the file and nothing else; never evaluates strings."""
+
+from __future__ import annotations
+
+import tomllib
+from pathlib import Path
+from typing import Any
+
+from pydantic import ValidationError
+
+from fe3d.case.schema import Case, cross_checks
+from fe3d.errors import CaseError, CaseErrors
+
+__all__ = ["load_case", "parse_case"]
+
+_ALLOWED_HINTS = {
+    "missing": "is required",
+    "extra_forbidden": "is not a known key here",
+}
+
+
+def _key_path(loc: tuple[Any, ...], raw: Any) -> str:
+    """Render a pydantic location as ``layers[clay].bottom`` (list items by their name)."""
+    parts: list[str] = []
+    node = raw
+    for item in loc:
+        if isinstance(item, int):
+            name = None
+            if isinstance(node, list) and 0 <= item < len(node) and isinstance(node[item], dict):
+                name = node[item].get("name")
+            parts[-1] = f"{parts[-1]}[{name if isinstance(name, str) else item}]"
+            node = node[item] if isinstance(node, list) and 0 <= item < len(node) else None
+        else:
+            key = str(item)
+            # pydantic appends the branch name of union/annotated types; those are not keys
+            if isinstance(node, dict) and key not in node and parts and _is_type_tag(key):
+                continue
+            parts.append(key)
+            node = node.get(key) if isinstance(node, dict) else None
+    return ".".join(parts) if parts else "(case)"
+
+
+def _is_type_tag(key: str) -> bool:
+    return key in {"float", "str", "int", "bool", "dict[str,float]", "function-after[_positive(), float]"} or (
+        key.startswith(("function-", "dict[", "list[", "tuple[", "literal[", "constrained-"))
+    )
+
+
+def _message(err: dict[str, Any]) -> str:
+    kind = err["type"]
+    if kind in _ALLOWED_HINTS:
+        return _ALLOWED_HINTS[kind]
+    msg = str(err["msg"])
+    for prefix in ("Value error, ", "Assertion failed, "):
+        if msg.startswith(prefix):
+            msg = msg[len(prefix):]
+    if kind == "literal_error":
+        msg = msg.replace("Input should be", "must be one of:")
+    elif kind == "string_pattern_mismatch":
+        msg = "must be a plain name: a letter, then letters, digits, '_' or '-'"
+    elif msg.startswith("Input should be"):
+        msg = "must be" + msg[len("Input should be"):]
+    return msg
+
+
+def _errors_from(exc: ValidationError, raw: dict[str, Any]) -> list[CaseError]:
+    out: list[CaseError] = []
+    seen: set[str] = set()
+    for err in exc.errors():
+        path = _key_path(tuple(err["loc"]), raw)
+        if path in seen:  # a union reports one error per branch; keep the first
+            continue
+        seen.add(path)
+        value = err.get("input") if err["type"] != "missing" else "(missing)"
+        if isinstance(value, dict):
+            value = "{…}"
+        out.append(CaseError(path, value, _message(err)))
+    return out
+
+
+def parse_case(text: str, *, source: str = "<case>") -> Case:
+    """Validate TOML ``text`` and return the :class:`Case`.
+
+    Raises
+    ------
+    CaseErrors
+        One :class:`CaseError` per problem found (syntax, per-field, cross-section rules).
+    """
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise CaseErrors([CaseError(source, "(TOML text)", f"is not valid TOML: {exc}")]) from None
+    try:
+        case = Case.model_validate(raw)
+    except ValidationError as exc:
+        raise CaseErrors(_errors_from(exc, raw)) from None
+    problems = cross_checks(case)
+    if problems:
+        raise CaseErrors(problems)
+    return case
+
+
+def load_case(path: str | Path) -> Case:
+    """Read and validate a case file; relative output folders stay relative to the caller."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise CaseErrors([CaseError("case file", str(p), f"cannot be read ({exc.strerror})")]) from None
+    return parse_case(text, source=str(p))

@@ -1,0 +1,366 @@
+"""Frozen section models of a case file. Every physical value is converted to SI on input.
+
+Per-field rules live on the fields (pydantic); rules that relate sections to each other live
+in :func:`cross_checks`, which returns one :class:`~fe3d.errors.CaseError` per problem with
+the key path of the offending value.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Annotated, Literal
+
+from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field
+
+from fe3d._typing import FACE_NAMES
+from fe3d.errors import CaseError
+from fe3d.units import to_si, unit_is
+
+__all__ = [
+    "Case",
+    "FixedHead",
+    "Layer",
+    "Material",
+    "MeshControl",
+    "ModelBox",
+    "ObservationPoint",
+    "OutputControl",
+    "SolverControl",
+    "Source",
+    "Species",
+    "TimeControl",
+    "cross_checks",
+]
+
+
+def _quantity(dimension: str) -> BeforeValidator:
+    return BeforeValidator(lambda v: to_si(v, dimension))
+
+
+def _positive(x: float) -> float:
+    if not x > 0:
+        msg = "must be greater than zero"
+        raise ValueError(msg)
+    return x
+
+
+def _non_negative(x: float) -> float:
+    if not x >= 0:
+        msg = "must be zero or greater"
+        raise ValueError(msg)
+    return x
+
+
+def _fraction(x: float) -> float:
+    if not (0 < x <= 1) or math.isnan(x):
+        msg = "must be in (0, 1]"
+        raise ValueError(msg)
+    return x
+
+
+def _concentration_unit(u: str) -> str:
+    if not unit_is(u, "concentration"):
+        msg = "must be a mass-per-volume unit such as 'mg/L', 'ug/L' or 'kg/m^3'"
+        raise ValueError(msg)
+    return u
+
+
+def _time_unit(u: str) -> str:
+    if not unit_is(u, "time"):
+        msg = "must be a time unit such as 'd', 'yr' or 's'"
+        raise ValueError(msg)
+    return u
+
+
+Length = Annotated[float, _quantity("length")]
+PositiveLength = Annotated[float, _quantity("length"), AfterValidator(_positive)]
+NonNegativeLength = Annotated[float, _quantity("length"), AfterValidator(_non_negative)]
+Time = Annotated[float, _quantity("time"), AfterValidator(_non_negative)]
+PositiveTime = Annotated[float, _quantity("time"), AfterValidator(_positive)]
+PositiveVelocity = Annotated[float, _quantity("velocity"), AfterValidator(_positive)]
+Concentration = Annotated[float, _quantity("concentration"), AfterValidator(_non_negative)]
+PositiveConcentration = Annotated[float, _quantity("concentration"), AfterValidator(_positive)]
+PositiveDensity = Annotated[float, _quantity("density"), AfterValidator(_positive)]
+Partition = Annotated[float, _quantity("specific_volume"), AfterValidator(_non_negative)]
+Diffusivity = Annotated[float, _quantity("diffusivity"), AfterValidator(_non_negative)]
+Fraction = Annotated[float, AfterValidator(_fraction)]
+Name = Annotated[str, Field(pattern=r"^[A-Za-z][A-Za-z0-9_\-]*$", max_length=64)]
+FaceName = Literal["west", "east", "south", "north", "top", "bottom"]
+Range = tuple[Length, Length]
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(frozen=True, extra="forbid", populate_by_name=True)
+
+
+class ModelBox(_Section):
+    """Axis-aligned model box: plan extent and a flat top; the base is the lowest layer bottom."""
+
+    x: Range
+    y: Range
+    top: Length
+
+
+class Material(_Section):
+    """Hydraulic and transport properties of one hydrostratigraphic material."""
+
+    horizontal_conductivity: PositiveVelocity
+    vertical_conductivity: PositiveVelocity | None = None
+    porosity: Fraction
+    bulk_density: PositiveDensity
+    longitudinal_dispersivity: NonNegativeLength
+    transverse_dispersivity: NonNegativeLength
+    vertical_dispersivity: NonNegativeLength | None = None
+    diffusion_coefficient: Diffusivity = 0.0
+    tortuosity: Fraction = 1.0
+
+    @property
+    def k_vertical(self) -> float:
+        """Vertical conductivity [m/s] (defaults to the horizontal one)."""
+        if self.vertical_conductivity is None:
+            return self.horizontal_conductivity
+        return self.vertical_conductivity
+
+    @property
+    def alpha_vertical(self) -> float:
+        """Vertical transverse dispersivity [m] (defaults to the horizontal transverse one)."""
+        if self.vertical_dispersivity is None:
+            return self.transverse_dispersivity
+        return self.vertical_dispersivity
+
+
+class Layer(_Section):
+    """A hydrostratigraphic unit between the previous layer's bottom (or the top) and its own."""
+
+    name: Name
+    material: Name
+    bottom: Length
+    bottom_gradient: tuple[float, float] = (0.0, 0.0)
+
+    def bottom_at(self, x: float, y: float, x0: float, y0: float) -> float:
+        """Elevation [m] of the planar bottom at (x, y), given the box's south-west corner."""
+        gx, gy = self.bottom_gradient
+        return self.bottom + gx * (x - x0) + gy * (y - y0)
+
+
+class FixedHead(_Section):
+    """A fixed hydraulic head on a named face of the model box."""
+
+    face: FaceName
+    head: Length
+
+
+class Species(_Section):
+    """A dissolved species: sorption, decay and its compliance limit."""
+
+    kd: Partition | dict[Name, Partition] = 0.0
+    half_life: PositiveTime | None = None
+    decay_in_sorbed_phase: bool = True
+    limit: PositiveConcentration
+    initial_concentration: Concentration = 0.0
+
+    def kd_of(self, material: str) -> float:
+        """Distribution coefficient [m³/kg] in ``material``."""
+        if isinstance(self.kd, dict):
+            return self.kd.get(material, 0.0)
+        return self.kd
+
+    @property
+    def decay_rate(self) -> float:
+        """First-order rate λ = ln 2 / half-life [1/s] (0 without a half-life)."""
+        return 0.0 if self.half_life is None else math.log(2.0) / self.half_life
+
+
+class Source(_Section):
+    """A fixed-concentration source in a box or on a patch of a boundary face."""
+
+    name: Name
+    species: Name
+    shape: Literal["box", "face_patch"]
+    concentration: PositiveConcentration
+    face: FaceName | None = None
+    x: Range | None = None
+    y: Range | None = None
+    z: Range | None = None
+    start: Time = 0.0
+    stop: PositiveTime | None = None
+
+
+class ObservationPoint(_Section):
+    """A point (``z``) or a vertical well screen (``screen``) where concentrations are recorded."""
+
+    name: Name
+    x: Length
+    y: Length
+    z: Length | None = None
+    screen: Range | None = None
+    kind: Literal["monitoring", "receptor"] = "monitoring"
+
+
+class TimeControl(_Section):
+    """Simulated period, step and output times."""
+
+    end: PositiveTime
+    step: PositiveTime
+    output_interval: PositiveTime | None = None
+    output_times: list[Time] | None = None
+    scheme: Literal["backward_euler", "crank_nicolson"] = "backward_euler"
+
+
+class MeshControl(_Section):
+    """Target cell sizes [m]: plan size away from features, near features, and layer thickness."""
+
+    cell_size: PositiveLength
+    fine_cell_size: PositiveLength | None = None
+    fine_zone_radius: NonNegativeLength = 0.0
+    layer_cell_thickness: PositiveLength
+
+
+class SolverControl(_Section):
+    """Transport options."""
+
+    supg: bool = True
+    linear_solver: Literal["auto", "direct", "iterative"] = "auto"
+    tolerance: Annotated[float, Field(gt=0, lt=1e-2)] = 1e-10
+
+
+class OutputControl(_Section):
+    """Where results go and in which units they are shown."""
+
+    folder: str | None = None
+    concentration_unit: Annotated[str, AfterValidator(_concentration_unit)] = "mg/L"
+    time_unit: Annotated[str, AfterValidator(_time_unit)] = "d"
+
+
+class Case(_Section):
+    """A whole validated case, every number in SI units."""
+
+    title: str
+    site: str = ""
+    box: ModelBox
+    materials: dict[Name, Material]
+    layers: list[Layer] = Field(min_length=1)
+    fixed_heads: list[FixedHead] = Field(min_length=1)
+    species: dict[Name, Species] = Field(min_length=1)
+    sources: list[Source] = Field(default_factory=list)
+    observation_points: list[ObservationPoint] = Field(default_factory=list)
+    time: TimeControl
+    mesh: MeshControl
+    solver: SolverControl = SolverControl()
+    output: OutputControl = OutputControl()
+
+    @property
+    def z_bottom_min(self) -> float:
+        """Lowest elevation of the model base [m] over the box corners."""
+        return min(self._corner_bottoms(self.layers[-1]))
+
+    def _corner_bottoms(self, layer: Layer) -> list[float]:
+        (x0, x1), (y0, y1) = self.box.x, self.box.y
+        return [layer.bottom_at(x, y, x0, y0) for x in (x0, x1) for y in (y0, y1)]
+
+    def output_schedule(self) -> list[float]:
+        """Sorted output times [s] (always ending with the end time)."""
+        t = self.time
+        if t.output_times is not None:
+            times = set(t.output_times)
+        elif t.output_interval is not None:
+            n = math.floor(t.end / t.output_interval + 1e-9)
+            times = {k * t.output_interval for k in range(1, n + 1)}
+        else:
+            times = set()
+        times.add(t.end)
+        return sorted(x for x in times if x > 0)
+
+
+def _in(value: float, lo: float, hi: float) -> bool:
+    return lo - 1e-9 <= value <= hi + 1e-9
+
+
+def cross_checks(case: Case) -> list[CaseError]:
+    """Rules that relate one section to another; one error per problem, with its key path."""
+    errs: list[CaseError] = []
+    (x0, x1), (y0, y1), top = case.box.x, case.box.y, case.box.top
+    if not x1 > x0:
+        errs.append(CaseError("box.x", f"{list(case.box.x)} m", "the second value must exceed the first"))
+    if not y1 > y0:
+        errs.append(CaseError("box.y", f"{list(case.box.y)} m", "the second value must exceed the first"))
+    upper_name, upper = "box.top", [top] * 4
+    seen: set[str] = set()
+    for layer in case.layers:
+        key = f"layers[{layer.name}]"
+        if layer.name in seen:
+            errs.append(CaseError(f"{key}.name", layer.name, "layer names must be unique"))
+        seen.add(layer.name)
+        if layer.material not in case.materials:
+            errs.append(CaseError(f"{key}.material", layer.material,
+                                  f"must be one of the materials: {sorted(case.materials)}"))
+        here = case._corner_bottoms(layer)
+        if any(b >= u for b, u in zip(here, upper, strict=True)):
+            errs.append(CaseError(f"{key}.bottom", f"{layer.bottom:g} m",
+                                  f"must lie below {upper_name} at every corner of the box"))
+        upper_name, upper = f"layers[{layer.name}].bottom", here
+    zmin = case.z_bottom_min
+    faces = [fh.face for fh in case.fixed_heads]
+    for f in set(faces):
+        if faces.count(f) > 1:
+            errs.append(CaseError("fixed_heads.face", f, "each face may carry one fixed head"))
+    names = [s.name for s in case.sources]
+    for s in case.sources:
+        key = f"sources[{s.name}]"
+        if names.count(s.name) > 1:
+            errs.append(CaseError(f"{key}.name", s.name, "source names must be unique"))
+        if s.species not in case.species:
+            errs.append(CaseError(f"{key}.species", s.species,
+                                  f"must be one of the species: {sorted(case.species)}"))
+        if s.stop is not None and s.stop <= s.start:
+            errs.append(CaseError(f"{key}.stop", f"{s.stop:g} s", "must be later than start"))
+        if s.shape == "face_patch" and s.face is None:
+            errs.append(CaseError(f"{key}.face", None,
+                                  f"a face_patch source needs a face: one of {list(FACE_NAMES)}"))
+        if s.shape == "box":
+            for axis in ("x", "y", "z"):
+                if getattr(s, axis) is None:
+                    errs.append(CaseError(f"{key}.{axis}", None,
+                                          "a box source needs x, y and z ranges"))
+        for axis, (lo, hi) in (("x", (x0, x1)), ("y", (y0, y1)), ("z", (zmin, top))):
+            rng = getattr(s, axis)
+            if rng is not None and not (rng[1] > rng[0] and _in(rng[0], lo, hi)
+                                        and _in(rng[1], lo, hi)):
+                errs.append(CaseError(f"{key}.{axis}", f"[{rng[0]:g}, {rng[1]:g}] m",
+                                      f"must be an increasing range inside [{lo:g}, {hi:g}] m"))
+    obs_names = [o.name for o in case.observation_points]
+    for o in case.observation_points:
+        key = f"observation_points[{o.name}]"
+        if obs_names.count(o.name) > 1:
+            errs.append(CaseError(f"{key}.name", o.name, "observation names must be unique"))
+        if not _in(o.x, x0, x1):
+            errs.append(CaseError(f"{key}.x", f"{o.x:g} m", f"must lie in the box, [{x0:g}, {x1:g}] m"))
+        if not _in(o.y, y0, y1):
+            errs.append(CaseError(f"{key}.y", f"{o.y:g} m", f"must lie in the box, [{y0:g}, {y1:g}] m"))
+        if (o.z is None) == (o.screen is None):
+            errs.append(CaseError(f"{key}", o.name, "give exactly one of z (a point) or screen"))
+        if o.z is not None and not _in(o.z, zmin, top):
+            errs.append(CaseError(f"{key}.z", f"{o.z:g} m", f"must lie in [{zmin:g}, {top:g}] m"))
+        if o.screen is not None and not (o.screen[0] > o.screen[1] and _in(o.screen[0], zmin, top)
+                                         and _in(o.screen[1], zmin, top)):
+            errs.append(CaseError(f"{key}.screen", f"[{o.screen[0]:g}, {o.screen[1]:g}] m",
+                                  f"must be [top, bottom] with top > bottom, inside "
+                                  f"[{zmin:g}, {top:g}] m"))
+    for name, sp in case.species.items():
+        if isinstance(sp.kd, dict):
+            for mat in sp.kd:
+                if mat not in case.materials:
+                    errs.append(CaseError(f"species.{name}.kd.{mat}", mat,
+                                          f"must name a material: {sorted(case.materials)}"))
+    t = case.time
+    if t.step > t.end:
+        errs.append(CaseError("time.step", f"{t.step:g} s", f"must not exceed time.end ({t.end:g} s)"))
+    for v in t.output_times or []:
+        if v > t.end * (1 + 1e-12):
+            errs.append(CaseError("time.output_times", f"{v:g} s",
+                                  f"every output time must be ≤ time.end ({t.end:g} s)"))
+    m = case.mesh
+    if m.fine_cell_size is not None and m.fine_cell_size > m.cell_size:
+        errs.append(CaseError("mesh.fine_cell_size", f"{m.fine_cell_size:g} m",
+                              f"must not exceed mesh.cell_size ({m.cell_size:g} m)"))
+    return errs

@@ -1,0 +1,163 @@
+"""Command line: ``fe3d check CASE`` and ``fe3d run CASE [--out DIR]``.
+
+Only this module prints or exits. Every :class:`~fe3d.errors.Fe3dError` becomes one line per
+problem on standard error and exit code 2; no traceback is shown for bad input.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+from pathlib import Path
+
+from fe3d import __version__
+from fe3d.case.load import load_case
+from fe3d.case.schema import Case
+from fe3d.errors import CaseErrors, Fe3dError
+
+__all__ = ["main"]
+
+EXIT_BAD_INPUT = 2
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="fe3d",
+        description="Screening-level 3D groundwater flow and contaminant transport in layered "
+                    "aquifers. Results are screening estimates that depend on the inputs.")
+    p.add_argument("--version", action="version", version=f"fe3d {__version__}")
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    c = sub.add_parser("check", help="validate a case file and summarise the model",
+                       description="Validate a case file and print a summary of the model "
+                                   "(units, materials, estimated cell count). Writes nothing.")
+    c.add_argument("case", type=Path, help="case file (TOML)")
+    r = sub.add_parser("run", help="run a case: mesh, flow, transport, outputs",
+                       description="Run a case end to end and write the run folder: mesh and "
+                                   "flow (.vtu), concentration series (.pvd/.vtu), histories and "
+                                   "mass budget (CSV), breakthrough figure (PNG), summary "
+                                   "(JSON) and report (Markdown).")
+    r.add_argument("case", type=Path, help="case file (TOML)")
+    r.add_argument("--out", type=Path, default=None,
+                   help="run folder (default: output.folder of the case, else runs/<case name>)")
+    r.add_argument("--quiet", action="store_true", help="no progress bar")
+    return p
+
+
+def _estimate_cells(case: Case) -> tuple[int, int]:
+    """Rough node and cell counts from the target sizes (plan triangles × sublayers × 3)."""
+    import math
+
+    (x0, x1), (y0, y1) = case.box.x, case.box.y
+    area = (x1 - x0) * (y1 - y0)
+    h = case.mesh.cell_size
+    n_tri = 2.3 * area / h**2
+    fine = case.mesh.fine_cell_size
+    if fine is not None:
+        from fe3d.mesh.build import feature_points
+
+        r = case.mesh.fine_zone_radius + 2 * h
+        n_tri += len(feature_points(case)) * 2.3 * math.pi * r**2 / fine**2 / 4
+    thick = case.box.top - case.z_bottom_min
+    n_lay = max(len(case.layers), math.ceil(thick / case.mesh.layer_cell_thickness))
+    return int(n_tri / 2 * (n_lay + 1)), int(3 * n_tri * n_lay)
+
+
+def _check(case_path: Path) -> int:
+    from rich.console import Console
+    from rich.table import Table
+
+    from fe3d.post.report import CAUTION
+    from fe3d.units import from_si
+
+    case = load_case(case_path)
+    con = Console()
+    con.print(f"[bold]{case.title}[/bold]  ({case_path})")
+    con.print(f"box: x {case.box.x[0]:g}–{case.box.x[1]:g} m, y {case.box.y[0]:g}–"
+              f"{case.box.y[1]:g} m, top {case.box.top:g} m, base ≥ {case.z_bottom_min:g} m")
+    t = Table(title="materials (as used, converted)")
+    for col in ("material", "K_h [m/d]", "K_v [m/d]", "porosity [-]", "ρ_b [kg/m³]",
+                "α_L/α_TH/α_TV [m]"):
+        t.add_column(col)
+    for name, m in case.materials.items():
+        t.add_row(name, f"{m.horizontal_conductivity * 86400:.4g}",
+                  f"{m.k_vertical * 86400:.4g}", f"{m.porosity:.3g}", f"{m.bulk_density:.4g}",
+                  f"{m.longitudinal_dispersivity:g}/{m.transverse_dispersivity:g}/"
+                  f"{m.alpha_vertical:g}")
+    con.print(t)
+    con.print("layers (top down): " + ", ".join(
+        f"{ly.name} ({ly.material}) to {ly.bottom:g} m" for ly in case.layers))
+    tu, cu = case.output.time_unit, case.output.concentration_unit
+    for name, sp in case.species.items():
+        hl = "none" if sp.half_life is None else f"{from_si(sp.half_life, tu):.4g} {tu}"
+        con.print(f"species {name}: limit {from_si(sp.limit, cu):.4g} {cu}, half-life {hl}")
+    nn, nc = _estimate_cells(case)
+    con.print(f"period {from_si(case.time.end, tu):g} {tu}, step ≤ "
+              f"{from_si(case.time.step, tu):.4g} {tu}, {len(case.output_schedule())} outputs")
+    con.print(f"estimated mesh: ~{nn:,} nodes, ~{nc:,} tetrahedra")
+    con.print("[green]case is valid[/green]")
+    con.print(CAUTION)
+    return 0
+
+
+def _run(case_path: Path, out: Path | None, *, quiet: bool) -> int:
+    from rich.console import Console
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+    from rich.table import Table
+
+    from fe3d.pipeline import run_case
+    from fe3d.post.report import CAUTION
+    from fe3d.units import from_si
+
+    case = load_case(case_path)
+    folder = out or Path(case.output.folder or f"runs/{case_path.stem}")
+    con = Console(stderr=False)
+    tu, cu = case.output.time_unit, case.output.concentration_unit
+    with Progress(TextColumn("{task.description}"), BarColumn(),
+                  TextColumn("{task.fields[info]}"), TimeElapsedColumn(),
+                  disable=quiet, console=con) as bar:
+        task = bar.add_task("mesh", total=1.0, info="")
+
+        def progress(stage: str, done: float, total: float) -> None:
+            info = f"t = {from_si(done, tu):.3g} / {from_si(total, tu):.3g} {tu}" \
+                if stage == "transport" else ""
+            bar.update(task, description=stage, completed=done / total if total else 0,
+                       info=info)
+
+        summary = run_case(case, folder, progress=progress)
+    t = Table(title=f"breakthrough ({summary.n_nodes:,} nodes, {summary.n_cells:,} cells, "
+                    f"{summary.wall_time:.1f} s)")
+    for col in ("point", "species", f"peak [{cu}]", "peak time", "first above limit",
+                "mass-balance error"):
+        t.add_column(col)
+    for o in summary.observations:
+        first = "not reached" if o.first_above_limit is None else \
+            f"{from_si(o.first_above_limit, tu):.3g} {tu}"
+        t.add_row(o.name, o.species, f"{from_si(o.peak, cu):.4g}",
+                  f"{from_si(o.peak_time, tu):.3g} {tu}", first,
+                  f"{summary.mass_balance_error[o.species]:.1e}")
+    con.print(t)
+    con.print(f"flow budget discrepancy {summary.flow_discrepancy:.1e}; results in {folder}/")
+    con.print(CAUTION)
+    return 0
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``fe3d`` command; returns the exit code."""
+    args = _parser().parse_args(argv)
+    logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
+    try:
+        if args.command == "check":
+            return _check(args.case)
+        return _run(args.case, args.out, quiet=args.quiet)
+    except CaseErrors as exc:
+        for e in exc.errors:
+            print(f"error: {e.line()}", file=sys.stderr)  # noqa: T201
+        return EXIT_BAD_INPUT
+    except Fe3dError as exc:
+        print(f"error: {exc}", file=sys.stderr)  # noqa: T201
+        return EXIT_BAD_INPUT
+
+
+if __name__ == "__main__":
+    sys.exit(main())

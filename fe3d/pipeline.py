@@ -1,0 +1,113 @@
+"""run_case: the one composition of the stages (case → mesh → flow → transport → outputs)."""
+
+from __future__ import annotations
+
+import logging
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+
+from fe3d.case.schema import Case
+from fe3d.flow.solve import FlowField, solve_flow
+from fe3d.mesh.build import build_mesh
+from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.post.figures import plot_breakthrough
+from fe3d.post.probes import breakthrough
+from fe3d.post.report import ObservationResult, RunSummary, write_report, write_summary_json
+from fe3d.post.tables import write_flow_budget, write_histories, write_mass_budget
+from fe3d.post.vtk import write_field, write_mesh, write_pvd
+from fe3d.transport.budget import MassBudget
+from fe3d.transport.run import Snapshot, run_transport
+from fe3d.units import from_si
+
+__all__ = ["mesh_and_flow", "run_case"]
+
+logger = logging.getLogger(__name__)
+
+Progress = Callable[[str, float, float], None]
+
+
+def mesh_and_flow(case: Case) -> tuple[SiteMesh, FlowField]:
+    """Build the mesh and solve the steady flow of ``case``."""
+    site = build_mesh(case)
+    flow = solve_flow(site, [case.materials[layer.material] for layer in case.layers],
+                      case.fixed_heads)
+    return site, flow
+
+
+def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None) -> RunSummary:
+    """Run every stage and write the run folder; returns the summary.
+
+    ``progress(stage, done, total)`` is called as work advances (for a progress bar).
+    """
+    started = time.perf_counter()
+    tell = progress or (lambda _s, _d, _t: None)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    tu, cu = case.output.time_unit, case.output.concentration_unit
+    tell("mesh", 0, 1)
+    site = build_mesh(case)
+    files = [p.name for p in write_mesh(site, out_dir)]
+    tell("flow", 0, 1)
+    flow = solve_flow(site, [case.materials[layer.material] for layer in case.layers],
+                      case.fixed_heads)
+    mats = [case.materials[layer.material] for layer in case.layers]
+    theta = np.array([m.porosity for m in mats])[site.cell_layer]
+    day = 86400.0
+    write_field(site, out_dir / "flow.vtu", point_data={"head [m]": flow.head},
+                cell_data={"darcy_flux [m/d]": (flow.darcy_flux * day).T,
+                           "seepage_velocity [m/d]": (flow.darcy_flux / theta * day).T,
+                           "conductivity [m/d]": (flow.conductivity * day).T})
+    write_flow_budget(out_dir / "flow_budget.csv", flow)
+    files += ["flow.vtu", "flow_budget.csv"]
+
+    series: list[tuple[float, str]] = []
+    budgets: list[MassBudget] = []
+    last: Snapshot | None = None
+    scale = from_si(1.0, cu)
+    for snap in run_transport(site, flow, case,
+                              on_step=lambda t, end: tell("transport", t, end)):
+        k = len(series)
+        name = f"concentration_{k:04d}.vtu"
+        write_field(site, out_dir / name,
+                    point_data={f"{sp} [{cu}]": c * scale for sp, c in snap.concentration.items()})
+        series.append((from_si(snap.time, tu), name))
+        write_pvd(out_dir / "concentration.pvd", series, time_unit=tu)
+        budgets += list(snap.budgets.values())
+        write_mass_budget(out_dir / "mass_budget.csv", budgets, time_unit=tu)
+        last = snap
+    assert last is not None
+    names = [o.name for o in case.observation_points]
+    write_histories(out_dir / "histories.csv", last.history_times, last.history, names,
+                    time_unit=tu, conc_unit=cu)
+    limits = {sp: s.limit for sp, s in case.species.items()}
+    if names:
+        plot_breakthrough(out_dir / "breakthrough.png", last.history_times, last.history, names,
+                          limits, time_unit=tu, conc_unit=cu, title=case.title)
+        files.append("breakthrough.png")
+    files += ["concentration.pvd", *[f for _, f in series], "mass_budget.csv", "histories.csv",
+              "summary.json", "report.md"]
+    obs_results = []
+    for sp, values in last.history.items():
+        for j, o in enumerate(case.observation_points):
+            b = breakthrough(last.history_times, values[:, j], limits[sp])
+            obs_results.append(ObservationResult(
+                name=o.name, kind=o.kind, species=sp, peak=b.peak, peak_time=b.peak_time,
+                first_above_limit=b.first_above_limit, limit=limits[sp]))
+    worst = {sp: max(b.relative_error for b in budgets if b.species == sp)
+             for sp in case.species}
+    d = last.diagnostics
+    summary = RunSummary(
+        title=case.title, site=case.site, n_nodes=site.n_nodes, n_cells=site.n_cells,
+        end_time=case.time.end, n_steps=d.n_steps, observations=obs_results,
+        mass_balance_error=worst, flow_inflow=flow.total_inflow,
+        flow_discrepancy=flow.discrepancy, max_grid_peclet=d.max_grid_peclet,
+        max_courant=d.max_courant,
+        min_concentration={k: v[0] for k, v in d.min_concentration.items()},
+        min_concentration_at={k: v[1] for k, v in d.min_concentration.items()},
+        wall_time=time.perf_counter() - started, time_unit=tu, concentration_unit=cu,
+        files=files)
+    write_summary_json(out_dir / "summary.json", summary)
+    write_report(out_dir / "report.md", summary)
+    return summary

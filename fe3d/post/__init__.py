@@ -1,0 +1,1 @@
+"""Outputs: VTK files, CSV tables, figures and the run report. Never recomputes physics."""

@@ -1,0 +1,98 @@
+"""Summary JSON and Markdown report with the key numbers and the cautions."""
+
+from __future__ import annotations
+
+import json
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+from fe3d.post.files import write_text_atomic
+from fe3d.units import from_si
+
+__all__ = ["CAUTION", "ObservationResult", "RunSummary", "write_report", "write_summary_json"]
+
+CAUTION = ("CAUTION: fe3d results are screening estimates that depend entirely on the inputs "
+           "(geology, conductivity, sources, parameters). They do not replace site "
+           "investigation, local regulations or the judgement of a licensed professional.")
+
+
+@dataclass(frozen=True)
+class ObservationResult:
+    """Breakthrough at one observation point for one species (SI units)."""
+
+    name: str
+    kind: str
+    species: str
+    peak: float
+    peak_time: float
+    first_above_limit: float | None
+    limit: float
+
+
+@dataclass(frozen=True)
+class RunSummary:
+    """What a run produced, in SI units, plus the display units chosen in the case."""
+
+    title: str
+    site: str
+    n_nodes: int
+    n_cells: int
+    end_time: float
+    n_steps: int
+    observations: list[ObservationResult]
+    mass_balance_error: dict[str, float]
+    flow_inflow: float
+    flow_discrepancy: float
+    max_grid_peclet: dict[str, float]
+    max_courant: dict[str, float]
+    min_concentration: dict[str, float]
+    min_concentration_at: dict[str, tuple[float, ...] | None]
+    wall_time: float
+    time_unit: str
+    concentration_unit: str
+    files: list[str] = field(default_factory=list)
+
+
+def write_summary_json(path: Path, s: RunSummary) -> Path:
+    """Everything in :class:`RunSummary`, SI units, keys naming their units."""
+    d = asdict(s)
+    d["units"] = {"time": "s", "concentration": "kg/m^3", "flow": "m^3/s", "length": "m"}
+    d["caution"] = CAUTION
+    write_text_atomic(path, json.dumps(d, indent=2, allow_nan=False, default=str) + "\n")
+    return path
+
+
+def _t(x: float | None, unit: str) -> str:
+    return "not reached" if x is None else f"{from_si(x, unit):.3g} {unit}"
+
+
+def write_report(path: Path, s: RunSummary) -> Path:
+    """A short Markdown report for a reviewer."""
+    tu, cu = s.time_unit, s.concentration_unit
+    lines = [
+        f"# {s.title}", "", f"Site: {s.site}", "", f"> {CAUTION}", "",
+        "## Model", "",
+        f"- mesh: {s.n_nodes} nodes, {s.n_cells} tetrahedra",
+        f"- simulated period: {from_si(s.end_time, tu):.4g} {tu} in {s.n_steps} steps",
+        f"- groundwater through the model: {s.flow_inflow * 86400:.4g} m³/d, "
+        f"budget discrepancy {s.flow_discrepancy:.1e}",
+        "", "## Breakthrough at observation points", "",
+        f"| point | kind | species | peak [{cu}] | peak time | first above limit | limit [{cu}] |",
+        "|---|---|---|---|---|---|---|",
+    ]
+    sc = from_si(1.0, cu)
+    for o in s.observations:
+        lines.append(f"| {o.name} | {o.kind} | {o.species} | {o.peak * sc:.4g} | "
+                     f"{_t(o.peak_time, tu)} | {_t(o.first_above_limit, tu)} | "
+                     f"{o.limit * sc:.4g} |")
+    lines += ["", "## Numerical quality", "",
+              "| species | mass-balance error [-] | max grid Péclet [-] | max Courant [-] | "
+              f"most negative c [{cu}] |", "|---|---|---|---|---|"]
+    for sp, err in s.mass_balance_error.items():
+        lines.append(f"| {sp} | {err:.2e} | {s.max_grid_peclet[sp]:.3g} | "
+                     f"{s.max_courant[sp]:.3g} | {s.min_concentration[sp] * sc:.3g} |")
+    lines += ["", "Negative concentrations are a discretisation artefact near steep fronts; "
+              "where they are large against the limit, refine the mesh near the plume.", "",
+              "## Files", "", *[f"- `{f}`" for f in s.files], ""]
+    write_text_atomic(path, "\n".join(lines))
+    return path

@@ -1,0 +1,70 @@
+"""VTK and gmsh-format mesh output (meshio); the only writer of .vtu/.pvd/.msh in fe3d."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from xml.sax.saxutils import quoteattr
+
+import meshio
+import numpy as np
+
+from fe3d._typing import FloatArray
+from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.post.files import write_atomic, write_text_atomic
+
+__all__ = ["write_field", "write_mesh", "write_pvd"]
+
+_FACE_TAG_BASE = 100
+
+
+def _tetra_mesh(site: SiteMesh, point_data: dict[str, FloatArray] | None = None,
+                cell_data: dict[str, FloatArray] | None = None) -> meshio.Mesh:
+    cd = {"unit_id": [site.cell_layer.astype(np.int32)]}
+    for k, v in (cell_data or {}).items():
+        cd[k] = [np.ascontiguousarray(v)]
+    return meshio.Mesh(site.points.T, [("tetra", site.cells.T)],
+                       point_data={k: np.ascontiguousarray(v) for k, v in
+                                   (point_data or {}).items()},
+                       cell_data=cd)
+
+
+def write_mesh(site: SiteMesh, folder: Path) -> list[Path]:
+    """Write ``mesh.msh`` (gmsh 2.2, physical groups per unit and face) and ``mesh.vtu``."""
+    msh_path, vtu_path = folder / "mesh.msh", folder / "mesh.vtu"
+    face_names = list(site.faces)
+    tris = [site.faces[f].T for f in face_names]
+    cells = [("tetra", site.cells.T), *[("triangle", t) for t in tris]]
+    phys = [site.cell_layer.astype(np.int32) + 1] + [
+        np.full(t.shape[0], _FACE_TAG_BASE + i, dtype=np.int32) for i, t in enumerate(tris)]
+    field_data = {name: np.array([i + 1, 3]) for i, name in enumerate(site.layer_names)}
+    field_data |= {name: np.array([_FACE_TAG_BASE + i, 2]) for i, name in enumerate(face_names)}
+    msh = meshio.Mesh(site.points.T, cells,
+                      cell_data={"gmsh:physical": phys, "gmsh:geometrical": phys},
+                      field_data=field_data)
+    write_atomic(msh_path, lambda p: meshio.write(p, msh, file_format="gmsh22", binary=False))
+    vtu = _tetra_mesh(site)
+    write_atomic(vtu_path, lambda p: meshio.write(p, vtu, file_format="vtu"))
+    return [msh_path, vtu_path]
+
+
+def write_field(site: SiteMesh, path: Path, *, point_data: dict[str, FloatArray] | None = None,
+                cell_data: dict[str, FloatArray] | None = None) -> Path:
+    """Write one .vtu with the given point and cell arrays (names should carry units)."""
+    m = _tetra_mesh(site, point_data, cell_data)
+    write_atomic(path, lambda p: meshio.write(p, m, file_format="vtu"))
+    return path
+
+
+def write_pvd(path: Path, entries: list[tuple[float, str]], *, time_unit: str) -> Path:
+    """Write a ParaView data collection listing (time, relative .vtu file) pairs."""
+    rows = "\n".join(f'    <DataSet timestep="{t:.10g}" group="" part="0" file={quoteattr(f)}/>'
+                     for t, f in entries)
+    text = ('<?xml version="1.0"?>\n'
+            f"<!-- time values are in {time_unit} -->\n"
+            '<VTKFile type="Collection" version="0.1" byte_order="LittleEndian">\n'
+            "  <Collection>\n"
+            f"{rows}\n"
+            "  </Collection>\n"
+            "</VTKFile>\n")
+    write_text_atomic(path, text)
+    return path

@@ -1,0 +1,1 @@
+"""Solute transport: SUPG finite elements, linear sorption, first-order decay, mass budgets."""

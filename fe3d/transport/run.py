@@ -1,0 +1,341 @@
+"""run_transport: implicit SUPG time stepping of every species; yields snapshots, writes nothing.
+
+Equation (theory.md T0), per species, with m = θR = θ + ρ_b K_d:
+
+    m ∂c/∂t + ∇·(q c − θD∇c) + k c = 0,   k = λ m (or λ θ when only the dissolved phase decays)
+
+discretised with P1 elements, the advective term in conservative form with an outflow term
+on the fixed-head faces, SUPG on the residual of the whole equation, and the θ-scheme in time
+(backward Euler θ = 1, Crank–Nicolson θ = 1/2). Operators are assembled once per distinct
+step length and their factor or preconditioner reused for every step of that length.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+from skfem import BilinearForm, ElementTetP1, FacetBasis, InteriorBasis, asm
+
+from fe3d._typing import FloatArray, IndexArray
+from fe3d.case.schema import Case, Source, Species
+from fe3d.errors import MeshError
+from fe3d.flow.solve import FlowField
+from fe3d.linalg import LinearSolver
+from fe3d.mesh.geometry import p1_gradients
+from fe3d.mesh.locate import sample_operator, screen_points
+from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.transport import forms
+from fe3d.transport.budget import MassBudget
+from fe3d.transport.dispersion import dispersion_tensor
+from fe3d.transport.stabilization import element_length_along_flow, supg_tau
+
+__all__ = ["Snapshot", "TransportDiagnostics", "run_transport", "time_steps"]
+
+logger = logging.getLogger(__name__)
+
+_SCHEME_THETA = {"backward_euler": 1.0, "crank_nicolson": 0.5}
+
+
+@dataclass(frozen=True)
+class TransportDiagnostics:
+    """Numbers that tell whether the discretisation was adequate."""
+
+    n_steps: int
+    max_grid_peclet: dict[str, float]
+    max_courant: dict[str, float]
+    min_concentration: dict[str, tuple[float, tuple[float, ...] | None]]
+    solver: str
+
+
+@dataclass(frozen=True)
+class Snapshot:
+    """State at one output time.
+
+    ``concentration`` maps species → nodal concentration [kg/m³]; ``history_times`` [s] and
+    ``history`` (species → array ``(n_times, n_observations)`` [kg/m³]) hold every step so far.
+    """
+
+    time: float
+    concentration: dict[str, FloatArray]
+    budgets: dict[str, MassBudget]
+    history_times: FloatArray
+    history: dict[str, FloatArray]
+    diagnostics: TransportDiagnostics
+
+
+def time_steps(breakpoints: list[float], step: float) -> list[tuple[float, float, float]]:
+    """Steps (t0, t1, dt) [s] that land exactly on every breakpoint.
+
+    Each interval between breakpoints is cut into the fewest equal steps no longer than
+    ``step``. ``dt`` is rounded to 12 significant digits so that intervals of equal length
+    share one step length (and one assembled operator); t1 of an interval's last step is the
+    breakpoint itself.
+    """
+    out: list[tuple[float, float, float]] = []
+    t = 0.0
+    for b in breakpoints:
+        if b <= t:
+            continue
+        n = max(1, math.ceil((b - t) / step - 1e-9))
+        dt = float(f"{(b - t) / n:.12g}")
+        for i in range(n):
+            t1 = b if i == n - 1 else t + (i + 1) * dt
+            out.append((t + i * dt, t1, dt))
+        t = b
+    return out
+
+
+def _nodal(cells: IndexArray, per_cell: FloatArray, n: int) -> FloatArray:
+    """Σ over cells of per_cell/4 at each of their nodes (∫φ_j = V/4 for P1)."""
+    return np.bincount(cells.ravel(), weights=np.tile(per_cell / 4.0, 4), minlength=n)
+
+
+@dataclass
+class _Species:
+    """Assembled coefficients and operators of one species (private, mutable caches)."""
+
+    name: str
+    spec: Species
+    coef: dict[str, FloatArray]
+    w_dissolved: FloatArray
+    w_sorbed: FloatArray
+    w_decay: FloatArray
+    outflow_weights: dict[str, FloatArray]
+    outflow_matrix: sp.csr_matrix
+    h: FloatArray
+    operators: dict[float, tuple[sp.csr_matrix, sp.csr_matrix]] = field(default_factory=dict)
+    solvers: dict[tuple[float, tuple[str, ...]], tuple[LinearSolver, IndexArray, Any]] = field(
+        default_factory=dict)
+
+
+def _expand(x: FloatArray, nqp: int) -> FloatArray:
+    return np.repeat(x[..., None], nqp, axis=-1)
+
+
+@BilinearForm
+def _mass_operator(u: Any, v: Any, w: Any) -> Any:
+    """Storage plus its SUPG part (T1 + T6)."""
+    return forms.storage.form(u, v, w) + forms.supg_storage.form(u, v, w)
+
+
+@BilinearForm
+def _spatial_operator(u: Any, v: Any, w: Any) -> Any:
+    """Advection, dispersion, decay and their SUPG parts (T2, T4, T5, T6)."""
+    return (forms.advection.form(u, v, w) + forms.dispersion.form(u, v, w)
+            + forms.decay.form(u, v, w) + forms.supg_advection.form(u, v, w)
+            + forms.supg_decay.form(u, v, w))
+
+
+def run_transport(  # noqa: C901 (the time loop reads best in one place)
+    site: SiteMesh, flow: FlowField, case: Case, *,
+    on_step: Callable[[float, float], None] | None = None,
+) -> Iterator[Snapshot]:
+    """Step every species from 0 to ``case.time.end``; yield a :class:`Snapshot` at t = 0 and
+    at every output time.
+
+    Parameters
+    ----------
+    site, flow
+        Mesh and steady flow field.
+    case
+        Materials, species, sources, observation points, time and solver controls.
+    on_step
+        Called after every step with (time reached, end time) [s], for progress display.
+    """
+    mesh = site.skfem_mesh()
+    basis = InteriorBasis(mesh, ElementTetP1())
+    nqp = basis.X.shape[1]
+    n = site.n_nodes
+    mats = [case.materials[layer.material] for layer in case.layers]
+    mat_names = [layer.material for layer in case.layers]
+    lay = site.cell_layer
+    theta = np.array([m.porosity for m in mats])[lay]
+    rho_b = np.array([m.bulk_density for m in mats])[lay]
+    grads, vol = p1_gradients(site.points, site.cells)
+    q = flow.darcy_flux
+    v = q / theta
+    D = dispersion_tensor(
+        v,
+        alpha_l=np.array([m.longitudinal_dispersivity for m in mats])[lay],
+        alpha_th=np.array([m.transverse_dispersivity for m in mats])[lay],
+        alpha_tv=np.array([m.alpha_vertical for m in mats])[lay],
+        d_eff=np.array([m.diffusion_coefficient * m.tortuosity for m in mats])[lay],
+    )
+    thetaD = theta * D
+    outflow_faces = list(flow.fixed_head_nodes)
+    facet_bases = {name: FacetBasis(mesh, ElementTetP1(), facets=mesh.boundaries[name])
+                   for name in outflow_faces}
+    qn_out = {}
+    for name, fb in facet_bases.items():
+        qn = np.einsum("ke,keq->eq", q[:, fb.tind], fb.normals)
+        qn_out[name] = np.clip(qn, 0.0, None)
+    theta_t = _SCHEME_THETA[case.time.scheme]
+    supg_on = case.solver.supg
+
+    species: list[_Species] = []
+    for name, spec in case.species.items():
+        kd = np.array([spec.kd_of(mn) for mn in mat_names])[lay]
+        m = theta + rho_b * kd
+        lam = spec.decay_rate
+        k = lam * (m if spec.decay_in_sorbed_phase else theta)
+        a = q / m
+        speed2 = np.sum(a * a, axis=0)
+        along = np.einsum("ie,ije,je->e", a, thetaD, a)
+        kappa = np.divide(along, speed2 * m, out=np.zeros_like(m), where=speed2 > 0)
+        h = element_length_along_flow(a, grads)
+        ow = {f: asm(forms.outflow_weight, fb, qn=qn_out[f]) for f, fb in facet_bases.items()}
+        om = sum((asm(forms.outflow, fb, qn=qn_out[f]) for f, fb in facet_bases.items()),
+                 sp.csr_matrix((n, n)))
+        species.append(_Species(
+            name=name, spec=spec,
+            coef={"m": m, "k": k, "a": a, "kappa": kappa, "sigma": k / m},
+            w_dissolved=_nodal(site.cells, theta * vol, n),
+            w_sorbed=_nodal(site.cells, rho_b * kd * vol, n),
+            w_decay=_nodal(site.cells, k * vol, n),
+            outflow_weights=ow, outflow_matrix=sp.csr_matrix(om), h=h))
+
+    def operators(s: _Species, dt: float) -> tuple[sp.csr_matrix, sp.csr_matrix]:
+        if dt not in s.operators:
+            c = s.coef
+            tau = supg_tau(c["a"], c["kappa"], c["sigma"], s.h, dt) if supg_on \
+                else np.zeros_like(c["m"])
+            kw = {"m": _expand(c["m"], nqp), "k": _expand(c["k"], nqp),
+                  "q": _expand(q, nqp), "a": _expand(c["a"], nqp),
+                  "tau": _expand(tau, nqp), "thetaD": _expand(thetaD, nqp)}
+            M = asm(_mass_operator, basis, **kw).tocsr()
+            K = (asm(_spatial_operator, basis, **kw) + s.outflow_matrix).tocsr()
+            S = (M / dt + theta_t * K).tocsr()
+            T = (M / dt - (1.0 - theta_t) * K).tocsr()
+            s.operators = {dt: (S, T)}  # keep only the current step length's operators
+        return s.operators[dt]
+
+    # source nodes
+    source_nodes = {src.name: _source_nodes(site, src) for src in case.sources}
+
+    # observation operators
+    obs = case.observation_points
+    kh_cell = flow.conductivity[0]
+    spacing = max(case.mesh.layer_cell_thickness / 4.0, 0.05)
+    rows = []
+    for o in obs:
+        if o.screen is not None:
+            pts = screen_points(o.x, o.y, o.screen[0], o.screen[1], spacing=spacing)
+            op, _ = sample_operator(mesh, pts, weights_per_cell=kh_cell)
+        else:
+            op, _ = sample_operator(mesh, np.array([[o.x], [o.y], [o.z]]))
+        rows.append(op)
+    probe = sp.vstack(rows).tocsr() if rows else sp.csr_matrix((0, n))
+
+    schedule = case.output_schedule()
+    breaks = sorted({*schedule, *[s.start for s in case.sources if 0 < s.start < case.time.end],
+                     *[s.stop for s in case.sources if s.stop and s.stop < case.time.end]})
+    steps = time_steps(breaks, case.time.step)
+    out_set = set(schedule)
+
+    conc = {s.name: np.full(n, s.spec.initial_concentration) for s in species}
+    acc = {s.name: {"input": 0.0, "decayed": 0.0,
+                    "outflow": dict.fromkeys(outflow_faces, 0.0)} for s in species}
+    initial = {s.name: float((s.w_dissolved + s.w_sorbed) @ conc[s.name]) for s in species}
+    hist_t = [0.0]
+    hist = {s.name: [probe @ conc[s.name]] for s in species}
+    cmin: dict[str, tuple[float, tuple[float, ...] | None]] = {
+        s.name: (0.0, None) for s in species}
+    courant = {s.name: 0.0 for s in species}
+    peclet = {}
+    for s in species:
+        speed_v = np.sqrt(np.sum(v * v, axis=0))
+        dl = s.coef["kappa"] * s.coef["m"] / theta
+        peclet[s.name] = float(np.max(np.divide(speed_v * s.h, dl, out=np.full_like(dl, np.inf),
+                                                where=dl > 0))) if np.any(speed_v > 0) else 0.0
+    solver_used = "none"
+
+    def snapshot(t: float, n_steps: int) -> Snapshot:
+        budgets = {s.name: MassBudget(
+            species=s.name, time=t, dissolved=float(s.w_dissolved @ conc[s.name]),
+            sorbed=float(s.w_sorbed @ conc[s.name]), initial=initial[s.name],
+            source_input=acc[s.name]["input"], outflow=dict(acc[s.name]["outflow"]),
+            decayed=acc[s.name]["decayed"]) for s in species}
+        diag = TransportDiagnostics(n_steps=n_steps, max_grid_peclet=dict(peclet),
+                                    max_courant=dict(courant), min_concentration=dict(cmin),
+                                    solver=solver_used)
+        return Snapshot(time=t, concentration={k: c.copy() for k, c in conc.items()},
+                        budgets=budgets, history_times=np.array(hist_t),
+                        history={k: np.array(vv) for k, vv in hist.items()}, diagnostics=diag)
+
+    yield snapshot(0.0, 0)
+    for i, (t0, t1, dt) in enumerate(steps):
+        tmid = 0.5 * (t0 + t1)
+        for s in species:
+            active = tuple(src.name for src in case.sources if src.species == s.name
+                           and src.start <= tmid and (src.stop is None or tmid <= src.stop))
+            S, T = operators(s, dt)
+            key = (dt, active)
+            if key not in s.solvers:
+                fixed_vals = np.zeros(n)
+                is_fixed = np.zeros(n, dtype=bool)
+                for src in case.sources:
+                    if src.name in active:
+                        nodes = source_nodes[src.name]
+                        fixed_vals[nodes] = np.maximum(fixed_vals[nodes], src.concentration)
+                        is_fixed[nodes] = True
+                free = np.nonzero(~is_fixed)[0]
+                fixed = np.nonzero(is_fixed)[0]
+                solver = LinearSolver(S[free][:, free], method=case.solver.linear_solver,
+                                      tol=case.solver.tolerance)
+                s.solvers = {key: (solver, free, (fixed, fixed_vals[fixed], S[free][:, fixed]))}
+                solver_used = solver.method
+            solver, free, (fixed, gvals, S_fD) = s.solvers[key]
+            old = conc[s.name]
+            rhs = T @ old
+            new = old.copy()
+            new[fixed] = gvals
+            b = rhs[free] - S_fD @ gvals
+            new[free] = solver.solve(b, x0=old[free])
+            # budget from the consistent residual of the full (unreduced) system (T9)
+            r = S @ new - rhs
+            c_mid = theta_t * new + (1.0 - theta_t) * old
+            a_ = acc[s.name]
+            a_["input"] += dt * float(r[fixed].sum())
+            a_["decayed"] += dt * float(s.w_decay @ c_mid)
+            for f, w in s.outflow_weights.items():
+                a_["outflow"][f] += dt * float(w @ c_mid)
+            conc[s.name] = new
+            j = int(np.argmin(new))
+            if new[j] < cmin[s.name][0]:
+                cmin[s.name] = (float(new[j]), tuple(float(x) for x in site.points[:, j]))
+            courant[s.name] = max(courant[s.name], float(np.max(
+                np.sqrt(np.sum(s.coef["a"] ** 2, axis=0)) * dt / s.h)))
+        hist_t.append(t1)
+        for s in species:
+            hist[s.name].append(probe @ conc[s.name])
+        if on_step is not None:
+            on_step(t1, case.time.end)
+        if any(abs(t1 - t) <= 1e-9 * max(1.0, t) for t in out_set):
+            yield snapshot(t1, i + 1)
+
+
+def _source_nodes(site: SiteMesh, src: Source) -> IndexArray:
+    """Mesh nodes held at the source concentration."""
+    p = site.points
+    if src.shape == "face_patch":
+        assert src.face is not None
+        cand = site.face_nodes(src.face)
+    else:
+        cand = np.arange(site.n_nodes)
+    keep = np.ones(cand.size, dtype=bool)
+    for axis, rng in enumerate((src.x, src.y, src.z)):
+        if rng is not None:
+            tol = 1e-9 * max(1.0, abs(rng[1] - rng[0]))
+            keep &= (p[axis, cand] >= rng[0] - tol) & (p[axis, cand] <= rng[1] + tol)
+    nodes = cand[keep]
+    if nodes.size == 0:
+        msg = (f"source {src.name!r} contains no mesh node; enlarge it or set a smaller "
+               "mesh.fine_cell_size / mesh.layer_cell_thickness")
+        raise MeshError(msg)
+    return nodes

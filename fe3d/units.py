@@ -1,0 +1,73 @@
+"""The one pint registry of fe3d. Internally every number is SI (m, s, kg)."""
+
+from __future__ import annotations
+
+from functools import lru_cache
+from typing import Any
+
+__all__ = ["DIMENSIONS", "format_quantity", "from_si", "to_si"]
+
+# dimension name → (pint dimensionality, an example shown in error messages)
+DIMENSIONS: dict[str, tuple[str, str]] = {
+    "length": ("[length]", "'12 m'"),
+    "time": ("[time]", "'30 d'"),
+    "velocity": ("[length] / [time]", "'12 m/d'"),
+    "concentration": ("[mass] / [length] ** 3", "'5 ug/L'"),
+    "density": ("[mass] / [length] ** 3", "'1650 kg/m^3'"),
+    "specific_volume": ("[length] ** 3 / [mass]", "'0.35 L/kg'"),
+    "diffusivity": ("[length] ** 2 / [time]", "'1e-9 m^2/s'"),
+}
+
+
+@lru_cache(maxsize=1)
+def _registry() -> Any:
+    import pint
+
+    reg = pint.UnitRegistry()
+    return reg
+
+
+def to_si(text: object, dimension: str) -> float:
+    """Parse ``"12 m/d"`` and return its value in SI base units.
+
+    Raises ``ValueError`` with a message naming the expected dimension when the text is not a
+    number with a unit of that dimension. Never evaluates anything but pint's unit grammar.
+    """
+    dim, example = DIMENSIONS[dimension]
+    if not isinstance(text, str):
+        msg = f"must be a {dimension.replace('_', ' ')} written with its unit, e.g. {example}"
+        raise ValueError(msg)  # noqa: TRY004 (pydantic wants ValueError)
+    reg = _registry()
+    try:
+        q = reg.Quantity(text.strip())
+    except Exception as exc:  # pint raises many types for bad text
+        msg = f"cannot read as a quantity ({type(exc).__name__}); write e.g. {example}"
+        raise ValueError(msg) from None
+    if not hasattr(q, "check") or not q.check(dim):
+        msg = f"must be a {dimension.replace('_', ' ')} with a unit, e.g. {example}"
+        raise ValueError(msg)
+    value = float(q.to_base_units().magnitude)
+    if value != value or value in (float("inf"), float("-inf")):
+        msg = f"must be a finite {dimension.replace('_', ' ')}, e.g. {example}"
+        raise ValueError(msg)
+    return value
+
+
+def from_si(value: float, unit: str) -> float:
+    """Convert an SI value to ``unit`` (e.g. seconds to ``"d"``)."""
+    reg = _registry()
+    q = reg.Quantity(1.0, unit)
+    return float(value / q.to_base_units().magnitude)
+
+
+def format_quantity(value: float, unit: str, digits: int = 4) -> str:
+    """Format an SI value in ``unit`` with ``digits`` significant figures."""
+    return f"{from_si(value, unit):.{digits}g} {unit}"
+
+
+def unit_is(unit: str, dimension: str) -> bool:
+    """True when ``unit`` (e.g. ``"mg/L"``) has the given fe3d dimension."""
+    try:
+        return bool(_registry().Quantity(1.0, unit).check(DIMENSIONS[dimension][0]))
+    except Exception:
+        return False
