@@ -36,7 +36,7 @@ def to_si(text: object, dimension: str) -> float:
     dim, example = DIMENSIONS[dimension]
     if not isinstance(text, str):
         msg = f"must be a {dimension.replace('_', ' ')} written with its unit, e.g. {example}"
-        raise ValueError(msg)  # noqa: TRY004 (pydantic wants ValueError)
+        raise ValueError(msg)
     reg = _registry()
     try:
         q = reg.Quantity(text.strip())

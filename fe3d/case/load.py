@@ -19,6 +19,22 @@ _ALLOWED_HINTS = {
 }
 
 
+class _Shown:
+    """A placeholder shown as-is in an error line (not quoted like a value from the file)."""
+
+    def __init__(self, text: str) -> None:
+        self.text = text
+
+    def __str__(self) -> str:
+        return self.text
+
+    __repr__ = __str__
+
+
+_MISSING = _Shown("(missing)")
+_TABLE = _Shown("{…}")
+
+
 def _key_path(loc: tuple[Any, ...], raw: Any) -> str:
     """Render a pydantic location as ``layers[clay].bottom`` (list items by their name)."""
     parts: list[str] = []
@@ -32,8 +48,11 @@ def _key_path(loc: tuple[Any, ...], raw: Any) -> str:
             node = node[item] if isinstance(node, list) and 0 <= item < len(node) else None
         else:
             key = str(item)
+            if key == "[key]":  # the error is about the table key itself, already in the path
+                continue
             # pydantic appends the branch name of union/annotated types; those are not keys
-            if isinstance(node, dict) and key not in node and parts and _is_type_tag(key):
+            in_file = isinstance(node, dict) and key in node
+            if not in_file and parts and _is_type_tag(key):
                 continue
             parts.append(key)
             node = node.get(key) if isinstance(node, dict) else None
@@ -44,6 +63,26 @@ def _is_type_tag(key: str) -> bool:
     return key in {"float", "str", "int", "bool", "dict[str,float]", "function-after[_positive(), float]"} or (
         key.startswith(("function-", "dict[", "list[", "tuple[", "literal[", "constrained-"))
     )
+
+
+def _wrong_branch(loc: tuple[Any, ...], raw: Any) -> bool:
+    """True for an error from a union branch that does not match the shape of the input.
+
+    ``kd = { sand = "-1 L/kg" }`` fails both the single-value branch and the per-material
+    table branch; only the table branch speaks about what was written (and vice versa).
+    """
+    node = raw
+    for item in loc:
+        if isinstance(item, int):
+            node = node[item] if isinstance(node, list) and 0 <= item < len(node) else None
+        elif isinstance(node, dict) and item in node:
+            node = node[item]
+        elif _is_type_tag(str(item)):
+            if str(item).startswith("dict[") != isinstance(node, dict):
+                return True
+        else:
+            node = None
+    return False
 
 
 def _message(err: dict[str, Any]) -> str:
@@ -67,13 +106,15 @@ def _errors_from(exc: ValidationError, raw: dict[str, Any]) -> list[CaseError]:
     out: list[CaseError] = []
     seen: set[str] = set()
     for err in exc.errors():
+        if _wrong_branch(tuple(err["loc"]), raw):
+            continue
         path = _key_path(tuple(err["loc"]), raw)
         if path in seen:  # a union reports one error per branch; keep the first
             continue
         seen.add(path)
-        value = err.get("input") if err["type"] != "missing" else "(missing)"
+        value = err.get("input") if err["type"] != "missing" else _MISSING
         if isinstance(value, dict):
-            value = "{…}"
+            value = _TABLE
         out.append(CaseError(path, value, _message(err)))
     return out
 
@@ -89,7 +130,8 @@ def parse_case(text: str, *, source: str = "<case>") -> Case:
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
-        raise CaseErrors([CaseError(source, "(TOML text)", f"is not valid TOML: {exc}")]) from None
+        raise CaseErrors([CaseError(source, _Shown("(TOML text)"),
+                                    f"is not valid TOML: {exc}")]) from None
     try:
         case = Case.model_validate(raw)
     except ValidationError as exc:
@@ -107,4 +149,7 @@ def load_case(path: str | Path) -> Case:
         text = p.read_text(encoding="utf-8")
     except OSError as exc:
         raise CaseErrors([CaseError("case file", str(p), f"cannot be read ({exc.strerror})")]) from None
+    except UnicodeDecodeError as exc:
+        raise CaseErrors([CaseError("case file", str(p), f"is not UTF-8 text (byte {exc.start})")]
+                         ) from None
     return parse_case(text, source=str(p))

@@ -14,7 +14,7 @@ from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Fie
 
 from fe3d._typing import FACE_NAMES
 from fe3d.errors import CaseError
-from fe3d.units import to_si, unit_is
+from fe3d.units import from_si, to_si, unit_is
 
 __all__ = [
     "Case",
@@ -276,9 +276,15 @@ def _in(value: float, lo: float, hi: float) -> bool:
     return lo - 1e-9 <= value <= hi + 1e-9
 
 
+def _time_text(seconds: float, unit: str) -> str:
+    """A time [s] shown in the case's output time unit, as the user wrote times."""
+    return f"{from_si(seconds, unit):.6g} {unit}"
+
+
 def cross_checks(case: Case) -> list[CaseError]:
     """Rules that relate one section to another; one error per problem, with its key path."""
     errs: list[CaseError] = []
+    tu = case.output.time_unit
     (x0, x1), (y0, y1), top = case.box.x, case.box.y, case.box.top
     if not x1 > x0:
         errs.append(CaseError("box.x", f"{list(case.box.x)} m", "the second value must exceed the first"))
@@ -313,7 +319,8 @@ def cross_checks(case: Case) -> list[CaseError]:
             errs.append(CaseError(f"{key}.species", s.species,
                                   f"must be one of the species: {sorted(case.species)}"))
         if s.stop is not None and s.stop <= s.start:
-            errs.append(CaseError(f"{key}.stop", f"{s.stop:g} s", "must be later than start"))
+            errs.append(CaseError(f"{key}.stop", _time_text(s.stop, tu),
+                                  f"must be later than start ({_time_text(s.start, tu)})"))
         if s.shape == "face_patch" and s.face is None:
             errs.append(CaseError(f"{key}.face", None,
                                   f"a face_patch source needs a face: one of {list(FACE_NAMES)}"))
@@ -354,11 +361,12 @@ def cross_checks(case: Case) -> list[CaseError]:
                                           f"must name a material: {sorted(case.materials)}"))
     t = case.time
     if t.step > t.end:
-        errs.append(CaseError("time.step", f"{t.step:g} s", f"must not exceed time.end ({t.end:g} s)"))
+        errs.append(CaseError("time.step", _time_text(t.step, tu),
+                              f"must not exceed time.end ({_time_text(t.end, tu)})"))
     for v in t.output_times or []:
         if v > t.end * (1 + 1e-12):
-            errs.append(CaseError("time.output_times", f"{v:g} s",
-                                  f"every output time must be ≤ time.end ({t.end:g} s)"))
+            errs.append(CaseError("time.output_times", _time_text(v, tu),
+                                  f"every output time must be ≤ time.end ({_time_text(t.end, tu)})"))
     m = case.mesh
     if m.fine_cell_size is not None and m.fine_cell_size > m.cell_size:
         errs.append(CaseError("mesh.fine_cell_size", f"{m.fine_cell_size:g} m",

@@ -98,7 +98,8 @@ def solve_flow(site: SiteMesh, layer_materials: list[Material],
     """
     if not fixed_heads:
         msg = "at least one fixed head is needed, otherwise the head is undetermined"
-        raise CaseError("fixed_heads", "[]", msg)
+        msg_0 = "fixed_heads"
+        raise CaseError(msg_0, "[]", msg)
     mesh = site.skfem_mesh()
     basis = Basis(mesh, ElementTetP1())
     kcell = conductivity_per_cell(site, layer_materials)

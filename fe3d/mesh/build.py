@@ -151,7 +151,7 @@ def _embed_on_edges(gmsh: object, tags: list[int], lines: list[int],
     """Embed feature points that sit on the rectangle's edges into those edges."""
     if not tags:
         return
-    x0, x1, y0, y1 = box
+    _x0, x1, y0, y1 = box
     import gmsh as g
 
     for tag in tags:

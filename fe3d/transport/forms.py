@@ -28,7 +28,7 @@ def storage(u: Any, v: Any, w: Any) -> Any:
 
 @BilinearForm
 def advection(u: Any, v: Any, w: Any) -> Any:
-    r"""Advection, conservative form :math:`-\int_\Omega c\, q\cdot\nabla v\,dx` (theory.md T2)."""
+    r"""Advection, conservative form :math:`-\int_\Omega c\,q\cdot\nabla v\,dx` (theory.md T2)."""
     return -u * dot(w.q, grad(v))
 
 
@@ -40,7 +40,7 @@ def outflow(u: Any, v: Any, w: Any) -> Any:
 
 @LinearForm
 def outflow_weight(v: Any, w: Any) -> Any:
-    r"""Outflow per unit concentration :math:`\int_{\Gamma_h} (q\cdot n)^+ v\,ds` (theory.md T3)."""
+    r"""Outflow per unit concentration :math:`\int_{\Gamma_h}(q\cdot n)^+ v\,ds` (theory.md T3)."""
     return w.qn * v
 
 
@@ -64,7 +64,7 @@ def supg_storage(u: Any, v: Any, w: Any) -> Any:
 
 @BilinearForm
 def supg_advection(u: Any, v: Any, w: Any) -> Any:
-    r"""SUPG advection :math:`\int_\Omega \tau (a\cdot\nabla v)(q\cdot\nabla c)\,dx` (theory.md T6)."""
+    r"""SUPG advection :math:`\int_\Omega\tau(a\cdot\nabla v)(q\cdot\nabla c)dx` (theory.md T6)."""
     return w.tau * dot(w.a, grad(v)) * dot(w.q, grad(u))
 
 
