@@ -29,6 +29,11 @@ def plot_breakthrough(path: Path, times: FloatArray, history: dict[str, FloatArr
             ax.plot(t, values[:, j] * scale, label=name)
         ax.axhline(limits[sp] * scale, color="k", linestyle="--", linewidth=1.0,
                    label=f"limit {limits[sp] * scale:.3g} {conc_unit}")
+        peak = float(values.max()) * scale if values.size else 0.0
+        lim = limits[sp] * scale
+        if peak > 50.0 * lim:  # a limit far below the peak is invisible on a linear axis
+            ax.set_yscale("log")
+            ax.set_ylim(lim / 100.0, peak * 2.0)
         ax.set_ylabel(f"{sp} [{conc_unit}]")
         ax.grid(visible=True, alpha=0.3)
         ax.legend(fontsize=8, loc="upper right")
