@@ -102,7 +102,7 @@ class _Species:
 
     name: str
     spec: Species
-    coef: dict[str, FloatArray]
+    coef: dict[str, Any]
     w_dissolved: FloatArray
     w_sorbed: FloatArray
     w_decay: FloatArray
@@ -194,7 +194,8 @@ def run_transport(
                  sp.csr_matrix((n, n)))
         species.append(_Species(
             name=name, spec=spec,
-            coef={"m": m, "k": k, "a": a, "kappa": kappa, "sigma": k / m},
+            coef={"m": m, "k": k, "a": a, "kappa": kappa, "sigma": k / m,
+                  "courant_rate": float(np.max(np.sqrt(speed2) / h))},
             w_dissolved=_nodal(site.cells, theta * vol, n),
             w_sorbed=_nodal(site.cells, rho_b * kd * vol, n),
             w_decay=_nodal(site.cells, k * vol, n),
@@ -317,8 +318,7 @@ def run_transport(
             j = int(np.argmin(new))
             if new[j] < cmin[s.name][0]:
                 cmin[s.name] = (float(new[j]), tuple(float(x) for x in site.points[:, j]))
-            courant[s.name] = max(courant[s.name], float(np.max(
-                np.sqrt(np.sum(s.coef["a"] ** 2, axis=0)) * dt / s.h)))
+            courant[s.name] = max(courant[s.name], dt * s.coef["courant_rate"])
         hist_t.append(t1)
         for s in species:
             hist[s.name].append(probe @ conc[s.name])

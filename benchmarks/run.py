@@ -1,0 +1,98 @@
+"""Speed and memory benchmark of the foundation pipeline (``make bench``).
+
+Builds box meshes of increasing size from the tiny case's physics, and times: meshing, the
+flow solve, transport operator assembly, one transport step, and one sparse matrix-vector
+product (SpMV) of the step matrix, reporting the step cost in SpMV-equivalents and peak
+memory (resident set size). Writes docs/performance.md. Not part of ``make test``.
+"""
+
+from __future__ import annotations
+
+import resource
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _peak_mib() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+
+
+def run(cell: float, dz: float) -> dict[str, float]:
+    from fe3d.case.load import parse_case
+    from fe3d.flow.solve import solve_flow
+    from fe3d.mesh.build import build_mesh
+    from fe3d.transport import run as transport
+
+    text = (ROOT / "cases" / "tiny" / "case.toml").read_text()
+    text = text.replace('cell_size = "8 m"', f'cell_size = "{cell} m"')
+    text = text.replace('fine_cell_size = "4 m"', f'fine_cell_size = "{cell} m"')
+    text = text.replace('layer_cell_thickness = "1 m"', f'layer_cell_thickness = "{dz} m"')
+    text = text.replace('end = "2 yr"', 'end = "60 d"').replace('output_interval = "0.5 yr"',
+                                                                'output_interval = "60 d"')
+    case = parse_case(text)
+    t = time.perf_counter()
+    site = build_mesh(case)
+    t_mesh = time.perf_counter() - t
+    t = time.perf_counter()
+    flow = solve_flow(site, [case.materials[ly.material] for ly in case.layers],
+                      case.fixed_heads)
+    t_flow = time.perf_counter() - t
+    t = time.perf_counter()
+    stamps: list[float] = []
+    gen = transport.run_transport(site, flow, case,
+                                  on_step=lambda _a, _b: stamps.append(time.perf_counter()))
+    for _ in gen:
+        pass
+    t_total = time.perf_counter() - t
+    step_times = np.diff(stamps)  # steps after the first reuse the operator and solver
+    # one SpMV of a matrix with the same sparsity (the assembled step operator)
+    from skfem import Basis, BilinearForm, ElementTetP1, asm
+    from skfem.helpers import dot, grad
+
+    basis = Basis(site.skfem_mesh(), ElementTetP1())
+    t = time.perf_counter()
+    A = asm(BilinearForm(lambda u, v, _w: dot(grad(u), grad(v)) + u * v), basis).tocsr()
+    t_asm = time.perf_counter() - t
+    x = np.ones(A.shape[0])
+    t = time.perf_counter()
+    for _ in range(20):
+        A @ x
+    t_spmv = (time.perf_counter() - t) / 20
+    return {"nodes": site.n_nodes, "cells": site.n_cells, "mesh_s": t_mesh, "flow_s": t_flow,
+            "transport_s": t_total,
+            "step_s": float(np.median(step_times)), "asm_one_form_s": t_asm,
+            "spmv_ms": t_spmv * 1e3, "step_in_spmv": float(np.median(step_times)) / t_spmv,
+            "peak_mib": _peak_mib()}
+
+
+def main() -> int:
+    sizes = [(2.0, 0.5), (1.0, 0.25)] if "--quick" not in sys.argv else [(4.0, 1.0)]
+    rows = []
+    for cell, dz in sizes:
+        r = run(cell, dz)
+        rows.append(r)
+        print({k: round(v, 4) if isinstance(v, float) else v for k, v in r.items()})
+    lines = ["# Performance", "",
+             "Measured by `make bench` (benchmarks/run.py) on the 2-core development machine; "
+             "timings on a shared machine vary by ±20–50 %.", "",
+             "| nodes | tetrahedra | mesh [s] | flow [s] | one form assembly [s] | "
+             "transport step [s] | SpMV [ms] | step / SpMV | peak RSS [MiB] |",
+             "|---|---|---|---|---|---|---|---|---|"]
+    for r in rows:
+        lines.append(f"| {r['nodes']:,} | {r['cells']:,} | {r['mesh_s']:.2f} | {r['flow_s']:.2f}"
+                     f" | {r['asm_one_form_s']:.2f} | {r['step_s']:.3f} | {r['spmv_ms']:.2f} | "
+                     f"{r['step_in_spmv']:.0f} | {r['peak_mib']:.0f} |")
+    lines += ["", "The transport step is one species with its operator and solver reused "
+              "(median over the steps after the first). Peak RSS is for the whole process "
+              "up to that row.", ""]
+    (ROOT / "docs" / "performance.md").write_text("\n".join(lines), encoding="utf-8")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
