@@ -17,6 +17,10 @@ def write_atomic(path: Path, writer: Callable[[Path], None]) -> None:
     os.close(fd)
     try:
         writer(Path(tmp))
+        # mkstemp creates 0600 files; give results the usual permissions of new files
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):

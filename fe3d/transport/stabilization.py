@@ -13,7 +13,7 @@ def element_length_along_flow(a: FloatArray, grads: FloatArray) -> FloatArray:
     """Element length in the flow direction, h = 2|a| / Σ_i |a·∇φ_i| [m] (theory.md T7).
 
     ``a`` has shape ``(3, n_cells)``; ``grads`` shape ``(n_cells, 4, 3)``. Where a = 0 the
-    result is the cube root of 6·volume-like size given by 2/max|∇φ|.
+    result falls back to 2 / max_i |∇φ_i| (twice the smallest height of the tetrahedron).
     """
     speed = np.sqrt(np.sum(a * a, axis=0))
     proj = np.abs(np.einsum("ke,eik->ei", a, grads)).sum(axis=1)

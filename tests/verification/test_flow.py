@@ -1,6 +1,7 @@
 """Steady flow checks against closed-form results of elementary hydrogeology.
 
-Reference: Freeze, R.A. & Cherry, J.A. (1979), *Groundwater*, Prentice-Hall, section 2.9:
+Reference: Freeze, R.A. & Cherry, J.A. (1979), *Groundwater*, Prentice-Hall, ch. 2
+(layered heterogeneity and anisotropy):
 for flow parallel to layers the equivalent conductivity is the thickness-weighted arithmetic
 mean, Σ K_i b_i / Σ b_i; for flow across layers it is the harmonic mean, Σ b_i / Σ (b_i/K_i).
 A linear head between two fixed heads is the exact solution of ∇·(K∇h) = 0 in a box with

@@ -17,6 +17,8 @@ from fe3d.case.load import load_case
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
+pytestmark = pytest.mark.verification
+
 TINY = Path(__file__).parents[2] / "cases" / "tiny" / "case.toml"
 
 
