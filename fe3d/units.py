@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from functools import lru_cache
 from typing import Any
 
@@ -17,6 +18,13 @@ DIMENSIONS: dict[str, tuple[str, str]] = {
     "specific_volume": ("[length] ** 3 / [mass]", "'0.35 L/kg'"),
     "diffusivity": ("[length] ** 2 / [time]", "'1e-9 m^2/s'"),
 }
+
+
+# a number, then a unit made of names with optional integer powers joined by '/', '*' or
+# spaces ("12 m/d", "1e-9 m^2/s", "1650 kg/m**3"); a bare unit or a trailing number is refused
+_QUANTITY = re.compile(
+    r"^\s*[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?\s*"
+    r"[A-Za-zµμ_]+((\^|\*\*)-?\d+)?(\s*[/*]?\s*[A-Za-zµμ_]+((\^|\*\*)-?\d+)?)*\s*$")
 
 
 @lru_cache(maxsize=1)
@@ -37,11 +45,14 @@ def to_si(text: object, dimension: str) -> float:
     if not isinstance(text, str):
         msg = f"must be a {dimension.replace('_', ' ')} written with its unit, e.g. {example}"
         raise ValueError(msg)
+    if not _QUANTITY.match(text):
+        msg = f"must be a number followed by a unit, e.g. {example}"
+        raise ValueError(msg)
     reg = _registry()
     try:
         q = reg.Quantity(text.strip())
-    except Exception as exc:  # pint raises many types for bad text
-        msg = f"cannot read as a quantity ({type(exc).__name__}); write e.g. {example}"
+    except Exception:  # pint raises many types for bad text
+        msg = f"has a unit fe3d does not know; write e.g. {example}"
         raise ValueError(msg) from None
     if not hasattr(q, "check") or not q.check(dim):
         msg = f"must be a {dimension.replace('_', ' ')} with a unit, e.g. {example}"

@@ -1,4 +1,4 @@
-"""TOML text → validated :class:`Case`. Reads the file and nothing else; never evaluates strings."""
+"""TOML text → validated :class:`Case`. Reads the file and nothing else; never evaluates text."""
 
 from __future__ import annotations
 
@@ -60,9 +60,8 @@ def _key_path(loc: tuple[Any, ...], raw: Any) -> str:
 
 
 def _is_type_tag(key: str) -> bool:
-    return key in {"float", "str", "int", "bool", "dict[str,float]", "function-after[_positive(), float]"} or (
-        key.startswith(("function-", "dict[", "list[", "tuple[", "literal[", "constrained-"))
-    )
+    return key in {"float", "str", "int", "bool"} or key.startswith(
+        ("function-", "dict[", "list[", "tuple[", "literal[", "constrained-"))
 
 
 def _wrong_branch(loc: tuple[Any, ...], raw: Any) -> bool:
@@ -148,8 +147,9 @@ def load_case(path: str | Path) -> Case:
     try:
         text = p.read_text(encoding="utf-8")
     except OSError as exc:
-        raise CaseErrors([CaseError("case file", str(p), f"cannot be read ({exc.strerror})")]) from None
+        problem = f"cannot be read ({exc.strerror})"
+        raise CaseErrors([CaseError("case file", str(p), problem)]) from None
     except UnicodeDecodeError as exc:
-        raise CaseErrors([CaseError("case file", str(p), f"is not UTF-8 text (byte {exc.start})")]
-                         ) from None
+        problem = f"is not UTF-8 text (byte {exc.start})"
+        raise CaseErrors([CaseError("case file", str(p), problem)]) from None
     return parse_case(text, source=str(p))

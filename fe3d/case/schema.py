@@ -287,9 +287,11 @@ def cross_checks(case: Case) -> list[CaseError]:
     tu = case.output.time_unit
     (x0, x1), (y0, y1), top = case.box.x, case.box.y, case.box.top
     if not x1 > x0:
-        errs.append(CaseError("box.x", f"{list(case.box.x)} m", "the second value must exceed the first"))
+        errs.append(CaseError("box.x", f"{list(case.box.x)} m",
+                              "the second value must exceed the first"))
     if not y1 > y0:
-        errs.append(CaseError("box.y", f"{list(case.box.y)} m", "the second value must exceed the first"))
+        errs.append(CaseError("box.y", f"{list(case.box.y)} m",
+                              "the second value must exceed the first"))
     upper_name, upper = "box.top", [top] * 4
     seen: set[str] = set()
     for layer in case.layers:
@@ -341,9 +343,11 @@ def cross_checks(case: Case) -> list[CaseError]:
         if obs_names.count(o.name) > 1:
             errs.append(CaseError(f"{key}.name", o.name, "observation names must be unique"))
         if not _in(o.x, x0, x1):
-            errs.append(CaseError(f"{key}.x", f"{o.x:g} m", f"must lie in the box, [{x0:g}, {x1:g}] m"))
+            errs.append(CaseError(f"{key}.x", f"{o.x:g} m",
+                                  f"must lie in the box, [{x0:g}, {x1:g}] m"))
         if not _in(o.y, y0, y1):
-            errs.append(CaseError(f"{key}.y", f"{o.y:g} m", f"must lie in the box, [{y0:g}, {y1:g}] m"))
+            errs.append(CaseError(f"{key}.y", f"{o.y:g} m",
+                                  f"must lie in the box, [{y0:g}, {y1:g}] m"))
         if (o.z is None) == (o.screen is None):
             errs.append(CaseError(f"{key}", o.name, "give exactly one of z (a point) or screen"))
         if o.z is not None and not _in(o.z, zmin, top):
@@ -366,7 +370,8 @@ def cross_checks(case: Case) -> list[CaseError]:
     for v in t.output_times or []:
         if v > t.end * (1 + 1e-12):
             errs.append(CaseError("time.output_times", _time_text(v, tu),
-                                  f"every output time must be ≤ time.end ({_time_text(t.end, tu)})"))
+                                  "every output time must be ≤ time.end "
+                                  f"({_time_text(t.end, tu)})"))
     m = case.mesh
     if m.fine_cell_size is not None and m.fine_cell_size > m.cell_size:
         errs.append(CaseError("mesh.fine_cell_size", f"{m.fine_cell_size:g} m",

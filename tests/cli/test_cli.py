@@ -1,0 +1,258 @@
+"""The ``fe3d`` command run as a separate process: help, check, bad input, and a full tiny run.
+
+Bad input must give exit code 2, one ``error: `` line per problem naming the key path, and no
+traceback; nothing already in the run folder may be lost.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import os
+import re
+import subprocess
+import sys
+import xml.etree.ElementTree as ET
+from pathlib import Path
+
+import pytest
+
+from fe3d.post.report import CAUTION
+
+ROOT = Path(__file__).resolve().parents[2]
+TINY = ROOT / "cases" / "tiny" / "case.toml"
+TINY_TEXT = TINY.read_text(encoding="utf-8")
+DAY = 86_400.0
+
+
+def fe3d(*args: str | Path, cwd: Path) -> subprocess.CompletedProcess[str]:
+    env = {**os.environ, "PYTHONUTF8": "1", "NO_COLOR": "1", "COLUMNS": "100"}
+    return subprocess.run(
+        [sys.executable, "-m", "fe3d.cli", *map(str, args)], cwd=cwd, env=env,
+        capture_output=True, text=True, encoding="utf-8", timeout=300, check=False,
+    )
+
+
+def flat(text: str) -> str:
+    """Collapse whitespace (rich wraps long lines to the console width)."""
+    return " ".join(text.split())
+
+
+def edit(old: str, new: str) -> str:
+    assert TINY_TEXT.count(old) == 1, f"tiny case no longer has exactly one {old!r}"
+    return TINY_TEXT.replace(old, new)
+
+
+# ------------------------------------------------------------------------------------- help
+
+
+@pytest.mark.parametrize(("args", "expected"), [
+    (["--help"], ["usage: fe3d", "check", "run"]),
+    (["check", "--help"], ["usage: fe3d check", "case file (TOML)"]),
+    (["run", "--help"], ["usage: fe3d run", "--out", "--quiet"]),
+], ids=["top", "check", "run"])
+def test_help(args: list[str], expected: list[str], tmp_path: Path) -> None:
+    res = fe3d(*args, cwd=tmp_path)
+    assert res.returncode == 0, res.stderr
+    for word in expected:
+        assert word in res.stdout
+    assert res.stderr == ""
+
+
+def test_no_command_is_a_usage_error(tmp_path: Path) -> None:
+    res = fe3d(cwd=tmp_path)
+    assert res.returncode == 2
+    assert "usage: fe3d" in res.stderr
+    assert "Traceback" not in res.stderr
+
+
+# ------------------------------------------------------------------------------------ check
+
+
+def test_check_tiny_case(tmp_path: Path) -> None:
+    res = fe3d("check", TINY, cwd=tmp_path)
+    assert res.returncode == 0, res.stderr
+    out = flat(res.stdout)
+    assert "case is valid" in out
+    assert flat(CAUTION) in out
+    # 10 ug/L shown in the case's output unit mg/L; 5 yr = 1826.25 d (Julian year, see pint)
+    assert "species tracer: limit 0.01 mg/L, half-life 1826 d" in out
+    assert "Traceback" not in res.stderr
+    assert list(tmp_path.iterdir()) == [], "check must write nothing"
+
+
+# --------------------------------------------------------------------------------- bad input
+
+# (id, case text, key path expected at the start of an error line)
+BAD_FILES = [
+    ("porosity_above_one", edit("porosity = 0.3\n", "porosity = 1.4\n"),
+     "materials.sand.porosity = 1.4: must be in (0, 1]"),
+    ("porosity_zero", edit("porosity = 0.35", "porosity = 0"), "materials.silt.porosity = 0:"),
+    ("negative_conductivity",
+     edit('horizontal_conductivity = "10 m/d"', 'horizontal_conductivity = "-10 m/d"'),
+     "materials.sand.horizontal_conductivity = '-10 m/d':"),
+    ("conductivity_wrong_dimension",
+     edit('horizontal_conductivity = "10 m/d"', 'horizontal_conductivity = "12 m"'),
+     "materials.sand.horizontal_conductivity = '12 m':"),
+    ("quantity_unreadable",
+     edit('horizontal_conductivity = "10 m/d"', 'horizontal_conductivity = "twelve m/d"'),
+     "materials.sand.horizontal_conductivity = 'twelve m/d':"),
+    ("unknown_key", edit("porosity = 0.3\n", "porosity = 0.3\nporosty = 0.3\n"),
+     "materials.sand.porosty = 0.3:"),
+    ("missing_key", edit('bulk_density = "1600 kg/m^3"\n', ""),
+     "materials.sand.bulk_density = (missing): is required"),
+    ("layer_unknown_material", edit('material = "silt"', 'material = "slit"'),
+     "layers[silt_base].material = 'slit':"),
+    ("layer_above_top", edit('bottom = "1 m"', 'bottom = "6 m"'),
+     "layers[top_sand].bottom = '6 m':"),
+    ("source_unknown_species", edit('species = "tracer"', 'species = "benzene"'),
+     "sources[drum_spill].species = 'benzene':"),
+    ("source_outside_box", edit('x = ["8 m", "12 m"]', 'x = ["8 m", "70 m"]'),
+     "sources[drum_spill].x = '[8, 70] m':"),
+    ("observation_outside_box", edit('x = "30 m"', 'x = "90 m"'),
+     "observation_points[BH-A].x = '90 m':"),
+    ("step_longer_than_end", edit('step = "20 d"', 'step = "3 yr"'), "time.step = '1095.75 d':"),
+    ("negative_half_life", edit('half_life = "5 yr"', 'half_life = "-5 yr"'),
+     "species.tracer.half_life = '-5 yr':"),
+    ("negative_kd", edit('kd = "0.1 L/kg"', 'kd = "-0.1 L/kg"'),
+     "species.tracer.kd = '-0.1 L/kg':"),
+    ("unknown_face", edit('face = "west"', 'face = "western"'),
+     "fixed_heads[0].face = 'western':"),
+    ("output_unit", edit('concentration_unit = "mg/L"', 'concentration_unit = "m/d"'),
+     "output.concentration_unit = 'm/d':"),
+    ("empty_file", "", "title = (missing): is required"),
+]
+
+
+def _check_error_output(res: subprocess.CompletedProcess[str], expected: str) -> None:
+    assert res.returncode == 2, (res.returncode, res.stdout, res.stderr)
+    assert "Traceback" not in res.stderr + res.stdout
+    lines = res.stderr.splitlines()
+    assert lines, "no error message"
+    for line in lines:
+        assert line.startswith("error: "), line
+    assert any(line.startswith(f"error: {expected}") for line in lines), (expected, lines)
+    assert "CAUTION" not in res.stdout, "a bad case must not get as far as a summary"
+
+
+@pytest.mark.parametrize(("text", "expected"), [b[1:] for b in BAD_FILES],
+                         ids=[b[0] for b in BAD_FILES])
+def test_check_bad_case_exits_2_with_one_line_per_problem(
+    text: str, expected: str, tmp_path: Path,
+) -> None:
+    path = tmp_path / "bad.toml"
+    path.write_text(text, encoding="utf-8")
+    _check_error_output(fe3d("check", path, cwd=tmp_path), expected)
+
+
+def test_check_invalid_toml(tmp_path: Path) -> None:
+    path = tmp_path / "bad.toml"
+    text = edit("porosity = 0.3\n", "porosity = = 0.3\n")
+    path.write_text(text, encoding="utf-8")
+    line_no = text.splitlines().index("porosity = = 0.3") + 1
+    res = fe3d("check", path, cwd=tmp_path)
+    _check_error_output(res, f"{path} = (TOML text): is not valid TOML")
+    assert f"line {line_no}," in res.stderr
+
+
+def test_check_missing_file(tmp_path: Path) -> None:
+    path = tmp_path / "nowhere.toml"
+    _check_error_output(fe3d("check", path, cwd=tmp_path), f"case file = '{path}': cannot be read")
+
+
+def test_check_file_not_utf8(tmp_path: Path) -> None:
+    path = tmp_path / "latin1.toml"
+    path.write_bytes(TINY_TEXT.replace("Pellet Lane", "P\xe9llet Lane").encode("latin-1"))
+    _check_error_output(fe3d("check", path, cwd=tmp_path), f"case file = '{path}': is not UTF-8")
+
+
+def test_run_bad_case_keeps_what_is_already_in_the_folder(tmp_path: Path) -> None:
+    bad = tmp_path / "bad.toml"
+    bad.write_text(edit("porosity = 0.3\n", "porosity = 1.4\n"), encoding="utf-8")
+    out = tmp_path / "earlier_run"
+    out.mkdir()
+    kept = out / "summary.json"
+    content = b'{"from": "an earlier run"}\n\x00\xff'
+    kept.write_bytes(content)
+    res = fe3d("run", bad, "--out", out, "--quiet", cwd=tmp_path)
+    _check_error_output(res, "materials.sand.porosity = 1.4:")
+    assert kept.read_bytes() == content
+    assert sorted(p.name for p in out.iterdir()) == ["summary.json"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["bad.toml", "earlier_run"]
+
+
+# ------------------------------------------------------------------------------ a full run
+
+
+@pytest.fixture(scope="module")
+def tiny_run(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str]:
+    base = tmp_path_factory.mktemp("cli_run")
+    out = base / "run"
+    res = fe3d("run", TINY, "--out", out, "--quiet", cwd=base)
+    assert res.returncode == 0, res.stderr
+    assert "Traceback" not in res.stderr
+    return out, res.stdout
+
+
+EXPECTED_FILES = ["mesh.msh", "mesh.vtu", "flow.vtu", "concentration.pvd", "histories.csv",
+                  "mass_budget.csv", "summary.json", "report.md", "breakthrough.png"]
+
+
+@pytest.mark.slow
+def test_run_writes_every_output(tiny_run: tuple[Path, str]) -> None:
+    out, stdout = tiny_run
+    for name in EXPECTED_FILES:
+        assert (out / name).is_file(), name
+        assert (out / name).stat().st_size > 0, name
+    assert len(list(out.glob("concentration_*.vtu"))) >= 2
+    assert (out / "breakthrough.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert flat(CAUTION) in flat(stdout)
+
+
+# columns that hold names, not quantities
+_LABEL_COLUMNS = {"species", "boundary"}
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name", ["histories.csv", "mass_budget.csv"])
+def test_run_csv_headers_carry_units(tiny_run: tuple[Path, str], name: str) -> None:
+    out, _ = tiny_run
+    with (out / name).open(newline="", encoding="utf-8") as f:
+        rows = list(csv.reader(f))
+    header = rows[0]
+    assert len(rows) > 2
+    quantities = [h for h in header if h not in _LABEL_COLUMNS]
+    assert quantities
+    for h in quantities:
+        assert re.fullmatch(r".+ \[[^\[\]]+\]", h), f"{name}: column {h!r} has no [unit]"
+    if name == "histories.csv":
+        assert header[0] == "time [d]"                       # output.time_unit = "d"
+        assert "BH-A tracer [mg/L]" in header                 # output.concentration_unit
+        assert "fence_well tracer [mg/L]" in header
+
+
+@pytest.mark.slow
+def test_run_summary_mass_balance(tiny_run: tuple[Path, str]) -> None:
+    out, _ = tiny_run
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    errors = summary["mass_balance_error"]
+    assert set(errors) == {"tracer"}
+    # Design target: the transport budget closes to round-off for a linear problem
+    # (common practice, no source).
+    for species, err in errors.items():
+        assert abs(err) < 1e-8, (species, err)
+    assert {o["name"] for o in summary["observations"]} == {"BH-A", "fence_well"}
+
+
+@pytest.mark.slow
+def test_run_pvd_lists_the_times_written(tiny_run: tuple[Path, str]) -> None:
+    out, _ = tiny_run
+    datasets = ET.parse(out / "concentration.pvd").getroot().findall("./Collection/DataSet")
+    times = [float(d.get("timestep", "nan")) for d in datasets]
+    # tiny case: initial state, then every 0.5 yr to 2 yr, shown in days (1 yr = 365.25 d)
+    assert times == pytest.approx([0.0, 182.625, 365.25, 547.875, 730.5], rel=1e-9)
+    files = [d.get("file", "") for d in datasets]
+    assert len(set(files)) == len(files)
+    for name in files:
+        assert (out / name).is_file(), name
+    assert sorted(files) == sorted(p.name for p in out.glob("concentration_*.vtu"))
