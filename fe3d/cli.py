@@ -106,7 +106,7 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool) -> int:
     from rich.table import Table
 
     from fe3d.pipeline import run_case
-    from fe3d.post.report import CAUTION
+    from fe3d.post.report import CAUTION, quality_warnings
     from fe3d.units import from_si
 
     case = load_case(case_path)
@@ -138,6 +138,8 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool) -> int:
                   f"{summary.mass_balance_error[o.species]:.1e}")
     con.print(t)
     con.print(f"flow budget discrepancy {summary.flow_discrepancy:.1e}; results in {folder}/")
+    for w in quality_warnings(summary):
+        con.print(f"[yellow]warning:[/yellow] {w}", markup=True, highlight=False)
     con.print(CAUTION)
     return 0
 

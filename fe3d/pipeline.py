@@ -106,6 +106,8 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None) -> 
         max_courant=d.max_courant,
         min_concentration={k: v[0] for k, v in d.min_concentration.items()},
         min_concentration_at={k: v[1] for k, v in d.min_concentration.items()},
+        source_max={sp: max((src.concentration for src in case.sources if src.species == sp),
+                            default=0.0) for sp in case.species},
         wall_time=time.perf_counter() - started, time_unit=tu, concentration_unit=cu,
         files=files)
     write_summary_json(out_dir / "summary.json", summary)

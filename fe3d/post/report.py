@@ -9,7 +9,14 @@ from pathlib import Path
 from fe3d.post.files import write_text_atomic
 from fe3d.units import from_si
 
-__all__ = ["CAUTION", "ObservationResult", "RunSummary", "write_report", "write_summary_json"]
+__all__ = [
+    "CAUTION",
+    "ObservationResult",
+    "RunSummary",
+    "quality_warnings",
+    "write_report",
+    "write_summary_json",
+]
 
 CAUTION = ("CAUTION: fe3d results are screening estimates that depend entirely on the inputs "
            "(geology, conductivity, sources, parameters). They do not replace site "
@@ -47,10 +54,38 @@ class RunSummary:
     max_courant: dict[str, float]
     min_concentration: dict[str, float]
     min_concentration_at: dict[str, tuple[float, ...] | None]
+    source_max: dict[str, float]
     wall_time: float
     time_unit: str
     concentration_unit: str
     files: list[str] = field(default_factory=list)
+
+
+def quality_warnings(s: RunSummary) -> list[str]:
+    """Plain-language warnings when the discretisation may distort the answer.
+
+    Thresholds are common practice, no source: Courant ≤ 1 keeps implicit steps from
+    smearing fronts ahead of the flow; grid Péclet ≤ 2 is where Galerkin needs no
+    stabilisation; undershoots above 1 % of the source are visible against typical limits.
+    """
+    out: list[str] = []
+    cu = s.concentration_unit
+    for sp in s.mass_balance_error:
+        if s.max_courant[sp] > 1.0:
+            out.append(f"{sp}: largest Courant number {s.max_courant[sp]:.2g} > 1; first "
+                       "arrival times at low concentrations may come too early (numerical "
+                       "spreading): shorten time.step and compare")
+        if s.max_grid_peclet[sp] > 2.0:
+            out.append(f"{sp}: largest grid Péclet number {s.max_grid_peclet[sp]:.2g} > 2; "
+                       "the mesh is coarse against the dispersivities: refine and compare")
+        c_min, c_src = s.min_concentration[sp], s.source_max.get(sp, 0.0)
+        if c_src > 0 and c_min < -0.01 * c_src:
+            at = s.min_concentration_at.get(sp)
+            where = "" if at is None else (
+                f" near x={at[0]:.1f} m, y={at[1]:.1f} m, z={at[2]:.1f} m")
+            out.append(f"{sp}: most negative concentration {from_si(c_min, cu):.3g} {cu} "
+                       f"({-c_min / c_src:.1%} of the source){where}: refine the mesh there")
+    return out
 
 
 def write_summary_json(path: Path, s: RunSummary) -> Path:
@@ -58,6 +93,7 @@ def write_summary_json(path: Path, s: RunSummary) -> Path:
     d = asdict(s)
     d["units"] = {"time": "s", "concentration": "kg/m^3", "flow": "m^3/s", "length": "m"}
     d["caution"] = CAUTION
+    d["warnings"] = quality_warnings(s)
     write_text_atomic(path, json.dumps(d, indent=2, allow_nan=False, default=str) + "\n")
     return path
 
@@ -91,8 +127,10 @@ def write_report(path: Path, s: RunSummary) -> Path:
     for sp, err in s.mass_balance_error.items():
         lines.append(f"| {sp} | {err:.2e} | {s.max_grid_peclet[sp]:.3g} | "
                      f"{s.max_courant[sp]:.3g} | {s.min_concentration[sp] * sc:.3g} |")
+    warnings = quality_warnings(s)
     lines += ["", "Negative concentrations are a discretisation artefact near steep fronts; "
               "where they are large against the limit, refine the mesh near the plume.", "",
+              "### Warnings", "", *([f"- {w}" for w in warnings] or ["- none"]), "",
               "## Files", "", *[f"- `{f}`" for f in s.files], ""]
     write_text_atomic(path, "\n".join(lines))
     return path
