@@ -17,6 +17,8 @@ DIMENSIONS: dict[str, tuple[str, str]] = {
     "density": ("[mass] / [length] ** 3", "'1650 kg/m^3'"),
     "specific_volume": ("[length] ** 3 / [mass]", "'0.35 L/kg'"),
     "diffusivity": ("[length] ** 2 / [time]", "'1e-9 m^2/s'"),
+    "flow_rate": ("[length] ** 3 / [time]", "'250 m^3/d'"),
+    "leakance": ("1 / [time]", "'0.5 d^-1'"),
 }
 
 

@@ -10,11 +10,32 @@ from __future__ import annotations
 import math
 from typing import Annotated, Literal
 
-from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field
+from pydantic import AfterValidator, Field
 
 from fe3d._typing import FACE_NAMES
+from fe3d.case.hydro import HeadDependent, Recharge, SpecifiedFlux, Well
+from fe3d.case.schema_types import (
+    Concentration,
+    Diffusivity,
+    FaceName,
+    Fraction,
+    Length,
+    Name,
+    NonNegativeLength,
+    Partition,
+    PositiveConcentration,
+    PositiveDensity,
+    PositiveLength,
+    PositiveTime,
+    PositiveVelocity,
+    Range,
+    Section,
+    Time,
+    _concentration_unit,
+    _time_unit,
+)
 from fe3d.errors import CaseError
-from fe3d.units import from_si, to_si, unit_is
+from fe3d.units import from_si
 
 __all__ = [
     "Case",
@@ -33,64 +54,7 @@ __all__ = [
 ]
 
 
-def _quantity(dimension: str) -> BeforeValidator:
-    return BeforeValidator(lambda v: to_si(v, dimension))
-
-
-def _positive(x: float) -> float:
-    if not x > 0:
-        msg = "must be greater than zero"
-        raise ValueError(msg)
-    return x
-
-
-def _non_negative(x: float) -> float:
-    if not x >= 0:
-        msg = "must be zero or greater"
-        raise ValueError(msg)
-    return x
-
-
-def _fraction(x: float) -> float:
-    if not (0 < x <= 1) or math.isnan(x):
-        msg = "must be in (0, 1]"
-        raise ValueError(msg)
-    return x
-
-
-def _concentration_unit(u: str) -> str:
-    if not unit_is(u, "concentration"):
-        msg = "must be a mass-per-volume unit such as 'mg/L', 'ug/L' or 'kg/m^3'"
-        raise ValueError(msg)
-    return u
-
-
-def _time_unit(u: str) -> str:
-    if not unit_is(u, "time"):
-        msg = "must be a time unit such as 'd', 'yr' or 's'"
-        raise ValueError(msg)
-    return u
-
-
-Length = Annotated[float, _quantity("length")]
-PositiveLength = Annotated[float, _quantity("length"), AfterValidator(_positive)]
-NonNegativeLength = Annotated[float, _quantity("length"), AfterValidator(_non_negative)]
-Time = Annotated[float, _quantity("time"), AfterValidator(_non_negative)]
-PositiveTime = Annotated[float, _quantity("time"), AfterValidator(_positive)]
-PositiveVelocity = Annotated[float, _quantity("velocity"), AfterValidator(_positive)]
-Concentration = Annotated[float, _quantity("concentration"), AfterValidator(_non_negative)]
-PositiveConcentration = Annotated[float, _quantity("concentration"), AfterValidator(_positive)]
-PositiveDensity = Annotated[float, _quantity("density"), AfterValidator(_positive)]
-Partition = Annotated[float, _quantity("specific_volume"), AfterValidator(_non_negative)]
-Diffusivity = Annotated[float, _quantity("diffusivity"), AfterValidator(_non_negative)]
-Fraction = Annotated[float, AfterValidator(_fraction)]
-Name = Annotated[str, Field(pattern=r"^[A-Za-z][A-Za-z0-9_\-]*$", max_length=64)]
-FaceName = Literal["west", "east", "south", "north", "top", "bottom"]
-Range = tuple[Length, Length]
-
-
-class _Section(BaseModel):
-    model_config = ConfigDict(frozen=True, extra="forbid", populate_by_name=True)
+_Section = Section
 
 
 class ModelBox(_Section):
@@ -244,6 +208,10 @@ class Case(_Section):
     species: dict[Name, Species] = Field(min_length=1)
     sources: list[Source] = Field(default_factory=list)
     observation_points: list[ObservationPoint] = Field(default_factory=list)
+    wells: list[Well] = Field(default_factory=list)
+    recharge: list[Recharge] = Field(default_factory=list)
+    head_dependent: list[HeadDependent] = Field(default_factory=list)
+    specified_fluxes: list[SpecifiedFlux] = Field(default_factory=list)
     time: TimeControl
     mesh: MeshControl
     solver: SolverControl = SolverControl()

@@ -1,0 +1,80 @@
+"""Field types shared by the case sections: quantities with units converted to SI, names,
+ranges, plan polygons, and the frozen section base class."""
+
+from __future__ import annotations
+
+import math
+from typing import Annotated, Literal
+
+from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field
+
+from fe3d.units import to_si, unit_is
+
+
+def _quantity(dimension: str) -> BeforeValidator:
+    return BeforeValidator(lambda v: to_si(v, dimension))
+
+
+def _positive(x: float) -> float:
+    if not x > 0:
+        msg = "must be greater than zero"
+        raise ValueError(msg)
+    return x
+
+
+def _non_negative(x: float) -> float:
+    if not x >= 0:
+        msg = "must be zero or greater"
+        raise ValueError(msg)
+    return x
+
+
+def _fraction(x: float) -> float:
+    if not (0 < x <= 1) or math.isnan(x):
+        msg = "must be in (0, 1]"
+        raise ValueError(msg)
+    return x
+
+
+def _concentration_unit(u: str) -> str:
+    if not unit_is(u, "concentration"):
+        msg = "must be a mass-per-volume unit such as 'mg/L', 'ug/L' or 'kg/m^3'"
+        raise ValueError(msg)
+    return u
+
+
+def _time_unit(u: str) -> str:
+    if not unit_is(u, "time"):
+        msg = "must be a time unit such as 'd', 'yr' or 's'"
+        raise ValueError(msg)
+    return u
+
+
+Length = Annotated[float, _quantity("length")]
+PositiveLength = Annotated[float, _quantity("length"), AfterValidator(_positive)]
+NonNegativeLength = Annotated[float, _quantity("length"), AfterValidator(_non_negative)]
+Time = Annotated[float, _quantity("time"), AfterValidator(_non_negative)]
+PositiveTime = Annotated[float, _quantity("time"), AfterValidator(_positive)]
+PositiveVelocity = Annotated[float, _quantity("velocity"), AfterValidator(_positive)]
+Concentration = Annotated[float, _quantity("concentration"), AfterValidator(_non_negative)]
+PositiveConcentration = Annotated[float, _quantity("concentration"), AfterValidator(_positive)]
+PositiveDensity = Annotated[float, _quantity("density"), AfterValidator(_positive)]
+Partition = Annotated[float, _quantity("specific_volume"), AfterValidator(_non_negative)]
+Diffusivity = Annotated[float, _quantity("diffusivity"), AfterValidator(_non_negative)]
+Fraction = Annotated[float, AfterValidator(_fraction)]
+Name = Annotated[str, Field(pattern=r"^[A-Za-z][A-Za-z0-9_\-]*$", max_length=64)]
+FaceName = Literal["west", "east", "south", "north", "top", "bottom"]
+Range = tuple[Length, Length]
+PlanPoint = tuple[Length, Length]
+PlanPolygon = Annotated[list[PlanPoint], Field(min_length=3)]
+Velocity = Annotated[float, _quantity("velocity")]
+PositiveRate = Annotated[float, _quantity("flow_rate"), AfterValidator(_non_negative)]
+PositiveLeakance = Annotated[float, _quantity("leakance"), AfterValidator(_positive)]
+
+
+class Section(BaseModel):
+    """Base of every case section: frozen, unknown keys refused."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid", populate_by_name=True)
+
+
