@@ -8,6 +8,7 @@ from typing import Any
 
 from pydantic import ValidationError
 
+from fe3d.case.geology import read_borehole_file, read_surface_file
 from fe3d.case.schema import Case, cross_checks
 from fe3d.errors import CaseError, CaseErrors
 
@@ -118,8 +119,11 @@ def _errors_from(exc: ValidationError, raw: dict[str, Any]) -> list[CaseError]:
     return out
 
 
-def parse_case(text: str, *, source: str = "<case>") -> Case:
+def parse_case(text: str, *, source: str = "<case>", base_dir: Path | None = None) -> Case:
     """Validate TOML ``text`` and return the :class:`Case`.
+
+    Data files named in the case (borehole picks, surface points) are read relative to
+    ``base_dir`` (default: the current folder) and stored in the case.
 
     Raises
     ------
@@ -135,6 +139,10 @@ def parse_case(text: str, *, source: str = "<case>") -> Case:
         case = Case.model_validate(raw)
     except ValidationError as exc:
         raise CaseErrors(_errors_from(exc, raw)) from None
+    try:
+        case = with_geology_files(case, base_dir or Path())
+    except CaseError as exc:
+        raise CaseErrors([exc]) from None
     problems = cross_checks(case)
     if problems:
         raise CaseErrors(problems)
@@ -152,4 +160,22 @@ def load_case(path: str | Path) -> Case:
     except UnicodeDecodeError as exc:
         problem = f"is not UTF-8 text (byte {exc.start})"
         raise CaseErrors([CaseError("case file", str(p), problem)]) from None
-    return parse_case(text, source=str(p))
+    return parse_case(text, source=str(p), base_dir=p.parent)
+
+
+def with_geology_files(case: Case, base_dir: Path) -> Case:
+    """The case with its borehole and surface-point files read into ``stratigraphy``."""
+    strat = case.stratigraphy
+    if strat is None or (strat.borehole_file is None and not strat.surface_files):
+        return case
+    update: dict[str, Any] = {}
+    if strat.borehole_file is not None:
+        update["boreholes"] = [*strat.boreholes, *read_borehole_file(
+            base_dir / strat.borehole_file)]
+    if strat.surface_files:
+        pts = dict(strat.surface_points)
+        for unit, name in strat.surface_files.items():
+            pts[unit] = [*pts.get(unit, []), *read_surface_file(
+                base_dir / name, key=f"stratigraphy.surface_files.{unit}")]
+        update["surface_points"] = pts
+    return case.model_copy(update={"stratigraphy": strat.model_copy(update=update)})

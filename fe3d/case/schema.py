@@ -12,12 +12,23 @@ from typing import Annotated, Literal
 
 from pydantic import AfterValidator, Field
 
-from fe3d._typing import FACE_NAMES
+from fe3d.case.geology import (
+    Boundary,
+    Lens,
+    RefinementLine,
+    Stratigraphy,
+    base_bottom,
+    face_names,
+    geology_checks,
+    ground_top,
+    plan_origin,
+    plan_outline,
+    point_in_polygon,
+)
 from fe3d.case.hydro import HeadDependent, Recharge, SpecifiedFlux, Well
 from fe3d.case.schema_types import (
     Concentration,
     Diffusivity,
-    FaceName,
     Fraction,
     Length,
     Name,
@@ -98,19 +109,22 @@ class Layer(_Section):
 
     name: Name
     material: Name
-    bottom: Length
+    bottom: Length | None = None  # None: the base comes from stratigraphy (borehole picks)
     bottom_gradient: tuple[float, float] = (0.0, 0.0)
+    sublayers: Annotated[int, Field(ge=1, le=200)] | None = None
+    cell_thickness: PositiveLength | None = None
 
     def bottom_at(self, x: float, y: float, x0: float, y0: float) -> float:
-        """Elevation [m] of the planar bottom at (x, y), given the box's south-west corner."""
+        """Elevation [m] of the planar bottom at (x, y), given the plan origin (x0, y0)."""
+        assert self.bottom is not None
         gx, gy = self.bottom_gradient
         return self.bottom + gx * (x - x0) + gy * (y - y0)
 
 
 class FixedHead(_Section):
-    """A fixed hydraulic head on a named face of the model box."""
+    """A fixed hydraulic head on a named face of the model (a boundary edge name, top, bottom)."""
 
-    face: FaceName
+    face: Name
     head: Length
 
 
@@ -142,7 +156,7 @@ class Source(_Section):
     species: Name
     shape: Literal["box", "face_patch"]
     concentration: PositiveConcentration
-    face: FaceName | None = None
+    face: Name | None = None
     x: Range | None = None
     y: Range | None = None
     z: Range | None = None
@@ -201,7 +215,11 @@ class Case(_Section):
 
     title: str
     site: str = ""
-    box: ModelBox
+    box: ModelBox | None = None
+    boundary: Boundary | None = None
+    stratigraphy: Stratigraphy | None = None
+    lenses: list[Lens] = Field(default_factory=list)
+    refinement_lines: list[RefinementLine] = Field(default_factory=list)
     materials: dict[Name, Material]
     layers: list[Layer] = Field(min_length=1)
     fixed_heads: list[FixedHead] = Field(min_length=1)
@@ -219,12 +237,27 @@ class Case(_Section):
 
     @property
     def z_bottom_min(self) -> float:
-        """Lowest elevation of the model base [m] over the box corners."""
-        return min(self._corner_bottoms(self.layers[-1]))
+        """Lowest elevation of the model base [m] (boundary vertices, or the picks)."""
+        z = base_bottom(self)
+        return math.nan if z is None else z
+
+    @property
+    def z_top(self) -> float:
+        """Highest ground elevation [m] (box or boundary top, or the highest ground pick)."""
+        z = ground_top(self)
+        return math.nan if z is None else z
+
+    def outline(self) -> tuple[list[tuple[float, float]], list[str]]:
+        """Plan boundary: counter-clockwise vertices [m] and one name per edge."""
+        return plan_outline(self)
+
+    def face_names(self) -> list[str]:
+        """Boundary face names the geometry defines: edge names, top, bottom."""
+        return face_names(self)
 
     def _corner_bottoms(self, layer: Layer) -> list[float]:
-        (x0, x1), (y0, y1) = self.box.x, self.box.y
-        return [layer.bottom_at(x, y, x0, y0) for x in (x0, x1) for y in (y0, y1)]
+        x0, y0 = plan_origin(self)
+        return [layer.bottom_at(x, y, x0, y0) for x, y in self.outline()[0]]
 
     def output_schedule(self) -> list[float]:
         """Sorted output times [s] (always ending with the end time)."""
@@ -253,14 +286,26 @@ def cross_checks(case: Case) -> list[CaseError]:
     """Rules that relate one section to another; one error per problem, with its key path."""
     errs: list[CaseError] = []
     tu = case.output.time_unit
-    (x0, x1), (y0, y1), top = case.box.x, case.box.y, case.box.top
-    if not x1 > x0:
-        errs.append(CaseError("box.x", f"{list(case.box.x)} m",
-                              "the second value must exceed the first"))
-    if not y1 > y0:
-        errs.append(CaseError("box.y", f"{list(case.box.y)} m",
-                              "the second value must exceed the first"))
-    upper_name, upper = "box.top", [top] * 4
+    if case.box is not None:
+        if not case.box.x[1] > case.box.x[0]:
+            errs.append(CaseError("box.x", f"{list(case.box.x)} m",
+                                  "the second value must exceed the first"))
+        if not case.box.y[1] > case.box.y[0]:
+            errs.append(CaseError("box.y", f"{list(case.box.y)} m",
+                                  "the second value must exceed the first"))
+    if errs:
+        return errs
+    geo_errs = geology_checks(case)
+    errs += geo_errs
+    if any(e.key_path in ("box", "boundary", "boundary.vertices") for e in geo_errs):
+        return errs
+    verts = case.outline()[0]
+    x0, x1 = min(v[0] for v in verts), max(v[0] for v in verts)
+    y0, y1 = min(v[1] for v in verts), max(v[1] for v in verts)
+    top = case.z_top
+    where = "corner of the box" if case.box is not None else "vertex of the boundary"
+    upper_name = "box.top" if case.box is not None else "boundary.top"
+    upper: list[float] | None = None if math.isnan(top) else [top] * len(verts)
     seen: set[str] = set()
     for layer in case.layers:
         key = f"layers[{layer.name}]"
@@ -270,10 +315,13 @@ def cross_checks(case: Case) -> list[CaseError]:
         if layer.material not in case.materials:
             errs.append(CaseError(f"{key}.material", layer.material,
                                   f"must be one of the materials: {sorted(case.materials)}"))
+        if layer.bottom is None or case.stratigraphy is not None:
+            upper = None  # surfaces from picks: the mesher applies and reports its rules
+            continue
         here = case._corner_bottoms(layer)
-        if any(b >= u for b, u in zip(here, upper, strict=True)):
+        if upper is not None and any(b >= u for b, u in zip(here, upper, strict=True)):
             errs.append(CaseError(f"{key}.bottom", f"{layer.bottom:g} m",
-                                  f"must lie below {upper_name} at every corner of the box"))
+                                  f"must lie below {upper_name} at every {where}"))
         upper_name, upper = f"layers[{layer.name}].bottom", here
     zmin = case.z_bottom_min
     faces = [fh.face for fh in case.fixed_heads]
@@ -293,7 +341,8 @@ def cross_checks(case: Case) -> list[CaseError]:
                                   f"must be later than start ({_time_text(s.start, tu)})"))
         if s.shape == "face_patch" and s.face is None:
             errs.append(CaseError(f"{key}.face", None,
-                                  f"a face_patch source needs a face: one of {list(FACE_NAMES)}"))
+                                  f"a face_patch source needs a face: one of "
+                                  f"{case.face_names()}"))
         if s.shape == "box":
             for axis in ("x", "y", "z"):
                 if getattr(s, axis) is None:
@@ -316,6 +365,10 @@ def cross_checks(case: Case) -> list[CaseError]:
         if not _in(o.y, y0, y1):
             errs.append(CaseError(f"{key}.y", f"{o.y:g} m",
                                   f"must lie in the box, [{y0:g}, {y1:g}] m"))
+        if _in(o.x, x0, x1) and _in(o.y, y0, y1) and not point_in_polygon(
+                o.x, o.y, verts, tol=1e-9 * max(x1 - x0, y1 - y0)):
+            errs.append(CaseError(f"{key}", f"x = {o.x:g} m, y = {o.y:g} m",
+                                  "must lie inside the model boundary"))
         if (o.z is None) == (o.screen is None):
             errs.append(CaseError(f"{key}", o.name, "give exactly one of z (a point) or screen"))
         if o.z is not None and not _in(o.z, zmin, top):

@@ -1,15 +1,20 @@
-"""Build the site mesh: gmsh triangulates the plan view with local refinement, then the plan
-mesh is extruded through the layer surfaces into prisms split into tetrahedra.
+"""Build the site mesh: gmsh triangulates the plan-view boundary polygon with local refinement,
+then the plan mesh is extruded through the layer surfaces into prisms split into tetrahedra.
 
 This module is the only user of gmsh. The prism split follows the global plan-node order
 (every quadrilateral side is cut from the lower-numbered node's bottom to the higher-numbered
-node's top), so neighbouring columns always agree and the mesh is conforming.
+node's top), so neighbouring columns always agree and the mesh is conforming. Where a unit
+has zero thickness the nodes of a column coincide; they are merged and the tetrahedra that
+collapse are dropped, which keeps the mesh conforming (each collapsed side quad becomes a
+triangle that both neighbouring columns cut the same way).
 """
 
 from __future__ import annotations
 
+import itertools
 import logging
 import math
+from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -18,36 +23,75 @@ from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
+from fe3d.mesh.quality import quality_report
 from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.mesh.stratigraphy import unit_surfaces
 
 if TYPE_CHECKING:
     from fe3d.case.schema import Case
 
-__all__ = ["build_mesh", "extrude", "feature_points", "plan_mesh"]
+__all__ = ["PlanMesh", "RefineZone", "build_mesh", "extrude", "feature_points", "plan_mesh"]
 
 logger = logging.getLogger(__name__)
 
 
+@dataclass(frozen=True)
+class RefineZone:
+    """Plan points near which the cell size is ``size`` within ``radius``, growing linearly
+    to the background size over four background cell sizes."""
+
+    points: list[tuple[float, float]]
+    size: float
+    radius: float
+
+
+@dataclass(frozen=True)
+class PlanMesh:
+    """A plan triangulation: nodes ``(2, n)``, triangles ``(3, m)``, named boundary edges
+    (name → node pairs ``(2, k)``) and the node of every embedded point (by its key)."""
+
+    xy: FloatArray
+    tri: IndexArray
+    edges: dict[str, IndexArray]
+    point_nodes: dict[str, int]
+
+
+def _project_to_edges(p: tuple[float, float], verts: list[tuple[float, float]],
+                      which: list[int]) -> tuple[float, float]:
+    best, out = math.inf, p
+    for i in which:
+        (ax, ay), (bx, by) = verts[i], verts[(i + 1) % len(verts)]
+        dx, dy = bx - ax, by - ay
+        t = max(0.0, min(1.0, ((p[0] - ax) * dx + (p[1] - ay) * dy) / (dx * dx + dy * dy)))
+        q = (ax + t * dx, ay + t * dy)
+        d = math.hypot(p[0] - q[0], p[1] - q[1])
+        if d < best:
+            best, out = d, q
+    return out
+
+
 def feature_points(case: Case) -> list[tuple[float, float]]:
-    """Plan points (x, y) [m] where the mesh must be fine: source outlines, observation points."""
+    """Plan points (x, y) [m] where the mesh must be fine: source outlines, observation points
+    and wells."""
     pts: list[tuple[float, float]] = []
-    (bx0, bx1), (by0, by1) = case.box.x, case.box.y
+    verts, names = case.outline()
+    bx0, bx1 = min(v[0] for v in verts), max(v[0] for v in verts)
+    by0, by1 = min(v[1] for v in verts), max(v[1] for v in verts)
     for s in case.sources:
         x0, x1 = s.x if s.x is not None else (bx0, bx1)
         y0, y1 = s.y if s.y is not None else (by0, by1)
-        if s.shape == "face_patch":
-            # a face patch lies on a lateral face or on top/bottom: refine along its trace
-            if s.face == "west":
-                x0 = x1 = bx0
-            elif s.face == "east":
-                x0 = x1 = bx1
-            elif s.face == "south":
-                y0 = y1 = by0
-            elif s.face == "north":
-                y0 = y1 = by1
-        pts += [(x0, y0), (x1, y0), (x1, y1), (x0, y1)]
+        corners = [(x0, y0), (x1, y0), (x1, y1), (x0, y1)]
+        if s.shape == "face_patch" and s.face in names:
+            # a patch on a lateral face: refine along its trace on that face
+            which = [i for i, n in enumerate(names) if n == s.face]
+            corners = [_project_to_edges(c, verts, which) for c in corners]
+        pts += corners
     pts += [(o.x, o.y) for o in case.observation_points]
-    # de-duplicate while keeping order
+    pts += [(w.x, w.y) for w in case.wells]
+    return _unique(pts)
+
+
+def _unique(pts: list[tuple[float, float]]) -> list[tuple[float, float]]:
     seen: set[tuple[float, float]] = set()
     out = []
     for p in pts:
@@ -58,27 +102,44 @@ def feature_points(case: Case) -> list[tuple[float, float]]:
     return out
 
 
+def _sample_polyline(points: list[tuple[float, float]], spacing: float,
+                     ) -> list[tuple[float, float]]:
+    out = [points[0]]
+    for (ax, ay), (bx, by) in itertools.pairwise(points):
+        k = max(1, math.ceil(math.hypot(bx - ax, by - ay) / spacing))
+        out += [(ax + (bx - ax) * j / k, ay + (by - ay) * j / k) for j in range(1, k + 1)]
+    return out
+
+
 def plan_mesh(
-    x: tuple[float, float],
-    y: tuple[float, float],
+    vertices: list[tuple[float, float]],
+    edge_names: list[str],
     *,
     cell_size: float,
-    fine_size: float | None,
-    fine_radius: float,
-    features: list[tuple[float, float]],
-) -> tuple[FloatArray, IndexArray]:
-    """Triangulate the plan rectangle with gmsh.
+    zones: list[RefineZone],
+    points: dict[str, tuple[float, float]],
+    outlines: list[list[tuple[float, float]]] | None = None,
+) -> PlanMesh:
+    """Triangulate a plan polygon with gmsh (Frontal-Delaunay, size fields).
 
-    Returns
-    -------
-    nodes, triangles
-        Plan coordinates [m], shape ``(2, n)``, and triangles, shape ``(3, m)``. Feature points
-        that lie in or on the rectangle are mesh nodes; the size is ``fine_size`` within
-        ``fine_radius`` of them and grows linearly to ``cell_size`` over four more cell sizes.
+    Parameters
+    ----------
+    vertices, edge_names
+        Counter-clockwise polygon [m] and the name of each edge (edge i: vertex i → i + 1).
+    cell_size
+        Background plan cell size [m].
+    zones
+        Refinement zones (minimum of their sizes applies).
+    points
+        Points that must be mesh nodes, by key (boreholes, wells, observation points, ...).
+    outlines
+        Closed polygons inside the boundary whose edges must be mesh edges (lens outlines).
     """
     import gmsh
 
-    (x0, x1), (y0, y1) = x, y
+    xs, ys = [v[0] for v in vertices], [v[1] for v in vertices]
+    scale = max(max(xs) - min(xs), max(ys) - min(ys))
+    tol = 1e-9 * scale
     was_initialized = gmsh.isInitialized()
     if not was_initialized:
         gmsh.initialize(interruptible=False)
@@ -86,42 +147,55 @@ def plan_mesh(
         gmsh.option.setNumber("General.Terminal", 0)
         gmsh.model.add("fe3d_plan")
         geo = gmsh.model.geo
-        corners = [geo.addPoint(x0, y0, 0), geo.addPoint(x1, y0, 0),
-                   geo.addPoint(x1, y1, 0), geo.addPoint(x0, y1, 0)]
-        lines = [geo.addLine(corners[i], corners[(i + 1) % 4]) for i in range(4)]
-        loop = geo.addCurveLoop(lines)
-        surf = geo.addPlaneSurface([loop])
-        tol = 1e-9 * max(x1 - x0, y1 - y0)
+        corner = [geo.addPoint(x, y, 0) for x, y in vertices]
+        nv = len(vertices)
+        lines = [geo.addLine(corner[i], corner[(i + 1) % nv]) for i in range(nv)]
+        surf = geo.addPlaneSurface([geo.addCurveLoop(lines)])
+        inner_lines = []
+        for poly in outlines or []:
+            pp = [geo.addPoint(x, y, 0) for x, y in poly]
+            inner_lines += [geo.addLine(pp[i], pp[(i + 1) % len(pp)]) for i in range(len(pp))]
         inner, on_edge = [], []
-        for px, py in features:
-            is_corner = (abs(px - x0) < tol or abs(px - x1) < tol) and (
-                abs(py - y0) < tol or abs(py - y1) < tol)
-            if is_corner:
+        for px, py in _unique(list(points.values())):
+            if any(math.hypot(px - vx, py - vy) < tol for vx, vy in vertices):
                 continue
-            on_boundary = abs(px - x0) < tol or abs(px - x1) < tol or abs(py - y0) < tol \
-                or abs(py - y1) < tol
-            (on_edge if on_boundary else inner).append(geo.addPoint(px, py, 0))
+            d = [_seg_dist((px, py), vertices[i], vertices[(i + 1) % nv]) for i in range(nv)]
+            i = int(np.argmin(d))
+            if d[i] < tol:
+                on_edge.append((geo.addPoint(px, py, 0), lines[i]))
+            else:
+                inner.append(geo.addPoint(px, py, 0))
+        zone_tags = [[geo.addPoint(x, y, 0) for x, y in z.points] for z in zones]
         geo.synchronize()
         if inner:
             gmsh.model.mesh.embed(0, inner, 2, surf)
-        _embed_on_edges(gmsh, on_edge, lines, (x0, x1, y0, y1), tol)
+        for tag, line in on_edge:
+            gmsh.model.mesh.embed(0, [tag], 1, line)
+        if inner_lines:
+            gmsh.model.mesh.embed(1, inner_lines, 2, surf)
         gmsh.option.setNumber("Mesh.MeshSizeExtendFromBoundary", 0)
         gmsh.option.setNumber("Mesh.MeshSizeFromPoints", 0)
         gmsh.option.setNumber("Mesh.MeshSizeFromCurvature", 0)
         gmsh.option.setNumber("Mesh.MeshSizeMax", cell_size)
         gmsh.option.setNumber("Mesh.Algorithm", 6)  # Frontal-Delaunay: well-shaped triangles
-        feature_tags = inner + on_edge
-        if fine_size is not None and feature_tags:
-            field = gmsh.model.mesh.field
+        field = gmsh.model.mesh.field
+        thresholds = []
+        for z, tags in zip(zones, zone_tags, strict=True):
+            if not tags or z.size >= cell_size:
+                continue
             dist = field.add("Distance")
-            field.setNumbers(dist, "PointsList", feature_tags)
+            field.setNumbers(dist, "PointsList", tags)
             thr = field.add("Threshold")
             field.setNumber(thr, "InField", dist)
-            field.setNumber(thr, "SizeMin", fine_size)
+            field.setNumber(thr, "SizeMin", z.size)
             field.setNumber(thr, "SizeMax", cell_size)
-            field.setNumber(thr, "DistMin", fine_radius)
-            field.setNumber(thr, "DistMax", fine_radius + 4.0 * cell_size)
-            field.setAsBackgroundMesh(thr)
+            field.setNumber(thr, "DistMin", z.radius)
+            field.setNumber(thr, "DistMax", z.radius + 4.0 * cell_size)
+            thresholds.append(thr)
+        if thresholds:
+            low = field.add("Min")
+            field.setNumbers(low, "FieldsList", thresholds)
+            field.setAsBackgroundMesh(low)
         gmsh.model.mesh.generate(2)
         gmsh.model.mesh.removeDuplicateNodes()
         tags, coords, _ = gmsh.model.mesh.getNodes()
@@ -139,41 +213,59 @@ def plan_mesh(
     xy = coords.reshape(-1, 3)[:, :2].T.copy()
     tri = index[tri_nodes.astype(np.int64)].reshape(-1, 3).T
     used = np.unique(tri)
-    if used.size != xy.shape[1]:  # drop orphan geometry points (none expected)
+    if used.size != xy.shape[1]:  # drop orphan geometry points (refinement-zone points)
         remap = np.full(xy.shape[1], -1, dtype=np.int64)
         remap[used] = np.arange(used.size)
         xy, tri = xy[:, used], remap[tri]
-    return xy, tri
+    edges = _name_boundary_edges(xy, tri, vertices, edge_names, tol)
+    from scipy.spatial import cKDTree
+
+    tree = cKDTree(xy.T)
+    point_nodes = {}
+    for key, p in points.items():
+        d, j = tree.query(p)
+        if d > 1e3 * tol:
+            msg = f"{key}: the point ({p[0]:g}, {p[1]:g}) m did not become a plan mesh node"
+            raise MeshError(msg)
+        point_nodes[key] = int(j)
+    return PlanMesh(xy=xy, tri=tri, edges=edges, point_nodes=point_nodes)
 
 
-def _embed_on_edges(gmsh: object, tags: list[int], lines: list[int],
-                    box: tuple[float, float, float, float], tol: float) -> None:
-    """Embed feature points that sit on the rectangle's edges into those edges."""
-    if not tags:
-        return
-    _x0, x1, y0, y1 = box
-    import gmsh as g
+def _seg_dist(p: tuple[float, float], a: tuple[float, float], b: tuple[float, float]) -> float:
+    dx, dy = b[0] - a[0], b[1] - a[1]
+    t = max(0.0, min(1.0, ((p[0] - a[0]) * dx + (p[1] - a[1]) * dy) / (dx * dx + dy * dy)))
+    return math.hypot(p[0] - a[0] - t * dx, p[1] - a[1] - t * dy)
 
-    for tag in tags:
-        px, py, _ = g.model.getValue(0, tag, [])
-        if abs(py - y0) < tol:
-            edge = lines[0]
-        elif abs(px - x1) < tol:
-            edge = lines[1]
-        elif abs(py - y1) < tol:
-            edge = lines[2]
-        else:
-            edge = lines[3]
-        g.model.mesh.embed(0, [tag], 1, edge)
+
+def _name_boundary_edges(xy: FloatArray, tri: IndexArray, vertices: list[tuple[float, float]],
+                         edge_names: list[str], tol: float) -> dict[str, IndexArray]:
+    """Boundary edges of the plan triangulation grouped by the name of the polygon edge
+    they lie on."""
+    e = np.sort(np.hstack([tri[[0, 1]], tri[[1, 2]], tri[[0, 2]]]), axis=0)
+    key, counts = np.unique(e, axis=1, return_counts=True)
+    bnd = key[:, counts == 1]
+    mid = 0.5 * (xy[:, bnd[0]] + xy[:, bnd[1]])  # (2, k)
+    v = np.array(vertices, dtype=float)
+    a, b = v, np.roll(v, -1, axis=0)  # (e, 2)
+    ab = b - a
+    rel = mid.T[:, None, :] - a[None]  # (k, e, 2)
+    tt = np.clip(np.einsum("kej,ej->ke", rel, ab) / np.einsum("ej,ej->e", ab, ab), 0, 1)
+    dist = np.linalg.norm(rel - tt[..., None] * ab[None], axis=2)
+    which = np.argmin(dist, axis=1)
+    if np.any(dist[np.arange(which.size), which] > 1e3 * tol):
+        msg = "a plan boundary edge does not lie on the boundary polygon"
+        raise MeshError(msg)
+    names = np.array(edge_names)[which]
+    return {n: bnd[:, names == n] for n in dict.fromkeys(edge_names)}
 
 
 def extrude(
     xy: FloatArray,
     tri: IndexArray,
-    surfaces: list[FloatArray],
-    n_sub: list[int],
-) -> tuple[FloatArray, IndexArray, IndexArray, IndexArray]:
-    """Extrude a plan triangulation through layer surfaces into tetrahedra.
+    z: FloatArray,
+    layer_unit: IndexArray,
+) -> tuple[FloatArray, IndexArray, IndexArray, IndexArray, IndexArray, IndexArray]:
+    """Extrude a plan triangulation through level surfaces into tetrahedra.
 
     Parameters
     ----------
@@ -181,45 +273,50 @@ def extrude(
         Plan nodes [m], shape ``(2, n2)``.
     tri
         Plan triangles, shape ``(3, m2)``.
-    surfaces
-        Elevations [m] of the top and of each layer bottom at the plan nodes, top down,
-        ``len(n_sub) + 1`` arrays of shape ``(n2,)``.
-    n_sub
-        Number of cell layers in each unit.
+    z
+        Elevation [m] of every level at every plan node, top down, shape ``(L, n2)``;
+        non-increasing down each column. Equal consecutive values are merged into one node.
+    layer_unit
+        Unit index of the cells between level ``l`` and ``l + 1``, shape ``(L - 1,)``.
 
     Returns
     -------
-    points, cells, cell_layer, node_level
-        Nodes ``(3, n)``, tetrahedra ``(4, m)``, unit index per cell, level index per node
-        (0 at the top).
+    points, cells, cell_unit, cell_level, cell_tri, node_level
+        Nodes ``(3, n)``; tetrahedra ``(4, m)``; unit, upper level and plan triangle of every
+        cell; the (topmost) level of every node.
     """
     n2 = xy.shape[1]
-    levels = []
-    for k, n in enumerate(n_sub):
-        top, bot = surfaces[k], surfaces[k + 1]
-        start = 0 if k == 0 else 1
-        levels += [top + (bot - top) * (j / n) for j in range(start, n + 1)]
-    z = np.array(levels)  # (n_levels, n2)
     n_levels = z.shape[0]
-    points = np.vstack([np.tile(xy, n_levels), z.reshape(1, -1)])
-    # sort each triangle's nodes by global plan index: the split rule needs v0 < v1 < v2
-    t = np.sort(tri, axis=0)
+    own = np.arange(n_levels * n2, dtype=np.int64).reshape(n_levels, n2)
+    canon = own.copy()
+    for lv in range(1, n_levels):
+        same = z[lv] == z[lv - 1]
+        canon[lv] = np.where(same, canon[lv - 1], own[lv])
+    t = np.sort(tri, axis=0)  # the split rule needs v0 < v1 < v2 (global plan order)
     v0, v1, v2 = t
-    cells, layer = [], []
-    level = 0
-    for k, n in enumerate(n_sub):
-        for _ in range(n):
-            b, u = (level + 1) * n2, level * n2  # bottom and upper node offsets
-            # bottom-of-lower-index to top-of-higher-index on every side quad
-            cells.append(np.stack([v0 + b, v1 + b, v2 + b, v2 + u]))
-            cells.append(np.stack([v0 + b, v1 + b, v1 + u, v2 + u]))
-            cells.append(np.stack([v0 + b, v0 + u, v1 + u, v2 + u]))
-            layer.append(np.full(3 * t.shape[1], k, dtype=np.int64))
-            level += 1
+    m2 = t.shape[1]
+    cells, unit, level, ptri = [], [], [], []
+    tri_id = np.arange(m2, dtype=np.int64)
+    for lv in range(n_levels - 1):
+        b, u = canon[lv + 1], canon[lv]  # bottom and upper node ids of this cell layer
+        # bottom-of-lower-index to top-of-higher-index on every side quad
+        for c in (np.stack([b[v0], b[v1], b[v2], u[v2]]),
+                  np.stack([b[v0], b[v1], u[v1], u[v2]]),
+                  np.stack([b[v0], u[v0], u[v1], u[v2]])):
+            s = np.sort(c, axis=0)
+            keep = np.all(s[1:] != s[:-1], axis=0)  # drop the tetrahedra that collapsed
+            cells.append(c[:, keep])
+            ptri.append(tri_id[keep])
+            unit.append(np.full(int(keep.sum()), layer_unit[lv], dtype=np.int64))
+            level.append(np.full(int(keep.sum()), lv, dtype=np.int64))
     cells_arr = np.hstack(cells)
-    cell_layer = np.concatenate(layer)
-    node_level = np.repeat(np.arange(n_levels), n2)
-    return points, cells_arr.astype(np.int64), cell_layer, node_level
+    used = np.unique(cells_arr)
+    remap = np.full(n_levels * n2, -1, dtype=np.int64)
+    remap[used] = np.arange(used.size)
+    lv_of, plan_of = np.divmod(used, n2)
+    points = np.vstack([xy[:, plan_of], z[lv_of, plan_of][None]])
+    return (points, remap[cells_arr], np.concatenate(unit), np.concatenate(level),
+            np.concatenate(ptri), lv_of.astype(np.int64))
 
 
 def _orient(points: FloatArray, cells: IndexArray) -> IndexArray:
@@ -234,35 +331,134 @@ def _orient(points: FloatArray, cells: IndexArray) -> IndexArray:
 def _boundary_triangles(cells: IndexArray) -> IndexArray:
     faces = np.hstack([cells[[0, 1, 2]], cells[[0, 1, 3]], cells[[0, 2, 3]], cells[[1, 2, 3]]])
     key = np.sort(faces, axis=0)
-    _, inv, counts = np.unique(key, axis=1, return_inverse=True, return_counts=True)
-    return key[:, counts[inv.ravel()] == 1]
+    n = np.int64(cells.max() + 1)
+    code = (key[0] * n + key[1]) * n + key[2]
+    order = np.argsort(code, kind="stable")
+    sc = code[order]
+    single = np.ones(sc.size, dtype=bool)
+    dup = sc[1:] == sc[:-1]
+    single[1:] &= ~dup
+    single[:-1] &= ~dup
+    return key[:, order[single]]
+
+
+def _node_areas(xy: FloatArray, tri: IndexArray) -> FloatArray:
+    a, b, c = (xy[:, tri[i]] for i in range(3))
+    area = 0.5 * np.abs((b[0] - a[0]) * (c[1] - a[1]) - (c[0] - a[0]) * (b[1] - a[1]))
+    out = np.zeros(xy.shape[1])
+    for i in range(3):
+        np.add.at(out, tri[i], area / 3.0)
+    return out
+
+
+def _refine_zones(case: Case) -> list[RefineZone]:
+    mc = case.mesh
+    zones = []
+    feats = feature_points(case)
+    if mc.fine_cell_size is not None and feats:
+        zones.append(RefineZone(points=feats, size=mc.fine_cell_size,
+                                radius=mc.fine_zone_radius))
+    for line in case.refinement_lines:
+        zones.append(RefineZone(points=_sample_polyline(
+            [(float(x), float(y)) for x, y in line.points], 0.5 * line.cell_size),
+            size=line.cell_size, radius=line.radius))
+    return zones
+
+
+def _embedded_points(case: Case) -> dict[str, tuple[float, float]]:
+    pts: dict[str, tuple[float, float]] = {}
+    for i, p in enumerate(feature_points(case)):
+        pts[f"feature {i}"] = p
+    if case.stratigraphy is not None:
+        for b in case.stratigraphy.boreholes:
+            pts[f"borehole {b.name}"] = (b.x, b.y)
+    for w in case.wells:
+        pts[f"well {w.name}"] = (w.x, w.y)
+    return pts
+
+
+def _sublayer_fractions(case: Case, surfaces: list[FloatArray], well_node: dict[str, int],
+                        lens_levels: dict[int, list[float]]) -> list[list[float]]:
+    """Level fractions (0 = unit top, 1 = unit base) of every unit, with a level through
+    each screen end at its well node and each lens top and bottom."""
+    needs: dict[int, list[float]] = {k: list(v) for k, v in lens_levels.items()}
+    for w in case.wells:
+        j = well_node[w.name]
+        ground, base = surfaces[0][j], surfaces[-1][j]
+        for top, bot in w.screens:
+            if top > ground + 1e-9 or bot < base - 1e-9:
+                msg = (f"wells[{w.name}].screens = [{top:g}, {bot:g}] m lies outside the model at "
+                       f"the well (ground {ground:.3f} m, base {base:.3f} m)")
+                raise MeshError(msg)
+            for ze in (top, bot):
+                for k in range(len(case.layers)):
+                    t, b = surfaces[k][j], surfaces[k + 1][j]
+                    if t > b and b - 1e-9 <= ze <= t + 1e-9:
+                        f = (t - ze) / (t - b)
+                        if 1e-6 < f < 1 - 1e-6:
+                            needs.setdefault(k, []).append(f)
+                        break
+    mc = case.mesh
+    out = []
+    for k, layer in enumerate(case.layers):
+        thick = float((surfaces[k] - surfaces[k + 1]).max())
+        if layer.sublayers is not None:
+            n = layer.sublayers
+        else:
+            dz = layer.cell_thickness or mc.layer_cell_thickness
+            n = max(1, math.ceil(thick / dz - 1e-9))
+        fr = [j / n for j in range(n + 1)]
+        claimed: set[int] = set()
+        for f in sorted(set(needs.get(k, []))):
+            free = [i for i in range(1, n) if i not in claimed]
+            if free:
+                i = min(free, key=lambda i: abs(fr[i] - f))
+                if abs(fr[i] - f) <= 0.5 / n:
+                    fr[i] = f
+                    claimed.add(i)
+                    continue
+            fr.append(f)
+        out.append(sorted(set(fr)))
+    return out
 
 
 def build_mesh(case: Case) -> SiteMesh:
-    """Mesh the case's model box and layers, refined near sources and observation points.
+    """Mesh the case's plan boundary and units, refined near sources, wells, observation
+    points and refinement lines; boreholes and wells are plan nodes.
 
     Raises
     ------
     MeshError
-        On inverted or zero-volume cells, or when gmsh fails.
+        On inverted or zero-volume cells, a screen outside the model, too few picks for the
+        interpolation, a model thinner than the minimum thickness, or a gmsh failure.
     """
-    (x0, x1), (y0, y1) = case.box.x, case.box.y
+    verts, names = case.outline()
     mc = case.mesh
-    xy, tri = plan_mesh(case.box.x, case.box.y, cell_size=mc.cell_size,
-                        fine_size=mc.fine_cell_size, fine_radius=mc.fine_zone_radius,
-                        features=feature_points(case))
-    surfaces = [np.full(xy.shape[1], case.box.top)]
-    n_sub = []
-    for layer in case.layers:
-        gx, gy = layer.bottom_gradient
-        bottom = layer.bottom + gx * (xy[0] - x0) + gy * (xy[1] - y0)
-        thick = surfaces[-1] - bottom
-        if np.any(thick <= 0):
-            msg = f"layer {layer.name!r} has zero or negative thickness somewhere in the box"
-            raise MeshError(msg)
-        n_sub.append(max(1, math.ceil(float(thick.max()) / mc.layer_cell_thickness - 1e-9)))
-        surfaces.append(bottom)
-    points, cells, cell_layer, node_level = extrude(xy, tri, surfaces, n_sub)
+    lens_polys = [[(float(x), float(y)) for x, y in lens.polygon] for lens in case.lenses]
+    plan = plan_mesh(verts, names, cell_size=mc.cell_size, zones=_refine_zones(case),
+                     points=_embedded_points(case), outlines=lens_polys)
+    xy, tri = plan.xy, plan.tri
+    node_area = _node_areas(xy, tri)
+    boreholes = {k.split(" ", 1)[1]: v for k, v in plan.point_nodes.items()
+                 if k.startswith("borehole ")}
+    surfaces, applied = unit_surfaces(case, xy, node_area, boreholes)
+    well_node = {k.split(" ", 1)[1]: v for k, v in plan.point_nodes.items()
+                 if k.startswith("well ")}
+    lens_in, lens_levels = _lens_nodes(case, xy, tri, surfaces)
+    fractions = _sublayer_fractions(case, surfaces, well_node, lens_levels)
+    z_rows, layer_unit, level_frac = [surfaces[0]], [], []
+    for k, fr in enumerate(fractions):
+        top, bot = surfaces[k], surfaces[k + 1]
+        for f in fr[1:]:
+            z_rows.append(bot.copy() if f == 1.0 else top + (bot - top) * f)
+            layer_unit.append(k)
+            level_frac.append((k, f))
+    z = np.array(z_rows)
+    z = _fit_lenses(case, z, layer_unit, level_frac, surfaces, lens_in)
+    points, cells, cell_unit, cell_level, cell_tri, node_level = extrude(
+        xy, tri, z, np.array(layer_unit, dtype=np.int64))
+    cell_unit = _tag_lenses(case, xy, tri, z, layer_unit, level_frac, cell_unit, cell_level,
+                            cell_tri, surfaces, lens_in)
     # renumber nodes by reverse Cuthill-McKee: 2-4x faster sparse products (SOLVER-NOTES)
     n = points.shape[1]
     rows = np.repeat(cells, 4, axis=0).ravel()
@@ -273,41 +469,174 @@ def build_mesh(case: Case) -> SiteMesh:
     inv[perm] = np.arange(n)
     points, cells, node_level = points[:, perm], inv[cells], node_level[perm]
     cells = _orient(points, cells)
-    site = SiteMesh(points=points, cells=cells, cell_layer=cell_layer,
-                    layer_names=tuple(layer.name for layer in case.layers),
-                    faces=_classify_faces(points, cells, node_level, (x0, x1, y0, y1)),
-                    info={"sublayers": dict(zip([ly.name for ly in case.layers], n_sub,
-                                                strict=True)),
-                          "plan_nodes": int(xy.shape[1]), "plan_triangles": int(tri.shape[1])})
-    vol = site.cell_volumes()
-    if np.any(vol <= 0):
-        bad = int(np.argmin(vol))
-        c = points[:, cells[:, bad]].mean(axis=1)
-        msg = (f"{int(np.sum(vol <= 0))} cells have zero or negative volume; the worst is near "
-               f"x={c[0]:.2f} m, y={c[1]:.2f} m, z={c[2]:.2f} m")
-        raise MeshError(msg)
+    base_z = surfaces[-1]
+    unit_names = tuple([ly.name for ly in case.layers] + [ls.name for ls in case.lenses])
+    faces = _classify_faces(points, cells, node_level, xy, base_z, plan.edges)
+    site = SiteMesh(points=points, cells=cells, cell_layer=cell_unit, layer_names=unit_names,
+                    faces=faces,
+                    info={"sublayers": {ly.name: len(fr) - 1 for ly, fr in
+                                        zip(case.layers, fractions, strict=True)},
+                          "plan_nodes": int(xy.shape[1]), "plan_triangles": int(tri.shape[1]),
+                          "surface_rules": [a.as_dict() for a in applied],
+                          "surface_rule_lines": [a.line() for a in applied]})
+    check_volumes(site)
+    site.info["quality"] = quality_report(site)
     logger.info("mesh: %d nodes, %d tetrahedra", site.n_nodes, site.n_cells)
     return site
 
 
-def _classify_faces(points: FloatArray, cells: IndexArray, node_level: IndexArray,
-                    box: tuple[float, float, float, float]) -> dict[str, IndexArray]:
-    tri = _boundary_triangles(cells)
-    lv = node_level[tri]
-    last = node_level.max()
-    x, y = points[0, tri], points[1, tri]
-    x0, x1, y0, y1 = box
-    tol = 1e-9 * max(x1 - x0, y1 - y0)
-    masks = {
-        "top": np.all(lv == 0, axis=0),
-        "bottom": np.all(lv == last, axis=0),
-        "west": np.all(np.abs(x - x0) < tol, axis=0),
-        "east": np.all(np.abs(x - x1) < tol, axis=0),
-        "south": np.all(np.abs(y - y0) < tol, axis=0),
-        "north": np.all(np.abs(y - y1) < tol, axis=0),
-    }
-    total = sum(int(m.sum()) for m in masks.values())
-    if total != tri.shape[1]:
-        msg = f"{tri.shape[1] - total} boundary triangles belong to no face of the box"
+def check_volumes(site: SiteMesh) -> None:
+    """Stop with a clear message if any cell has zero or negative volume."""
+    vol = site.cell_volumes()
+    scale = float(np.ptp(site.points, axis=1).max()) ** 3
+    bad = vol <= 1e-14 * scale
+    if np.any(bad):
+        i = int(np.argmin(vol))
+        c = site.points[:, site.cells[:, i]].mean(axis=1)
+        msg = (f"{int(bad.sum())} cells have zero or negative volume; the worst "
+               f"({vol[i]:.3g} m³, unit {site.layer_names[site.cell_layer[i]]!r}) is near "
+               f"x={c[0]:.2f} m, y={c[1]:.2f} m, z={c[2]:.2f} m")
         raise MeshError(msg)
-    return {name: tri[:, m] for name, m in masks.items()}
+
+
+def _classify_faces(points: FloatArray, cells: IndexArray, node_level: IndexArray,
+                    xy: FloatArray, base_z: FloatArray, edges: dict[str, IndexArray],
+                    ) -> dict[str, IndexArray]:
+    """Boundary triangles by face: vertical ones by the named plan edge under them, the rest
+    top (every node on the ground) or bottom (every node on the model base)."""
+    tri = _boundary_triangles(cells)
+    tree_xy = points[:2]
+    from scipy.spatial import cKDTree
+
+    plan_of = cKDTree(xy.T).query(tree_xy.T)[1]  # plan node of every mesh node
+    pn = plan_of[tri]
+    s = np.sort(pn, axis=0)
+    vertical = (s[0] == s[1]) | (s[1] == s[2])
+    on_top = np.all(node_level[tri] == 0, axis=0) & ~vertical
+    on_base = np.all(points[2, tri] == base_z[pn], axis=0) & ~vertical & ~on_top
+    out: dict[str, IndexArray] = {}
+    n2 = np.int64(xy.shape[1])
+    # plan edge of each vertical triangle: its two distinct plan nodes
+    lo = s[0]
+    hi = np.where(s[2] != s[0], s[2], s[1])
+    code = lo * n2 + hi
+    assigned = on_top | on_base
+    for name, e in edges.items():
+        ec = np.sort(e, axis=0)
+        m = vertical & np.isin(code, ec[0] * n2 + ec[1])
+        out[name] = tri[:, m]
+        assigned |= m
+    out["top"] = tri[:, on_top]
+    out["bottom"] = tri[:, on_base]
+    if not assigned.all():
+        msg = f"{int((~assigned).sum())} boundary triangles belong to no named face"
+        raise MeshError(msg)
+    return out
+
+
+def _lens_nodes(case: Case, xy: FloatArray, tri: IndexArray, surfaces: list[FloatArray],
+                ) -> tuple[list[np.ndarray], dict[int, list[float]]]:
+    """Plan nodes inside (or on) each lens outline and the host-unit level fractions its top
+    and bottom need (taken at the mean over those nodes)."""
+    from fe3d.case.geology import point_in_polygon
+
+    units = [ly.name for ly in case.layers]
+    masks, needs = [], {}
+    for lens in case.lenses:
+        poly = [(float(x), float(y)) for x, y in lens.polygon]
+        tol = 1e-7 * max(1.0, float(np.ptp(xy, axis=1).max()))
+        m = np.array([point_in_polygon(x, y, poly, tol=tol) for x, y in xy.T])
+        if not m.any():
+            msg = f"lenses[{lens.name}].polygon contains no plan mesh node"
+            raise MeshError(msg)
+        k = units.index(lens.host)
+        t, b = surfaces[k][m], surfaces[k + 1][m]
+        live = t > b
+        if not live.any():
+            msg = f"lenses[{lens.name}]: the host unit {lens.host!r} is absent under the lens"
+            raise MeshError(msg)
+        ft = float(np.mean(np.clip((t[live] - lens.top) / (t[live] - b[live]), 0, 1)))
+        fb = float(np.mean(np.clip((t[live] - lens.bottom) / (t[live] - b[live]), 0, 1)))
+        for f in (ft, fb):
+            if 0.02 < f < 0.98:
+                needs.setdefault(k, []).append(f)
+        masks.append(m)
+    return masks, needs
+
+
+def _host_rows(layer_unit: list[int], k: int) -> tuple[int, int]:
+    rows = [i for i, u in enumerate(layer_unit) if u == k]
+    return rows[0], rows[-1] + 1
+
+
+def _lens_rows(case: Case, li: int, z: FloatArray, layer_unit: list[int],
+               level_frac: list[tuple[int, float]], surfaces: list[FloatArray],
+               mask: np.ndarray) -> tuple[int, int, int, int, float, float]:
+    lens = case.lenses[li]
+    k = [ly.name for ly in case.layers].index(lens.host)
+    r0, r1 = _host_rows(layer_unit, k)
+    t, b = surfaces[k][mask], surfaces[k + 1][mask]
+    live = t > b
+    ft = float(np.mean(np.clip((t[live] - lens.top) / (t[live] - b[live]), 0, 1)))
+    fb = float(np.mean(np.clip((t[live] - lens.bottom) / (t[live] - b[live]), 0, 1)))
+    fr = [0.0] + [level_frac[i][1] for i in range(r0, r1)]
+
+    def row(f: float, lo: int, hi: int) -> int:
+        if f <= 0.02:
+            return r0
+        if f >= 0.98:
+            return r1
+        return r0 + min(range(lo, hi + 1), key=lambda i: abs(fr[i] - f))
+
+    rt = row(ft, 0, r1 - r0)
+    rb = max(row(fb, rt - r0, r1 - r0), rt + 1)
+    return k, r0, r1, rt, min(rb, r1), 0.0
+
+
+def _fit_lenses(case: Case, z: FloatArray, layer_unit: list[int],
+                level_frac: list[tuple[int, float]], surfaces: list[FloatArray],
+                lens_in: list[np.ndarray]) -> FloatArray:
+    """Move the host-unit levels at the lens nodes so that two levels follow the lens top and
+    bottom (clipped to the host unit); levels in between are spread linearly."""
+    z = z.copy()
+    for li, mask in enumerate(lens_in):
+        lens = case.lenses[li]
+        k, r0, r1, rt, rb, _ = _lens_rows(case, li, z, layer_unit, level_frac, surfaces, mask)
+        top, bot = z[r0, mask], z[r1, mask]
+        zt = np.clip(lens.top, bot, top) if rt != r0 else top
+        zb = np.clip(lens.bottom, bot, zt) if rb != r1 else bot
+        anchors = [(r0, top), (rt, zt), (rb, zb), (r1, bot)]
+        for (ra, za), (rb_, zb_) in itertools.pairwise(anchors):
+            for r in range(ra + 1, rb_):
+                w = (r - ra) / (rb_ - ra)
+                z[r, mask] = za + (zb_ - za) * w
+        if rt != r0:
+            z[rt, mask] = zt
+        if rb != r1:
+            z[rb, mask] = zb
+        del k
+    return z
+
+
+def _tag_lenses(case: Case, xy: FloatArray, tri: IndexArray, z: FloatArray,
+                layer_unit: list[int], level_frac: list[tuple[int, float]],
+                cell_unit: IndexArray, cell_level: IndexArray, cell_tri: IndexArray,
+                surfaces: list[FloatArray], lens_in: list[np.ndarray]) -> IndexArray:
+    """Give the lens's unit index to host cells inside its outline and between its levels."""
+    from fe3d.case.geology import point_in_polygon
+
+    out = cell_unit.copy()
+    n_layers = len(case.layers)
+    centre = xy[:, tri].mean(axis=1)  # (2, m2)
+    for li, mask in enumerate(lens_in):
+        lens = case.lenses[li]
+        poly = [(float(x), float(y)) for x, y in lens.polygon]
+        inside = np.array([point_in_polygon(x, y, poly, tol=0.0) for x, y in centre.T])
+        k, _r0, _r1, rt, rb, _ = _lens_rows(case, li, z, layer_unit, level_frac, surfaces,
+                                           mask)
+        sel = (cell_unit == k) & inside[cell_tri] & (cell_level >= rt) & (cell_level < rb)
+        if not sel.any():
+            msg = f"lenses[{lens.name}] holds no cell; make the mesh finer or the lens larger"
+            raise MeshError(msg)
+        out[sel] = n_layers + li
+    return out

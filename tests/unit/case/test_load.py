@@ -198,8 +198,15 @@ def test_several_problems_give_one_line_each() -> None:
 
 def test_empty_file_lists_every_missing_section() -> None:
     lines = error_lines("")
-    required = ["title", "box", "materials", "layers", "fixed_heads", "species", "time", "mesh"]
+    # box is optional since a boundary polygon may replace it (cross-checked below)
+    required = ["title", "materials", "layers", "fixed_heads", "species", "time", "mesh"]
     assert sorted(lines) == sorted(f"{k} = (missing): is required" for k in required)
+
+
+def test_neither_box_nor_boundary() -> None:
+    start, end = TINY_TEXT.index("[box]"), TINY_TEXT.index("[materials.sand]")
+    lines = error_lines(TINY_TEXT[:start] + TINY_TEXT[end:])
+    assert lines == ["box = (missing): is required (or give a boundary polygon)"]
 
 
 def test_unreadable_file(tmp_path: Path) -> None:
