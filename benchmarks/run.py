@@ -39,8 +39,7 @@ def run(cell: float, dz: float) -> dict[str, float]:
     site = build_mesh(case)
     t_mesh = time.perf_counter() - t
     t = time.perf_counter()
-    flow = solve_flow(site, [case.materials[ly.material] for ly in case.layers],
-                      case.fixed_heads)
+    flow = solve_flow(site, case)
     t_flow = time.perf_counter() - t
     t = time.perf_counter()
     stamps: list[float] = []

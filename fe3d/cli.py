@@ -124,7 +124,8 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool) -> int:
             bar.update(task, description=stage, completed=done / total if total else 0,
                        info=info)
 
-        summary = run_case(case, folder, progress=progress)
+        summary = run_case(case, folder, progress=progress,
+                           base_dir=case_path.resolve().parent)
     t = Table(title=f"breakthrough ({summary.n_nodes:,} nodes, {summary.n_cells:,} cells, "
                     f"{summary.wall_time:.1f} s)")
     for col in ("point", "species", f"peak [{cu}]", "peak time", "first above limit",

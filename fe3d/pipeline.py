@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 
 from fe3d.case.schema import Case
-from fe3d.flow.solve import FlowField, solve_flow
+from fe3d.flow.solve import FlowField, solve_flow, unit_materials
 from fe3d.mesh.build import build_mesh
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.post.figures import plot_breakthrough
@@ -29,18 +29,19 @@ logger = logging.getLogger(__name__)
 Progress = Callable[[str, float, float], None]
 
 
-def mesh_and_flow(case: Case) -> tuple[SiteMesh, FlowField]:
+def mesh_and_flow(case: Case, *, base_dir: Path | None = None) -> tuple[SiteMesh, FlowField]:
     """Build the mesh and solve the steady flow of ``case``."""
     site = build_mesh(case)
-    flow = solve_flow(site, [case.materials[layer.material] for layer in case.layers],
-                      case.fixed_heads)
+    flow = solve_flow(site, case, base_dir=base_dir)
     return site, flow
 
 
-def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None) -> RunSummary:
+def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
+             base_dir: Path | None = None) -> RunSummary:
     """Run every stage and write the run folder; returns the summary.
 
-    ``progress(stage, done, total)`` is called as work advances (for a progress bar).
+    ``progress(stage, done, total)`` is called as work advances (for a progress bar);
+    ``base_dir`` resolves relative file names in the case (usually the case file's folder).
     """
     started = time.perf_counter()
     tell = progress or (lambda _s, _d, _t: None)
@@ -50,9 +51,8 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None) -> 
     site = build_mesh(case)
     files = [p.name for p in write_mesh(site, out_dir)]
     tell("flow", 0, 1)
-    flow = solve_flow(site, [case.materials[layer.material] for layer in case.layers],
-                      case.fixed_heads)
-    mats = [case.materials[layer.material] for layer in case.layers]
+    flow = solve_flow(site, case, base_dir=base_dir)
+    mats, _ = unit_materials(case, site)
     theta = np.array([m.porosity for m in mats])[site.cell_layer]
     day = 86400.0
     write_field(site, out_dir / "flow.vtu", point_data={"head [m]": flow.head},

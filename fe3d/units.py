@@ -19,6 +19,7 @@ DIMENSIONS: dict[str, tuple[str, str]] = {
     "diffusivity": ("[length] ** 2 / [time]", "'1e-9 m^2/s'"),
     "flow_rate": ("[length] ** 3 / [time]", "'250 m^3/d'"),
     "leakance": ("1 / [time]", "'0.5 d^-1'"),
+    "angle": ("[]", "'30 deg'"),
 }
 
 

@@ -3,7 +3,7 @@ boundaries (streams, drains) and specified fluxes. Values are SI after validatio
 
 from __future__ import annotations
 
-from typing import Literal
+from typing import TYPE_CHECKING, Literal
 
 from pydantic import Field
 
@@ -17,8 +17,12 @@ from fe3d.case.schema_types import (
     Section,
     Velocity,
 )
+from fe3d.errors import CaseError
 
-__all__ = ["HeadDependent", "Recharge", "SpecifiedFlux", "Well"]
+if TYPE_CHECKING:
+    from fe3d.case.schema import Case
+
+__all__ = ["HeadDependent", "Recharge", "SpecifiedFlux", "Well", "hydro_checks"]
 
 
 class Well(Section):
@@ -66,3 +70,34 @@ class SpecifiedFlux(Section):
 
     face: Name
     flux: Velocity
+
+
+def hydro_checks(case: Case) -> list[CaseError]:
+    """Cross-section rules for wells, recharge, head-dependent zones and specified fluxes."""
+    from fe3d.case.geology import point_in_polygon
+
+    errs: list[CaseError] = []
+    verts, _ = case.outline()
+    zmin, top = case.z_bottom_min, case.z_top
+    names = [w.name for w in case.wells]
+    for w in case.wells:
+        key = f"wells[{w.name}]"
+        if names.count(w.name) > 1:
+            errs.append(CaseError(f"{key}.name", w.name, "well names must be unique"))
+        if not point_in_polygon(w.x, w.y, verts, tol=1e-9):
+            errs.append(CaseError(key, f"x = {w.x:g} m, y = {w.y:g} m",
+                                  "must lie inside the model boundary"))
+        for i, (t, b) in enumerate(w.screens):
+            if not (t > b and zmin - 1e-9 <= b and t <= top + 1e-9):
+                errs.append(CaseError(f"{key}.screens[{i}]", f"[{t:g}, {b:g}] m",
+                                      f"must be [top, bottom] with top > bottom inside the "
+                                      f"model, [{zmin:g}, {top:g}] m"))
+        if w.kind != "observation" and w.rate <= 0:
+            errs.append(CaseError(f"{key}.rate", f"{w.rate:g} m^3/s",
+                                  f"an {w.kind} well needs a rate greater than zero"))
+    faces = case.face_names()
+    for i, sf in enumerate(case.specified_fluxes):
+        if sf.face not in faces:
+            errs.append(CaseError(f"specified_fluxes[{i}].face", sf.face,
+                                  f"must be one of the faces: {faces}"))
+    return errs

@@ -8,7 +8,7 @@ the key path of the offending value.
 from __future__ import annotations
 
 import math
-from typing import Annotated, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import AfterValidator, Field
 
@@ -25,8 +25,9 @@ from fe3d.case.geology import (
     plan_outline,
     point_in_polygon,
 )
-from fe3d.case.hydro import HeadDependent, Recharge, SpecifiedFlux, Well
+from fe3d.case.hydro import HeadDependent, Recharge, SpecifiedFlux, Well, hydro_checks
 from fe3d.case.schema_types import (
+    Angle,
     Concentration,
     Diffusivity,
     Fraction,
@@ -88,6 +89,9 @@ class Material(_Section):
     vertical_dispersivity: NonNegativeLength | None = None
     diffusion_coefficient: Diffusivity = 0.0
     tortuosity: Fraction = 1.0
+    conductivity_strike: Angle = 0.0
+    conductivity_dip: Angle = 0.0
+    conductivity_file: str | None = None
 
     @property
     def k_vertical(self) -> float:
@@ -126,6 +130,13 @@ class FixedHead(_Section):
 
     face: Name
     head: Length
+    head_gradient: tuple[float, float, float] = (0.0, 0.0, 0.0)
+    reference_point: tuple[Length, Length, Length] = (0.0, 0.0, 0.0)
+
+    def head_at(self, points: Any) -> Any:
+        """Head [m] at points ``(3, k)``: head + gradient · (point − reference_point)."""
+        g, r = self.head_gradient, self.reference_point
+        return self.head + sum(g[i] * (points[i] - r[i]) for i in range(3))
 
 
 class Species(_Section):
@@ -397,4 +408,5 @@ def cross_checks(case: Case) -> list[CaseError]:
     if m.fine_cell_size is not None and m.fine_cell_size > m.cell_size:
         errs.append(CaseError("mesh.fine_cell_size", f"{m.fine_cell_size:g} m",
                               f"must not exceed mesh.cell_size ({m.cell_size:g} m)"))
+    errs += hydro_checks(case)
     return errs

@@ -68,6 +68,7 @@ Range = tuple[Length, Length]
 PlanPoint = tuple[Length, Length]
 PlanPolygon = Annotated[list[PlanPoint], Field(min_length=3)]
 Velocity = Annotated[float, _quantity("velocity")]
+Angle = Annotated[float, _quantity("angle")]
 PositiveRate = Annotated[float, _quantity("flow_rate"), AfterValidator(_non_negative)]
 PositiveLeakance = Annotated[float, _quantity("leakance"), AfterValidator(_positive)]
 

@@ -1,33 +1,45 @@
-"""solve_flow: steady confined Darcy flow, Darcy flux per cell and the boundary budget."""
+"""solve_flow: steady confined Darcy flow with fixed heads, fluxes, recharge, head-dependent
+boundaries and wells; Darcy flux per cell and an item-by-item water budget."""
 
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
+import scipy.sparse as sp
 from skfem import Basis, ElementTetP1, asm, condense
 
 from fe3d._typing import FloatArray, IndexArray
-from fe3d.case.schema import FixedHead, Material
-from fe3d.errors import CaseError
+from fe3d.case.schema import Case, Material
+from fe3d.errors import CaseError, SolverError
+from fe3d.flow.boundaries import in_polygon, lumped_face_weights
+from fe3d.flow.conductivity import conductivity_tensors
 from fe3d.flow.forms import conductance
 from fe3d.linalg import solve_spd
 from fe3d.mesh.geometry import p1_gradients
+from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
 
-__all__ = ["BoundaryFlow", "FlowField", "conductivity_per_cell", "solve_flow"]
+__all__ = ["BoundaryFlow", "FlowField", "solve_flow", "unit_materials"]
 
 logger = logging.getLogger(__name__)
 
 
 @dataclass(frozen=True)
 class BoundaryFlow:
-    """Water entering and leaving through one boundary [m³/s] (both ≥ 0)."""
+    """Water entering and leaving through one budget item [m³/s] (both ≥ 0)."""
 
     name: str
+    kind: str
     inflow: float
     outflow: float
+
+    @property
+    def net(self) -> float:
+        """Inflow minus outflow [m³/s]."""
+        return self.inflow - self.outflow
 
 
 @dataclass(frozen=True)
@@ -41,11 +53,18 @@ class FlowField:
     darcy_flux
         Darcy flux q = −K∇h per cell [m/s], shape ``(3, n_cells)``.
     conductivity
-        Principal conductivities (K_x, K_y, K_z) per cell [m/s], shape ``(3, n_cells)``.
+        Principal conductivities (K_h, K_h, K_v) per cell [m/s], shape ``(3, n_cells)``.
     budget
-        Inflow and outflow per boundary.
+        Inflow and outflow per budget item (fixed-head face, flux face, recharge zone,
+        head-dependent zone, well).
     fixed_head_nodes
-        Boundary name → node ids where the head is fixed.
+        Face name → node ids where the head is fixed.
+    exchange
+        Budget item name → nodal inflow [m³/s] (negative: outflow) of every item other than
+        the fixed heads (wells, recharge, fluxes, head-dependent zones), shape ``(n_nodes,)``.
+    well_heads
+        Well name → head in the well [m]: the conductivity-weighted mean of the nodal head
+        along its screens (mesh-scale, not corrected to the well radius).
     """
 
     head: FloatArray
@@ -53,6 +72,9 @@ class FlowField:
     conductivity: FloatArray
     budget: tuple[BoundaryFlow, ...]
     fixed_head_nodes: dict[str, IndexArray]
+    well_heads: dict[str, float] = field(default_factory=dict)
+    exchange: dict[str, FloatArray] = field(default_factory=dict)
+    solver_iterations: int = 0
 
     @property
     def total_inflow(self) -> float:
@@ -71,65 +93,170 @@ class FlowField:
         return abs(self.total_inflow - self.total_outflow) / scale if scale > 0 else 0.0
 
 
-def conductivity_per_cell(site: SiteMesh, layer_materials: list[Material]) -> FloatArray:
-    """(K_h, K_h, K_v) of every cell from its unit's material [m/s], shape ``(3, n_cells)``."""
-    kh = np.array([m.horizontal_conductivity for m in layer_materials])[site.cell_layer]
-    kv = np.array([m.k_vertical for m in layer_materials])[site.cell_layer]
-    return np.vstack([kh, kh, kv])
+def unit_materials(case: Case, site: SiteMesh) -> tuple[list[Material], list[str]]:
+    """Material of every unit of the mesh, in ``site.layer_names`` order, and its name."""
+    by_name = {layer.name: layer.material for layer in case.layers}
+    for lens in getattr(case, "lenses", []) or []:
+        by_name[lens.name] = lens.material
+    mats, keys = [], []
+    for name in site.layer_names:
+        mat = by_name.get(name)
+        if mat is None or mat not in case.materials:
+            raise CaseError(f"layers[{name}].material", mat, "must name a defined material")
+        mats.append(case.materials[mat])
+        keys.append(mat)
+    return mats, keys
 
 
-def solve_flow(site: SiteMesh, layer_materials: list[Material],
-               fixed_heads: list[FixedHead]) -> FlowField:
-    """Solve ∇·(K∇h) = 0 with fixed heads on named faces; no-flow elsewhere (theory.md F1–F3).
+def _split(f: FloatArray) -> tuple[float, float]:
+    return float(np.clip(f, 0, None).sum()), float(np.clip(-f, 0, None).sum())
+
+
+def solve_flow(
+    site: SiteMesh, case: Case, *, base_dir: Path | None = None,
+    extra_fixed: dict[str, tuple[IndexArray, FloatArray]] | None = None,
+) -> FlowField:
+    """Solve ∇·(K∇h) + sources = 0 (theory.md F1–F7).
 
     Parameters
     ----------
     site
         The mesh.
-    layer_materials
-        Material of each unit, in the order of ``site.layer_names``.
-    fixed_heads
-        Fixed heads; a node on two fixed-head faces takes the first one listed.
+    case
+        Materials, fixed heads, specified fluxes, recharge, head-dependent zones and wells.
+    base_dir
+        Folder against which relative file names in the case (conductivity fields) resolve.
+    extra_fixed
+        For scripting and verification: name → (node ids, heads [m]) fixed in addition to
+        the case's fixed heads, and taking precedence over them where both apply.
 
     Raises
     ------
     CaseError
-        When no fixed head is given (the problem would be singular).
+        When nothing fixes the head level (no fixed head and no head-dependent boundary).
     """
-    if not fixed_heads:
-        msg = "at least one fixed head is needed, otherwise the head is undetermined"
-        msg_0 = "fixed_heads"
-        raise CaseError(msg_0, "[]", msg)
+    if not case.fixed_heads and not case.head_dependent and not extra_fixed:
+        msg = ("at least one fixed head or head-dependent boundary is needed, otherwise the "
+               "head is undetermined")
+        raise CaseError("fixed_heads", "[]", msg)
+    n = site.n_nodes
+    p = site.points
+    mats, mat_names = unit_materials(case, site)
+    tensors, principal = conductivity_tensors(p, site.cells, site.cell_layer, mats,
+                                              unit_keys=[f"materials.{m}" for m in mat_names],
+                                              base_dir=base_dir)
     mesh = site.skfem_mesh()
     basis = Basis(mesh, ElementTetP1())
-    kcell = conductivity_per_cell(site, layer_materials)
     nqp = basis.X.shape[1]
-    K = np.zeros((3, 3, site.n_cells, nqp))
-    for i in range(3):
-        K[i, i] = kcell[i][:, None]
-    A = asm(conductance, basis, K=K).tocsr()
-    head = np.zeros(site.n_nodes)
-    is_fixed = np.zeros(site.n_nodes, dtype=bool)
+    A = asm(conductance, basis, K=np.repeat(tensors[..., None], nqp, axis=-1)).tocsr()
+
+    # Dirichlet: fixed heads; a node on two fixed-head faces takes the first listed
+    head = np.zeros(n)
+    is_fixed = np.zeros(n, dtype=bool)
     owner: dict[str, IndexArray] = {}
-    for fh in fixed_heads:
+    for name, (nodes, values) in (extra_fixed or {}).items():  # scripted heads come first
+        keep = ~is_fixed[nodes]
+        head[nodes[keep]] = values[keep]
+        is_fixed[nodes[keep]] = True
+        owner[name] = nodes[keep]
+    for fh in case.fixed_heads:
         nodes = site.face_nodes(fh.face)
         nodes = nodes[~is_fixed[nodes]]
-        head[nodes] = fh.head
+        head[nodes] = fh.head_at(p[:, nodes])
         is_fixed[nodes] = True
         owner[fh.face] = nodes
+
+    # fixed nodal inflows [m³/s]: specified fluxes, recharge, wells
+    items: list[tuple[str, str, FloatArray]] = []
+    for sf in case.specified_fluxes:
+        w = lumped_face_weights(p, site.faces[sf.face], n)
+        items.append((f"flux_{sf.face}", "specified flux", sf.flux * w))
+    top = site.faces["top"]
+    top_c = p[:, top].mean(axis=1)
+    for rc in case.recharge:
+        mask = None if rc.zone is None else in_polygon(top_c[0], top_c[1], rc.zone)
+        if mask is not None and not mask.any():
+            raise CaseError(f"recharge[{rc.name}].zone", "(polygon)",
+                            "must cover at least one top face of the mesh")
+        items.append((rc.name, "recharge", rc.rate * lumped_face_weights(p, top, n, mask)))
+    well_ops = {}
+    for well in case.wells:
+        spacing = max(case.mesh.layer_cell_thickness / 4.0, 0.05)
+        pts = np.hstack([screen_points(well.x, well.y, t, b, spacing=spacing)
+                         for t, b in well.screens])
+        op, _ = sample_operator(mesh, pts, weights_per_cell=principal[0])
+        well_ops[well.name] = op
+        sign = {"extraction": -1.0, "injection": 1.0, "observation": 0.0}[well.kind]
+        items.append((well.name, "well", sign * well.rate * np.asarray(op.todense()).ravel()))
+    b = sum((f for _, _, f in items), np.zeros(n))
+
+    # head-dependent zones (lumped): inflow = L a_i (stage − h_i); drains only remove water
+    robin = []
+    for hd in case.head_dependent:
+        mask = in_polygon(top_c[0], top_c[1], hd.zone)
+        if not mask.any():
+            raise CaseError(f"head_dependent[{hd.name}].zone", "(polygon)",
+                            "must cover at least one top face of the mesh")
+        cell_bottom = _top_cell_bottom(site, top[:, mask])
+        if hd.stage < cell_bottom:
+            raise CaseError(f"head_dependent[{hd.name}].stage", f"{hd.stage:g} m",
+                            f"must not lie below the bottom of the top cells under the zone "
+                            f"({cell_bottom:.3g} m)")
+        la = hd.leakance * lumped_face_weights(p, top, n, mask)
+        la[is_fixed] = 0.0
+        robin.append((hd, la))
+
+    active = [np.ones(n, dtype=bool) for _ in robin]
     fixed = np.nonzero(is_fixed)[0]
-    A_ff, b_f, _, free = condense(A, np.zeros(site.n_nodes), x=head, D=fixed)
-    head[free] = solve_spd(A_ff.tocsr(), b_f)
-    grads, _ = p1_gradients(site.points, site.cells)
+    iterations = 0
+    for _ in range(50):
+        diag = np.zeros(n)
+        rhs = b.copy()
+        for (hd, la), act in zip(robin, active, strict=True):
+            diag += la * act
+            rhs += la * act * hd.stage
+        M = (A + sp.diags(diag)).tocsr()
+        if fixed.size:
+            M_ff, b_f, _, free = condense(M, rhs, x=head, D=fixed)
+            head[free] = solve_spd(M_ff.tocsr(), b_f)
+        else:
+            head = solve_spd(M, rhs)
+        iterations += 1
+        new_active = [np.ones(n, dtype=bool) if hd.kind == "river" else head > hd.stage
+                      for hd, _ in robin]
+        if all(np.array_equal(a1, a2) for a1, a2 in zip(active, new_active, strict=True)):
+            break
+        active = new_active
+    else:
+        msg = "drain activity did not settle in 50 iterations"
+        raise SolverError(msg)
+
+    for (hd, la), act in zip(robin, active, strict=True):
+        items.append((hd.name, hd.kind, la * act * (hd.stage - head)))
+    grads, _ = p1_gradients(p, site.cells)
     grad_h = np.einsum("eik,ie->ke", grads, head[site.cells])
-    q = -kcell * grad_h
-    # consistent boundary flux: the residual of the fixed-head rows (theory.md F4)
-    reaction = A @ head
-    budget = tuple(BoundaryFlow(name, float(np.clip(reaction[n], 0, None).sum()),
-                                float(np.clip(-reaction[n], 0, None).sum()))
-                   for name, n in owner.items())
-    field = FlowField(head=head, darcy_flux=q, conductivity=kcell, budget=budget,
-                      fixed_head_nodes=owner)
+    q = -np.einsum("ije,je->ie", tensors, grad_h)
+    # consistent fixed-head flux: what the fixed rows need beyond every other term (F4)
+    other = sum((f for _, _, f in items), np.zeros(n))
+    reaction = A @ head - other
+    budget = [BoundaryFlow(name, "fixed head", *_split(reaction[nodes]))
+              for name, nodes in owner.items()]
+    budget += [BoundaryFlow(name, kind, *_split(f)) for name, kind, f in items]
+    well_heads = {name: float((op @ head)[0]) for name, op in well_ops.items()}
+    result = FlowField(head=head, darcy_flux=q, conductivity=principal, budget=tuple(budget),
+                       fixed_head_nodes=owner, well_heads=well_heads,
+                       exchange={name: f for name, _, f in items},
+                       solver_iterations=iterations)
     logger.info("flow: in %.4e m3/s, out %.4e m3/s, discrepancy %.2e",
-                field.total_inflow, field.total_outflow, field.discrepancy)
-    return field
+                result.total_inflow, result.total_outflow, result.discrepancy)
+    return result
+
+
+def _top_cell_bottom(site: SiteMesh, tri: IndexArray) -> float:
+    """Highest bottom elevation [m] of the cells under the given top triangles."""
+    z = site.points[2]
+    top_nodes = np.unique(tri)
+    is_top = np.zeros(site.n_nodes, dtype=bool)
+    is_top[top_nodes] = True
+    touching = np.any(is_top[site.cells], axis=0)
+    return float(np.max(z[site.cells[:, touching]].min(axis=0)))

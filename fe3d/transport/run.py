@@ -25,7 +25,7 @@ from skfem import BilinearForm, ElementTetP1, FacetBasis, InteriorBasis, asm
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import Case, Source, Species
 from fe3d.errors import MeshError
-from fe3d.flow.solve import FlowField
+from fe3d.flow.solve import FlowField, unit_materials
 from fe3d.linalg import LinearSolver
 from fe3d.mesh.geometry import p1_gradients
 from fe3d.mesh.locate import sample_operator, screen_points
@@ -152,8 +152,7 @@ def run_transport(
     basis = InteriorBasis(mesh, ElementTetP1())
     nqp = basis.X.shape[1]
     n = site.n_nodes
-    mats = [case.materials[layer.material] for layer in case.layers]
-    mat_names = [layer.material for layer in case.layers]
+    mats, mat_names = unit_materials(case, site)
     lay = site.cell_layer
     theta = np.array([m.porosity for m in mats])[lay]
     rho_b = np.array([m.bulk_density for m in mats])[lay]
@@ -192,6 +191,11 @@ def run_transport(
         ow = {f: asm(forms.outflow_weight, fb, qn=qn_out[f]) for f, fb in facet_bases.items()}
         om = sum((asm(forms.outflow, fb, qn=qn_out[f]) for f, fb in facet_bases.items()),
                  sp.csr_matrix((n, n)))
+        for name, f in flow.exchange.items():
+            out_rate = np.clip(-f, 0.0, None)  # water leaving [m³/s] per node
+            if np.any(out_rate > 0):
+                ow[name] = out_rate
+                om = om + sp.diags(out_rate)
         species.append(_Species(
             name=name, spec=spec,
             coef={"m": m, "k": k, "a": a, "kappa": kappa, "sigma": k / m,
@@ -241,7 +245,7 @@ def run_transport(
 
     conc = {s.name: np.full(n, s.spec.initial_concentration) for s in species}
     acc = {s.name: {"input": 0.0, "decayed": 0.0,
-                    "outflow": dict.fromkeys(outflow_faces, 0.0)} for s in species}
+                    "outflow": dict.fromkeys(s.outflow_weights, 0.0)} for s in species}
     initial = {s.name: float((s.w_dissolved + s.w_sorbed) @ conc[s.name]) for s in species}
     hist_t = [0.0]
     hist = {s.name: [probe @ conc[s.name]] for s in species}

@@ -1,0 +1,120 @@
+"""Hydraulic conductivity tensor per cell: anisotropic units, dipping bedding, file fields."""
+
+from __future__ import annotations
+
+import csv
+import math
+import re
+from pathlib import Path
+
+import numpy as np
+
+from fe3d._typing import FloatArray, IndexArray
+from fe3d.case.schema import Material
+from fe3d.errors import CaseError
+from fe3d.units import to_si
+
+__all__ = ["bedding_normal", "conductivity_tensors", "read_point_field"]
+
+
+def bedding_normal(strike: float, dip: float) -> FloatArray:
+    """Unit normal (x east, y north, z up) of bedding with the given strike and dip [rad].
+
+    Strike is the azimuth of the strike line, clockwise from north; the beds dip by ``dip``
+    towards the azimuth strike + 90° (right-hand rule). Horizontal bedding gives (0, 0, 1).
+    """
+    az = strike + 0.5 * math.pi
+    return np.array([math.sin(dip) * math.sin(az), math.sin(dip) * math.cos(az),
+                     math.cos(dip)])
+
+
+def read_point_field(path: Path, key: str) -> tuple[FloatArray, FloatArray]:
+    """Read a CSV of points and conductivities with units in the header.
+
+    The header must be ``x [m], y [m], z [m], conductivity [m/d]`` (any length and velocity
+    units). Returns points [m] ``(k, 3)`` and conductivity [m/s] ``(k,)``.
+    """
+    try:
+        with path.open(newline="", encoding="utf-8") as fh:
+            rows = list(csv.reader(fh))
+    except OSError as exc:
+        raise CaseError(key, str(path), f"cannot be read ({exc.strerror})") from None
+    if len(rows) < 2 or len(rows[0]) != 4:
+        raise CaseError(key, str(path), "must be a CSV with header 'x [m], y [m], z [m], "
+                        "conductivity [m/d]' and at least one row")
+    units = []
+    for i, (col, dim) in enumerate(zip(rows[0], ("length",) * 3 + ("velocity",), strict=True)):
+        m = re.search(r"\[(.+)\]", col)
+        if m is None:
+            raise CaseError(key, str(path), f"column {i + 1} header {col.strip()!r} needs its "
+                            "unit in brackets, e.g. 'x [m]' or 'conductivity [m/d]'")
+        try:
+            units.append(to_si(f"1 {m.group(1).strip()}", dim))
+        except ValueError as exc:
+            raise CaseError(key, str(path), f"column {i + 1} unit: {exc}") from None
+    try:
+        data = np.array([[float(v) for v in r] for r in rows[1:] if r], dtype=float)
+    except ValueError:
+        raise CaseError(key, str(path), "every data row must hold four numbers") from None
+    data = data * np.array(units)
+    if np.any(data[:, 3] <= 0) or not np.all(np.isfinite(data)):
+        raise CaseError(key, str(path), "conductivities must be finite and greater than zero")
+    return data[:, :3], data[:, 3]
+
+
+def _interpolate_log(points: FloatArray, values: FloatArray, at: FloatArray) -> FloatArray:
+    """Linear interpolation of log K inside the points' hull, nearest neighbour outside."""
+    from scipy.interpolate import LinearNDInterpolator, NearestNDInterpolator
+
+    logk = np.log(values)
+    nearest = NearestNDInterpolator(points, logk)
+    if points.shape[0] >= 5:
+        try:
+            lin = LinearNDInterpolator(points, logk)(at)
+        except Exception:  # coplanar points: Qhull cannot build a 3D triangulation
+            lin = np.full(at.shape[0], np.nan)
+    else:
+        lin = np.full(at.shape[0], np.nan)
+    out = np.where(np.isnan(lin), nearest(at), lin)
+    return np.exp(out)
+
+
+def conductivity_tensors(
+    points: FloatArray, cells: IndexArray, cell_unit: IndexArray, unit_materials: list[Material],
+    *, unit_keys: list[str], base_dir: Path | None = None,
+) -> tuple[FloatArray, FloatArray]:
+    """Full conductivity tensor of every cell [m/s], shape ``(3, 3, n_cells)``.
+
+    K = K_h I + (K_v − K_h) n nᵀ with n the bedding normal (theory.md F1). Where a unit's
+    material names a ``conductivity_file``, K_h of each cell is that field interpolated (in
+    log K) at the cell centre and K_v keeps the material's K_v/K_h ratio.
+
+    Returns
+    -------
+    tensors, principal
+        The tensors and (K_h, K_h, K_v) per cell, shape ``(3, n_cells)``.
+    """
+    n = cells.shape[1]
+    kh = np.empty(n)
+    kv = np.empty(n)
+    normals = np.empty((3, n))
+    centres = None
+    for u, mat in enumerate(unit_materials):
+        sel = cell_unit == u
+        if not np.any(sel):
+            continue
+        ratio = mat.k_vertical / mat.horizontal_conductivity
+        if mat.conductivity_file is not None:
+            if centres is None:
+                centres = points[:, cells].mean(axis=1).T
+            path = Path(mat.conductivity_file)
+            if not path.is_absolute() and base_dir is not None:
+                path = base_dir / path
+            pts, vals = read_point_field(path, f"{unit_keys[u]}.conductivity_file")
+            kh[sel] = _interpolate_log(pts, vals, centres[sel])
+        else:
+            kh[sel] = mat.horizontal_conductivity
+        kv[sel] = ratio * kh[sel]
+        normals[:, sel] = bedding_normal(mat.conductivity_strike, mat.conductivity_dip)[:, None]
+    tensors = kh * np.eye(3)[:, :, None] + (kv - kh) * normals[:, None, :] * normals[None, :, :]
+    return tensors, np.vstack([kh, kh, kv])

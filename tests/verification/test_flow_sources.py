@@ -1,0 +1,189 @@
+"""Flow with wells, recharge and head-dependent boundaries against closed-form solutions.
+
+References
+----------
+- Thiem, G. (1906), *Hydrologische Methoden*, Gebhardt, Leipzig: steady confined flow to a
+  fully penetrating well, h(r) = H + Q/(2πT) ln(r/R), T = K b.
+- Freeze, R.A. & Cherry, J.A. (1979), *Groundwater*, Prentice-Hall: the strip aquifer between
+  two fixed heads with uniform recharge W (per unit area) in a confined layer of
+  transmissivity T: h(x) = h1 + (h2 − h1) x/L + W x (L − x)/(2T).
+- Bear, J. (1972), *Dynamics of Fluids in Porous Media*, Elsevier, ch. 5: the conductivity
+  tensor of a layered medium with bedding normal n is K_h I + (K_v − K_h) n nᵀ.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from fe3d.case.load import parse_case
+from fe3d.errors import CaseErrors
+from fe3d.flow.solve import solve_flow
+from fe3d.mesh.build import build_mesh
+
+pytestmark = pytest.mark.verification
+
+DAY = 86400.0
+BASE = """
+title = "flow check"
+[box]
+x = ["0 m", "{L} m"]
+y = ["0 m", "{W} m"]
+top = "0 m"
+[materials.aquifer]
+horizontal_conductivity = "{K} m/d"
+porosity = 0.3
+bulk_density = "1700 kg/m^3"
+longitudinal_dispersivity = "1 m"
+transverse_dispersivity = "0.1 m"
+{material_extra}
+[[layers]]
+name = "aquifer"
+material = "aquifer"
+bottom = "-{b} m"
+{extra}
+[species.tracer]
+limit = "1 mg/L"
+[time]
+end = "1 d"
+step = "1 d"
+[mesh]
+cell_size = "{h} m"
+fine_cell_size = "{hf} m"
+fine_zone_radius = "{rf} m"
+layer_cell_thickness = "{b} m"
+"""
+
+
+def _case(**kw):
+    values = {"L": 200, "W": 200, "K": 10.0, "b": 10.0, "h": 10.0, "hf": 10.0, "rf": 0.0,
+              "extra": "", "material_extra": ""}
+    values.update(kw)
+    return parse_case(BASE.format(**values))
+
+
+def test_thiem_drawdown_around_a_pumping_well():
+    """Head vs ln r within 1 % of the exact drawdown for r > three fine cell sizes from the
+    well (Thiem 1906); the fixed-head outer boundary carries the exact head on the box
+    sides."""
+    q, K, b = 500.0, 10.0, 10.0
+    extra = ('[[fixed_heads]]\nface = "west"\nhead = "20 m"\n'
+             '[[wells]]\nname = "PW"\nx = "100 m"\ny = "100 m"\nscreens = [["0 m", "-10 m"]]\n'
+             f'rate = "{q} m^3/d"\n'
+             '[[observation_points]]\nname = "PW_loc"\nx = "100 m"\ny = "100 m"\nz = "-5 m"\n')
+    case = _case(extra=extra, h=6.0, hf=1.0, rf=15.0)
+    site = build_mesh(case)
+    T = K * b / DAY
+    Q = q / DAY
+    H, R = 20.0, 100.0
+
+    def exact(x, y):
+        r = np.hypot(x - 100.0, y - 100.0)
+        return H + Q / (2 * math.pi * T) * np.log(r / R)
+
+    lateral = np.unique(np.hstack([site.face_nodes(f) for f in ("west", "east", "south",
+                                                                 "north")]))
+    flow = solve_flow(site, case, extra_fixed={
+        "ring": (lateral, exact(site.points[0, lateral], site.points[1, lateral]))})
+    x, y = site.points[0], site.points[1]
+    r = np.hypot(x - 100.0, y - 100.0)
+    # fine cell size 1 m at the well. Measured when written: 1.7 % at r > 2 m, 0.84 % at
+    # r > 3 m, 0.62 % at r > 4 m: the P1 point-sink error decays with r/h, and the issue's
+    # 1 % holds from three fine cells out, which docs/verification.md states.
+    sel = (r > 3.0 * 1.0) & (r < 90.0)
+    drawdown_exact = H - exact(x[sel], y[sel])  # relative to H at r = R
+    drawdown_num = H - flow.head[sel]
+    rel = np.abs(drawdown_num - drawdown_exact) / np.abs(drawdown_exact).max()
+    assert rel.max() <= 0.01, f"max relative drawdown error {rel.max():.3e}"
+    well = next(i for i in flow.budget if i.name == "PW")
+    assert well.outflow == pytest.approx(Q, rel=1e-12)
+    assert flow.discrepancy <= 1e-8
+    assert flow.well_heads["PW"] < exact(np.array([104.0]), np.array([100.0]))[0]
+
+
+def test_strip_aquifer_with_recharge_is_parabolic():
+    """h(x) = h1 + (h2 − h1)x/L + W x(L − x)/(2T) within 0.5 % of the head rise above the
+    linear profile plus the range (Freeze & Cherry 1979)."""
+    L, K, b, W = 500.0, 5.0, 20.0, 300.0  # W in mm/yr
+    extra = ('[[fixed_heads]]\nface = "west"\nhead = "30 m"\n'
+             '[[fixed_heads]]\nface = "east"\nhead = "28 m"\n'
+             f'[[recharge]]\nname = "rain"\nrate = "{W} mm/yr"\n')
+    case = _case(L=L, W=50, K=K, b=b, h=10.0, hf=10.0, extra=extra)
+    site = build_mesh(case)
+    flow = solve_flow(site, case)
+    w = W / 1000.0 / (365.25 * DAY)
+    T = K * b / DAY
+    x = site.points[0]
+    exact = 30.0 + (28.0 - 30.0) * x / L + w * x * (L - x) / (2 * T)
+    mound = w * L * L / (8 * T)
+    err = np.max(np.abs(flow.head - exact))
+    assert err <= 0.005 * (mound + 2.0), f"max head error {err:.3e} m, mound {mound:.3f} m"
+    rain = next(i for i in flow.budget if i.name == "rain")
+    assert rain.inflow == pytest.approx(w * L * 50.0, rel=1e-10)
+    assert flow.discrepancy <= 1e-8
+
+
+def test_dipping_bedding_rotates_the_conductivity_tensor():
+    """With strike 0° and dip 30° (beds dip east), K = K_h I + (K_v − K_h) n nᵀ, n =
+    (sin 30°, 0, cos 30°) (Bear 1972); a head gradient along x then drives a vertical flux."""
+    extra = ('[[fixed_heads]]\nface = "west"\nhead = "10 m"\n'
+             '[[fixed_heads]]\nface = "east"\nhead = "9 m"\n')
+    mat = ('vertical_conductivity = "1 m/d"\nconductivity_strike = "0 deg"\n'
+           'conductivity_dip = "30 deg"')
+    case = _case(L=100, W=20, K=10.0, h=10.0, extra=extra, material_extra=mat)
+    site = build_mesh(case)
+    flow = solve_flow(site, case)
+    n = np.array([math.sin(math.pi / 6), 0.0, math.cos(math.pi / 6)])
+    Kt = (10.0 * np.eye(3) + (1.0 - 10.0) * np.outer(n, n)) / DAY
+    assert np.all(np.abs(flow.darcy_flux[2]) > 0)
+    # the fixed-head faces and no-flow top/bottom make the field 2D; check the tensor through
+    # the flux of each cell against -K grad h computed from the same head
+    from fe3d.mesh.geometry import p1_gradients
+
+    g, _ = p1_gradients(site.points, site.cells)
+    grad_h = np.einsum("eik,ie->ke", g, flow.head[site.cells])
+    np.testing.assert_allclose(flow.darcy_flux, -Kt @ grad_h, rtol=1e-10, atol=1e-16)
+    assert flow.discrepancy <= 1e-8
+
+
+def test_drain_only_removes_water_and_river_both_ways():
+    """A drain above the water table carries no flow; a river below it gains water; the
+    budget closes (design target ≤ 1e-8, common practice, no source)."""
+    zone = '[["40 m", "0 m"], ["60 m", "0 m"], ["60 m", "50 m"], ["40 m", "50 m"]]'
+    extra = ('[[fixed_heads]]\nface = "west"\nhead = "-1 m"\n'
+             '[[fixed_heads]]\nface = "east"\nhead = "-1 m"\n'
+             f'[[head_dependent]]\nname = "ditch"\nkind = "drain"\nstage = "-0.5 m"\n'
+             f'leakance = "1 d^-1"\nzone = {zone}\n')
+    case = _case(L=100, W=50, extra=extra)
+    flow = solve_flow(build_mesh(case), case)
+    ditch = next(i for i in flow.budget if i.name == "ditch")
+    assert ditch.inflow == 0.0
+    assert ditch.outflow == 0.0
+    np.testing.assert_allclose(flow.head, -1.0, atol=1e-12)
+    river = _case(L=100, W=50, extra=extra.replace('"drain"', '"river"'))
+    flow = solve_flow(build_mesh(river), river)
+    r = next(i for i in flow.budget if i.name == "ditch")
+    assert r.inflow > 0
+    assert flow.discrepancy <= 1e-8
+    assert flow.head.max() < -0.5
+
+
+def test_bad_flow_inputs_name_the_field():
+    """K ≤ 0, a well screen outside the model, a stage below the top cells: one line each."""
+    with pytest.raises(CaseErrors) as e:
+        _case(K=-1.0, extra='[[fixed_heads]]\nface = "west"\nhead = "1 m"\n')
+    assert "materials.aquifer.horizontal_conductivity" in str(e.value)
+    extra = ('[[fixed_heads]]\nface = "west"\nhead = "1 m"\n'
+             '[[head_dependent]]\nname = "brook"\nkind = "river"\nstage = "-10.5 m"\n'
+             'leakance = "1 d^-1"\nzone = [["0 m", "0 m"], ["50 m", "0 m"], ["50 m", "50 m"]]\n')
+    case = _case(extra=extra, b=10.0)
+    with pytest.raises(Exception, match=r"head_dependent\[brook\]\.stage"):
+        solve_flow(build_mesh(case), case)
+    well = ('[[fixed_heads]]\nface = "west"\nhead = "1 m"\n[[wells]]\nname = "PW"\n'
+            'x = "50 m"\ny = "50 m"\nscreens = [["-2 m", "-14 m"]]\nrate = "10 m^3/d"\n')
+    with pytest.raises(CaseErrors, match=r"wells\[PW\]\.screens\[0\]"):
+        _case(extra=well)
+    with pytest.raises(CaseErrors, match=r"wells\[PW\]"):
+        _case(extra=well.replace('x = "50 m"', 'x = "500 m"'))
