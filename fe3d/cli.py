@@ -32,6 +32,14 @@ def _parser() -> argparse.ArgumentParser:
                        description="Validate a case file and print a summary of the model "
                                    "(units, materials, estimated cell count). Writes nothing.")
     c.add_argument("case", type=Path, help="case file (TOML)")
+    m = sub.add_parser("mesh", help="build the mesh of a case and report its quality",
+                       description="Build (or reuse, if the mesh inputs are unchanged) the mesh "
+                                   "of a case, report its quality and where the surface rules "
+                                   "applied, and write mesh.msh, mesh.vtu, mesh.npz and "
+                                   "mesh.json.")
+    m.add_argument("case", type=Path, help="case file (TOML)")
+    m.add_argument("--out", type=Path, default=None,
+                   help="mesh folder (default: meshes/<case name>)")
     r = sub.add_parser("run", help="run a case: mesh, flow, transport, outputs",
                        description="Run a case end to end and write the run folder: mesh and "
                                    "flow (.vtu), concentration series (.pvd/.vtu), histories and "
@@ -48,8 +56,9 @@ def _estimate_cells(case: Case) -> tuple[int, int]:
     """Rough node and cell counts from the target sizes (plan triangles × sublayers × 3)."""
     import math
 
-    (x0, x1), (y0, y1) = case.box.x, case.box.y
-    area = (x1 - x0) * (y1 - y0)
+    from fe3d.case.geology import polygon_area
+
+    area = abs(polygon_area(case.outline()[0]))
     h = case.mesh.cell_size
     n_tri = 2.3 * area / h**2
     fine = case.mesh.fine_cell_size
@@ -58,7 +67,7 @@ def _estimate_cells(case: Case) -> tuple[int, int]:
 
         r = case.mesh.fine_zone_radius + 2 * h
         n_tri += len(feature_points(case)) * 2.3 * math.pi * r**2 / fine**2 / 4
-    thick = case.box.top - case.z_bottom_min
+    thick = case.z_top - case.z_bottom_min
     n_lay = max(len(case.layers), math.ceil(thick / case.mesh.layer_cell_thickness))
     return int(n_tri / 2 * (n_lay + 1)), int(3 * n_tri * n_lay)
 
@@ -73,8 +82,11 @@ def _check(case_path: Path) -> int:
     case = load_case(case_path)
     con = Console()
     con.print(f"[bold]{case.title}[/bold]  ({case_path})")
-    con.print(f"box: x {case.box.x[0]:g}–{case.box.x[1]:g} m, y {case.box.y[0]:g}–"
-              f"{case.box.y[1]:g} m, top {case.box.top:g} m, base ≥ {case.z_bottom_min:g} m")
+    verts = case.outline()[0]
+    con.print(f"plan: x {min(v[0] for v in verts):g}–{max(v[0] for v in verts):g} m, y "
+              f"{min(v[1] for v in verts):g}–{max(v[1] for v in verts):g} m "
+              f"({len(verts)} vertices); faces {', '.join(case.face_names())}; top ≤ "
+              f"{case.z_top:g} m, base ≥ {case.z_bottom_min:g} m")
     t = Table(title="materials (as used, converted)")
     for col in ("material", "K_h [m/d]", "K_v [m/d]", "porosity [-]", "ρ_b [kg/m³]",
                 "α_L/α_TH/α_TV [m]"):
@@ -86,7 +98,9 @@ def _check(case_path: Path) -> int:
                   f"{m.alpha_vertical:g}")
     con.print(t)
     con.print("layers (top down): " + ", ".join(
-        f"{ly.name} ({ly.material}) to {ly.bottom:g} m" for ly in case.layers))
+        f"{ly.name} ({ly.material}) to "
+        f"{'picks' if ly.bottom is None else format(ly.bottom, 'g') + ' m'}"
+        for ly in case.layers))
     tu, cu = case.output.time_unit, case.output.concentration_unit
     for name, sp in case.species.items():
         hl = "none" if sp.half_life is None else f"{from_si(sp.half_life, tu):.4g} {tu}"
@@ -145,6 +159,37 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool) -> int:
     return 0
 
 
+def _mesh(case_path: Path, out: Path | None) -> int:
+    from rich.console import Console
+
+    from fe3d.mesh.quality import report_lines
+    from fe3d.pipeline import mesh_case
+    from fe3d.post.report import CAUTION
+
+    case = load_case(case_path)
+    folder = out or Path("meshes") / case_path.stem
+    site, reused, files = mesh_case(case, folder)
+    con = Console()
+    how = "reused (inputs unchanged)" if reused else "built"
+    con.print(f"[bold]{case.title}[/bold]: mesh {how} in {folder}/")
+    for line in report_lines(site.info["quality"]):
+        con.print(f"  {line}", highlight=False)
+    con.print("  sublayers: " + ", ".join(f"{k} {v}" for k, v in
+                                         (site.info.get("sublayers") or {}).items()))
+    con.print("  faces: " + ", ".join(f"{k} ({v.shape[1]} triangles)"
+                                     for k, v in site.faces.items()), highlight=False)
+    for rule in site.info.get("surface_rules", []):
+        con.print(f"  [yellow]{rule['rule'].replace('_', '-')}[/yellow] rule: unit "
+                  f"{rule['unit']!r} at {rule['n_nodes']} plan nodes ({rule['area_m2']:.4g} m², "
+                  f"x {rule['x_range_m'][0]:.1f}–{rule['x_range_m'][1]:.1f} m, y "
+                  f"{rule['y_range_m'][0]:.1f}–{rule['y_range_m'][1]:.1f} m)"
+                  + (f"; boreholes {', '.join(rule['boreholes'])}" if rule["boreholes"] else ""),
+                  highlight=False)
+    con.print("wrote " + ", ".join(p.name for p in files))
+    con.print(CAUTION)
+    return 0
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``fe3d`` command; returns the exit code."""
     args = _parser().parse_args(argv)
@@ -152,6 +197,8 @@ def main(argv: list[str] | None = None) -> int:
     try:
         if args.command == "check":
             return _check(args.case)
+        if args.command == "mesh":
+            return _mesh(args.case, args.out)
         return _run(args.case, args.out, quiet=args.quiet)
     except CaseErrors as exc:
         for e in exc.errors:

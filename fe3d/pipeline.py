@@ -10,19 +10,20 @@ from pathlib import Path
 import numpy as np
 
 from fe3d.case.schema import Case
+from fe3d.flow.paths import travel_paths
 from fe3d.flow.solve import FlowField, solve_flow, unit_materials
-from fe3d.mesh.build import build_mesh
+from fe3d.mesh.build import build_mesh, obtain_mesh
 from fe3d.mesh.site_mesh import SiteMesh
-from fe3d.post.figures import plot_breakthrough
+from fe3d.post.figures import plot_breakthrough, plot_heads
 from fe3d.post.probes import breakthrough
 from fe3d.post.report import ObservationResult, RunSummary, write_report, write_summary_json
 from fe3d.post.tables import write_flow_budget, write_histories, write_mass_budget
-from fe3d.post.vtk import write_field, write_mesh, write_pvd
+from fe3d.post.vtk import write_field, write_mesh, write_pathlines, write_pvd
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.run import Snapshot, run_transport
-from fe3d.units import from_si
+from fe3d.units import from_si, to_seconds
 
-__all__ = ["mesh_and_flow", "run_case"]
+__all__ = ["mesh_and_flow", "mesh_case", "run_case"]
 
 logger = logging.getLogger(__name__)
 
@@ -48,7 +49,8 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     out_dir.mkdir(parents=True, exist_ok=True)
     tu, cu = case.output.time_unit, case.output.concentration_unit
     tell("mesh", 0, 1)
-    site = build_mesh(case)
+    # reuse the mesh cached in the run folder when the mesh inputs are unchanged
+    site, _reused = obtain_mesh(case, [out_dir], save_to=out_dir)
     files = [p.name for p in write_mesh(site, out_dir)]
     tell("flow", 0, 1)
     flow = solve_flow(site, case, base_dir=base_dir)
@@ -61,6 +63,26 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
                            "conductivity [m/d]": (flow.conductivity * day).T})
     write_flow_budget(out_dir / "flow_budget.csv", flow)
     files += ["flow.vtu", "flow_budget.csv"]
+    tell("travel paths", 0, 1)
+    paths = travel_paths(site, flow, case)
+    tsec = to_seconds(tu)
+    write_pathlines(out_dir / "pathlines_forward.vtp",
+                    [(p.points, p.times) for lines in paths.forward.values() for p in lines],
+                    time_unit_seconds=tsec, time_unit=tu)
+    write_pathlines(out_dir / "pathlines_backward.vtp",
+                    [(p.points, p.times) for lines in paths.backward.values() for p in lines],
+                    time_unit_seconds=tsec, time_unit=tu)
+    top = site.faces["top"]
+    under_top = np.isin(site.cells, np.unique(top)).sum(axis=0) >= 3
+    centres = site.points[:2, site.cells[:, under_top]].mean(axis=1)
+    plot_heads(out_dir / "heads_plan.png", site.points, top, flow.head,
+               (centres, flow.darcy_flux[:2, under_top]),
+               markers={**{o.name: (o.x, o.y) for o in case.observation_points},
+                        **{w.name: (w.x, w.y) for w in case.wells}},
+               pathlines=[p.points for lines in paths.forward.values() for p in lines]
+               + [p.points for lines in paths.backward.values() for p in lines],
+               title=f"{case.title}: head on the top face")
+    files += ["pathlines_forward.vtp", "pathlines_backward.vtp", "heads_plan.png"]
 
     series: list[tuple[float, str]] = []
     budgets: list[MassBudget] = []
@@ -108,8 +130,23 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
         min_concentration_at={k: v[1] for k, v in d.min_concentration.items()},
         source_max={sp: max((src.concentration for src in case.sources if src.species == sp),
                             default=0.0) for sp in case.species},
+        travel_times=[{"source": a.source, "receptor": a.receptor, "time": a.time,
+                       "closest": a.closest, "reach": a.reach} for a in paths.arrivals],
+        well_heads=dict(flow.well_heads),
         wall_time=time.perf_counter() - started, time_unit=tu, concentration_unit=cu,
         files=files)
     write_summary_json(out_dir / "summary.json", summary)
     write_report(out_dir / "report.md", summary)
     return summary
+
+
+def mesh_case(case: Case, out_dir: Path) -> tuple[SiteMesh, bool, list[Path]]:
+    """Build (or reuse, when the mesh inputs are unchanged) the mesh of ``case`` and write
+    ``mesh.msh``, ``mesh.vtu``, ``mesh.npz`` and ``mesh.json`` in ``out_dir``.
+
+    Returns the mesh, whether it was reused, and the files written.
+    """
+    out_dir.mkdir(parents=True, exist_ok=True)
+    site, reused = obtain_mesh(case, [out_dir], save_to=out_dir)
+    files = write_mesh(site, out_dir)
+    return site, reused, [*files, out_dir / "mesh.npz", out_dir / "mesh.json"]

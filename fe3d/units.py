@@ -85,3 +85,8 @@ def unit_is(unit: str, dimension: str) -> bool:
         return bool(_registry().Quantity(1.0, unit).check(DIMENSIONS[dimension][0]))
     except Exception:
         return False
+
+
+def to_seconds(unit: str) -> float:
+    """Length of one ``unit`` of time in seconds (e.g. ``"d"`` → 86400)."""
+    return 1.0 / from_si(1.0, unit)

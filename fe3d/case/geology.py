@@ -247,7 +247,8 @@ def read_borehole_file(path: Path, *, key: str = "stratigraphy.borehole_file",
         x, y, g = (_number(r[i], f"{key}[{name}].{header[i]}", where) for i in (1, 2, 3))
         bases = {u: (_number(v, f"{key}[{name}].{u}", where) if v else None)
                  for u, v in zip(units, r[4:], strict=True)}
-        out.append(Borehole(name=name, x=x, y=y, ground=g, bases=bases))
+        # values are already numbers in metres: build without the unit-text validators
+        out.append(Borehole.model_construct(name=name, x=x, y=y, ground=g, bases=bases))
     return out
 
 

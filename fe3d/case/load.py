@@ -165,6 +165,10 @@ def load_case(path: str | Path) -> Case:
 
 def with_geology_files(case: Case, base_dir: Path) -> Case:
     """The case with its borehole and surface-point files read into ``stratigraphy``."""
+    if case.mesh.import_file is not None:
+        path = str(base_dir / case.mesh.import_file)
+        case = case.model_copy(update={"mesh": case.mesh.model_copy(
+            update={"import_file": path})})
     strat = case.stratigraphy
     if strat is None or (strat.borehole_file is None and not strat.surface_files):
         return case

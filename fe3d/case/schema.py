@@ -203,6 +203,7 @@ class MeshControl(_Section):
     fine_cell_size: PositiveLength | None = None
     fine_zone_radius: NonNegativeLength = 0.0
     layer_cell_thickness: PositiveLength
+    import_file: str | None = None  # a meshio-readable tetrahedral mesh with unit tags
 
 
 class SolverControl(_Section):

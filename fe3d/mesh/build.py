@@ -15,6 +15,7 @@ import itertools
 import logging
 import math
 from dataclasses import dataclass
+from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -30,7 +31,8 @@ from fe3d.mesh.stratigraphy import unit_surfaces
 if TYPE_CHECKING:
     from fe3d.case.schema import Case
 
-__all__ = ["PlanMesh", "RefineZone", "build_mesh", "extrude", "feature_points", "plan_mesh"]
+__all__ = ["PlanMesh", "RefineZone", "build_mesh", "check_volumes", "extrude", "feature_points",
+           "obtain_mesh", "plan_mesh"]
 
 logger = logging.getLogger(__name__)
 
@@ -147,30 +149,39 @@ def plan_mesh(
         gmsh.option.setNumber("General.Terminal", 0)
         gmsh.model.add("fe3d_plan")
         geo = gmsh.model.geo
-        corner = [geo.addPoint(x, y, 0) for x, y in vertices]
-        nv = len(vertices)
+        # points on the boundary become polygon vertices (their edge is split in two)
+        nv0 = len(vertices)
+        split: dict[int, list[tuple[float, tuple[float, float]]]] = {}
+        for px, py in _unique(list(points.values())):
+            if any(math.hypot(px - vx, py - vy) < tol for vx, vy in vertices):
+                continue
+            d = [_seg_dist((px, py), vertices[i], vertices[(i + 1) % nv0]) for i in range(nv0)]
+            i = int(np.argmin(d))
+            if d[i] < tol:
+                (ax, ay), (bx, by) = vertices[i], vertices[(i + 1) % nv0]
+                t = ((px - ax) * (bx - ax) + (py - ay) * (by - ay)) / ((bx - ax) ** 2
+                                                                      + (by - ay) ** 2)
+                split.setdefault(i, []).append((t, (px, py)))
+        all_v: list[tuple[float, float]] = []
+        for i in range(nv0):
+            all_v.append(vertices[i])
+            all_v += [p for _, p in sorted(split.get(i, []))]
+        nv = len(all_v)
+        corner = [geo.addPoint(x, y, 0) for x, y in all_v]
         lines = [geo.addLine(corner[i], corner[(i + 1) % nv]) for i in range(nv)]
         surf = geo.addPlaneSurface([geo.addCurveLoop(lines)])
         inner_lines = []
         for poly in outlines or []:
             pp = [geo.addPoint(x, y, 0) for x, y in poly]
             inner_lines += [geo.addLine(pp[i], pp[(i + 1) % len(pp)]) for i in range(len(pp))]
-        inner, on_edge = [], []
+        inner = []
         for px, py in _unique(list(points.values())):
-            if any(math.hypot(px - vx, py - vy) < tol for vx, vy in vertices):
-                continue
-            d = [_seg_dist((px, py), vertices[i], vertices[(i + 1) % nv]) for i in range(nv)]
-            i = int(np.argmin(d))
-            if d[i] < tol:
-                on_edge.append((geo.addPoint(px, py, 0), lines[i]))
-            else:
+            if not any(math.hypot(px - vx, py - vy) < tol for vx, vy in all_v):
                 inner.append(geo.addPoint(px, py, 0))
         zone_tags = [[geo.addPoint(x, y, 0) for x, y in z.points] for z in zones]
         geo.synchronize()
         if inner:
             gmsh.model.mesh.embed(0, inner, 2, surf)
-        for tag, line in on_edge:
-            gmsh.model.mesh.embed(0, [tag], 1, line)
         if inner_lines:
             gmsh.model.mesh.embed(1, inner_lines, 2, surf)
         gmsh.option.setNumber("Mesh.MeshSizeExtendFromBoundary", 0)
@@ -432,6 +443,8 @@ def build_mesh(case: Case) -> SiteMesh:
         On inverted or zero-volume cells, a screen outside the model, too few picks for the
         interpolation, a model thinner than the minimum thickness, or a gmsh failure.
     """
+    if case.mesh.import_file is not None:
+        return _imported(case)
     verts, names = case.outline()
     mc = case.mesh
     lens_polys = [[(float(x), float(y)) for x, y in lens.polygon] for lens in case.lenses]
@@ -478,11 +491,54 @@ def build_mesh(case: Case) -> SiteMesh:
                                         zip(case.layers, fractions, strict=True)},
                           "plan_nodes": int(xy.shape[1]), "plan_triangles": int(tri.shape[1]),
                           "surface_rules": [a.as_dict() for a in applied],
-                          "surface_rule_lines": [a.line() for a in applied]})
+                          "surface_rule_lines": [a.line() for a in applied],
+                          "plan_xy": xy, "plan_tri": tri, "surfaces": surfaces,
+                          "borehole_nodes": boreholes, "well_nodes": well_node})
     check_volumes(site)
     site.info["quality"] = quality_report(site)
     logger.info("mesh: %d nodes, %d tetrahedra", site.n_nodes, site.n_cells)
     return site
+
+
+def _imported(case: Case) -> SiteMesh:
+    """Read ``mesh.import_file`` and check its units and faces against the case."""
+    from dataclasses import replace
+
+    from fe3d.mesh.io import read_site_mesh
+
+    assert case.mesh.import_file is not None
+    site = read_site_mesh(Path(case.mesh.import_file))
+    units = [ly.name for ly in case.layers] + [ls.name for ls in case.lenses]
+    unknown = [u for u in site.layer_names if u not in units]
+    if unknown:
+        msg = (f"mesh.import_file: unit tag {unknown[0]!r} of the mesh names no layer or lens "
+               f"of the case ({units})")
+        raise MeshError(msg)
+    # unit index in case order, so materials follow the case's layers and lenses
+    order = np.array([units.index(u) for u in site.layer_names], dtype=np.int64)
+    site = replace(site, cell_layer=order[site.cell_layer], layer_names=tuple(units))
+    check_volumes(site)
+    site.info["quality"] = quality_report(site)
+    return site
+
+
+def obtain_mesh(case: Case, folders: list[Path], *, save_to: Path | None = None,
+                ) -> tuple[SiteMesh, bool]:
+    """The case's mesh: reused from the first folder holding a cached mesh built from the
+    same mesh inputs (hash), else built (and cached in ``save_to``). Returns (mesh, reused).
+    """
+    from fe3d.mesh.io import load_cached, mesh_inputs_hash, save_cached
+
+    digest = mesh_inputs_hash(case)
+    if case.mesh.import_file is None:
+        for folder in folders:
+            site = load_cached(folder, digest)
+            if site is not None:
+                return site, True
+    site = build_mesh(case)
+    if save_to is not None:
+        save_cached(site, save_to, digest)
+    return site, False
 
 
 def check_volumes(site: SiteMesh) -> None:

@@ -4,11 +4,13 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
+
 from fe3d._typing import FloatArray
 from fe3d.post.files import write_atomic
 from fe3d.units import from_si
 
-__all__ = ["plot_breakthrough"]
+__all__ = ["plot_breakthrough", "plot_heads"]
 
 
 def plot_breakthrough(path: Path, times: FloatArray, history: dict[str, FloatArray],
@@ -42,6 +44,51 @@ def plot_breakthrough(path: Path, times: FloatArray, history: dict[str, FloatArr
     fig.text(0.01, 0.005, "Screening estimate: depends on the inputs; not a substitute for "
              "local regulations or licensed professional judgement.", fontsize=7)
     fig.tight_layout(rect=(0, 0.03, 1, 1))
+    write_atomic(path, lambda p: fig.savefig(p, dpi=120, format="png"))
+    plt.close(fig)
+    return path
+
+
+def plot_heads(path: Path, points: FloatArray, top_triangles: FloatArray, head: FloatArray,
+               top_flux: tuple[FloatArray, FloatArray], *,
+               markers: dict[str, tuple[float, float]], pathlines: list[FloatArray],
+               title: str) -> Path:
+    """Plan view of the head on the top face: labelled contours, flow arrows, pathlines.
+
+    ``top_flux`` is (centres ``(2, k)`` [m], horizontal Darcy flux ``(2, k)`` [m/s]) of the
+    cells under the top face; ``markers`` maps a label to a plan position [m].
+    """
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    from matplotlib.tri import Triangulation
+
+    tri = Triangulation(points[0], points[1], top_triangles.T)
+    fig, ax = plt.subplots(figsize=(8, 6))
+    filled = ax.tricontourf(tri, head, levels=20, cmap="Blues_r", alpha=0.6)
+    lines = ax.tricontour(tri, head, levels=12, colors="k", linewidths=0.6)
+    ax.clabel(lines, fmt="%.2f", fontsize=7)
+    fig.colorbar(filled, ax=ax, label="head [m]", fraction=0.046, pad=0.04)
+    (cx, cy), (qx, qy) = top_flux
+    step = max(1, cx.size // 250)
+    speed = np.hypot(qx, qy)
+    scale = np.where(speed > 0, 1.0 / np.where(speed > 0, speed, 1.0), 0.0)
+    ax.quiver(cx[::step], cy[::step], (qx * scale)[::step], (qy * scale)[::step],
+              color="tab:blue", alpha=0.7, width=0.002, label="flow direction")
+    for i, p in enumerate(pathlines):
+        ax.plot(p[0], p[1], color="tab:red", linewidth=0.8,
+                label="pathlines" if i == 0 else None)
+    for label, (x, y) in markers.items():
+        ax.plot(x, y, "k^", markersize=5)
+        ax.annotate(label, (x, y), textcoords="offset points", xytext=(4, 4), fontsize=7)
+    ax.set_aspect("equal")
+    ax.set_xlabel("x [m]")
+    ax.set_ylabel("y [m]")
+    ax.set_title(title, fontsize=10)
+    ax.legend(fontsize=7, loc="lower right")
+    fig.text(0.01, 0.005, "Screening estimate: depends on the inputs.", fontsize=7)
+    fig.tight_layout()
     write_atomic(path, lambda p: fig.savefig(p, dpi=120, format="png"))
     plt.close(fig)
     return path

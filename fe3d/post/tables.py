@@ -56,13 +56,16 @@ def write_mass_budget(path: Path, budgets: list[MassBudget], *, time_unit: str) 
 
 
 def write_flow_budget(path: Path, flow: FlowField) -> Path:
-    """Water budget per fixed-head boundary [m³/d]."""
+    """Water budget per item (fixed-head face, flux face, recharge zone, stream or drain
+    zone, well) [m³/d], totals, the relative discrepancy, and the head in each well [m]."""
     day = 86400.0
-    rows: list[list[object]] = [[b.name, _g(b.inflow * day), _g(b.outflow * day),
-                                 _g((b.inflow - b.outflow) * day)] for b in flow.budget]
-    rows.append(["total", _g(flow.total_inflow * day), _g(flow.total_outflow * day),
+    rows: list[list[object]] = [[b.name, b.kind, _g(b.inflow * day), _g(b.outflow * day),
+                                 _g(b.net * day)] for b in flow.budget]
+    rows.append(["total", "", _g(flow.total_inflow * day), _g(flow.total_outflow * day),
                  _g((flow.total_inflow - flow.total_outflow) * day)])
-    rows.append(["relative discrepancy [-]", f"{flow.discrepancy:.3e}", "", ""])
-    write_text_atomic(path, _csv(["boundary", "inflow [m3/d]", "outflow [m3/d]", "net [m3/d]"],
-                                 rows))
+    rows.append(["relative discrepancy [-]", "", f"{flow.discrepancy:.3e}", "", ""])
+    for name, h in flow.well_heads.items():
+        rows.append([f"head in well {name} [m]", "well", _g(h), "", ""])
+    write_text_atomic(path, _csv(["item", "kind", "inflow [m3/d]", "outflow [m3/d]",
+                                  "net [m3/d]"], rows))
     return path

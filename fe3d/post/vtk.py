@@ -12,7 +12,7 @@ from fe3d._typing import FloatArray
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.post.files import write_atomic, write_text_atomic
 
-__all__ = ["write_field", "write_mesh", "write_pvd"]
+__all__ = ["write_field", "write_mesh", "write_pathlines", "write_pvd"]
 
 _FACE_TAG_BASE = 100
 
@@ -67,4 +67,31 @@ def write_pvd(path: Path, entries: list[tuple[float, str]], *, time_unit: str) -
             "  </Collection>\n"
             "</VTKFile>\n")
     write_text_atomic(path, text)
+    return path
+
+
+def write_pathlines(path: Path, lines: list[tuple[FloatArray, FloatArray]], *,
+                    time_unit_seconds: float, time_unit: str) -> Path:
+    """Write polylines (points [m] ``(3, k)``, times [s] ``(k,)``) as a .vtp file, with the
+    travel time of every vertex in ``time_unit`` and a particle id per line."""
+    import pyvista as pv
+
+    pts, conn, times, ids = [], [], [], []
+    offset = 0
+    for i, (p, t) in enumerate(lines):
+        k = p.shape[1]
+        if k < 2:
+            continue
+        pts.append(p.T)
+        conn.append(np.concatenate([[k], np.arange(offset, offset + k)]))
+        times.append(t / time_unit_seconds)
+        ids.append(i)
+        offset += k
+    if pts:
+        poly = pv.PolyData(np.vstack(pts), lines=np.concatenate(conn))
+        poly.point_data[f"travel_time [{time_unit}]"] = np.concatenate(times)
+        poly.cell_data["particle"] = np.array(ids)
+    else:
+        poly = pv.PolyData()
+    write_atomic(path, lambda p: poly.save(str(p)))
     return path

@@ -15,7 +15,8 @@ def _summary(**over: object) -> RunSummary:
                 observations=[], mass_balance_error={"x": 0.0}, flow_inflow=1.0,
                 flow_discrepancy=0.0, max_grid_peclet={"x": 1.0}, max_courant={"x": 0.5},
                 min_concentration={"x": 0.0}, min_concentration_at={"x": None},
-                source_max={"x": 1.0}, wall_time=1.0, time_unit="d",
+                source_max={"x": 1.0}, travel_times=[], well_heads={}, wall_time=1.0,
+                time_unit="d",
                 concentration_unit="mg/L")
     base.update(over)
     return RunSummary(**base)  # type: ignore[arg-type]
