@@ -9,14 +9,14 @@ from pathlib import Path
 
 import numpy as np
 import scipy.sparse as sp
-from skfem import Basis, ElementTetP1, asm, condense
+from skfem import condense
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import Case, Material
 from fe3d.errors import CaseError, SolverError
+from fe3d.flow.assembly import conductance_matrix
 from fe3d.flow.boundaries import in_polygon, lumped_face_weights
 from fe3d.flow.conductivity import conductivity_tensors
-from fe3d.flow.forms import conductance
 from fe3d.linalg import solve_spd
 from fe3d.mesh.geometry import p1_gradients
 from fe3d.mesh.locate import sample_operator, screen_points
@@ -62,6 +62,10 @@ class FlowField:
     exchange
         Budget item name → nodal inflow [m³/s] (negative: outflow) of every item other than
         the fixed heads (wells, recharge, fluxes, head-dependent zones), shape ``(n_nodes,)``.
+    solver_iterations
+        Conjugate-gradient iterations, summed over drain active-set passes (0 when direct).
+    timings
+        Solver set-up and solve times of the last pass [s].
     well_heads
         Well name → head in the well [m]: the conductivity-weighted mean of the nodal head
         along its screens (mesh-scale, not corrected to the well radius).
@@ -75,6 +79,7 @@ class FlowField:
     well_heads: dict[str, float] = field(default_factory=dict)
     exchange: dict[str, FloatArray] = field(default_factory=dict)
     solver_iterations: int = 0
+    timings: dict[str, float] = field(default_factory=dict)
 
     @property
     def total_inflow(self) -> float:
@@ -145,10 +150,7 @@ def solve_flow(
     tensors, principal = conductivity_tensors(p, site.cells, site.cell_layer, mats,
                                               unit_keys=[f"materials.{m}" for m in mat_names],
                                               base_dir=base_dir)
-    mesh = site.skfem_mesh()
-    basis = Basis(mesh, ElementTetP1())
-    nqp = basis.X.shape[1]
-    A = asm(conductance, basis, K=np.repeat(tensors[..., None], nqp, axis=-1)).tocsr()
+    A = conductance_matrix(p, site.cells, tensors)
 
     # Dirichlet: fixed heads; a node on two fixed-head faces takes the first listed
     head = np.zeros(n)
@@ -184,7 +186,7 @@ def solve_flow(
         spacing = max(case.mesh.layer_cell_thickness / 4.0, 0.05)
         pts = np.hstack([screen_points(well.x, well.y, t, b, spacing=spacing)
                          for t, b in well.screens])
-        op, _ = sample_operator(mesh, pts, weights_per_cell=principal[0])
+        op, _ = sample_operator(p, site.cells, pts, weights_per_cell=principal[0])
         well_ops[well.name] = op
         sign = {"extraction": -1.0, "injection": 1.0, "observation": 0.0}[well.kind]
         items.append((well.name, "well", sign * well.rate * np.asarray(op.todense()).ravel()))
@@ -209,6 +211,7 @@ def solve_flow(
     active = [np.ones(n, dtype=bool) for _ in robin]
     fixed = np.nonzero(is_fixed)[0]
     iterations = 0
+    stats: dict[str, float] = {}
     for _ in range(50):
         diag = np.zeros(n)
         rhs = b.copy()
@@ -218,10 +221,10 @@ def solve_flow(
         M = (A + sp.diags(diag)).tocsr()
         if fixed.size:
             M_ff, b_f, _, free = condense(M, rhs, x=head, D=fixed)
-            head[free] = solve_spd(M_ff.tocsr(), b_f)
+            head[free] = solve_spd(M_ff.tocsr(), b_f, stats=stats)
         else:
-            head = solve_spd(M, rhs)
-        iterations += 1
+            head = solve_spd(M, rhs, stats=stats)
+        iterations += int(stats.get("iterations", 0))
         new_active = [np.ones(n, dtype=bool) if hd.kind == "river" else head > hd.stage
                       for hd, _ in robin]
         if all(np.array_equal(a1, a2) for a1, a2 in zip(active, new_active, strict=True)):
@@ -246,7 +249,7 @@ def solve_flow(
     result = FlowField(head=head, darcy_flux=q, conductivity=principal, budget=tuple(budget),
                        fixed_head_nodes=owner, well_heads=well_heads,
                        exchange={name: f for name, _, f in items},
-                       solver_iterations=iterations)
+                       solver_iterations=iterations, timings=dict(stats))
     logger.info("flow: in %.4e m3/s, out %.4e m3/s, discrepancy %.2e",
                 result.total_inflow, result.total_outflow, result.discrepancy)
     return result

@@ -2,15 +2,14 @@
 
 from __future__ import annotations
 
-from typing import Any
-
 import numpy as np
 import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
+from fe3d.mesh.geometry import p1_gradients
 
-__all__ = ["sample_operator", "screen_points"]
+__all__ = ["locate_points", "sample_operator", "screen_points"]
 
 
 def screen_points(x: float, y: float, top: float, bottom: float, *, spacing: float) -> FloatArray:
@@ -20,15 +19,57 @@ def screen_points(x: float, y: float, top: float, bottom: float, *, spacing: flo
     return np.vstack([np.full(k, x), np.full(k, y), z])
 
 
-def sample_operator(mesh: Any, points: FloatArray, *, weights_per_cell: FloatArray | None = None,
+def locate_points(points: FloatArray, cells: IndexArray, xs: FloatArray, *,
+                  tol: float = 1e-9) -> tuple[IndexArray, FloatArray]:
+    """Containing cell and barycentric coordinates of each point.
+
+    Candidates are the cells whose centres are nearest (k-d tree), checked by barycentric
+    coordinates ≥ −tol; a point in no cell raises :class:`MeshError`.
+
+    Returns
+    -------
+    cell_ids, bary
+        Shapes ``(k,)`` and ``(4, k)``.
+    """
+    from scipy.spatial import cKDTree
+
+    centres = points[:, cells].mean(axis=1).T
+    tree = cKDTree(centres)
+    k = xs.shape[1]
+    found = np.full(k, -1, dtype=np.int64)
+    bary = np.zeros((4, k))
+    for n_cand in (16, 128, 1024):
+        todo = np.nonzero(found < 0)[0]
+        if todo.size == 0:
+            break
+        _, cand = tree.query(xs[:, todo].T, k=min(n_cand, cells.shape[1]))
+        cand = np.atleast_2d(cand)
+        for j, i in enumerate(todo):
+            c = cand[j]
+            grads, _ = p1_gradients(points, cells[:, c])
+            lam = np.einsum("eik,ke->ie", grads, xs[:, [i]] - points[:, cells[0, c]])
+            lam[0] = 1.0 - lam[1:].sum(axis=0)
+            ok = np.nonzero(np.all(lam >= -tol, axis=0))[0]
+            if ok.size:
+                found[i] = c[ok[0]]
+                bary[:, i] = lam[:, ok[0]]
+    if np.any(found < 0):
+        bad = xs[:, int(np.argmax(found < 0))]
+        msg = f"a sample point near {bad.round(3).tolist()} m lies outside the mesh"
+        raise MeshError(msg)
+    return found, bary
+
+
+def sample_operator(points: FloatArray, cells: IndexArray, xs: FloatArray, *,
+                    weights_per_cell: FloatArray | None = None,
                     ) -> tuple[sp.csr_matrix, IndexArray]:
     """Sparse operator whose product with a P1 nodal field gives the (weighted) mean over points.
 
     Parameters
     ----------
-    mesh
-        A scikit-fem ``MeshTet``.
-    points
+    points, cells
+        Mesh nodes [m] ``(3, n)`` and tetrahedra ``(4, m)``.
+    xs
         Sample points [m], shape ``(3, k)``.
     weights_per_cell
         Optional weight of each cell (e.g. horizontal conductivity); the mean over the points
@@ -39,16 +80,12 @@ def sample_operator(mesh: Any, points: FloatArray, *, weights_per_cell: FloatArr
     operator, cells
         A ``(1, n_nodes)`` matrix and the containing cell of every point.
     """
-    from skfem import Basis, ElementTetP1
-
-    finder = mesh.element_finder()
-    try:
-        cells = np.asarray(finder(*points), dtype=np.int64)
-    except ValueError:
-        msg = f"a sample point near {points[:, 0].round(3).tolist()} m lies outside the mesh"
-        raise MeshError(msg) from None
-    basis = Basis(mesh, ElementTetP1())
-    rows = basis.probes(points)  # (k, n_nodes): P1 interpolation at each point
-    w = np.ones(points.shape[1]) if weights_per_cell is None else weights_per_cell[cells]
+    cell_ids, bary = locate_points(points, cells, xs)
+    w = np.ones(xs.shape[1]) if weights_per_cell is None else weights_per_cell[cell_ids]
     w = w / w.sum()
-    return sp.csr_matrix(sp.csr_matrix(w) @ rows), cells
+    cols = cells[:, cell_ids].ravel()
+    vals = (bary * w).ravel()
+    op = sp.csr_matrix((vals, (np.zeros(cols.size, dtype=np.int64), cols)),
+                       shape=(1, points.shape[1]))
+    op.sum_duplicates()
+    return op, cell_ids

@@ -231,9 +231,9 @@ def run_transport(
     for o in obs:
         if o.screen is not None:
             pts = screen_points(o.x, o.y, o.screen[0], o.screen[1], spacing=spacing)
-            op, _ = sample_operator(mesh, pts, weights_per_cell=kh_cell)
+            op, _ = sample_operator(site.points, site.cells, pts, weights_per_cell=kh_cell)
         else:
-            op, _ = sample_operator(mesh, np.array([[o.x], [o.y], [o.z]]))
+            op, _ = sample_operator(site.points, site.cells, np.array([[o.x], [o.y], [o.z]]))
         rows.append(op)
     probe = sp.vstack(rows).tocsr() if rows else sp.csr_matrix((0, n))
 
