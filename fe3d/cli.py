@@ -152,6 +152,13 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool) -> int:
                   f"{from_si(o.peak_time, tu):.3g} {tu}", first,
                   f"{summary.mass_balance_error[o.species]:.1e}")
     con.print(t)
+    for a in summary.travel_times:
+        when = "no pathline passes" if a["time"] is None else \
+            f"{from_si(float(a['time']), tu):.3g} {tu}"  # type: ignore[arg-type]
+        con.print(f"water travel time {a['source']} → {a['receptor']}: {when} "
+                  "(advective, without sorption)")
+    for name, h in summary.well_heads.items():
+        con.print(f"head in well {name}: {h:.3f} m")
     con.print(f"flow budget discrepancy {summary.flow_discrepancy:.1e}; results in {folder}/")
     for w in quality_warnings(summary):
         con.print(f"[yellow]warning:[/yellow] {w}", markup=True, highlight=False)

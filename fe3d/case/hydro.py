@@ -77,6 +77,9 @@ def hydro_checks(case: Case) -> list[CaseError]:
     from fe3d.case.geology import point_in_polygon
 
     errs: list[CaseError] = []
+    if not case.fixed_heads and not case.head_dependent:
+        errs.append(CaseError("fixed_heads", "(none)", "give at least one fixed head or "
+                              "head-dependent boundary, otherwise the head is undetermined"))
     verts, _ = case.outline()
     zmin, top = case.z_bottom_min, case.z_top
     names = [w.name for w in case.wells]

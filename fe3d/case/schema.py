@@ -234,7 +234,7 @@ class Case(_Section):
     refinement_lines: list[RefinementLine] = Field(default_factory=list)
     materials: dict[Name, Material]
     layers: list[Layer] = Field(min_length=1)
-    fixed_heads: list[FixedHead] = Field(min_length=1)
+    fixed_heads: list[FixedHead] = Field(default_factory=list)
     species: dict[Name, Species] = Field(min_length=1)
     sources: list[Source] = Field(default_factory=list)
     observation_points: list[ObservationPoint] = Field(default_factory=list)

@@ -171,7 +171,10 @@ def test_drain_only_removes_water_and_river_both_ways():
 
 
 def test_bad_flow_inputs_name_the_field():
-    """K ≤ 0, a well screen outside the model, a stage below the top cells: one line each."""
+    """No fixed head (singular), K ≤ 0, a well screen outside the model, a stage below the
+    top cells: one line each naming the field."""
+    with pytest.raises(CaseErrors, match=r"fixed_heads = '\(none\)': give at least one"):
+        _case()
     with pytest.raises(CaseErrors) as e:
         _case(K=-1.0, extra='[[fixed_heads]]\nface = "west"\nhead = "1 m"\n')
     assert "materials.aquifer.horizontal_conductivity" in str(e.value)

@@ -199,7 +199,7 @@ def test_several_problems_give_one_line_each() -> None:
 def test_empty_file_lists_every_missing_section() -> None:
     lines = error_lines("")
     # box is optional since a boundary polygon may replace it (cross-checked below)
-    required = ["title", "materials", "layers", "fixed_heads", "species", "time", "mesh"]
+    required = ["title", "materials", "layers", "species", "time", "mesh"]
     assert sorted(lines) == sorted(f"{k} = (missing): is required" for k in required)
 
 
@@ -293,10 +293,14 @@ def test_demo_case_loads_in_si_units() -> None:
     assert chloride.kd_of("fen_sand") == 0.0
     assert chloride.decay_rate == 0.0
     assert case.sources[0].stop == approx(8 * YEAR)
-    assert case.layers[0].bottom_gradient == (0.0, 0.002)
-    # planar bottom: 3 m at the south-west corner, rising 0.002 m per m northward
-    assert case.layers[0].bottom_at(0.0, 200.0, 0.0, 0.0) == approx(3.4)
-    assert case.z_bottom_min == approx(-6.0)
+    # unit bases from cases/demo/boreholes.csv (metres); the clay band is absent at two
+    strat = case.stratigraphy
+    assert strat is not None and len(strat.boreholes) == 10
+    mf04 = next(b for b in strat.boreholes if b.name == "MF-04")
+    assert mf04.bases["clay_band"] is None
+    assert mf04.bases["gravel"] == approx(-6.0)
+    assert case.z_bottom_min == approx(-6.4)
+    assert case.face_names() == ["south", "stream", "north", "west", "top", "bottom"]
     assert case.time.end == approx(30 * YEAR)
     assert len(case.output_schedule()) == 15                      # every 2 yr to 30 yr
     assert case.output.folder == "runs/demo"
