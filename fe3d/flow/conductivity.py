@@ -12,6 +12,7 @@ import numpy as np
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import Material
 from fe3d.errors import CaseError
+from fe3d.mesh.fields import read_vtk_cell_field
 from fe3d.units import to_si
 
 __all__ = ["bedding_normal", "conductivity_tensors", "read_point_field"]
@@ -86,8 +87,10 @@ def conductivity_tensors(
     """Full conductivity tensor of every cell [m/s], shape ``(3, 3, n_cells)``.
 
     K = K_h I + (K_v − K_h) n nᵀ with n the bedding normal (theory.md F1). Where a unit's
-    material names a ``conductivity_file``, K_h of each cell is that field interpolated (in
-    log K) at the cell centre and K_v keeps the material's K_v/K_h ratio.
+    material names a ``conductivity_file``, K_h of each cell comes from it and K_v keeps the
+    material's K_v/K_h ratio: a CSV of points is interpolated in log K at the cell centre; a
+    .vtu/.vtk file gives a cell array ``conductivity [unit]`` whose nearest cell centre is
+    taken (exact when the file holds this mesh, e.g. a field written on ``mesh.vtu``).
 
     Returns
     -------
@@ -110,8 +113,23 @@ def conductivity_tensors(
             path = Path(mat.conductivity_file)
             if not path.is_absolute() and base_dir is not None:
                 path = base_dir / path
-            pts, vals = read_point_field(path, f"{unit_keys[u]}.conductivity_file")
-            kh[sel] = _interpolate_log(pts, vals, centres[sel])
+            key = f"{unit_keys[u]}.conductivity_file"
+            if path.suffix.lower() in (".vtu", ".vtk"):
+                pts, unit, raw = read_vtk_cell_field(path, key, prefix="conductivity")
+                try:
+                    vals = raw * to_si(f"1 {unit}", "velocity")
+                except ValueError as exc:
+                    raise CaseError(key, str(path), f"cell array unit: {exc}") from None
+                if np.any(vals <= 0) or not np.all(np.isfinite(vals)):
+                    raise CaseError(key, str(path), "conductivities must be finite and > 0")
+                # cell centres of the same mesh coincide: take the nearest centre's value
+                from scipy.spatial import cKDTree
+
+                _, nearest = cKDTree(pts).query(centres[sel])
+                kh[sel] = vals[nearest]
+            else:
+                pts, vals = read_point_field(path, key)
+                kh[sel] = _interpolate_log(pts, vals, centres[sel])
         else:
             kh[sel] = mat.horizontal_conductivity
         kv[sel] = ratio * kh[sel]

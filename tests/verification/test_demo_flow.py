@@ -17,7 +17,7 @@ DEMO = Path(__file__).parents[2] / "cases" / "demo" / "case.toml"
 @pytest.mark.slow
 def test_demo_flow_budget_closes():
     case = load_case(DEMO)
-    site, flow = mesh_and_flow(case, base_dir=DEMO.parent)
+    _, flow = mesh_and_flow(case, base_dir=DEMO.parent)
     assert flow.total_inflow > 0
     assert flow.discrepancy <= 1e-8
     assert np.all(np.isfinite(flow.head))
