@@ -115,8 +115,8 @@ def main() -> int:
         rows.append(r)
     lines = ["", "## Flow (benchmarks/flow_bench.py)", "",
              "Layered 1 km × 1 km site (sand / clay / gravel, K from 0.001 to 60 m/d), fixed "
-             "heads, recharge and a pumping well; CG with one classical (Ruge–Stüben) AMG V-cycle, "
-             "relative tolerance 1e-12.", "",
+             "heads, recharge and a pumping well; CG with one classical (Ruge–Stüben) AMG "
+             "V-cycle, relative tolerance 1e-12.", "",
              "| nodes | tetrahedra | mesh [s] | flow total [s] | AMG set-up [s] | CG solve [s] "
              "| CG iterations | budget discrepancy | peak RSS [MiB] |",
              "|---|---|---|---|---|---|---|---|---|"]

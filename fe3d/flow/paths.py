@@ -77,8 +77,24 @@ def travel_paths(site: SiteMesh, flow: FlowField, case: Case) -> TravelPaths:
     theta = np.array([m.porosity for m in mats])[site.cell_layer]
     tracker = Tracker(site.points, site.cells, flow.darcy_flux / theta)
     reach = 2.0 * (case.mesh.fine_cell_size or case.mesh.cell_size)
-    forward = {s.name: [tracker.track(x) for x in _source_seeds(case, s.name).T]
-               for s in case.sources}
+    # forward particles end in a cell near an extraction well's screen (it takes their water)
+    centres = site.points[:, site.cells].mean(axis=1)
+    capture: set[int] = set()
+    for w in case.wells:
+        if w.kind != "extraction":
+            continue
+        near = np.hypot(centres[0] - w.x, centres[1] - w.y) <= 0.5 * reach
+        for top, bottom in w.screens:
+            band = (centres[2] <= top + 0.5 * reach) & (centres[2] >= bottom - 0.5 * reach)
+            capture.update(np.nonzero(near & band)[0].tolist())
+    forward: dict[str, list[Pathline]] = {}
+    done: dict[bytes, list[Pathline]] = {}  # sources sharing a region share their pathlines
+    for s in case.sources:
+        seeds = _source_seeds(case, s.name)
+        key = seeds.tobytes()
+        if key not in done:
+            done[key] = [tracker.track(x, capture_cells=capture or None) for x in seeds.T]
+        forward[s.name] = done[key]
     backward: dict[str, list[Pathline]] = {}
     for w in case.wells:
         if w.kind != "extraction":

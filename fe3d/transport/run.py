@@ -191,10 +191,10 @@ def run_transport(
         ow = {f: asm(forms.outflow_weight, fb, qn=qn_out[f]) for f, fb in facet_bases.items()}
         om = sum((asm(forms.outflow, fb, qn=qn_out[f]) for f, fb in facet_bases.items()),
                  sp.csr_matrix((n, n)))
-        for name, f in flow.exchange.items():
+        for item, f in flow.exchange.items():
             out_rate = np.clip(-f, 0.0, None)  # water leaving [m³/s] per node
             if np.any(out_rate > 0):
-                ow[name] = out_rate
+                ow[item] = out_rate
                 om = om + sp.diags(out_rate)
         species.append(_Species(
             name=name, spec=spec,
