@@ -18,7 +18,9 @@ __all__ = ["conductance_matrix"]
 
 
 def conductance_matrix(points: FloatArray, cells: IndexArray, tensors: FloatArray, *,
-                       chunk: int = 500_000) -> sp.csr_matrix:
+                       chunk: int = 500_000,
+                       geometry: tuple[FloatArray, FloatArray] | None = None,
+                       ) -> sp.csr_matrix:
     """Assemble ∫ K∇u·∇v over P1 tetrahedra.
 
     Parameters
@@ -31,6 +33,8 @@ def conductance_matrix(points: FloatArray, cells: IndexArray, tensors: FloatArra
         Conductivity per cell [m/s], shape ``(3, 3, m)``.
     chunk
         Cells per assembly chunk (bounds the temporary memory).
+    geometry
+        Precomputed ``p1_gradients(points, cells)``, to avoid computing them again.
 
     Returns
     -------
@@ -44,7 +48,10 @@ def conductance_matrix(points: FloatArray, cells: IndexArray, tensors: FloatArra
     cols_local = np.tile(idx, 4)
     for start in range(0, cells.shape[1], chunk):
         c = cells[:, start:start + chunk]
-        grads, vol = p1_gradients(points, c)
+        if geometry is None:
+            grads, vol = p1_gradients(points, c)
+        else:
+            grads, vol = (g[start:start + chunk] for g in geometry)
         K = np.moveaxis(tensors[:, :, start:start + chunk], 2, 0)  # (m, 3, 3)
         kg = np.einsum("eab,ejb->eja", K, grads)  # K ∇φ_j
         local = np.einsum("eia,eja->eij", grads, kg) * np.abs(vol)[:, None, None]

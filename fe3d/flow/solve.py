@@ -150,7 +150,8 @@ def solve_flow(
     tensors, principal = conductivity_tensors(p, site.cells, site.cell_layer, mats,
                                               unit_keys=[f"materials.{m}" for m in mat_names],
                                               base_dir=base_dir)
-    A = conductance_matrix(p, site.cells, tensors)
+    geometry = p1_gradients(p, site.cells)
+    A = conductance_matrix(p, site.cells, tensors, geometry=geometry)
 
     # Dirichlet: fixed heads; a node on two fixed-head faces takes the first listed
     head = np.zeros(n)
@@ -236,7 +237,7 @@ def solve_flow(
 
     for (hd, la), act in zip(robin, active, strict=True):
         items.append((hd.name, hd.kind, la * act * (hd.stage - head)))
-    grads, _ = p1_gradients(p, site.cells)
+    grads = geometry[0]
     grad_h = np.einsum("eik,ie->ke", grads, head[site.cells])
     q = -np.einsum("ije,je->ie", tensors, grad_h)
     # consistent fixed-head flux: what the fixed rows need beyond every other term (F4)

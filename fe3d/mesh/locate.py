@@ -33,6 +33,16 @@ def locate_points(points: FloatArray, cells: IndexArray, xs: FloatArray, *,
     """
     from scipy.spatial import cKDTree
 
+    # only cells near the points' bounding box can hold them: a small tree is quick to build
+    lo, hi = xs.min(axis=1), xs.max(axis=1)
+    cmin, cmax = points[:, cells].min(axis=1), points[:, cells].max(axis=1)
+    near = np.nonzero(np.all((cmax >= lo[:, None] - 1e-9) & (cmin <= hi[:, None] + 1e-9),
+                             axis=0))[0]
+    if near.size == 0:
+        bad = xs[:, 0]
+        msg = f"a sample point near {bad.round(3).tolist()} m lies outside the mesh"
+        raise MeshError(msg)
+    cells = cells[:, near]
     centres = points[:, cells].mean(axis=1).T
     tree = cKDTree(centres)
     k = xs.shape[1]
@@ -57,7 +67,7 @@ def locate_points(points: FloatArray, cells: IndexArray, xs: FloatArray, *,
         bad = xs[:, int(np.argmax(found < 0))]
         msg = f"a sample point near {bad.round(3).tolist()} m lies outside the mesh"
         raise MeshError(msg)
-    return found, bary
+    return near[found], bary
 
 
 def sample_operator(points: FloatArray, cells: IndexArray, xs: FloatArray, *,
