@@ -139,7 +139,8 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool) -> int:
                        info=info)
 
         summary = run_case(case, folder, progress=progress,
-                           base_dir=case_path.resolve().parent)
+                           base_dir=case_path.resolve().parent,
+                           mesh_folders=[_default_mesh_folder(case_path)])
     t = Table(title=f"breakthrough ({summary.n_nodes:,} nodes, {summary.n_cells:,} cells, "
                     f"{summary.wall_time:.1f} s)")
     for col in ("point", "species", f"peak [{cu}]", "peak time", "first above limit",
@@ -166,6 +167,11 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool) -> int:
     return 0
 
 
+def _default_mesh_folder(case_path: Path) -> Path:
+    """Where ``fe3d mesh`` writes by default and ``fe3d run`` also looks for a mesh."""
+    return Path("meshes") / case_path.stem
+
+
 def _mesh(case_path: Path, out: Path | None) -> int:
     from rich.console import Console
 
@@ -174,7 +180,7 @@ def _mesh(case_path: Path, out: Path | None) -> int:
     from fe3d.post.report import CAUTION
 
     case = load_case(case_path)
-    folder = out or Path("meshes") / case_path.stem
+    folder = out or _default_mesh_folder(case_path)
     site, reused, files = mesh_case(case, folder)
     con = Console()
     how = "reused (inputs unchanged)" if reused else "built"
@@ -192,6 +198,8 @@ def _mesh(case_path: Path, out: Path | None) -> int:
                   f"{rule['y_range_m'][0]:.1f}–{rule['y_range_m'][1]:.1f} m)"
                   + (f"; boreholes {', '.join(rule['boreholes'])}" if rule["boreholes"] else ""),
                   highlight=False)
+    for note in site.info.get("lens_fit", []):
+        con.print(f"  [yellow]warning:[/yellow] {note['line']}", highlight=False)
     con.print("wrote " + ", ".join(p.name for p in files))
     con.print(CAUTION)
     return 0

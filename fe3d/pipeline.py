@@ -38,19 +38,22 @@ def mesh_and_flow(case: Case, *, base_dir: Path | None = None) -> tuple[SiteMesh
 
 
 def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
-             base_dir: Path | None = None) -> RunSummary:
+             base_dir: Path | None = None, mesh_folders: list[Path] | None = None,
+             ) -> RunSummary:
     """Run every stage and write the run folder; returns the summary.
 
     ``progress(stage, done, total)`` is called as work advances (for a progress bar);
-    ``base_dir`` resolves relative file names in the case (usually the case file's folder).
+    ``base_dir`` resolves relative file names in the case (usually the case file's folder);
+    ``mesh_folders`` are further folders (after the run folder) where a mesh cached with the
+    same mesh inputs is reused from, and copied into the run folder.
     """
     started = time.perf_counter()
     tell = progress or (lambda _s, _d, _t: None)
     out_dir.mkdir(parents=True, exist_ok=True)
     tu, cu = case.output.time_unit, case.output.concentration_unit
     tell("mesh", 0, 1)
-    # reuse the mesh cached in the run folder when the mesh inputs are unchanged
-    site, _reused = obtain_mesh(case, [out_dir], save_to=out_dir)
+    # reuse a mesh cached (run folder first) when the mesh inputs are unchanged
+    site, _reused = obtain_mesh(case, [out_dir, *(mesh_folders or [])], save_to=out_dir)
     files = [p.name for p in write_mesh(site, out_dir)]
     tell("flow", 0, 1)
     flow = solve_flow(site, case, base_dir=base_dir)

@@ -467,7 +467,10 @@ def build_mesh(case: Case) -> SiteMesh:
             layer_unit.append(k)
             level_frac.append((k, f))
     z = np.array(z_rows)
-    z = _fit_lenses(case, z, layer_unit, level_frac, surfaces, lens_in)
+    z, lens_notes = _fit_lenses(case, z, layer_unit, level_frac, surfaces, lens_in,
+                                node_area)
+    for note in lens_notes:
+        logger.warning("%s", note["line"])
     points, cells, cell_unit, cell_level, cell_tri, node_level = extrude(
         xy, tri, z, np.array(layer_unit, dtype=np.int64))
     cell_unit = _tag_lenses(case, xy, tri, z, layer_unit, level_frac, cell_unit, cell_level,
@@ -492,6 +495,7 @@ def build_mesh(case: Case) -> SiteMesh:
                           "plan_nodes": int(xy.shape[1]), "plan_triangles": int(tri.shape[1]),
                           "surface_rules": [a.as_dict() for a in applied],
                           "surface_rule_lines": [a.line() for a in applied],
+                          "lens_fit": lens_notes,
                           "plan_xy": xy, "plan_tri": tri, "surfaces": surfaces,
                           "borehole_nodes": boreholes, "well_nodes": well_node})
     check_volumes(site)
@@ -501,22 +505,40 @@ def build_mesh(case: Case) -> SiteMesh:
 
 
 def _imported(case: Case) -> SiteMesh:
-    """Read ``mesh.import_file`` and check its units and faces against the case."""
+    """Read ``mesh.import_file`` and check its units and faces against the case.
+
+    Unit tags must name (or number) the case's layers and lenses. Faces come from the file's
+    tagged triangles, which must then include every face of the case; a file without tagged
+    triangles gets its faces from the case's boundary outline (:func:`faces_from_outline`).
+    """
     from dataclasses import replace
 
-    from fe3d.mesh.io import read_site_mesh
+    from fe3d.mesh.io import faces_from_outline, read_site_mesh
 
     assert case.mesh.import_file is not None
-    site = read_site_mesh(Path(case.mesh.import_file))
+    where = f"mesh.import_file = {case.mesh.import_file!r}"
     units = [ly.name for ly in case.layers] + [ls.name for ls in case.lenses]
+    site = read_site_mesh(Path(case.mesh.import_file), key="mesh.import_file",
+                          unit_names=units)
     unknown = [u for u in site.layer_names if u not in units]
     if unknown:
-        msg = (f"mesh.import_file: unit tag {unknown[0]!r} of the mesh names no layer or lens "
-               f"of the case ({units})")
+        msg = (f"{where}: unit tag {unknown[0]!r} of the mesh names no layer or lens of the "
+               f"case ({units})")
         raise MeshError(msg)
     # unit index in case order, so materials follow the case's layers and lenses
     order = np.array([units.index(u) for u in site.layer_names], dtype=np.int64)
-    site = replace(site, cell_layer=order[site.cell_layer], layer_names=tuple(units))
+    needed = case.face_names()
+    faces = site.faces
+    if not faces:
+        verts, names = case.outline()
+        faces = faces_from_outline(site.points, site.cells, verts, names, where=where)
+    missing = [f for f in needed if f not in faces]
+    if missing:
+        msg = (f"{where}: the mesh has no boundary face {missing[0]!r} (its tagged faces: "
+               f"{sorted(faces)}; the case needs {needed})")
+        raise MeshError(msg)
+    site = replace(site, cell_layer=order[site.cell_layer], layer_names=tuple(units),
+                   faces={**{f: faces[f] for f in needed}, **faces})
     check_volumes(site)
     site.info["quality"] = quality_report(site)
     return site
@@ -525,20 +547,41 @@ def _imported(case: Case) -> SiteMesh:
 def obtain_mesh(case: Case, folders: list[Path], *, save_to: Path | None = None,
                 ) -> tuple[SiteMesh, bool]:
     """The case's mesh: reused from the first folder holding a cached mesh built from the
-    same mesh inputs (hash), else built (and cached in ``save_to``). Returns (mesh, reused).
+    same mesh inputs (hash), else built. Returns (mesh, reused).
+
+    ``save_to`` always ends up holding the mesh cache (``mesh.npz`` and ``mesh.json``): a
+    newly built mesh is saved there, and a mesh reused from another folder is copied there
+    byte for byte, so that folder is complete on its own.
     """
+    import shutil
+
     from fe3d.mesh.io import load_cached, mesh_inputs_hash, save_cached
 
     digest = mesh_inputs_hash(case)
     if case.mesh.import_file is None:
         for folder in folders:
             site = load_cached(folder, digest)
-            if site is not None:
-                return site, True
+            if site is None:
+                continue
+            if save_to is not None and not _same_folder(folder, save_to):
+                save_to.mkdir(parents=True, exist_ok=True)
+                for name in ("mesh.npz", "mesh.json"):
+                    tmp = save_to / f"{name}.part"
+                    shutil.copyfile(folder / name, tmp)
+                    tmp.replace(save_to / name)
+            logger.info("mesh reused from %s (mesh inputs unchanged)", folder)
+            return site, True
     site = build_mesh(case)
     if save_to is not None:
         save_cached(site, save_to, digest)
     return site, False
+
+
+def _same_folder(a: Path, b: Path) -> bool:
+    try:
+        return a.resolve() == b.resolve()
+    except OSError:
+        return False
 
 
 def check_volumes(site: SiteMesh) -> None:
@@ -651,10 +694,16 @@ def _lens_rows(case: Case, li: int, z: FloatArray, layer_unit: list[int],
 
 def _fit_lenses(case: Case, z: FloatArray, layer_unit: list[int],
                 level_frac: list[tuple[int, float]], surfaces: list[FloatArray],
-                lens_in: list[np.ndarray]) -> FloatArray:
+                lens_in: list[np.ndarray], node_area: FloatArray,
+                ) -> tuple[FloatArray, list[dict[str, object]]]:
     """Move the host-unit levels at the lens nodes so that two levels follow the lens top and
-    bottom (clipped to the host unit); levels in between are spread linearly."""
+    bottom (clipped to the host unit); levels in between are spread linearly.
+
+    Returns the levels and one record per lens side that does not lie where the case puts
+    it (clipped to the host unit, or snapped to the host's top or base), for the report.
+    """
     z = z.copy()
+    notes: list[dict[str, object]] = []
     for li, mask in enumerate(lens_in):
         lens = case.lenses[li]
         k, r0, r1, rt, rb, _ = _lens_rows(case, li, z, layer_unit, level_frac, surfaces, mask)
@@ -670,8 +719,41 @@ def _fit_lenses(case: Case, z: FloatArray, layer_unit: list[int],
             z[rt, mask] = zt
         if rb != r1:
             z[rb, mask] = zb
+        live = top > bot  # where the host is absent the lens is absent too
+        for side, want, got in (("top", lens.top, zt), ("bottom", lens.bottom, zb)):
+            shift = np.where(live, np.abs(np.asarray(got) - want), 0.0)
+            outside = live & ((want > top + 1e-6) | (want < bot - 1e-6))
+            snapped = live & ~outside & (shift > 1e-6)
+            if outside.any() or snapped.any() or not live.all():
+                notes.append(_lens_note(lens.name, lens.host, side, float(want),
+                                        np.nonzero(mask)[0], outside, snapped, shift, live,
+                                        node_area))
         del k
-    return z
+    return z, notes
+
+
+def _lens_note(name: str, host: str, side: str, want: float, idx: IndexArray,
+               outside: np.ndarray, snapped: np.ndarray, shift: FloatArray, live: np.ndarray,
+               node_area: FloatArray) -> dict[str, object]:
+    """One report record of a lens side that does not lie where the case puts it."""
+    parts = []
+    if outside.any():
+        parts.append(f"lies outside its host unit {host!r} at {int(outside.sum())} of "
+                     f"{idx.size} plan nodes inside its outline and is clipped to the host "
+                     "there")
+    if snapped.any():
+        parts.append(f"is snapped to the host's {'top' if side == 'top' else 'base'} at "
+                     f"{int(snapped.sum())} nodes (within 2 % of the host's thickness)")
+    if not live.all():
+        parts.append(f"the host is absent at {int((~live).sum())} of the {idx.size} nodes "
+                     "(no lens there)")
+    text = (f"lens {name!r} {side} ({want:g} m): " + "; ".join(parts)
+            + f"; moved by up to {float(shift.max()):.3g} m")
+    where = idx[outside | snapped | ~live]
+    return {"lens": name, "host": host, "side": side, "n_clipped": int(outside.sum()),
+            "n_snapped": int(snapped.sum()), "n_host_absent": int((~live).sum()),
+            "n_lens_nodes": int(idx.size), "max_shift_m": float(shift.max()),
+            "area_m2": float(node_area[where].sum()), "line": text}
 
 
 def _tag_lenses(case: Case, xy: FloatArray, tri: IndexArray, z: FloatArray,

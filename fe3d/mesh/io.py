@@ -3,64 +3,99 @@ mesh cache (a SiteMesh as .npz beside a hash of the case's mesh inputs)."""
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
+import io
 import json
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
 from fe3d.mesh.site_mesh import SiteMesh
 
 if TYPE_CHECKING:
     from fe3d.case.schema import Case
 
-__all__ = ["load_cached", "mesh_inputs_hash", "read_site_mesh", "save_cached"]
+__all__ = ["faces_from_outline", "load_cached", "mesh_inputs_hash", "read_site_mesh",
+           "save_cached"]
 
-MESH_FORMAT = 2  # bump when the mesher's output for the same inputs changes
+MESH_FORMAT = 3  # bump when the mesher's output for the same inputs changes
 
 
-def read_site_mesh(path: Path, *, unit_tag: str | None = None) -> SiteMesh:
+def read_site_mesh(path: Path, *, unit_tag: str | None = None, key: str = "mesh file",
+                   unit_names: list[str] | None = None) -> SiteMesh:
     """Read a tetrahedral mesh with unit tags (any format meshio reads).
 
     Units come from the ``gmsh:physical`` tags of the tetrahedra (names from the file's
-    physical names) or from an integer cell array ``unit_tag`` / ``unit_id`` (names
-    ``unit_<id>``). Boundary faces are the tagged triangles (gmsh physical surfaces).
+    physical names) or from an integer cell array ``unit_tag`` / ``unit_id`` /
+    ``cell_tags``. A tag without a name in the file is a unit number: with ``unit_names``
+    given, ``unit_id`` and ``cell_tags`` value *i* is ``unit_names[i]`` (as fe3d writes
+    ``mesh.vtu``) and gmsh physical tag *t* is ``unit_names[t - 1]`` (as fe3d writes
+    ``mesh.msh``); without, it is named ``unit_<tag>``. Boundary faces are the tagged
+    triangles (gmsh physical surfaces); a file without them gives an empty ``faces``.
 
     Raises
     ------
     MeshError
-        If the file cannot be read, holds no tetrahedra, or has no unit tags.
+        One line starting ``<key> = '<path>':`` if the file cannot be read, holds no
+        tetrahedra, has no unit tags, or has a numbered tag outside ``unit_names``.
     """
     import meshio
 
-    try:
-        m = meshio.read(path)
-    except Exception as exc:  # meshio raises many types for unreadable files
-        msg = f"mesh file {str(path)!r} cannot be read: {exc}"
+    where = f"{key} = {str(path)!r}"
+    said = io.StringIO()
+    try:  # meshio prints its reader errors and may call sys.exit: keep both in one line
+        with contextlib.redirect_stdout(said), contextlib.redirect_stderr(said):
+            m = meshio.read(path)
+    except (Exception, SystemExit) as exc:  # meshio raises many types for unreadable files
+        why = " ".join((str(exc) if not isinstance(exc, SystemExit) else "").split()) or \
+            " ".join(said.getvalue().split()) or type(exc).__name__
+        msg = f"{where}: cannot be read as a mesh ({why})"
         raise MeshError(msg) from None
     tets = [i for i, c in enumerate(m.cells) if c.type == "tetra"]
     if not tets:
-        msg = f"mesh file {str(path)!r} holds no tetrahedra (only linear tetrahedra are used)"
+        found = sorted({c.type for c in m.cells}) or ["no cells"]
+        msg = (f"{where}: holds no tetrahedra (found {', '.join(found)}; only linear "
+               "tetrahedra are used)")
         raise MeshError(msg)
     cells = np.vstack([m.cells[i].data for i in tets]).T.astype(np.int64)
     keys = [k for k in (unit_tag, "gmsh:physical", "unit_id", "cell_tags") if k]
-    tags = None
+    tags, tag_key = None, ""
     for k in keys:
         if k in m.cell_data:
             tags = np.concatenate([np.asarray(m.cell_data[k][i]) for i in tets]).astype(np.int64)
+            tag_key = k
             break
     if tags is None:
-        msg = (f"mesh file {str(path)!r} has no unit tags on its tetrahedra (looked for cell "
-               f"data {keys})")
+        msg = (f"{where}: has no unit tags on its tetrahedra (give gmsh physical groups "
+               "named after the layers and lenses, or an integer cell array unit_id)")
         raise MeshError(msg)
-    names_by_tag = {int(v[0]): k for k, v in m.field_data.items() if int(v[1]) == 3}
+    names_by_tag = {int(v[0]): k for k, v in m.field_data.items()
+                    if np.size(v) >= 2 and int(v[1]) == 3}
     uniq = np.unique(tags)
-    names = tuple(names_by_tag.get(int(t), f"unit_{int(t)}") for t in uniq)
-    cell_layer = np.searchsorted(uniq, tags).astype(np.int64)
+    offset = 1 if tag_key == "gmsh:physical" else 0
+    names_list = []
+    for t in (int(t) for t in uniq):
+        if t in names_by_tag:
+            names_list.append(names_by_tag[t])
+        elif unit_names is None:
+            names_list.append(f"unit_{t}")
+        elif 0 <= t - offset < len(unit_names):
+            names_list.append(unit_names[t - offset])
+        else:
+            msg = (f"{where}: unit tag {t} ({tag_key}) has no name in the file and is not a "
+                   f"unit number of the case ({offset}..{len(unit_names) - 1 + offset} = "
+                   f"{unit_names})")
+            raise MeshError(msg)
+    names = tuple(dict.fromkeys(names_list))  # two tags may name one unit
+    to_unit = np.array([names.index(n) for n in names_list], dtype=np.int64)
+    cell_layer = to_unit[np.searchsorted(uniq, tags)]
     faces: dict[str, Any] = {}
-    face_names = {int(v[0]): k for k, v in m.field_data.items() if int(v[1]) == 2}
+    face_names = {int(v[0]): k for k, v in m.field_data.items()
+                  if np.size(v) >= 2 and int(v[1]) == 2}
     if "gmsh:physical" in m.cell_data:
         for i, c in enumerate(m.cells):
             if c.type != "triangle":
@@ -71,17 +106,77 @@ def read_site_mesh(path: Path, *, unit_tag: str | None = None) -> SiteMesh:
                 tri = c.data[phys == t].T.astype(np.int64)
                 faces[name] = np.hstack([faces[name], tri]) if name in faces else tri
     points = np.ascontiguousarray(m.points.T[:3].astype(float))
+    if points.shape[0] < 3:
+        msg = f"{where}: its points have {points.shape[0]} coordinates (3 needed)"
+        raise MeshError(msg)
     used = np.unique(cells)
     if used.size != points.shape[1]:  # drop nodes no tetrahedron uses
         remap = np.full(points.shape[1], -1, dtype=np.int64)
         remap[used] = np.arange(used.size)
         points, cells = points[:, used], remap[cells]
         faces = {k: remap[v] for k, v in faces.items()}
+        if any((v < 0).any() for v in faces.values()):
+            msg = f"{where}: a tagged boundary triangle uses a node of no tetrahedron"
+            raise MeshError(msg)
     a, b, c, d = (points[:, cells[i]] for i in range(4))
     neg = np.einsum("ij,ij->j", b - a, np.cross(c - a, d - a, axis=0)) < 0
     cells[[1, 2]] = np.where(neg, cells[[2, 1]], cells[[1, 2]])
     return SiteMesh(points=points, cells=cells, cell_layer=cell_layer, layer_names=names,
                     faces=faces, info={"imported_from": str(path)})
+
+
+def faces_from_outline(points: FloatArray, cells: IndexArray,
+                       vertices: list[tuple[float, float]], edge_names: list[str], *,
+                       where: str = "mesh file") -> dict[str, IndexArray]:
+    """Name the boundary triangles of a tetrahedral mesh from a plan outline.
+
+    A boundary triangle whose three nodes lie on one outline edge (within 1e-6 of the
+    outline's extent) takes that edge's name; any other one is ``top`` if its outward
+    normal points up and ``bottom`` if it points down. A steep triangle on no edge means
+    the mesh does not follow the outline: ``MeshError``.
+    """
+    quad = [[0, 1, 2, 3], [0, 1, 3, 2], [0, 2, 3, 1], [1, 2, 3, 0]]
+    allf = np.hstack([cells[q[:3]] for q in quad])
+    opp = np.concatenate([cells[q[3]] for q in quad])
+    key = np.sort(allf, axis=0).astype(np.int64)
+    n = np.int64(points.shape[1])
+    code = (key[0] * n + key[1]) * n + key[2]
+    _, inv, count = np.unique(code, return_inverse=True, return_counts=True)
+    single = count[inv] == 1
+    tri, op = allf[:, single], opp[single]
+    a, b, c = (points[:, tri[i]] for i in range(3))
+    normal = np.cross(b - a, c - a, axis=0)
+    flip = np.einsum("ij,ij->j", normal, points[:, op] - a) > 0
+    normal[:, flip] *= -1
+    nz = normal[2] / np.linalg.norm(normal, axis=0)
+    v = np.asarray(vertices, dtype=float)
+    tol = 1e-6 * max(1.0, float(np.ptp(v, axis=0).max()))
+    lateral = np.full(tri.shape[1], -1)
+    for i in range(len(v)):
+        p0, p1 = v[i], v[(i + 1) % len(v)]
+        d = p1 - p0
+        on = np.ones(tri.shape[1], dtype=bool)
+        for j in range(3):
+            q = points[:2, tri[j]].T - p0
+            t = np.clip(q @ d / (d @ d), 0.0, 1.0)
+            on &= np.linalg.norm(q - t[:, None] * d, axis=1) <= tol
+        lateral = np.where(on & (lateral < 0), i, lateral)
+    out: dict[str, IndexArray] = {}
+    for name in dict.fromkeys(edge_names):
+        ids = [i for i, e in enumerate(edge_names) if e == name]
+        out[name] = tri[:, np.isin(lateral, ids)]
+    rest = lateral < 0
+    steep = rest & (np.abs(nz) < 1e-3)
+    if steep.any():
+        j = int(np.nonzero(steep)[0][0])
+        x, y, z = points[:, tri[:, j]].mean(axis=1)
+        msg = (f"{where}: {int(steep.sum())} steep boundary triangles lie on no edge of the "
+               f"case's boundary (first near x={x:.2f} m, y={y:.2f} m, z={z:.2f} m); tag the "
+               "boundary triangles or make the mesh follow the boundary polygon")
+        raise MeshError(msg)
+    out["top"] = tri[:, rest & (nz > 0)]
+    out["bottom"] = tri[:, rest & (nz < 0)]
+    return out
 
 
 def mesh_inputs_hash(case: Case) -> str:
@@ -110,6 +205,7 @@ def save_cached(site: SiteMesh, folder: Path, digest: str) -> Path:
             "faces": list(site.faces),
             "quality": site.info.get("quality"),
             "surface_rules": site.info.get("surface_rules", []),
+            "lens_fit": site.info.get("lens_fit", []),
             "sublayers": site.info.get("sublayers")}
     (folder / "mesh.json").write_text(json.dumps(meta, indent=2), encoding="utf-8")
     return folder / "mesh.npz"
@@ -130,6 +226,7 @@ def load_cached(folder: Path, digest: str) -> SiteMesh | None:
                             layer_names=tuple(meta["units"]), faces=faces,
                             info={"reused_from": str(folder), "quality": meta.get("quality"),
                                   "surface_rules": meta.get("surface_rules", []),
+                                  "lens_fit": meta.get("lens_fit", []),
                                   "sublayers": meta.get("sublayers")})
     except (OSError, ValueError, KeyError):
         return None

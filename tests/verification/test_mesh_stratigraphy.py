@@ -14,6 +14,7 @@ Sources of the expected values (each test says which it uses):
 
 from __future__ import annotations
 
+import json
 import math
 from pathlib import Path
 
@@ -25,7 +26,7 @@ from scipy.interpolate import LinearNDInterpolator, RBFInterpolator
 from fe3d.case.load import load_case
 from fe3d.errors import CaseErrors, MeshError
 from fe3d.mesh.build import build_mesh
-from fe3d.mesh.io import read_site_mesh
+from fe3d.mesh.io import mesh_inputs_hash, read_site_mesh, save_cached
 from fe3d.post.vtk import write_mesh
 
 pytestmark = pytest.mark.verification
@@ -363,3 +364,43 @@ def test_box_case_faces_unchanged():
     root = Path(__file__).parents[2]
     site = build_mesh(load_case(root / "cases" / "tiny" / "case.toml"))
     assert set(site.faces) == {"west", "east", "south", "north", "top", "bottom"}
+
+
+def test_lens_sticking_out_of_its_host_is_reported(tmp_path, caplog):
+    """A lens whose top (3 m) lies above its host unit's top (the base of 'middle', at most
+    2.5 m here) is clipped to the host and the clipping is reported by lens name: in the mesh
+    info, in mesh.json and as a logged warning (behaviour requirement, no source); the clipped
+    lens still fills its outline between the host top and its bottom (truncated prisms, as
+    in M1) and a lens inside its host is not reported."""
+    extra = """
+[[lenses]]
+name = "peat_lens"
+material = "sand"
+host = "lower"
+polygon = [["40 m", "30 m"], ["80 m", "30 m"], ["80 m", "60 m"], ["40 m", "60 m"]]
+top = "3 m"
+bottom = "-5 m"
+[[lenses]]
+name = "inner_lens"
+material = "sand"
+host = "lower"
+polygon = [["90 m", "20 m"], ["110 m", "20 m"], ["110 m", "35 m"], ["90 m", "35 m"]]
+top = "-3 m"
+bottom = "-5 m"
+"""
+    with caplog.at_level("WARNING", logger="fe3d.mesh.build"):
+        site = build_mesh(load_case(write_case(tmp_path, irregular_rows(), extra=extra)))
+    notes = site.info["lens_fit"]
+    assert [(n["lens"], n["side"]) for n in notes] == [("peat_lens", "top")]
+    assert notes[0]["n_clipped"] == notes[0]["n_lens_nodes"] > 0
+    assert notes[0]["line"].startswith("lens 'peat_lens' top (3 m): lies outside its host "
+                                       "unit 'lower'")
+    assert any("peat_lens" in r.getMessage() and r.levelname == "WARNING"
+               for r in caplog.records)
+    assert not any("inner_lens" in r.getMessage() for r in caplog.records)
+    save_cached(site, tmp_path / "m", mesh_inputs_hash(load_case(tmp_path / "case.toml")))
+    meta = json.loads((tmp_path / "m" / "mesh.json").read_text())
+    assert meta["lens_fit"][0]["lens"] == "peat_lens"
+    # clipped lens = host top (the 'middle' base surface) down to -5 m inside the outline
+    assert site.cell_volumes().min() > 0
+    assert unit_volumes(site)["inner_lens"] == pytest.approx(20 * 15 * 2.0, rel=1e-9)
