@@ -9,6 +9,7 @@ polygon area) and the readers of the borehole and surface-point CSV files. Value
 from __future__ import annotations
 
 import csv
+import itertools
 import math
 from pathlib import Path
 from typing import Annotated, Literal
@@ -32,9 +33,11 @@ __all__ = [
     "Lens",
     "RefinementLine",
     "Stratigraphy",
+    "SurfaceGrid",
     "point_in_polygon",
     "polygon_area",
     "read_borehole_file",
+    "read_grid_file",
     "read_surface_file",
     "self_intersection",
 ]
@@ -68,6 +71,15 @@ class Borehole(Section):
     bases: dict[Name, Length | None] = Field(default_factory=dict)
 
 
+class SurfaceGrid(Section):
+    """A surface on a regular plan grid: node x [m] (increasing), node y [m] (increasing) and
+    elevations ``z[j][i]`` [m] at (x[i], y[j]); bilinear between the nodes."""
+
+    x: Annotated[list[Length], Field(min_length=2)]
+    y: Annotated[list[Length], Field(min_length=2)]
+    z: list[list[Length]]
+
+
 class Stratigraphy(Section):
     """Where the layer surfaces come from and how they are interpolated.
 
@@ -76,7 +88,9 @@ class Stratigraphy(Section):
     ``thin_plate`` (thin-plate spline radial basis function with a linear polynomial part,
     scipy ``RBFInterpolator``; it also extrapolates). Both pass through every data point.
     ``min_thickness``: a unit thinner than this at a plan node is removed there (see
-    docs/theory.md, mesh section).
+    docs/theory.md, mesh section). ``grid_files`` (surface name → grid CSV file) and
+    ``grids`` give a surface (``ground`` or a unit's base) on a regular grid instead, taken
+    bilinearly from the grid alone (picks of that surface are not used).
     """
 
     borehole_file: str | None = None
@@ -84,6 +98,8 @@ class Stratigraphy(Section):
     surface_files: dict[Name, str] = Field(default_factory=dict)
     surface_points: dict[Name, list[tuple[Length, Length, Length]]] = Field(
         default_factory=dict)
+    grid_files: dict[Name, str] = Field(default_factory=dict)
+    grids: dict[Name, SurfaceGrid] = Field(default_factory=dict)
     interpolation: Literal["linear", "thin_plate"] = "linear"
     min_thickness: NonNegativeLength = 0.1
 
@@ -203,11 +219,17 @@ def _number(text: str, key: str, where: str) -> float:
     return v
 
 
-def _rows(path: Path, key: str) -> tuple[list[str], list[list[str]]]:
+def _rows(path: Path, key: str) -> tuple[list[str], list[list[str]], list[int]]:
+    """Header cells, data rows (cells stripped) and the file line number of every row
+    (header first); blank lines and lines starting with ``#`` are skipped."""
+    rows, nums = [], []
     try:
         with path.open(encoding="utf-8", newline="") as fh:
-            rows = [r for r in csv.reader(fh) if r and any(c.strip() for c in r)
-                    and not r[0].lstrip().startswith("#")]
+            reader = csv.reader(fh)
+            for r in reader:
+                if r and any(c.strip() for c in r) and not r[0].lstrip().startswith("#"):
+                    rows.append(r)
+                    nums.append(reader.line_num)
     except OSError as exc:
         raise CaseError(key, str(path), f"cannot be read ({exc.strerror})") from None
     except UnicodeDecodeError:
@@ -215,7 +237,7 @@ def _rows(path: Path, key: str) -> tuple[list[str], list[list[str]]]:
     if not rows:
         raise CaseError(key, str(path), "has no header row")
     header = [c.strip() for c in rows[0]]
-    return header, [[c.strip() for c in r] for r in rows[1:]]
+    return header, [[c.strip() for c in r] for r in rows[1:]], nums
 
 
 def read_borehole_file(path: Path, *, key: str = "stratigraphy.borehole_file",
@@ -224,7 +246,7 @@ def read_borehole_file(path: Path, *, key: str = "stratigraphy.borehole_file",
     holding the elevation of that unit's base [m]; an empty cell means the unit is absent.
     Lines starting with ``#`` are comments.
     """
-    header, rows = _rows(path, key)
+    header, rows, nums = _rows(path, key)
     lower = [h.lower() for h in header]
     if lower[:4] != ["borehole", "x", "y", "ground"]:
         raise CaseError(key, str(path), "must start with the header columns borehole, x, y, "
@@ -232,7 +254,7 @@ def read_borehole_file(path: Path, *, key: str = "stratigraphy.borehole_file",
     units = header[4:]
     out: list[Borehole] = []
     seen: set[str] = set()
-    for k, r in enumerate(rows, start=2):
+    for k, r in zip(nums[1:], rows, strict=True):
         name = r[0] if r else ""
         where = f"{path.name} line {k}"
         if not name:
@@ -254,16 +276,52 @@ def read_borehole_file(path: Path, *, key: str = "stratigraphy.borehole_file",
 
 def read_surface_file(path: Path, *, key: str) -> list[tuple[float, float, float]]:
     """Read surface points: a header ``x, y, z`` then one point per row [m]."""
-    header, rows = _rows(path, key)
+    header, rows, nums = _rows(path, key)
     if [h.lower() for h in header[:3]] != ["x", "y", "z"]:
         raise CaseError(key, str(path), "must have the header x, y, z")
     pts = []
-    for k, r in enumerate(rows, start=2):
+    for k, r in zip(nums[1:], rows, strict=True):
         where = f"{path.name} line {k}"
         if len(r) < 3:
             raise CaseError(f"{key}[line {k}]", ",".join(r), f"needs x, y and z ({where})")
         pts.append(tuple(_number(r[i], f"{key}[line {k}]", where) for i in range(3)))
     return pts  # type: ignore[return-value]
+
+
+def read_grid_file(path: Path, *, key: str) -> SurfaceGrid:
+    """Read a grid CSV: the header row holds any label, then the node x coordinates [m]; each
+    following row holds a node y coordinate [m], then the elevation [m] at every x. x and y
+    must be strictly increasing or strictly decreasing; rows come back sorted increasing.
+    Lines starting with ``#`` are comments.
+    """
+    header, rows, nums = _rows(path, key)
+    if len(header) < 3:
+        raise CaseError(key, str(path), "the header row must hold a label, then at least two "
+                                        "x coordinates in metres")
+    xs = [_number(h, f"{key}[line {nums[0]}]", f"{path.name} line {nums[0]}")
+          for h in header[1:]]
+    ys: list[float] = []
+    zs: list[list[float]] = []
+    for k, r in zip(nums[1:], rows, strict=True):
+        where = f"{path.name} line {k}"
+        if len(r) != len(header):
+            raise CaseError(f"{key}[line {k}]", f"{len(r)} columns",
+                            f"must have a y coordinate and one elevation per x ({len(header)} "
+                            f"columns, {where})")
+        ys.append(_number(r[0], f"{key}[line {k}]", where))
+        zs.append([_number(c, f"{key}[line {k}]", where) for c in r[1:]])
+    if len(ys) < 2:
+        raise CaseError(key, str(path), "needs at least two rows of elevations (y values)")
+    for what, v in (("x", xs), ("y", ys)):
+        d = [b - a for a, b in itertools.pairwise(v)]
+        if not (all(x > 0 for x in d) or all(x < 0 for x in d)):
+            raise CaseError(key, str(path), f"the {what} coordinates must be strictly "
+                                            "increasing or strictly decreasing")
+    if xs[0] > xs[-1]:
+        xs, zs = xs[::-1], [row[::-1] for row in zs]
+    if ys[0] > ys[-1]:
+        ys, zs = ys[::-1], zs[::-1]
+    return SurfaceGrid.model_construct(x=xs, y=ys, z=zs)
 
 
 # ------------------------------------------------------------------- outline and case checks
@@ -309,6 +367,8 @@ def ground_top(case: object) -> float | None:
     box = getattr(case, "box", None)
     boundary = getattr(case, "boundary", None)
     strat = getattr(case, "stratigraphy", None)
+    if strat is not None and "ground" in strat.grids:
+        return max(max(row) for row in strat.grids["ground"].z)
     if strat is not None and (strat.boreholes or "ground" in strat.surface_points):
         z = [b.ground for b in strat.boreholes]
         z += [p[2] for p in strat.surface_points.get("ground", [])]
@@ -333,6 +393,8 @@ def base_bottom(case: object) -> float | None:
     strat = getattr(case, "stratigraphy", None)
     if strat is None:
         return None
+    if last.name in strat.grids:
+        return min(min(row) for row in strat.grids[last.name].z)
     z = [v for b in strat.boreholes for v in b.bases.values() if v is not None]
     z += [p[2] for pts in strat.surface_points.values() for p in pts]
     return min(z) if z else None
@@ -416,15 +478,17 @@ def _stratigraphy_checks(case: object, errs: list[CaseError]) -> None:
                                           f"x = {x:g} m, y = {y:g} m",
                                           "the point lies outside the model boundary"))
                     break
+        _grid_checks(case, strat, layers, errs)
         need = 3  # both methods need three points not on one line (a plane)
         n_ground = len(strat.boreholes) + len(strat.surface_points.get("ground", []))
-        if n_ground < need and getattr(case, "box", None) is None and (
+        if n_ground < need and "ground" not in strat.grids and getattr(
+                case, "box", None) is None and (
                 getattr(case, "boundary", None) is None or case.boundary.top is None):  # type: ignore[attr-defined]
             errs.append(CaseError("stratigraphy.boreholes", f"{n_ground} ground picks",
                                   f"{strat.interpolation} interpolation needs at least {need} "
                                   "points not on one line"))
         for ly in layers:
-            if ly.bottom is not None:
+            if ly.bottom is not None or ly.name in strat.grids:
                 continue
             # a borehole without this unit still fixes its base (at the surface above)
             n = len(strat.boreholes) + len(strat.surface_points.get(ly.name, []))
@@ -434,12 +498,49 @@ def _stratigraphy_checks(case: object, errs: list[CaseError]) -> None:
                                       f"at least {need} boreholes or surface points"))
     for ly in layers:
         if ly.bottom is None and (strat is None or (
-                ly.name not in picked and ly.name not in strat.surface_points)):
+                ly.name not in picked and ly.name not in strat.surface_points
+                and ly.name not in strat.grids)):
             errs.append(CaseError(f"layers[{ly.name}].bottom", _Missing(),
-                                  "give a bottom, or borehole picks or surface points for it"))
+                                  "give a bottom, or borehole picks, surface points or a grid "
+                                  "for it"))
         if ly.sublayers is not None and ly.cell_thickness is not None:
             errs.append(CaseError(f"layers[{ly.name}].sublayers", ly.sublayers,
                                   "give either sublayers or cell_thickness, not both"))
+
+
+def _grid_checks(case: object, strat: Stratigraphy, layers: list, errs: list[CaseError],
+                 ) -> None:
+    """Grid surfaces: a known surface given once, a regular shape, covering the outline."""
+    units = [ly.name for ly in layers]
+    verts, _ = plan_outline(case)
+    for name, g in strat.grids.items():
+        key = (f"stratigraphy.grid_files.{name}" if name in strat.grid_files
+               else f"stratigraphy.grids.{name}")
+        if name != "ground" and name not in units:
+            errs.append(CaseError(key, name, f"must be 'ground' or a unit: {units}"))
+            continue
+        if name in strat.surface_points:
+            errs.append(CaseError(key, name, "give a surface either as a grid or as surface "
+                                             "points, not both"))
+        if name != "ground" and layers[units.index(name)].bottom is not None:
+            errs.append(CaseError(key, name, f"layers[{name}] has a bottom: give either a "
+                                             "bottom or a grid, not both"))
+        if len(g.z) != len(g.y) or any(len(row) != len(g.x) for row in g.z):
+            errs.append(CaseError(f"{key}.z", f"{len(g.z)} rows",
+                                  f"must hold one row per y ({len(g.y)}) of one elevation per "
+                                  f"x ({len(g.x)})"))
+            continue
+        if any(b <= a for a, b in itertools.pairwise(g.x)) or any(
+                b <= a for a, b in itertools.pairwise(g.y)):
+            errs.append(CaseError(key, name, "grid x and y must be strictly increasing"))
+            continue
+        tol = 1e-9 * max(g.x[-1] - g.x[0], g.y[-1] - g.y[0])
+        out = [v for v in verts if not (g.x[0] - tol <= v[0] <= g.x[-1] + tol
+                                        and g.y[0] - tol <= v[1] <= g.y[-1] + tol)]
+        if out:
+            errs.append(CaseError(key, f"x {g.x[0]:g}–{g.x[-1]:g} m, y {g.y[0]:g}–{g.y[-1]:g} m",
+                                  f"the grid must cover the model boundary (vertex x = "
+                                  f"{out[0][0]:g} m, y = {out[0][1]:g} m lies outside it)"))
 
 
 def _lens_checks(case: object, errs: list[CaseError]) -> None:

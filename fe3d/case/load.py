@@ -8,7 +8,7 @@ from typing import Any
 
 from pydantic import ValidationError
 
-from fe3d.case.geology import read_borehole_file, read_surface_file
+from fe3d.case.geology import read_borehole_file, read_grid_file, read_surface_file
 from fe3d.case.schema import Case, cross_checks
 from fe3d.errors import CaseError, CaseErrors
 
@@ -170,7 +170,8 @@ def with_geology_files(case: Case, base_dir: Path) -> Case:
         case = case.model_copy(update={"mesh": case.mesh.model_copy(
             update={"import_file": path})})
     strat = case.stratigraphy
-    if strat is None or (strat.borehole_file is None and not strat.surface_files):
+    if strat is None or (strat.borehole_file is None and not strat.surface_files
+                         and not strat.grid_files):
         return case
     update: dict[str, Any] = {}
     if strat.borehole_file is not None:
@@ -182,4 +183,8 @@ def with_geology_files(case: Case, base_dir: Path) -> Case:
             pts[unit] = [*pts.get(unit, []), *read_surface_file(
                 base_dir / name, key=f"stratigraphy.surface_files.{unit}")]
         update["surface_points"] = pts
+    if strat.grid_files:
+        update["grids"] = {**strat.grids, **{
+            name: read_grid_file(base_dir / file, key=f"stratigraphy.grid_files.{name}")
+            for name, file in strat.grid_files.items()}}
     return case.model_copy(update={"stratigraphy": strat.model_copy(update=update)})

@@ -14,6 +14,10 @@ Interpolation methods (chosen per case, ``stratigraphy.interpolation``):
 
 Both pass through every data point (to round-off).
 
+A surface given on a regular grid (``stratigraphy.grids`` / ``grid_files``) is taken from the
+grid alone, bilinearly in each grid rectangle (:func:`grid_surface`); it equals the grid
+values at the grid nodes.
+
 Rules, applied top down at every plan node (t_min = ``stratigraphy.min_thickness``):
 
 1. Crossing: a unit base above the unit's top is lowered onto the top (the surface above
@@ -37,7 +41,8 @@ from fe3d.errors import MeshError
 if TYPE_CHECKING:
     from fe3d.case.schema import Case
 
-__all__ = ["RuleApplied", "interpolate_surface", "surface_data", "unit_surfaces"]
+__all__ = ["RuleApplied", "grid_surface", "interpolate_surface", "surface_data",
+           "unit_surfaces"]
 
 
 @dataclass(frozen=True)
@@ -109,6 +114,30 @@ def interpolate_surface(data_xy: FloatArray, data_z: FloatArray, xy: FloatArray,
                f"one line (found {k})")
         raise MeshError(msg) from None
     return np.asarray(z, dtype=float)
+
+
+def grid_surface(x: FloatArray, y: FloatArray, z: FloatArray, xy: FloatArray) -> FloatArray:
+    """Bilinear interpolation on a regular grid.
+
+    Parameters
+    ----------
+    x, y
+        Grid node coordinates [m], strictly increasing, shapes ``(nx,)`` and ``(ny,)``.
+    z
+        Elevations [m] at (x[i], y[j]), shape ``(ny, nx)``.
+    xy
+        Where to evaluate [m], shape ``(2, n)``; points outside the grid (round-off) take
+        the value at the nearest point of the grid's edge.
+    """
+    x, y, z = (np.asarray(a, dtype=float) for a in (x, y, z))
+    px = np.clip(xy[0], x[0], x[-1])
+    py = np.clip(xy[1], y[0], y[-1])
+    i = np.clip(np.searchsorted(x, px, side="right") - 1, 0, x.size - 2)
+    j = np.clip(np.searchsorted(y, py, side="right") - 1, 0, y.size - 2)
+    u = (px - x[i]) / (x[i + 1] - x[i])
+    v = (py - y[j]) / (y[j + 1] - y[j])
+    return ((1 - u) * (1 - v) * z[j, i] + u * (1 - v) * z[j, i + 1]
+            + (1 - u) * v * z[j + 1, i] + u * v * z[j + 1, i + 1])
 
 
 def _hull_edge_values(d: FloatArray, z: FloatArray, hull: Any, q: FloatArray) -> FloatArray:
@@ -194,7 +223,15 @@ def unit_surfaces(case: Case, xy: FloatArray, node_area: FloatArray,
     data = surface_data(case) if strat is not None else {}
     method = strat.interpolation if strat is not None else "linear"
     t_min = strat.min_thickness if strat is not None else 0.0
-    if "ground" in data:
+    grids = strat.grids if strat is not None else {}
+
+    def from_grid(name: str) -> FloatArray:
+        g = grids[name]
+        return grid_surface(np.asarray(g.x), np.asarray(g.y), np.asarray(g.z), xy)
+
+    if "ground" in grids:
+        ground = from_grid("ground")
+    elif "ground" in data:
         ground = interpolate_surface(*data["ground"], xy, method=method, what="ground")
     else:
         ground = np.full(n, case.z_top)
@@ -203,6 +240,8 @@ def unit_surfaces(case: Case, xy: FloatArray, node_area: FloatArray,
         if layer.bottom is not None:
             gx, gy = layer.bottom_gradient
             surfaces.append(layer.bottom + gx * (xy[0] - x0) + gy * (xy[1] - y0))
+        elif layer.name in grids:
+            surfaces.append(from_grid(layer.name))
         else:
             surfaces.append(interpolate_surface(*data[layer.name], xy, method=method,
                                                 what=layer.name))
