@@ -30,7 +30,8 @@ class Well(Section):
 
     ``rate`` is the total volume rate [m³/s]; ``kind`` says whether water is taken out
     (extraction) or put in (injection). The rate is split over the screens in proportion to
-    conductivity × screened length.
+    conductivity × screened length. When ``unit`` names the screened unit, every screen must
+    lie in it at the well (a unit pinched out there is an error).
     """
 
     name: Name
@@ -39,6 +40,7 @@ class Well(Section):
     screens: list[Range] = Field(min_length=1)
     rate: PositiveRate = 0.0
     kind: Literal["extraction", "injection", "observation"] = "extraction"
+    unit: Name | None = None
 
 
 class Recharge(Section):
@@ -50,19 +52,19 @@ class Recharge(Section):
 
 
 class HeadDependent(Section):
-    """A head-dependent boundary on (part of) the top face: q_in = leakance · (stage − h).
+    """A head-dependent boundary on a named face (default the top), optionally limited to
+    the part inside a plan polygon: q_in = leakance · (stage − h).
 
     A ``river`` both gains and loses water; a ``drain`` only removes water (no inflow when
-    the head is below the stage). ``bed_bottom`` is the elevation of the bed base; it must lie
-    above the model base under the zone.
+    the head is below the stage).
     """
 
     name: Name
     kind: Literal["river", "drain"]
     stage: Length
     leakance: PositiveLeakance
-    zone: PlanPolygon
-    bed_bottom: Length | None = None
+    face: Name = "top"
+    zone: PlanPolygon | None = None
 
 
 class SpecifiedFlux(Section):
@@ -99,6 +101,10 @@ def hydro_checks(case: Case) -> list[CaseError]:
             errs.append(CaseError(f"{key}.rate", f"{w.rate:g} m^3/s",
                                   f"an {w.kind} well needs a rate greater than zero"))
     faces = case.face_names()
+    for hd in case.head_dependent:
+        if hd.face not in faces:
+            errs.append(CaseError(f"head_dependent[{hd.name}].face", hd.face,
+                                  f"must be one of the faces: {faces}"))
     for i, sf in enumerate(case.specified_fluxes):
         if sf.face not in faces:
             errs.append(CaseError(f"specified_fluxes[{i}].face", sf.face,

@@ -12,6 +12,7 @@ import scipy.sparse as sp
 from skfem import condense
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.case.hydro import Well
 from fe3d.case.schema import Case, Material
 from fe3d.errors import CaseError, SolverError
 from fe3d.flow.assembly import conductance_matrix
@@ -187,7 +188,9 @@ def solve_flow(
         spacing = max(case.mesh.layer_cell_thickness / 4.0, 0.05)
         pts = np.hstack([screen_points(well.x, well.y, t, b, spacing=spacing)
                          for t, b in well.screens])
-        op, _ = sample_operator(p, site.cells, pts, weights_per_cell=principal[0])
+        op, in_cells = sample_operator(p, site.cells, pts, weights_per_cell=principal[0])
+        if well.unit is not None:
+            _check_screened_unit(site, well, in_cells)
         well_ops[well.name] = op
         sign = {"extraction": -1.0, "injection": 1.0, "observation": 0.0}[well.kind]
         items.append((well.name, "well", sign * well.rate * np.asarray(op.todense()).ravel()))
@@ -196,16 +199,22 @@ def solve_flow(
     # head-dependent zones (lumped): inflow = L a_i (stage − h_i); drains only remove water
     robin = []
     for hd in case.head_dependent:
-        mask = in_polygon(top_c[0], top_c[1], hd.zone)
+        tri = site.faces[hd.face]
+        cen = p[:, tri].mean(axis=1)
+        mask = np.ones(tri.shape[1], dtype=bool) if hd.zone is None else \
+            in_polygon(cen[0], cen[1], hd.zone)
+        key = f"head_dependent[{hd.name}]"
         if not mask.any():
-            raise CaseError(f"head_dependent[{hd.name}].zone", "(polygon)",
-                            "must cover at least one top face of the mesh")
-        cell_bottom = _top_cell_bottom(site, top[:, mask])
-        if hd.stage < cell_bottom:
-            raise CaseError(f"head_dependent[{hd.name}].stage", f"{hd.stage:g} m",
-                            f"must not lie below the bottom of the top cells under the zone "
-                            f"({cell_bottom:.3g} m)")
-        la = hd.leakance * lumped_face_weights(p, top, n, mask)
+            raise CaseError(f"{key}.zone", "(polygon)",
+                            f"must cover at least one triangle of the face {hd.face!r}")
+        floor = _top_cell_bottom(site, tri[:, mask]) if hd.face == "top" else \
+            float(p[2, tri[:, mask]].min())
+        if hd.stage < floor:
+            where = "the bottom of the top cells under the zone" if hd.face == "top" else \
+                "the lowest point of the zone on its face"
+            raise CaseError(f"{key}.stage", f"{hd.stage:g} m",
+                            f"must not lie below {where} ({floor:.3g} m)")
+        la = hd.leakance * lumped_face_weights(p, tri, n, mask)
         la[is_fixed] = 0.0
         robin.append((hd, la))
 
@@ -264,3 +273,29 @@ def _top_cell_bottom(site: SiteMesh, tri: IndexArray) -> float:
     is_top[top_nodes] = True
     touching = np.any(is_top[site.cells], axis=0)
     return float(np.max(z[site.cells[:, touching]].min(axis=0)))
+
+
+def _check_screened_unit(site: SiteMesh, well: Well, screen_cells: IndexArray) -> None:
+    """Every screen sample must lie in the well's named unit (theory.md F7)."""
+    key = f"wells[{well.name}].unit"
+    if well.unit not in site.layer_names:
+        raise CaseError(key, well.unit, f"must be one of the units: {list(site.layer_names)}")
+    u = site.layer_names.index(well.unit)
+    found = site.cell_layer[screen_cells]
+    if np.all(found == u):
+        return
+    # is the unit present at all in the column under the well?
+    col = np.nonzero(np.hypot(site.points[0] - well.x, site.points[1] - well.y) < 1e-6)[0]
+    present = False
+    if col.size >= 2:
+        z = np.sort(site.points[2, col])
+        mid = 0.5 * (z[1:] + z[:-1])
+        pts = np.vstack([np.full(mid.size, well.x), np.full(mid.size, well.y), mid])
+        _, cells = sample_operator(site.points, site.cells, pts)
+        present = bool(np.any(site.cell_layer[cells] == u))
+    if not present:
+        raise CaseError(key, well.unit, "this unit is pinched out (absent) at the well; "
+                        "screen another unit")
+    others = sorted({site.layer_names[i] for i in np.unique(found) if i != u})
+    raise CaseError(key, well.unit, f"the screens also reach {others}; keep them inside "
+                    f"{well.unit!r} at the well")
