@@ -153,6 +153,10 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool) -> int:
                   f"{from_si(o.peak_time, tu):.3g} {tu}", first,
                   f"{summary.mass_balance_error[o.species]:.1e}")
     con.print(t)
+    for sp, p in summary.plume.items():
+        con.print(f"{sp}: part above the limit reaches {p['largest_extent']:.4g} m from the "
+                  f"source at most ({from_si(p['time_of_largest_extent'], tu):.3g} {tu}), "
+                  f"{p['final_extent']:.4g} m at the end")
     for a in summary.travel_times:
         when = "no pathline passes" if a["time"] is None else \
             f"{from_si(float(a['time']), tu):.3g} {tu}"  # type: ignore[arg-type]

@@ -15,9 +15,15 @@ from fe3d.flow.solve import FlowField, solve_flow, unit_materials
 from fe3d.mesh.build import build_mesh, obtain_mesh
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.post.figures import plot_breakthrough, plot_heads
+from fe3d.post.plume import plume_extent, write_isosurface
 from fe3d.post.probes import breakthrough
 from fe3d.post.report import ObservationResult, RunSummary, write_report, write_summary_json
-from fe3d.post.tables import write_flow_budget, write_histories, write_mass_budget
+from fe3d.post.tables import (
+    write_flow_budget,
+    write_histories,
+    write_mass_budget,
+    write_plume_table,
+)
 from fe3d.post.vtk import write_field, write_mesh, write_pathlines, write_pvd
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.run import Snapshot, run_transport
@@ -87,6 +93,17 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
                title=f"{case.title}: head on the top face")
     files += ["pathlines_forward.vtp", "pathlines_backward.vtp", "heads_plan.png"]
 
+    # lumped nodal volumes for the plume measures (∫φ_j dV = V_e/4 per cell node)
+    vol = np.abs(site.cell_volumes())
+    node_volume = np.bincount(site.cells.ravel(), weights=np.tile(vol / 4.0, 4),
+                              minlength=site.n_nodes)
+    node_pore = np.bincount(site.cells.ravel(), weights=np.tile(theta * vol / 4.0, 4),
+                            minlength=site.n_nodes)
+    origins = {sp: next(((0.5 * sum(s.x), 0.5 * sum(s.y)) for s in case.sources
+                         if s.species == sp and s.x is not None and s.y is not None),
+                        (float(site.points[0].mean()), float(site.points[1].mean())))
+               for sp in case.species}
+    plume_rows: list[tuple[str, float, float, float, float, float]] = []
     series: list[tuple[float, str]] = []
     budgets: list[MassBudget] = []
     last: Snapshot | None = None
@@ -99,6 +116,13 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
                     point_data={f"{sp} [{cu}]": c * scale for sp, c in snap.concentration.items()})
         series.append((from_si(snap.time, tu), name))
         write_pvd(out_dir / "concentration.pvd", series, time_unit=tu)
+        for sp, c in snap.concentration.items():
+            lim = case.species[sp].limit
+            ext = plume_extent(site.points, node_volume, node_pore, c, lim, origins[sp])
+            plume_rows.append((sp, snap.time, lim, ext.volume, ext.dissolved_mass, ext.extent))
+            write_isosurface(out_dir / f"plume_{sp}_{k:04d}.vtp", site.points, site.cells,
+                             c * scale, lim * scale, name=f"{sp} [{cu}]")
+        write_plume_table(out_dir / "plume.csv", plume_rows, time_unit=tu, conc_unit=cu)
         budgets += list(snap.budgets.values())
         write_mass_budget(out_dir / "mass_budget.csv", budgets, time_unit=tu)
         last = snap
@@ -111,8 +135,9 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
         plot_breakthrough(out_dir / "breakthrough.png", last.history_times, last.history, names,
                           limits, time_unit=tu, conc_unit=cu, title=case.title)
         files.append("breakthrough.png")
+    files += [f"plume_{sp}_{k:04d}.vtp" for k in range(len(series)) for sp in case.species]
     files += ["concentration.pvd", *[f for _, f in series], "mass_budget.csv", "histories.csv",
-              "summary.json", "report.md"]
+              "plume.csv", "summary.json", "report.md"]
     obs_results = []
     for sp, values in last.history.items():
         for j, o in enumerate(case.observation_points):
@@ -133,6 +158,12 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
         min_concentration_at={k: v[1] for k, v in d.min_concentration.items()},
         source_max={sp: max((src.concentration for src in case.sources if src.species == sp),
                             default=0.0) for sp in case.species},
+        plume={sp: {"largest_extent": max(r[5] for r in rows),
+                    "time_of_largest_extent": max(rows, key=lambda r: r[5])[1],
+                    "largest_volume": max(r[3] for r in rows),
+                    "final_extent": rows[-1][5]}
+               for sp in case.species
+               for rows in [[r for r in plume_rows if r[0] == sp]]},
         travel_times=[{"source": a.source, "receptor": a.receptor, "time": a.time,
                        "closest": a.closest, "reach": a.reach} for a in paths.arrivals],
         well_heads=dict(flow.well_heads),

@@ -55,6 +55,7 @@ class RunSummary:
     min_concentration: dict[str, float]
     min_concentration_at: dict[str, tuple[float, ...] | None]
     source_max: dict[str, float]
+    plume: dict[str, dict[str, float]]
     travel_times: list[dict[str, object]]
     well_heads: dict[str, float]
     wall_time: float
@@ -114,7 +115,15 @@ def write_report(path: Path, s: RunSummary) -> Path:
         f"- simulated period: {from_si(s.end_time, tu):.4g} {tu} in {s.n_steps} steps",
         f"- groundwater through the model: {s.flow_inflow * 86400:.4g} m³/d, "
         f"budget discrepancy {s.flow_discrepancy:.1e}",
-        "", "## Advective travel times of water (particle tracking)", "",
+        "", "## Extent of the plume above the limit (at output times)", "",
+        "| species | largest extent from the source [m] | at | largest volume above the "
+        "limit [m³] | extent at the end [m] |", "|---|---|---|---|---|",
+        *[f"| {sp} | {p['largest_extent']:.4g} | {_t(p['time_of_largest_extent'], tu)} | "
+          f"{p['largest_volume']:.4g} | {p['final_extent']:.4g} |" for sp, p in s.plume.items()],
+        "", "The extent is the farthest plan distance from the species' first source of a mesh "
+        "node above the limit; `plume.csv` has every output time and `plume_*.vtp` the "
+        "surfaces at the limit.", "",
+        "## Advective travel times of water (particle tracking)", "",
         "| from source | to receptor | travel time | closest approach [m] |",
         "|---|---|---|---|",
         *[f"| {a['source']} | {a['receptor']} | {_t(a['time'], tu)} | "  # type: ignore[arg-type]

@@ -12,7 +12,7 @@ from fe3d.post.files import write_text_atomic
 from fe3d.transport.budget import MassBudget
 from fe3d.units import from_si
 
-__all__ = ["write_flow_budget", "write_histories", "write_mass_budget"]
+__all__ = ["write_flow_budget", "write_histories", "write_mass_budget", "write_plume_table"]
 
 
 def _csv(header: list[str], rows: list[list[object]]) -> str:
@@ -68,4 +68,18 @@ def write_flow_budget(path: Path, flow: FlowField) -> Path:
         rows.append([f"head in well {name} [m]", "well", _g(h), "", ""])
     write_text_atomic(path, _csv(["item", "kind", "inflow [m3/d]", "outflow [m3/d]",
                                   "net [m3/d]"], rows))
+    return path
+
+
+def write_plume_table(path: Path, rows: list[tuple[str, float, float, float, float, float]],
+                      *, time_unit: str, conc_unit: str) -> Path:
+    """Per species and output time: the limit, and the volume, dissolved mass and plan extent
+    of the part above it. ``rows`` hold (species, time [s], limit [kg/m³], volume [m³],
+    mass [kg], extent [m])."""
+    scale = from_si(1.0, conc_unit)
+    out = [[sp, _g(from_si(t, time_unit)), _g(lim * scale), _g(v), _g(m), _g(e)]
+           for sp, t, lim, v, m, e in rows]
+    write_text_atomic(path, _csv(["species", f"time [{time_unit}]", f"limit [{conc_unit}]",
+                                  "volume above limit [m3]", "dissolved mass above limit [kg]",
+                                  "farthest extent from source [m]"], out))
     return path
