@@ -12,6 +12,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.linalg import scatter_element_matrices
 from fe3d.mesh.geometry import p1_gradients
 
 __all__ = ["conductance_matrix"]
@@ -43,9 +44,6 @@ def conductance_matrix(points: FloatArray, cells: IndexArray, tensors: FloatArra
     """
     n = points.shape[1]
     total = sp.csr_matrix((n, n))
-    idx = np.arange(4)
-    rows_local = np.repeat(idx, 4)
-    cols_local = np.tile(idx, 4)
     for start in range(0, cells.shape[1], chunk):
         c = cells[:, start:start + chunk]
         if geometry is None:
@@ -55,8 +53,6 @@ def conductance_matrix(points: FloatArray, cells: IndexArray, tensors: FloatArra
         K = np.moveaxis(tensors[:, :, start:start + chunk], 2, 0)  # (m, 3, 3)
         kg = np.einsum("eab,ejb->eja", K, grads)  # K ∇φ_j
         local = np.einsum("eia,eja->eij", grads, kg) * np.abs(vol)[:, None, None]
-        rows = c[rows_local].T.ravel()
-        cols = c[cols_local].T.ravel()
-        part = sp.coo_matrix((local.reshape(-1), (rows, cols)), shape=(n, n)).tocsr()
+        part = scatter_element_matrices(c, local, n)
         total = part if start == 0 else total + part
     return total.tocsr()

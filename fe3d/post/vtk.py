@@ -1,4 +1,9 @@
-"""VTK and gmsh-format mesh output (meshio); the only writer of .vtu/.pvd/.msh in fe3d."""
+"""VTK and gmsh-format mesh output (meshio); the only writer of .vtu/.pvd/.msh in fe3d.
+
+.vtu files are written binary and uncompressed: zlib compression took most of the output
+time (about 10× slower to write, measured in the project's solver notes) for files that any
+viewer reads either way.
+"""
 
 from __future__ import annotations
 
@@ -43,7 +48,7 @@ def write_mesh(site: SiteMesh, folder: Path) -> list[Path]:
                       field_data=field_data)
     write_atomic(msh_path, lambda p: meshio.write(p, msh, file_format="gmsh22", binary=False))
     vtu = _tetra_mesh(site)
-    write_atomic(vtu_path, lambda p: meshio.write(p, vtu, file_format="vtu"))
+    write_atomic(vtu_path, lambda p: meshio.write(p, vtu, file_format="vtu", compression=None))
     return [msh_path, vtu_path]
 
 
@@ -51,7 +56,7 @@ def write_field(site: SiteMesh, path: Path, *, point_data: dict[str, FloatArray]
                 cell_data: dict[str, FloatArray] | None = None) -> Path:
     """Write one .vtu with the given point and cell arrays (names should carry units)."""
     m = _tetra_mesh(site, point_data, cell_data)
-    write_atomic(path, lambda p: meshio.write(p, m, file_format="vtu"))
+    write_atomic(path, lambda p: meshio.write(p, m, file_format="vtu", compression=None))
     return path
 
 

@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
-from skfem import BilinearForm, ElementTetP1, FacetBasis, InteriorBasis, asm
+from skfem import ElementTetP1, FacetBasis, asm
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import Case, Source, Species
@@ -31,6 +31,7 @@ from fe3d.mesh.geometry import p1_gradients
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.transport import forms
+from fe3d.transport.assembly import transport_operators
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.dispersion import dispersion_tensor
 from fe3d.transport.stabilization import element_length_along_flow, supg_tau
@@ -114,24 +115,6 @@ class _Species:
         default_factory=dict)
 
 
-def _expand(x: FloatArray, nqp: int) -> FloatArray:
-    return np.repeat(x[..., None], nqp, axis=-1)
-
-
-@BilinearForm
-def _mass_operator(u: Any, v: Any, w: Any) -> Any:
-    """Storage plus its SUPG part (T1 + T6)."""
-    return forms.storage.form(u, v, w) + forms.supg_storage.form(u, v, w)
-
-
-@BilinearForm
-def _spatial_operator(u: Any, v: Any, w: Any) -> Any:
-    """Advection, dispersion, decay and their SUPG parts (T2, T4, T5, T6)."""
-    return (forms.advection.form(u, v, w) + forms.dispersion.form(u, v, w)
-            + forms.decay.form(u, v, w) + forms.supg_advection.form(u, v, w)
-            + forms.supg_decay.form(u, v, w))
-
-
 def run_transport(
     site: SiteMesh, flow: FlowField, case: Case, *,
     on_step: Callable[[float, float], None] | None = None,
@@ -149,8 +132,6 @@ def run_transport(
         Called after every step with (time reached, end time) [s], for progress display.
     """
     mesh = site.skfem_mesh()
-    basis = InteriorBasis(mesh, ElementTetP1())
-    nqp = basis.X.shape[1]
     n = site.n_nodes
     mats, mat_names = unit_materials(case, site)
     lay = site.cell_layer
@@ -210,11 +191,9 @@ def run_transport(
             c = s.coef
             tau = supg_tau(c["a"], c["kappa"], c["sigma"], s.h, dt) if supg_on \
                 else np.zeros_like(c["m"])
-            kw = {"m": _expand(c["m"], nqp), "k": _expand(c["k"], nqp),
-                  "q": _expand(q, nqp), "a": _expand(c["a"], nqp),
-                  "tau": _expand(tau, nqp), "thetaD": _expand(thetaD, nqp)}
-            M = asm(_mass_operator, basis, **kw).tocsr()
-            K = (asm(_spatial_operator, basis, **kw) + s.outflow_matrix).tocsr()
+            M, K = transport_operators(site.cells, grads, vol, m=c["m"], k=c["k"], q=q,
+                                       a=c["a"], tau=tau, theta_d=thetaD, n=n)
+            K = (K + s.outflow_matrix).tocsr()
             S = (M / dt + theta_t * K).tocsr()
             T = (M / dt - (1.0 - theta_t) * K).tocsr()
             s.operators = {dt: (S, T)}  # keep only the current step length's operators
