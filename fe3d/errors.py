@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["CaseError", "CaseErrors", "Fe3dError", "MeshError", "SolverError"]
+__all__ = ["CaseError", "CaseErrors", "Fe3dError", "MeshError", "NewtonError", "SolverError"]
 
 
 class Fe3dError(Exception):
@@ -38,3 +38,14 @@ class MeshError(Fe3dError):
 
 class SolverError(Fe3dError):
     """A numerical failure: no convergence, a NaN, a singular system."""
+
+
+class NewtonError(SolverError):
+    """Newton's method failed (no convergence, failed line search, non-finite value).
+
+    ``residual_norms`` holds the residual norm of every iterate reached, for the solver log.
+    """
+
+    def __init__(self, message: str, residual_norms: list[float] | None = None) -> None:
+        self.residual_norms = list(residual_norms or [])
+        super().__init__(message)
