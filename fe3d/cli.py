@@ -49,6 +49,18 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--out", type=Path, default=None,
                    help="run folder (default: output.folder of the case, else runs/<case name>)")
     r.add_argument("--quiet", action="store_true", help="no progress bar")
+    f = sub.add_parser("refine", help="mesh-refinement study: three grids, order and GCI",
+                       description="Run the case on three grids (its own sizes, then every cell "
+                                   "size and the time step divided by RATIO and RATIO²) and "
+                                   "report the observed order, the extrapolated value and the "
+                                   "grid convergence index of every breakthrough quantity "
+                                   "(refinement.csv, refinement.md). Costs about 1 + RATIO⁴ "
+                                   "+ RATIO⁸ runs of the case.")
+    f.add_argument("case", type=Path, help="case file (TOML)")
+    f.add_argument("--out", type=Path, default=None,
+                   help="study folder (default: runs/<case name>_refinement)")
+    f.add_argument("--ratio", type=float, default=1.5,
+                   help="refinement ratio between grids, > 1 (default 1.5)")
     return p
 
 
@@ -209,6 +221,32 @@ def _mesh(case_path: Path, out: Path | None) -> int:
     return 0
 
 
+def _refine(case_path: Path, out: Path | None, ratio: float) -> int:
+    from rich.console import Console
+
+    from fe3d.errors import CaseError
+    from fe3d.post.report import CAUTION
+    from fe3d.studies.refinement import refinement_study
+
+    if not ratio > 1.0 or ratio > 3.0:
+        raise CaseErrors([CaseError("--ratio", ratio, "must be in (1, 3]")])
+    case = load_case(case_path)
+    folder = out or Path(f"runs/{case_path.stem}_refinement")
+    con = Console()
+    con.print(f"refinement study of {case_path}: 3 grids, ratio {ratio:g} (this runs the case "
+              "three times, the last on a much finer mesh)")
+    result = refinement_study(case, folder, ratio=ratio, base_dir=case_path.resolve().parent,
+                              progress=lambda stage, d, t: None)
+    for key, c in result.items():
+        order = "oscillatory" if c.order is None else f"order {c.order:.3g}"
+        gci = "" if c.gci is None else f", GCI {100 * c.gci:.2g} %"
+        con.print(f"{key}: {c.coarse:.4g} → {c.medium:.4g} → {c.fine:.4g} ({order}{gci})",
+                  markup=False)
+    con.print(f"tables in {folder}/refinement.csv and refinement.md")
+    con.print(CAUTION)
+    return 0
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``fe3d`` command; returns the exit code."""
     args = _parser().parse_args(argv)
@@ -218,6 +256,8 @@ def main(argv: list[str] | None = None) -> int:
             return _check(args.case)
         if args.command == "mesh":
             return _mesh(args.case, args.out)
+        if args.command == "refine":
+            return _refine(args.case, args.out, args.ratio)
         return _run(args.case, args.out, quiet=args.quiet)
     except CaseErrors as exc:
         for e in exc.errors:

@@ -1,0 +1,1 @@
+"""Studies over whole runs: mesh-refinement studies (and, later, parameter ensembles)."""
