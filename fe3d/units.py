@@ -20,6 +20,7 @@ DIMENSIONS: dict[str, tuple[str, str]] = {
     "flow_rate": ("[length] ** 3 / [time]", "'250 m^3/d'"),
     "leakance": ("1 / [time]", "'0.5 d^-1'"),
     "angle": ("[]", "'30 deg'"),
+    "mass_ratio": ("[]", "'250 mg/kg'"),
 }
 
 

@@ -32,6 +32,7 @@ from fe3d.case.schema_types import (
     Diffusivity,
     Fraction,
     Length,
+    MassRatio,
     Name,
     NonNegativeLength,
     Partition,
@@ -147,17 +148,42 @@ class Species(_Section):
     decay_in_sorbed_phase: bool = True
     limit: PositiveConcentration
     initial_concentration: Concentration = 0.0
+    sorption: Literal["linear", "freundlich", "langmuir"] = "linear"
+    freundlich_kf: Partition | dict[Name, Partition] = 0.0
+    freundlich_n: Annotated[float, Field(gt=0.0, le=5.0)] = 1.0
+    freundlich_reference: PositiveConcentration = 1e-3
+    langmuir_capacity: MassRatio | dict[Name, MassRatio] = 0.0
+    langmuir_affinity: Partition = 0.0
 
     def kd_of(self, material: str) -> float:
         """Distribution coefficient [m³/kg] in ``material``."""
-        if isinstance(self.kd, dict):
-            return self.kd.get(material, 0.0)
-        return self.kd
+        return _per_material(self.kd, material)
+
+    def isotherm_of(self, material: str) -> tuple[str, dict[str, float]]:
+        """Isotherm name and its SI parameters in ``material`` (theory.md R1–R3, T10).
+
+        Freundlich: s = K_F c^N with K_F = freundlich_kf · c_ref^(1−N), i.e. the case gives
+        the partition coefficient [m³/kg] at the reference concentration c_ref.
+        """
+        if self.sorption == "freundlich":
+            kf = _per_material(self.freundlich_kf, material)
+            c_ref = self.freundlich_reference
+            return "freundlich", {"k_f": kf * c_ref ** (1.0 - self.freundlich_n),
+                                  "n": self.freundlich_n}
+        if self.sorption == "langmuir":
+            return "langmuir", {"s_max": _per_material(self.langmuir_capacity, material),
+                                "k_l": self.langmuir_affinity}
+        return "linear", {"kd": self.kd_of(material)}
 
     @property
     def decay_rate(self) -> float:
         """First-order rate λ = ln 2 / half-life [1/s] (0 without a half-life)."""
         return 0.0 if self.half_life is None else math.log(2.0) / self.half_life
+
+
+def _per_material(value: float | dict[str, float], material: str) -> float:
+    """A single value, or the value for ``material`` from a table (0 when absent)."""
+    return value.get(material, 0.0) if isinstance(value, dict) else value
 
 
 class Source(_Section):
@@ -391,6 +417,16 @@ def cross_checks(case: Case) -> list[CaseError]:
                                   f"must be [top, bottom] with top > bottom, inside "
                                   f"[{zmin:g}, {top:g}] m"))
     for name, sp in case.species.items():
+        if sp.sorption == "langmuir" and not (sp.langmuir_affinity > 0 and (
+                isinstance(sp.langmuir_capacity, dict) or sp.langmuir_capacity > 0)):
+            errs.append(CaseError(f"species.{name}.sorption", sp.sorption,
+                                  "langmuir needs langmuir_capacity (e.g. '100 mg/kg') and "
+                                  "langmuir_affinity (e.g. '0.5 L/mg') greater than zero"))
+        if sp.sorption == "freundlich" and not isinstance(sp.freundlich_kf, dict) \
+                and sp.freundlich_kf <= 0:
+            errs.append(CaseError(f"species.{name}.sorption", sp.sorption,
+                                  "freundlich needs freundlich_kf (e.g. '0.2 L/kg' at "
+                                  "freundlich_reference) greater than zero"))
         if isinstance(sp.kd, dict):
             for mat in sp.kd:
                 if mat not in case.materials:

@@ -69,6 +69,7 @@ PlanPoint = tuple[Length, Length]
 PlanPolygon = Annotated[list[PlanPoint], Field(min_length=3)]
 Velocity = Annotated[float, _quantity("velocity")]
 Angle = Annotated[float, _quantity("angle")]
+MassRatio = Annotated[float, _quantity("mass_ratio"), AfterValidator(_non_negative)]
 PositiveRate = Annotated[float, _quantity("flow_rate"), AfterValidator(_non_negative)]
 PositiveLeakance = Annotated[float, _quantity("leakance"), AfterValidator(_positive)]
 

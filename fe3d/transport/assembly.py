@@ -28,7 +28,7 @@ _P1_MASS = (np.ones((4, 4)) + np.eye(4)) / 20.0  # ∫φ_iφ_j dV / V on a tetra
 def transport_operators(
     cells: IndexArray, grads: FloatArray, vol: FloatArray, *, m: FloatArray, k: FloatArray,
     q: FloatArray, a: FloatArray, tau: FloatArray, theta_d: FloatArray, n: int,
-    chunk: int = 500_000,
+    chunk: int = 500_000, m_supg: FloatArray | None = None,
 ) -> tuple[sp.csr_matrix, sp.csr_matrix]:
     """Mass operator (storage + SUPG storage) and spatial operator (advection, dispersion,
     decay and their SUPG parts), both ``(n, n)``.
@@ -45,7 +45,11 @@ def transport_operators(
         SUPG parameter [s] per cell, ``(e,)``.
     theta_d
         θD [m²/s] per cell, ``(3, 3, e)``.
+    m_supg
+        Storage coefficient of the SUPG storage term when it differs from ``m`` (nonlinear
+        sorption: the Galerkin storage holds θ, the sorbed part is added outside).
     """
+    ms = m if m_supg is None else m_supg
     mass = sp.csr_matrix((n, n))
     spatial = sp.csr_matrix((n, n))
     for s in range(0, cells.shape[1], chunk):
@@ -55,7 +59,7 @@ def transport_operators(
         q_g = np.einsum("ke,eik->ei", q[:, sl], g)  # q·∇φ_i
         w = tau[sl] * v  # τ V
         mloc = (m[sl] * v)[:, None, None] * _P1_MASS \
-            + (w * m[sl] / 4.0)[:, None, None] * a_g[:, :, None] * np.ones((1, 1, 4))
+            + (w * ms[sl] / 4.0)[:, None, None] * a_g[:, :, None] * np.ones((1, 1, 4))
         dg = np.einsum("abe,ejb->eja", theta_d[:, :, sl], g)  # θD ∇φ_j
         kloc = (-(q_g * v[:, None] / 4.0))[:, :, None] * np.ones((1, 1, 4)) \
             + np.einsum("eia,eja->eij", g, dg) * v[:, None, None] \

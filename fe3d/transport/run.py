@@ -30,10 +30,12 @@ from fe3d.linalg import LinearSolver
 from fe3d.mesh.geometry import p1_gradients
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.reactions import sorption
 from fe3d.transport import forms
 from fe3d.transport.assembly import transport_operators
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.dispersion import dispersion_tensor
+from fe3d.transport.newton import newton
 from fe3d.transport.stabilization import element_length_along_flow, supg_tau
 
 __all__ = ["Snapshot", "TransportDiagnostics", "run_transport", "time_steps"]
@@ -111,6 +113,21 @@ class _Species:
     outflow_matrix: sp.csr_matrix
     h: FloatArray
     operators: dict[float, tuple[sp.csr_matrix, sp.csr_matrix]] = field(default_factory=dict)
+
+    def sorbed(self, c: FloatArray) -> tuple[FloatArray, FloatArray]:
+        """Nodal sorbed mass [kg] and its derivative [m³] (lumped, T10); linear: W_ρ K_d c."""
+        if not self.coef["sorbers"]:
+            return self.w_sorbed * c, self.w_sorbed.copy()
+        total, slope = np.zeros_like(c), np.zeros_like(c)
+        for w_u, kind, par in self.coef["sorbers"]:
+            s_u, ds_u = _ISOTHERMS[kind](c, **par)
+            total += w_u * s_u
+            slope += w_u * ds_u
+        return total, slope
+
+    def sorbed_mass(self, c: FloatArray) -> float:
+        """Sorbed mass in the model [kg]."""
+        return float(self.sorbed(c)[0].sum())
     solvers: dict[tuple[float, tuple[str, ...]], tuple[LinearSolver, IndexArray, Any]] = field(
         default_factory=dict)
 
@@ -160,10 +177,25 @@ def run_transport(
 
     species: list[_Species] = []
     for name, spec in case.species.items():
-        kd = np.array([spec.kd_of(mn) for mn in mat_names])[lay]
+        nonlinear = spec.sorption != "linear"
+        sorbers: list[tuple[FloatArray, str, dict[str, float]]] = []
+        if nonlinear:
+            # lumped sorbed storage per unit (T10); R at a reference concentration sets the
+            # advective velocity, τ and the SUPG storage coefficient
+            c_ref = max([src.concentration for src in case.sources if src.species == name]
+                        + [spec.initial_concentration, spec.limit])
+            kd = np.zeros(site.n_cells)
+            for u, mn in enumerate(mat_names):
+                kind, par = spec.isotherm_of(mn)
+                _, ds = _ISOTHERMS[kind](np.array([c_ref]), **par)
+                kd[lay == u] = ds[0]
+                w_u = _nodal(site.cells, np.where(lay == u, rho_b * vol, 0.0), n)
+                sorbers.append((w_u, kind, par))
+        else:
+            kd = np.array([spec.kd_of(mn) for mn in mat_names])[lay]
         m = theta + rho_b * kd
         lam = spec.decay_rate
-        k = lam * (m if spec.decay_in_sorbed_phase else theta)
+        k = lam * (m if spec.decay_in_sorbed_phase and not nonlinear else theta)
         a = q / m
         speed2 = np.sum(a * a, axis=0)
         along = np.einsum("ie,ije,je->e", a, thetaD, a)
@@ -180,7 +212,9 @@ def run_transport(
         species.append(_Species(
             name=name, spec=spec,
             coef={"m": m, "k": k, "a": a, "kappa": kappa, "sigma": k / m,
-                  "courant_rate": float(np.max(np.sqrt(speed2) / h))},
+                  "courant_rate": float(np.max(np.sqrt(speed2) / h)),
+                  "sorbers": sorbers,
+                  "sorbed_decay": lam if spec.decay_in_sorbed_phase else 0.0},
             w_dissolved=_nodal(site.cells, theta * vol, n),
             w_sorbed=_nodal(site.cells, rho_b * kd * vol, n),
             w_decay=_nodal(site.cells, k * vol, n),
@@ -191,8 +225,11 @@ def run_transport(
             c = s.coef
             tau = supg_tau(c["a"], c["kappa"], c["sigma"], s.h, dt) if supg_on \
                 else np.zeros_like(c["m"])
-            M, K = transport_operators(site.cells, grads, vol, m=c["m"], k=c["k"], q=q,
-                                       a=c["a"], tau=tau, theta_d=thetaD, n=n)
+            nonlin = bool(c["sorbers"])
+            M, K = transport_operators(site.cells, grads, vol,
+                                       m=theta if nonlin else c["m"], k=c["k"], q=q,
+                                       a=c["a"], tau=tau, theta_d=thetaD, n=n,
+                                       m_supg=c["m"] if nonlin else None)
             K = (K + s.outflow_matrix).tocsr()
             S = (M / dt + theta_t * K).tocsr()
             T = (M / dt - (1.0 - theta_t) * K).tocsr()
@@ -225,7 +262,8 @@ def run_transport(
     conc = {s.name: np.full(n, s.spec.initial_concentration) for s in species}
     acc = {s.name: {"input": 0.0, "decayed": 0.0,
                     "outflow": dict.fromkeys(s.outflow_weights, 0.0)} for s in species}
-    initial = {s.name: float((s.w_dissolved + s.w_sorbed) @ conc[s.name]) for s in species}
+    initial = {s.name: float(s.w_dissolved @ conc[s.name]) + s.sorbed_mass(conc[s.name])
+               for s in species}
     hist_t = [0.0]
     hist = {s.name: [probe @ conc[s.name]] for s in species}
     cmin: dict[str, tuple[float, tuple[float, ...] | None]] = {
@@ -242,7 +280,7 @@ def run_transport(
     def snapshot(t: float, n_steps: int) -> Snapshot:
         budgets = {s.name: MassBudget(
             species=s.name, time=t, dissolved=float(s.w_dissolved @ conc[s.name]),
-            sorbed=float(s.w_sorbed @ conc[s.name]), initial=initial[s.name],
+            sorbed=s.sorbed_mass(conc[s.name]), initial=initial[s.name],
             source_input=acc[s.name]["input"], outflow=dict(acc[s.name]["outflow"]),
             decayed=acc[s.name]["decayed"]) for s in species}
         diag = TransportDiagnostics(n_steps=n_steps, max_grid_peclet=dict(peclet),
@@ -282,19 +320,26 @@ def run_transport(
                 # placed there is counted as source input
                 jump = np.zeros(n)
                 jump[fixed] = gvals - old[fixed]
-                acc[s.name]["input"] += float((s.w_dissolved + s.w_sorbed) @ jump)
+                acc[s.name]["input"] += float(s.w_dissolved @ jump) + \
+                    s.sorbed_mass(old + jump) - s.sorbed_mass(old)
                 old = old + jump
             rhs = T @ old
             new = old.copy()
             new[fixed] = gvals
-            b = rhs[free] - S_fD @ gvals
-            new[free] = solver.solve(b, x0=old[free])
-            # budget from the consistent residual of the full (unreduced) system (T9)
-            r = S @ new - rhs
+            if s.coef["sorbers"]:
+                new, r, sorbed_decay = _nonlinear_step(
+                    s, S, rhs, old, new, free, dt, theta_t, method=case.solver.linear_solver,
+                    tol=case.solver.tolerance)
+            else:
+                b = rhs[free] - S_fD @ gvals
+                new[free] = solver.solve(b, x0=old[free])
+                # budget from the consistent residual of the full (unreduced) system (T9)
+                r = S @ new - rhs
+                sorbed_decay = 0.0
             c_mid = theta_t * new + (1.0 - theta_t) * old
             a_ = acc[s.name]
             a_["input"] += dt * float(r[fixed].sum())
-            a_["decayed"] += dt * float(s.w_decay @ c_mid)
+            a_["decayed"] += dt * (float(s.w_decay @ c_mid) + sorbed_decay)
             for f, w in s.outflow_weights.items():
                 a_["outflow"][f] += dt * float(w @ c_mid)
             conc[s.name] = new
@@ -330,3 +375,47 @@ def _source_nodes(site: SiteMesh, src: Source) -> IndexArray:
                "mesh.fine_cell_size / mesh.layer_cell_thickness")
         raise MeshError(msg)
     return nodes
+
+
+_ISOTHERMS = {"linear": sorption.linear, "freundlich": sorption.freundlich,
+              "langmuir": sorption.langmuir}
+
+
+def _nonlinear_step(
+    s: _Species, S: sp.csr_matrix, rhs: FloatArray, old: FloatArray, new: FloatArray,
+    free: IndexArray, dt: float, theta_t: float, *, method: str, tol: float,
+) -> tuple[FloatArray, FloatArray, float]:
+    """One θ-scheme step with nonlinear sorption, by Newton on the free nodes (T10).
+
+    R(c) = S c − T c_old + [Σ(c) − Σ(c_old)]/dt + λ_s [θ Σ(c) + (1 − θ) Σ(c_old)], with Σ the
+    lumped nodal sorbed mass; J = S + diag(Σ'(c)) (1/dt + θ λ_s). Returns the new field, the
+    full residual (for the budget) and the sorbed mass decayed in the step [kg].
+    """
+    lam_s = float(s.coef["sorbed_decay"])
+    sig_old, _ = s.sorbed(old)
+    S_ff = S[free][:, free]
+
+    def full_residual(c: FloatArray) -> FloatArray:
+        sig, _ = s.sorbed(c)
+        return S @ c - rhs + (sig - sig_old) / dt + lam_s * (theta_t * sig
+                                                             + (1 - theta_t) * sig_old)
+
+    def residual(x: FloatArray) -> FloatArray:
+        c = new.copy()
+        c[free] = x
+        return full_residual(c)[free]
+
+    def jacobian_solve(x: FloatArray, r: FloatArray) -> FloatArray:
+        c = new.copy()
+        c[free] = x
+        _, dsig = s.sorbed(c)
+        J = (S_ff + sp.diags(dsig[free] * (1.0 / dt + theta_t * lam_s))).tocsr()
+        return LinearSolver(J, method=method, tol=min(tol, 1e-12)).solve(r)
+
+    result = newton(residual, jacobian_solve, old[free].copy(), rtol=tol, atol=0.0,
+                    max_iter=30)
+    c = new.copy()
+    c[free] = result.x
+    sig_new, _ = s.sorbed(c)
+    decayed = dt * lam_s * float((theta_t * sig_new + (1 - theta_t) * sig_old).sum())
+    return c, full_residual(c), decayed
