@@ -42,6 +42,8 @@ from fe3d.case.schema_types import (
     PositiveTime,
     PositiveVelocity,
     Range,
+    ReactionRate,
+    SecondOrderRate,
     Section,
     Time,
     _concentration_unit,
@@ -154,6 +156,19 @@ class Species(_Section):
     freundlich_reference: PositiveConcentration = 1e-3
     langmuir_capacity: MassRatio | dict[Name, MassRatio] = 0.0
     langmuir_affinity: Partition = 0.0
+    second_order_rate: SecondOrderRate | None = None
+    monod_max_rate: ReactionRate | None = None
+    monod_half_saturation: PositiveConcentration | None = None
+
+    @property
+    def nonlinear_reaction(self) -> tuple[str, dict[str, float]] | None:
+        """Second-order or Monod loss of the dissolved phase (theory.md T11), if any."""
+        if self.second_order_rate is not None:
+            return "second_order", {"rate": self.second_order_rate}
+        if self.monod_max_rate is not None and self.monod_half_saturation is not None:
+            return "monod", {"max_rate": self.monod_max_rate,
+                             "half_saturation": self.monod_half_saturation}
+        return None
 
     def kd_of(self, material: str) -> float:
         """Distribution coefficient [m³/kg] in ``material``."""
@@ -427,6 +442,12 @@ def cross_checks(case: Case) -> list[CaseError]:
             errs.append(CaseError(f"species.{name}.sorption", sp.sorption,
                                   "freundlich needs freundlich_kf (e.g. '0.2 L/kg' at "
                                   "freundlich_reference) greater than zero"))
+        if (sp.monod_max_rate is None) != (sp.monod_half_saturation is None):
+            errs.append(CaseError(f"species.{name}.monod_max_rate", "(one of two)",
+                                  "give both monod_max_rate and monod_half_saturation"))
+        if sp.second_order_rate is not None and sp.monod_max_rate is not None:
+            errs.append(CaseError(f"species.{name}.second_order_rate", "(with monod)",
+                                  "choose one nonlinear reaction: second order or Monod"))
         if isinstance(sp.kd, dict):
             for mat in sp.kd:
                 if mat not in case.materials:

@@ -30,7 +30,7 @@ from fe3d.linalg import LinearSolver
 from fe3d.mesh.geometry import p1_gradients
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
-from fe3d.reactions import sorption
+from fe3d.reactions import kinetics, sorption
 from fe3d.transport import forms
 from fe3d.transport.assembly import transport_operators
 from fe3d.transport.budget import MassBudget
@@ -125,6 +125,15 @@ class _Species:
             slope += w_u * ds_u
         return total, slope
 
+    def reaction_loss(self, c: FloatArray) -> tuple[FloatArray, FloatArray]:
+        """Nodal mass loss rate [kg/s] of a nonlinear reaction (lumped, T11) and its
+        derivative [m³/s]; zero without one."""
+        if not self.coef["reaction"]:
+            return np.zeros_like(c), np.zeros_like(c)
+        kind, par = self.coef["reaction"]
+        r, dr = _RATE_LAWS[kind](c, **par)
+        return -self.w_dissolved * r, -self.w_dissolved * dr
+
     def sorbed_mass(self, c: FloatArray) -> float:
         """Sorbed mass in the model [kg]."""
         return float(self.sorbed(c)[0].sum())
@@ -213,7 +222,7 @@ def run_transport(
             name=name, spec=spec,
             coef={"m": m, "k": k, "a": a, "kappa": kappa, "sigma": k / m,
                   "courant_rate": float(np.max(np.sqrt(speed2) / h)),
-                  "sorbers": sorbers,
+                  "sorbers": sorbers, "reaction": spec.nonlinear_reaction,
                   "sorbed_decay": lam if spec.decay_in_sorbed_phase else 0.0},
             w_dissolved=_nodal(site.cells, theta * vol, n),
             w_sorbed=_nodal(site.cells, rho_b * kd * vol, n),
@@ -326,8 +335,8 @@ def run_transport(
             rhs = T @ old
             new = old.copy()
             new[fixed] = gvals
-            if s.coef["sorbers"]:
-                new, r, sorbed_decay = _nonlinear_step(
+            if s.coef["sorbers"] or s.coef["reaction"]:
+                new, r, other_loss = _nonlinear_step(
                     s, S, rhs, old, new, free, dt, theta_t, method=case.solver.linear_solver,
                     tol=case.solver.tolerance)
             else:
@@ -335,11 +344,11 @@ def run_transport(
                 new[free] = solver.solve(b, x0=old[free])
                 # budget from the consistent residual of the full (unreduced) system (T9)
                 r = S @ new - rhs
-                sorbed_decay = 0.0
+                other_loss = 0.0
             c_mid = theta_t * new + (1.0 - theta_t) * old
             a_ = acc[s.name]
             a_["input"] += dt * float(r[fixed].sum())
-            a_["decayed"] += dt * (float(s.w_decay @ c_mid) + sorbed_decay)
+            a_["decayed"] += dt * float(s.w_decay @ c_mid) + other_loss
             for f, w in s.outflow_weights.items():
                 a_["outflow"][f] += dt * float(w @ c_mid)
             conc[s.name] = new
@@ -377,6 +386,8 @@ def _source_nodes(site: SiteMesh, src: Source) -> IndexArray:
     return nodes
 
 
+_RATE_LAWS = {"second_order": kinetics.second_order, "monod": kinetics.monod}
+
 _ISOTHERMS = {"linear": sorption.linear, "freundlich": sorption.freundlich,
               "langmuir": sorption.langmuir}
 
@@ -385,20 +396,24 @@ def _nonlinear_step(
     s: _Species, S: sp.csr_matrix, rhs: FloatArray, old: FloatArray, new: FloatArray,
     free: IndexArray, dt: float, theta_t: float, *, method: str, tol: float,
 ) -> tuple[FloatArray, FloatArray, float]:
-    """One θ-scheme step with nonlinear sorption, by Newton on the free nodes (T10).
+    """One θ-scheme step with nonlinear sorption and/or reaction, by Newton (T10, T11).
 
     R(c) = S c − T c_old + [Σ(c) − Σ(c_old)]/dt + λ_s [θ Σ(c) + (1 − θ) Σ(c_old)], with Σ the
     lumped nodal sorbed mass; J = S + diag(Σ'(c)) (1/dt + θ λ_s). Returns the new field, the
-    full residual (for the budget) and the sorbed mass decayed in the step [kg].
+    full residual (for the budget) and the mass lost in the step [kg] by sorbed-phase decay
+    and by the nonlinear reaction.
     """
     lam_s = float(s.coef["sorbed_decay"])
     sig_old, _ = s.sorbed(old)
+    loss_old, _ = s.reaction_loss(old)
     S_ff = S[free][:, free]
 
     def full_residual(c: FloatArray) -> FloatArray:
         sig, _ = s.sorbed(c)
-        return S @ c - rhs + (sig - sig_old) / dt + lam_s * (theta_t * sig
-                                                             + (1 - theta_t) * sig_old)
+        loss, _ = s.reaction_loss(c)
+        return (S @ c - rhs + (sig - sig_old) / dt
+                + lam_s * (theta_t * sig + (1 - theta_t) * sig_old)
+                + theta_t * loss + (1 - theta_t) * loss_old)
 
     def residual(x: FloatArray) -> FloatArray:
         c = new.copy()
@@ -409,7 +424,9 @@ def _nonlinear_step(
         c = new.copy()
         c[free] = x
         _, dsig = s.sorbed(c)
-        J = (S_ff + sp.diags(dsig[free] * (1.0 / dt + theta_t * lam_s))).tocsr()
+        _, dloss = s.reaction_loss(c)
+        J = (S_ff + sp.diags(dsig[free] * (1.0 / dt + theta_t * lam_s)
+                             + theta_t * dloss[free])).tocsr()
         return LinearSolver(J, method=method, tol=min(tol, 1e-12)).solve(r)
 
     result = newton(residual, jacobian_solve, old[free].copy(), rtol=tol, atol=0.0,
@@ -417,5 +434,7 @@ def _nonlinear_step(
     c = new.copy()
     c[free] = result.x
     sig_new, _ = s.sorbed(c)
-    decayed = dt * lam_s * float((theta_t * sig_new + (1 - theta_t) * sig_old).sum())
+    loss_new, _ = s.reaction_loss(c)
+    decayed = dt * (lam_s * float((theta_t * sig_new + (1 - theta_t) * sig_old).sum())
+                    + float((theta_t * loss_new + (1 - theta_t) * loss_old).sum()))
     return c, full_residual(c), decayed
