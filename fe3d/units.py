@@ -21,6 +21,7 @@ DIMENSIONS: dict[str, tuple[str, str]] = {
     "leakance": ("1 / [time]", "'0.5 d^-1'"),
     "angle": ("[]", "'30 deg'"),
     "mass_ratio": ("[]", "'250 mg/kg'"),
+    "mass_rate": ("[mass] / [time]", "'2 g/d'"),
     "second_order_rate": ("[length] ** 3 / [mass] / [time]", "'0.01 L/mg/d'"),
     "reaction_rate": ("[mass] / [length] ** 3 / [time]", "'0.5 mg/L/d'"),
 }

@@ -32,6 +32,7 @@ from fe3d.case.schema_types import (
     Diffusivity,
     Fraction,
     Length,
+    MassRate,
     MassRatio,
     Name,
     NonNegativeLength,
@@ -202,12 +203,22 @@ def _per_material(value: float | dict[str, float], material: str) -> float:
 
 
 class Source(_Section):
-    """A fixed-concentration source in a box or on a patch of a boundary face."""
+    """A source in a box or on a patch of a boundary face (theory.md "Sources").
+
+    ``kind``: ``fixed_concentration`` holds the nodes at ``concentration`` (optionally
+    depleting with ``depletion_half_life`` from ``start``); ``mass_loading`` injects
+    ``mass_rate`` spread over the box's nodes in proportion to their volume;
+    ``initial_plume`` sets ``concentration`` in the region at t = 0.
+    """
 
     name: Name
     species: Name
     shape: Literal["box", "face_patch"]
-    concentration: PositiveConcentration
+    kind: Literal["fixed_concentration", "mass_loading", "initial_plume"] = \
+        "fixed_concentration"
+    concentration: PositiveConcentration | None = None
+    mass_rate: MassRate | None = None
+    depletion_half_life: PositiveTime | None = None
     face: Name | None = None
     x: Range | None = None
     y: Range | None = None
@@ -392,6 +403,13 @@ def cross_checks(case: Case) -> list[CaseError]:
         if s.stop is not None and s.stop <= s.start:
             errs.append(CaseError(f"{key}.stop", _time_text(s.stop, tu),
                                   f"must be later than start ({_time_text(s.start, tu)})"))
+        if s.kind in ("fixed_concentration", "initial_plume") and s.concentration is None:
+            errs.append(CaseError(f"{key}.concentration", "(missing)",
+                                  f"a {s.kind} source needs a concentration, e.g. '20 mg/L'"))
+        if s.kind == "mass_loading" and (s.mass_rate is None or s.shape != "box"):
+            errs.append(CaseError(f"{key}.mass_rate", "(missing)" if s.mass_rate is None
+                                  else s.shape, "a mass_loading source needs a mass_rate "
+                                  "(e.g. '2 g/d') and shape = 'box'"))
         if s.shape == "face_patch" and s.face is None:
             errs.append(CaseError(f"{key}.face", None,
                                   f"a face_patch source needs a face: one of "

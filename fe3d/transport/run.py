@@ -191,7 +191,8 @@ def run_transport(
         if nonlinear:
             # lumped sorbed storage per unit (T10); R at a reference concentration sets the
             # advective velocity, τ and the SUPG storage coefficient
-            c_ref = max([src.concentration for src in case.sources if src.species == name]
+            c_ref = max([src.concentration for src in case.sources
+                         if src.species == name and src.concentration is not None]
                         + [spec.initial_concentration, spec.limit])
             kd = np.zeros(site.n_cells)
             for u, mn in enumerate(mat_names):
@@ -247,6 +248,13 @@ def run_transport(
 
     # source nodes
     source_nodes = {src.name: _source_nodes(site, src) for src in case.sources}
+    node_volume = _nodal(site.cells, np.abs(vol), n)
+    loading_weights = {}
+    for src in case.sources:
+        if src.kind == "mass_loading":
+            w = np.zeros(n)
+            w[source_nodes[src.name]] = node_volume[source_nodes[src.name]]
+            loading_weights[src.name] = w / w.sum()
 
     # observation operators
     obs = case.observation_points
@@ -269,6 +277,12 @@ def run_transport(
     out_set = set(schedule)
 
     conc = {s.name: np.full(n, s.spec.initial_concentration) for s in species}
+    was_fixed = {s.name: np.zeros(n, dtype=bool) for s in species}
+    for src in case.sources:
+        if src.kind == "initial_plume":
+            assert src.concentration is not None
+            nodes = source_nodes[src.name]
+            conc[src.species][nodes] = np.maximum(conc[src.species][nodes], src.concentration)
     acc = {s.name: {"input": 0.0, "decayed": 0.0,
                     "outflow": dict.fromkeys(s.outflow_weights, 0.0)} for s in species}
     initial = {s.name: float(s.w_dissolved @ conc[s.name]) + s.sorbed_mass(conc[s.name])
@@ -304,35 +318,50 @@ def run_transport(
         tmid = 0.5 * (t0 + t1)
         for s in species:
             active = tuple(src.name for src in case.sources if src.species == s.name
+                           and src.kind == "fixed_concentration"
                            and src.start <= tmid and (src.stop is None or tmid <= src.stop))
             S, T = operators(s, dt)
             key = (dt, active)
             if key not in s.solvers:
-                fixed_vals = np.zeros(n)
                 is_fixed = np.zeros(n, dtype=bool)
-                for src in case.sources:
-                    if src.name in active:
-                        nodes = source_nodes[src.name]
-                        fixed_vals[nodes] = np.maximum(fixed_vals[nodes], src.concentration)
-                        is_fixed[nodes] = True
+                for name in active:
+                    is_fixed[source_nodes[name]] = True
                 free = np.nonzero(~is_fixed)[0]
                 fixed = np.nonzero(is_fixed)[0]
                 solver = LinearSolver(S[free][:, free], method=case.solver.linear_solver,
                                       tol=case.solver.tolerance)
-                s.solvers = {key: (solver, free, (fixed, fixed_vals[fixed], S[free][:, fixed]))}
+                s.solvers = {key: (solver, free, (fixed, S[free][:, fixed]))}
                 solver_used = solver.method
-            solver, free, (fixed, gvals, S_fD) = s.solvers[key]
+            solver, free, (fixed, S_fD) = s.solvers[key]
+            start_vals, end_vals = np.zeros(n), np.zeros(n)
+            for src in case.sources:
+                if src.name in active:
+                    assert src.concentration is not None
+                    nodes = source_nodes[src.name]
+                    start_vals[nodes] = np.maximum(start_vals[nodes],
+                                                   src.concentration * _depletion(src, t0))
+                    end_vals[nodes] = np.maximum(end_vals[nodes],
+                                                 src.concentration * _depletion(src, t1))
+            gvals = end_vals[fixed]
+            load = np.zeros(n)
+            for src in case.sources:
+                if src.species == s.name and src.kind == "mass_loading" and src.start <= tmid \
+                        and (src.stop is None or tmid <= src.stop):
+                    assert src.mass_rate is not None
+                    load += src.mass_rate * loading_weights[src.name]
             old = conc[s.name]
-            if fixed.size and np.any(old[fixed] != gvals):
-                # a source switching on holds its nodes at the source value from t0 (its
-                # value on the open interval), so the θ-scheme does not see a ramp; the mass
-                # placed there is counted as source input
+            switched_on = fixed[~was_fixed[s.name][fixed]]
+            if switched_on.size:
+                # a source switching on holds its nodes at the source value from t0, so the
+                # θ-scheme does not see a ramp; the mass placed there is counted as input
                 jump = np.zeros(n)
-                jump[fixed] = gvals - old[fixed]
+                jump[switched_on] = start_vals[switched_on] - old[switched_on]
                 acc[s.name]["input"] += float(s.w_dissolved @ jump) + \
                     s.sorbed_mass(old + jump) - s.sorbed_mass(old)
                 old = old + jump
-            rhs = T @ old
+            was_fixed[s.name][:] = False
+            was_fixed[s.name][fixed] = True
+            rhs = T @ old + load
             new = old.copy()
             new[fixed] = gvals
             if s.coef["sorbers"] or s.coef["reaction"]:
@@ -347,7 +376,7 @@ def run_transport(
                 other_loss = 0.0
             c_mid = theta_t * new + (1.0 - theta_t) * old
             a_ = acc[s.name]
-            a_["input"] += dt * float(r[fixed].sum())
+            a_["input"] += dt * (float(r[fixed].sum()) + float(load.sum()))
             a_["decayed"] += dt * float(s.w_decay @ c_mid) + other_loss
             for f, w in s.outflow_weights.items():
                 a_["outflow"][f] += dt * float(w @ c_mid)
@@ -438,3 +467,10 @@ def _nonlinear_step(
     decayed = dt * (lam_s * float((theta_t * sig_new + (1 - theta_t) * sig_old).sum())
                     + float((theta_t * loss_new + (1 - theta_t) * loss_old).sum()))
     return c, full_residual(c), decayed
+
+
+def _depletion(src: Source, t: float) -> float:
+    """Strength factor of a depleting source at time t: exp(−ln 2 (t − start)/half-life)."""
+    if src.depletion_half_life is None:
+        return 1.0
+    return math.exp(-math.log(2.0) * max(t - src.start, 0.0) / src.depletion_half_life)
