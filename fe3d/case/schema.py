@@ -157,6 +157,8 @@ class Species(_Section):
     freundlich_reference: PositiveConcentration = 1e-3
     langmuir_capacity: MassRatio | dict[Name, MassRatio] = 0.0
     langmuir_affinity: Partition = 0.0
+    parent: Name | None = None
+    yield_from_parent: Annotated[float, Field(gt=0.0, le=100.0)] = 1.0
     second_order_rate: SecondOrderRate | None = None
     monod_max_rate: ReactionRate | None = None
     monod_half_saturation: PositiveConcentration | None = None
@@ -206,8 +208,9 @@ class Source(_Section):
     """A source in a box or on a patch of a boundary face (theory.md "Sources").
 
     ``kind``: ``fixed_concentration`` holds the nodes at ``concentration`` (optionally
-    depleting with ``depletion_half_life`` from ``start``); ``mass_loading`` injects
-    ``mass_rate`` spread over the box's nodes in proportion to their volume;
+    depleting with ``depletion_half_life`` from ``start``; zero holds them clean);
+    ``mass_loading`` injects ``mass_rate`` spread over the box's nodes in proportion to their
+    volume;
     ``initial_plume`` sets ``concentration`` in the region at t = 0.
     """
 
@@ -216,7 +219,7 @@ class Source(_Section):
     shape: Literal["box", "face_patch"]
     kind: Literal["fixed_concentration", "mass_loading", "initial_plume"] = \
         "fixed_concentration"
-    concentration: PositiveConcentration | None = None
+    concentration: Concentration | None = None
     mass_rate: MassRate | None = None
     depletion_half_life: PositiveTime | None = None
     face: Name | None = None
@@ -460,6 +463,22 @@ def cross_checks(case: Case) -> list[CaseError]:
             errs.append(CaseError(f"species.{name}.sorption", sp.sorption,
                                   "freundlich needs freundlich_kf (e.g. '0.2 L/kg' at "
                                   "freundlich_reference) greater than zero"))
+        if sp.parent is not None:
+            if sp.parent not in case.species or sp.parent == name:
+                errs.append(CaseError(f"species.{name}.parent", sp.parent,
+                                      f"must name another species: {sorted(case.species)}"))
+            elif case.species[sp.parent].half_life is None:
+                errs.append(CaseError(f"species.{name}.parent", sp.parent,
+                                      "the parent needs a half_life (first-order decay feeds "
+                                      "the daughter)"))
+            seen_chain, cur = {name}, sp.parent
+            while cur is not None and cur in case.species:
+                if cur in seen_chain:
+                    errs.append(CaseError(f"species.{name}.parent", sp.parent,
+                                          "decay chains may not loop back"))
+                    break
+                seen_chain.add(cur)
+                cur = case.species[cur].parent
         if (sp.monod_max_rate is None) != (sp.monod_half_saturation is None):
             errs.append(CaseError(f"species.{name}.monod_max_rate", "(one of two)",
                                   "give both monod_max_rate and monod_half_saturation"))

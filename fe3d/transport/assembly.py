@@ -20,9 +20,9 @@ import scipy.sparse as sp
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.linalg import scatter_element_matrices
 
-__all__ = ["transport_operators"]
+__all__ = ["P1_MASS", "transport_operators"]
 
-_P1_MASS = (np.ones((4, 4)) + np.eye(4)) / 20.0  # ∫φ_iφ_j dV / V on a tetrahedron
+P1_MASS = (np.ones((4, 4)) + np.eye(4)) / 20.0  # ∫φ_iφ_j dV / V on a tetrahedron
 
 
 def transport_operators(
@@ -58,12 +58,12 @@ def transport_operators(
         a_g = np.einsum("ke,eik->ei", a[:, sl], g)  # a·∇φ_i
         q_g = np.einsum("ke,eik->ei", q[:, sl], g)  # q·∇φ_i
         w = tau[sl] * v  # τ V
-        mloc = (m[sl] * v)[:, None, None] * _P1_MASS \
+        mloc = (m[sl] * v)[:, None, None] * P1_MASS \
             + (w * ms[sl] / 4.0)[:, None, None] * a_g[:, :, None] * np.ones((1, 1, 4))
         dg = np.einsum("abe,ejb->eja", theta_d[:, :, sl], g)  # θD ∇φ_j
         kloc = (-(q_g * v[:, None] / 4.0))[:, :, None] * np.ones((1, 1, 4)) \
             + np.einsum("eia,eja->eij", g, dg) * v[:, None, None] \
-            + (k[sl] * v)[:, None, None] * _P1_MASS \
+            + (k[sl] * v)[:, None, None] * P1_MASS \
             + w[:, None, None] * a_g[:, :, None] * q_g[:, None, :] \
             + (w * k[sl] / 4.0)[:, None, None] * a_g[:, :, None] * np.ones((1, 1, 4))
         c = cells[:, sl]

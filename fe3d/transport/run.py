@@ -26,13 +26,13 @@ from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import Case, Source, Species
 from fe3d.errors import MeshError
 from fe3d.flow.solve import FlowField, unit_materials
-from fe3d.linalg import LinearSolver
+from fe3d.linalg import LinearSolver, scatter_element_matrices
 from fe3d.mesh.geometry import p1_gradients
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.reactions import kinetics, sorption
 from fe3d.transport import forms
-from fe3d.transport.assembly import transport_operators
+from fe3d.transport.assembly import P1_MASS, transport_operators
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.dispersion import dispersion_tensor
 from fe3d.transport.newton import newton
@@ -185,7 +185,12 @@ def run_transport(
     supg_on = case.solver.supg
 
     species: list[_Species] = []
-    for name, spec in case.species.items():
+
+    def depth(name: str) -> int:  # parents before daughters in every step
+        parent = case.species[name].parent
+        return 0 if parent is None else 1 + depth(parent)
+
+    for name, spec in sorted(case.species.items(), key=lambda item: depth(item[0])):
         nonlinear = spec.sorption != "linear"
         sorbers: list[tuple[FloatArray, str, dict[str, float]]] = []
         if nonlinear:
@@ -229,6 +234,12 @@ def run_transport(
             w_sorbed=_nodal(site.cells, rho_b * kd * vol, n),
             w_decay=_nodal(site.cells, k * vol, n),
             outflow_weights=ow, outflow_matrix=sp.csr_matrix(om), h=h))
+
+    parents = {spec.parent for spec in case.species.values() if spec.parent is not None}
+    decay_matrix = {s.name: scatter_element_matrices(
+        site.cells, (s.coef["k"] * np.abs(vol))[:, None, None] * P1_MASS, n)
+        for s in species if s.name in parents}
+    decay_loss: dict[str, FloatArray] = {}  # parent → decay mass rate per node in this step
 
     def operators(s: _Species, dt: float) -> tuple[sp.csr_matrix, sp.csr_matrix]:
         if dt not in s.operators:
@@ -349,6 +360,8 @@ def run_transport(
                         and (src.stop is None or tmid <= src.stop):
                     assert src.mass_rate is not None
                     load += src.mass_rate * loading_weights[src.name]
+            if s.spec.parent is not None:  # first-order decay of the parent feeds it (T12)
+                load = load + s.spec.yield_from_parent * decay_loss[s.spec.parent]
             old = conc[s.name]
             switched_on = fixed[~was_fixed[s.name][fixed]]
             if switched_on.size:
@@ -375,6 +388,9 @@ def run_transport(
                 r = S @ new - rhs
                 other_loss = 0.0
             c_mid = theta_t * new + (1.0 - theta_t) * old
+            if s.name in decay_matrix:
+                decay_loss[s.name] = decay_matrix[s.name] @ c_mid + (
+                    _sorbed_decay_rate(s, new, old, theta_t) if s.coef["sorbers"] else 0.0)
             a_ = acc[s.name]
             a_["input"] += dt * (float(r[fixed].sum()) + float(load.sum()))
             a_["decayed"] += dt * float(s.w_decay @ c_mid) + other_loss
@@ -474,3 +490,10 @@ def _depletion(src: Source, t: float) -> float:
     if src.depletion_half_life is None:
         return 1.0
     return math.exp(-math.log(2.0) * max(t - src.start, 0.0) / src.depletion_half_life)
+
+
+def _sorbed_decay_rate(s: _Species, new: FloatArray, old: FloatArray,
+                       theta_t: float) -> FloatArray:
+    """Nodal decay rate of the lumped sorbed phase [kg/s] over a step (T10, T12)."""
+    lam_s = float(s.coef["sorbed_decay"])
+    return lam_s * (theta_t * s.sorbed(new)[0] + (1 - theta_t) * s.sorbed(old)[0])
