@@ -113,6 +113,8 @@ class _Species:
     outflow_matrix: sp.csr_matrix
     h: FloatArray
     operators: dict[float, tuple[sp.csr_matrix, sp.csr_matrix]] = field(default_factory=dict)
+    solvers: dict[tuple[float, tuple[str, ...]],
+                  tuple[LinearSolver | None, IndexArray, Any]] = field(default_factory=dict)
 
     def sorbed(self, c: FloatArray) -> tuple[FloatArray, FloatArray]:
         """Nodal sorbed mass [kg] and its derivative [m³] (lumped, T10); linear: W_ρ K_d c."""
@@ -137,8 +139,6 @@ class _Species:
     def sorbed_mass(self, c: FloatArray) -> float:
         """Sorbed mass in the model [kg]."""
         return float(self.sorbed(c)[0].sum())
-    solvers: dict[tuple[float, tuple[str, ...]], tuple[LinearSolver, IndexArray, Any]] = field(
-        default_factory=dict)
 
 
 def run_transport(
@@ -339,10 +339,11 @@ def run_transport(
                     is_fixed[source_nodes[name]] = True
                 free = np.nonzero(~is_fixed)[0]
                 fixed = np.nonzero(is_fixed)[0]
-                solver = LinearSolver(S[free][:, free], method=case.solver.linear_solver,
-                                      tol=case.solver.tolerance)
+                solver = None if (s.coef["sorbers"] or s.coef["reaction"]) else LinearSolver(
+                    S[free][:, free], method=case.solver.linear_solver,
+                    tol=case.solver.tolerance)  # Newton builds its own (T10, T11)
                 s.solvers = {key: (solver, free, (fixed, S[free][:, fixed]))}
-                solver_used = solver.method
+                solver_used = "newton" if solver is None else solver.method
             solver, free, (fixed, S_fD) = s.solvers[key]
             start_vals, end_vals = np.zeros(n), np.zeros(n)
             for src in case.sources:
@@ -382,6 +383,7 @@ def run_transport(
                     s, S, rhs, old, new, free, dt, theta_t, method=case.solver.linear_solver,
                     tol=case.solver.tolerance)
             else:
+                assert solver is not None
                 b = rhs[free] - S_fD @ gvals
                 new[free] = solver.solve(b, x0=old[free])
                 # budget from the consistent residual of the full (unreduced) system (T9)
