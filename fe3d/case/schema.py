@@ -209,16 +209,17 @@ class Source(_Section):
 
     ``kind``: ``fixed_concentration`` holds the nodes at ``concentration`` (optionally
     depleting with ``depletion_half_life`` from ``start``; zero holds them clean);
-    ``mass_loading`` injects ``mass_rate`` spread over the box's nodes in proportion to their
-    volume;
+    ``inflow_concentration`` gives the water entering through a face patch this
+    concentration (a flux-type, third-type condition); ``mass_loading`` injects ``mass_rate``
+    spread over the box's nodes in proportion to their volume;
     ``initial_plume`` sets ``concentration`` in the region at t = 0.
     """
 
     name: Name
     species: Name
     shape: Literal["box", "face_patch"]
-    kind: Literal["fixed_concentration", "mass_loading", "initial_plume"] = \
-        "fixed_concentration"
+    kind: Literal["fixed_concentration", "inflow_concentration", "mass_loading",
+                  "initial_plume"] = "fixed_concentration"
     concentration: Concentration | None = None
     mass_rate: MassRate | None = None
     depletion_half_life: PositiveTime | None = None
@@ -406,7 +407,11 @@ def cross_checks(case: Case) -> list[CaseError]:
         if s.stop is not None and s.stop <= s.start:
             errs.append(CaseError(f"{key}.stop", _time_text(s.stop, tu),
                                   f"must be later than start ({_time_text(s.start, tu)})"))
-        if s.kind in ("fixed_concentration", "initial_plume") and s.concentration is None:
+        if s.kind == "inflow_concentration" and s.shape != "face_patch":
+            errs.append(CaseError(f"{key}.shape", s.shape,
+                                  "an inflow_concentration source must be a face_patch"))
+        if s.kind in ("fixed_concentration", "inflow_concentration", "initial_plume") \
+                and s.concentration is None:
             errs.append(CaseError(f"{key}.concentration", "(missing)",
                                   f"a {s.kind} source needs a concentration, e.g. '20 mg/L'"))
         if s.kind == "mass_loading" and (s.mass_rate is None or s.shape != "box"):

@@ -259,6 +259,23 @@ def run_transport(
 
     # source nodes
     source_nodes = {src.name: _source_nodes(site, src) for src in case.sources}
+    inflow_weights = {}
+    for src in case.sources:
+        if src.kind == "inflow_concentration":
+            assert src.face is not None
+            facets = mesh.boundaries[src.face]
+            mid = mesh.p[:, mesh.facets[:, facets]].mean(axis=1)
+            keep = np.ones(facets.size, dtype=bool)
+            for axis, rng in enumerate((src.x, src.y, src.z)):
+                if rng is not None:
+                    keep &= (mid[axis] >= rng[0]) & (mid[axis] <= rng[1])
+            if not keep.any():
+                msg = f"source {src.name!r}: no face triangle of {src.face!r} in its ranges"
+                raise MeshError(msg)
+            fb = FacetBasis(mesh, ElementTetP1(), facets=facets[keep])
+            qn = np.einsum("ke,keq->eq", q[:, fb.tind], fb.normals)
+            inflow_weights[src.name] = asm(forms.inflow_weight, fb,
+                                           qn_in=np.clip(-qn, 0.0, None))
     node_volume = _nodal(site.cells, np.abs(vol), n)
     loading_weights = {}
     for src in case.sources:
@@ -357,10 +374,16 @@ def run_transport(
             gvals = end_vals[fixed]
             load = np.zeros(n)
             for src in case.sources:
-                if src.species == s.name and src.kind == "mass_loading" and src.start <= tmid \
-                        and (src.stop is None or tmid <= src.stop):
+                if src.species != s.name or not (src.start <= tmid and (
+                        src.stop is None or tmid <= src.stop)):
+                    continue
+                if src.kind == "mass_loading":
                     assert src.mass_rate is not None
                     load += src.mass_rate * loading_weights[src.name]
+                elif src.kind == "inflow_concentration":  # (−q·n)⁺ c_in on the patch (T3b)
+                    assert src.concentration is not None
+                    load += src.concentration * _depletion(src, tmid) * \
+                        inflow_weights[src.name]
             if s.spec.parent is not None:  # first-order decay of the parent feeds it (T12)
                 load = load + s.spec.yield_from_parent * decay_loss[s.spec.parent]
             old = conc[s.name]
@@ -478,6 +501,8 @@ def _nonlinear_step(
 
     result = newton(residual, jacobian_solve, old[free].copy(), rtol=tol, atol=0.0,
                     max_iter=30)
+    logger.info("%s: Newton %d iterations, residual norms %s", s.name, result.iterations,
+                ", ".join(f"{r:.2e}" for r in result.residual_norms))
     c = new.copy()
     c[free] = result.x
     sig_new, _ = s.sorbed(c)
