@@ -11,10 +11,11 @@ from __future__ import annotations
 import csv
 import itertools
 import math
+import statistics
 from pathlib import Path
 from typing import Annotated, Literal
 
-from pydantic import Field
+from pydantic import Field, model_validator
 
 from fe3d.case.schema_types import (
     Length,
@@ -104,15 +105,51 @@ class Stratigraphy(Section):
     min_thickness: NonNegativeLength = 0.1
 
 
+class LensPick(Section):
+    """Top and bottom [m] of a lens where a borehole crosses it."""
+
+    borehole: Annotated[str, Field(min_length=1, max_length=64)]
+    top: Length
+    bottom: Length
+
+
 class Lens(Section):
-    """A body of its own material inside a host unit: plan polygon, top and bottom [m]."""
+    """A body of its own material inside a host unit: plan polygon, top and bottom [m].
+
+    ``top`` and ``bottom`` are given directly, or by ``picks`` in the boreholes that cross
+    the lens; lenses are modelled flat, so the picks are averaged (mean top, mean bottom)
+    and ``pick_spread`` [m] records how far they scatter around that mean.
+    """
 
     name: Name
     material: Name
     host: Name
     polygon: PlanPolygon
-    top: Length
-    bottom: Length
+    top: Length | None = None
+    bottom: Length | None = None
+    picks: list[LensPick] = Field(default_factory=list)
+
+    @model_validator(mode="after")
+    def _top_and_bottom(self) -> Lens:
+        if self.picks and (self.top is not None or self.bottom is not None):
+            msg = "give either top and bottom, or picks from boreholes, not both"
+            raise ValueError(msg)
+        if not self.picks:
+            if self.top is None or self.bottom is None:
+                msg = "needs top and bottom, or picks from the boreholes that cross it"
+                raise ValueError(msg)
+            return self
+        object.__setattr__(self, "top", statistics.fmean(p.top for p in self.picks))
+        object.__setattr__(self, "bottom", statistics.fmean(p.bottom for p in self.picks))
+        return self
+
+    @property
+    def pick_spread(self) -> float:
+        """Largest distance [m] of a pick from the mean top or bottom (0 without picks)."""
+        if not self.picks:
+            return 0.0
+        assert self.top is not None and self.bottom is not None
+        return max(max(abs(p.top - self.top), abs(p.bottom - self.bottom)) for p in self.picks)
 
 
 class RefinementLine(Section):
@@ -559,6 +596,22 @@ def _lens_checks(case: object, errs: list[CaseError]) -> None:
         if lens.material not in materials:
             errs.append(CaseError(f"{key}.material", lens.material,
                                   f"must be one of the materials: {sorted(materials)}"))
+        names = {b.name: b for b in getattr(getattr(case, "stratigraphy", None), "boreholes",
+                                            [])}
+        verts_l = [(float(x), float(y)) for x, y in lens.polygon]
+        for p in lens.picks:
+            b = names.get(p.borehole)
+            if b is None:
+                errs.append(CaseError(f"{key}.picks", p.borehole,
+                                      f"must name a borehole of the stratigraphy: "
+                                      f"{sorted(names)}"))
+            elif not point_in_polygon(b.x, b.y, verts_l, tol=1e-6):
+                errs.append(CaseError(f"{key}.picks", p.borehole,
+                                      "the borehole must lie inside the lens polygon"))
+            if not p.top > p.bottom:
+                errs.append(CaseError(f"{key}.picks", p.borehole,
+                                      "each pick's top must lie above its bottom"))
+        assert lens.top is not None and lens.bottom is not None
         if not lens.top > lens.bottom:
             errs.append(CaseError(f"{key}.bottom", f"{lens.bottom:g} m",
                                   f"must lie below the lens top ({lens.top:g} m)"))

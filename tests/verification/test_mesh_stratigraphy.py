@@ -404,3 +404,37 @@ bottom = "-5 m"
     # clipped lens = host top (the 'middle' base surface) down to -5 m inside the outline
     assert site.cell_volumes().min() > 0
     assert unit_volumes(site)["inner_lens"] == pytest.approx(20 * 15 * 2.0, rel=1e-9)
+
+
+LENS_FROM_PICKS = """
+[[lenses]]
+name = "clay_lens"
+material = "sand"
+host = "lower"
+polygon = [["40 m", "30 m"], ["80 m", "30 m"], ["80 m", "60 m"], ["40 m", "60 m"]]
+picks = [{{ borehole = "{bh}", top = "-2.2 m", bottom = "-5.1 m" }}]
+"""
+
+
+def test_lens_given_by_borehole_picks(tmp_path):
+    """A lens whose top and bottom come from the borehole crossing it (flat lens: the mean
+    of the picks): its cells fill polygon area × (top − bottom), exact by construction."""
+    case = load_case(write_case(tmp_path, irregular_rows(),
+                                extra=LENS_FROM_PICKS.format(bh="BH-6")))
+    lens = case.lenses[0]
+    assert (lens.top, lens.bottom, lens.pick_spread) == (-2.2, -5.1, 0.0)
+    site = build_mesh(case)
+    assert unit_volumes(site)["clay_lens"] == pytest.approx(40 * 30 * 2.9, rel=1e-9)
+
+
+def test_lens_picks_must_come_from_boreholes_inside_it(tmp_path):
+    line = _error_line(write_case(tmp_path, irregular_rows(),
+                                  extra=LENS_FROM_PICKS.format(bh="BH-7")))
+    assert line.startswith("lenses[clay_lens].picks = 'BH-7'")
+    assert "inside the lens polygon" in line
+    line = _error_line(write_case(tmp_path, irregular_rows(),
+                                  extra=LENS_FROM_PICKS.format(bh="BH-99")))
+    assert line.startswith("lenses[clay_lens].picks = 'BH-99'")
+    both = LENS_FROM_PICKS.format(bh="BH-6") + 'top = "-2 m"\n'
+    line = _error_line(write_case(tmp_path, irregular_rows(), extra=both))
+    assert "not both" in line
