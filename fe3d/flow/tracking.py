@@ -84,10 +84,18 @@ class Tracker:
 
             centres = self.points[:, self.cells].mean(axis=1).T
             self._finder = cKDTree(centres)
-        _, cand = self._finder.query(x, k=min(64, self.cells.shape[1]))
-        for e in np.atleast_1d(cand):
-            if np.all(self._barycentric(int(e), x) >= -1e-9):
-                return int(e)
+        # flat layer cells have centres far from points they contain: widen the search
+        for k in (64, 512, 4096):
+            _, cand = self._finder.query(x, k=min(k, self.cells.shape[1]))
+            cand = np.atleast_1d(cand)
+            lam = np.einsum("eik,ek->ei", self.grads[cand],
+                            x[None, :] - self.points[:, self.cells[0, cand]].T)
+            lam[:, 0] = 1.0 - lam[:, 1:].sum(axis=1)
+            inside = np.nonzero(np.all(lam >= -1e-9, axis=1))[0]
+            if inside.size:
+                return int(cand[inside[0]])
+            if k >= self.cells.shape[1]:
+                break
         return -1
 
     def velocity_at(self, x: FloatArray, e: int) -> FloatArray:
