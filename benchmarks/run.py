@@ -49,13 +49,20 @@ def run(cell: float, dz: float) -> dict[str, float]:
         pass
     t_total = time.perf_counter() - t
     step_times = np.diff(stamps)  # steps after the first reuse the operator and solver
-    # one SpMV of a matrix with the same sparsity (the assembled step operator)
-    from skfem import Basis, BilinearForm, ElementTetP1, asm
-    from skfem.helpers import dot, grad
+    # the transport operators in closed form (what each species assembles per step length),
+    # and one SpMV of the resulting step matrix
+    from fe3d.mesh.geometry import p1_gradients
+    from fe3d.transport.assembly import transport_operators
 
-    basis = Basis(site.skfem_mesh(), ElementTetP1())
+    grads, vol = p1_gradients(site.points, site.cells)
+    m = site.n_cells
+    ones = np.ones(m)
     t = time.perf_counter()
-    A = asm(BilinearForm(lambda u, v, _w: dot(grad(u), grad(v)) + u * v), basis).tocsr()
+    M, K = transport_operators(site.cells, grads, vol, m=0.3 * ones, k=1e-9 * ones,
+                               q=flow.darcy_flux, a=flow.darcy_flux / 0.3, tau=1e3 * ones,
+                               theta_d=np.repeat(1e-6 * np.eye(3)[:, :, None], m, axis=2),
+                               n=site.n_nodes)
+    A = (M / 86400.0 + K).tocsr()
     t_asm = time.perf_counter() - t
     x = np.ones(A.shape[0])
     t = time.perf_counter()
@@ -70,7 +77,9 @@ def run(cell: float, dz: float) -> dict[str, float]:
 
 
 def main() -> int:
-    sizes = [(2.0, 0.5), (1.0, 0.25)] if "--quick" not in sys.argv else [(4.0, 1.0)]
+    sizes = [(2.0, 0.5), (1.0, 0.25), (0.6, 0.15)]
+    if "--quick" in sys.argv:
+        sizes = [(4.0, 1.0)]
     rows = []
     for cell, dz in sizes:
         r = run(cell, dz)
@@ -79,7 +88,7 @@ def main() -> int:
     lines = ["# Performance", "",
              "Measured by `make bench` (benchmarks/run.py) on the 2-core development machine; "
              "timings on a shared machine vary by ±20–50 %.", "",
-             "| nodes | tetrahedra | mesh [s] | flow [s] | one form assembly [s] | "
+             "| nodes | tetrahedra | mesh [s] | flow [s] | transport operators [s] | "
              "transport step [s] | SpMV [ms] | step / SpMV | peak RSS [MiB] |",
              "|---|---|---|---|---|---|---|---|---|"]
     for r in rows:
@@ -87,9 +96,22 @@ def main() -> int:
                      f" | {r['asm_one_form_s']:.2f} | {r['step_s']:.3f} | {r['spmv_ms']:.2f} | "
                      f"{r['step_in_spmv']:.0f} | {r['peak_mib']:.0f} |")
     lines += ["", "The transport step is one species with its operator and solver reused "
-              "(median over the steps after the first). Peak RSS is for the whole process "
-              "up to that row.", ""]
-    (ROOT / "docs" / "performance.md").write_text("\n".join(lines), encoding="utf-8")
+              "(median over the steps after the first), including the budget, probes and "
+              "diagnostics of the step. 'Transport operators' is the closed-form assembly of "
+              "the mass and spatial operators of one species. Peak RSS is for the whole "
+              "process up to that row.", "",
+              "Against the transport targets of the transport-core issue (at 1 M nodes: "
+              "operator build ≤ 5 s, a linear step ≤ 25 SpMV at Courant ≈ 1): the closed-form "
+              "build scales to about 3.5 s per million tetrahedra, but a step costs 300–500 "
+              "SpMV here (GMRES to a relative 1e-10 with a fresh AMG V-cycle per iteration, "
+              "the tiny case's Courant number about 3, plus the budget and probes). Not met "
+              "yet; a looser tolerance tied to the budget target and a cheaper preconditioner "
+              "at low Courant numbers are the next steps.", ""]
+    # replace only this script's part (the top of the file, before the next section)
+    perf = ROOT / "docs" / "performance.md"
+    old = perf.read_text(encoding="utf-8") if perf.exists() else ""
+    rest = old[old.index("\n## "):] if "\n## " in old else ""
+    perf.write_text("\n".join(lines).rstrip("\n") + "\n" + rest, encoding="utf-8")
     return 0
 
 
