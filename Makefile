@@ -31,6 +31,7 @@ test: lint unit
 bench: $(STAMP)
 	$(BIN)/python benchmarks/run.py
 	$(BIN)/python benchmarks/mesh_bench.py
+	$(BIN)/python benchmarks/flow_bench.py
 
 clean:
 	rm -rf runs .pytest_cache .ruff_cache
