@@ -8,11 +8,11 @@ from typing import TYPE_CHECKING, Literal
 from pydantic import Field
 
 from fe3d.case.schema_types import (
+    FlowRate,
     Length,
     Name,
     PlanPolygon,
     PositiveLeakance,
-    PositiveRate,
     Range,
     Section,
     Velocity,
@@ -38,7 +38,7 @@ class Well(Section):
     x: Length
     y: Length
     screens: list[Range] = Field(min_length=1)
-    rate: PositiveRate = 0.0
+    rate: FlowRate = 0.0
     kind: Literal["extraction", "injection", "observation"] = "extraction"
     unit: Name | None = None
 

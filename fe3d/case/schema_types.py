@@ -4,7 +4,7 @@ ranges, plan polygons, and the frozen section base class."""
 from __future__ import annotations
 
 import math
-from typing import Annotated, Literal
+from typing import Annotated
 
 from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field
 
@@ -63,7 +63,6 @@ Partition = Annotated[float, _quantity("specific_volume"), AfterValidator(_non_n
 Diffusivity = Annotated[float, _quantity("diffusivity"), AfterValidator(_non_negative)]
 Fraction = Annotated[float, AfterValidator(_fraction)]
 Name = Annotated[str, Field(pattern=r"^[A-Za-z][A-Za-z0-9_\-]*$", max_length=64)]
-FaceName = Literal["west", "east", "south", "north", "top", "bottom"]
 Range = tuple[Length, Length]
 PlanPoint = tuple[Length, Length]
 PlanPolygon = Annotated[list[PlanPoint], Field(min_length=3)]
@@ -73,7 +72,7 @@ SecondOrderRate = Annotated[float, _quantity("second_order_rate"), AfterValidato
 ReactionRate = Annotated[float, _quantity("reaction_rate"), AfterValidator(_positive)]
 MassRate = Annotated[float, _quantity("mass_rate"), AfterValidator(_positive)]
 MassRatio = Annotated[float, _quantity("mass_ratio"), AfterValidator(_non_negative)]
-PositiveRate = Annotated[float, _quantity("flow_rate"), AfterValidator(_non_negative)]
+FlowRate = Annotated[float, _quantity("flow_rate"), AfterValidator(_non_negative)]
 PositiveLeakance = Annotated[float, _quantity("leakance"), AfterValidator(_positive)]
 
 

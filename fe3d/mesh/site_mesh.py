@@ -28,8 +28,8 @@ class SiteMesh:
         Hydrostratigraphic unit names, top down.
     faces
         Boundary face name → node-id triples of its triangles, shape ``(3, n_facets)``.
-    plan_size
-        Local target plan cell size used by the mesher at each node [m], shape ``(n_nodes,)``.
+    info
+        Mesher details (plan mesh, sublayers, pinch-out and lens reports, well nodes).
     """
 
     points: FloatArray
