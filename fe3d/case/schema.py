@@ -7,6 +7,7 @@ the key path of the offending value.
 
 from __future__ import annotations
 
+import itertools
 import math
 from typing import Annotated, Any, Literal
 
@@ -130,17 +131,31 @@ class Layer(_Section):
 
 
 class FixedHead(_Section):
-    """A fixed hydraulic head on a named face of the model (a boundary edge name, top, bottom)."""
+    """A fixed hydraulic head on a named face of the model (a boundary edge name, top, bottom).
+
+    Either ``head`` plus ``head_gradient`` · (point − ``reference_point``) (constant or
+    varying linearly along the face), or ``head_by_elevation``: (elevation, head) pairs,
+    interpolated linearly in z and held constant beyond the first and last pair, plus the
+    horizontal part of ``head_gradient`` (theory.md F2).
+    """
 
     face: Name
-    head: Length
+    head: Length | None = None
     head_gradient: tuple[float, float, float] = (0.0, 0.0, 0.0)
     reference_point: tuple[Length, Length, Length] = (0.0, 0.0, 0.0)
+    head_by_elevation: list[tuple[Length, Length]] | None = None
 
     def head_at(self, points: Any) -> Any:
-        """Head [m] at points ``(3, k)``: head + gradient · (point − reference_point)."""
+        """Head [m] at points ``(3, k)``."""
         g, r = self.head_gradient, self.reference_point
-        return self.head + sum(g[i] * (points[i] - r[i]) for i in range(3))
+        if self.head_by_elevation is None:
+            assert self.head is not None
+            return self.head + sum(g[i] * (points[i] - r[i]) for i in range(3))
+        import numpy as np
+
+        z, h = (np.array(col, dtype=float) for col in zip(*self.head_by_elevation,
+                                                              strict=True))
+        return np.interp(points[2], z, h) + sum(g[i] * (points[i] - r[i]) for i in range(2))
 
 
 class Species(_Section):
@@ -350,6 +365,27 @@ def _time_text(seconds: float, unit: str) -> str:
     return f"{from_si(seconds, unit):.6g} {unit}"
 
 
+def _fixed_head_checks(key: str, fh: FixedHead) -> list[CaseError]:
+    """One way of giving the head, and an elevation table that can be interpolated."""
+    table = fh.head_by_elevation
+    if (fh.head is None) == (table is None):
+        return [CaseError(f"{key}.head", "both" if table is not None else "(missing)",
+                          "give exactly one of head (with an optional head_gradient) or "
+                          "head_by_elevation")]
+    if table is None:
+        return []
+    z = [pair[0] for pair in table]
+    if len(z) < 2 or any(b <= a for a, b in itertools.pairwise(z)):
+        return [CaseError(f"{key}.head_by_elevation", f"elevations {z} m",
+                          "at least two [elevation, head] pairs with strictly increasing "
+                          "elevations")]
+    if fh.head_gradient[2] != 0.0:
+        return [CaseError(f"{key}.head_gradient", f"{list(fh.head_gradient)}",
+                          "the vertical component must be 0 with head_by_elevation (the "
+                          "table already gives the head against elevation)")]
+    return []
+
+
 def cross_checks(case: Case) -> list[CaseError]:
     """Rules that relate one section to another; one error per problem, with its key path."""
     errs: list[CaseError] = []
@@ -392,6 +428,8 @@ def cross_checks(case: Case) -> list[CaseError]:
                                   f"must lie below {upper_name} at every {where}"))
         upper_name, upper = f"layers[{layer.name}].bottom", here
     zmin = case.z_bottom_min
+    for i, fh in enumerate(case.fixed_heads):
+        errs += _fixed_head_checks(f"fixed_heads[{i}]", fh)
     faces = [fh.face for fh in case.fixed_heads]
     for f in set(faces):
         if faces.count(f) > 1:
