@@ -8,6 +8,7 @@ from typing import TYPE_CHECKING, Literal
 from pydantic import Field
 
 from fe3d.case.schema_types import (
+    Concentration,
     FlowRate,
     Length,
     Name,
@@ -29,9 +30,11 @@ class Well(Section):
     """A vertical well with one or several screens (each [top, bottom] elevation).
 
     ``rate`` is the total volume rate [m³/s]; ``kind`` says whether water is taken out
-    (extraction) or put in (injection). The rate is split over the screens in proportion to
-    conductivity × screened length. When ``unit`` names the screened unit, every screen must
-    lie in it at the well (a unit pinched out there is an error).
+    (extraction) or put in (injection); an injection well carries
+    ``injection_concentration`` of the species named there (clean water otherwise). The rate
+    is split over the screens in proportion to conductivity × screened length. When ``unit``
+    names the screened unit, every screen must lie in it at the well (a unit pinched out
+    there is an error).
     """
 
     name: Name
@@ -41,6 +44,7 @@ class Well(Section):
     rate: FlowRate = 0.0
     kind: Literal["extraction", "injection", "observation"] = "extraction"
     unit: Name | None = None
+    injection_concentration: dict[Name, Concentration] = Field(default_factory=dict)
 
 
 class Recharge(Section):
@@ -100,6 +104,13 @@ def hydro_checks(case: Case) -> list[CaseError]:
         if w.kind != "observation" and w.rate <= 0:
             errs.append(CaseError(f"{key}.rate", f"{w.rate:g} m^3/s",
                                   f"an {w.kind} well needs a rate greater than zero"))
+        if w.injection_concentration and w.kind != "injection":
+            errs.append(CaseError(f"{key}.injection_concentration", w.kind,
+                                  "only an injection well carries an injection_concentration"))
+        for sp_name in w.injection_concentration:
+            if sp_name not in case.species:
+                errs.append(CaseError(f"{key}.injection_concentration.{sp_name}", sp_name,
+                                      f"must name a species: {sorted(case.species)}"))
     faces = case.face_names()
     for hd in case.head_dependent:
         if hd.face not in faces:

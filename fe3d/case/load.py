@@ -10,6 +10,7 @@ from pydantic import ValidationError
 
 from fe3d.case.geology import read_borehole_file, read_grid_file, read_surface_file
 from fe3d.case.schema import Case, cross_checks
+from fe3d.case.series import read_release_file
 from fe3d.errors import CaseError, CaseErrors
 
 __all__ = ["load_case", "parse_case"]
@@ -141,6 +142,7 @@ def parse_case(text: str, *, source: str = "<case>", base_dir: Path | None = Non
         raise CaseErrors(_errors_from(exc, raw)) from None
     try:
         case = with_geology_files(case, base_dir or Path())
+        case = with_release_files(case, base_dir or Path())
     except CaseError as exc:
         raise CaseErrors([exc]) from None
     problems = cross_checks(case)
@@ -188,3 +190,17 @@ def with_geology_files(case: Case, base_dir: Path) -> Case:
             name: read_grid_file(base_dir / file, key=f"stratigraphy.grid_files.{name}")
             for name, file in strat.grid_files.items()}}
     return case.model_copy(update={"stratigraphy": strat.model_copy(update=update)})
+
+
+def with_release_files(case: Case, base_dir: Path) -> Case:
+    """The case with every source's release CSV read into ``release_series`` [s, SI]."""
+    if not any(s.release_file for s in case.sources):
+        return case
+    sources = []
+    for s in case.sources:
+        if s.release_file is not None and s.kind != "initial_plume":
+            series = read_release_file(base_dir / s.release_file, kind=s.kind,
+                                       key=f"sources[{s.name}].release_file")
+            s = s.model_copy(update={"release_series": series})
+        sources.append(s)
+    return case.model_copy(update={"sources": sources})

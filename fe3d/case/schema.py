@@ -67,6 +67,7 @@ __all__ = [
     "Source",
     "Species",
     "TimeControl",
+    "UserReactions",
     "cross_checks",
 ]
 
@@ -244,6 +245,47 @@ class Source(_Section):
     z: Range | None = None
     start: Time = 0.0
     stop: PositiveTime | None = None
+    release_file: str | None = None
+    release_series: list[tuple[float, float]] | None = None  # filled from release_file [s, SI]
+
+    def strength(self, t0: float, t1: float) -> float:
+        """Mean source value over [t0, t1] [kg/m³ or kg/s]: the concentration or mass rate,
+        from the release series (linear between its rows, constant beyond its ends) or the
+        constant value, times the depletion factor at the midpoint (theory.md T3c)."""
+        if self.release_series is None:
+            base = self.concentration if self.mass_rate is None else self.mass_rate
+            assert base is not None
+            value = base
+        else:
+            value = _series_mean(self.release_series, t0, t1)
+        if self.depletion_half_life is not None:
+            tm = 0.5 * (t0 + t1)
+            value *= math.exp(-math.log(2.0) * max(tm - self.start, 0.0)
+                              / self.depletion_half_life)
+        return value
+
+
+def _series_mean(series: list[tuple[float, float]], t0: float, t1: float) -> float:
+    """Exact mean over [t0, t1] of the piecewise-linear series (constant beyond its ends)."""
+    import numpy as np
+
+    t, v = (np.array(col, dtype=float) for col in zip(*series, strict=True))
+    if t1 <= t0:
+        return float(np.interp(t0, t, v))
+    inner = t[(t > t0) & (t < t1)]
+    knots = np.concatenate([[t0], inner, [t1]])
+    vals = np.interp(knots, t, v)
+    return float(np.sum(0.5 * (vals[1:] + vals[:-1]) * np.diff(knots)) / (t1 - t0))
+
+
+class UserReactions(_Section):
+    """Rate laws written by the user in Python (theory.md R10, T11b): ``function`` names
+    ``"module:function"`` (imported from the case folder or the Python path, never evaluated
+    from text); it receives the concentrations of ``species`` (rows in this order) and
+    returns their rates and derivatives."""
+
+    function: str
+    species: list[Name] = Field(min_length=1)
 
 
 class ObservationPoint(_Section):
@@ -264,7 +306,11 @@ class TimeControl(_Section):
     step: PositiveTime
     output_interval: PositiveTime | None = None
     output_times: list[Time] | None = None
-    scheme: Literal["backward_euler", "crank_nicolson"] = "backward_euler"
+    scheme: Literal["backward_euler", "crank_nicolson", "bdf2"] = "backward_euler"
+    adaptive: bool = False
+    min_step: PositiveTime | None = None
+    max_step: PositiveTime | None = None
+    error_tolerance: Annotated[float, Field(gt=0.0, le=0.5)] = 0.01
 
 
 class MeshControl(_Section):
@@ -283,6 +329,8 @@ class SolverControl(_Section):
     supg: bool = True
     linear_solver: Literal["auto", "direct", "iterative"] = "auto"
     tolerance: Annotated[float, Field(gt=0, lt=1e-2)] = 1e-10
+    max_step_cuts: Annotated[int, Field(ge=0, le=20)] = 6
+    newton_max_iterations: Annotated[int, Field(ge=1, le=200)] = 30
 
 
 class OutputControl(_Section):
@@ -308,6 +356,7 @@ class Case(_Section):
     fixed_heads: list[FixedHead] = Field(default_factory=list)
     species: dict[Name, Species] = Field(min_length=1)
     sources: list[Source] = Field(default_factory=list)
+    user_reactions: UserReactions | None = None
     observation_points: list[ObservationPoint] = Field(default_factory=list)
     wells: list[Well] = Field(default_factory=list)
     recharge: list[Recharge] = Field(default_factory=list)
@@ -448,11 +497,22 @@ def cross_checks(case: Case) -> list[CaseError]:
         if s.kind == "inflow_concentration" and s.shape != "face_patch":
             errs.append(CaseError(f"{key}.shape", s.shape,
                                   "an inflow_concentration source must be a face_patch"))
-        if s.kind in ("fixed_concentration", "inflow_concentration", "initial_plume") \
-                and s.concentration is None:
+        if s.release_file is not None and s.kind == "initial_plume":
+            errs.append(CaseError(f"{key}.release_file", s.release_file,
+                                  "an initial_plume has no release in time; use a "
+                                  "fixed_concentration, inflow_concentration or mass_loading "
+                                  "source"))
+        if s.release_file is not None and (s.concentration is not None
+                                           or s.mass_rate is not None):
+            errs.append(CaseError(f"{key}.release_file", s.release_file,
+                                  "give either a release_file or a constant concentration / "
+                                  "mass_rate, not both"))
+        if s.release_file is None and s.concentration is None and s.kind in (
+                "fixed_concentration", "inflow_concentration", "initial_plume"):
             errs.append(CaseError(f"{key}.concentration", "(missing)",
                                   f"a {s.kind} source needs a concentration, e.g. '20 mg/L'"))
-        if s.kind == "mass_loading" and (s.mass_rate is None or s.shape != "box"):
+        if s.kind == "mass_loading" and ((s.mass_rate is None and s.release_file is None)
+                                         or s.shape != "box"):
             errs.append(CaseError(f"{key}.mass_rate", "(missing)" if s.mass_rate is None
                                   else s.shape, "a mass_loading source needs a mass_rate "
                                   "(e.g. '2 g/d') and shape = 'box'"))
@@ -533,7 +593,18 @@ def cross_checks(case: Case) -> list[CaseError]:
                 if mat not in case.materials:
                     errs.append(CaseError(f"species.{name}.kd.{mat}", mat,
                                           f"must name a material: {sorted(case.materials)}"))
+    if case.user_reactions is not None:
+        for j, name in enumerate(case.user_reactions.species):
+            if name not in case.species:
+                errs.append(CaseError(f"user_reactions.species[{j}]", name,
+                                      f"must name a species: {sorted(case.species)}"))
     t = case.time
+    if t.min_step is not None and t.min_step > t.step:
+        errs.append(CaseError("time.min_step", _time_text(t.min_step, tu),
+                              f"must not exceed time.step ({_time_text(t.step, tu)})"))
+    if t.max_step is not None and t.max_step < t.step:
+        errs.append(CaseError("time.max_step", _time_text(t.max_step, tu),
+                              f"must not be below time.step ({_time_text(t.step, tu)})"))
     if t.step > t.end:
         errs.append(CaseError("time.step", _time_text(t.step, tu),
                               f"must not exceed time.end ({_time_text(t.end, tu)})"))

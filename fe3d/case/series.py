@@ -1,0 +1,67 @@
+"""Release time series: a CSV of time and source strength, read into the case in SI units.
+
+The header names the two columns with their units in brackets, ``time [d]`` then either
+``concentration [mg/L]`` (fixed_concentration and inflow_concentration sources) or
+``mass_rate [g/d]`` (mass_loading sources). Rows follow in increasing time; lines starting
+with ``#`` are comments. Between rows the strength is linear in time, beyond the first and
+last rows it is constant (theory.md T3c).
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+from fe3d.case.geology import _rows
+from fe3d.errors import CaseError
+from fe3d.units import to_si
+
+__all__ = ["read_release_file"]
+
+_HEADER = re.compile(r"^\s*([A-Za-z_]+)\s*\[([^\]]+)\]\s*$")
+_QUANTITY_OF_KIND = {"fixed_concentration": "concentration",
+                     "inflow_concentration": "concentration", "mass_loading": "mass_rate"}
+
+
+def _column(cell: str, key: str, path: Path) -> tuple[str, str]:
+    m = _HEADER.match(cell)
+    if m is None:
+        raise CaseError(key, f"{path.name}: header {cell!r}",
+                        "each header cell must be a name and a unit in brackets, e.g. "
+                        "'time [d]', 'concentration [mg/L]' or 'mass_rate [g/d]'")
+    return m.group(1).lower(), m.group(2).strip()
+
+
+def read_release_file(path: Path, *, kind: str, key: str) -> list[tuple[float, float]]:
+    """Rows (time [s], value [kg/m³ or kg/s]) of a release CSV for a source of ``kind``."""
+    header, rows, nums = _rows(path, key)
+    wanted = _QUANTITY_OF_KIND.get(kind)
+    if wanted is None:
+        raise CaseError(key, str(path), "only fixed_concentration, inflow_concentration and "
+                                        "mass_loading sources take a release file")
+    if len(header) != 2:
+        raise CaseError(key, f"{path.name}: header {','.join(header)}",
+                        f"needs two columns: 'time [unit]' and '{wanted} [unit]'")
+    (tname, tunit), (vname, vunit) = (_column(c, key, path) for c in header)
+    if tname != "time" or vname != wanted:
+        raise CaseError(key, f"{path.name}: header {','.join(header)}",
+                        f"a {kind} source needs the columns 'time [unit]' and "
+                        f"'{wanted} [unit]'")
+    out: list[tuple[float, float]] = []
+    for k, r in zip(nums[1:], rows, strict=True):
+        where = f"{key}[line {k}]"
+        if len(r) != 2:
+            raise CaseError(where, ",".join(r), f"needs a time and a {wanted} ({path.name})")
+        try:
+            t = to_si(f"{r[0]} {tunit}", "time")
+            v = to_si(f"{r[1]} {vunit}", wanted)
+        except ValueError as exc:
+            raise CaseError(where, ",".join(r), f"{exc} ({path.name})") from None
+        if v < 0.0:
+            raise CaseError(where, r[1], f"a {wanted} must be ≥ 0 ({path.name})")
+        if out and t <= out[-1][0]:
+            raise CaseError(where, r[0], f"times must increase from row to row ({path.name})")
+        out.append((t, v))
+    if not out:
+        raise CaseError(key, str(path), "holds no rows below the header")
+    return out
