@@ -1,0 +1,204 @@
+"""Continuous point source in uniform 3D flow with first-order decay, at steady state.
+
+Reference: Hunt, B. (1978), *Dispersive sources in uniform ground-water flow*, Journal of the
+Hydraulics Division, ASCE 104(HY1); Wexler, E.J. (1992), *Analytical solutions for one-,
+two-, and three-dimensional solute transport in ground-water systems with uniform flow*,
+USGS Techniques of Water-Resources Investigations, book 3, chapter B7 (the continuous point
+source; its steady limit). Citations from memory; the formula is derived in
+``_point_source.py`` and checked here against its PDE and its source strength before it is
+trusted (``test_reference_solution_satisfies_the_equation``,
+``test_reference_solution_carries_the_source_rate``).
+
+Set-up (invented, not a real site): a quarter of a plume. A mass loading Ṁ sits on the edge
+where the south face (y = 0) meets the bottom face (z = −H); both are no-flux faces
+parallel to the flow and act as mirrors, and so do the north and top faces. The reference is
+the sum over the loaded mesh nodes (rate Ṁ × fe3d's nodal-volume weight at each node) of
+the point-source solution and its images in the four no-flux faces. Superposing over the
+nodes is exact for the discrete source distribution; it is not the Domenico (1987)
+approximation, whose centreline error reaches tens of percent (West, M.R., Kueper, B.H. &
+Ungs, M.J. 2007, *On the use and error of approximation in the Domenico (1987) solution*,
+Ground Water 45(2); citation from memory).
+
+Seepage velocity 1 m/d along x; α_L = 1 m, α_TH = 0.4 m, α_TV = 0.2 m (so D_y ≠ D_z);
+half-life 6.93 d (λ = 0.1 /d) in the dissolved phase only, with K_d giving R = 1.5, which
+must not change the steady state. Backward Euler with 200 d steps to 2000 d: the transient
+falls by at least 1/(1 + λΔt) = 1/21 per step, so after ten steps it is below 1e-13 and the
+run is at its discrete steady state (asserted by the change between the last two outputs).
+
+Tolerances (issue 5): centreline within 3 % of the local exact value, transverse profiles
+within 3 % of the exact centreline value at the same x (the exact value off the axis goes to
+zero, so a local relative error means nothing in the tail), at nodes more than three cells
+(plan cell size h) beyond the edge of the loaded box; the west and east fixed-head faces
+are not mirrors, so points within 5 m (5 α_L) of the east face are left out. Mass budget
+≤ 1e-8 (design target, theory.md T9).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from _point_source import mirrored, point_source
+from conftest import box_case_text
+
+from fe3d.case.load import parse_case
+from fe3d.pipeline import mesh_and_flow
+from fe3d.transport.run import run_transport
+
+pytestmark = pytest.mark.verification
+
+DAY = 86400.0
+LENGTH, WIDTH, DEPTH = 32.0, 10.0, 5.0  # [m]; top at 0, bottom at −DEPTH
+X_SOURCE = 6.0  # [m] on the edge y = 0, z = −DEPTH
+V = 1.0 / DAY  # seepage velocity [m/s]: K 10 m/d, gradient 0.025, θ 0.25
+THETA = 0.25
+ALPHA = (1.0, 0.4, 0.2)  # α_L, α_TH, α_TV [m]
+DECAY = 0.1 / DAY  # λ [1/s]
+KD = 7.8125e-5  # [m³/kg]: R = 1 + 1600 · 7.8125e-5 / 0.25 = 1.5
+MASS_RATE = 10.0e-3 / DAY  # Ṁ = 10 g/d [kg/s]
+PARAMS = {"porosity": THETA, "velocity": V, "decay": DECAY,
+          "dispersion": (ALPHA[0] * V, ALPHA[1] * V, ALPHA[2] * V)}
+TOLERANCE = 0.03  # issue 5
+
+
+def _exact(x: np.ndarray, y: np.ndarray, z: np.ndarray) -> np.ndarray:
+    return point_source(x, y, z, mass_rate=MASS_RATE, **PARAMS)  # type: ignore[arg-type]
+
+
+def test_reference_solution_satisfies_the_equation():
+    """Finite-difference residual of θ(v c_x − D_x c_xx − D_y c_yy − D_z c_zz + λc) ≤ 1e-6 of
+    the largest term, at 200 random points 1–20 m from the source (central differences with
+    step 1e-3 m: truncation O((step/r)²) ≤ 1e-6 of the terms)."""
+    rng = np.random.default_rng(0)
+    direction = rng.normal(size=(3, 200))
+    p = direction / np.linalg.norm(direction, axis=0) * rng.uniform(1.0, 20.0, 200)
+    s = 1e-3
+    dx, dy, dz = PARAMS["dispersion"]  # type: ignore[misc]
+    c = _exact(*p)
+    shift = np.eye(3)[:, :, None] * s
+    plus = [_exact(*(p + shift[i])) for i in range(3)]
+    minus = [_exact(*(p - shift[i])) for i in range(3)]
+    c_x = (plus[0] - minus[0]) / (2 * s)
+    second = [(plus[i] - 2 * c + minus[i]) / s**2 for i in range(3)]
+    terms = THETA * np.array([V * c_x, -dx * second[0], -dy * second[1], -dz * second[2],
+                              DECAY * c])
+    residual = np.abs(terms.sum(axis=0))
+    scale = np.abs(terms).max(axis=0)
+    assert np.max(residual / scale) <= 1e-6, np.max(residual / scale)
+
+
+def _box_flux(a: float, n: int = 48) -> float:
+    """Total solute flux θ(v c − D∇c)·n [kg/s] out of the cube |x|, |y|, |z| ≤ a around the
+    source: Gauss–Legendre with n × n points per face, gradient by central differences."""
+    g, w = np.polynomial.legendre.leggauss(n)
+    u, t = np.meshgrid(a * g, a * g, indexing="ij")
+    weight = np.outer(w, w) * a * a
+    dxyz = PARAMS["dispersion"]
+    step = 1e-4 * a
+    total = 0.0
+    for axis in range(3):
+        for sign in (1.0, -1.0):
+            p = np.empty((3, *u.shape))
+            p[axis] = sign * a
+            p[(axis + 1) % 3], p[(axis + 2) % 3] = u, t
+            e = np.zeros((3, 1, 1))
+            e[axis] = step
+            grad = (_exact(*(p + e)) - _exact(*(p - e))) / (2 * step)
+            normal_flux = -dxyz[axis] * grad * sign  # type: ignore[index]
+            if axis == 0:
+                normal_flux = normal_flux + V * _exact(*p) * sign
+            total += THETA * float(np.sum(weight * normal_flux))
+    return total
+
+
+def test_reference_solution_carries_the_source_rate():
+    """The flux out of a small cube around the source tends to Ṁ as the cube shrinks.
+
+    Out-flux F(a) = Ṁ − θλ∫_cube c dV and ∫_cube c dV = C a² + O(a³) (c ~ 1/r, the odd
+    term vanishes on a symmetric cube), so F(a) falls short of Ṁ by O(a²) and the
+    Richardson value (4F(a/2) − F(a))/3 differs from Ṁ by O(a³). Bounds: shortfall at
+    a = 0.05 m below 1e-2 Ṁ, Richardson value within 1e-5 Ṁ (quadrature and differencing
+    errors are far smaller)."""
+    a = 0.05
+    f1, f2 = _box_flux(a), _box_flux(a / 2)
+    assert 0.0 < MASS_RATE - f1 < 1e-2 * MASS_RATE
+    ratio = (MASS_RATE - f1) / (MASS_RATE - f2)
+    assert ratio == pytest.approx(4.0, rel=0.05)  # the shortfall is O(a²)
+    assert (4 * f2 - f1) / 3 == pytest.approx(MASS_RATE, rel=1e-5)
+
+
+def _case_text(h: float, dz: float, solver: str) -> str:
+    a = h / 2  # half-width of the loaded box: its plan corners become mesh nodes
+    species = (
+        f'[species.plume]\nlimit = "1 mg/L"\nkd = "{KD * 1000} L/kg"\n'
+        f'half_life = "{math.log(2) / (DECAY * DAY)} d"\ndecay_in_sorbed_phase = false\n'
+        '[[sources]]\nname = "tank_leak"\nspecies = "plume"\nshape = "box"\n'
+        f'kind = "mass_loading"\nmass_rate = "{MASS_RATE * DAY * 1000} g/d"\n'
+        f'x = ["{X_SOURCE - a} m", "{X_SOURCE + a} m"]\ny = ["0 m", "{a} m"]\n'
+        f'z = ["{-DEPTH} m", "{-DEPTH + a} m"]\n')
+    text = box_case_text(
+        length=LENGTH, width=WIDTH, layers=[("gravel", -DEPTH, 10.0, 10.0)],
+        heads={"west": 0.025 * LENGTH, "east": 0.0}, cell=h, dz=dz, porosity=THETA,
+        alpha_l=ALPHA[0], alpha_t=ALPHA[1], end="2000 d", step="200 d", species=species)
+    text = text.replace('transverse_dispersivity = "0.4 m"',
+                        'transverse_dispersivity = "0.4 m"\nvertical_dispersivity = "0.2 m"')
+    text = text.replace('step = "200 d"', 'step = "200 d"\noutput_times = ["1800 d", "2000 d"]')
+    return text + f'[solver]\nlinear_solver = "{solver}"\n'
+
+
+def _run_and_compare(h: float, dz: float, solver: str = "auto") -> dict[str, float]:
+    """Run fe3d to steady state; return the largest errors (see the module docstring)."""
+    case = parse_case(_case_text(h, dz, solver))
+    site, flow = mesh_and_flow(case)
+    np.testing.assert_allclose(flow.darcy_flux[0] / THETA, V, rtol=1e-9)
+    np.testing.assert_allclose(flow.darcy_flux[1:], 0.0, atol=1e-9 * V * THETA)
+    snaps = list(run_transport(site, flow, case))
+    for snap in snaps:
+        assert snap.budgets["plume"].relative_error <= 1e-8
+    last = snaps[-1]
+    assert last.budgets["plume"].source_input == pytest.approx(MASS_RATE * last.time, rel=1e-12)
+    c = last.concentration["plume"]
+    change = np.max(np.abs(c - snaps[-2].concentration["plume"])) / np.max(c)
+    assert change <= 1e-9, f"not at steady state: relative change {change:.2e}"
+
+    # the discrete source: nodes of the loaded box, weighted by their lumped volume
+    p, a, eps = site.points, h / 2, 1e-9
+    loaded = ((np.abs(p[0] - X_SOURCE) <= a + eps) & (p[1] <= a + eps)
+              & (p[2] <= -DEPTH + a + eps))
+    volume = np.abs(site.cell_volumes())
+    nodal = np.bincount(site.cells.ravel(), weights=np.tile(volume / 4.0, 4),
+                        minlength=site.n_nodes)
+    rates = MASS_RATE * nodal[loaded] / nodal[loaded].sum()
+
+    def exact(at: np.ndarray, n_images: int = 2) -> np.ndarray:
+        return mirrored(at, p[:, loaded], rates, y_walls=(0.0, WIDTH),
+                        z_walls=(-DEPTH, 0.0), n_images=n_images, **PARAMS)
+
+    on_edge = (np.abs(p[1]) <= eps) & (np.abs(p[2] + DEPTH) <= eps)
+    window = (p[0] >= X_SOURCE + a + 3 * h) & (p[0] <= LENGTH - 5.0)
+    centre = on_edge & window
+    ref = exact(p[:, centre])
+    # two image periods suffice: a third changes the reference by < 1e-6
+    np.testing.assert_allclose(exact(p[:, centre], n_images=3), ref, rtol=1e-6)
+    errors = {"centreline": float(np.max(np.abs(c[centre] - ref) / ref))}
+    for distance in (5.0, 10.0):
+        band = window & (np.abs(p[0] - (X_SOURCE + distance)) <= 0.5 * h)
+        axis_ref = exact(np.vstack([p[0], np.zeros_like(p[0]), np.full_like(p[0], -DEPTH)]))
+        for label, plane in (("horizontal", np.abs(p[2] + DEPTH) <= eps),
+                             ("vertical", np.abs(p[1]) <= eps)):
+            sel = band & plane
+            assert sel.sum() >= 5
+            err = np.abs(c[sel] - exact(p[:, sel])) / axis_ref[sel]
+            errors[f"{label} at {distance:g} m"] = float(err.max())
+    return errors
+
+
+def test_steady_plume_matches_the_point_source_solution():
+    """h = 1 m, layer cell thickness 0.5 m (4.8 k nodes, grid Péclet 1.2): every error ≤ 3 %.
+
+    Measured when written: centreline 2.4 % (largest just beyond three cells, falling to
+    0.9 % at 20 m); profiles see the test output."""
+    errors = _run_and_compare(1.0, 0.5)
+    print(errors)
+    assert max(errors.values()) <= TOLERANCE, errors
