@@ -108,7 +108,7 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     budgets: list[MassBudget] = []
     last: Snapshot | None = None
     scale = from_si(1.0, cu)
-    for snap in run_transport(site, flow, case,
+    for snap in run_transport(site, flow, case, base_dir=base_dir,
                               on_step=lambda t, end: tell("transport", t, end)):
         k = len(series)
         name = f"concentration_{k:04d}.vtu"

@@ -5,8 +5,10 @@ Equation (theory.md T0), per species, with m = θR = θ + ρ_b K_d:
     m ∂c/∂t + ∇·(q c − θD∇c) + k c = 0,   k = λ m (or λ θ when only the dissolved phase decays)
 
 discretised with P1 elements, the advective term in conservative form with an outflow term
-on the fixed-head faces, SUPG on the residual of the whole equation, and the θ-scheme in time
-(backward Euler θ = 1, Crank–Nicolson θ = 1/2). Operators are assembled once per distinct
+on the fixed-head faces, SUPG on the residual of the whole equation, and in time one of
+backward Euler, Crank–Nicolson or variable-step BDF2 (T13), with fixed steps or steps chosen
+from a local error estimate and the Newton iteration count (T14). A step that fails (Newton
+or the linear solver) is cut in half and retried. Operators are assembled once per distinct
 step length and their factor or preconditioner reused for every step of that length.
 """
 
@@ -16,6 +18,7 @@ import logging
 import math
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -24,7 +27,7 @@ from skfem import ElementTetP1, FacetBasis, asm
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import Case, Source, Species
-from fe3d.errors import MeshError
+from fe3d.errors import MeshError, SolverError
 from fe3d.flow.solve import FlowField, unit_materials
 from fe3d.linalg import LinearSolver, scatter_element_matrices
 from fe3d.mesh.geometry import p1_gradients
@@ -37,12 +40,49 @@ from fe3d.transport.budget import MassBudget
 from fe3d.transport.dispersion import dispersion_tensor
 from fe3d.transport.newton import newton
 from fe3d.transport.stabilization import element_length_along_flow, supg_tau
+from fe3d.transport.timeschemes import (
+    ORDER,
+    StepControl,
+    fit_to_next_time,
+    local_error,
+    next_step,
+    weighted_error,
+)
 
-__all__ = ["Snapshot", "TransportDiagnostics", "run_transport", "time_steps"]
+__all__ = ["Snapshot", "StepCoefficients", "TransportDiagnostics", "run_transport",
+           "step_coefficients", "time_steps"]
 
 logger = logging.getLogger(__name__)
 
-_SCHEME_THETA = {"backward_euler": 1.0, "crank_nicolson": 0.5}
+_MAX_CACHED = 3
+"""Step systems (matrix + factor or preconditioner) kept per species: a few step lengths."""
+
+
+@dataclass(frozen=True)
+class StepCoefficients:
+    """One step of a linear multistep scheme for M dc/dt + K c = F (theory.md T13):
+
+    [a0 M c^{n+1} + a1 M c^n + a2 M c^{n−1}]/Δt + θ K c^{n+1} + (1 − θ) K c^n = F.
+
+    Backward Euler (1, −1, 0, 1), Crank–Nicolson (1, −1, 0, ½), BDF2 with ω = Δt/Δt_prev:
+    ((1 + 2ω)/(1 + ω), −(1 + ω), ω²/(1 + ω), 1). a0 + a1 + a2 = 0 in every case.
+    """
+
+    a0: float
+    a1: float
+    a2: float
+    theta: float
+
+
+def step_coefficients(scheme: str, dt: float, dt_prev: float | None) -> StepCoefficients:
+    """Coefficients of one step; BDF2 without a previous step (start or restart) is backward
+    Euler."""
+    if scheme == "crank_nicolson":
+        return StepCoefficients(1.0, -1.0, 0.0, 0.5)
+    if scheme == "bdf2" and dt_prev is not None:
+        w = dt / dt_prev
+        return StepCoefficients((1.0 + 2.0 * w) / (1.0 + w), -(1.0 + w), w * w / (1.0 + w), 1.0)
+    return StepCoefficients(1.0, -1.0, 0.0, 1.0)
 
 
 @dataclass(frozen=True)
@@ -54,6 +94,11 @@ class TransportDiagnostics:
     max_courant: dict[str, float]
     min_concentration: dict[str, tuple[float, tuple[float, ...] | None]]
     solver: str
+    step_cuts: int = 0
+    rejected_steps: int = 0
+    smallest_step: float = 0.0
+    largest_step: float = 0.0
+    max_newton_iterations: int = 0
 
 
 @dataclass(frozen=True)
@@ -99,6 +144,20 @@ def _nodal(cells: IndexArray, per_cell: FloatArray, n: int) -> FloatArray:
     return np.bincount(cells.ravel(), weights=np.tile(per_cell / 4.0, 4), minlength=n)
 
 
+@dataclass(frozen=True)
+class _System:
+    """The step matrix S = a0/Δt M + θ K of one species, split by fixed/free nodes, with its
+    solver (factor or preconditioner) and the explicit part T = θ − 1 times K."""
+
+    S: sp.csr_matrix
+    K_old: sp.csr_matrix
+    M: sp.csr_matrix
+    solver: LinearSolver
+    free: IndexArray
+    fixed: IndexArray
+    S_fD: sp.csr_matrix
+
+
 @dataclass
 class _Species:
     """Assembled coefficients and operators of one species (private, mutable caches)."""
@@ -113,8 +172,14 @@ class _Species:
     outflow_matrix: sp.csr_matrix
     h: FloatArray
     operators: dict[float, tuple[sp.csr_matrix, sp.csr_matrix]] = field(default_factory=dict)
-    solvers: dict[tuple[float, tuple[str, ...]],
-                  tuple[LinearSolver | None, IndexArray, Any]] = field(default_factory=dict)
+    systems: dict[tuple[float, float, float, tuple[str, ...]], _System] = field(
+        default_factory=dict)
+    user_rate: Callable[[FloatArray], tuple[FloatArray, FloatArray]] | None = None
+
+    @property
+    def nonlinear(self) -> bool:
+        """Solved by Newton: nonlinear sorption, a nonlinear or a user reaction."""
+        return bool(self.coef["sorbers"] or self.coef["reaction"] or self.coef["user"])
 
     def sorbed(self, c: FloatArray) -> tuple[FloatArray, FloatArray]:
         """Nodal sorbed mass [kg] and its derivative [m³] (lumped, T10); linear: W_ρ K_d c."""
@@ -128,12 +193,15 @@ class _Species:
         return total, slope
 
     def reaction_loss(self, c: FloatArray) -> tuple[FloatArray, FloatArray]:
-        """Nodal mass loss rate [kg/s] of a nonlinear reaction (lumped, T11) and its
-        derivative [m³/s]; zero without one."""
-        if not self.coef["reaction"]:
-            return np.zeros_like(c), np.zeros_like(c)
-        kind, par = self.coef["reaction"]
-        r, dr = _RATE_LAWS[kind](c, **par)
+        """Nodal mass loss rate [kg/s] of the nonlinear and user reactions (lumped, T11,
+        T11b; negative: production) and its derivative [m³/s]; zero without one."""
+        r, dr = np.zeros_like(c), np.zeros_like(c)
+        if self.coef["reaction"]:
+            kind, par = self.coef["reaction"]
+            r, dr = _RATE_LAWS[kind](c, **par)
+        if self.user_rate is not None:
+            ru, dru = self.user_rate(c)
+            r, dr = r + ru, dr + dru
         return -self.w_dissolved * r, -self.w_dissolved * dr
 
     def sorbed_mass(self, c: FloatArray) -> float:
@@ -143,7 +211,7 @@ class _Species:
 
 def run_transport(
     site: SiteMesh, flow: FlowField, case: Case, *,
-    on_step: Callable[[float, float], None] | None = None,
+    on_step: Callable[[float, float], None] | None = None, base_dir: Path | None = None,
 ) -> Iterator[Snapshot]:
     """Step every species from 0 to ``case.time.end``; yield a :class:`Snapshot` at t = 0 and
     at every output time.
@@ -156,6 +224,15 @@ def run_transport(
         Materials, species, sources, observation points, time and solver controls.
     on_step
         Called after every step with (time reached, end time) [s], for progress display.
+    base_dir
+        Folder searched first for the module of ``user_reactions.function`` (the case
+        file's folder).
+
+    Raises
+    ------
+    NewtonError, SolverError
+        A step still fails after ``solver.max_step_cuts`` halvings; every snapshot yielded
+        before stays valid.
     """
     mesh = site.skfem_mesh()
     n = site.n_nodes
@@ -181,8 +258,11 @@ def run_transport(
     for name, fb in facet_bases.items():
         qn = np.einsum("ke,keq->eq", q[:, fb.tind], fb.normals)
         qn_out[name] = np.clip(qn, 0.0, None)
-    theta_t = _SCHEME_THETA[case.time.scheme]
     supg_on = case.solver.supg
+    user = case.user_reactions
+    user_law = None if user is None else kinetics.user_kinetics(
+        user.function, n_species=len(user.species), key_path="user_reactions.function",
+        search_dirs=[base_dir or Path()])
 
     species: list[_Species] = []
 
@@ -229,6 +309,7 @@ def run_transport(
             coef={"m": m, "k": k, "a": a, "kappa": kappa, "sigma": k / m,
                   "courant_rate": float(np.max(np.sqrt(speed2) / h)),
                   "sorbers": sorbers, "reaction": spec.nonlinear_reaction,
+                  "user": user is not None and name in user.species,
                   "sorbed_decay": lam if spec.decay_in_sorbed_phase else 0.0},
             w_dissolved=_nodal(site.cells, theta * vol, n),
             w_sorbed=_nodal(site.cells, rho_b * kd * vol, n),
@@ -239,12 +320,21 @@ def run_transport(
     decay_matrix = {s.name: scatter_element_matrices(
         site.cells, (s.coef["k"] * np.abs(vol))[:, None, None] * P1_MASS, n)
         for s in species if s.name in parents}
-    decay_loss: dict[str, FloatArray] = {}  # parent → decay mass rate per node in this step
+    tc = case.time
+    adaptive = tc.adaptive
 
-    def operators(s: _Species, dt: float) -> tuple[sp.csr_matrix, sp.csr_matrix]:
-        if dt not in s.operators:
+    def tau_step(dt: float) -> float:
+        """Step length that τ (T8) is built with: the step itself with fixed steps; with
+        adaptive steps the nearest time.step · 2^k, so that operators are reused."""
+        if not adaptive:
+            return dt
+        return tc.step * 2.0 ** round(math.log2(dt / tc.step))
+
+    def operators(s: _Species, dt_tau: float) -> tuple[sp.csr_matrix, sp.csr_matrix]:
+        """Mass and spatial operators (T1–T6, outflow included) with τ built for dt_tau."""
+        if dt_tau not in s.operators:
             c = s.coef
-            tau = supg_tau(c["a"], c["kappa"], c["sigma"], s.h, dt) if supg_on \
+            tau = supg_tau(c["a"], c["kappa"], c["sigma"], s.h, dt_tau) if supg_on \
                 else np.zeros_like(c["m"])
             nonlin = bool(c["sorbers"])
             M, K = transport_operators(site.cells, grads, vol,
@@ -252,10 +342,34 @@ def run_transport(
                                        a=c["a"], tau=tau, theta_d=thetaD, n=n,
                                        m_supg=c["m"] if nonlin else None)
             K = (K + s.outflow_matrix).tocsr()
-            S = (M / dt + theta_t * K).tocsr()
-            T = (M / dt - (1.0 - theta_t) * K).tocsr()
-            s.operators = {dt: (S, T)}  # keep only the current step length's operators
-        return s.operators[dt]
+            while len(s.operators) >= 2:  # keep at most two step lengths' operators
+                s.operators.pop(next(iter(s.operators)))
+            s.operators[dt_tau] = (M, K)
+        return s.operators[dt_tau]
+
+    def system(s: _Species, dt: float, co: StepCoefficients,
+               active: tuple[str, ...]) -> _System:
+        """S = a0/Δt M + θK for this step, reduced to the free nodes, with its solver."""
+        dt_tau = tau_step(dt)
+        key = (float(f"{co.a0 / dt:.12g}"), co.theta,
+               dt_tau, active)
+        if key not in s.systems:
+            M, K = operators(s, dt_tau)
+            S = (M * (co.a0 / dt) + co.theta * K).tocsr()
+            is_fixed = np.zeros(n, dtype=bool)
+            for name in active:
+                is_fixed[source_nodes[name]] = True
+            free = np.nonzero(~is_fixed)[0]
+            fixed = np.nonzero(is_fixed)[0]
+            S_ff = S[free][:, free].tocsr()
+            solver = LinearSolver(S_ff, method=case.solver.linear_solver,
+                                  tol=case.solver.tolerance)
+            while len(s.systems) >= _MAX_CACHED:
+                s.systems.pop(next(iter(s.systems)))
+            s.systems[key] = _System(S=S, K_old=((co.theta - 1.0) * K).tocsr(), M=M,
+                                     solver=solver, free=free, fixed=fixed,
+                                     S_fD=S[free][:, fixed].tocsr())
+        return s.systems[key]
 
     # source nodes
     source_nodes = {src.name: _source_nodes(site, src) for src in case.sources}
@@ -283,6 +397,11 @@ def run_transport(
             w = np.zeros(n)
             w[source_nodes[src.name]] = node_volume[source_nodes[src.name]]
             loading_weights[src.name] = w / w.sum()
+    # injection wells: the water they put in [m³/s per node] carries their concentration (T3d)
+    injection = {s.name: sum((np.clip(flow.exchange[w.name], 0.0, None)
+                              * w.injection_concentration[s.name]
+                              for w in case.wells if s.name in w.injection_concentration
+                              and w.name in flow.exchange), np.zeros(n)) for s in species}
 
     # observation operators
     obs = case.observation_points
@@ -299,9 +418,9 @@ def run_transport(
     probe = sp.vstack(rows).tocsr() if rows else sp.csr_matrix((0, n))
 
     schedule = case.output_schedule()
-    breaks = sorted({*schedule, *[s.start for s in case.sources if 0 < s.start < case.time.end],
-                     *[s.stop for s in case.sources if s.stop and s.stop < case.time.end]})
-    steps = time_steps(breaks, case.time.step)
+    switches = {t for src in case.sources for t in (src.start, src.stop)
+                if t is not None and 0 < t < tc.end}
+    breaks = sorted({*schedule, *switches, tc.end})
     out_set = set(schedule)
 
     conc = {s.name: np.full(n, s.spec.initial_concentration) for s in species}
@@ -326,6 +445,7 @@ def run_transport(
         dl = s.coef["kappa"] * s.coef["m"] / theta
         peclet[s.name] = float(np.max(np.divide(speed_v * s.h, dl, out=np.full_like(dl, np.inf),
                                                 where=dl > 0))) if np.any(speed_v > 0) else 0.0
+    stats = {"cuts": 0, "rejected": 0, "dt_min": math.inf, "dt_max": 0.0, "newton": 0}
     solver_used = "none"
 
     def snapshot(t: float, n_steps: int) -> Snapshot:
@@ -334,105 +454,224 @@ def run_transport(
             sorbed=s.sorbed_mass(conc[s.name]), initial=initial[s.name],
             source_input=acc[s.name]["input"], outflow=dict(acc[s.name]["outflow"]),
             decayed=acc[s.name]["decayed"]) for s in species}
-        diag = TransportDiagnostics(n_steps=n_steps, max_grid_peclet=dict(peclet),
-                                    max_courant=dict(courant), min_concentration=dict(cmin),
-                                    solver=solver_used)
+        diag = TransportDiagnostics(
+            n_steps=n_steps, max_grid_peclet=dict(peclet), max_courant=dict(courant),
+            min_concentration=dict(cmin), solver=solver_used, step_cuts=int(stats["cuts"]),
+            rejected_steps=int(stats["rejected"]),
+            smallest_step=0.0 if n_steps == 0 else float(stats["dt_min"]),
+            largest_step=float(stats["dt_max"]), max_newton_iterations=int(stats["newton"]))
         return Snapshot(time=t, concentration={k: c.copy() for k, c in conc.items()},
                         budgets=budgets, history_times=np.array(hist_t),
                         history={k: np.array(vv) for k, vv in hist.items()}, diagnostics=diag)
 
-    yield snapshot(0.0, 0)
-    for i, (t0, t1, dt) in enumerate(steps):
+    def advance(t0: float, t1: float, co: StepCoefficients,
+                older: dict[str, FloatArray] | None,
+                carried: dict[str, dict[str, Any]]) -> tuple[
+                    dict[str, FloatArray], dict[str, dict[str, Any]], int, str]:
+        """Every species from t0 to t1; nothing is committed (a failure leaves no trace).
+
+        Returns the new fields, the step's budget items (effective for multistep schemes,
+        T13), the largest Newton iteration count and the solver kind used.
+        """
+        dt = t1 - t0
         tmid = 0.5 * (t0 + t1)
+        # sources are evaluated at the step's mean (θ-schemes) or its end (BDF2)
+        ta, tb = (t1, t1) if tc.scheme == "bdf2" else (t0, t1)
+        new_conc = dict(conc)
+        items: dict[str, dict[str, Any]] = {}
+        decay_loss: dict[str, FloatArray] = {}
+        newton_max, kind = 1, "none"
         for s in species:
             active = tuple(src.name for src in case.sources if src.species == s.name
                            and src.kind == "fixed_concentration"
                            and src.start <= tmid and (src.stop is None or tmid <= src.stop))
-            S, T = operators(s, dt)
-            key = (dt, active)
-            if key not in s.solvers:
-                is_fixed = np.zeros(n, dtype=bool)
-                for name in active:
-                    is_fixed[source_nodes[name]] = True
-                free = np.nonzero(~is_fixed)[0]
-                fixed = np.nonzero(is_fixed)[0]
-                solver = None if (s.coef["sorbers"] or s.coef["reaction"]) else LinearSolver(
-                    S[free][:, free], method=case.solver.linear_solver,
-                    tol=case.solver.tolerance)  # Newton builds its own (T10, T11)
-                s.solvers = {key: (solver, free, (fixed, S[free][:, fixed]))}
-                solver_used = "newton" if solver is None else solver.method
-            solver, free, (fixed, S_fD) = s.solvers[key]
+            sysm = system(s, dt, co, active)
+            fixed, free = sysm.fixed, sysm.free
             start_vals, end_vals = np.zeros(n), np.zeros(n)
             for src in case.sources:
                 if src.name in active:
-                    assert src.concentration is not None
                     nodes = source_nodes[src.name]
-                    start_vals[nodes] = np.maximum(start_vals[nodes],
-                                                   src.concentration * _depletion(src, t0))
-                    end_vals[nodes] = np.maximum(end_vals[nodes],
-                                                 src.concentration * _depletion(src, t1))
+                    start_vals[nodes] = np.maximum(start_vals[nodes], src.strength(t0, t0))
+                    end_vals[nodes] = np.maximum(end_vals[nodes], src.strength(t1, t1))
             gvals = end_vals[fixed]
-            load = np.zeros(n)
+            load = injection[s.name].copy()
             for src in case.sources:
                 if src.species != s.name or not (src.start <= tmid and (
                         src.stop is None or tmid <= src.stop)):
                     continue
                 if src.kind == "mass_loading":
-                    assert src.mass_rate is not None
-                    load += src.mass_rate * loading_weights[src.name]
+                    load += src.strength(ta, tb) * loading_weights[src.name]
                 elif src.kind == "inflow_concentration":  # (−q·n)⁺ c_in on the patch (T3b)
-                    assert src.concentration is not None
-                    load += src.concentration * _depletion(src, tmid) * \
-                        inflow_weights[src.name]
+                    load += src.strength(ta, tb) * inflow_weights[src.name]
             if s.spec.parent is not None:  # first-order decay of the parent feeds it (T12)
                 load = load + s.spec.yield_from_parent * decay_loss[s.spec.parent]
             old = conc[s.name]
+            jump_input = 0.0
             switched_on = fixed[~was_fixed[s.name][fixed]]
             if switched_on.size:
                 # a source switching on holds its nodes at the source value from t0, so the
-                # θ-scheme does not see a ramp; the mass placed there is counted as input
+                # scheme does not see a ramp; the mass placed there is counted as input
                 jump = np.zeros(n)
                 jump[switched_on] = start_vals[switched_on] - old[switched_on]
-                acc[s.name]["input"] += float(s.w_dissolved @ jump) + \
+                jump_input = float(s.w_dissolved @ jump) + \
                     s.sorbed_mass(old + jump) - s.sorbed_mass(old)
                 old = old + jump
-            was_fixed[s.name][:] = False
-            was_fixed[s.name][fixed] = True
-            rhs = T @ old + load
+            prev = None if older is None else older[s.name]
+            hist_part = co.a1 * old + (0.0 if prev is None else co.a2 * prev)
+            rhs = -(sysm.M @ hist_part) / dt + sysm.K_old @ old + load
             new = old.copy()
             new[fixed] = gvals
-            if s.coef["sorbers"] or s.coef["reaction"]:
-                new, r, other_loss = _nonlinear_step(
-                    s, S, rhs, old, new, free, dt, theta_t, method=case.solver.linear_solver,
-                    tol=case.solver.tolerance)
+            if s.nonlinear:
+                if s.coef["user"] and user is not None and user_law is not None:
+                    s.user_rate = _user_rate(user_law, user.species, s.name, new_conc)
+                new, r, other_loss, its = _nonlinear_step(
+                    s, sysm, rhs, old, prev, new, dt, co, tol=case.solver.tolerance,
+                    max_iter=case.solver.newton_max_iterations)
+                newton_max = max(newton_max, its)
+                kind = "newton"
             else:
-                assert solver is not None
-                b = rhs[free] - S_fD @ gvals
-                new[free] = solver.solve(b, x0=old[free])
+                b = rhs[free] - sysm.S_fD @ gvals
+                new[free] = sysm.solver.solve(b, x0=old[free])
                 # budget from the consistent residual of the full (unreduced) system (T9)
-                r = S @ new - rhs
+                r = sysm.S @ new - rhs
                 other_loss = 0.0
-            c_mid = theta_t * new + (1.0 - theta_t) * old
+                kind = sysm.solver.method if kind == "none" else kind
+            if not np.all(np.isfinite(new)):
+                msg = f"{s.name}: the step from t = {t0:.6g} s gave non-finite values"
+                raise SolverError(msg)
+            c_mid = co.theta * new + (1.0 - co.theta) * old
             if s.name in decay_matrix:
                 decay_loss[s.name] = decay_matrix[s.name] @ c_mid + (
-                    _sorbed_decay_rate(s, new, old, theta_t) if s.coef["sorbers"] else 0.0)
+                    _sorbed_decay_rate(s, new, old, co.theta) if s.coef["sorbers"] else 0.0)
+            # this step's budget items; a multistep scheme spreads them as in T13
+            now = {"input": dt * (float(r[fixed].sum()) + float(load.sum())),
+                   "decayed": dt * float(s.w_decay @ c_mid) + other_loss,
+                   "outflow": {f: dt * float(w @ c_mid) for f, w in s.outflow_weights.items()}}
+            last = carried.get(s.name)
+            if co.a2 != 0.0 and last is not None:
+                eff = {"input": (now["input"] + co.a2 * last["input"]) / co.a0,
+                       "decayed": (now["decayed"] + co.a2 * last["decayed"]) / co.a0,
+                       "outflow": {f: (x + co.a2 * last["outflow"][f]) / co.a0
+                                   for f, x in now["outflow"].items()}}
+            else:
+                eff = now
+            items[s.name] = {**eff, "jump": jump_input, "fixed": fixed}
+            new_conc[s.name] = new
+        return new_conc, items, newton_max, kind
+
+    # ---- the time loop: fixed steps (a queue, halves on failure) or adaptive steps
+    scheme = tc.scheme
+    control = StepControl(dt_min=tc.min_step or tc.step * 1e-6, dt_max=tc.max_step or tc.end,
+                          order=ORDER[scheme])
+    queue = [] if adaptive else [(a, b) for a, b, _ in time_steps(breaks, tc.step)]
+    queue.reverse()  # pop() from the end
+    t, dt_want = 0.0, tc.step
+    dt_prev: float | None = None
+    older: dict[str, FloatArray] | None = None
+    carried: dict[str, dict[str, Any]] = {}
+    accepted: list[tuple[float, dict[str, FloatArray]]] = [(0.0, dict(conc))]
+    n_steps, cuts_here = 0, 0
+    yield snapshot(0.0, 0)
+    while t < tc.end * (1.0 - 1e-12):
+        if adaptive:
+            b = next(x for x in breaks if x > t * (1.0 + 1e-12))
+            t1 = t + fit_to_next_time(t, dt_want, b)
+            if abs(t1 - b) <= 1e-9 * max(1.0, b):
+                t1 = b
+        else:
+            _, t1 = queue.pop()
+        dt = t1 - t
+        co = step_coefficients(scheme, dt, dt_prev)
+        try:
+            new_conc, items, its, kind = advance(t, t1, co, older if co.a2 else None, carried)
+        except SolverError as exc:  # NewtonError included
+            cuts_here += 1
+            stats["cuts"] += 1
+            if cuts_here > case.solver.max_step_cuts:
+                msg = (f"transport step from t = {t:.6g} s to {t1:.6g} s failed after "
+                       f"{case.solver.max_step_cuts} step cuts (last Δt = {dt:.4g} s): {exc}")
+                raise type(exc)(msg) from exc
+            logger.warning("step from t = %.6g s failed (%s); retrying with Δt = %.4g s",
+                           t, exc, dt / 2)
+            if adaptive:
+                dt_want = dt / 2
+            else:
+                queue += [(t + dt / 2, t1), (t, t + dt / 2)]
+            continue
+        err = None
+        if adaptive:
+            times = [t1] + [a for a, _ in reversed(accepted)]
+            errs = []
+            for s in species:
+                e = local_error(scheme, new_conc[s.name], times,
+                                [c[s.name] for _, c in reversed(accepted)])
+                if e is not None:
+                    tol_s = tc.error_tolerance
+                    errs.append(weighted_error(e, new_conc[s.name], rtol=tol_s,
+                                               atol=tol_s * s.spec.limit))
+            err = max(errs) if errs else None
+            decision = next_step(control, dt, newton_iterations=its, error=err)
+            if not decision.accept:
+                stats["rejected"] += 1
+                dt_want = decision.dt_next
+                continue
+            # without an error estimate (first steps after a start) the step is not grown
+            grow = decision.dt_next if err is not None else min(decision.dt_next, dt)
+            dt_want = tc.step * 2.0 ** math.floor(math.log2(grow / tc.step) + 1e-9)
+            dt_want = min(max(dt_want, control.dt_min), control.dt_max)
+        # commit the step
+        cuts_here = 0
+        solver_used = kind
+        stats["dt_min"] = min(stats["dt_min"], dt)
+        stats["dt_max"] = max(stats["dt_max"], dt)
+        stats["newton"] = max(stats["newton"], its if kind == "newton" else 0)
+        older = dict(conc)
+        for s in species:
+            it = items[s.name]
             a_ = acc[s.name]
-            a_["input"] += dt * (float(r[fixed].sum()) + float(load.sum()))
-            a_["decayed"] += dt * float(s.w_decay @ c_mid) + other_loss
-            for f, w in s.outflow_weights.items():
-                a_["outflow"][f] += dt * float(w @ c_mid)
+            a_["input"] += it["input"] + it["jump"]
+            a_["decayed"] += it["decayed"]
+            for f, x in it["outflow"].items():
+                a_["outflow"][f] += x
+            carried[s.name] = it
+            was_fixed[s.name][:] = False
+            was_fixed[s.name][it["fixed"]] = True
+            new = new_conc[s.name]
             conc[s.name] = new
             j = int(np.argmin(new))
             if new[j] < cmin[s.name][0]:
                 cmin[s.name] = (float(new[j]), tuple(float(x) for x in site.points[:, j]))
             courant[s.name] = max(courant[s.name], dt * s.coef["courant_rate"])
-        hist_t.append(t1)
+        logger.debug("t = %.6g s: Δt = %.4g s, min c %s", t1, dt,
+                     ", ".join(f"{k} {float(c.min()):.3g}" for k, c in conc.items()))
+        n_steps += 1
+        t, dt_prev = t1, dt
+        restart = any(abs(t - x) <= 1e-9 * max(1.0, x) for x in switches)
+        accepted = [(t, dict(conc))] if restart else [*accepted[-2:], (t, dict(conc))]
+        if restart:  # a source switched: multistep schemes start again (T13)
+            dt_prev, older, carried = None, None, {}
+        hist_t.append(t)
         for s in species:
             hist[s.name].append(probe @ conc[s.name])
         if on_step is not None:
-            on_step(t1, case.time.end)
-        if any(abs(t1 - t) <= 1e-9 * max(1.0, t) for t in out_set):
-            yield snapshot(t1, i + 1)
+            on_step(t, tc.end)
+        if any(abs(t - x) <= 1e-9 * max(1.0, x) for x in out_set):
+            yield snapshot(t, n_steps)
+
+
+def _user_rate(law: Callable[[FloatArray], tuple[FloatArray, FloatArray]],
+               names: list[str], name: str, current: dict[str, FloatArray],
+               ) -> Callable[[FloatArray], tuple[FloatArray, FloatArray]]:
+    """Rate of ``name`` from the user's law and its derivative in its own concentration;
+    the other species of the law are held at their latest values (T11b)."""
+    row = names.index(name)
+
+    def rate(c: FloatArray) -> tuple[FloatArray, FloatArray]:
+        allc = np.vstack([c if other == name else current[other] for other in names])
+        r, jac = law(allc)
+        return r[row], jac[row, row]
+
+    return rate
 
 
 def _source_nodes(site: SiteMesh, src: Source) -> IndexArray:
@@ -463,27 +702,31 @@ _ISOTHERMS = {"linear": sorption.linear, "freundlich": sorption.freundlich,
 
 
 def _nonlinear_step(
-    s: _Species, S: sp.csr_matrix, rhs: FloatArray, old: FloatArray, new: FloatArray,
-    free: IndexArray, dt: float, theta_t: float, *, method: str, tol: float,
-) -> tuple[FloatArray, FloatArray, float]:
-    """One θ-scheme step with nonlinear sorption and/or reaction, by Newton (T10, T11).
+    s: _Species, sysm: _System, rhs: FloatArray, old: FloatArray, prev: FloatArray | None,
+    new: FloatArray, dt: float, co: StepCoefficients, *, tol: float, max_iter: int,
+) -> tuple[FloatArray, FloatArray, float, int]:
+    """One step with nonlinear sorption and/or reactions, by Newton (T10, T11, T13).
 
-    R(c) = S c − T c_old + [Σ(c) − Σ(c_old)]/dt + λ_s [θ Σ(c) + (1 − θ) Σ(c_old)], with Σ the
-    lumped nodal sorbed mass; J = S + diag(Σ'(c)) (1/dt + θ λ_s). Returns the new field, the
-    full residual (for the budget) and the mass lost in the step [kg] by sorbed-phase decay
-    and by the nonlinear reaction.
+    R(c) = S c − rhs + [a0 Σ(c) + a1 Σ(c^n) + a2 Σ(c^{n−1})]/Δt
+    + λ_s [θ Σ(c) + (1 − θ) Σ(c^n)] + θ L(c) + (1 − θ) L(c^n), with Σ the lumped nodal
+    sorbed mass and L the nodal reaction loss; J = S + diag(Σ'(c)(a0/Δt + θ λ_s) + θ L'(c)).
+    Returns the new field, the full residual (for the budget), the mass lost in the step [kg]
+    by sorbed-phase decay and reactions, and the Newton iteration count.
     """
     lam_s = float(s.coef["sorbed_decay"])
+    th = co.theta
+    free = sysm.free
     sig_old, _ = s.sorbed(old)
+    sig_hist = co.a1 * sig_old + (0.0 if prev is None else co.a2 * s.sorbed(prev)[0])
     loss_old, _ = s.reaction_loss(old)
-    S_ff = S[free][:, free]
+    S_ff = sysm.S[free][:, free]
 
     def full_residual(c: FloatArray) -> FloatArray:
         sig, _ = s.sorbed(c)
         loss, _ = s.reaction_loss(c)
-        return (S @ c - rhs + (sig - sig_old) / dt
-                + lam_s * (theta_t * sig + (1 - theta_t) * sig_old)
-                + theta_t * loss + (1 - theta_t) * loss_old)
+        return (sysm.S @ c - rhs + (co.a0 * sig + sig_hist) / dt
+                + lam_s * (th * sig + (1 - th) * sig_old)
+                + th * loss + (1 - th) * loss_old)
 
     def residual(x: FloatArray) -> FloatArray:
         c = new.copy()
@@ -495,28 +738,21 @@ def _nonlinear_step(
         c[free] = x
         _, dsig = s.sorbed(c)
         _, dloss = s.reaction_loss(c)
-        J = (S_ff + sp.diags(dsig[free] * (1.0 / dt + theta_t * lam_s)
-                             + theta_t * dloss[free])).tocsr()
-        return LinearSolver(J, method=method, tol=min(tol, 1e-12)).solve(r)
+        J = (S_ff + sp.diags(dsig[free] * (co.a0 / dt + th * lam_s)
+                             + th * dloss[free])).tocsr()
+        return LinearSolver(J, method=sysm.solver.method, tol=min(tol, 1e-12)).solve(r)
 
     result = newton(residual, jacobian_solve, old[free].copy(), rtol=tol, atol=0.0,
-                    max_iter=30)
+                    max_iter=max_iter)
     logger.info("%s: Newton %d iterations, residual norms %s", s.name, result.iterations,
                 ", ".join(f"{r:.2e}" for r in result.residual_norms))
     c = new.copy()
     c[free] = result.x
     sig_new, _ = s.sorbed(c)
     loss_new, _ = s.reaction_loss(c)
-    decayed = dt * (lam_s * float((theta_t * sig_new + (1 - theta_t) * sig_old).sum())
-                    + float((theta_t * loss_new + (1 - theta_t) * loss_old).sum()))
-    return c, full_residual(c), decayed
-
-
-def _depletion(src: Source, t: float) -> float:
-    """Strength factor of a depleting source at time t: exp(−ln 2 (t − start)/half-life)."""
-    if src.depletion_half_life is None:
-        return 1.0
-    return math.exp(-math.log(2.0) * max(t - src.start, 0.0) / src.depletion_half_life)
+    decayed = dt * (lam_s * float((th * sig_new + (1 - th) * sig_old).sum())
+                    + float((th * loss_new + (1 - th) * loss_old).sum()))
+    return c, full_residual(c), decayed, result.iterations
 
 
 def _sorbed_decay_rate(s: _Species, new: FloatArray, old: FloatArray,
