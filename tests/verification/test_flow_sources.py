@@ -64,17 +64,26 @@ def _case(**kw):
     return parse_case(BASE.format(**values))
 
 
+@pytest.mark.slow
 def test_thiem_drawdown_around_a_pumping_well():
-    """Head vs ln r within 1 % of the exact drawdown for r > three fine cell sizes from the
-    well (Thiem 1906); the fixed-head outer boundary carries the exact head on the box
-    sides."""
-    q, K, b = 500.0, 10.0, 10.0
+    """Head vs ln r within 1 % of the exact drawdown for r > two fine cell sizes from the well
+    (Thiem 1906); the fixed-head outer boundary carries the exact head on the box sides.
+
+    Fine plan cell 1 m at the well and ten 1 m cell layers (cells as tall as they are wide).
+    The 1 % bound is the issue's target (common practice, no source); it is relative to the
+    largest exact drawdown in the compared region (r from 2 m to 90 m).
+    """
+    q, K, b, hf = 500.0, 10.0, 10.0, 1.0
     extra = ('[[fixed_heads]]\nface = "west"\nhead = "20 m"\n'
              '[[wells]]\nname = "PW"\nx = "100 m"\ny = "100 m"\nscreens = [["0 m", "-10 m"]]\n'
              f'rate = "{q} m^3/d"\n'
              '[[observation_points]]\nname = "PW_loc"\nx = "100 m"\ny = "100 m"\nz = "-5 m"\n')
-    case = _case(extra=extra, h=6.0, hf=1.0, rf=15.0)
+    # one-metre cell layers (the shared BASE makes one cell layer per layer)
+    text = BASE.replace('layer_cell_thickness = "{b} m"', 'layer_cell_thickness = "1 m"')
+    case = parse_case(text.format(L=200, W=200, K=K, b=b, h=6.0, hf=hf, rf=15.0, extra=extra,
+                                  material_extra=""))
     site = build_mesh(case)
+    assert site.info["sublayers"] == {"aquifer": 10}
     T = K * b / DAY
     Q = q / DAY
     H, R = 20.0, 100.0
@@ -89,10 +98,17 @@ def test_thiem_drawdown_around_a_pumping_well():
         "ring": (lateral, exact(site.points[0, lateral], site.points[1, lateral]))})
     x, y = site.points[0], site.points[1]
     r = np.hypot(x - 100.0, y - 100.0)
-    # fine cell size 1 m at the well. Measured when written: 1.7 % at r > 2 m, 0.84 % at
-    # r > 3 m, 0.62 % at r > 4 m: the P1 point-sink error decays with r/h, and the issue's
-    # 1 % holds from three fine cells out, which docs/verification.md states.
-    sel = (r > 3.0 * 1.0) & (r < 90.0)
+    # Measured when written (max error / max drawdown, every node, r > 2 fine cells):
+    #   fine cell / cell layer   1 m / 10 m   1 m / 2 m   1 m / 1 m   2 m / 2 m
+    #   one split rule           1.12 %       1.76 %      1.09 %      1.01 %
+    #   mirrored alternately     (one layer)  1.76 %      0.67 %      0.75 %
+    # The plan mesh is not the cause: heads averaged over each column are within 0.15-0.26 %
+    # from two cells out in every row, and a 2D P1 solve on the same plan meshes is within
+    # 0.01 Q/(2πT). The excess is a top-to-bottom head difference that the prism-to-tetrahedra
+    # split creates where the head curves strongly (next to the well); mirroring the split in
+    # alternate cell layers (fe3d/mesh/build.py) and cells about as tall as wide keep it small.
+    # From three cells out this case gives 0.36 %, from four 0.26 %.
+    sel = (r > 2.0 * hf) & (r < 90.0)
     drawdown_exact = H - exact(x[sel], y[sel])  # relative to H at r = R
     drawdown_num = H - flow.head[sel]
     rel = np.abs(drawdown_num - drawdown_exact) / np.abs(drawdown_exact).max()
