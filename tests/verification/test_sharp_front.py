@@ -14,20 +14,25 @@ References
 
   (written from memory; ``test_reference_satisfies_its_equation`` checks it against the PDE,
   the inlet and the initial condition). The c0/2 point of the first term moves at v; the
-  second term is below 10⁻³⁰⁰ there at this Péclet, so the exact front is x = v t.
+  second term adds ½ erfcx((x + vt)/(2√(Dt))) ≈ 0.006 there, so the exact c0/2 point, found
+  from the whole formula by scipy ``brentq``, lies 1 cm ahead of v t = 20 m.
 - The ≥ 5× reduction of the worst undershoot is the acceptance criterion of issue 5 (a project
-  target, no published source). Codina (1993) and John & Knobloch (2007), cited in
-  fe3d/transport/shock.py, report qualitatively that this kind of term removes most of the
-  spurious oscillations of SUPG at layers, not a number for this case.
+  target, no published source; the papers cited in fe3d/transport/shock.py give no number for
+  this case).
 - The exact stored mass θ A ∫ c dx is integrated from the formula by scipy ``quad`` (a
   general-purpose reference library).
 
-Measured when written (2 Picard passes, C = 0.7): worst undershoot −1.80 % c0 (plain SUPG) →
-−0.046 % (with shock capturing) at Courant 0.5, −3.4e-5 c0 → −5e-12 c0 at Courant 1. The
-c0/2 point lags v t by 0.09–0.32 m (BE and the switch-on step), shock capturing moves it by
-≤ 0.07 m. Outside this test's range (single-cell-wide column at Courant 0.5: 3.6×; Courant
-0.25: about 3×) the first, switch-on step dominates, where the consistent mass matrix, not
-advection, makes the undershoot; see the report in shock.py's module docstring.
+Measured when written (2 Picard passes, C = 0.7; worst undershoot as a fraction of c0):
+
+    Courant   plain SUPG   with T13    ratio   c0/2 point (plain, T13) [m], exact 20.010
+    0.5       −2.40e-3     −1.28e-4    19      20.210, 20.238
+    1.0       −9.14e-5     −4.4e-12    2e7     20.049, 20.078
+
+Outside this test (same column, other widths and steps, tried by hand): Courant 2 has no
+undershoot to remove; Courant 0.25 gives only 3.6–4.5× (widths 1, 3, 6 cells), and a
+single-cell-wide strip at Courant 0.5 only 2.7×. In those cases the worst undershoot is made on
+the switch-on step, several cells ahead of the front, by the consistent mass matrix, which
+diffusion bounded by the upwind cap cannot fully counter (see fe3d/transport/shock.py).
 """
 
 from __future__ import annotations
@@ -41,6 +46,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from conftest import box_case_text
 from scipy.integrate import quad
+from scipy.optimize import brentq
 from scipy.special import erfc, erfcx
 
 from fe3d.case.load import parse_case
@@ -208,14 +214,15 @@ def test_shock_capturing_cuts_the_worst_undershoot(column, courant):
     """Worst undershoot (min c/c0 over all nodes and steps) reduced ≥ 5× (issue 5 criterion);
     plain SUPG must undershoot by more than 1e-6 c0, so the ratio is not 0/0.
 
-    Front: the c0/2 crossing within half a cell (0.5 m) of v t (Ogata & Banks 1961) for both
-    methods (measured lag 0.09–0.32 m: backward Euler plus the switch-on step; half a cell is
-    common practice, no source), and shock capturing moves it by at most 0.1 cell (rule of
-    thumb, no source; measured ≤ 0.07 m).
+    Front: the c0/2 crossing within half a cell (0.5 m) of the exact one (Ogata & Banks 1961)
+    for both methods (measured 0.04–0.23 m ahead: the inlet holds c0 from t = 0⁺, see below;
+    half a cell is common practice, no source), and shock capturing moves it by at most 0.1
+    cell (rule of thumb, no source; measured 0.03 m).
 
     Mass: the budget from the consistent residual closes to 1e-10 of the stored mass (round-off
-    of direct solves; T9: the extra matrix has zero column sums), and the stored mass is within
-    2 % of the exact θ A ∫c dx (measured below 1 %; the deficit is the front lag above).
+    of direct solves; T9: the extra matrix has zero column sums), and the stored mass exceeds
+    the exact θ A ∫c dx by no more than the switch-on mass θ A c0 h/2 = 0.375 kg (measured
+    0.26–0.28 kg; shock capturing adds 0.02 kg, the extra diffusive inflow at the inlet).
     """
     site, flow, line = column
     dt = courant * CELL / V
@@ -223,7 +230,8 @@ def test_shock_capturing_cuts_the_worst_undershoot(column, courant):
     plain = _run(site, flow, dt, shock=False)
     sharp = _run(site, flow, dt, shock=True)
     elapsed = time.perf_counter() - start
-    exact_front = V * T_END
+    exact_front = brentq(lambda x: float(ogata_banks(np.array([x]), T_END)[0]) - 0.5,
+                         0.5 * V * T_END, 1.5 * V * T_END, xtol=1e-9)
     fronts = (_front(line, plain["c"]), _front(line, sharp["c"]))
     exact_mass = POROSITY * WIDTH * CELL * C0 * quad(
         lambda x: float(ogata_banks(np.array([x]), T_END)[0]), 0.0, LENGTH, points=[20.0])[0]
