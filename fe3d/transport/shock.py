@@ -1,5 +1,5 @@
 r"""Shock capturing for SUPG transport: residual-based isotropic artificial diffusion
-(theory.md T13); pure numpy/scipy.
+(theory.md T15); pure numpy/scipy.
 
 SUPG (T6) adds diffusion along the flow only and keeps small over- and undershoots next to
 steep fronts. Shock capturing adds, in the cells where the discrete solution does not satisfy
@@ -21,7 +21,8 @@ with the cell residual of the time-discrete equation T0 at the cell centre
    R_e = m\,\frac{\bar c - \bar c^{\,n}}{\Delta t} + \mathbf q\cdot\nabla c^{\vartheta}
          + k\,\bar c^{\,\vartheta}, \qquad c^{\vartheta} = \vartheta c + (1-\vartheta) c^n ,
 
-(bars: mean of the four nodal values = value at the centre). The dispersion part of the
+(bars: mean of the four nodal values = value at the centre; for BDF2 the first term is
+m (a0 c̄ + a1 c̄ⁿ + a2 c̄ⁿ⁻¹)/Δt with the scheme's weights). The dispersion part of the
 residual is zero inside a P1 cell, as for SUPG (T6).
 
 Source of the coefficient: Codina, R. (1993), *A discontinuity-capturing crosswind-dissipation
@@ -66,16 +67,17 @@ The artificial diffusion matrix has zero row and column sums (Σ_j ∇φ_j = 0),
 mass across the boundary: the consistent-residual budget (T9) closes unchanged.
 
 Recipe for the time loop (the coefficient depends on the solution, so the method is
-nonlinear; it is applied as a lagged correction, Picard iteration):
+nonlinear; it is applied as a lagged correction, Picard iteration). With run.py's step
+``S c = rhs`` (S = a0/Δt M + ϑK, rhs = −M(a1 cⁿ + a2 cⁿ⁻¹)/Δt + (ϑ − 1)K cⁿ + load):
 
-1. Predictor: solve the step with plain SUPG, ``S c = rhs`` → ``c_pred``.
+1. Predictor: solve the step with plain SUPG → ``c_pred``.
 2. ``nu = shock_diffusivity(cells, grads, c_pred, c_old, dt=dt, m=m, q=q, k=k, h=h,
-   along_dispersion=m * kappa, theta_t=theta_t)``.
+   along_dispersion=m * kappa, theta_t=ϑ, time_weights=(a0, a1, a2), c_older=cⁿ⁻¹)``.
 3. ``Kx = isotropic_stiffness(cells, grads, vol, nu, n)``; solve
-   ``(S + theta_t Kx) c = rhs − (1 − theta_t) Kx c_old`` on the free rows (same fixed
-   values), take the budget residual from this same matrix.
-4. Repeat 2–3 from the new ``c`` (``passes`` times in all; 2 is enough in the verification
-   case). :func:`picard_shock_step` does 2–4 given two closures.
+   ``(S + ϑ Kx) c = rhs + (ϑ − 1) Kx cⁿ`` on the free rows with the same fixed values, and
+   take the budget residual r = (S + ϑKx) c − (rhs + (ϑ − 1) Kx cⁿ) from this same system.
+4. Repeat 2–3 from the new ``c`` (``passes`` times in all; 2 in the verification case).
+   :func:`picard_shock_step` does 2–4 given two closures.
 """
 
 from __future__ import annotations
@@ -103,10 +105,11 @@ _FLOOR_REL = 1e-10  # |∇c| h below this × max|c| counts as flat (round-off sc
 def shock_diffusivity(
     cells: IndexArray, grads: FloatArray, c: FloatArray, c_old: FloatArray, *, dt: float,
     m: FloatArray, q: FloatArray, k: FloatArray, h: FloatArray, along_dispersion: FloatArray,
-    theta_t: float = 1.0, strength: float = SHOCK_STRENGTH,
+    theta_t: float = 1.0, time_weights: tuple[float, float, float] = (1.0, -1.0, 0.0),
+    c_older: FloatArray | None = None, strength: float = SHOCK_STRENGTH,
     gradient_floor: float | None = None,
 ) -> FloatArray:
-    r"""Artificial diffusion coefficient ν_e per cell [m²/s] (theory.md T13).
+    r"""Artificial diffusion coefficient ν_e per cell [m²/s] (theory.md T15).
 
     Parameters
     ----------
@@ -126,7 +129,12 @@ def shock_diffusivity(
     along_dispersion
         θD along the flow, â·θD·â [m²/s] (``m * kappa`` of T8), ``(e,)``.
     theta_t
-        Weight ϑ of the time scheme (1 backward Euler, ½ Crank–Nicolson).
+        Weight ϑ of the spatial terms (1 backward Euler and BDF2, ½ Crank–Nicolson).
+    time_weights, c_older
+        (a0, a1, a2) of the discrete rate (a0 c + a1 c_old + a2 c_older)/Δt: (1, −1, 0) for
+        backward Euler and Crank–Nicolson (the default; ``c_older`` unused), the variable-step
+        BDF2 weights with the level before ``c_old`` as ``c_older`` (run.py's
+        ``StepCoefficients``).
     strength
         The constant C (default 0.7).
     gradient_floor
@@ -146,12 +154,17 @@ def shock_diffusivity(
         raise SolverError(msg)
     c_new = np.asarray(c, dtype=float)
     c_prev = np.asarray(c_old, dtype=float)
+    a0, a1, a2 = time_weights
+    rate = a0 * c_new + a1 * c_prev  # Δt × the discrete ∂c/∂t at the nodes
+    if a2 != 0.0:
+        if c_older is None:
+            msg = "shock capturing: a two-step rate (a2 ≠ 0) needs c_older"
+            raise SolverError(msg)
+        rate = rate + a2 * np.asarray(c_older, dtype=float)
     c_mid = theta_t * c_new + (1.0 - theta_t) * c_prev
-    mean_new = c_new[cells].mean(axis=0)
-    mean_old = c_prev[cells].mean(axis=0)
     grad_new = np.einsum("ie,eik->ek", c_new[cells], grads)  # ∇c at the new level, (e, 3)
     grad_mid = np.einsum("ie,eik->ek", c_mid[cells], grads)
-    residual = (m * (mean_new - mean_old) / dt + np.einsum("ke,ek->e", q, grad_mid)
+    residual = (m * rate[cells].mean(axis=0) / dt + np.einsum("ke,ek->e", q, grad_mid)
                 + k * c_mid[cells].mean(axis=0))
     slope = np.sqrt(np.sum(grad_new * grad_new, axis=1))
     if gradient_floor is None:
@@ -169,7 +182,7 @@ def shock_diffusivity(
 
 def isotropic_stiffness(cells: IndexArray, grads: FloatArray, vol: FloatArray,
                         coeff: FloatArray, n: int, *, chunk: int = 500_000) -> sp.csr_matrix:
-    r"""Σ_e ν_e |V_e| ∇φ_i·∇φ_j, ``(n, n)`` CSR (theory.md T13; closed form of the P1 form
+    r"""Σ_e ν_e |V_e| ∇φ_i·∇φ_j, ``(n, n)`` CSR (theory.md T15; closed form of the P1 form
     :math:`\int \nu \nabla c\cdot\nabla w`).
 
     ``cells`` ``(4, e)``, ``grads`` ``(e, 4, 3)`` [1/m], ``vol`` ``(e,)`` [m³],

@@ -1,4 +1,4 @@
-"""Sharp front in a column: shock capturing (theory.md T13) against plain SUPG (T6).
+"""Sharp front in a column: shock capturing (theory.md T15) against plain SUPG (T6).
 
 Case: a strip 40 m long, 3 m wide and 1 m thick (cells of 1 m), uniform seepage velocity
 v = 1 m/d along x, α_L = α_T = 0.01 m (grid Péclet v h/(α_L v) ≈ 100), a fixed concentration
@@ -24,7 +24,7 @@ References
 
 Measured when written (2 Picard passes, C = 0.7; worst undershoot as a fraction of c0):
 
-    Courant   plain SUPG   with T13    ratio   c0/2 point (plain, T13) [m], exact 20.010
+    Courant   plain SUPG   with T15    ratio   c0/2 point (plain, T15) [m], exact 20.010
     0.5       −2.40e-3     −1.28e-4    19      20.210, 20.238
     1.0       −9.14e-5     −4.4e-12    2e7     20.049, 20.078
 

@@ -1,4 +1,4 @@
-"""Shock capturing (theory.md T13): the artificial-diffusion matrix against scikit-fem, and the
+"""Shock capturing (theory.md T15): the artificial-diffusion matrix against scikit-fem, and the
 coefficient's defining properties (zero residual → zero, bounds, no mutation)."""
 
 from __future__ import annotations
@@ -61,12 +61,23 @@ def test_stiffness_matches_scikit_fem():
     assert np.max(np.abs(mine.sum(axis=1))) <= 1e-13 * abs(mine).max()
 
 
-@pytest.mark.parametrize("theta_t", [1.0, 0.5])
-def test_zero_where_the_discrete_residual_vanishes(theta_t):
+_BDF2_RATIO = 0.7  # Δt_n/Δt_{n−1} of the variable-step BDF2 case
+_SCHEMES = {
+    "backward_euler": (1.0, (1.0, -1.0, 0.0)),
+    "crank_nicolson": (0.5, (1.0, -1.0, 0.0)),
+    "bdf2": (1.0, ((1 + 2 * _BDF2_RATIO) / (1 + _BDF2_RATIO), -(1 + _BDF2_RATIO),
+                   _BDF2_RATIO**2 / (1 + _BDF2_RATIO))),
+}
+
+
+@pytest.mark.parametrize("scheme", list(_SCHEMES))
+def test_zero_where_the_discrete_residual_vanishes(scheme):
     """A linear profile carried at the transport velocity, c(x, t) = g·(x − a t) with a = q/m
-    and no decay, solves the equation exactly and is exactly represented by P1 and by any
-    θ-scheme (linear in t): R_e = m(−g·a) + q·g = 0. Then ν = 0 exactly where the along-flow
-    dispersion is positive, and ν ≤ 1e-12 × the cap (round-off in R) where it is zero."""
+    and no decay, solves the equation exactly and is exactly represented by P1 and by each
+    scheme (all three are exact for fields linear in t): R_e = m(−g·a) + q·g = 0. Then ν = 0
+    exactly where the along-flow dispersion is positive, and ν ≤ 1e-12 × the cap (round-off
+    in R) where it is zero."""
+    theta_t, weights = _SCHEMES[scheme]
     mesh = _mesh()
     co = _coefficients(mesh)
     e = mesh.t.shape[1]
@@ -75,9 +86,11 @@ def test_zero_where_the_discrete_residual_vanishes(theta_t):
     q = np.repeat((m[0] * a)[:, None], e, axis=1)  # uniform flux so that a = q/m everywhere
     g = np.array([1.5, 0.5, -2.0])
     dt = 0.8
+    c_older = g @ (mesh.p + (a * dt / _BDF2_RATIO)[:, None])  # one (longer) step earlier
     c_old = g @ mesh.p
     c_new = g @ (mesh.p - (a * dt)[:, None])
-    kw = {"dt": dt, "m": m, "q": q, "k": np.zeros(e), "h": co["h"], "theta_t": theta_t}
+    kw = {"dt": dt, "m": m, "q": q, "k": np.zeros(e), "h": co["h"], "theta_t": theta_t,
+          "time_weights": weights, "c_older": c_older}
     nu = shock_diffusivity(mesh.t, co["grads"], c_new, c_old, along_dispersion=co["along"]
                            + 1e-9, **kw)
     assert np.all(nu == 0.0)
@@ -179,3 +192,6 @@ def test_bad_step_or_weight_is_refused():
     with pytest.raises(SolverError, match="time weight"):
         shock_diffusivity(mesh.t, co["grads"], np.zeros(n), np.zeros(n), dt=1.0, theta_t=0.0,
                           **kw)
+    with pytest.raises(SolverError, match="c_older"):
+        shock_diffusivity(mesh.t, co["grads"], np.zeros(n), np.zeros(n), dt=1.0,
+                          time_weights=(1.5, -2.0, 0.5), **kw)
