@@ -21,9 +21,13 @@ Ground Water 45(2); citation from memory).
 
 Seepage velocity 1 m/d along x; α_L = 1 m, α_TH = 0.4 m, α_TV = 0.2 m (so D_y ≠ D_z);
 half-life 6.93 d (λ = 0.1 /d) in the dissolved phase only, with K_d giving R = 1.5, which
-must not change the steady state. Backward Euler with 200 d steps to 2000 d: the transient
-falls by at least 1/(1 + λΔt) = 1/21 per step, so after ten steps it is below 1e-13 and the
-run is at its discrete steady state (asserted by the change between the last two outputs).
+must not change the steady state. Backward Euler with 200 d steps to 2000 d: the slowest
+transient decays at about λ/R (decay acts on the dissolved third of the retarded mass), and
+a backward-Euler step shrinks it by 1/(1 + λΔt/R) ≈ 1/14, so after ten steps it is near
+1e-11 (an estimate); the test asserts that the concentration changes by at most 1e-9 of its
+peak between the last two outputs. The steady state of backward Euler is the steady discrete
+solution whatever the step; only τ (T8) depends on the step, and at 200 d its time term is
+negligible.
 
 Tolerances (issue 5): centreline within 3 % of the local exact value, transverse profiles
 within 3 % of the exact centreline value at the same x (the exact value off the axis goes to
@@ -35,6 +39,7 @@ are not mirrors, so points within 5 m (5 α_L) of the east face are left out. Ma
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -67,9 +72,11 @@ def _exact(x: np.ndarray, y: np.ndarray, z: np.ndarray) -> np.ndarray:
 
 
 def test_reference_solution_satisfies_the_equation():
-    """Finite-difference residual of θ(v c_x − D_x c_xx − D_y c_yy − D_z c_zz + λc) ≤ 1e-6 of
+    """Finite-difference residual of θ(v c_x − D_x c_xx − D_y c_yy − D_z c_zz + λc) ≤ 1e-5 of
     the largest term, at 200 random points 1–20 m from the source (central differences with
-    step 1e-3 m: truncation O((step/r)²) ≤ 1e-6 of the terms)."""
+    step 1e-3 m, truncation O((step/r)²); measured 9.4e-7). A wrong stretch (D_y/D_x for
+    D_x/D_y) or λ in place of λ/D_x in the exponent gives a residual of order 1. The factor
+    in front is not seen by this check; the source-rate check below fixes it."""
     rng = np.random.default_rng(0)
     direction = rng.normal(size=(3, 200))
     p = direction / np.linalg.norm(direction, axis=0) * rng.uniform(1.0, 20.0, 200)
@@ -85,7 +92,7 @@ def test_reference_solution_satisfies_the_equation():
                               DECAY * c])
     residual = np.abs(terms.sum(axis=0))
     scale = np.abs(terms).max(axis=0)
-    assert np.max(residual / scale) <= 1e-6, np.max(residual / scale)
+    assert np.max(residual / scale) <= 1e-5, np.max(residual / scale)
 
 
 def _box_flux(a: float, n: int = 48) -> float:
@@ -181,24 +188,63 @@ def _run_and_compare(h: float, dz: float, solver: str = "auto") -> dict[str, flo
     ref = exact(p[:, centre])
     # two image periods suffice: a third changes the reference by < 1e-6
     np.testing.assert_allclose(exact(p[:, centre], n_images=3), ref, rtol=1e-6)
-    errors = {"centreline": float(np.max(np.abs(c[centre] - ref) / ref))}
+    rel = np.abs(c[centre] - ref) / ref
+    far = p[0, centre] >= X_SOURCE + 10.0
+    errors = {"centreline": float(rel.max()), "centreline beyond 10 m": float(rel[far].max())}
     for distance in (5.0, 10.0):
         band = window & (np.abs(p[0] - (X_SOURCE + distance)) <= 0.5 * h)
-        axis_ref = exact(np.vstack([p[0], np.zeros_like(p[0]), np.full_like(p[0], -DEPTH)]))
         for label, plane in (("horizontal", np.abs(p[2] + DEPTH) <= eps),
                              ("vertical", np.abs(p[1]) <= eps)):
-            sel = band & plane
+            sel = band & plane & ~on_edge  # off the axis: the centreline is checked above
             assert sel.sum() >= 5
-            err = np.abs(c[sel] - exact(p[:, sel])) / axis_ref[sel]
+            x_sel = p[0, sel]
+            axis_ref = exact(np.vstack([x_sel, np.zeros_like(x_sel),
+                                        np.full_like(x_sel, -DEPTH)]))
+            err = np.abs(c[sel] - exact(p[:, sel])) / axis_ref
             errors[f"{label} at {distance:g} m"] = float(err.max())
     return errors
 
 
-def test_steady_plume_matches_the_point_source_solution():
-    """h = 1 m, layer cell thickness 0.5 m (4.8 k nodes, grid Péclet 1.2): every error ≤ 3 %.
+@functools.cache
+def _errors(h: float, dz: float, solver: str = "auto") -> dict[str, float]:
+    errors = _run_and_compare(h, dz, solver)
+    print(f"h = {h} m, dz = {dz} m:",
+          ", ".join(f"{k} {100 * v:.2f} %" for k, v in errors.items()))
+    return errors
 
-    Measured when written: centreline 2.4 % (largest just beyond three cells, falling to
-    0.9 % at 20 m); profiles see the test output."""
-    errors = _run_and_compare(1.0, 0.5)
-    print(errors)
+
+def test_steady_plume_matches_the_point_source_solution():
+    """h = 1 m, layer cell thickness 0.25 m (9.1 k nodes, grid Péclet 1.2): every error ≤ 3 %.
+
+    Measured when written (two prism splits of the mesher: with every cell layer cut alike /
+    with alternate cell layers mirrored, the latter in the working tree at the time):
+    centreline 1.44 % / 1.76 % (largest a few cells beyond the box; 0.94 % / 0.35 % from
+    10 m on); off-axis profile nodes at 5 m 1.71 % / 0.98 %, at 10 m 0.44 % / 0.37 %.
+    About 5 s."""
+    errors = _errors(1.0, 0.25)
     assert max(errors.values()) <= TOLERANCE, errors
+
+
+@pytest.mark.slow
+def test_steady_plume_on_a_finer_mesh():
+    """h = 0.7 m, 0.35 m (13.7 k nodes, direct solver): every error ≤ 3 %; and away from the
+    source the error falls with the mesh: the centreline error from 10 m on is at most
+    0.75 × that on h = 1 m, 0.5 m (same cell shape; second order would give 0.49; the bound
+    leaves room for the unstructured plan mesh, whose nodes differ between the two).
+
+    Near the source the relative error at a given number of cells does not fall with h (the
+    solution is singular like 1/r, so the near field looks the same in cell units): the 3 %
+    bound beyond three cells is a property of the cell shape, not a converging quantity.
+    Measured when written, centreline largest beyond three cells / from 10 m on, and the
+    largest off-axis profile error (every cell layer cut alike | alternate layers mirrored):
+
+    - h = 1 m, 0.5 m: 2.38 % / 1.60 %, 2.07 % | 3.27 % / 0.79 %, 1.32 % (3.27 % > 3 %: this
+      mesh is used here only for the far-field ratio);
+    - h = 0.7 m, 0.35 m: 2.23 % / 0.81 %, 0.74 % | 1.31 % / 0.40 %, 1.12 %; ratio 0.51 | 0.51;
+    - h = 0.5 m, 0.25 m (34 k nodes, about 40 s, not run here): 2.77 % / 0.32 %, 0.44 % |
+      1.80 % / 0.25 %."""
+    fine = _errors(0.7, 0.35, "direct")
+    coarse = _errors(1.0, 0.5)
+    assert max(fine.values()) <= TOLERANCE, fine
+    far_ratio = fine["centreline beyond 10 m"] / coarse["centreline beyond 10 m"]
+    assert far_ratio <= 0.75, (coarse, fine)
