@@ -88,10 +88,12 @@ def _check(case_path: Path) -> int:
     from rich.console import Console
     from rich.table import Table
 
+    from fe3d.pipeline import check_user_code
     from fe3d.post.report import CAUTION
     from fe3d.units import from_si
 
     case = load_case(case_path)
+    check_user_code(case, case_path.resolve().parent)
     con = Console()
     con.print(f"[bold]{case.title}[/bold]  ({case_path})")
     verts = case.outline()[0]

@@ -25,6 +25,7 @@ from fe3d.post.tables import (
     write_plume_table,
 )
 from fe3d.post.vtk import write_field, write_mesh, write_pathlines, write_pvd
+from fe3d.reactions.kinetics import user_kinetics
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.run import Snapshot, run_transport
 from fe3d.units import from_si, to_seconds
@@ -43,6 +44,15 @@ def mesh_and_flow(case: Case, *, base_dir: Path | None = None) -> tuple[SiteMesh
     return site, flow
 
 
+def check_user_code(case: Case, base_dir: Path | None = None) -> None:
+    """Import and probe the user's reaction function named in the case, if any, so that a
+    module that cannot be imported is reported before any work (raises CaseError)."""
+    user = case.user_reactions
+    if user is not None:
+        user_kinetics(user.function, n_species=len(user.species),
+                      key_path="user_reactions.function", search_dirs=[base_dir or Path()])
+
+
 def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
              base_dir: Path | None = None, mesh_folders: list[Path] | None = None,
              ) -> RunSummary:
@@ -54,6 +64,7 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     same mesh inputs is reused from, and copied into the run folder.
     """
     started = time.perf_counter()
+    check_user_code(case, base_dir)
     tell = progress or (lambda _s, _d, _t: None)
     out_dir.mkdir(parents=True, exist_ok=True)
     tu, cu = case.output.time_unit, case.output.concentration_unit
@@ -156,8 +167,13 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
         max_courant=d.max_courant,
         min_concentration={k: v[0] for k, v in d.min_concentration.items()},
         min_concentration_at={k: v[1] for k, v in d.min_concentration.items()},
-        source_max={sp: max((src.concentration for src in case.sources
-                             if src.species == sp and src.concentration is not None),
+        source_max={sp: max([src.concentration for src in case.sources
+                             if src.species == sp and src.concentration is not None]
+                            + [v for src in case.sources if src.species == sp
+                               and src.kind != "mass_loading" and src.release_series
+                               for _, v in src.release_series]
+                            + [c for w in case.wells for name, c in
+                               w.injection_concentration.items() if name == sp],
                             default=0.0) for sp in case.species},
         plume={sp: {"largest_extent": max(r[5] for r in rows),
                     "time_of_largest_extent": max(rows, key=lambda r: r[5])[1],

@@ -175,6 +175,7 @@ class _Species:
     systems: dict[tuple[float, float, float, tuple[str, ...]], _System] = field(
         default_factory=dict)
     user_rate: Callable[[FloatArray], tuple[FloatArray, FloatArray]] | None = None
+    user_rate_start: Callable[[FloatArray], tuple[FloatArray, FloatArray]] | None = None
 
     @property
     def nonlinear(self) -> bool:
@@ -192,15 +193,18 @@ class _Species:
             slope += w_u * ds_u
         return total, slope
 
-    def reaction_loss(self, c: FloatArray) -> tuple[FloatArray, FloatArray]:
+    def reaction_loss(self, c: FloatArray, *, at_start: bool = False,
+                      ) -> tuple[FloatArray, FloatArray]:
         """Nodal mass loss rate [kg/s] of the nonlinear and user reactions (lumped, T11,
-        T11b; negative: production) and its derivative [m³/s]; zero without one."""
+        T11b; negative: production) and its derivative [m³/s]; zero without one.
+        ``at_start``: the other species of a user law are taken at the step's start."""
         r, dr = np.zeros_like(c), np.zeros_like(c)
         if self.coef["reaction"]:
             kind, par = self.coef["reaction"]
             r, dr = _RATE_LAWS[kind](c, **par)
-        if self.user_rate is not None:
-            ru, dru = self.user_rate(c)
+        user_rate = self.user_rate_start if at_start else self.user_rate
+        if user_rate is not None:
+            ru, dru = user_rate(c)
             r, dr = r + ru, dr + dru
         return -self.w_dissolved * r, -self.w_dissolved * dr
 
@@ -524,6 +528,7 @@ def run_transport(
             if s.nonlinear:
                 if s.coef["user"] and user is not None and user_law is not None:
                     s.user_rate = _user_rate(user_law, user.species, s.name, new_conc)
+                    s.user_rate_start = _user_rate(user_law, user.species, s.name, conc)
                 new, r, other_loss, its = _nonlinear_step(
                     s, sysm, rhs, old, prev, new, dt, co, tol=case.solver.tolerance,
                     max_iter=case.solver.newton_max_iterations)
@@ -663,7 +668,8 @@ def _user_rate(law: Callable[[FloatArray], tuple[FloatArray, FloatArray]],
                names: list[str], name: str, current: dict[str, FloatArray],
                ) -> Callable[[FloatArray], tuple[FloatArray, FloatArray]]:
     """Rate of ``name`` from the user's law and its derivative in its own concentration;
-    the other species of the law are held at their latest values (T11b)."""
+    the other species of the law are held at the values in ``current`` (T11b): those of the
+    step's end for species already stepped, else of its start."""
     row = names.index(name)
 
     def rate(c: FloatArray) -> tuple[FloatArray, FloatArray]:
@@ -718,7 +724,7 @@ def _nonlinear_step(
     free = sysm.free
     sig_old, _ = s.sorbed(old)
     sig_hist = co.a1 * sig_old + (0.0 if prev is None else co.a2 * s.sorbed(prev)[0])
-    loss_old, _ = s.reaction_loss(old)
+    loss_old, _ = s.reaction_loss(old, at_start=True)
     S_ff = sysm.S[free][:, free]
 
     def full_residual(c: FloatArray) -> FloatArray:

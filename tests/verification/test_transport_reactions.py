@@ -5,8 +5,8 @@ e.g. Atkins, *Physical Chemistry*; formula from memory, elementary to integrate)
 (1949, Annu. Rev. Microbiol. 3) kinetics dc/dt = −μ c/(K_s + c) integrates to
 K_s ln(c/c0) + (c − c0) = −μ t, solved here with scipy's brentq (reference library).
 Uniform initial field, equal fixed heads (no flow): every node follows the ODE, so the
-observed time order is that of the scheme — 1 for backward Euler, 2 for Crank–Nicolson
-(bands ±0.15) — and the mass budget closes (≤ 1e-6, nonlinear target of the issue).
+observed time order is that of the scheme — 1 for backward Euler, 2 for Crank–Nicolson and
+BDF2 (bands ±0.15) — and the mass budget closes (≤ 1e-6, nonlinear target of the issue).
 """
 
 from __future__ import annotations
@@ -45,7 +45,7 @@ def _run(reaction: str, scheme: str, steps: int) -> tuple[float, float]:
 
 
 @pytest.mark.parametrize(("scheme", "order"), [("backward_euler", 1.0),
-                                               ("crank_nicolson", 2.0)])
+                                               ("crank_nicolson", 2.0), ("bdf2", 2.0)])
 def test_second_order_decay_in_transport(scheme, order):
     k = 0.05  # L/g/d = 0.05 m³/kg/d
     exact = C0 / (1 + k * C0 * 10.0)
