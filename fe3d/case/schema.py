@@ -330,6 +330,8 @@ class SolverControl(_Section):
     linear_solver: Literal["auto", "direct", "iterative"] = "auto"
     tolerance: Annotated[float, Field(gt=0, lt=1e-2)] = 1e-10
     max_step_cuts: Annotated[int, Field(ge=0, le=20)] = 6
+    shock_capturing: bool = False
+    shock_capturing_passes: Annotated[int, Field(ge=1, le=10)] = 2
     newton_max_iterations: Annotated[int, Field(ge=1, le=200)] = 30
 
 

@@ -17,7 +17,7 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -39,6 +39,7 @@ from fe3d.transport.assembly import P1_MASS, transport_operators
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.dispersion import dispersion_tensor
 from fe3d.transport.newton import newton
+from fe3d.transport.shock import isotropic_stiffness, shock_diffusivity
 from fe3d.transport.stabilization import element_length_along_flow, supg_tau
 from fe3d.transport.timeschemes import (
     ORDER,
@@ -525,21 +526,45 @@ def run_transport(
             rhs = -(sysm.M @ hist_part) / dt + sysm.K_old @ old + load
             new = old.copy()
             new[fixed] = gvals
+            if s.coef["user"] and user is not None and user_law is not None:
+                s.user_rate = _user_rate(user_law, user.species, s.name, new_conc)
+                s.user_rate_start = _user_rate(user_law, user.species, s.name, conc)
+
+            def solve(sy: _System, rhs_: FloatArray, guess: FloatArray, s: _Species = s,
+                      old: FloatArray = old, prev: FloatArray | None = prev,
+                      ) -> tuple[FloatArray, FloatArray, float, int]:
+                if s.nonlinear:
+                    return _nonlinear_step(s, sy, rhs_, old, prev, guess, dt, co,
+                                           tol=case.solver.tolerance,
+                                           max_iter=case.solver.newton_max_iterations)
+                out = guess.copy()
+                out[sy.free] = sy.solver.solve(rhs_[sy.free] - sy.S_fD @ guess[sy.fixed],
+                                               x0=old[sy.free])
+                # budget from the consistent residual of the full (unreduced) system (T9)
+                return out, sy.S @ out - rhs_, 0.0, 1
+
+            new, r, other_loss, its = solve(sysm, rhs, new)
+            for _ in range(case.solver.shock_capturing_passes
+                           if case.solver.shock_capturing else 0):
+                # T15: diffusion from the last iterate, held fixed while the step is solved
+                cf = s.coef
+                nu = shock_diffusivity(site.cells, grads, new, old, dt=dt, m=cf["m"], q=q,
+                                       k=cf["k"], h=s.h, along_dispersion=cf["m"] * cf["kappa"],
+                                       theta_t=co.theta, time_weights=(co.a0, co.a1, co.a2),
+                                       c_older=prev)
+                Kx = isotropic_stiffness(site.cells, grads, vol, nu, n)
+                S_x = (sysm.S + co.theta * Kx).tocsr()
+                sys_x = replace(sysm, S=S_x, S_fD=S_x[free][:, fixed].tocsr(),
+                                solver=LinearSolver(S_x[free][:, free].tocsr(),
+                                                    method=case.solver.linear_solver,
+                                                    tol=case.solver.tolerance))
+                new, r, other_loss, its_x = solve(sys_x, rhs + (co.theta - 1.0) * (Kx @ old),
+                                                  new)
+                its = max(its, its_x)
             if s.nonlinear:
-                if s.coef["user"] and user is not None and user_law is not None:
-                    s.user_rate = _user_rate(user_law, user.species, s.name, new_conc)
-                    s.user_rate_start = _user_rate(user_law, user.species, s.name, conc)
-                new, r, other_loss, its = _nonlinear_step(
-                    s, sysm, rhs, old, prev, new, dt, co, tol=case.solver.tolerance,
-                    max_iter=case.solver.newton_max_iterations)
                 newton_max = max(newton_max, its)
                 kind = "newton"
             else:
-                b = rhs[free] - sysm.S_fD @ gvals
-                new[free] = sysm.solver.solve(b, x0=old[free])
-                # budget from the consistent residual of the full (unreduced) system (T9)
-                r = sysm.S @ new - rhs
-                other_loss = 0.0
                 kind = sysm.solver.method if kind == "none" else kind
             if not np.all(np.isfinite(new)):
                 msg = f"{s.name}: the step from t = {t0:.6g} s gave non-finite values"
