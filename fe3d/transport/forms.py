@@ -14,6 +14,7 @@ __all__ = [
     "inflow_weight",
     "outflow",
     "outflow_weight",
+    "shock_diffusion",
     "storage",
     "supg_advection",
     "supg_decay",
@@ -79,3 +80,10 @@ def supg_advection(u: Any, v: Any, w: Any) -> Any:
 def supg_decay(u: Any, v: Any, w: Any) -> Any:
     r"""SUPG decay :math:`\int_\Omega \tau (a\cdot\nabla v)\, k\, c\,dx` (theory.md T6)."""
     return w.tau * dot(w.a, grad(v)) * w.k * u
+
+
+@BilinearForm
+def shock_diffusion(u: Any, v: Any, w: Any) -> Any:
+    r"""Shock-capturing diffusion :math:`\sum_e\int_{\Omega_e} \nu_e \nabla c\cdot\nabla v\,dx`
+    (theory.md T15); ``w.nu`` [m²/s] per cell."""
+    return w.nu * dot(grad(u), grad(v))

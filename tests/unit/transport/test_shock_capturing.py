@@ -5,11 +5,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from skfem import Basis, BilinearForm, ElementTetP1, MeshTet, asm
-from skfem.helpers import dot, grad
+from skfem import Basis, ElementTetP1, MeshTet, asm
 
 from fe3d.errors import SolverError
 from fe3d.mesh.geometry import p1_gradients
+from fe3d.transport import forms
 from fe3d.transport.shock import (
     SHOCK_STRENGTH,
     isotropic_stiffness,
@@ -17,11 +17,6 @@ from fe3d.transport.shock import (
     shock_diffusivity,
 )
 from fe3d.transport.stabilization import element_length_along_flow
-
-
-@BilinearForm
-def _artificial(u, v, w):
-    return w.nu * dot(grad(u), grad(v))
 
 
 def _mesh(seed: int = 1) -> MeshTet:
@@ -52,7 +47,7 @@ def test_stiffness_matches_scikit_fem():
     nu = np.random.default_rng(3).uniform(0.0, 2.0, e)
     nu[::3] = 0.0  # cells without shock capturing are skipped: they must still come out right
     basis = Basis(mesh, ElementTetP1())
-    ref = asm(_artificial, basis, nu=np.repeat(nu[:, None], basis.X.shape[1], axis=1))
+    ref = asm(forms.shock_diffusion, basis, nu=np.repeat(nu[:, None], basis.X.shape[1], axis=1))
     grads, vol = p1_gradients(mesh.p, mesh.t)
     mine = isotropic_stiffness(mesh.t, grads, vol, nu, mesh.p.shape[1], chunk=17)
     assert abs(ref - mine).max() <= 1e-12 * abs(ref).max()
