@@ -167,11 +167,8 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
         max_courant=d.max_courant,
         min_concentration={k: v[0] for k, v in d.min_concentration.items()},
         min_concentration_at={k: v[1] for k, v in d.min_concentration.items()},
-        source_max={sp: max([src.concentration for src in case.sources
-                             if src.species == sp and src.concentration is not None]
-                            + [v for src in case.sources if src.species == sp
-                               and src.kind != "mass_loading" and src.release_series
-                               for _, v in src.release_series]
+        source_max={sp: max([src.peak_concentration for src in case.sources
+                             if src.species == sp and src.peak_concentration is not None]
                             + [c for w in case.wells for name, c in
                                w.injection_concentration.items() if name == sp],
                             default=0.0) for sp in case.species},

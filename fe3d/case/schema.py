@@ -248,6 +248,16 @@ class Source(_Section):
     release_file: str | None = None
     release_series: list[tuple[float, float]] | None = None  # filled from release_file [s, SI]
 
+    @property
+    def peak_concentration(self) -> float | None:
+        """Largest concentration the source holds or carries [kg/m³] (None for a mass
+        loading): the constant value or the largest of its release series."""
+        if self.kind == "mass_loading":
+            return None
+        if self.release_series is not None:
+            return max(v for _, v in self.release_series)
+        return self.concentration
+
     def strength(self, t0: float, t1: float) -> float:
         """Mean source value over [t0, t1] [kg/m³ or kg/s]: the concentration or mass rate,
         from the release series (linear between its rows, constant beyond its ends) or the

@@ -281,8 +281,8 @@ def run_transport(
         if nonlinear:
             # lumped sorbed storage per unit (T10); R at a reference concentration sets the
             # advective velocity, τ and the SUPG storage coefficient
-            c_ref = max([src.concentration for src in case.sources
-                         if src.species == name and src.concentration is not None]
+            c_ref = max([src.peak_concentration for src in case.sources
+                         if src.species == name and src.peak_concentration is not None]
                         + [spec.initial_concentration, spec.limit])
             kd = np.zeros(site.n_cells)
             for u, mn in enumerate(mat_names):
@@ -469,16 +469,16 @@ def run_transport(
                         budgets=budgets, history_times=np.array(hist_t),
                         history={k: np.array(vv) for k, vv in hist.items()}, diagnostics=diag)
 
-    def advance(t0: float, t1: float, co: StepCoefficients,
+    def advance(t0: float, t1: float, dt: float, co: StepCoefficients,
                 older: dict[str, FloatArray] | None,
                 carried: dict[str, dict[str, Any]]) -> tuple[
                     dict[str, FloatArray], dict[str, dict[str, Any]], int, str]:
         """Every species from t0 to t1; nothing is committed (a failure leaves no trace).
 
         Returns the new fields, the step's budget items (effective for multistep schemes,
-        T13), the largest Newton iteration count and the solver kind used.
+        T13), the largest Newton iteration count and the solver kind used. ``dt`` is
+        t1 − t0 rounded to 12 significant digits, so that equal steps share their operators.
         """
-        dt = t1 - t0
         tmid = 0.5 * (t0 + t1)
         # sources are evaluated at the step's mean (θ-schemes) or its end (BDF2)
         ta, tb = (t1, t1) if tc.scheme == "bdf2" else (t0, t1)
@@ -593,7 +593,7 @@ def run_transport(
     scheme = tc.scheme
     control = StepControl(dt_min=tc.min_step or tc.step * 1e-6, dt_max=tc.max_step or tc.end,
                           order=ORDER[scheme])
-    queue = [] if adaptive else [(a, b) for a, b, _ in time_steps(breaks, tc.step)]
+    queue = [] if adaptive else [(b, d) for _, b, d in time_steps(breaks, tc.step)]
     queue.reverse()  # pop() from the end
     t, dt_want = 0.0, tc.step
     dt_prev: float | None = None
@@ -608,12 +608,13 @@ def run_transport(
             t1 = t + fit_to_next_time(t, dt_want, b)
             if abs(t1 - b) <= 1e-9 * max(1.0, b):
                 t1 = b
+            dt = float(f"{t1 - t:.12g}")
         else:
-            _, t1 = queue.pop()
-        dt = t1 - t
+            t1, dt = queue.pop()
         co = step_coefficients(scheme, dt, dt_prev)
         try:
-            new_conc, items, its, kind = advance(t, t1, co, older if co.a2 else None, carried)
+            new_conc, items, its, kind = advance(t, t1, dt, co, older if co.a2 else None,
+                                                 carried)
         except SolverError as exc:  # NewtonError included
             cuts_here += 1
             stats["cuts"] += 1
@@ -626,7 +627,8 @@ def run_transport(
             if adaptive:
                 dt_want = dt / 2
             else:
-                queue += [(t + dt / 2, t1), (t, t + dt / 2)]
+                half = float(f"{dt / 2:.12g}")
+                queue += [(t1, half), (t + half, half)]
             continue
         err = None
         if adaptive:
