@@ -253,6 +253,8 @@ def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``fe3d`` command; returns the exit code."""
     args = _parser().parse_args(argv)
     logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
+    for handler in logging.getLogger().handlers:  # the run's solver.log takes the INFO lines
+        handler.setLevel(logging.WARNING)
     try:
         if args.command == "check":
             return _check(args.case)

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import logging
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -53,9 +54,43 @@ def check_user_code(case: Case, base_dir: Path | None = None) -> None:
                       key_path="user_reactions.function", search_dirs=[base_dir or Path()])
 
 
+@contextmanager
+def solver_log(path: Path) -> Iterator[None]:
+    """Write the INFO messages of fe3d (flow solve, every transport step, Newton iterations
+    and residuals, step cuts) to ``path`` while the block runs; the console keeps its own
+    level."""
+    root = logging.getLogger("fe3d")
+    handler = logging.FileHandler(path, mode="w", encoding="utf-8")
+    handler.setLevel(logging.INFO)
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    old_level = root.level
+    root.addHandler(handler)
+    root.setLevel(logging.INFO)
+    try:
+        yield
+    finally:
+        root.removeHandler(handler)
+        root.setLevel(old_level)
+        handler.close()
+
+
 def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
              base_dir: Path | None = None, mesh_folders: list[Path] | None = None,
              ) -> RunSummary:
+    """Run every stage and write the run folder (with ``solver.log``); returns the summary.
+
+    See :func:`_run_case` for the arguments.
+    """
+    check_user_code(case, base_dir)  # before anything is written
+    out_dir.mkdir(parents=True, exist_ok=True)
+    with solver_log(out_dir / "solver.log"):
+        return _run_case(case, out_dir, progress=progress, base_dir=base_dir,
+                         mesh_folders=mesh_folders)
+
+
+def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
+              base_dir: Path | None = None, mesh_folders: list[Path] | None = None,
+              ) -> RunSummary:
     """Run every stage and write the run folder; returns the summary.
 
     ``progress(stage, done, total)`` is called as work advances (for a progress bar);
@@ -64,7 +99,6 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     same mesh inputs is reused from, and copied into the run folder.
     """
     started = time.perf_counter()
-    check_user_code(case, base_dir)
     tell = progress or (lambda _s, _d, _t: None)
     out_dir.mkdir(parents=True, exist_ok=True)
     tu, cu = case.output.time_unit, case.output.concentration_unit
@@ -148,7 +182,7 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
         files.append("breakthrough.png")
     files += [f"plume_{sp}_{k:04d}.vtp" for k in range(len(series)) for sp in case.species]
     files += ["concentration.pvd", *[f for _, f in series], "mass_budget.csv", "histories.csv",
-              "plume.csv", "summary.json", "report.md"]
+              "plume.csv", "summary.json", "report.md", "solver.log"]
     obs_results = []
     for sp, values in last.history.items():
         for j, o in enumerate(case.observation_points):

@@ -674,8 +674,14 @@ def run_transport(
             if new[j] < cmin[s.name][0]:
                 cmin[s.name] = (float(new[j]), tuple(float(x) for x in site.points[:, j]))
             courant[s.name] = max(courant[s.name], dt * s.coef["courant_rate"])
-        logger.debug("t = %.6g s: Δt = %.4g s, min c %s", t1, dt,
-                     ", ".join(f"{k} {float(c.min()):.3g}" for k, c in conc.items()))
+        if logger.isEnabledFor(logging.INFO):
+            lows = []
+            for k_, c_ in conc.items():
+                j = int(np.argmin(c_))
+                where = ", ".join(f"{x:.1f}" for x in site.points[:, j])
+                lows.append(f"{k_} min {c_[j]:.3g} kg/m³ at ({where}) m")
+            logger.info("step %d: t = %.6g s, Δt = %.4g s, %s%s", n_steps + 1, t1, dt,
+                        "; ".join(lows), f"; Newton {its} iterations" if kind == "newton" else "")
         n_steps += 1
         t, dt_prev = t1, dt
         restart = any(abs(t - x) <= 1e-9 * max(1.0, x) for x in switches)

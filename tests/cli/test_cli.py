@@ -195,7 +195,8 @@ def tiny_run(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str]:
 
 
 EXPECTED_FILES = ["mesh.msh", "mesh.vtu", "flow.vtu", "concentration.pvd", "histories.csv",
-                  "mass_budget.csv", "summary.json", "report.md", "breakthrough.png"]
+                  "mass_budget.csv", "summary.json", "report.md", "breakthrough.png",
+                  "solver.log"]
 
 
 @pytest.mark.slow
@@ -207,6 +208,38 @@ def test_run_writes_every_output(tiny_run: tuple[Path, str]) -> None:
     assert len(list(out.glob("concentration_*.vtu"))) >= 2
     assert (out / "breakthrough.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert flat(CAUTION) in flat(stdout)
+    log = (out / "solver.log").read_text(encoding="utf-8")
+    # every step is logged with the most negative concentration and where it is
+    assert "step 1: t = " in log
+    assert "tracer min " in log and " at (" in log
+
+
+@pytest.mark.slow
+def test_a_run_that_fails_in_transport_keeps_its_earlier_outputs(tmp_path: Path) -> None:
+    """A step that still fails after the allowed cuts: exit 2, one line naming the failure;
+    the outputs of earlier output times are complete and hold no NaN (issue 5, item 6)."""
+    text = edit('half_life = "5 yr"\n',
+                'half_life = "5 yr"\nsecond_order_rate = "1e6 m^3/kg/d"\n')
+    text = text.replace('step = "20 d"', 'step = "0.5 yr"').replace(
+        "[mesh]", "[solver]\nnewton_max_iterations = 1\nmax_step_cuts = 0\n\n[mesh]")
+    text = text.replace('stop = "200 d"', 'start = "0.6 yr"\nstop = "1 yr"')
+    case = tmp_path / "stiff.toml"
+    case.write_text(text, encoding="utf-8")
+    out = tmp_path / "run"
+    res = fe3d("run", case, "--out", out, "--quiet", cwd=tmp_path)
+    assert res.returncode == 2, res.stderr
+    lines = [ln for ln in res.stderr.strip().splitlines() if ln.strip()]
+    assert len(lines) == 1 and "failed after 0 step cuts" in lines[0], res.stderr
+    assert "Traceback" not in res.stderr
+    import meshio
+    import numpy as np
+
+    written = sorted(out.glob("concentration_*.vtu"))
+    assert written, "the outputs before the failure must be kept"
+    for f in written:
+        data = meshio.read(f).point_data
+        assert all(np.all(np.isfinite(v)) for v in data.values()), f
+    assert "step 1: t = " in (out / "solver.log").read_text(encoding="utf-8")
 
 
 # columns that hold names, not quantities
