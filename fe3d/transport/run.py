@@ -585,7 +585,7 @@ def run_transport(
                                    for f, x in now["outflow"].items()}}
             else:
                 eff = now
-            items[s.name] = {**eff, "jump": jump_input, "fixed": fixed}
+            items[s.name] = {**eff, "jump": jump_input, "fixed": fixed, "start": old}
             new_conc[s.name] = new
         return new_conc, items, newton_max, kind
 
@@ -657,7 +657,8 @@ def run_transport(
         stats["dt_min"] = min(stats["dt_min"], dt)
         stats["dt_max"] = max(stats["dt_max"], dt)
         stats["newton"] = max(stats["newton"], its if kind == "newton" else 0)
-        older = dict(conc)
+        # the level before the new one, as the step used it (a source switched on included)
+        older = {s.name: items[s.name]["start"] for s in species}
         for s in species:
             it = items[s.name]
             a_ = acc[s.name]

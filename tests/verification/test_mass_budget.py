@@ -22,7 +22,7 @@ pytestmark = pytest.mark.verification
 TINY = Path(__file__).parents[2] / "cases" / "tiny" / "case.toml"
 
 
-@pytest.mark.parametrize("scheme", ["backward_euler", "crank_nicolson"])
+@pytest.mark.parametrize("scheme", ["backward_euler", "crank_nicolson", "bdf2"])
 @pytest.mark.parametrize("solver", ["direct", "iterative"])
 def test_mass_budget_closes_every_output_time(scheme, solver):
     case = load_case(TINY)
