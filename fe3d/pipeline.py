@@ -196,6 +196,8 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     summary = RunSummary(
         title=case.title, site=case.site, n_nodes=site.n_nodes, n_cells=site.n_cells,
         end_time=case.time.end, n_steps=d.n_steps, observations=obs_results,
+        step_range=(d.smallest_step, d.largest_step), step_cuts=d.step_cuts,
+        rejected_steps=d.rejected_steps,
         mass_balance_error=worst, flow_inflow=flow.total_inflow,
         flow_discrepancy=flow.discrepancy, max_grid_peclet=d.max_grid_peclet,
         max_courant=d.max_courant,

@@ -62,6 +62,9 @@ class RunSummary:
     time_unit: str
     concentration_unit: str
     files: list[str] = field(default_factory=list)
+    step_range: tuple[float, float] = (0.0, 0.0)
+    step_cuts: int = 0
+    rejected_steps: int = 0
 
 
 def quality_warnings(s: RunSummary) -> list[str]:
@@ -112,7 +115,9 @@ def write_report(path: Path, s: RunSummary) -> Path:
         f"# {s.title}", "", f"Site: {s.site}", "", f"> {CAUTION}", "",
         "## Model", "",
         f"- mesh: {s.n_nodes} nodes, {s.n_cells} tetrahedra",
-        f"- simulated period: {from_si(s.end_time, tu):.4g} {tu} in {s.n_steps} steps",
+        f"- simulated period: {from_si(s.end_time, tu):.4g} {tu} in {s.n_steps} steps of "
+        f"{_t(s.step_range[0], tu)} to {_t(s.step_range[1], tu)} ({s.step_cuts} step cuts "
+        f"after a failed solve, {s.rejected_steps} steps rejected by the error control)",
         f"- groundwater through the model: {s.flow_inflow * 86400:.4g} m³/d, "
         f"budget discrepancy {s.flow_discrepancy:.1e}",
         "", "## Extent of the plume above the limit (at output times)", "",
