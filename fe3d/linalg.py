@@ -20,7 +20,7 @@ import scipy.sparse.linalg as spla
 from fe3d._typing import FloatArray
 from fe3d.errors import SolverError
 
-__all__ = ["DIRECT_LIMIT", "FLOW_TOLERANCE", "JACOBI_PROBE_ITERATIONS", "TRANSPORT_METHODS",
+__all__ = ["DIRECT_LIMIT", "FLOW_TOLERANCE", "PROBE_ITERATIONS", "TRANSPORT_METHODS",
            "LinearSolver", "scatter_element_matrices", "solve_spd", "solve_with_preconditioner"]
 
 logger = logging.getLogger(__name__)
@@ -105,14 +105,15 @@ def solve_spd(A: sp.csr_matrix, b: FloatArray, *, tol: float = 1e-12,
     return x
 
 
-TRANSPORT_METHODS = ("auto", "direct", "iterative", "jacobi", "amg")
+TRANSPORT_METHODS = ("auto", "direct", "iterative", "gauss_seidel", "jacobi", "amg")
 """Accepted ``method`` values of :class:`LinearSolver`."""
 
-JACOBI_PROBE_ITERATIONS = 25
-"""Largest number of Jacobi-preconditioned BiCGSTAB iterations (two products with A each)
-the automatic choice allows on its probe solve before it builds an AMG preconditioner
-instead. 25 iterations, about 50 SpMV, is where one AMG-GMRES solve becomes cheaper on the
-measured transport matrices (docs/performance.md)."""
+PROBE_ITERATIONS = 30
+"""Largest number of BiCGSTAB iterations with the Gauss–Seidel preconditioner the automatic
+choice allows on its probe solve before it builds an AMG preconditioner instead. Measured on
+the 223 k-node transport benchmark (docs/performance.md) from a zero start: 5 iterations at
+Courant 1 and 16 at Courant 10 for a relative 1e-10, where AMG-GMRES took 7 and 17
+iterations at about 14 SpMV each."""
 
 
 def _krylov(A: Any, b: FloatArray, M: Any, *, tol: float, x0: FloatArray | None,
@@ -165,17 +166,21 @@ class LinearSolver:
     ``method`` (see :data:`TRANSPORT_METHODS`):
 
     - ``"direct"``: SuperLU factor, kept;
-    - ``"jacobi"``: BiCGSTAB with the inverse diagonal (GMRES when BiCGSTAB stalls);
+    - ``"gauss_seidel"``: BiCGSTAB preconditioned by one symmetric Gauss–Seidel sweep
+      (pyamg's compiled kernel, about 1.9 SpMV);
+    - ``"jacobi"``: BiCGSTAB preconditioned by the inverse diagonal;
     - ``"amg"``: GMRES with one V-cycle of pyamg unsmoothed aggregation, hierarchy kept;
-    - ``"iterative"``: ``"jacobi"`` or ``"amg"``, chosen by a probe solve: Jacobi when it
-      reaches the tolerance within :data:`JACOBI_PROBE_ITERATIONS` iterations (mass-dominated
-      matrices, Courant numbers up to a few), AMG otherwise;
+    - ``"iterative"``: ``"gauss_seidel"`` or ``"amg"``, chosen by a probe solve:
+      Gauss–Seidel when it reaches the tolerance within :data:`PROBE_ITERATIONS`
+      iterations, AMG otherwise;
     - ``"auto"``: ``"direct"`` up to :data:`DIRECT_LIMIT` unknowns, else ``"iterative"``.
 
-    After construction ``method`` holds the resolved choice (``"direct"``, ``"jacobi"`` or
-    ``"amg"``, each valid as a ``method`` argument). ``iterations`` lists the Krylov
-    iterations of every solve (0 for direct); ``stats`` sums them up. A Jacobi solve that
-    fails to converge switches the solver to AMG for that and later solves.
+    After construction ``method`` holds the resolved choice (``"direct"``,
+    ``"gauss_seidel"``, ``"jacobi"`` or ``"amg"``, each valid as a ``method`` argument).
+    ``iterations`` lists the Krylov iterations of every solve (0 for direct); ``stats`` sums
+    them up. A BiCGSTAB solve that misses the tolerance (BiCGSTAB can stall, or report
+    success above the true residual) switches the solver to AMG-GMRES for that solve,
+    continued from where it stopped, and for the later ones.
     """
 
     def __init__(self, A: sp.csr_matrix, *, method: str = "auto", tol: float = 1e-10,
@@ -190,28 +195,49 @@ class LinearSolver:
         self.max_iter = max_iter
         self.iterations: list[int] = []
         self.probe_iterations = 0
+        self._ml: Any = None
+        self._inv_diag: FloatArray | None = None
         n = self.A.shape[0]
         t0 = time.perf_counter()
         if method == "direct" or (method == "auto" and n <= DIRECT_LIMIT):
             self.method = "direct"
             self._lu = spla.splu(self.A.tocsc())
-        elif method in ("jacobi", "amg"):
+        elif method in ("gauss_seidel", "jacobi", "amg"):
             self.method = method
         else:
             self.method = self._probe()
-        self._ml: Any = None
         if self.method == "amg":
             self._build_amg()
         self.setup_s = time.perf_counter() - t0
 
+    def _diagonal_inverse(self) -> FloatArray:
+        if self._inv_diag is None:
+            d = self.A.diagonal()
+            if np.any(d == 0.0):
+                msg = "the matrix has a zero on its diagonal: no Jacobi or Gauss–Seidel"
+                raise SolverError(msg)
+            self._inv_diag = 1.0 / d
+        return self._inv_diag
+
     def _jacobi(self) -> spla.LinearOperator:
-        d = self.A.diagonal()
-        if np.any(d == 0.0):
-            msg = "Jacobi preconditioner: the matrix has a zero on its diagonal"
-            raise SolverError(msg)
-        inv = 1.0 / d
+        inv = self._diagonal_inverse()
         n = self.A.shape[0]
         return spla.LinearOperator((n, n), matvec=lambda v: inv * np.ravel(v), dtype=float)
+
+    def _gauss_seidel(self) -> spla.LinearOperator:
+        """One symmetric Gauss–Seidel sweep from zero: a fixed linear operator ≈ A⁻¹."""
+        from pyamg.relaxation.relaxation import gauss_seidel
+
+        self._diagonal_inverse()  # refuses a zero diagonal
+        A = self.A
+        n = A.shape[0]
+
+        def sweep(v: FloatArray) -> FloatArray:
+            y = np.zeros(n)
+            gauss_seidel(A, y, np.ravel(v).astype(float), iterations=1, sweep="symmetric")
+            return y
+
+        return spla.LinearOperator((n, n), matvec=sweep, dtype=float)
 
     def _build_amg(self) -> None:
         import pyamg
@@ -221,18 +247,16 @@ class LinearSolver:
                                                          smooth=None)
 
     def _probe(self) -> str:
-        """Jacobi or AMG: try Jacobi-BiCGSTAB on b = A x for a fixed pseudo-random x."""
+        """Gauss–Seidel or AMG: try BiCGSTAB on b = A x for a fixed pseudo-random x."""
         rng = np.random.default_rng(0)
         b = self.A @ rng.standard_normal(self.A.shape[0])
-        x, its = _krylov(self.A, b, self._jacobi(), tol=self.tol, x0=None,
-                         max_iter=JACOBI_PROBE_ITERATIONS, kind="bicgstab")
+        x, its = _krylov(self.A, b, self._gauss_seidel(), tol=self.tol, x0=None,
+                         max_iter=PROBE_ITERATIONS, kind="bicgstab")
         self.probe_iterations = its
-        with np.errstate(invalid="ignore", over="ignore"):
-            res = _relative_residual(self.A, x, b)
-        ok = bool(np.all(np.isfinite(x))) and res <= 10 * self.tol
-        logger.info("linear solver probe: Jacobi-BiCGSTAB %d iterations, %s", its,
+        ok = _converged(self.A, x, b, self.tol)
+        logger.info("linear solver probe: Gauss-Seidel-BiCGSTAB %d iterations, %s", its,
                     "kept" if ok else "AMG chosen")
-        return "jacobi" if ok else "amg"
+        return "gauss_seidel" if ok else "amg"
 
     @property
     def stats(self) -> dict[str, float | str]:
@@ -244,13 +268,16 @@ class LinearSolver:
                 "probe_iterations": self.probe_iterations, "setup_s": self.setup_s}
 
     def preconditioner(self) -> spla.LinearOperator:
-        """An operator M ≈ A⁻¹: the LU solve (direct), the inverse diagonal (Jacobi) or one
-        AMG V-cycle; meant for :func:`solve_with_preconditioner` on nearby matrices."""
+        """An operator M ≈ A⁻¹: the LU solve (direct), one symmetric Gauss–Seidel sweep, the
+        inverse diagonal (Jacobi) or one AMG V-cycle; for :func:`solve_with_preconditioner`
+        on nearby matrices (Newton Jacobians of the same step)."""
         n = self.A.shape[0]
         if self.method == "direct":
             lu = self._lu
             return spla.LinearOperator((n, n), matvec=lambda v: lu.solve(np.ravel(v)),
                                        dtype=float)
+        if self.method == "gauss_seidel":
+            return self._gauss_seidel()
         if self.method == "jacobi":
             return self._jacobi()
         self._build_amg()
@@ -261,21 +288,17 @@ class LinearSolver:
         if self.method == "direct":
             x = self._lu.solve(b)
             self.iterations.append(0)
-        elif self.method == "jacobi":
-            x, its = _krylov(self.A, b, self._jacobi(), tol=self.tol, x0=x0,
+        elif self.method in ("gauss_seidel", "jacobi"):
+            x, its = _krylov(self.A, b, self.preconditioner(), tol=self.tol, x0=x0,
                              max_iter=self.max_iter, kind="bicgstab")
-            with np.errstate(invalid="ignore", over="ignore"):
-                res = _relative_residual(self.A, x, b)
-            if not (np.all(np.isfinite(x)) and res <= 10 * self.tol):
-                # BiCGSTAB stalled or reported success above the true residual (solver
-                # notes): switch to AMG-GMRES for this and the later solves
-                logger.info("Jacobi-BiCGSTAB did not converge in %d iterations; AMG from now",
-                            its)
+            if not _converged(self.A, x, b, self.tol):
+                logger.info("%s-BiCGSTAB missed the tolerance after %d iterations; AMG from "
+                            "now", self.method, its)
                 self.method = "amg"
                 self._build_amg()
                 start = x if np.all(np.isfinite(x)) else x0
-                x, more = _krylov(self.A, b, self._ml.aspreconditioner(cycle="V"),
-                                  tol=self.tol, x0=start, max_iter=self.max_iter, kind="gmres")
+                x, more = _krylov(self.A, b, self.preconditioner(), tol=self.tol, x0=start,
+                                  max_iter=self.max_iter, kind="gmres")
                 its += more
             self.iterations.append(its)
         else:
@@ -284,3 +307,11 @@ class LinearSolver:
             self.iterations.append(its)
         _check(self.A, x, b, self.tol, "transport step")
         return x
+
+
+def _converged(A: Any, x: FloatArray, b: FloatArray, tol: float) -> bool:
+    """True residual within the tolerance accepted by ``_check`` (10 tol)."""
+    if not np.all(np.isfinite(x)):
+        return False
+    with np.errstate(invalid="ignore", over="ignore"):
+        return _relative_residual(A, x, b) <= max(10.0 * tol, 1e-13)
