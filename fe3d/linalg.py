@@ -66,12 +66,12 @@ def solve_spd(A: sp.csr_matrix, b: FloatArray, *, tol: float = 1e-12,
 
     The iterative branch (``method="iterative"``, or ``"auto"`` above :data:`DIRECT_LIMIT`
     unknowns) is conjugate gradients preconditioned by one cycle of classical Ruge–Stüben
-    AMG with strength threshold θ = 0.5. On the layered flow benchmark (vertically thin
-    cells, conductivities 1e-3 to 60 m/d) θ = 0.5 took 26 CG iterations at 174 k unknowns
-    where the default θ = 0.25 took 30, θ = 0.7 43 and smoothed aggregation 97
-    (docs/performance.md). ``cycle="W"`` halves the iteration count and its growth with
-    size (12 → 18 from 174 k to 1.2 M unknowns, against 26 → 59 for V) but costs more per
-    iteration.
+    AMG with strength threshold θ = 0.5 and the second pass of the C/F splitting. CG
+    iterations measured on the layered flow benchmark matrices (vertically thin cells,
+    conductivities 1e-3 to 60 m/d), 174 k → 1.2 M unknowns: default θ = 0.25, 30 → 63 (to
+    1e-12); θ = 0.5, 26 → 59; θ = 0.5 with the second pass, 10 → 18 (to 1e-9), the choice
+    here; smoothed aggregation 97 at 174 k. ``cycle="W"`` (θ = 0.5, one pass) took 12 → 18
+    iterations but each costs several V-cycles.
 
     ``stats``, when given, receives ``iterations`` (0 for a direct solve), ``setup_s`` and
     ``solve_s`` [s].
@@ -87,7 +87,8 @@ def solve_spd(A: sp.csr_matrix, b: FloatArray, *, tol: float = 1e-12,
     elif method in ("auto", "iterative"):
         import pyamg
 
-        ml = pyamg.ruge_stuben_solver(A.tocsr(), strength=("classical", {"theta": 0.5}))
+        ml = pyamg.ruge_stuben_solver(A.tocsr(), strength=("classical", {"theta": 0.5}),
+                                      CF=("RS", {"second_pass": True}))
         setup = time.perf_counter() - t0
         with np.errstate(divide="ignore", invalid="ignore"):  # breakdown → NaN → _check
             x, info = spla.cg(A, b, rtol=tol, atol=0.0, maxiter=2000,
