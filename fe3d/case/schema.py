@@ -337,7 +337,8 @@ class SolverControl(_Section):
     """Transport options."""
 
     supg: bool = True
-    linear_solver: Literal["auto", "direct", "iterative"] = "auto"
+    linear_solver: Literal["auto", "direct", "iterative", "gauss_seidel", "jacobi",
+                           "amg"] = "auto"
     tolerance: Annotated[float, Field(gt=0, lt=1e-2)] = 1e-10
     max_step_cuts: Annotated[int, Field(ge=0, le=20)] = 6
     shock_capturing: bool = False

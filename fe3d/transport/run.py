@@ -29,7 +29,7 @@ from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import Case, Source, Species
 from fe3d.errors import MeshError, SolverError
 from fe3d.flow.solve import FlowField, unit_materials
-from fe3d.linalg import LinearSolver, scatter_element_matrices
+from fe3d.linalg import LinearSolver, scatter_element_matrices, solve_with_preconditioner
 from fe3d.mesh.geometry import p1_gradients
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
@@ -145,6 +145,26 @@ def _nodal(cells: IndexArray, per_cell: FloatArray, n: int) -> FloatArray:
     return np.bincount(cells.ravel(), weights=np.tile(per_cell / 4.0, 4), minlength=n)
 
 
+NEWTON_LINEAR_TOLERANCE = 1e-8
+"""Relative residual of the preconditioned Krylov solves inside Newton (inexact Newton: the
+step's own tolerance is met by the outer iteration; Kelley 1995, ch. 6, from memory)."""
+
+
+@dataclass(frozen=True)
+class _NearbySolver:
+    """Solves a matrix close to one whose solver is already set up (the same step with an
+    extra diagonal or diffusion term) by GMRES with that solver's preconditioner."""
+
+    A: sp.csr_matrix
+    M: Any
+    tol: float
+    method: str
+
+    def solve(self, b: FloatArray, x0: FloatArray | None = None) -> FloatArray:
+        """Solve A x = b; raises SolverError when the tolerance is missed."""
+        return solve_with_preconditioner(self.A, b, self.M, tol=self.tol, x0=x0)
+
+
 @dataclass(frozen=True)
 class _System:
     """The step matrix S = a0/Δt M + θ K of one species, split by fixed/free nodes, with its
@@ -153,7 +173,7 @@ class _System:
     S: sp.csr_matrix
     K_old: sp.csr_matrix
     M: sp.csr_matrix
-    solver: LinearSolver
+    solver: LinearSolver | _NearbySolver
     free: IndexArray
     fixed: IndexArray
     S_fD: sp.csr_matrix
@@ -554,10 +574,15 @@ def run_transport(
                                        c_older=prev)
                 Kx = isotropic_stiffness(site.cells, grads, vol, nu, n)
                 S_x = (sysm.S + co.theta * Kx).tocsr()
+                S_x_ff = S_x[free][:, free].tocsr()
+                # small systems: a new factor; large ones: the step's preconditioner reused
+                solver_x: LinearSolver | _NearbySolver = LinearSolver(
+                    S_x_ff, method="direct", tol=case.solver.tolerance) \
+                    if sysm.solver.method == "direct" else _NearbySolver(
+                        S_x_ff, sysm.solver.preconditioner(), case.solver.tolerance,
+                        sysm.solver.method)
                 sys_x = replace(sysm, S=S_x, S_fD=S_x[free][:, fixed].tocsr(),
-                                solver=LinearSolver(S_x[free][:, free].tocsr(),
-                                                    method=case.solver.linear_solver,
-                                                    tol=case.solver.tolerance))
+                                solver=solver_x)
                 new, r, other_loss, its_x = solve(sys_x, rhs + (co.theta - 1.0) * (Kx @ old),
                                                   new)
                 its = max(its, its_x)
@@ -753,16 +778,27 @@ def _nonlinear_step(
     Returns the new field, the full residual (for the budget), the mass lost in the step [kg]
     by sorbed-phase decay and reactions, and the Newton iteration count.
     """
-    lam_s = float(s.coef["sorbed_decay"])
+    # with linear sorption (K_d) the sorbed storage and its decay are already in S (m and k
+    # of T1, T5); only nonlinear isotherms add them here (T10)
+    nonlin_sorption = bool(s.coef["sorbers"])
+    lam_s = float(s.coef["sorbed_decay"]) if nonlin_sorption else 0.0
+
+    def sorbed(c: FloatArray) -> tuple[FloatArray, FloatArray]:
+        return s.sorbed(c) if nonlin_sorption else (np.zeros_like(c), np.zeros_like(c))
+
     th = co.theta
     free = sysm.free
-    sig_old, _ = s.sorbed(old)
-    sig_hist = co.a1 * sig_old + (0.0 if prev is None else co.a2 * s.sorbed(prev)[0])
+    sig_old, _ = sorbed(old)
+    sig_hist = co.a1 * sig_old + (0.0 if prev is None else co.a2 * sorbed(prev)[0])
     loss_old, _ = s.reaction_loss(old, at_start=True)
-    S_ff = sysm.S[free][:, free]
+    S_ff = sysm.solver.A  # S on the free nodes, as the solver holds it
+    # the step matrix's factor or preconditioner serves every Newton iteration of the step:
+    # J differs from S_ff by a diagonal (T10, T11); small systems are factorised afresh
+    direct = sysm.solver.method == "direct"
+    M_step = None if direct else sysm.solver.preconditioner()
 
     def full_residual(c: FloatArray) -> FloatArray:
-        sig, _ = s.sorbed(c)
+        sig, _ = sorbed(c)
         loss, _ = s.reaction_loss(c)
         return (sysm.S @ c - rhs + (co.a0 * sig + sig_hist) / dt
                 + lam_s * (th * sig + (1 - th) * sig_old)
@@ -776,11 +812,14 @@ def _nonlinear_step(
     def jacobian_solve(x: FloatArray, r: FloatArray) -> FloatArray:
         c = new.copy()
         c[free] = x
-        _, dsig = s.sorbed(c)
+        _, dsig = sorbed(c)
         _, dloss = s.reaction_loss(c)
         J = (S_ff + sp.diags(dsig[free] * (co.a0 / dt + th * lam_s)
                              + th * dloss[free])).tocsr()
-        return LinearSolver(J, method=sysm.solver.method, tol=min(tol, 1e-12)).solve(r)
+        if M_step is None:
+            return LinearSolver(J, method="direct", tol=min(tol, 1e-12)).solve(r)
+        return solve_with_preconditioner(J, r, M_step,
+                                         tol=max(NEWTON_LINEAR_TOLERANCE, min(tol, 1e-12)))
 
     result = newton(residual, jacobian_solve, old[free].copy(), rtol=tol, atol=0.0,
                     max_iter=max_iter)
@@ -788,7 +827,7 @@ def _nonlinear_step(
                 ", ".join(f"{r:.2e}" for r in result.residual_norms))
     c = new.copy()
     c[free] = result.x
-    sig_new, _ = s.sorbed(c)
+    sig_new, _ = sorbed(c)
     loss_new, _ = s.reaction_loss(c)
     decayed = dt * (lam_s * float((th * sig_new + (1 - th) * sig_old).sum())
                     + float((th * loss_new + (1 - th) * loss_old).sum()))
