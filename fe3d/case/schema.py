@@ -94,7 +94,7 @@ class Material(_Section):
     transverse_dispersivity: NonNegativeLength
     vertical_dispersivity: NonNegativeLength | None = None
     diffusion_coefficient: Diffusivity = 0.0
-    tortuosity: Fraction = 1.0
+    tortuosity: Fraction | Literal["millington_quirk"] = 1.0
     conductivity_strike: Angle = 0.0
     conductivity_dip: Angle = 0.0
     conductivity_file: str | None = None
@@ -105,6 +105,15 @@ class Material(_Section):
         if self.vertical_conductivity is None:
             return self.horizontal_conductivity
         return self.vertical_conductivity
+
+    @property
+    def effective_diffusion(self) -> float:
+        """Effective molecular diffusion D* [m²/s] in the pore water (theory.md T4): the
+        free-water coefficient times ``tortuosity``, or times θ^(1/3) with
+        ``tortuosity = "millington_quirk"`` (Millington & Quirk 1961, saturated form)."""
+        if self.tortuosity == "millington_quirk":
+            return self.diffusion_coefficient * self.porosity ** (1.0 / 3.0)
+        return self.diffusion_coefficient * self.tortuosity
 
     @property
     def alpha_vertical(self) -> float:

@@ -273,7 +273,7 @@ def run_transport(
         alpha_l=np.array([m.longitudinal_dispersivity for m in mats])[lay],
         alpha_th=np.array([m.transverse_dispersivity for m in mats])[lay],
         alpha_tv=np.array([m.alpha_vertical for m in mats])[lay],
-        d_eff=np.array([m.diffusion_coefficient * m.tortuosity for m in mats])[lay],
+        d_eff=np.array([m.effective_diffusion for m in mats])[lay],
     )
     thetaD = theta * D
     outflow_faces = list(flow.fixed_head_nodes)
