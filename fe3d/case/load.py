@@ -10,7 +10,7 @@ from pydantic import ValidationError
 
 from fe3d.case.geology import read_borehole_file, read_grid_file, read_surface_file
 from fe3d.case.schema import Case, cross_checks
-from fe3d.case.series import read_release_file
+from fe3d.case.series import read_concentration_points, read_release_file
 from fe3d.errors import CaseError, CaseErrors
 
 __all__ = ["load_case", "parse_case"]
@@ -193,8 +193,9 @@ def with_geology_files(case: Case, base_dir: Path) -> Case:
 
 
 def with_release_files(case: Case, base_dir: Path) -> Case:
-    """The case with every source's release CSV read into ``release_series`` [s, SI]."""
-    if not any(s.release_file for s in case.sources):
+    """The case with every source's release CSV read into ``release_series`` [s, SI] and
+    every initial plume's point file into ``concentration_points`` [m, kg/m³]."""
+    if not any(s.release_file or s.concentration_file for s in case.sources):
         return case
     sources = []
     for s in case.sources:
@@ -202,5 +203,9 @@ def with_release_files(case: Case, base_dir: Path) -> Case:
             series = read_release_file(base_dir / s.release_file, kind=s.kind,
                                        key=f"sources[{s.name}].release_file")
             s = s.model_copy(update={"release_series": series})
+        if s.concentration_file is not None and s.kind == "initial_plume":
+            pts = read_concentration_points(base_dir / s.concentration_file,
+                                            key=f"sources[{s.name}].concentration_file")
+            s = s.model_copy(update={"concentration_points": pts})
         sources.append(s)
     return case.model_copy(update={"sources": sources})

@@ -256,6 +256,8 @@ class Source(_Section):
     stop: PositiveTime | None = None
     release_file: str | None = None
     release_series: list[tuple[float, float]] | None = None  # filled from release_file [s, SI]
+    concentration_file: str | None = None  # initial_plume: measured points
+    concentration_points: list[tuple[float, float, float, float]] | None = None  # filled, SI
 
     @property
     def peak_concentration(self) -> float | None:
@@ -265,6 +267,8 @@ class Source(_Section):
             return None
         if self.release_series is not None:
             return max(v for _, v in self.release_series)
+        if self.concentration_points is not None:
+            return max(p[3] for p in self.concentration_points)
         return self.concentration
 
     def strength(self, t0: float, t1: float) -> float:
@@ -529,8 +533,15 @@ def cross_checks(case: Case) -> list[CaseError]:
             errs.append(CaseError(f"{key}.release_file", s.release_file,
                                   "give either a release_file or a constant concentration / "
                                   "mass_rate, not both"))
-        if s.release_file is None and s.concentration is None and s.kind in (
-                "fixed_concentration", "inflow_concentration", "initial_plume"):
+        if s.concentration_file is not None and (s.kind != "initial_plume"
+                                                 or s.concentration is not None):
+            errs.append(CaseError(f"{key}.concentration_file", s.concentration_file,
+                                  "only an initial_plume takes a concentration_file, and then "
+                                  "no constant concentration"))
+        needs_value = s.kind in ("fixed_concentration", "inflow_concentration") and \
+            s.release_file is None
+        needs_value |= s.kind == "initial_plume" and s.concentration_file is None
+        if needs_value and s.concentration is None:
             errs.append(CaseError(f"{key}.concentration", "(missing)",
                                   f"a {s.kind} source needs a concentration, e.g. '20 mg/L'"))
         if s.kind == "mass_loading" and ((s.mass_rate is None and s.release_file is None)

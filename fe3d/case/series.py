@@ -16,7 +16,7 @@ from fe3d.case.geology import _rows
 from fe3d.errors import CaseError
 from fe3d.units import to_si
 
-__all__ = ["read_release_file"]
+__all__ = ["read_concentration_points", "read_release_file"]
 
 _HEADER = re.compile(r"^\s*([A-Za-z_]+)\s*\[([^\]]+)\]\s*$")
 _QUANTITY_OF_KIND = {"fixed_concentration": "concentration",
@@ -64,4 +64,34 @@ def read_release_file(path: Path, *, kind: str, key: str) -> list[tuple[float, f
         out.append((t, v))
     if not out:
         raise CaseError(key, str(path), "holds no rows below the header")
+    return out
+
+
+def read_concentration_points(path: Path, *, key: str) -> list[tuple[float, float, float, float]]:
+    """Rows (x, y, z [m], concentration [kg/m³]) of an initial-plume CSV with the header
+    ``x [m], y [m], z [m], concentration [mg/L]`` (any length and concentration units)."""
+    header, rows, nums = _rows(path, key)
+    if len(header) != 4:
+        raise CaseError(key, f"{path.name}: header {','.join(header)}",
+                        "needs four columns: 'x [m], y [m], z [m], concentration [mg/L]'")
+    cols = [_column(c, key, path) for c in header]
+    if [name for name, _ in cols] != ["x", "y", "z", "concentration"]:
+        raise CaseError(key, f"{path.name}: header {','.join(header)}",
+                        "needs the columns 'x [unit], y [unit], z [unit], concentration [unit]'")
+    dims = ("length", "length", "length", "concentration")
+    out: list[tuple[float, float, float, float]] = []
+    for k, r in zip(nums[1:], rows, strict=True):
+        where = f"{key}[line {k}]"
+        if len(r) != 4:
+            raise CaseError(where, ",".join(r), f"needs x, y, z and a concentration ({path.name})")
+        try:
+            vals = [to_si(f"{v} {u}", d) for v, (_, u), d in zip(r, cols, dims, strict=True)]
+        except ValueError as exc:
+            raise CaseError(where, ",".join(r), f"{exc} ({path.name})") from None
+        if vals[3] < 0.0:
+            raise CaseError(where, r[3], f"a concentration must be ≥ 0 ({path.name})")
+        out.append((vals[0], vals[1], vals[2], vals[3]))
+    if len(out) < 4:
+        raise CaseError(key, str(path), "needs at least four points (not in one plane) to "
+                                        "interpolate between")
     return out

@@ -452,9 +452,9 @@ def run_transport(
     was_fixed = {s.name: np.zeros(n, dtype=bool) for s in species}
     for src in case.sources:
         if src.kind == "initial_plume":
-            assert src.concentration is not None
             nodes = source_nodes[src.name]
-            conc[src.species][nodes] = np.maximum(conc[src.species][nodes], src.concentration)
+            values = _plume_values(src, site.points[:, nodes])
+            conc[src.species][nodes] = np.maximum(conc[src.species][nodes], values)
     acc = {s.name: {"input": 0.0, "decayed": 0.0,
                     "outflow": dict.fromkeys(s.outflow_weights, 0.0)} for s in species}
     initial = {s.name: float(s.w_dissolved @ conc[s.name]) + s.sorbed_mass(conc[s.name])
@@ -832,6 +832,25 @@ def _nonlinear_step(
     decayed = dt * (lam_s * float((th * sig_new + (1 - th) * sig_old).sum())
                     + float((th * loss_new + (1 - th) * loss_old).sum()))
     return c, full_residual(c), decayed, result.iterations
+
+
+def _plume_values(src: Source, at: FloatArray) -> FloatArray | float:
+    """Initial-plume concentration [kg/m³] at points ``(3, k)``: the constant value, or the
+    measured points interpolated linearly on their Delaunay tetrahedra and zero outside
+    their hull (T3e)."""
+    if src.concentration_points is None:
+        assert src.concentration is not None
+        return src.concentration
+    from scipy.interpolate import LinearNDInterpolator
+
+    pts = np.array(src.concentration_points, dtype=float)
+    try:
+        interp = LinearNDInterpolator(pts[:, :3], pts[:, 3], fill_value=0.0)
+    except Exception as exc:  # Qhull: points in one plane or line
+        msg = (f"source {src.name!r}: the concentration points span no volume (all in one "
+               f"plane?), so they cannot be interpolated ({type(exc).__name__})")
+        raise MeshError(msg) from None
+    return np.asarray(interp(at.T), dtype=float)
 
 
 def _sorbed_decay_rate(s: _Species, new: FloatArray, old: FloatArray,
