@@ -155,7 +155,8 @@ def one(h: float, dz: float, tol: float) -> dict[str, Any]:
     fixed, free = np.nonzero(fixed_mask)[0], np.nonzero(~fixed_mask)[0]
     w_theta = _nodal(site.cells, theta * np.abs(vol), n)  # lumped θV per node [m³]
     out: dict[str, Any] = {"nodes": n, "cells": site.n_cells, "mesh_s": t_mesh,
-                           "flow_s": t_flow, "prep_s": t_prep, "tol": tol, "courant": {}}
+                           "flow_s": t_flow, "prep_s": t_prep, "tol": tol, "courant": {},
+                           "peak_before_transport_mib": _peak_mib()}
     for courant in (1.0, 10.0):
         dt = courant / courant_rate
         t = time.perf_counter()
@@ -167,26 +168,36 @@ def one(h: float, dz: float, tol: float) -> dict[str, Any]:
         t_build = time.perf_counter() - t
         S_ff = S[free][:, free].tocsr()
         S_fD = S[free][:, fixed].tocsr()
-        x = np.ones(S.shape[0])
-        S @ x
-        t = time.perf_counter()
-        for _ in range(20):
-            S @ x
-        t_spmv = (time.perf_counter() - t) / 20
+        spmv_s: list[float] = []
+
+        def spmv_unit(S: Any = S, spmv_s: list[float] = spmv_s) -> float:
+            """Time 5 SpMV of S now; on a shared machine the load drifts, so every timed
+            operation is divided by the SpMV measured right beside it."""
+            x = np.ones(S.shape[0])
+            t = time.perf_counter()
+            for _ in range(5):
+                S @ x
+            spmv_s.append((time.perf_counter() - t) / 5)
+            return spmv_s[-1]
+
+        spmv_unit()
 
         # linear step: solver set up once, then STEPS steps of a growing plume
+        unit = spmv_unit()
         t = time.perf_counter()
         solver = LinearSolver(S_ff, method="auto", tol=tol)
-        t_setup = time.perf_counter() - t
+        setup_spmv = (time.perf_counter() - t) / (0.5 * (unit + spmv_unit()))
         old = np.zeros(n)
         old[fixed] = C0
-        step_s = []
+        step_s, step_spmv = [], []
         for _ in range(STEPS):
+            unit = spmv_unit()
             t = time.perf_counter()
             rhs = T @ old
             new = old.copy()
             new[free] = solver.solve(rhs[free] - S_fD @ new[fixed], x0=old[free])
             step_s.append(time.perf_counter() - t)
+            step_spmv.append(step_s[-1] / (0.5 * (unit + spmv_unit())))
             old = new
         step = float(np.median(step_s))
 
@@ -199,12 +210,13 @@ def one(h: float, dz: float, tol: float) -> dict[str, Any]:
         wk = w_theta[free] * K2
         c_old = np.zeros(n)
         c_old[fixed] = C0
-        newton_s, newton_its, gmres_its = [], [], []
+        newton_s, newton_spmv, newton_its, gmres_its = [], [], [], []
         for _ in range(STEPS):
             rhs = (T @ c_old)[free] - S_fD @ c_old[fixed]
             c = c_old[free].copy()
             r0 = None
             for _it in range(30):
+                unit = spmv_unit()
                 t = time.perf_counter()
                 r = S_ff @ c + wk * c * np.abs(c) - rhs
                 rn = float(np.linalg.norm(r))
@@ -217,18 +229,19 @@ def one(h: float, dz: float, tol: float) -> dict[str, Any]:
                                                   stats=st)
                 c = c - delta
                 newton_s.append(time.perf_counter() - t)
+                newton_spmv.append(newton_s[-1] / (0.5 * (unit + spmv_unit())))
                 gmres_its.append(int(st["iterations"]))
                 newton_its.append(_it)
             c_old = c_old.copy()
             c_old[free] = c
         per_newton = float(np.median(newton_s))
         out["courant"][f"{courant:g}"] = {
-            "dt_s": dt, "build_s": t_build, "spmv_ms": t_spmv * 1e3, "nnz": int(S.nnz),
+            "dt_s": dt, "build_s": t_build, "spmv_ms": float(np.median(spmv_s)) * 1e3,
+            "spmv_ms_range": [min(spmv_s) * 1e3, max(spmv_s) * 1e3], "nnz": int(S.nnz),
             "solver": solver.method, "probe_iterations": solver.probe_iterations,
-            "setup_s": t_setup, "step_s": step, "step_spmv": step / t_spmv,
-            "setup_spmv": t_setup / t_spmv,
-            "iterations": solver.iterations,
-            "newton_s": per_newton, "newton_spmv": per_newton / t_spmv,
+            "step_s": step, "step_spmv": float(np.median(step_spmv)),
+            "setup_spmv": setup_spmv, "iterations": solver.iterations,
+            "newton_s": per_newton, "newton_spmv": float(np.median(newton_spmv)),
             "newton_precond": pre.method, "newton_precond_setup_s": t_pre,
             "newton_per_step": (len(newton_its) / STEPS),
             "newton_gmres_iterations": gmres_its}
@@ -273,7 +286,8 @@ def write_section(rows: list[dict[str, Any]]) -> None:
              "Kd sorption and first-order decay (linear case) or second-order decay (nonlinear "
              "case), SUPG on, backward Euler, relative tolerance "
              f"{rows[0]['tol']:.0e}. 'SpMV' is one product of the step matrix S in the same "
-             "run; every other time is also given as a multiple of it. Step = right-hand side "
+             "run, timed right beside each measured operation (the load drifts); the SpMV "
+             "column gives the median and range. Step = right-hand side "
              "+ solve with the reused solver (median of "
              f"{STEPS} steps of a growing plume); Newton iteration = residual + Jacobian "
              "(S plus a diagonal) + GMRES with the step matrix's reused preconditioner "
@@ -291,7 +305,8 @@ def write_section(rows: list[dict[str, Any]]) -> None:
             g = d["newton_gmres_iterations"]
             lines.append(
                 f"| {r['nodes']:,} | {r['cells']:,} | {c} | {d['build_s']:.2f} | "
-                f"{d['spmv_ms']:.1f} | {d['solver']} ({d['probe_iterations']}) | "
+                f"{d['spmv_ms']:.1f} ({d['spmv_ms_range'][0]:.0f}–{d['spmv_ms_range'][1]:.0f})"
+                f" | {d['solver']} ({d['probe_iterations']}) | "
                 f"{d['setup_spmv']:.0f} | {d['step_s']:.3f} | {d['step_spmv']:.1f} | "
                 f"{min(its)}–{max(its)} | {d['newton_spmv']:.1f} | "
                 f"{d['newton_per_step']:.1f} | {min(g)}–{max(g)} | {r['peak_mib']:.0f} |")
