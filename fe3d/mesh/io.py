@@ -182,9 +182,15 @@ def faces_from_outline(points: FloatArray, cells: IndexArray,
 def mesh_inputs_hash(case: Case) -> str:
     """SHA-256 of every case input that changes the mesh (geometry, geology, mesh controls,
     sources, observation points, wells), plus the mesher format."""
-    keep = ["box", "boundary", "stratigraphy", "lenses", "refinement_lines", "mesh", "sources",
-            "observation_points", "wells"]
+    keep = ["box", "boundary", "stratigraphy", "lenses", "refinement_lines", "mesh",
+            "observation_points"]
     data = case.model_dump(mode="json", include=set(keep))
+    # only where sources and wells are shapes the mesh: strengths, rates and release
+    # histories do not change it
+    data["sources"] = [s.model_dump(mode="json", include={"shape", "face", "x", "y", "z"})
+                       for s in case.sources]
+    data["wells"] = [w.model_dump(mode="json", include={"x", "y", "screens"})
+                     for w in case.wells]
     data["layers"] = [{k: v for k, v in ly.model_dump(mode="json").items() if k != "material"}
                       for ly in case.layers]
     data["_format"] = MESH_FORMAT
