@@ -53,3 +53,18 @@ def test_mesh_is_reused_only_while_mesh_inputs_are_unchanged(tmp_path):
     assert mesh_inputs_hash(finer) != mesh_inputs_hash(case)
     _, reused = obtain_mesh(finer, [tmp_path], save_to=tmp_path)
     assert not reused
+
+
+def test_source_strength_and_well_rate_do_not_change_the_mesh_hash():
+    """Only where sources and wells are shapes the mesh (their corners and screens are mesh
+    nodes and levels); strengths, rates and kinds do not."""
+    text = TINY.read_text(encoding="utf-8")
+    well = ('\n[[wells]]\nname = "w"\nx = "30 m"\ny = "10 m"\nscreens = [["4 m", "2 m"]]\n'
+            'rate = "{rate} m^3/d"\n')
+    base = parse_case(text + well.format(rate=3))
+    stronger = parse_case(text.replace('concentration = "5 mg/L"', 'concentration = "9 mg/L"')
+                          + well.format(rate=7))
+    moved = parse_case(text.replace('x = ["8 m", "12 m"]', 'x = ["8 m", "13 m"]')
+                       + well.format(rate=3))
+    assert mesh_inputs_hash(stronger) == mesh_inputs_hash(base)
+    assert mesh_inputs_hash(moved) != mesh_inputs_hash(base)
