@@ -144,8 +144,8 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
                               minlength=site.n_nodes)
     node_pore = np.bincount(site.cells.ravel(), weights=np.tile(theta * vol / 4.0, 4),
                             minlength=site.n_nodes)
-    origins = {sp: next(((0.5 * sum(s.x), 0.5 * sum(s.y)) for s in case.sources
-                         if s.species == sp and s.x is not None and s.y is not None),
+    origins = {sp: next((s.plan_centre for s in case.sources
+                         if s.species == sp and s.plan_centre is not None),
                         (float(site.points[0].mean()), float(site.points[1].mean())))
                for sp in case.species}
     plume_rows: list[tuple[str, float, float, float, float, float]] = []

@@ -242,7 +242,7 @@ class Source(_Section):
 
     name: Name
     species: Name
-    shape: Literal["box", "face_patch"]
+    shape: Literal["box", "face_patch", "point", "line"]
     kind: Literal["fixed_concentration", "inflow_concentration", "mass_loading",
                   "initial_plume"] = "fixed_concentration"
     concentration: Concentration | None = None
@@ -252,12 +252,24 @@ class Source(_Section):
     x: Range | None = None
     y: Range | None = None
     z: Range | None = None
+    points: list[tuple[Length, Length, Length]] | None = None  # shape point (one) or line
     start: Time = 0.0
     stop: PositiveTime | None = None
     release_file: str | None = None
     release_series: list[tuple[float, float]] | None = None  # filled from release_file [s, SI]
     concentration_file: str | None = None  # initial_plume: measured points
     concentration_points: list[tuple[float, float, float, float]] | None = None  # filled, SI
+
+    @property
+    def plan_centre(self) -> tuple[float, float] | None:
+        """Plan centre [m] of the source: of its points, or of its x and y ranges (None
+        when a face patch leaves a range open)."""
+        if self.points is not None:
+            return (sum(p[0] for p in self.points) / len(self.points),
+                    sum(p[1] for p in self.points) / len(self.points))
+        if self.x is None or self.y is None:
+            return None
+        return 0.5 * (self.x[0] + self.x[1]), 0.5 * (self.y[0] + self.y[1])
 
     @property
     def peak_concentration(self) -> float | None:
@@ -545,10 +557,28 @@ def cross_checks(case: Case) -> list[CaseError]:
             errs.append(CaseError(f"{key}.concentration", "(missing)",
                                   f"a {s.kind} source needs a concentration, e.g. '20 mg/L'"))
         if s.kind == "mass_loading" and ((s.mass_rate is None and s.release_file is None)
-                                         or s.shape != "box"):
+                                         or s.shape == "face_patch"):
             errs.append(CaseError(f"{key}.mass_rate", "(missing)" if s.mass_rate is None
                                   else s.shape, "a mass_loading source needs a mass_rate "
-                                  "(e.g. '2 g/d') and shape = 'box'"))
+                                  "(e.g. '2 g/d') and shape = 'box', 'point' or 'line'"))
+        if s.shape in ("point", "line"):
+            want = 1 if s.shape == "point" else 2
+            pts = s.points or []
+            if s.kind != "mass_loading":
+                errs.append(CaseError(f"{key}.shape", s.shape,
+                                      "only a mass_loading source may be a point or a line"))
+            if len(pts) < want or (s.shape == "point" and len(pts) != 1):
+                errs.append(CaseError(f"{key}.points", f"{len(pts)} points",
+                                      "a point source needs points = [[x, y, z]], a line at "
+                                      "least two points"))
+            for j, (px, py, pz) in enumerate(pts):
+                if not (_in(px, x0, x1) and _in(py, y0, y1) and _in(pz, zmin, top)
+                        and point_in_polygon(px, py, verts, tol=1e-9 * max(x1 - x0, y1 - y0))):
+                    errs.append(CaseError(f"{key}.points[{j}]", f"[{px:g}, {py:g}, {pz:g}] m",
+                                          "must lie inside the model"))
+        elif s.points is not None:
+            errs.append(CaseError(f"{key}.points", "(given)",
+                                  "points belong to shape = 'point' or 'line' only"))
         if s.shape == "face_patch" and s.face is None:
             errs.append(CaseError(f"{key}.face", None,
                                   f"a face_patch source needs a face: one of "

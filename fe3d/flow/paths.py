@@ -44,6 +44,8 @@ class TravelPaths:
 
 def _source_seeds(case: Case, name: str) -> FloatArray:
     src = next(s for s in case.sources if s.name == name)
+    if src.points is not None:  # a point or line source: start at its vertices
+        return np.array(src.points, dtype=float).T
     rng = []
     outline, _ = case.outline()
     xs = [p[0] for p in outline]

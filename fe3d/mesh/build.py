@@ -91,6 +91,9 @@ def feature_points(case: Case) -> list[tuple[float, float]]:
     bx0, bx1 = min(v[0] for v in verts), max(v[0] for v in verts)
     by0, by1 = min(v[1] for v in verts), max(v[1] for v in verts)
     for s in case.sources:
+        if s.points is not None:  # a point or line source: its vertices are plan nodes
+            pts += [(px, py) for px, py, _ in s.points]
+            continue
         x0, x1 = s.x if s.x is not None else (bx0, bx1)
         y0, y1 = s.y if s.y is not None else (by0, by1)
         corners = [(x0, y0), (x1, y0), (x1, y1), (x0, y1)]

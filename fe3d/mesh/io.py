@@ -187,7 +187,8 @@ def mesh_inputs_hash(case: Case) -> str:
     data = case.model_dump(mode="json", include=set(keep))
     # only where sources and wells are shapes the mesh: strengths, rates and release
     # histories do not change it
-    data["sources"] = [s.model_dump(mode="json", include={"shape", "face", "x", "y", "z"})
+    data["sources"] = [s.model_dump(mode="json", include={"shape", "face", "x", "y", "z",
+                                                           "points"})
                        for s in case.sources]
     data["wells"] = [w.model_dump(mode="json", include={"x", "y", "screens"})
                      for w in case.wells]

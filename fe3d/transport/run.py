@@ -14,6 +14,7 @@ step length and their factor or preconditioner reused for every step of that len
 
 from __future__ import annotations
 
+import itertools
 import logging
 import math
 from collections.abc import Callable, Iterator
@@ -31,7 +32,7 @@ from fe3d.errors import MeshError, SolverError
 from fe3d.flow.solve import FlowField, unit_materials
 from fe3d.linalg import LinearSolver, scatter_element_matrices, solve_with_preconditioner
 from fe3d.mesh.geometry import p1_gradients
-from fe3d.mesh.locate import sample_operator, screen_points
+from fe3d.mesh.locate import locate_points, sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.reactions import kinetics, sorption
 from fe3d.transport import forms
@@ -396,8 +397,9 @@ def run_transport(
                                      S_fD=S[free][:, fixed].tocsr())
         return s.systems[key]
 
-    # source nodes
-    source_nodes = {src.name: _source_nodes(site, src) for src in case.sources}
+    # source nodes (point and line sources load the nodes of the cells they cross)
+    source_nodes = {src.name: _source_nodes(site, src) for src in case.sources
+                    if src.points is None}
     inflow_weights = {}
     for src in case.sources:
         if src.kind == "inflow_concentration":
@@ -418,7 +420,10 @@ def run_transport(
     node_volume = _nodal(site.cells, np.abs(vol), n)
     loading_weights = {}
     for src in case.sources:
-        if src.kind == "mass_loading":
+        if src.kind == "mass_loading" and src.points is not None:
+            loading_weights[src.name] = _point_load_weights(
+                site, src.points, spacing=max(case.mesh.layer_cell_thickness / 4.0, 0.05))
+        elif src.kind == "mass_loading":
             w = np.zeros(n)
             w[source_nodes[src.name]] = node_volume[source_nodes[src.name]]
             loading_weights[src.name] = w / w.sum()
@@ -832,6 +837,32 @@ def _nonlinear_step(
     decayed = dt * (lam_s * float((th * sig_new + (1 - th) * sig_old).sum())
                     + float((th * loss_new + (1 - th) * loss_old).sum()))
     return c, full_residual(c), decayed, result.iterations
+
+
+def _point_load_weights(site: SiteMesh, points: list[tuple[float, float, float]], *,
+                        spacing: float) -> FloatArray:
+    """Nodal weights (summing to 1) of a unit load at a point, or spread evenly along a
+    polyline: the Galerkin load φ_j(x_s) of a point source (T3f); a line is sampled at the
+    midpoints of sub-segments no longer than ``spacing``, each weighted by its length."""
+    p = np.array(points, dtype=float).T  # (3, k)
+    if p.shape[1] == 1:
+        xs, lengths = p, np.ones(1)
+    else:
+        chunks, lens = [], []
+        for a, b in itertools.pairwise(p.T):
+            seg = float(np.linalg.norm(b - a))
+            k = max(1, math.ceil(seg / spacing))
+            f = (np.arange(k) + 0.5) / k
+            chunks.append(a[:, None] + (b - a)[:, None] * f)
+            lens.append(np.full(k, seg / k))
+        xs, lengths = np.hstack(chunks), np.concatenate(lens)
+    if lengths.sum() <= 0.0:
+        msg = "a line source has zero length"
+        raise MeshError(msg)
+    ids, bary = locate_points(site.points, site.cells, xs)
+    w = np.bincount(site.cells[:, ids].ravel(), weights=(bary * lengths).ravel(),
+                    minlength=site.n_nodes)
+    return w / w.sum()
 
 
 def _plume_values(src: Source, at: FloatArray) -> FloatArray | float:
