@@ -292,7 +292,8 @@ class LinearSolver:
         elif self.method in ("gauss_seidel", "jacobi"):
             x, its = _krylov(self.A, b, self.preconditioner(), tol=self.tol, x0=x0,
                              max_iter=self.max_iter, kind="bicgstab")
-            if not _converged(self.A, x, b, self.tol):
+            verified = _converged(self.A, x, b, self.tol)
+            if not verified:
                 logger.info("%s-BiCGSTAB missed the tolerance after %d iterations; AMG from "
                             "now", self.method, its)
                 self.method = "amg"
@@ -302,6 +303,8 @@ class LinearSolver:
                                   max_iter=self.max_iter, kind="gmres")
                 its += more
             self.iterations.append(its)
+            if verified:  # the true residual was just checked: skip a second product
+                return x
         else:
             x, its = _krylov(self.A, b, self.preconditioner(), tol=self.tol, x0=x0,
                              max_iter=self.max_iter, kind="gmres")
