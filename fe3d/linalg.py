@@ -235,7 +235,8 @@ class LinearSolver:
 
         def sweep(v: FloatArray) -> FloatArray:
             y = np.zeros(n)
-            gauss_seidel(A, y, np.ravel(v).astype(float), iterations=1, sweep="symmetric")
+            gauss_seidel(A, y, np.asarray(v, dtype=float).ravel(), iterations=1,
+                         sweep="symmetric")
             return y
 
         return spla.LinearOperator((n, n), matvec=sweep, dtype=float)
