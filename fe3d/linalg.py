@@ -1,10 +1,12 @@
 """Sparse linear solvers chosen by matrix size and symmetry; knows nothing of the physics.
 
-Choices follow the measurements in the project's solver notes: SuperLU only for small 3D
-systems (measured 5.7 s for a 29 k-node 3D Laplacian here); conjugate gradients with one smoothed-
-aggregation V-cycle for symmetric positive definite systems; GMRES with an unsmoothed-
-aggregation V-cycle (``smooth=None``, nonsymmetric) for transport steps. Every iterative
-result is checked against the true residual ‖b − Ax‖/‖b‖, never only the solver's flag.
+Choices follow measurements on fe3d's own matrices (docs/performance.md, "Linear solvers"):
+SuperLU only for small 3D systems; for symmetric positive definite (flow) systems conjugate
+gradients with one classical Ruge–Stüben AMG cycle (strength 0.5, second splitting pass);
+for transport steps BiCGSTAB with a symmetric Gauss–Seidel preconditioner, or GMRES with an
+unsmoothed-aggregation AMG V-cycle when a probe solve shows the step is too stiff for it.
+Every iterative result is checked against the true residual ‖b − Ax‖/‖b‖, never only the
+solver's flag.
 """
 
 from __future__ import annotations
@@ -156,7 +158,8 @@ def solve_with_preconditioner(A: Any, b: FloatArray, M: Any, *, tol: float,
     """
     x, its = _krylov(A, b, M, tol=tol, x0=x0, max_iter=max_iter, kind="gmres")
     if stats is not None:
-        stats.update(iterations=float(its), relative_residual=_relative_residual(A, x, b))
+        with np.errstate(invalid="ignore", over="ignore"):
+            stats.update(iterations=float(its), relative_residual=_relative_residual(A, x, b))
     _check(A, x, b, tol, "preconditioned solve")
     return x
 
