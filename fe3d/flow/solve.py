@@ -11,6 +11,7 @@ import numpy as np
 import scipy.sparse as sp
 from skfem import condense
 
+from fe3d._threads import limit_blas_threads
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.hydro import Well
 from fe3d.case.schema import Case, Material
@@ -141,6 +142,7 @@ def solve_flow(
     CaseError
         When nothing fixes the head level (no fixed head and no head-dependent boundary).
     """
+    limit_blas_threads()
     if not case.fixed_heads and not case.head_dependent and not extra_fixed:
         msg = ("at least one fixed head or head-dependent boundary is needed, otherwise the "
                "head is undetermined")

@@ -26,6 +26,7 @@ import numpy as np
 import scipy.sparse as sp
 from skfem import ElementTetP1, FacetBasis, asm
 
+from fe3d._threads import limit_blas_threads
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import Case, Source, Species
 from fe3d.errors import MeshError, SolverError
@@ -260,6 +261,7 @@ def run_transport(
         A step still fails after ``solver.max_step_cuts`` halvings; every snapshot yielded
         before stays valid.
     """
+    limit_blas_threads()
     mesh = site.skfem_mesh()
     n = site.n_nodes
     mats, mat_names = unit_materials(case, site)
