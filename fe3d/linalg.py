@@ -57,8 +57,8 @@ def _check(A: Any, x: FloatArray, b: FloatArray, tol: float, what: str) -> None:
 FLOW_TOLERANCE = 1e-9
 """Relative residual that keeps the flow budget discrepancy two orders below its 1e-8 target:
 on the 177 k-node benchmark site the discrepancy measured 6.4e-9, 1.3e-10, 2.7e-11 and 2.9e-13
-at tolerances 1e-8, 1e-9, 1e-10 and 1e-12 (docs/performance.md). Not yet the default of
-:func:`solve_spd`, which keeps 1e-12 until the flow solver passes ``tol`` itself."""
+at tolerances 1e-8, 1e-9, 1e-10 and 1e-12 (docs/performance.md). The flow stage
+(fe3d/flow/solve.py) passes it; :func:`solve_spd` keeps 1e-12 as its own default."""
 
 
 def solve_spd(A: sp.csr_matrix, b: FloatArray, *, tol: float = 1e-12,

@@ -19,7 +19,7 @@ from fe3d.errors import CaseError, SolverError
 from fe3d.flow.assembly import conductance_matrix
 from fe3d.flow.boundaries import in_polygon, lumped_face_weights
 from fe3d.flow.conductivity import conductivity_tensors
-from fe3d.linalg import solve_spd
+from fe3d.linalg import FLOW_TOLERANCE, solve_spd
 from fe3d.mesh.geometry import p1_gradients
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
@@ -233,9 +233,9 @@ def solve_flow(
         M = (A + sp.diags(diag)).tocsr()
         if fixed.size:
             M_ff, b_f, _, free = condense(M, rhs, x=head, D=fixed)
-            head[free] = solve_spd(M_ff.tocsr(), b_f, stats=stats)
+            head[free] = solve_spd(M_ff.tocsr(), b_f, tol=FLOW_TOLERANCE, stats=stats)
         else:
-            head = solve_spd(M, rhs, stats=stats)
+            head = solve_spd(M, rhs, tol=FLOW_TOLERANCE, stats=stats)
         iterations += int(stats.get("iterations", 0))
         new_active = [np.ones(n, dtype=bool) if hd.kind == "river" else head > hd.stage
                       for hd, _ in robin]

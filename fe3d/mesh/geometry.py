@@ -25,12 +25,14 @@ def p1_gradients(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, Flo
         ``grads[e, i, :]`` = ∇φ_i on cell e [1/m], shape ``(n_cells, 4, 3)``; volumes [m³],
         shape ``(n_cells,)`` (positive for positively oriented cells).
     """
-    p = points[:, cells]  # (3, 4, n)
-    jac = np.stack([p[:, 1] - p[:, 0], p[:, 2] - p[:, 0], p[:, 3] - p[:, 0]], axis=-1)
-    jac = np.moveaxis(jac, 1, 0)  # (n, 3 coords, 3 edges)
-    det = np.linalg.det(jac)
-    inv = np.linalg.inv(jac)  # (n, 3 edges, 3 coords): rows are ∇λ_1..3
+    p0 = points[:, cells[0]]
+    e1, e2, e3 = (points[:, cells[k]] - p0 for k in (1, 2, 3))  # edges, (3, n) each
+    # the inverse of the Jacobian [e1 e2 e3] has the rows (e2×e3, e3×e1, e1×e2)/det, with
+    # det = e1·(e2×e3): closed form, several times faster than a batched LAPACK inverse
+    c23, c31, c12 = np.cross(e2, e3, axis=0), np.cross(e3, e1, axis=0), np.cross(e1, e2, axis=0)
+    det = np.einsum("kn,kn->n", e1, c23)
     grads = np.empty((cells.shape[1], 4, 3))
-    grads[:, 1:, :] = inv
-    grads[:, 0, :] = -inv.sum(axis=1)
+    for row, c in ((1, c23), (2, c31), (3, c12)):
+        grads[:, row, :] = (c / det).T
+    grads[:, 0, :] = -grads[:, 1:, :].sum(axis=1)
     return grads, det / 6.0
