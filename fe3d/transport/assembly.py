@@ -60,9 +60,10 @@ def transport_operators(
         w = tau[sl] * v  # τ V
         mloc = (m[sl] * v)[:, None, None] * P1_MASS \
             + (w * ms[sl] / 4.0)[:, None, None] * a_g[:, :, None] * np.ones((1, 1, 4))
-        dg = np.einsum("abe,ejb->eja", theta_d[:, :, sl], g)  # θD ∇φ_j
+        td = np.moveaxis(theta_d[:, :, sl], 2, 0)  # (e, 3, 3)
+        disp = np.matmul(g, np.matmul(td, g.transpose(0, 2, 1)))  # ∇φ_i·θD∇φ_j
         kloc = (-(q_g * v[:, None] / 4.0))[:, :, None] * np.ones((1, 1, 4)) \
-            + np.einsum("eia,eja->eij", g, dg) * v[:, None, None] \
+            + disp * v[:, None, None] \
             + (k[sl] * v)[:, None, None] * P1_MASS \
             + w[:, None, None] * a_g[:, :, None] * q_g[:, None, :] \
             + (w * k[sl] / 4.0)[:, None, None] * a_g[:, :, None] * np.ones((1, 1, 4))
