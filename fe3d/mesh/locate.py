@@ -36,11 +36,16 @@ def locate_points(points: FloatArray, cells: IndexArray, xs: FloatArray, *,
     """
     from scipy.spatial import cKDTree
 
-    # only cells near the points' bounding box can hold them: a small tree is quick to build
+    # only cells whose bounding box meets the points' bounding box can hold them (a small
+    # tree is quick to build); filtered one axis at a time, so that the later axes only look
+    # at the cells that passed the earlier ones (a single gather of every cell's corners cost
+    # seconds on a million-node mesh)
     lo, hi = xs.min(axis=1), xs.max(axis=1)
-    cmin, cmax = points[:, cells].min(axis=1), points[:, cells].max(axis=1)
-    near = np.nonzero(np.all((cmax >= lo[:, None] - 1e-9) & (cmin <= hi[:, None] + 1e-9),
-                             axis=0))[0]
+    near = np.arange(cells.shape[1])
+    for axis in range(3):
+        corner = points[axis, cells[:, near]]  # (4, k)
+        keep = (corner.max(axis=0) >= lo[axis] - 1e-9) & (corner.min(axis=0) <= hi[axis] + 1e-9)
+        near = near[keep]
     if near.size == 0:
         bad = xs[:, 0]
         msg = f"a sample point near {bad.round(3).tolist()} m lies outside the mesh"
