@@ -29,6 +29,7 @@ def transport_operators(
     cells: IndexArray, grads: FloatArray, vol: FloatArray, *, m: FloatArray, k: FloatArray,
     q: FloatArray, a: FloatArray, tau: FloatArray, theta_d: FloatArray, n: int,
     chunk: int = 500_000, m_supg: FloatArray | None = None,
+    parts: str = "all",
 ) -> tuple[sp.csr_matrix, sp.csr_matrix]:
     """Mass operator (storage + SUPG storage) and spatial operator (advection, dispersion,
     decay and their SUPG parts), both ``(n, n)``.
@@ -48,7 +49,15 @@ def transport_operators(
     m_supg
         Storage coefficient of the SUPG storage term when it differs from ``m`` (nonlinear
         sorption: the Galerkin storage holds θ, the sorbed part is added outside).
+    parts
+        ``"all"``, ``"galerkin"`` (T1, T2, T4, T5: independent of the step length) or
+        ``"supg"`` (T6: depends on τ, hence on the step length), so that a new step length
+        rebuilds only the SUPG part; ``galerkin + supg == all``.
     """
+    if parts not in ("all", "galerkin", "supg"):
+        msg = f"parts must be 'all', 'galerkin' or 'supg', not {parts!r}"
+        raise ValueError(msg)
+    gal, stab = parts in ("all", "galerkin"), parts in ("all", "supg")
     ms = m if m_supg is None else m_supg
     mass = sp.csr_matrix((n, n))
     spatial = sp.csr_matrix((n, n))
@@ -58,15 +67,18 @@ def transport_operators(
         a_g = np.einsum("ke,eik->ei", a[:, sl], g)  # a·∇φ_i
         q_g = np.einsum("ke,eik->ei", q[:, sl], g)  # q·∇φ_i
         w = tau[sl] * v  # τ V
-        mloc = (m[sl] * v)[:, None, None] * P1_MASS \
-            + (w * ms[sl] / 4.0)[:, None, None] * a_g[:, :, None] * np.ones((1, 1, 4))
-        td = np.moveaxis(theta_d[:, :, sl], 2, 0)  # (e, 3, 3)
-        disp = np.matmul(g, np.matmul(td, g.transpose(0, 2, 1)))  # ∇φ_i·θD∇φ_j
-        kloc = (-(q_g * v[:, None] / 4.0))[:, :, None] * np.ones((1, 1, 4)) \
-            + disp * v[:, None, None] \
-            + (k[sl] * v)[:, None, None] * P1_MASS \
-            + w[:, None, None] * a_g[:, :, None] * q_g[:, None, :] \
-            + (w * k[sl] / 4.0)[:, None, None] * a_g[:, :, None] * np.ones((1, 1, 4))
+        mloc = np.zeros((v.size, 4, 4))
+        kloc = np.zeros((v.size, 4, 4))
+        if gal:
+            td = np.moveaxis(theta_d[:, :, sl], 2, 0)  # (e, 3, 3)
+            disp = np.matmul(g, np.matmul(td, g.transpose(0, 2, 1)))  # ∇φ_i·θD∇φ_j
+            mloc += (m[sl] * v)[:, None, None] * P1_MASS
+            kloc += (-(q_g * v[:, None] / 4.0))[:, :, None] \
+                + disp * v[:, None, None] + (k[sl] * v)[:, None, None] * P1_MASS
+        if stab:
+            mloc += (w * ms[sl] / 4.0)[:, None, None] * a_g[:, :, None]
+            kloc += w[:, None, None] * a_g[:, :, None] * q_g[:, None, :] \
+                + (w * k[sl] / 4.0)[:, None, None] * a_g[:, :, None]
         c = cells[:, sl]
         mass = mass + scatter_element_matrices(c, mloc, n)
         spatial = spatial + scatter_element_matrices(c, kloc, n)

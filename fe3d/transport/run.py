@@ -195,6 +195,7 @@ class _Species:
     outflow_matrix: sp.csr_matrix
     h: FloatArray
     operators: dict[float, tuple[sp.csr_matrix, sp.csr_matrix]] = field(default_factory=dict)
+    galerkin: tuple[sp.csr_matrix, sp.csr_matrix] | None = None
     systems: dict[tuple[float, float, float, tuple[str, ...]], _System] = field(
         default_factory=dict)
     user_rate: Callable[[FloatArray], tuple[FloatArray, FloatArray]] | None = None
@@ -359,17 +360,25 @@ def run_transport(
         return tc.step * 2.0 ** round(math.log2(dt / tc.step))
 
     def operators(s: _Species, dt_tau: float) -> tuple[sp.csr_matrix, sp.csr_matrix]:
-        """Mass and spatial operators (T1–T6, outflow included) with τ built for dt_tau."""
+        """Mass and spatial operators (T1–T6, outflow included) with τ built for dt_tau.
+
+        The Galerkin part does not depend on the step length and is built once per species;
+        a new step length rebuilds only the SUPG part (T6)."""
         if dt_tau not in s.operators:
             c = s.coef
-            tau = supg_tau(c["a"], c["kappa"], c["sigma"], s.h, dt_tau) if supg_on \
-                else np.zeros_like(c["m"])
             nonlin = bool(c["sorbers"])
-            M, K = transport_operators(site.cells, grads, vol,
-                                       m=theta if nonlin else c["m"], k=c["k"], q=q,
-                                       a=c["a"], tau=tau, theta_d=thetaD, n=n,
-                                       m_supg=c["m"] if nonlin else None)
-            K = (K + s.outflow_matrix).tocsr()
+            kw = {"m": theta if nonlin else c["m"], "k": c["k"], "q": q, "a": c["a"],
+                  "theta_d": thetaD, "n": n, "m_supg": c["m"] if nonlin else None}
+            if s.galerkin is None:
+                M0, K0 = transport_operators(site.cells, grads, vol, tau=np.zeros_like(c["m"]),
+                                             parts="galerkin", **kw)
+                s.galerkin = (M0, (K0 + s.outflow_matrix).tocsr())
+            M, K = s.galerkin
+            if supg_on:
+                tau = supg_tau(c["a"], c["kappa"], c["sigma"], s.h, dt_tau)
+                Ms, Ks = transport_operators(site.cells, grads, vol, tau=tau, parts="supg",
+                                             **kw)
+                M, K = (M + Ms).tocsr(), (K + Ks).tocsr()
             while len(s.operators) >= 2:  # keep at most two step lengths' operators
                 s.operators.pop(next(iter(s.operators)))
             s.operators[dt_tau] = (M, K)

@@ -48,3 +48,19 @@ def test_closed_form_operators_match_scikit_fem():
                                          **coef)
     assert abs(ref_m - mine_m).max() <= 1e-12 * abs(ref_m).max()
     assert abs(ref_k - mine_k).max() <= 1e-12 * abs(ref_k).max()
+    # the Galerkin and SUPG parts, built apart (a new step length rebuilds only SUPG), add up
+    # to the whole, and the Galerkin part is scikit-fem's assembly without the SUPG forms
+    gal = transport_operators(mesh.t, grads, vol, n=mesh.p.shape[1], chunk=17,
+                              parts="galerkin", **coef)
+    stab = transport_operators(mesh.t, grads, vol, n=mesh.p.shape[1], chunk=17, parts="supg",
+                               **coef)
+    assert abs(gal[0] + stab[0] - mine_m).max() <= 1e-14 * abs(mine_m).max()
+    assert abs(gal[1] + stab[1] - mine_k).max() <= 1e-14 * abs(mine_k).max()
+    ref_gal_k = asm(_spatial_galerkin, basis, **kw)
+    assert abs(ref_gal_k - gal[1]).max() <= 1e-12 * abs(ref_gal_k).max()
+
+
+@BilinearForm
+def _spatial_galerkin(u, v, w):
+    return (forms.advection.form(u, v, w) + forms.dispersion.form(u, v, w)
+            + forms.decay.form(u, v, w))
