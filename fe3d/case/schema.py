@@ -535,6 +535,11 @@ def cross_checks(case: Case) -> list[CaseError]:
         if s.kind == "inflow_concentration" and s.shape != "face_patch":
             errs.append(CaseError(f"{key}.shape", s.shape,
                                   "an inflow_concentration source must be a face_patch"))
+        for filled, by in (("release_series", "release_file"),
+                           ("concentration_points", "concentration_file")):
+            if getattr(s, filled) is not None and getattr(s, by) is None:
+                errs.append(CaseError(f"{key}.{filled}", "(given)",
+                                      f"is read from {by} (with units); give {by} instead"))
         if s.release_file is not None and s.kind == "initial_plume":
             errs.append(CaseError(f"{key}.release_file", s.release_file,
                                   "an initial_plume has no release in time; use a "

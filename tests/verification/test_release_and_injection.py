@@ -368,3 +368,12 @@ def test_bad_point_and_line_sources_name_the_field(shape_lines, allowed):
         _no_flow_loading(shape_lines)
     assert "sources[drip]" in str(err.value)
     assert allowed in str(err.value)
+
+
+def test_filled_series_cannot_be_written_in_the_case_file(tmp_path):
+    """The SI series are read from the files, with their units; written inline (no units)
+    they are refused with a one-line error naming the file key to use."""
+    with pytest.raises(CaseErrors, match="give release_file instead"):
+        _tiny(tmp_path, lambda t: t.replace('concentration = "5 mg/L"',
+                                            'concentration = "5 mg/L"\nrelease_series = '
+                                            '[[0.0, 1.0]]'))
