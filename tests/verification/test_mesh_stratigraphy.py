@@ -151,6 +151,18 @@ def test_surfaces_honour_picks_and_reference_interpolant(tmp_path, method):
         np.testing.assert_allclose(s[k][ok], ref[ok], atol=1e-6)
 
 
+
+def lens_block(name: str, *, top: str | None = None, bottom: str | None = None,
+               picks: str | None = None,
+               polygon: tuple[tuple[float, float], ...] = ((40, 30), (80, 30), (80, 60),
+                                                           (40, 60))) -> str:
+    """TOML of one lens in the unit 'lower' (sand), by elevations or by picks."""
+    poly = ", ".join(f'["{x} m", "{y} m"]' for x, y in polygon)
+    levels = f"picks = {picks}\n" if picks is not None else \
+        f'top = "{top}"\nbottom = "{bottom}"\n'
+    return (f'\n[[lenses]]\nname = "{name}"\nmaterial = "sand"\nhost = "lower"\n'
+            f"polygon = [{poly}]\n{levels}")
+
 def test_unit_volume_equals_integral_of_thickness(tmp_path):
     """Surfaces linear on each plan triangle: cell volumes per unit = Σ area × mean thickness
     (truncated prism, CRC tables), ≤ 1e-9 relative."""
@@ -264,15 +276,7 @@ radius = "4 m"
 def test_msh_skfem_vtu_round_trip_keeps_named_tags(tmp_path):
     """.msh → SiteMesh → scikit-fem → .vtu: node coordinates (1e-12 m), unit tags and every
     named face survive (exact by construction)."""
-    extra = """
-[[lenses]]
-name = "clay_lens"
-material = "sand"
-host = "lower"
-polygon = [["40 m", "30 m"], ["80 m", "30 m"], ["80 m", "60 m"], ["40 m", "60 m"]]
-top = "-2 m"
-bottom = "-5 m"
-"""
+    extra = lens_block("clay_lens", top="-2 m", bottom="-5 m")
     site = build_mesh(load_case(write_case(tmp_path, irregular_rows(), extra=extra)))
     assert "clay_lens" in site.layer_names
     assert np.any(site.cell_layer == site.layer_names.index("clay_lens"))
@@ -302,15 +306,7 @@ bottom = "-5 m"
 def test_lens_volume_is_its_prism(tmp_path):
     """A lens inside its host everywhere: its cells fill polygon area × (top − bottom)
     (exact by construction: its outline is embedded and two host levels follow it)."""
-    extra = """
-[[lenses]]
-name = "clay_lens"
-material = "sand"
-host = "lower"
-polygon = [["40 m", "30 m"], ["80 m", "30 m"], ["80 m", "60 m"], ["40 m", "60 m"]]
-top = "-2 m"
-bottom = "-5 m"
-"""
+    extra = lens_block("clay_lens", top="-2 m", bottom="-5 m")
     site = build_mesh(load_case(write_case(tmp_path, irregular_rows(), extra=extra)))
     assert unit_volumes(site)["clay_lens"] == pytest.approx(40 * 30 * 3.0, rel=1e-9)
     assert site.cell_volumes().min() > 0
@@ -379,22 +375,9 @@ def test_lens_sticking_out_of_its_host_is_reported(tmp_path, caplog):
     info, in mesh.json and as a logged warning (behaviour requirement, no source); the clipped
     lens still fills its outline between the host top and its bottom (truncated prisms, as
     in M1) and a lens inside its host is not reported."""
-    extra = """
-[[lenses]]
-name = "peat_lens"
-material = "sand"
-host = "lower"
-polygon = [["40 m", "30 m"], ["80 m", "30 m"], ["80 m", "60 m"], ["40 m", "60 m"]]
-top = "3 m"
-bottom = "-5 m"
-[[lenses]]
-name = "inner_lens"
-material = "sand"
-host = "lower"
-polygon = [["90 m", "20 m"], ["110 m", "20 m"], ["110 m", "35 m"], ["90 m", "35 m"]]
-top = "-3 m"
-bottom = "-5 m"
-"""
+    extra = lens_block("peat_lens", top="3 m", bottom="-5 m") + lens_block(
+        "inner_lens", top="-3 m", bottom="-5 m", polygon=((90, 20), (110, 20), (110, 35),
+                                                          (90, 35)))
     with caplog.at_level("WARNING", logger="fe3d.mesh.build"):
         site = build_mesh(load_case(write_case(tmp_path, irregular_rows(), extra=extra)))
     notes = site.info["lens_fit"]
@@ -413,14 +396,8 @@ bottom = "-5 m"
     assert unit_volumes(site)["inner_lens"] == pytest.approx(20 * 15 * 2.0, rel=1e-9)
 
 
-LENS_FROM_PICKS = """
-[[lenses]]
-name = "clay_lens"
-material = "sand"
-host = "lower"
-polygon = [["40 m", "30 m"], ["80 m", "30 m"], ["80 m", "60 m"], ["40 m", "60 m"]]
-picks = [{{ borehole = "{bh}", top = "-2.2 m", bottom = "-5.1 m" }}]
-"""
+LENS_FROM_PICKS = lens_block("clay_lens", picks='[{{ borehole = "{bh}", top = "-2.2 m", '
+                                                'bottom = "-5.1 m" }}]')
 
 
 def test_lens_given_by_borehole_picks(tmp_path):
