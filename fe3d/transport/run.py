@@ -60,6 +60,9 @@ logger = logging.getLogger(__name__)
 _MAX_CACHED = 3
 """Step systems (matrix + factor or preconditioner) kept per species: a few step lengths."""
 
+_MAX_SWEEPS = 50
+"""Sweeps over the species of a user law that couple both ways before a step is cut."""
+
 
 @dataclass(frozen=True)
 class StepCoefficients:
@@ -522,112 +525,130 @@ def run_transport(
         items: dict[str, dict[str, Any]] = {}
         decay_loss: dict[str, FloatArray] = {}
         newton_max, kind = 1, "none"
-        for s in species:
-            active = tuple(src.name for src in case.sources if src.species == s.name
-                           and src.kind == "fixed_concentration"
-                           and src.start <= tmid and (src.stop is None or tmid <= src.stop))
-            sysm = system(s, dt, co, active)
-            fixed, free = sysm.fixed, sysm.free
-            start_vals, end_vals = np.zeros(n), np.zeros(n)
-            for src in case.sources:
-                if src.name in active:
-                    nodes = source_nodes[src.name]
-                    start_vals[nodes] = np.maximum(start_vals[nodes], src.strength(t0, t0))
-                    end_vals[nodes] = np.maximum(end_vals[nodes], src.strength(t1, t1))
-            gvals = end_vals[fixed]
-            load = injection[s.name].copy()
-            for src in case.sources:
-                if src.species != s.name or not (src.start <= tmid and (
-                        src.stop is None or tmid <= src.stop)):
-                    continue
-                if src.kind == "mass_loading":
-                    load += src.strength(ta, tb) * loading_weights[src.name]
-                elif src.kind == "inflow_concentration":  # (−q·n)⁺ c_in on the patch (T3b)
-                    load += src.strength(ta, tb) * inflow_weights[src.name]
-            if s.spec.parent is not None:  # first-order decay of the parent feeds it (T12)
-                load = load + s.spec.yield_from_parent * decay_loss[s.spec.parent]
-            old = conc[s.name]
-            jump_input = 0.0
-            switched_on = fixed[~was_fixed[s.name][fixed]]
-            if switched_on.size:
-                # a source switching on holds its nodes at the source value from t0, so the
-                # scheme does not see a ramp; the mass placed there is counted as input
-                jump = np.zeros(n)
-                jump[switched_on] = start_vals[switched_on] - old[switched_on]
-                jump_input = float(s.w_dissolved @ jump) + \
-                    s.sorbed_mass(old + jump) - s.sorbed_mass(old)
-                old = old + jump
-            prev = None if older is None else older[s.name]
-            hist_part = co.a1 * old + (0.0 if prev is None else co.a2 * prev)
-            rhs = -(sysm.M @ hist_part) / dt + sysm.K_old @ old + load
-            new = old.copy()
-            new[fixed] = gvals
-            if s.coef["user"] and user is not None and user_law is not None:
-                s.user_rate = _user_rate(user_law, user.species, s.name, new_conc)
-                s.user_rate_start = _user_rate(user_law, user.species, s.name, conc)
+        # species of a user law that couple both ways are swept again until their fields
+        # agree (Gauss–Seidel over the species, T11b): the coupled step is then solved
+        # as one system, conservative and of the scheme's order
+        coupled = [s.name for s in species if s.coef["user"]]
+        order = list(species)
+        for _sweep in range(_MAX_SWEEPS):
+            before = {k: new_conc[k] for k in coupled}
+            for s in order:
+                active = tuple(src.name for src in case.sources if src.species == s.name
+                               and src.kind == "fixed_concentration"
+                               and src.start <= tmid and (src.stop is None or tmid <= src.stop))
+                sysm = system(s, dt, co, active)
+                fixed, free = sysm.fixed, sysm.free
+                start_vals, end_vals = np.zeros(n), np.zeros(n)
+                for src in case.sources:
+                    if src.name in active:
+                        nodes = source_nodes[src.name]
+                        start_vals[nodes] = np.maximum(start_vals[nodes], src.strength(t0, t0))
+                        end_vals[nodes] = np.maximum(end_vals[nodes], src.strength(t1, t1))
+                gvals = end_vals[fixed]
+                load = injection[s.name].copy()
+                for src in case.sources:
+                    if src.species != s.name or not (src.start <= tmid and (
+                            src.stop is None or tmid <= src.stop)):
+                        continue
+                    if src.kind == "mass_loading":
+                        load += src.strength(ta, tb) * loading_weights[src.name]
+                    elif src.kind == "inflow_concentration":  # (−q·n)⁺ c_in on the patch (T3b)
+                        load += src.strength(ta, tb) * inflow_weights[src.name]
+                if s.spec.parent is not None:  # first-order decay of the parent feeds it (T12)
+                    load = load + s.spec.yield_from_parent * decay_loss[s.spec.parent]
+                old = conc[s.name]
+                jump_input = 0.0
+                switched_on = fixed[~was_fixed[s.name][fixed]]
+                if switched_on.size:
+                    # a source switching on holds its nodes at the source value from t0, so the
+                    # scheme does not see a ramp; the mass placed there is counted as input
+                    jump = np.zeros(n)
+                    jump[switched_on] = start_vals[switched_on] - old[switched_on]
+                    jump_input = float(s.w_dissolved @ jump) + \
+                        s.sorbed_mass(old + jump) - s.sorbed_mass(old)
+                    old = old + jump
+                prev = None if older is None else older[s.name]
+                hist_part = co.a1 * old + (0.0 if prev is None else co.a2 * prev)
+                rhs = -(sysm.M @ hist_part) / dt + sysm.K_old @ old + load
+                new = old.copy()
+                new[fixed] = gvals
+                if s.coef["user"] and user is not None and user_law is not None:
+                    s.user_rate = _user_rate(user_law, user.species, s.name, new_conc)
+                    s.user_rate_start = _user_rate(user_law, user.species, s.name, conc)
 
-            def solve(sy: _System, rhs_: FloatArray, guess: FloatArray, s: _Species = s,
-                      old: FloatArray = old, prev: FloatArray | None = prev,
-                      ) -> tuple[FloatArray, FloatArray, float, int]:
+                def solve(sy: _System, rhs_: FloatArray, guess: FloatArray, s: _Species = s,
+                          old: FloatArray = old, prev: FloatArray | None = prev,
+                          ) -> tuple[FloatArray, FloatArray, float, int]:
+                    if s.nonlinear:
+                        return _nonlinear_step(s, sy, rhs_, old, prev, guess, dt, co,
+                                               tol=case.solver.tolerance,
+                                               max_iter=case.solver.newton_max_iterations)
+                    out = guess.copy()
+                    out[sy.free] = sy.solver.solve(rhs_[sy.free] - sy.S_fD @ guess[sy.fixed],
+                                                   x0=old[sy.free])
+                    # budget from the consistent residual of the full (unreduced) system (T9)
+                    return out, sy.S @ out - rhs_, 0.0, 1
+
+                new, r, other_loss, its = solve(sysm, rhs, new)
+                for _ in range(case.solver.shock_capturing_passes
+                               if case.solver.shock_capturing else 0):
+                    # T15: diffusion from the last iterate, held fixed while the step is solved
+                    cf = s.coef
+                    nu = shock_diffusivity(
+                        site.cells, grads, new, old, dt=dt, m=cf["m"], q=q, k=cf["k"], h=s.h,
+                        along_dispersion=cf["m"] * cf["kappa"], theta_t=co.theta,
+                        time_weights=(co.a0, co.a1, co.a2), c_older=prev)
+                    Kx = isotropic_stiffness(site.cells, grads, vol, nu, n)
+                    S_x = (sysm.S + co.theta * Kx).tocsr()
+                    S_x_ff = S_x[free][:, free].tocsr()
+                    # small systems: a new factor; large ones: the step's preconditioner reused
+                    solver_x: LinearSolver | _NearbySolver = LinearSolver(
+                        S_x_ff, method="direct", tol=case.solver.tolerance) \
+                        if sysm.solver.method == "direct" else _NearbySolver(
+                            S_x_ff, sysm.solver.preconditioner(), case.solver.tolerance,
+                            sysm.solver.method)
+                    sys_x = replace(sysm, S=S_x, S_fD=S_x[free][:, fixed].tocsr(),
+                                    solver=solver_x)
+                    new, r, other_loss, its_x = solve(sys_x, rhs + (co.theta - 1.0) * (Kx @ old),
+                                                      new)
+                    its = max(its, its_x)
                 if s.nonlinear:
-                    return _nonlinear_step(s, sy, rhs_, old, prev, guess, dt, co,
-                                           tol=case.solver.tolerance,
-                                           max_iter=case.solver.newton_max_iterations)
-                out = guess.copy()
-                out[sy.free] = sy.solver.solve(rhs_[sy.free] - sy.S_fD @ guess[sy.fixed],
-                                               x0=old[sy.free])
-                # budget from the consistent residual of the full (unreduced) system (T9)
-                return out, sy.S @ out - rhs_, 0.0, 1
-
-            new, r, other_loss, its = solve(sysm, rhs, new)
-            for _ in range(case.solver.shock_capturing_passes
-                           if case.solver.shock_capturing else 0):
-                # T15: diffusion from the last iterate, held fixed while the step is solved
-                cf = s.coef
-                nu = shock_diffusivity(site.cells, grads, new, old, dt=dt, m=cf["m"], q=q,
-                                       k=cf["k"], h=s.h, along_dispersion=cf["m"] * cf["kappa"],
-                                       theta_t=co.theta, time_weights=(co.a0, co.a1, co.a2),
-                                       c_older=prev)
-                Kx = isotropic_stiffness(site.cells, grads, vol, nu, n)
-                S_x = (sysm.S + co.theta * Kx).tocsr()
-                S_x_ff = S_x[free][:, free].tocsr()
-                # small systems: a new factor; large ones: the step's preconditioner reused
-                solver_x: LinearSolver | _NearbySolver = LinearSolver(
-                    S_x_ff, method="direct", tol=case.solver.tolerance) \
-                    if sysm.solver.method == "direct" else _NearbySolver(
-                        S_x_ff, sysm.solver.preconditioner(), case.solver.tolerance,
-                        sysm.solver.method)
-                sys_x = replace(sysm, S=S_x, S_fD=S_x[free][:, fixed].tocsr(),
-                                solver=solver_x)
-                new, r, other_loss, its_x = solve(sys_x, rhs + (co.theta - 1.0) * (Kx @ old),
-                                                  new)
-                its = max(its, its_x)
-            if s.nonlinear:
-                newton_max = max(newton_max, its)
-                kind = "newton"
-            else:
-                kind = sysm.solver.method if kind == "none" else kind
-            if not np.all(np.isfinite(new)):
-                msg = f"{s.name}: the step from t = {t0:.6g} s gave non-finite values"
-                raise SolverError(msg)
-            c_mid = co.theta * new + (1.0 - co.theta) * old
-            if s.name in decay_matrix:
-                decay_loss[s.name] = decay_matrix[s.name] @ c_mid + (
-                    _sorbed_decay_rate(s, new, old, co.theta) if s.coef["sorbers"] else 0.0)
-            # this step's budget items; a multistep scheme spreads them as in T13
-            now = {"input": dt * (float(r[fixed].sum()) + float(load.sum())),
-                   "decayed": dt * float(s.w_decay @ c_mid) + other_loss,
-                   "outflow": {f: dt * float(w @ c_mid) for f, w in s.outflow_weights.items()}}
-            last = carried.get(s.name)
-            if co.a2 != 0.0 and last is not None:
-                eff = {"input": (now["input"] + co.a2 * last["input"]) / co.a0,
-                       "decayed": (now["decayed"] + co.a2 * last["decayed"]) / co.a0,
-                       "outflow": {f: (x + co.a2 * last["outflow"][f]) / co.a0
-                                   for f, x in now["outflow"].items()}}
-            else:
-                eff = now
-            items[s.name] = {**eff, "jump": jump_input, "fixed": fixed, "start": old}
-            new_conc[s.name] = new
+                    newton_max = max(newton_max, its)
+                    kind = "newton"
+                else:
+                    kind = sysm.solver.method if kind == "none" else kind
+                if not np.all(np.isfinite(new)):
+                    msg = f"{s.name}: the step from t = {t0:.6g} s gave non-finite values"
+                    raise SolverError(msg)
+                c_mid = co.theta * new + (1.0 - co.theta) * old
+                if s.name in decay_matrix:
+                    decay_loss[s.name] = decay_matrix[s.name] @ c_mid + (
+                        _sorbed_decay_rate(s, new, old, co.theta) if s.coef["sorbers"] else 0.0)
+                # this step's budget items; a multistep scheme spreads them as in T13
+                now = {"input": dt * (float(r[fixed].sum()) + float(load.sum())),
+                       "decayed": dt * float(s.w_decay @ c_mid) + other_loss,
+                       "outflow": {f: dt * float(w @ c_mid) for f, w in s.outflow_weights.items()}}
+                last = carried.get(s.name)
+                if co.a2 != 0.0 and last is not None:
+                    eff = {"input": (now["input"] + co.a2 * last["input"]) / co.a0,
+                           "decayed": (now["decayed"] + co.a2 * last["decayed"]) / co.a0,
+                           "outflow": {f: (x + co.a2 * last["outflow"][f]) / co.a0
+                                       for f, x in now["outflow"].items()}}
+                else:
+                    eff = now
+                items[s.name] = {**eff, "jump": jump_input, "fixed": fixed, "start": old}
+                new_conc[s.name] = new
+            if len(coupled) < 2:
+                break
+            change = max(float(np.max(np.abs(new_conc[k] - before[k]))) for k in coupled)
+            scale = max(float(np.max(np.abs(new_conc[k]))) for k in coupled) or 1.0
+            if change <= 10.0 * case.solver.tolerance * scale:
+                break
+            order = species[next(i for i, s in enumerate(species) if s.coef["user"]):]
+        else:
+            msg = (f"the species of user_reactions did not agree after {_MAX_SWEEPS} sweeps "
+                   f"in the step from t = {t0:.6g} s")
+            raise SolverError(msg)
         return new_conc, items, newton_max, kind
 
     # ---- the time loop: fixed steps (a queue, halves on failure) or adaptive steps
