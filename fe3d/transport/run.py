@@ -45,15 +45,16 @@ from fe3d.transport.shock import isotropic_stiffness, shock_diffusivity
 from fe3d.transport.stabilization import element_length_along_flow, supg_tau
 from fe3d.transport.timeschemes import (
     ORDER,
+    StepCoefficients,
     StepControl,
     fit_to_next_time,
     local_error,
     next_step,
+    step_coefficients,
     weighted_error,
 )
 
-__all__ = ["Snapshot", "StepCoefficients", "TransportDiagnostics", "run_transport",
-           "step_coefficients", "time_steps"]
+__all__ = ["Snapshot", "TransportDiagnostics", "run_transport", "time_steps"]
 
 logger = logging.getLogger(__name__)
 
@@ -62,33 +63,6 @@ _MAX_CACHED = 3
 
 _MAX_SWEEPS = 50
 """Sweeps over the species of a user law that couple both ways before a step is cut."""
-
-
-@dataclass(frozen=True)
-class StepCoefficients:
-    """One step of a linear multistep scheme for M dc/dt + K c = F (theory.md T13):
-
-    [a0 M c^{n+1} + a1 M c^n + a2 M c^{n−1}]/Δt + θ K c^{n+1} + (1 − θ) K c^n = F.
-
-    Backward Euler (1, −1, 0, 1), Crank–Nicolson (1, −1, 0, ½), BDF2 with ω = Δt/Δt_prev:
-    ((1 + 2ω)/(1 + ω), −(1 + ω), ω²/(1 + ω), 1). a0 + a1 + a2 = 0 in every case.
-    """
-
-    a0: float
-    a1: float
-    a2: float
-    theta: float
-
-
-def step_coefficients(scheme: str, dt: float, dt_prev: float | None) -> StepCoefficients:
-    """Coefficients of one step; BDF2 without a previous step (start or restart) is backward
-    Euler."""
-    if scheme == "crank_nicolson":
-        return StepCoefficients(1.0, -1.0, 0.0, 0.5)
-    if scheme == "bdf2" and dt_prev is not None:
-        w = dt / dt_prev
-        return StepCoefficients((1.0 + 2.0 * w) / (1.0 + w), -(1.0 + w), w * w / (1.0 + w), 1.0)
-    return StepCoefficients(1.0, -1.0, 0.0, 1.0)
 
 
 @dataclass(frozen=True)
@@ -721,6 +695,7 @@ def run_transport(
         stats["newton"] = max(stats["newton"], its if kind == "newton" else 0)
         # the level before the new one, as the step used it (a source switched on included)
         older = {s.name: items[s.name]["start"] for s in species}
+        lows: list[str] = []  # most negative concentration of each species, for the log
         for s in species:
             it = items[s.name]
             a_ = acc[s.name]
@@ -736,13 +711,10 @@ def run_transport(
             j = int(np.argmin(new))
             if new[j] < cmin[s.name][0]:
                 cmin[s.name] = (float(new[j]), tuple(float(x) for x in site.points[:, j]))
+            where = ", ".join(f"{x:.1f}" for x in site.points[:, j])
+            lows.append(f"{s.name} min {new[j]:.3g} kg/m³ at ({where}) m")
             courant[s.name] = max(courant[s.name], dt * s.coef["courant_rate"])
         if logger.isEnabledFor(logging.INFO):
-            lows = []
-            for k_, c_ in conc.items():
-                j = int(np.argmin(c_))
-                where = ", ".join(f"{x:.1f}" for x in site.points[:, j])
-                lows.append(f"{k_} min {c_[j]:.3g} kg/m³ at ({where}) m")
             logger.info("step %d: t = %.6g s, Δt = %.4g s, %s%s", n_steps + 1, t1, dt,
                         "; ".join(lows), f"; Newton {its} iterations" if kind == "newton" else "")
         n_steps += 1

@@ -26,6 +26,7 @@ from fe3d.errors import SolverError
 __all__ = [
     "ORDER",
     "Scheme",
+    "StepCoefficients",
     "StepControl",
     "StepDecision",
     "StepEquations",
@@ -36,6 +37,7 @@ __all__ = [
     "linear_storage",
     "local_error",
     "next_step",
+    "step_coefficients",
     "weighted_error",
 ]
 
@@ -60,6 +62,34 @@ def linear_storage(m: Operator) -> ValueAndJacobian:
     if isinstance(m, np.ndarray) and m.ndim == 1:
         return lambda c: (m * c, m)
     return lambda c: (m @ c, m)
+
+
+@dataclass(frozen=True)
+class StepCoefficients:
+    """One step of a linear multistep scheme for M dc/dt + K c = F (theory.md T13):
+
+    [a0 M c^{n+1} + a1 M c^n + a2 M c^{n−1}]/Δt + θ K c^{n+1} + (1 − θ) K c^n = F.
+
+    Backward Euler (1, −1, 0, 1), Crank–Nicolson (1, −1, 0, ½), BDF2 with ω = Δt/Δt_prev:
+    ((1 + 2ω)/(1 + ω), −(1 + ω), ω²/(1 + ω), 1). a0 + a1 + a2 = 0 in every case.
+    """
+
+    a0: float
+    a1: float
+    a2: float
+    theta: float
+
+
+def step_coefficients(scheme: str, dt: float, dt_prev: float | None) -> StepCoefficients:
+    """Coefficients of one step; BDF2 without a previous step (start or restart) is backward
+    Euler."""
+    if scheme == "crank_nicolson":
+        return StepCoefficients(1.0, -1.0, 0.0, 0.5)
+    if scheme == "bdf2" and dt_prev is not None:
+        w = dt / dt_prev
+        return StepCoefficients((1.0 + 2.0 * w) / (1.0 + w), -(1.0 + w), w * w / (1.0 + w), 1.0)
+    return StepCoefficients(1.0, -1.0, 0.0, 1.0)
+
 
 
 def backward_euler_step(
@@ -105,8 +135,8 @@ def bdf2_step(
     run (no c^{n−1}) is taken with backward Euler; its local error is O(Δt²), so the global
     order stays 2.
     """
-    w = dt / dt_prev
-    a0, a1, a2 = (1.0 + 2.0 * w) / (1.0 + w), -(1.0 + w), w * w / (1.0 + w)
+    co = step_coefficients("bdf2", dt, dt_prev)
+    a0, a1, a2 = co.a0, co.a1, co.a2
     s_old = a1 * storage(c_n)[0] + a2 * storage(c_nm1)[0]
 
     def residual(c: FloatArray) -> FloatArray:
