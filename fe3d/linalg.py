@@ -15,7 +15,6 @@ import logging
 from typing import Any
 
 import numpy as np
-import numpy.typing as npt
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
@@ -23,22 +22,12 @@ from fe3d._typing import FloatArray
 from fe3d.errors import SolverError
 
 __all__ = ["DIRECT_LIMIT", "FLOW_TOLERANCE", "PROBE_ITERATIONS", "TRANSPORT_METHODS",
-           "LinearSolver", "scatter_element_matrices", "solve_spd", "solve_with_preconditioner"]
+           "LinearSolver", "solve_spd", "solve_with_preconditioner"]
 
 logger = logging.getLogger(__name__)
 
 DIRECT_LIMIT = 5_000
 """Largest number of unknowns for which a direct factorisation is used by default."""
-
-
-def scatter_element_matrices(cells: npt.NDArray[np.int64], local: FloatArray,
-                             n: int) -> sp.csr_matrix:
-    """Sum element matrices ``local[e, i, j]`` (row = test node i, column = trial node j) of
-    cells ``(k, m)`` into an ``(n, n)`` CSR matrix."""
-    k = cells.shape[0]
-    rows = np.repeat(cells.T[:, :, None], k, axis=2).ravel()
-    cols = np.repeat(cells.T[:, None, :], k, axis=1).ravel()
-    return sp.coo_matrix((local.ravel(), (rows, cols)), shape=(n, n)).tocsr()
 
 
 def _check(A: Any, x: FloatArray, b: FloatArray, tol: float, what: str) -> None:

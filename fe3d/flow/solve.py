@@ -20,7 +20,6 @@ from fe3d.flow.assembly import conductance_matrix
 from fe3d.flow.boundaries import in_polygon, lumped_face_weights
 from fe3d.flow.conductivity import conductivity_tensors
 from fe3d.linalg import FLOW_TOLERANCE, solve_spd
-from fe3d.mesh.geometry import p1_gradients
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
 
@@ -153,8 +152,8 @@ def solve_flow(
     tensors, principal = conductivity_tensors(p, site.cells, site.cell_layer, mats,
                                               unit_keys=[f"materials.{m}" for m in mat_names],
                                               base_dir=base_dir)
-    geometry = p1_gradients(p, site.cells)
-    A = conductance_matrix(p, site.cells, tensors, geometry=geometry)
+    geometry = site.geometry
+    A = conductance_matrix(p, site.cells, tensors, geometry=geometry, pattern=site.pattern)
 
     # Dirichlet: fixed heads; a node on two fixed-head faces takes the first listed
     head = np.zeros(n)

@@ -3,11 +3,13 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Any
 
 import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.p1 import CsrPattern, gradients
 
 __all__ = ["SiteMesh"]
 
@@ -48,6 +50,18 @@ class SiteMesh:
     def n_cells(self) -> int:
         """Number of tetrahedra."""
         return int(self.cells.shape[1])
+
+    @cached_property
+    def geometry(self) -> tuple[FloatArray, FloatArray]:
+        """P1 basis gradients ``(n_cells, 4, 3)`` [1/m] and signed volumes ``(n_cells,)``
+        [m³], computed once and shared by the flow and transport stages."""
+        return gradients(self.points, self.cells)
+
+    @cached_property
+    def pattern(self) -> CsrPattern:
+        """CSR pattern of the P1 operators on this mesh (with each cell's entry positions),
+        built once and shared by every operator of the flow and transport stages."""
+        return CsrPattern.of_cells(self.cells, self.n_nodes)
 
     def cell_volumes(self) -> FloatArray:
         """Signed volume of every tetrahedron [m³], shape ``(n_cells,)``."""

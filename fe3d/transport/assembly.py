@@ -9,30 +9,30 @@ an exact element matrix (row = test node i, column = trial node j, V = cell volu
 - SUPG T6: τ (a·∇φ_i) [m V/4 (storage), (q·∇φ_j) V (advection), k V/4 (decay)]
 
 They equal scikit-fem's quadrature assembly of the forms in fe3d/transport/forms.py to
-round-off (tested), at a fraction of the time and memory.
+round-off (tested), at a fraction of the time and memory: the compiled kernel of
+:mod:`fe3d.p1` adds them straight into the mesh's CSR pattern in one pass over the cells.
 """
 
 from __future__ import annotations
 
-import numpy as np
 import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
-from fe3d.linalg import scatter_element_matrices
+from fe3d.p1 import MASS_FRACTION, CsrPattern
 
 __all__ = ["P1_MASS", "transport_operators"]
 
-P1_MASS = (np.ones((4, 4)) + np.eye(4)) / 20.0  # ∫φ_iφ_j dV / V on a tetrahedron
+P1_MASS = MASS_FRACTION  # ∫φ_iφ_j dV / V on a tetrahedron
 
 
 def transport_operators(
     cells: IndexArray, grads: FloatArray, vol: FloatArray, *, m: FloatArray, k: FloatArray,
     q: FloatArray, a: FloatArray, tau: FloatArray, theta_d: FloatArray, n: int,
-    chunk: int = 500_000, m_supg: FloatArray | None = None,
-    parts: str = "all",
+    m_supg: FloatArray | None = None, parts: str = "all",
+    pattern: CsrPattern | None = None,
 ) -> tuple[sp.csr_matrix, sp.csr_matrix]:
     """Mass operator (storage + SUPG storage) and spatial operator (advection, dispersion,
-    decay and their SUPG parts), both ``(n, n)``.
+    decay and their SUPG parts), both ``(n, n)``, on the mesh's CSR pattern.
 
     Parameters
     ----------
@@ -53,33 +53,16 @@ def transport_operators(
         ``"all"``, ``"galerkin"`` (T1, T2, T4, T5: independent of the step length) or
         ``"supg"`` (T6: depends on τ, hence on the step length), so that a new step length
         rebuilds only the SUPG part; ``galerkin + supg == all``.
+    pattern
+        The mesh's :class:`fe3d.p1.CsrPattern` (built from ``cells`` when not given). Both
+        operators are stored on it, so operators of one mesh add by their value arrays.
     """
     if parts not in ("all", "galerkin", "supg"):
         msg = f"parts must be 'all', 'galerkin' or 'supg', not {parts!r}"
         raise ValueError(msg)
-    gal, stab = parts in ("all", "galerkin"), parts in ("all", "supg")
-    ms = m if m_supg is None else m_supg
-    mass = sp.csr_matrix((n, n))
-    spatial = sp.csr_matrix((n, n))
-    for s in range(0, cells.shape[1], chunk):
-        sl = slice(s, s + chunk)
-        g, v = grads[sl], np.abs(vol[sl])
-        a_g = np.einsum("ke,eik->ei", a[:, sl], g)  # a·∇φ_i
-        q_g = np.einsum("ke,eik->ei", q[:, sl], g)  # q·∇φ_i
-        w = tau[sl] * v  # τ V
-        mloc = np.zeros((v.size, 4, 4))
-        kloc = np.zeros((v.size, 4, 4))
-        if gal:
-            td = np.moveaxis(theta_d[:, :, sl], 2, 0)  # (e, 3, 3)
-            disp = np.matmul(g, np.matmul(td, g.transpose(0, 2, 1)))  # ∇φ_i·θD∇φ_j
-            mloc += (m[sl] * v)[:, None, None] * P1_MASS
-            kloc += (-(q_g * v[:, None] / 4.0))[:, :, None] \
-                + disp * v[:, None, None] + (k[sl] * v)[:, None, None] * P1_MASS
-        if stab:
-            mloc += (w * ms[sl] / 4.0)[:, None, None] * a_g[:, :, None]
-            kloc += w[:, None, None] * a_g[:, :, None] * q_g[:, None, :] \
-                + (w * k[sl] / 4.0)[:, None, None] * a_g[:, :, None]
-        c = cells[:, sl]
-        mass = mass + scatter_element_matrices(c, mloc, n)
-        spatial = spatial + scatter_element_matrices(c, kloc, n)
-    return mass.tocsr(), spatial.tocsr()
+    if pattern is None:
+        pattern = CsrPattern.of_cells(cells, n)
+    return pattern.transport(grads, vol, m=m, m_supg=m if m_supg is None else m_supg, k=k,
+                             q=q, a=a, tau=tau, theta_d=theta_d,
+                             galerkin=parts in ("all", "galerkin"),
+                             supg=parts in ("all", "supg"))

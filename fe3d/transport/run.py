@@ -31,8 +31,7 @@ from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import Case, Source, Species
 from fe3d.errors import MeshError, SolverError
 from fe3d.flow.solve import FlowField, unit_materials
-from fe3d.linalg import LinearSolver, scatter_element_matrices, solve_with_preconditioner
-from fe3d.mesh.geometry import p1_gradients
+from fe3d.linalg import LinearSolver, solve_with_preconditioner
 from fe3d.mesh.locate import locate_points, sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.reactions import kinetics, sorption
@@ -246,7 +245,8 @@ def run_transport(
     lay = site.cell_layer
     theta = np.array([m.porosity for m in mats])[lay]
     rho_b = np.array([m.bulk_density for m in mats])[lay]
-    grads, vol = p1_gradients(site.points, site.cells)
+    grads, vol = site.geometry
+    pattern = site.pattern
     q = flow.darcy_flux
     v = q / theta
     D = dispersion_tensor(
@@ -323,8 +323,8 @@ def run_transport(
             outflow_weights=ow, outflow_matrix=sp.csr_matrix(om), h=h))
 
     parents = {spec.parent for spec in case.species.values() if spec.parent is not None}
-    decay_matrix = {s.name: scatter_element_matrices(
-        site.cells, (s.coef["k"] * np.abs(vol))[:, None, None] * P1_MASS, n)
+    decay_matrix = {s.name: pattern.element_sum(
+        (s.coef["k"] * np.abs(vol))[:, None, None] * P1_MASS)
         for s in species if s.name in parents}
     tc = case.time
     adaptive = tc.adaptive
@@ -348,14 +348,15 @@ def run_transport(
                   "theta_d": thetaD, "n": n, "m_supg": c["m"] if nonlin else None}
             if s.galerkin is None:
                 M0, K0 = transport_operators(site.cells, grads, vol, tau=np.zeros_like(c["m"]),
-                                             parts="galerkin", **kw)
-                s.galerkin = (M0, (K0 + s.outflow_matrix).tocsr())
+                                             parts="galerkin", pattern=pattern, **kw)
+                K0.data += pattern.values_of(s.outflow_matrix)
+                s.galerkin = (M0, K0)
             M, K = s.galerkin
-            if supg_on:
+            if supg_on:  # same pattern: the parts add by their value arrays
                 tau = supg_tau(c["a"], c["kappa"], c["sigma"], s.h, dt_tau)
                 Ms, Ks = transport_operators(site.cells, grads, vol, tau=tau, parts="supg",
-                                             **kw)
-                M, K = (M + Ms).tocsr(), (K + Ks).tocsr()
+                                             pattern=pattern, **kw)
+                M, K = pattern.matrix(M.data + Ms.data), pattern.matrix(K.data + Ks.data)
             while len(s.operators) >= 2:  # keep at most two step lengths' operators
                 s.operators.pop(next(iter(s.operators)))
             s.operators[dt_tau] = (M, K)
@@ -369,7 +370,7 @@ def run_transport(
                dt_tau, active)
         if key not in s.systems:
             M, K = operators(s, dt_tau)
-            S = (M * (co.a0 / dt) + co.theta * K).tocsr()
+            S = pattern.matrix((co.a0 / dt) * M.data + co.theta * K.data)
             is_fixed = np.zeros(n, dtype=bool)
             for name in active:
                 is_fixed[source_nodes[name]] = True
@@ -380,7 +381,7 @@ def run_transport(
                                   tol=case.solver.tolerance)
             while len(s.systems) >= _MAX_CACHED:
                 s.systems.pop(next(iter(s.systems)))
-            s.systems[key] = _System(S=S, K_old=((co.theta - 1.0) * K).tocsr(), M=M,
+            s.systems[key] = _System(S=S, K_old=pattern.matrix((co.theta - 1.0) * K.data), M=M,
                                      solver=solver, free=free, fixed=fixed,
                                      S_fD=S[free][:, fixed].tocsr())
         return s.systems[key]
@@ -572,8 +573,8 @@ def run_transport(
                         site.cells, grads, new, old, dt=dt, m=cf["m"], q=q, k=cf["k"], h=s.h,
                         along_dispersion=cf["m"] * cf["kappa"], theta_t=co.theta,
                         time_weights=(co.a0, co.a1, co.a2), c_older=prev)
-                    Kx = isotropic_stiffness(site.cells, grads, vol, nu, n)
-                    S_x = (sysm.S + co.theta * Kx).tocsr()
+                    Kx = isotropic_stiffness(site.cells, grads, vol, nu, n, pattern=pattern)
+                    S_x = pattern.matrix(sysm.S.data + co.theta * Kx.data)
                     S_x_ff = S_x[free][:, free].tocsr()
                     # small systems: a new factor; large ones: the step's preconditioner reused
                     solver_x: LinearSolver | _NearbySolver = LinearSolver(

@@ -93,7 +93,7 @@ import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import SolverError
-from fe3d.linalg import scatter_element_matrices
+from fe3d.p1 import CsrPattern
 
 __all__ = [
     "SHOCK_STRENGTH",
@@ -185,23 +185,24 @@ def shock_diffusivity(
 
 
 def isotropic_stiffness(cells: IndexArray, grads: FloatArray, vol: FloatArray,
-                        coeff: FloatArray, n: int, *, chunk: int = 500_000) -> sp.csr_matrix:
+                        coeff: FloatArray, n: int, *,
+                        pattern: CsrPattern | None = None) -> sp.csr_matrix:
     r"""Σ_e ν_e |V_e| ∇φ_i·∇φ_j, ``(n, n)`` CSR (theory.md T15; closed form of the P1 form
     :math:`\int \nu \nabla c\cdot\nabla w`).
 
     ``cells`` ``(4, e)``, ``grads`` ``(e, 4, 3)`` [1/m], ``vol`` ``(e,)`` [m³],
-    ``coeff`` ``(e,)`` [m²/s]. Only cells with ν ≠ 0 are scattered (shock capturing acts on
-    the few cells of a front), ``chunk`` cells at a time to bound memory. Symmetric, positive
-    semi-definite for ν ≥ 0, zero row and column sums.
+    ``coeff`` ``(e,)`` [m²/s]. Only cells with ν ≠ 0 are visited (shock capturing acts on
+    the few cells of a front); the result is stored on the mesh's CSR ``pattern`` (built
+    from ``cells`` when not given). Symmetric, positive semi-definite for ν ≥ 0, zero row
+    and column sums.
     """
+    if pattern is None:
+        pattern = CsrPattern.of_cells(cells, n)
     active = np.flatnonzero(coeff)
-    out = sp.csr_matrix((n, n))
-    for s in range(0, active.size, chunk):
-        sel = active[s:s + chunk]
-        g = grads[sel]
-        local = np.einsum("eik,ejk->eij", g, g) * (coeff[sel] * np.abs(vol[sel]))[:, None, None]
-        out = out + scatter_element_matrices(cells[:, sel], local, n)
-    return out.tocsr()
+    tensors = np.zeros((3, 3, active.size))
+    for d in range(3):
+        tensors[d, d] = coeff[active]
+    return pattern.stiffness(grads, vol, tensors, cell_ids=active)
 
 
 def picard_shock_step(

@@ -1,0 +1,303 @@
+"""Compiled kernels for linear (P1) tetrahedra: geometry, the sparsity pattern of a mesh and
+element matrices summed straight into that pattern (numba, one thread, no GPU).
+
+Why compiled: at 1 M nodes (5.9 M tetrahedra) numpy needs (cells × 4 × 4) temporaries for
+every term and a COO → CSR conversion that sorts 95 M entries; the loops below touch each
+cell once and add into the CSR values in place (docs/performance.md). The CSR pattern of a
+mesh is built once and shared by every operator on it, so matrices on the same mesh combine
+by adding their value arrays.
+
+Conventions: ``cells`` is ``(4, n_cells)``; ``grads[e, i]`` is ∇φ_i on cell e [1/m];
+element matrices put the test node i in the row and the trial node j in the column.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numba
+import numpy as np
+import scipy.sparse as sp
+
+from fe3d._typing import FloatArray, IndexArray
+
+__all__ = ["MASS_FRACTION", "CsrPattern", "gradients"]
+
+MASS_FRACTION = (np.ones((4, 4)) + np.eye(4)) / 20.0
+"""∫φ_iφ_j dV / V on a tetrahedron (exact for P1)."""
+
+_jit = numba.njit(cache=True, nogil=True)
+
+
+@_jit
+def _gradients_kernel(points: FloatArray, cells: IndexArray, grads: FloatArray,
+                      vol: FloatArray) -> None:
+    for e in range(cells.shape[1]):
+        i0, i1, i2, i3 = cells[0, e], cells[1, e], cells[2, e], cells[3, e]
+        ax, ay, az = points[0, i1] - points[0, i0], points[1, i1] - points[1, i0], \
+            points[2, i1] - points[2, i0]
+        bx, by, bz = points[0, i2] - points[0, i0], points[1, i2] - points[1, i0], \
+            points[2, i2] - points[2, i0]
+        cx, cy, cz = points[0, i3] - points[0, i0], points[1, i3] - points[1, i0], \
+            points[2, i3] - points[2, i0]
+        # rows of the inverse Jacobian: (b×c, c×a, a×b) / det, det = a·(b×c)
+        r1 = (by * cz - bz * cy, bz * cx - bx * cz, bx * cy - by * cx)
+        r2 = (cy * az - cz * ay, cz * ax - cx * az, cx * ay - cy * ax)
+        r3 = (ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx)
+        det = ax * r1[0] + ay * r1[1] + az * r1[2]
+        for k in range(3):
+            g1, g2, g3 = r1[k] / det, r2[k] / det, r3[k] / det
+            grads[e, 1, k] = g1
+            grads[e, 2, k] = g2
+            grads[e, 3, k] = g3
+            grads[e, 0, k] = -(g1 + g2 + g3)
+        vol[e] = det / 6.0
+
+
+def gradients(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, FloatArray]:
+    """Basis gradients ``(n_cells, 4, 3)`` [1/m] and signed volumes ``(n_cells,)`` [m³]."""
+    grads = np.empty((cells.shape[1], 4, 3))
+    vol = np.empty(cells.shape[1])
+    _gradients_kernel(np.ascontiguousarray(points, dtype=float),
+                      np.ascontiguousarray(cells, dtype=np.int64), grads, vol)
+    return grads, vol
+
+
+@_jit
+def _pattern_kernel(cells: IndexArray, n: int) -> tuple[IndexArray, IndexArray]:
+    ne = cells.shape[1]
+    start = np.zeros(n + 1, np.int64)  # node → incident cells, as CSR
+    for e in range(ne):
+        for a in range(4):
+            start[cells[a, e] + 1] += 1
+    for i in range(n):
+        start[i + 1] += start[i]
+    fill = start[:-1].copy()
+    incident = np.empty(start[n], np.int64)
+    for e in range(ne):
+        for a in range(4):
+            r = cells[a, e]
+            incident[fill[r]] = e
+            fill[r] += 1
+    mark = np.full(n, -1, np.int64)
+    indptr = np.zeros(n + 1, np.int64)
+    for r in range(n):  # first pass: how many distinct neighbours (self included)
+        count = 0
+        for p in range(start[r], start[r + 1]):
+            e = incident[p]
+            for b in range(4):
+                c = cells[b, e]
+                if mark[c] != r:
+                    mark[c] = r
+                    count += 1
+        indptr[r + 1] = indptr[r] + count
+    indices = np.empty(indptr[n], np.int32)
+    mark[:] = -1
+    for r in range(n):  # second pass: fill and sort each row
+        pos = indptr[r]
+        for p in range(start[r], start[r + 1]):
+            e = incident[p]
+            for b in range(4):
+                c = cells[b, e]
+                if mark[c] != r:
+                    mark[c] = r
+                    indices[pos] = c
+                    pos += 1
+        indices[indptr[r]:indptr[r + 1]].sort()
+    return indptr, indices
+
+
+@numba.njit(inline="always")
+def _slot(indptr: IndexArray, indices: IndexArray, row: int, col: int) -> int:
+    """Position of (row, col) in the CSR value array (binary search in the sorted row)."""
+    lo, hi = indptr[row], indptr[row + 1]
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if indices[mid] < col:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
+
+
+@_jit
+def _slots_kernel(indptr: IndexArray, indices: IndexArray, cells: IndexArray,
+                  slots: IndexArray) -> None:
+    for e in range(cells.shape[1]):
+        for i in range(4):
+            r = cells[i, e]
+            for j in range(4):
+                slots[e, 4 * i + j] = _slot(indptr, indices, r, cells[j, e])
+
+
+@_jit
+def _absorb_kernel(indptr: IndexArray, indices: IndexArray, a_indptr: IndexArray,
+                   a_indices: IndexArray, a_data: FloatArray, data: FloatArray) -> int:
+    for r in range(a_indptr.size - 1):
+        for p in range(a_indptr[r], a_indptr[r + 1]):
+            c = a_indices[p]
+            s = _slot(indptr, indices, r, c)
+            if s >= indptr[r + 1] or indices[s] != c:
+                return r
+            data[s] += a_data[p]
+    return -1
+
+
+@_jit
+def _local_kernel(slots: IndexArray, cell_ids: IndexArray, local: FloatArray,
+                  data: FloatArray) -> None:
+    for p in range(cell_ids.size):
+        e = cell_ids[p]
+        for i in range(4):
+            for j in range(4):
+                data[slots[e, 4 * i + j]] += local[p, i, j]
+
+
+@_jit
+def _stiffness_kernel(slots: IndexArray, cell_ids: IndexArray, grads: FloatArray,
+                      vol: FloatArray, tensors: FloatArray, data: FloatArray) -> None:
+    tg = np.empty((4, 3))
+    for p in range(cell_ids.size):
+        e = cell_ids[p]
+        v = abs(vol[e])
+        for j in range(4):
+            for a in range(3):
+                tg[j, a] = (tensors[a, 0, p] * grads[e, j, 0] + tensors[a, 1, p]
+                            * grads[e, j, 1] + tensors[a, 2, p] * grads[e, j, 2])
+        for i in range(4):
+            for j in range(4):
+                data[slots[e, 4 * i + j]] += v * (
+                    grads[e, i, 0] * tg[j, 0] + grads[e, i, 1] * tg[j, 1]
+                    + grads[e, i, 2] * tg[j, 2])
+
+
+@_jit
+def _transport_kernel(slots: IndexArray, grads: FloatArray, vol: FloatArray, m: FloatArray,
+                      m_supg: FloatArray, k: FloatArray, q: FloatArray, a: FloatArray,
+                      tau: FloatArray, theta_d: FloatArray, galerkin: bool, supg: bool,
+                      mass: FloatArray, spatial: FloatArray) -> None:
+    tg = np.empty((4, 3))
+    ag = np.empty(4)
+    qg = np.empty(4)
+    for e in range(vol.size):
+        v = abs(vol[e])
+        for i in range(4):
+            ag[i] = a[0, e] * grads[e, i, 0] + a[1, e] * grads[e, i, 1] \
+                + a[2, e] * grads[e, i, 2]
+            qg[i] = q[0, e] * grads[e, i, 0] + q[1, e] * grads[e, i, 1] \
+                + q[2, e] * grads[e, i, 2]
+            for c in range(3):
+                tg[i, c] = (theta_d[c, 0, e] * grads[e, i, 0] + theta_d[c, 1, e]
+                            * grads[e, i, 1] + theta_d[c, 2, e] * grads[e, i, 2])
+        w = tau[e] * v
+        for i in range(4):
+            for j in range(4):
+                mv = 0.0
+                kv = 0.0
+                if galerkin:  # T1 storage, T2 advection, T4 dispersion, T5 decay
+                    frac = 0.1 if i == j else 0.05
+                    disp = grads[e, i, 0] * tg[j, 0] + grads[e, i, 1] * tg[j, 1] \
+                        + grads[e, i, 2] * tg[j, 2]
+                    mv += m[e] * v * frac
+                    kv += -qg[i] * v * 0.25 + v * disp + k[e] * v * frac
+                if supg:  # T6: τ (a·∇φ_i) × (storage, advection, decay)
+                    mv += w * m_supg[e] * 0.25 * ag[i]
+                    kv += w * ag[i] * qg[j] + w * k[e] * 0.25 * ag[i]
+                s = slots[e, 4 * i + j]
+                mass[s] += mv
+                spatial[s] += kv
+
+
+@dataclass(frozen=True)
+class CsrPattern:
+    """Sparsity pattern of the P1 operators on one mesh: row pointers and sorted column
+    indices of every node pair that shares a cell (the diagonal included), and for every
+    cell the positions of its 16 element-matrix entries in the value array (``slots``,
+    ``(n_cells, 16)``, entry (i, j) at 4i + j), so that assembly is one pass over the cells
+    without a search or a sort."""
+
+    indptr: IndexArray
+    indices: IndexArray
+    slots: IndexArray
+    n: int
+
+    @classmethod
+    def of_cells(cls, cells: IndexArray, n: int) -> CsrPattern:
+        """The pattern of tetrahedra ``cells`` ``(4, m)`` on ``n`` nodes."""
+        c = np.ascontiguousarray(cells, dtype=np.int64)
+        indptr, indices = _pattern_kernel(c, n)
+        if indptr[-1] >= 2**31:
+            msg = f"{int(indptr[-1])} matrix entries: more than 32-bit indices can hold"
+            raise ValueError(msg)
+        indptr = indptr.astype(np.int32)
+        slots = np.empty((c.shape[1], 16), np.int32)
+        _slots_kernel(indptr, indices, c, slots)
+        return cls(indptr=indptr, indices=indices, slots=slots, n=n)
+
+    @property
+    def nnz(self) -> int:
+        """Number of stored entries."""
+        return int(self.indices.size)
+
+    def matrix(self, data: FloatArray) -> sp.csr_matrix:
+        """A CSR matrix on this pattern with the given values (not copied)."""
+        A = sp.csr_matrix((data, self.indices, self.indptr), shape=(self.n, self.n),
+                          copy=False)
+        A.has_sorted_indices = True
+        return A
+
+    def holds(self, A: sp.csr_matrix) -> bool:
+        """True when ``A`` is stored on exactly this pattern (values then add directly)."""
+        return (A.shape == (self.n, self.n) and A.nnz == self.nnz
+                and (A.indices is self.indices or np.array_equal(A.indices, self.indices))
+                and (A.indptr is self.indptr or np.array_equal(A.indptr, self.indptr)))
+
+    def values_of(self, A: sp.spmatrix) -> FloatArray:
+        """The value array, on this pattern, of a matrix whose entries all lie in it (a
+        boundary or well term, a diagonal); :class:`ValueError` otherwise."""
+        A = sp.csr_matrix(A)
+        A.sum_duplicates()
+        data = np.zeros(self.nnz)
+        bad = _absorb_kernel(self.indptr, self.indices, A.indptr.astype(np.int64),
+                             A.indices.astype(np.int64), A.data.astype(float), data)
+        if bad >= 0:
+            msg = f"row {bad} of the matrix has an entry outside the mesh's pattern"
+            raise ValueError(msg)
+        return data
+
+    def _ids(self, cell_ids: IndexArray | None) -> IndexArray:
+        if cell_ids is None:
+            return np.arange(self.slots.shape[0], dtype=np.int64)
+        return np.ascontiguousarray(cell_ids, dtype=np.int64)
+
+    def element_sum(self, local: FloatArray,
+                    cell_ids: IndexArray | None = None) -> sp.csr_matrix:
+        """Σ_e of element matrices ``local[p, i, j]`` of the cells ``cell_ids`` (all cells
+        when None, in order)."""
+        data = np.zeros(self.nnz)
+        _local_kernel(self.slots, self._ids(cell_ids),
+                      np.ascontiguousarray(local, dtype=float), data)
+        return self.matrix(data)
+
+    def stiffness(self, grads: FloatArray, vol: FloatArray, tensors: FloatArray,
+                  cell_ids: IndexArray | None = None) -> sp.csr_matrix:
+        """∫ ∇φ_i · T ∇φ_j dV = |V| ∇φ_i·T∇φ_j summed over the cells ``cell_ids`` (all when
+        None); ``tensors`` ``(3, 3, len(cell_ids))``, ``grads``/``vol`` of the whole mesh."""
+        data = np.zeros(self.nnz)
+        _stiffness_kernel(self.slots, self._ids(cell_ids), grads, vol,
+                          np.asarray(tensors, dtype=float), data)
+        return self.matrix(data)
+
+    def transport(self, grads: FloatArray, vol: FloatArray, *, m: FloatArray,
+                  m_supg: FloatArray, k: FloatArray, q: FloatArray, a: FloatArray,
+                  tau: FloatArray, theta_d: FloatArray, galerkin: bool,
+                  supg: bool) -> tuple[sp.csr_matrix, sp.csr_matrix]:
+        """Mass and spatial transport operators over all cells (theory.md T1, T2, T4–T6);
+        :func:`fe3d.transport.assembly.transport_operators` documents the terms."""
+        mass, spatial = np.zeros(self.nnz), np.zeros(self.nnz)
+        f = np.asarray
+        _transport_kernel(self.slots, grads, vol, f(m, dtype=float), f(m_supg, dtype=float),
+                          f(k, dtype=float), f(q, dtype=float), f(a, dtype=float),
+                          f(tau, dtype=float), f(theta_d, dtype=float), galerkin, supg,
+                          mass, spatial)
+        return self.matrix(mass), self.matrix(spatial)

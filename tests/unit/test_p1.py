@@ -1,0 +1,83 @@
+"""Compiled P1 kernels (fe3d/p1.py) against scipy's own COO → CSR assembly.
+
+Reference: scipy.sparse (a general-purpose library) summing the same element matrices;
+tolerance 1e-14 relative (round-off of a different summation order)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from skfem import MeshTet
+
+from fe3d.p1 import CsrPattern, gradients
+
+
+def _scipy_sum(cells: np.ndarray, local: np.ndarray, n: int) -> sp.csr_matrix:
+    rows = np.repeat(cells.T[:, :, None], 4, axis=2).ravel()
+    cols = np.repeat(cells.T[:, None, :], 4, axis=1).ravel()
+    return sp.coo_matrix((local.ravel(), (rows, cols)), shape=(n, n)).tocsr()
+
+
+@pytest.fixture(scope="module")
+def mesh() -> MeshTet:
+    m = MeshTet.init_tensor(np.linspace(0, 3, 5), np.linspace(0, 2, 4), np.linspace(-1, 0, 3))
+    rng = np.random.default_rng(3)  # distort the nodes so no two cells are alike
+    return MeshTet(m.p + 0.05 * rng.standard_normal(m.p.shape), m.t)
+
+
+def test_pattern_is_every_node_pair_sharing_a_cell(mesh: MeshTet) -> None:
+    n = mesh.p.shape[1]
+    pat = CsrPattern.of_cells(mesh.t, n)
+    ref = _scipy_sum(mesh.t, np.ones((mesh.t.shape[1], 4, 4)), n)
+    assert np.array_equal(pat.indptr, ref.indptr)
+    assert np.array_equal(pat.indices, ref.indices)
+    # each cell's slots point at its own (row, column) pairs
+    rows = np.repeat(np.arange(n), np.diff(pat.indptr))
+    for i in range(4):
+        for j in range(4):
+            s = pat.slots[:, 4 * i + j]
+            assert np.array_equal(rows[s], mesh.t[i])
+            assert np.array_equal(pat.indices[s], mesh.t[j])
+
+
+def test_element_sum_and_stiffness_match_scipy(mesh: MeshTet) -> None:
+    n, e = mesh.p.shape[1], mesh.t.shape[1]
+    pat = CsrPattern.of_cells(mesh.t, n)
+    grads, vol = gradients(mesh.p, mesh.t)
+    rng = np.random.default_rng(0)
+    local = rng.standard_normal((e, 4, 4))
+    ref = _scipy_sum(mesh.t, local, n)
+    assert abs(pat.element_sum(local) - ref).max() <= 1e-14 * abs(ref).max()
+    some = np.array([0, 5, 7, e - 1])
+    ref_some = _scipy_sum(mesh.t[:, some], local[some], n)
+    got = pat.element_sum(local[some], cell_ids=some)
+    assert abs(got - ref_some).max() <= 1e-14 * abs(ref_some).max()
+    T = rng.standard_normal((3, 3, e))
+    T = T + T.transpose(1, 0, 2)
+    stiff_local = np.einsum("eia,abe,ejb->eij", grads, T, grads) * np.abs(vol)[:, None, None]
+    ref_k = _scipy_sum(mesh.t, stiff_local, n)
+    assert abs(pat.stiffness(grads, vol, T) - ref_k).max() <= 1e-13 * abs(ref_k).max()
+
+
+def test_gradients_sum_to_zero_and_reproduce_linear_fields(mesh: MeshTet) -> None:
+    grads, _ = gradients(mesh.p, mesh.t)
+    # ∇ of the P1 interpolant of a linear field is exact: u = 2x − y + 3z
+    u = 2 * mesh.p[0] - mesh.p[1] + 3 * mesh.p[2]
+    g = np.einsum("eik,ie->ek", grads, u[mesh.t])
+    assert np.allclose(g, [2.0, -1.0, 3.0], atol=1e-12)
+    assert np.allclose(grads.sum(axis=1), 0.0, atol=1e-12)
+    hull = MeshTet.init_tensor(np.linspace(0, 3, 5), np.linspace(0, 2, 4),
+                               np.linspace(-1, 0, 3))
+    _, v0 = gradients(hull.p, hull.t)
+    assert np.isclose(np.abs(v0).sum(), 6.0, rtol=1e-14)
+
+
+def test_values_of_refuses_an_entry_outside_the_pattern(mesh: MeshTet) -> None:
+    n = mesh.p.shape[1]
+    pat = CsrPattern.of_cells(mesh.t, n)
+    diag = pat.values_of(sp.diags(np.arange(n, dtype=float)))
+    assert np.allclose(pat.matrix(diag).diagonal(), np.arange(n))
+    far = sp.coo_matrix(([1.0], ([0], [n - 1])), shape=(n, n))
+    with pytest.raises(ValueError, match="outside the mesh's pattern"):
+        pat.values_of(far)
