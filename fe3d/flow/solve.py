@@ -8,8 +8,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-import scipy.sparse as sp
-from skfem import condense
 
 from fe3d._threads import limit_blas_threads
 from fe3d._typing import FloatArray, IndexArray
@@ -22,6 +20,7 @@ from fe3d.flow.conductivity import conductivity_tensors
 from fe3d.linalg import FLOW_TOLERANCE, solve_spd
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.p1 import split_rows
 
 __all__ = ["BoundaryFlow", "FlowField", "solve_flow", "unit_materials"]
 
@@ -221,6 +220,8 @@ def solve_flow(
 
     active = [np.ones(n, dtype=bool) for _ in robin]
     fixed = np.nonzero(is_fixed)[0]
+    free = np.nonzero(~is_fixed)[0]
+    diag_at = site.pattern.diagonal_slots()
     iterations = 0
     stats: dict[str, float] = {}
     for _ in range(50):
@@ -229,10 +230,13 @@ def solve_flow(
         for (hd, la), act in zip(robin, active, strict=True):
             diag += la * act
             rhs += la * act * hd.stage
-        M = (A + sp.diags(diag)).tocsr()
+        data = A.data.copy()
+        data[diag_at] += diag
+        M = site.pattern.matrix(data)
         if fixed.size:
-            M_ff, b_f, _, free = condense(M, rhs, x=head, D=fixed)
-            head[free] = solve_spd(M_ff.tocsr(), b_f, tol=FLOW_TOLERANCE, stats=stats)
+            M_ff, M_fD = split_rows(M, free, fixed)
+            b_f = rhs[free] - M_fD @ head[fixed]
+            head[free] = solve_spd(M_ff, b_f, tol=FLOW_TOLERANCE, stats=stats)
         else:
             head = solve_spd(M, rhs, tol=FLOW_TOLERANCE, stats=stats)
         iterations += int(stats.get("iterations", 0))

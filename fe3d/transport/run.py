@@ -34,6 +34,7 @@ from fe3d.flow.solve import FlowField, unit_materials
 from fe3d.linalg import LinearSolver, solve_with_preconditioner
 from fe3d.mesh.locate import locate_points, sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.p1 import split_rows
 from fe3d.reactions import kinetics, sorption
 from fe3d.transport import forms
 from fe3d.transport.assembly import P1_MASS, transport_operators
@@ -376,14 +377,13 @@ def run_transport(
                 is_fixed[source_nodes[name]] = True
             free = np.nonzero(~is_fixed)[0]
             fixed = np.nonzero(is_fixed)[0]
-            S_ff = S[free][:, free].tocsr()
+            S_ff, S_fD = split_rows(S, free, fixed)
             solver = LinearSolver(S_ff, method=case.solver.linear_solver,
                                   tol=case.solver.tolerance)
             while len(s.systems) >= _MAX_CACHED:
                 s.systems.pop(next(iter(s.systems)))
             s.systems[key] = _System(S=S, K_old=pattern.matrix((co.theta - 1.0) * K.data), M=M,
-                                     solver=solver, free=free, fixed=fixed,
-                                     S_fD=S[free][:, fixed].tocsr())
+                                     solver=solver, free=free, fixed=fixed, S_fD=S_fD)
         return s.systems[key]
 
     # source nodes (point and line sources load the nodes of the cells they cross)
@@ -575,14 +575,14 @@ def run_transport(
                         time_weights=(co.a0, co.a1, co.a2), c_older=prev)
                     Kx = isotropic_stiffness(site.cells, grads, vol, nu, n, pattern=pattern)
                     S_x = pattern.matrix(sysm.S.data + co.theta * Kx.data)
-                    S_x_ff = S_x[free][:, free].tocsr()
+                    S_x_ff, S_x_fD = split_rows(S_x, free, fixed)
                     # small systems: a new factor; large ones: the step's preconditioner reused
                     solver_x: LinearSolver | _NearbySolver = LinearSolver(
                         S_x_ff, method="direct", tol=case.solver.tolerance) \
                         if sysm.solver.method == "direct" else _NearbySolver(
                             S_x_ff, sysm.solver.preconditioner(), case.solver.tolerance,
                             sysm.solver.method)
-                    sys_x = replace(sysm, S=S_x, S_fD=S_x[free][:, fixed].tocsr(),
+                    sys_x = replace(sysm, S=S_x, S_fD=S_x_fD,
                                     solver=solver_x)
                     new, r, other_loss, its_x = solve(sys_x, rhs + (co.theta - 1.0) * (Kx @ old),
                                                       new)

@@ -10,7 +10,7 @@ import pytest
 import scipy.sparse as sp
 from skfem import MeshTet
 
-from fe3d.p1 import CsrPattern, gradients
+from fe3d.p1 import CsrPattern, gradients, split_rows
 
 
 def _scipy_sum(cells: np.ndarray, local: np.ndarray, n: int) -> sp.csr_matrix:
@@ -81,3 +81,16 @@ def test_values_of_refuses_an_entry_outside_the_pattern(mesh: MeshTet) -> None:
     far = sp.coo_matrix(([1.0], ([0], [n - 1])), shape=(n, n))
     with pytest.raises(ValueError, match="outside the mesh's pattern"):
         pat.values_of(far)
+
+
+def test_split_rows_equals_scipy_fancy_indexing() -> None:
+    rng = np.random.default_rng(5)
+    A = sp.random(40, 40, density=0.2, random_state=rng, format="csr") + sp.eye(40)
+    A = A.tocsr()
+    A.sort_indices()
+    fixed = np.array([0, 3, 17, 39])
+    free = np.setdiff1d(np.arange(40), fixed)
+    ff, fd = split_rows(A, free, fixed)
+    assert abs(ff - A[free][:, free]).max() == 0.0
+    assert abs(fd - A[free][:, fixed]).max() == 0.0
+    assert ff.has_sorted_indices
