@@ -21,7 +21,8 @@ import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
 
-__all__ = ["MASS_FRACTION", "CsrPattern", "gradients", "node_graph", "split_rows"]
+__all__ = ["MASS_FRACTION", "BoundaryFacets", "CsrPattern", "gradients", "node_graph",
+           "split_rows"]
 
 MASS_FRACTION = (np.ones((4, 4)) + np.eye(4)) / 20.0
 """∫φ_iφ_j dV / V on a tetrahedron (exact for P1)."""
@@ -171,6 +172,93 @@ def split_rows(A: sp.csr_matrix, free: IndexArray,
     if A.has_sorted_indices:  # columns keep their order within each block
         ff.has_sorted_indices = fd.has_sorted_indices = True
     return ff, fd
+
+
+@_jit
+def _owner_kernel(cells: IndexArray, tri: IndexArray, n: int) -> IndexArray:
+    ne = cells.shape[1]
+    start = np.zeros(n + 1, np.int64)  # node → incident cells, only for the facets' nodes
+    wanted = np.zeros(n, np.bool_)
+    for f in range(tri.shape[1]):
+        wanted[tri[0, f]] = True
+    for e in range(ne):
+        for a in range(4):
+            if wanted[cells[a, e]]:
+                start[cells[a, e] + 1] += 1
+    for i in range(n):
+        start[i + 1] += start[i]
+    fill = start[:-1].copy()
+    incident = np.empty(start[n], np.int64)
+    for e in range(ne):
+        for a in range(4):
+            r = cells[a, e]
+            if wanted[r]:
+                incident[fill[r]] = e
+                fill[r] += 1
+    owner = np.full(tri.shape[1], -1, np.int64)
+    for f in range(tri.shape[1]):
+        for p in range(start[tri[0, f]], start[tri[0, f] + 1]):
+            e = incident[p]
+            hits = 0
+            for a in range(4):
+                c = cells[a, e]
+                if c == tri[1, f] or c == tri[2, f]:
+                    hits += 1
+            if hits == 2:
+                owner[f] = e
+                break
+    return owner
+
+
+@dataclass(frozen=True)
+class BoundaryFacets:
+    """Boundary triangles ``tri`` ``(3, k)`` with the cell each belongs to, the outward
+    unit normal ``(3, k)`` and the area ``(k,)`` [m²]; P1 boundary integrals of a value
+    constant per facet in closed form (exact)."""
+
+    tri: IndexArray
+    cell: IndexArray
+    normal: FloatArray
+    area: FloatArray
+
+    @classmethod
+    def of(cls, points: FloatArray, cells: IndexArray, tri: IndexArray) -> BoundaryFacets:
+        """Facets ``tri`` of the mesh (``ValueError`` if one is not a face of any cell)."""
+        tri = np.ascontiguousarray(tri, dtype=np.int64)
+        owner = _owner_kernel(np.ascontiguousarray(cells, dtype=np.int64), tri,
+                              points.shape[1])
+        if np.any(owner < 0):
+            msg = "a boundary triangle is not a face of any cell of the mesh"
+            raise ValueError(msg)
+        p0, p1, p2 = (points[:, tri[i]] for i in range(3))
+        cross = np.cross(p1 - p0, p2 - p0, axis=0)
+        area2 = np.linalg.norm(cross, axis=0)
+        normal = cross / area2
+        centre = points[:, cells[:, owner]].mean(axis=1)  # inside the owning cell
+        normal *= np.where(np.einsum("ik,ik->k", normal, centre - p0) > 0, -1.0, 1.0)
+        return cls(tri=tri, cell=owner, normal=normal, area=area2 / 2.0)
+
+    def normal_flux(self, q: FloatArray) -> FloatArray:
+        """q·n [m/s] on each facet from the per-cell flux ``q`` ``(3, n_cells)``."""
+        return np.einsum("ik,ik->k", q[:, self.cell], self.normal)
+
+    def subset(self, keep: IndexArray) -> BoundaryFacets:
+        """The facets selected by a boolean mask or index array."""
+        return BoundaryFacets(tri=self.tri[:, keep], cell=self.cell[keep],
+                              normal=self.normal[:, keep], area=self.area[keep])
+
+    def load(self, value: FloatArray, n: int) -> FloatArray:
+        """∫ g φ_i dS per node for g constant on each facet: g A / 3 at its corners."""
+        return np.bincount(self.tri.ravel(), weights=np.tile(value * self.area / 3.0, 3),
+                           minlength=n)
+
+    def mass(self, value: FloatArray, n: int) -> sp.csr_matrix:
+        """∫ g φ_i φ_j dS for g constant on each facet: g A (1 + δ_ij) / 12."""
+        rows = np.repeat(self.tri, 3, axis=0).ravel()
+        cols = np.tile(self.tri, (3, 1)).ravel()
+        local = (np.ones((3, 3)) + np.eye(3)) / 12.0
+        vals = (local.ravel()[:, None] * (value * self.area)[None, :]).ravel()
+        return sp.coo_matrix((vals, (rows, cols)), shape=(n, n)).tocsr()
 
 
 @numba.njit(inline="always")

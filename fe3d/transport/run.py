@@ -24,7 +24,6 @@ from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
-from skfem import ElementTetP1, FacetBasis, asm
 
 from fe3d._threads import limit_blas_threads
 from fe3d._typing import FloatArray, IndexArray
@@ -34,9 +33,8 @@ from fe3d.flow.solve import FlowField, unit_materials
 from fe3d.linalg import LinearSolver, solve_with_preconditioner
 from fe3d.mesh.locate import locate_points, sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
-from fe3d.p1 import split_rows
+from fe3d.p1 import BoundaryFacets, split_rows
 from fe3d.reactions import kinetics, sorption
-from fe3d.transport import forms
 from fe3d.transport.assembly import P1_MASS, transport_operators
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.dispersion import dispersion_tensor
@@ -240,7 +238,6 @@ def run_transport(
         before stays valid.
     """
     limit_blas_threads()
-    mesh = site.skfem_mesh()
     n = site.n_nodes
     mats, mat_names = unit_materials(case, site)
     lay = site.cell_layer
@@ -257,14 +254,15 @@ def run_transport(
         alpha_tv=np.array([m.alpha_vertical for m in mats])[lay],
         d_eff=np.array([m.effective_diffusion for m in mats])[lay],
     )
-    thetaD = theta * D
-    outflow_faces = list(flow.fixed_head_nodes)
-    facet_bases = {name: FacetBasis(mesh, ElementTetP1(), facets=mesh.boundaries[name])
-                   for name in outflow_faces}
-    qn_out = {}
-    for name, fb in facet_bases.items():
-        qn = np.einsum("ke,keq->eq", q[:, fb.tind], fb.normals)
-        qn_out[name] = np.clip(qn, 0.0, None)
+    thetaD = np.multiply(D, theta, out=D)  # θD in place: one (3, 3, cells) array less
+    del D
+    # outflow through the fixed-head faces (T3b): q·n per boundary triangle, in closed form
+    facets = {name: BoundaryFacets.of(site.points, site.cells, site.faces[name])
+              for name in flow.fixed_head_nodes}
+    qn_out = {name: np.clip(fb.normal_flux(q), 0.0, None) for name, fb in facets.items()}
+    outflow_load = {f: fb.load(qn_out[f], n) for f, fb in facets.items()}
+    outflow_mass = sum((fb.mass(qn_out[f], n) for f, fb in facets.items()),
+                       sp.csr_matrix((n, n)))
     supg_on = case.solver.supg
     user = case.user_reactions
     user_law = None if user is None else kinetics.user_kinetics(
@@ -303,9 +301,8 @@ def run_transport(
         along = np.einsum("ie,ije,je->e", a, thetaD, a)
         kappa = np.divide(along, speed2 * m, out=np.zeros_like(m), where=speed2 > 0)
         h = element_length_along_flow(a, grads)
-        ow = {f: asm(forms.outflow_weight, fb, qn=qn_out[f]) for f, fb in facet_bases.items()}
-        om = sum((asm(forms.outflow, fb, qn=qn_out[f]) for f, fb in facet_bases.items()),
-                 sp.csr_matrix((n, n)))
+        ow = dict(outflow_load)
+        om = outflow_mass
         for item, f in flow.exchange.items():
             out_rate = np.clip(-f, 0.0, None)  # water leaving [m³/s] per node
             if np.any(out_rate > 0):
@@ -393,19 +390,18 @@ def run_transport(
     for src in case.sources:
         if src.kind == "inflow_concentration":
             assert src.face is not None
-            facets = mesh.boundaries[src.face]
-            mid = mesh.p[:, mesh.facets[:, facets]].mean(axis=1)
-            keep = np.ones(facets.size, dtype=bool)
+            face = BoundaryFacets.of(site.points, site.cells, site.faces[src.face])
+            mid = site.points[:, face.tri].mean(axis=1)
+            keep = np.ones(face.area.size, dtype=bool)
             for axis, rng in enumerate((src.x, src.y, src.z)):
                 if rng is not None:
                     keep &= (mid[axis] >= rng[0]) & (mid[axis] <= rng[1])
             if not keep.any():
                 msg = f"source {src.name!r}: no face triangle of {src.face!r} in its ranges"
                 raise MeshError(msg)
-            fb = FacetBasis(mesh, ElementTetP1(), facets=facets[keep])
-            qn = np.einsum("ke,keq->eq", q[:, fb.tind], fb.normals)
-            inflow_weights[src.name] = asm(forms.inflow_weight, fb,
-                                           qn_in=np.clip(-qn, 0.0, None))
+            inlet = face.subset(keep)
+            inflow_weights[src.name] = inlet.load(np.clip(-inlet.normal_flux(q), 0.0, None),
+                                                  n)
     node_volume = _nodal(site.cells, np.abs(vol), n)
     loading_weights = {}
     for src in case.sources:
