@@ -106,12 +106,10 @@ class SymmetricGaussSeidel:
 
     def __init__(self, A: sp.csr_matrix) -> None:
         A = A.tocsr()
-        self.indptr = A.indptr.astype(np.int64)
-        self.indices = A.indices.astype(np.int64)
-        if not _is_sorted(self.indptr, self.indices):
+        if not _is_sorted(A.indptr, A.indices):
             A = A.copy()
             A.sort_indices()
-            self.indices = A.indices.astype(np.int64)
+        self.indptr, self.indices = A.indptr, A.indices  # shared, not copied
         self.data = np.asarray(A.data, dtype=float)
         self.dpos = _diagonal_positions(self.indptr, self.indices)
         if np.any(self.dpos < 0) or np.any(self.data[np.maximum(self.dpos, 0)] == 0.0):
