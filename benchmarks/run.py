@@ -137,10 +137,10 @@ def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
     from fe3d.flow.solve import unit_materials
     from fe3d.linalg import LinearSolver, solve_with_preconditioner
     from fe3d.mesh.site_mesh import SiteMesh
-    from fe3d.p1 import split_rows
+    from fe3d.p1 import length_along, split_rows, volumes
     from fe3d.transport.assembly import transport_operators
     from fe3d.transport.dispersion import dispersion_tensor
-    from fe3d.transport.stabilization import element_length_along_flow, supg_tau
+    from fe3d.transport.stabilization import supg_tau
 
     case = parse_case(CASE.format(h=h, dz=dz))
     z = np.load(folder / "site.npz")
@@ -157,7 +157,6 @@ def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
     spec = case.species["solvent"]
 
     t = time.perf_counter()  # everything a species needs for its operators, once
-    grads, vol = site.geometry
     theta = np.array([m.porosity for m in mats])[lay]
     rho_b = np.array([m.bulk_density for m in mats])[lay]
     v = q / theta
@@ -173,7 +172,8 @@ def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
     speed2 = np.sum(a * a, axis=0)
     along = np.einsum("ie,ije,je->e", a, theta_d, a)
     kappa = np.divide(along, speed2 * m, out=np.zeros_like(m), where=speed2 > 0)
-    hl = element_length_along_flow(a, grads)
+    hl = length_along(site.points, site.cells, a)
+    vol = volumes(site.points, site.cells)
     courant_rate = float(np.max(np.sqrt(speed2) / hl))
     t_prep = time.perf_counter() - t
 
@@ -191,7 +191,7 @@ def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
         dt = courant / courant_rate
         t = time.perf_counter()
         tau = supg_tau(a, kappa, k / m, hl, dt)
-        M, K = transport_operators(site.cells, grads, vol, m=m, k=k, q=q, a=a, tau=tau,
+        M, K = transport_operators(site.points, site.cells, m=m, k=k, q=q, a=a, tau=tau,
                                    theta_d=theta_d, n=n, pattern=pattern)
         S = pattern.matrix(M.data / dt + K.data)  # backward Euler (θ = 1), same pattern
         T = pattern.matrix(M.data / dt)

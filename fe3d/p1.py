@@ -21,8 +21,8 @@ import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
 
-__all__ = ["MASS_FRACTION", "BoundaryFacets", "CsrPattern", "gradients", "node_graph",
-           "split_rows"]
+__all__ = ["MASS_FRACTION", "BoundaryFacets", "CsrPattern", "gradients", "length_along",
+           "node_graph", "split_rows", "volumes"]
 
 MASS_FRACTION = (np.ones((4, 4)) + np.eye(4)) / 20.0
 """∫φ_iφ_j dV / V on a tetrahedron (exact for P1)."""
@@ -30,38 +30,88 @@ MASS_FRACTION = (np.ones((4, 4)) + np.eye(4)) / 20.0
 _jit = numba.njit(cache=True, nogil=True)
 
 
+@numba.njit(inline="always")
+def _cell_gradients(points: FloatArray, cells: IndexArray, e: int, g: FloatArray) -> float:
+    """Basis gradients of cell e into ``g`` ``(4, 3)``; returns the signed volume."""
+    i0, i1, i2, i3 = cells[0, e], cells[1, e], cells[2, e], cells[3, e]
+    ax, ay, az = points[0, i1] - points[0, i0], points[1, i1] - points[1, i0], \
+        points[2, i1] - points[2, i0]
+    bx, by, bz = points[0, i2] - points[0, i0], points[1, i2] - points[1, i0], \
+        points[2, i2] - points[2, i0]
+    cx, cy, cz = points[0, i3] - points[0, i0], points[1, i3] - points[1, i0], \
+        points[2, i3] - points[2, i0]
+    # rows of the inverse Jacobian: (b×c, c×a, a×b) / det, det = a·(b×c)
+    r1x, r1y, r1z = by * cz - bz * cy, bz * cx - bx * cz, bx * cy - by * cx
+    r2x, r2y, r2z = cy * az - cz * ay, cz * ax - cx * az, cx * ay - cy * ax
+    r3x, r3y, r3z = ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx
+    det = ax * r1x + ay * r1y + az * r1z
+    g[1, 0], g[1, 1], g[1, 2] = r1x / det, r1y / det, r1z / det
+    g[2, 0], g[2, 1], g[2, 2] = r2x / det, r2y / det, r2z / det
+    g[3, 0], g[3, 1], g[3, 2] = r3x / det, r3y / det, r3z / det
+    for k in range(3):
+        g[0, k] = -(g[1, k] + g[2, k] + g[3, k])
+    return det / 6.0
+
+
 @_jit
 def _gradients_kernel(points: FloatArray, cells: IndexArray, grads: FloatArray,
                       vol: FloatArray) -> None:
     for e in range(cells.shape[1]):
-        i0, i1, i2, i3 = cells[0, e], cells[1, e], cells[2, e], cells[3, e]
-        ax, ay, az = points[0, i1] - points[0, i0], points[1, i1] - points[1, i0], \
-            points[2, i1] - points[2, i0]
-        bx, by, bz = points[0, i2] - points[0, i0], points[1, i2] - points[1, i0], \
-            points[2, i2] - points[2, i0]
-        cx, cy, cz = points[0, i3] - points[0, i0], points[1, i3] - points[1, i0], \
-            points[2, i3] - points[2, i0]
-        # rows of the inverse Jacobian: (b×c, c×a, a×b) / det, det = a·(b×c)
-        r1 = (by * cz - bz * cy, bz * cx - bx * cz, bx * cy - by * cx)
-        r2 = (cy * az - cz * ay, cz * ax - cx * az, cx * ay - cy * ax)
-        r3 = (ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx)
-        det = ax * r1[0] + ay * r1[1] + az * r1[2]
-        for k in range(3):
-            g1, g2, g3 = r1[k] / det, r2[k] / det, r3[k] / det
-            grads[e, 1, k] = g1
-            grads[e, 2, k] = g2
-            grads[e, 3, k] = g3
-            grads[e, 0, k] = -(g1 + g2 + g3)
-        vol[e] = det / 6.0
+        vol[e] = _cell_gradients(points, cells, e, grads[e])
+
+
+@_jit
+def _volumes_kernel(points: FloatArray, cells: IndexArray, vol: FloatArray) -> None:
+    g = np.empty((4, 3))
+    for e in range(cells.shape[1]):
+        vol[e] = _cell_gradients(points, cells, e, g)
+
+
+@_jit
+def _length_kernel(points: FloatArray, cells: IndexArray, a: FloatArray,
+                   out: FloatArray) -> None:
+    g = np.empty((4, 3))
+    for e in range(cells.shape[1]):
+        _cell_gradients(points, cells, e, g)
+        proj = 0.0
+        gmax = 0.0
+        for i in range(4):
+            proj += abs(a[0, e] * g[i, 0] + a[1, e] * g[i, 1] + a[2, e] * g[i, 2])
+            gmax = max(gmax, np.sqrt(g[i, 0] ** 2 + g[i, 1] ** 2 + g[i, 2] ** 2))
+        if proj > 0.0:
+            out[e] = 2.0 * np.sqrt(a[0, e] ** 2 + a[1, e] ** 2 + a[2, e] ** 2) / proj
+        else:
+            out[e] = 2.0 / gmax
+
+
+def _pc(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, IndexArray]:
+    return (np.ascontiguousarray(points, dtype=float),
+            np.ascontiguousarray(cells, dtype=np.int64))
 
 
 def gradients(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, FloatArray]:
     """Basis gradients ``(n_cells, 4, 3)`` [1/m] and signed volumes ``(n_cells,)`` [m³]."""
     grads = np.empty((cells.shape[1], 4, 3))
     vol = np.empty(cells.shape[1])
-    _gradients_kernel(np.ascontiguousarray(points, dtype=float),
-                      np.ascontiguousarray(cells, dtype=np.int64), grads, vol)
+    _gradients_kernel(*_pc(points, cells), grads, vol)
     return grads, vol
+
+
+def volumes(points: FloatArray, cells: IndexArray) -> FloatArray:
+    """Signed volumes ``(n_cells,)`` [m³] (without keeping the gradients)."""
+    vol = np.empty(cells.shape[1])
+    _volumes_kernel(*_pc(points, cells), vol)
+    return vol
+
+
+def length_along(points: FloatArray, cells: IndexArray, a: FloatArray) -> FloatArray:
+    """Element length along the direction of ``a`` ``(3, n_cells)``, h = 2|a| / Σ_i
+    |a·∇φ_i| [m], or 2 / max_i |∇φ_i| where a = 0 (theory.md T7; the same as
+    :func:`fe3d.transport.stabilization.element_length_along_flow` without the
+    ``(n_cells, 4, 3)`` gradients)."""
+    out = np.empty(cells.shape[1])
+    _length_kernel(*_pc(points, cells), np.asarray(a, dtype=float), out)
+    return out
 
 
 @_jit
@@ -308,41 +358,40 @@ def _local_kernel(slots: IndexArray, cell_ids: IndexArray, local: FloatArray,
 
 
 @_jit
-def _stiffness_kernel(slots: IndexArray, cell_ids: IndexArray, grads: FloatArray,
-                      vol: FloatArray, tensors: FloatArray, data: FloatArray) -> None:
+def _stiffness_kernel(slots: IndexArray, cell_ids: IndexArray, points: FloatArray,
+                      cells: IndexArray, tensors: FloatArray, data: FloatArray) -> None:
+    g = np.empty((4, 3))
     tg = np.empty((4, 3))
     for p in range(cell_ids.size):
         e = cell_ids[p]
-        v = abs(vol[e])
+        v = abs(_cell_gradients(points, cells, e, g))
         for j in range(4):
             for a in range(3):
-                tg[j, a] = (tensors[a, 0, p] * grads[e, j, 0] + tensors[a, 1, p]
-                            * grads[e, j, 1] + tensors[a, 2, p] * grads[e, j, 2])
+                tg[j, a] = (tensors[a, 0, p] * g[j, 0] + tensors[a, 1, p] * g[j, 1]
+                            + tensors[a, 2, p] * g[j, 2])
         for i in range(4):
             for j in range(4):
-                data[slots[e, 4 * i + j]] += v * (
-                    grads[e, i, 0] * tg[j, 0] + grads[e, i, 1] * tg[j, 1]
-                    + grads[e, i, 2] * tg[j, 2])
+                data[slots[e, 4 * i + j]] += v * (g[i, 0] * tg[j, 0] + g[i, 1] * tg[j, 1]
+                                                  + g[i, 2] * tg[j, 2])
 
 
 @_jit
-def _transport_kernel(slots: IndexArray, grads: FloatArray, vol: FloatArray, m: FloatArray,
+def _transport_kernel(slots: IndexArray, points: FloatArray, cells: IndexArray, m: FloatArray,
                       m_supg: FloatArray, k: FloatArray, q: FloatArray, a: FloatArray,
                       tau: FloatArray, theta_d: FloatArray, galerkin: bool, supg: bool,
                       mass: FloatArray, spatial: FloatArray) -> None:
+    g = np.empty((4, 3))
     tg = np.empty((4, 3))
     ag = np.empty(4)
     qg = np.empty(4)
-    for e in range(vol.size):
-        v = abs(vol[e])
+    for e in range(cells.shape[1]):
+        v = abs(_cell_gradients(points, cells, e, g))
         for i in range(4):
-            ag[i] = a[0, e] * grads[e, i, 0] + a[1, e] * grads[e, i, 1] \
-                + a[2, e] * grads[e, i, 2]
-            qg[i] = q[0, e] * grads[e, i, 0] + q[1, e] * grads[e, i, 1] \
-                + q[2, e] * grads[e, i, 2]
+            ag[i] = a[0, e] * g[i, 0] + a[1, e] * g[i, 1] + a[2, e] * g[i, 2]
+            qg[i] = q[0, e] * g[i, 0] + q[1, e] * g[i, 1] + q[2, e] * g[i, 2]
             for c in range(3):
-                tg[i, c] = (theta_d[c, 0, e] * grads[e, i, 0] + theta_d[c, 1, e]
-                            * grads[e, i, 1] + theta_d[c, 2, e] * grads[e, i, 2])
+                tg[i, c] = (theta_d[c, 0, e] * g[i, 0] + theta_d[c, 1, e] * g[i, 1]
+                            + theta_d[c, 2, e] * g[i, 2])
         w = tau[e] * v
         for i in range(4):
             for j in range(4):
@@ -350,8 +399,7 @@ def _transport_kernel(slots: IndexArray, grads: FloatArray, vol: FloatArray, m: 
                 kv = 0.0
                 if galerkin:  # T1 storage, T2 advection, T4 dispersion, T5 decay
                     frac = 0.1 if i == j else 0.05
-                    disp = grads[e, i, 0] * tg[j, 0] + grads[e, i, 1] * tg[j, 1] \
-                        + grads[e, i, 2] * tg[j, 2]
+                    disp = g[i, 0] * tg[j, 0] + g[i, 1] * tg[j, 1] + g[i, 2] * tg[j, 2]
                     mv += m[e] * v * frac
                     kv += -qg[i] * v * 0.25 + v * disp + k[e] * v * frac
                 if supg:  # T6: τ (a·∇φ_i) × (storage, advection, decay)
@@ -442,25 +490,27 @@ class CsrPattern:
                       np.ascontiguousarray(local, dtype=float), data)
         return self.matrix(data)
 
-    def stiffness(self, grads: FloatArray, vol: FloatArray, tensors: FloatArray,
+    def stiffness(self, points: FloatArray, cells: IndexArray, tensors: FloatArray,
                   cell_ids: IndexArray | None = None) -> sp.csr_matrix:
         """∫ ∇φ_i · T ∇φ_j dV = |V| ∇φ_i·T∇φ_j summed over the cells ``cell_ids`` (all when
-        None); ``tensors`` ``(3, 3, len(cell_ids))``, ``grads``/``vol`` of the whole mesh."""
+        None) of the mesh ``points``, ``cells``; ``tensors`` ``(3, 3, len(cell_ids))``.
+        Gradients are formed cell by cell, never stored."""
         data = np.zeros(self.nnz)
-        _stiffness_kernel(self.slots, self._ids(cell_ids), grads, vol,
+        _stiffness_kernel(self.slots, self._ids(cell_ids), *_pc(points, cells),
                           np.asarray(tensors, dtype=float), data)
         return self.matrix(data)
 
-    def transport(self, grads: FloatArray, vol: FloatArray, *, m: FloatArray,
+    def transport(self, points: FloatArray, cells: IndexArray, *, m: FloatArray,
                   m_supg: FloatArray, k: FloatArray, q: FloatArray, a: FloatArray,
                   tau: FloatArray, theta_d: FloatArray, galerkin: bool,
                   supg: bool) -> tuple[sp.csr_matrix, sp.csr_matrix]:
         """Mass and spatial transport operators over all cells (theory.md T1, T2, T4–T6);
-        :func:`fe3d.transport.assembly.transport_operators` documents the terms."""
+        :func:`fe3d.transport.assembly.transport_operators` documents the terms. Gradients
+        are formed cell by cell, never stored."""
         mass, spatial = np.zeros(self.nnz), np.zeros(self.nnz)
         f = np.asarray
-        _transport_kernel(self.slots, grads, vol, f(m, dtype=float), f(m_supg, dtype=float),
-                          f(k, dtype=float), f(q, dtype=float), f(a, dtype=float),
-                          f(tau, dtype=float), f(theta_d, dtype=float), galerkin, supg,
-                          mass, spatial)
+        _transport_kernel(self.slots, *_pc(points, cells), f(m, dtype=float),
+                          f(m_supg, dtype=float), f(k, dtype=float), f(q, dtype=float),
+                          f(a, dtype=float), f(tau, dtype=float), f(theta_d, dtype=float),
+                          galerkin, supg, mass, spatial)
         return self.matrix(mass), self.matrix(spatial)

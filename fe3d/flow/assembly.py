@@ -12,13 +12,12 @@ from __future__ import annotations
 import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
-from fe3d.p1 import CsrPattern, gradients
+from fe3d.p1 import CsrPattern
 
 __all__ = ["conductance_matrix"]
 
 
 def conductance_matrix(points: FloatArray, cells: IndexArray, tensors: FloatArray, *,
-                       geometry: tuple[FloatArray, FloatArray] | None = None,
                        pattern: CsrPattern | None = None) -> sp.csr_matrix:
     """Assemble ∫ K∇u·∇v over P1 tetrahedra.
 
@@ -30,8 +29,6 @@ def conductance_matrix(points: FloatArray, cells: IndexArray, tensors: FloatArra
         Tetrahedra, shape ``(4, m)``.
     tensors
         Conductivity per cell [m/s], shape ``(3, 3, m)``.
-    geometry
-        Precomputed ``fe3d.p1.gradients(points, cells)``, to avoid computing them again.
     pattern
         The mesh's :class:`fe3d.p1.CsrPattern` (built here when not given).
 
@@ -40,7 +37,6 @@ def conductance_matrix(points: FloatArray, cells: IndexArray, tensors: FloatArra
     scipy.sparse.csr_matrix
         Shape ``(n, n)``, symmetric [m²/s], on ``pattern``.
     """
-    grads, vol = gradients(points, cells) if geometry is None else geometry
     if pattern is None:
         pattern = CsrPattern.of_cells(cells, points.shape[1])
-    return pattern.stiffness(grads, vol, tensors)
+    return pattern.stiffness(points, cells, tensors)

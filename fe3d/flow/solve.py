@@ -20,7 +20,7 @@ from fe3d.flow.conductivity import conductivity_tensors
 from fe3d.linalg import FLOW_TOLERANCE, solve_spd
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
-from fe3d.p1 import split_rows
+from fe3d.p1 import gradients, split_rows
 
 __all__ = ["BoundaryFlow", "FlowField", "solve_flow", "unit_materials"]
 
@@ -151,8 +151,7 @@ def solve_flow(
     tensors, principal = conductivity_tensors(p, site.cells, site.cell_layer, mats,
                                               unit_keys=[f"materials.{m}" for m in mat_names],
                                               base_dir=base_dir)
-    geometry = site.geometry
-    A = conductance_matrix(p, site.cells, tensors, geometry=geometry, pattern=site.pattern)
+    A = conductance_matrix(p, site.cells, tensors, pattern=site.pattern)
 
     # Dirichlet: fixed heads; a node on two fixed-head faces takes the first listed
     head = np.zeros(n)
@@ -251,8 +250,9 @@ def solve_flow(
 
     for (hd, la), act in zip(robin, active, strict=True):
         items.append((hd.name, hd.kind, la * act * (hd.stage - head)))
-    grads = geometry[0]
+    grads, _ = gradients(p, site.cells)  # not kept: (cells × 4 × 3) is large
     grad_h = np.einsum("eik,ie->ke", grads, head[site.cells])
+    del grads
     q = -np.einsum("ije,je->ie", tensors, grad_h)
     # consistent fixed-head flux: what the fixed rows need beyond every other term (F4)
     other = sum((f for _, _, f in items), np.zeros(n))

@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
-from fe3d.p1 import CsrPattern, gradients
+from fe3d.p1 import CsrPattern
 
 __all__ = ["SiteMesh"]
 
@@ -50,12 +50,6 @@ class SiteMesh:
     def n_cells(self) -> int:
         """Number of tetrahedra."""
         return int(self.cells.shape[1])
-
-    @cached_property
-    def geometry(self) -> tuple[FloatArray, FloatArray]:
-        """P1 basis gradients ``(n_cells, 4, 3)`` [1/m] and signed volumes ``(n_cells,)``
-        [m³], computed once and shared by the flow and transport stages."""
-        return gradients(self.points, self.cells)
 
     @cached_property
     def pattern(self) -> CsrPattern:

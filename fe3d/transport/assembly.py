@@ -26,7 +26,7 @@ P1_MASS = MASS_FRACTION  # ∫φ_iφ_j dV / V on a tetrahedron
 
 
 def transport_operators(
-    cells: IndexArray, grads: FloatArray, vol: FloatArray, *, m: FloatArray, k: FloatArray,
+    points: FloatArray, cells: IndexArray, *, m: FloatArray, k: FloatArray,
     q: FloatArray, a: FloatArray, tau: FloatArray, theta_d: FloatArray, n: int,
     m_supg: FloatArray | None = None, parts: str = "all",
     pattern: CsrPattern | None = None,
@@ -36,8 +36,9 @@ def transport_operators(
 
     Parameters
     ----------
-    cells, grads, vol
-        Tetrahedra ``(4, e)``, basis gradients ``(e, 4, 3)`` [1/m], volumes ``(e,)`` [m³].
+    points, cells
+        Nodes ``(3, n)`` [m] and tetrahedra ``(4, e)``; the constant P1 gradients and the
+        volume of each cell are formed inside the compiled kernel, never stored.
     m, k
         θR [-] and decay coefficient [1/s] per cell, ``(e,)``.
     q, a
@@ -62,7 +63,7 @@ def transport_operators(
         raise ValueError(msg)
     if pattern is None:
         pattern = CsrPattern.of_cells(cells, n)
-    return pattern.transport(grads, vol, m=m, m_supg=m if m_supg is None else m_supg, k=k,
+    return pattern.transport(points, cells, m=m, m_supg=m if m_supg is None else m_supg, k=k,
                              q=q, a=a, tau=tau, theta_d=theta_d,
                              galerkin=parts in ("all", "galerkin"),
                              supg=parts in ("all", "supg"))

@@ -33,14 +33,14 @@ from fe3d.flow.solve import FlowField, unit_materials
 from fe3d.linalg import LinearSolver, solve_with_preconditioner
 from fe3d.mesh.locate import locate_points, sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
-from fe3d.p1 import BoundaryFacets, split_rows
+from fe3d.p1 import BoundaryFacets, gradients, length_along, split_rows, volumes
 from fe3d.reactions import kinetics, sorption
 from fe3d.transport.assembly import P1_MASS, transport_operators
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.dispersion import dispersion_tensor
 from fe3d.transport.newton import newton
 from fe3d.transport.shock import isotropic_stiffness, shock_diffusivity
-from fe3d.transport.stabilization import element_length_along_flow, supg_tau
+from fe3d.transport.stabilization import supg_tau
 from fe3d.transport.timeschemes import (
     ORDER,
     StepCoefficients,
@@ -243,7 +243,9 @@ def run_transport(
     lay = site.cell_layer
     theta = np.array([m.porosity for m in mats])[lay]
     rho_b = np.array([m.bulk_density for m in mats])[lay]
-    grads, vol = site.geometry
+    vol = volumes(site.points, site.cells)
+    # basis gradients (cells × 4 × 3) only where a term needs them stored: shock capturing
+    grads = gradients(site.points, site.cells)[0] if case.solver.shock_capturing else None
     pattern = site.pattern
     q = flow.darcy_flux
     v = q / theta
@@ -300,7 +302,7 @@ def run_transport(
         speed2 = np.sum(a * a, axis=0)
         along = np.einsum("ie,ije,je->e", a, thetaD, a)
         kappa = np.divide(along, speed2 * m, out=np.zeros_like(m), where=speed2 > 0)
-        h = element_length_along_flow(a, grads)
+        h = length_along(site.points, site.cells, a)
         ow = dict(outflow_load)
         om = outflow_mass
         for item, f in flow.exchange.items():
@@ -345,14 +347,15 @@ def run_transport(
             kw = {"m": theta if nonlin else c["m"], "k": c["k"], "q": q, "a": c["a"],
                   "theta_d": thetaD, "n": n, "m_supg": c["m"] if nonlin else None}
             if s.galerkin is None:
-                M0, K0 = transport_operators(site.cells, grads, vol, tau=np.zeros_like(c["m"]),
+                M0, K0 = transport_operators(site.points, site.cells,
+                                             tau=np.zeros_like(c["m"]),
                                              parts="galerkin", pattern=pattern, **kw)
                 K0.data += pattern.values_of(s.outflow_matrix)
                 s.galerkin = (M0, K0)
             M, K = s.galerkin
             if supg_on:  # same pattern: the parts add by their value arrays
                 tau = supg_tau(c["a"], c["kappa"], c["sigma"], s.h, dt_tau)
-                Ms, Ks = transport_operators(site.cells, grads, vol, tau=tau, parts="supg",
+                Ms, Ks = transport_operators(site.points, site.cells, tau=tau, parts="supg",
                                              pattern=pattern, **kw)
                 M, K = pattern.matrix(M.data + Ms.data), pattern.matrix(K.data + Ks.data)
             while len(s.operators) >= 2:  # keep at most two step lengths' operators
@@ -569,7 +572,7 @@ def run_transport(
                         site.cells, grads, new, old, dt=dt, m=cf["m"], q=q, k=cf["k"], h=s.h,
                         along_dispersion=cf["m"] * cf["kappa"], theta_t=co.theta,
                         time_weights=(co.a0, co.a1, co.a2), c_older=prev)
-                    Kx = isotropic_stiffness(site.cells, grads, vol, nu, n, pattern=pattern)
+                    Kx = isotropic_stiffness(site.points, site.cells, nu, n, pattern=pattern)
                     S_x = pattern.matrix(sysm.S.data + co.theta * Kx.data)
                     S_x_ff, S_x_fD = split_rows(S_x, free, fixed)
                     # small systems: a new factor; large ones: the step's preconditioner reused

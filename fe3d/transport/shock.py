@@ -77,7 +77,7 @@ nonlinear; it is applied as a lagged correction, Picard iteration). With run.py'
 1. Predictor: solve the step with plain SUPG → ``c_pred``.
 2. ``nu = shock_diffusivity(cells, grads, c_pred, c_old, dt=dt, m=m, q=q, k=k, h=h,
    along_dispersion=m * kappa, theta_t=ϑ, time_weights=(a0, a1, a2), c_older=cⁿ⁻¹)``.
-3. ``Kx = isotropic_stiffness(cells, grads, vol, nu, n)``; solve
+3. ``Kx = isotropic_stiffness(points, cells, nu, n)``; solve
    ``(S + ϑ Kx) c = rhs + (ϑ − 1) Kx cⁿ`` on the free rows with the same fixed values, and
    take the budget residual r = (S + ϑKx) c − (rhs + (ϑ − 1) Kx cⁿ) from this same system.
 4. Repeat 2–3 from the new ``c`` (``passes`` times in all; 2 in the verification case).
@@ -184,17 +184,15 @@ def shock_diffusivity(
     return np.where(steep, np.minimum(nu, cap), 0.0)
 
 
-def isotropic_stiffness(cells: IndexArray, grads: FloatArray, vol: FloatArray,
-                        coeff: FloatArray, n: int, *,
-                        pattern: CsrPattern | None = None) -> sp.csr_matrix:
+def isotropic_stiffness(points: FloatArray, cells: IndexArray, coeff: FloatArray, n: int,
+                        *, pattern: CsrPattern | None = None) -> sp.csr_matrix:
     r"""Σ_e ν_e |V_e| ∇φ_i·∇φ_j, ``(n, n)`` CSR (theory.md T15; closed form of the P1 form
     :math:`\int \nu \nabla c\cdot\nabla w`).
 
-    ``cells`` ``(4, e)``, ``grads`` ``(e, 4, 3)`` [1/m], ``vol`` ``(e,)`` [m³],
-    ``coeff`` ``(e,)`` [m²/s]. Only cells with ν ≠ 0 are visited (shock capturing acts on
-    the few cells of a front); the result is stored on the mesh's CSR ``pattern`` (built
-    from ``cells`` when not given). Symmetric, positive semi-definite for ν ≥ 0, zero row
-    and column sums.
+    ``points`` ``(3, n)`` [m], ``cells`` ``(4, e)``, ``coeff`` ``(e,)`` [m²/s]. Only cells
+    with ν ≠ 0 are visited (shock capturing acts on the few cells of a front); the result
+    is stored on the mesh's CSR ``pattern`` (built from ``cells`` when not given).
+    Symmetric, positive semi-definite for ν ≥ 0, zero row and column sums.
     """
     if pattern is None:
         pattern = CsrPattern.of_cells(cells, n)
@@ -202,7 +200,7 @@ def isotropic_stiffness(cells: IndexArray, grads: FloatArray, vol: FloatArray,
     tensors = np.zeros((3, 3, active.size))
     for d in range(3):
         tensors[d, d] = coeff[active]
-    return pattern.stiffness(grads, vol, tensors, cell_ids=active)
+    return pattern.stiffness(points, cells, tensors, cell_ids=active)
 
 
 def picard_shock_step(

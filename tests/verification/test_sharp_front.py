@@ -128,7 +128,7 @@ def _run(site, flow, dt: float, *, shock: bool, passes: int = 2) -> dict:
 
     n, cells = site.n_nodes, site.cells
     e = cells.shape[1]
-    grads, vol = p1_gradients(site.points, cells)
+    grads, _ = p1_gradients(site.points, cells)
     q = flow.darcy_flux
     theta = np.full(e, POROSITY)
     m, k = theta.copy(), np.zeros(e)  # no sorption, no decay
@@ -139,7 +139,7 @@ def _run(site, flow, dt: float, *, shock: bool, passes: int = 2) -> dict:
     along = np.einsum("ie,ije,je->e", a, theta_d, a) / np.sum(a * a, axis=0)  # â·θD·â
     h = element_length_along_flow(a, grads)
     tau = supg_tau(a, along / m, k / m, h, dt)
-    mass, spatial = transport_operators(cells, grads, vol, m=m, k=k, q=q, a=a, tau=tau,
+    mass, spatial = transport_operators(site.points, cells, m=m, k=k, q=q, a=a, tau=tau,
                                         theta_d=theta_d, n=n)
     mesh = site.skfem_mesh()
     fb = FacetBasis(mesh, ElementTetP1(), facets=mesh.boundaries["east"])
@@ -174,14 +174,14 @@ def _run(site, flow, dt: float, *, shock: bool, passes: int = 2) -> dict:
         A = S
         if shock:
             def with_extra(nu: np.ndarray, rhs=rhs) -> np.ndarray:
-                return solve((S + isotropic_stiffness(cells, grads, vol, nu, n)).tocsr(), rhs)
+                return solve((S + isotropic_stiffness(site.points, cells, nu, n)).tocsr(), rhs)
 
             def coeff(cc: np.ndarray, old=old) -> np.ndarray:
                 return shock_diffusivity(cells, grads, cc, old, dt=dt, m=m, q=q, k=k, h=h,
                                          along_dispersion=along)
 
             c, nu = picard_shock_step(with_extra, coeff, c, passes=passes)
-            A = (S + isotropic_stiffness(cells, grads, vol, nu, n)).tocsr()
+            A = (S + isotropic_stiffness(site.points, cells, nu, n)).tocsr()
         r = A @ c - rhs  # consistent residual: what the fixed rows need (T9)
         inflow += dt * float(r[fixed].sum())
         outflow += dt * float(out_weight @ c)
