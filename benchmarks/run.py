@@ -193,8 +193,10 @@ def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
         tau = supg_tau(a, kappa, k / m, hl, dt)
         M, K = transport_operators(site.points, site.cells, m=m, k=k, q=q, a=a, tau=tau,
                                    theta_d=theta_d, n=n, pattern=pattern)
-        S = pattern.matrix(M.data / dt + K.data)  # backward Euler (θ = 1), same pattern
-        T = pattern.matrix(M.data / dt)
+        # backward Euler (θ = 1) on the shared pattern, in place: T = M/Δt, S = T + K
+        M.data /= dt
+        K.data += M.data
+        S, T = K, M
         del M, K
         t_build = time.perf_counter() - t
         S_ff, S_fD = split_rows(S, free, fixed)
