@@ -131,13 +131,13 @@ def site_stage(h: float, dz: float, folder: Path) -> dict[str, Any]:
 
 
 def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
-    import scipy.sparse as sp
 
     from fe3d.case.load import parse_case
     from fe3d.flow.solve import unit_materials
     from fe3d.linalg import LinearSolver, solve_with_preconditioner
     from fe3d.mesh.site_mesh import SiteMesh
     from fe3d.p1 import length_along, split_rows, volumes
+    from fe3d.sgs import plus_diagonal
     from fe3d.transport.assembly import transport_operators
     from fe3d.transport.dispersion import dispersion_tensor
     from fe3d.transport.stabilization import supg_tau
@@ -175,6 +175,7 @@ def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
     hl = length_along(site.points, site.cells, a)
     vol = volumes(site.points, site.cells)
     courant_rate = float(np.max(np.sqrt(speed2) / hl))
+    del v, speed2, along  # not needed by the operators
     t_prep = time.perf_counter() - t
 
     p = site.points
@@ -255,7 +256,7 @@ def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
                 r0 = rn if r0 is None else r0
                 if rn <= tol * r0 or rn == 0.0:
                     break
-                J = (S_ff + sp.diags(2.0 * wk * np.abs(c))).tocsr()
+                J = plus_diagonal(S_ff, 2.0 * wk * np.abs(c))
                 st: dict[str, float] = {}
                 delta = solve_with_preconditioner(J, r, M_pre, tol=min(0.1, 0.1 * rn / r0),
                                                   stats=st)
@@ -277,6 +278,8 @@ def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
             "newton_precond": pre.method, "newton_precond_setup_s": t_pre,
             "newton_per_step": (len(newton_its) / STEPS),
             "newton_gmres_iterations": gmres_its}
+        # free this step length's matrices and solvers before the next one is built
+        del S, T, S_ff, S_fD, solver, pre, M_pre, J, spmv_unit
     out["peak_mib"] = _peak_mib()
     return out
 

@@ -22,7 +22,7 @@ import scipy.sparse.linalg as spla
 
 from fe3d._typing import FloatArray, IndexArray
 
-__all__ = ["SymmetricGaussSeidel"]
+__all__ = ["SymmetricGaussSeidel", "plus_diagonal"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -98,6 +98,19 @@ def _upper_product(indptr: IndexArray, indices: IndexArray, data: FloatArray,
         for p in range(dpos[i], indptr[i + 1]):
             s += data[p] * v[indices[p]]
         out[i] = s
+
+
+def plus_diagonal(A: sp.csr_matrix, d: FloatArray) -> sp.csr_matrix:
+    """A + diag(d) on A's own pattern when A stores its whole diagonal (index arrays shared,
+    only the values new: a Newton Jacobian J = S + diag without scipy's merge); otherwise by
+    scipy's addition."""
+    A = A.tocsr()
+    pos = _diagonal_positions(A.indptr, A.indices)
+    if np.any(pos < 0):
+        return (A + sp.diags(d)).tocsr()
+    data = A.data.copy()
+    data[pos] += d
+    return sp.csr_matrix((data, A.indices, A.indptr), shape=A.shape, copy=False)
 
 
 class SymmetricGaussSeidel:

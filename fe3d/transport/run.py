@@ -35,6 +35,7 @@ from fe3d.mesh.locate import locate_points, sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import BoundaryFacets, gradients, length_along, split_rows, volumes
 from fe3d.reactions import kinetics, sorption
+from fe3d.sgs import plus_diagonal
 from fe3d.transport.assembly import P1_MASS, transport_operators
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.dispersion import dispersion_tensor
@@ -823,8 +824,7 @@ def _nonlinear_step(
         c[free] = x
         _, dsig = sorbed(c)
         _, dloss = s.reaction_loss(c)
-        J = (S_ff + sp.diags(dsig[free] * (co.a0 / dt + th * lam_s)
-                             + th * dloss[free])).tocsr()
+        J = plus_diagonal(S_ff, dsig[free] * (co.a0 / dt + th * lam_s) + th * dloss[free])
         if M_step is None:
             return LinearSolver(J, method="direct", tol=min(tol, 1e-12)).solve(r)
         return solve_with_preconditioner(J, r, M_step,

@@ -11,7 +11,7 @@ import pytest
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from fe3d.sgs import SymmetricGaussSeidel
+from fe3d.sgs import SymmetricGaussSeidel, plus_diagonal
 
 
 def _matrix(n: int = 60, seed: int = 4) -> sp.csr_matrix:
@@ -59,3 +59,15 @@ def test_zero_diagonal_is_refused() -> None:
     A = sp.csr_matrix(np.array([[0.0, 1.0], [1.0, 2.0]]))
     with pytest.raises(ValueError, match="zero on its diagonal"):
         SymmetricGaussSeidel(A)
+
+
+def test_plus_diagonal_shares_the_pattern_and_matches_scipy() -> None:
+    A = _matrix(30, seed=2)
+    A.sort_indices()
+    d = np.linspace(1.0, 2.0, 30)
+    J = plus_diagonal(A, d)
+    assert np.shares_memory(J.indices, A.indices)  # only the values are new
+    assert abs(J - (A + sp.diags(d))).max() == 0.0
+    no_diag = sp.csr_matrix(np.array([[0.0, 1.0], [1.0, 0.0]]))  # diagonal not stored
+    assert np.allclose(plus_diagonal(no_diag, np.array([3.0, 4.0])).toarray(),
+                       [[3.0, 1.0], [1.0, 4.0]])
