@@ -143,9 +143,10 @@ def main() -> int:
     load = Path("/proc/loadavg").read_text().split()[:3]
     lines = ["", "## Flow (benchmarks/flow_bench.py)", "",
              "Layered 1 km × 1 km site (sand / clay / gravel, K from 0.001 to 60 m/d), fixed "
-             "heads, recharge and a pumping well. The two meshes refine in all three "
-             "directions (plan cell and layer cell thickness both halved), so the cell "
-             "aspect ratio, which sets the difficulty for AMG, is the same at both sizes. "
+             "heads, recharge and a pumping well. The meshes refine in all three "
+             "directions (plan cell / layer cell thickness 11.9 / 2.7 m and 11 / 2.5 m "
+             "coarse, 5.5 / 1.25 m fine), so the cell aspect ratio, which sets the "
+             "difficulty for AMG, is nearly the same at all sizes. "
              "'flow total' is solve_flow as it stands (mesh CSR pattern, assembly, CG with "
              "one classical Ruge–Stüben AMG V-cycle: strength threshold 0.5 on the negative "
              "off-diagonals, second pass of the C/F splitting, exact solve at ≤ 500 "
