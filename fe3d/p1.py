@@ -115,21 +115,31 @@ def length_along(points: FloatArray, cells: IndexArray, a: FloatArray) -> FloatA
 
 
 @_jit
-def _pattern_kernel(cells: IndexArray, n: int) -> tuple[IndexArray, IndexArray]:
-    ne = cells.shape[1]
-    start = np.zeros(n + 1, np.int64)  # node → incident cells, as CSR
-    for e in range(ne):
+def _incident_cells(cells: IndexArray, n: int,
+                    wanted: IndexArray) -> tuple[IndexArray, IndexArray]:
+    """Node → incident cells as CSR (``start``, ``incident``), for the nodes marked in
+    ``wanted`` (the others get empty rows)."""
+    start = np.zeros(n + 1, np.int64)
+    for e in range(cells.shape[1]):
         for a in range(4):
-            start[cells[a, e] + 1] += 1
+            if wanted[cells[a, e]]:
+                start[cells[a, e] + 1] += 1
     for i in range(n):
         start[i + 1] += start[i]
     fill = start[:-1].copy()
     incident = np.empty(start[n], np.int64)
-    for e in range(ne):
+    for e in range(cells.shape[1]):
         for a in range(4):
             r = cells[a, e]
-            incident[fill[r]] = e
-            fill[r] += 1
+            if wanted[r]:
+                incident[fill[r]] = e
+                fill[r] += 1
+    return start, incident
+
+
+@_jit
+def _pattern_kernel(cells: IndexArray, n: int) -> tuple[IndexArray, IndexArray]:
+    start, incident = _incident_cells(cells, n, np.ones(n, np.bool_))
     mark = np.full(n, -1, np.int64)
     indptr = np.zeros(n + 1, np.int64)
     for r in range(n):  # first pass: how many distinct neighbours (self included)
@@ -226,25 +236,10 @@ def split_rows(A: sp.csr_matrix, free: IndexArray,
 
 @_jit
 def _owner_kernel(cells: IndexArray, tri: IndexArray, n: int) -> IndexArray:
-    ne = cells.shape[1]
-    start = np.zeros(n + 1, np.int64)  # node → incident cells, only for the facets' nodes
-    wanted = np.zeros(n, np.bool_)
+    wanted = np.zeros(n, np.bool_)  # only the facets' first nodes
     for f in range(tri.shape[1]):
         wanted[tri[0, f]] = True
-    for e in range(ne):
-        for a in range(4):
-            if wanted[cells[a, e]]:
-                start[cells[a, e] + 1] += 1
-    for i in range(n):
-        start[i + 1] += start[i]
-    fill = start[:-1].copy()
-    incident = np.empty(start[n], np.int64)
-    for e in range(ne):
-        for a in range(4):
-            r = cells[a, e]
-            if wanted[r]:
-                incident[fill[r]] = e
-                fill[r] += 1
+    start, incident = _incident_cells(cells, n, wanted)
     owner = np.full(tri.shape[1], -1, np.int64)
     for f in range(tri.shape[1]):
         for p in range(start[tri[0, f]], start[tri[0, f] + 1]):
