@@ -59,25 +59,24 @@ def solve_spd(A: sp.csr_matrix, b: FloatArray, *, tol: float = 1e-12,
     """Solve a symmetric positive definite system (direct when small, AMG-CG otherwise).
 
     The iterative branch (``method="iterative"``, or ``"auto"`` above :data:`DIRECT_LIMIT`
-    unknowns) is conjugate gradients preconditioned by one cycle of classical Ruge–Stüben
-    AMG: strength threshold θ = 0.5 measured on the negative off-diagonals only
-    (``norm="min"``), second pass of the C/F splitting, symmetric Gauss–Seidel smoothing and
-    an exact solve (dense pseudo-inverse, which also survives a singular matrix and leaves
-    the verdict to the residual check) once a level has at most 500 unknowns. The flat P1
-    tetrahedra give the flow matrix positive off-diagonal entries (28 % of them, up to 0.2 of
-    a row's diagonal); with pyamg's default ``norm="abs"`` these counted as strong connections, got
-    interpolated with negative weights, and on the 927 k-node benchmark rows of the Galerkin
-    operators of levels 4–8 had positive off-diagonal sums up to 21× their diagonal, and
-    V-cycles started on levels 4–6 reduced the error by only 0.8–0.9 per cycle (0.3–0.4
-    with ``norm="min"``). CG
+    unknowns) is conjugate gradients preconditioned by one cycle of classical Ruge–Stüben AMG:
+    strength threshold θ = 0.5 measured on the negative off-diagonals only (``norm="min"``),
+    second pass of the C/F splitting, symmetric Gauss–Seidel smoothing and an exact solve
+    (dense pseudo-inverse, which also survives a singular matrix and leaves the verdict to the
+    residual check) once a level has at most 500 unknowns. The flat P1 tetrahedra give the flow
+    matrix positive off-diagonal entries (28 % of them, up to 0.2 of a row's diagonal); with
+    pyamg's default ``norm="abs"`` these counted as strong connections, got interpolated with
+    negative weights, and on the 927 k-node benchmark rows of the Galerkin operators of levels
+    4–8 had positive off-diagonal sums up to 21× their diagonal, and V-cycles started on levels
+    4–6 reduced the error by only 0.8–0.9 per cycle (0.3–0.4 with ``norm="min"``). CG
     iterations on the flow benchmark matrices (134 k → 918 k unknowns, to 1e-10 / 1e-12):
-    ``norm="abs"`` 11 → 19 / 14 → 22 (1.73× / 1.57×); ``norm="min"`` 11 → 14 / 13 → 16
-    (1.27× / 1.23×); with the exact solve at ≤ 500 unknowns, the choice here, 11 → 13 /
-    13 → 16 (1.18× / 1.23×), operator complexity 2.56 / 3.38, AMG set-up about 5 s and CG
-    about 10 s at 918 k unknowns on a loaded 2-core machine (``norm="abs"``: 5 s and 15 s).
-    Earlier measurements (``norm="abs"``, 174 k → 1.2 M unknowns): θ = 0.25, 30 → 63 (to
-    1e-12); θ = 0.5, 26 → 59; smoothed aggregation 97 at 174 k. ``cycle="W"`` (θ = 0.5,
-    one pass) took 12 → 18 iterations but each costs several V-cycles.
+    ``norm="abs"`` 11 → 19 / 14 → 22 (1.73× / 1.57×); ``norm="min"`` 11 → 14 / 13 → 16 (1.27× /
+    1.23×); with the exact solve at ≤ 500 unknowns, the choice here, 11 → 13 / 13 → 16 (1.18× /
+    1.23×), operator complexity 2.56 / 3.38, AMG set-up about 5 s and CG about 10 s at 918 k
+    unknowns on a loaded 2-core machine (``norm="abs"``: 5 s and 15 s). Earlier measurements
+    (``norm="abs"``, 174 k → 1.2 M unknowns): θ = 0.25, 30 → 63 (to 1e-12); θ = 0.5, 26 → 59;
+    smoothed aggregation 97 at 174 k. ``cycle="W"`` (θ = 0.5, one pass) took 12 → 18 iterations
+    but each costs several V-cycles.
 
     ``stats``, when given, receives ``iterations`` (0 for a direct solve), ``setup_s`` and
     ``solve_s`` [s].
@@ -178,8 +177,9 @@ class LinearSolver:
     - ``"direct"``: SuperLU factor, kept;
     - ``"gauss_seidel"``: BiCGSTAB preconditioned by symmetric Gauss–Seidel, run on the
       split system with Eisenstat's product (fe3d/sgs.py): one product of the preconditioned
-      operator costs one forward and one backward triangular pass instead of a product with
-      A plus a two-sweep Gauss–Seidel (about 30 % less per step, docs/performance.md);
+      operator is one backward and one forward triangular pass (1.4–1.6 SpMV) instead of a
+      product with A plus a two-sweep Gauss–Seidel (about 3.6 SpMV); a 1 M-node step fell
+      from 44 to 33 SpMV at Courant 1 (docs/performance.md);
     - ``"jacobi"``: BiCGSTAB preconditioned by the inverse diagonal;
     - ``"amg"``: GMRES with one V-cycle of pyamg unsmoothed aggregation, hierarchy kept;
     - ``"iterative"``: ``"gauss_seidel"`` or ``"amg"``, chosen by a probe solve:
