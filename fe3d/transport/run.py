@@ -569,6 +569,7 @@ def run_transport(
                                if case.solver.shock_capturing else 0):
                     # T15: diffusion from the last iterate, held fixed while the step is solved
                     cf = s.coef
+                    assert grads is not None  # computed above when shock capturing is on
                     nu = shock_diffusivity(
                         site.cells, grads, new, old, dt=dt, m=cf["m"], q=q, k=cf["k"], h=s.h,
                         along_dispersion=cf["m"] * cf["kappa"], theta_t=co.theta,
