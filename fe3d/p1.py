@@ -138,33 +138,38 @@ def _incident_cells(cells: IndexArray, n: int,
 
 
 @_jit
+def _neighbours(r: int, start: IndexArray, incident: IndexArray, cells: IndexArray,
+                mark: IndexArray, out: IndexArray) -> int:
+    """Write the distinct nodes sharing a cell with node r (r included) into ``out``;
+    return how many. ``mark`` remembers the last row that saw each node."""
+    count = 0
+    for p in range(start[r], start[r + 1]):
+        e = incident[p]
+        for b in range(4):
+            c = cells[b, e]
+            if mark[c] != r:
+                mark[c] = r
+                out[count] = c
+                count += 1
+    return count
+
+
+@_jit
 def _pattern_kernel(cells: IndexArray, n: int) -> tuple[IndexArray, IndexArray]:
     start, incident = _incident_cells(cells, n, np.ones(n, np.bool_))
+    widest = 0
+    for r in range(n):
+        widest = max(widest, start[r + 1] - start[r])
+    row = np.empty(4 * widest, np.int64)
     mark = np.full(n, -1, np.int64)
     indptr = np.zeros(n + 1, np.int64)
-    for r in range(n):  # first pass: how many distinct neighbours (self included)
-        count = 0
-        for p in range(start[r], start[r + 1]):
-            e = incident[p]
-            for b in range(4):
-                c = cells[b, e]
-                if mark[c] != r:
-                    mark[c] = r
-                    count += 1
-        indptr[r + 1] = indptr[r] + count
+    for r in range(n):  # first pass: row lengths
+        indptr[r + 1] = indptr[r] + _neighbours(r, start, incident, cells, mark, row)
     indices = np.empty(indptr[n], np.int32)
     mark[:] = -1
-    for r in range(n):  # second pass: fill and sort each row
-        pos = indptr[r]
-        for p in range(start[r], start[r + 1]):
-            e = incident[p]
-            for b in range(4):
-                c = cells[b, e]
-                if mark[c] != r:
-                    mark[c] = r
-                    indices[pos] = c
-                    pos += 1
-        indices[indptr[r]:indptr[r + 1]].sort()
+    for r in range(n):  # second pass: each row's columns, sorted
+        count = _neighbours(r, start, incident, cells, mark, row)
+        indices[indptr[r]:indptr[r + 1]] = np.sort(row[:count])
     return indptr, indices
 
 
