@@ -283,8 +283,9 @@ class LinearSolver:
                 "probe_iterations": self.probe_iterations, "setup_s": self.setup_s}
 
     def preconditioner(self) -> spla.LinearOperator:
-        """An operator M ≈ A⁻¹: the LU solve (direct), one symmetric Gauss–Seidel sweep, the
-        inverse diagonal (Jacobi) or one AMG V-cycle; for :func:`solve_with_preconditioner`
+        """An operator M ≈ A⁻¹: the LU solve (direct), symmetric Gauss–Seidel
+        ((D + U)⁻¹ D (D + L)⁻¹, one forward and one backward pass), the inverse diagonal
+        (Jacobi) or one AMG V-cycle; for :func:`solve_with_preconditioner`
         on nearby matrices (Newton Jacobians of the same step)."""
         n = self.A.shape[0]
         if self.method == "direct":
