@@ -20,6 +20,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.sgs import split_csr
 
 __all__ = ["MASS_FRACTION", "BoundaryFacets", "CsrPattern", "gradients", "length_along",
            "node_graph", "split_rows", "volumes"]
@@ -182,56 +183,18 @@ def node_graph(cells: IndexArray, n: int) -> sp.csr_matrix:
                          shape=(n, n))
 
 
-@_jit
-def _split_kernel(indptr: IndexArray, indices: IndexArray, data: FloatArray,
-                  free: IndexArray, new_id: IndexArray, is_free: IndexArray,
-                  ) -> tuple[IndexArray, IndexArray, FloatArray, IndexArray, IndexArray,
-                             FloatArray]:
-    nf = free.size
-    ff_ptr = np.zeros(nf + 1, np.int64)
-    fd_ptr = np.zeros(nf + 1, np.int64)
-    for a in range(nf):
-        r = free[a]
-        nff = 0
-        for p in range(indptr[r], indptr[r + 1]):
-            if is_free[indices[p]]:
-                nff += 1
-        ff_ptr[a + 1] = ff_ptr[a] + nff
-        fd_ptr[a + 1] = fd_ptr[a] + (indptr[r + 1] - indptr[r] - nff)
-    ff_idx = np.empty(ff_ptr[nf], np.int32)
-    ff_val = np.empty(ff_ptr[nf])
-    fd_idx = np.empty(fd_ptr[nf], np.int32)
-    fd_val = np.empty(fd_ptr[nf])
-    for a in range(nf):
-        r = free[a]
-        pf, pd = ff_ptr[a], fd_ptr[a]
-        for p in range(indptr[r], indptr[r + 1]):
-            c = indices[p]
-            if is_free[c]:
-                ff_idx[pf] = new_id[c]
-                ff_val[pf] = data[p]
-                pf += 1
-            else:
-                fd_idx[pd] = new_id[c]
-                fd_val[pd] = data[p]
-                pd += 1
-    return ff_ptr, ff_idx, ff_val, fd_ptr, fd_idx, fd_val
-
-
 def split_rows(A: sp.csr_matrix, free: IndexArray,
                fixed: IndexArray) -> tuple[sp.csr_matrix, sp.csr_matrix]:
     """``(A[free][:, free], A[free][:, fixed])`` in one pass (``free`` and ``fixed``
     sorted, together every row index once): the blocks of a system reduced to its free
     unknowns, without scipy's two fancy-indexing copies."""
     n = A.shape[0]
-    is_free = np.zeros(n, dtype=np.bool_)
-    is_free[free] = True
+    side = np.ones(n, dtype=np.int8)
+    side[free] = 0
     new_id = np.empty(n, dtype=np.int64)
     new_id[free] = np.arange(free.size)
     new_id[fixed] = np.arange(fixed.size)
-    A = A.tocsr()
-    fp, fi, fv, dp, di, dv = _split_kernel(A.indptr, A.indices, A.data,
-                                          np.asarray(free, dtype=np.int64), new_id, is_free)
+    fp, fi, fv, dp, di, dv = split_csr(A, free, side, new_id)
     ff = sp.csr_matrix((fv, fi, fp), shape=(free.size, free.size))
     fd = sp.csr_matrix((dv, di, dp), shape=(free.size, fixed.size))
     if A.has_sorted_indices:  # columns keep their order within each block
@@ -447,21 +410,6 @@ class CsrPattern:
                           copy=False)
         A.has_sorted_indices = True
         return A
-
-    def holds(self, A: sp.csr_matrix) -> bool:
-        """True when ``A`` is stored on exactly this pattern (values then add directly)."""
-        return (A.shape == (self.n, self.n) and A.nnz == self.nnz
-                and (A.indices is self.indices or np.array_equal(A.indices, self.indices))
-                and (A.indptr is self.indptr or np.array_equal(A.indptr, self.indptr)))
-
-    def diagonal_slots(self) -> IndexArray:
-        """Position of each diagonal entry (i, i) in the value array, ``(n,)``."""
-        rows = np.repeat(np.arange(self.n, dtype=np.int64), np.diff(self.indptr))
-        at = np.flatnonzero(self.indices == rows)
-        if at.size != self.n:
-            msg = "a node belongs to no cell: the pattern has an empty row"
-            raise ValueError(msg)
-        return at
 
     def values_of(self, A: sp.spmatrix) -> FloatArray:
         """The value array, on this pattern, of a matrix whose entries all lie in it (a

@@ -22,7 +22,7 @@ import scipy.sparse.linalg as spla
 
 from fe3d._typing import FloatArray, IndexArray
 
-__all__ = ["SymmetricGaussSeidel", "plus_diagonal"]
+__all__ = ["SymmetricGaussSeidel", "plus_diagonal", "split_csr"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -48,33 +48,59 @@ def _is_sorted(indptr: IndexArray, indices: IndexArray) -> bool:
 
 
 @_jit
-def _triangles(indptr: IndexArray, indices: IndexArray, data: FloatArray,
-               dpos: IndexArray) -> tuple[IndexArray, IndexArray, FloatArray, IndexArray,
-                                          IndexArray, FloatArray]:
-    """Strictly lower and strictly upper parts as two CSR arrays (each pass then streams
-    only its own entries)."""
-    n = indptr.size - 1
-    lp = np.zeros(n + 1, np.int64)
-    up = np.zeros(n + 1, np.int64)
-    for i in range(n):
-        lp[i + 1] = lp[i] + (dpos[i] - indptr[i])
-        up[i + 1] = up[i] + (indptr[i + 1] - dpos[i] - 1)
-    li = np.empty(lp[n], indices.dtype)
-    ld = np.empty(lp[n])
-    ui = np.empty(up[n], indices.dtype)
-    ud = np.empty(up[n])
-    for i in range(n):
-        k = lp[i]
-        for p in range(indptr[i], dpos[i]):
-            li[k] = indices[p]
-            ld[k] = data[p]
-            k += 1
-        k = up[i]
-        for p in range(dpos[i] + 1, indptr[i + 1]):
-            ui[k] = indices[p]
-            ud[k] = data[p]
-            k += 1
-    return lp, li, ld, up, ui, ud
+def _split_kernel(indptr: IndexArray, indices: IndexArray, data: FloatArray,
+                  rows: IndexArray, column_side: IndexArray, new_column: IndexArray,
+                  by_triangle: bool) -> tuple[IndexArray, IndexArray, FloatArray, IndexArray,
+                                              IndexArray, FloatArray]:
+    """The rows ``rows`` of a CSR matrix split in two CSR blocks (pointers, columns, values
+    of each) by the side of every entry: 0 first block, 1 second, anything else dropped.
+    The side is ``column_side[c]``, or with ``by_triangle`` 0 below the diagonal, 1 above
+    it, the diagonal dropped. Columns are renumbered by ``new_column``; order is kept."""
+    m = rows.size
+    ptr0 = np.zeros(m + 1, np.int64)
+    ptr1 = np.zeros(m + 1, np.int64)
+    for a in range(m):
+        r = rows[a]
+        n0 = n1 = 0
+        for p in range(indptr[r], indptr[r + 1]):
+            c = indices[p]
+            side = (0 if c < r else (1 if c > r else 2)) if by_triangle else column_side[c]
+            if side == 0:
+                n0 += 1
+            elif side == 1:
+                n1 += 1
+        ptr0[a + 1] = ptr0[a] + n0
+        ptr1[a + 1] = ptr1[a] + n1
+    idx0, val0 = np.empty(ptr0[m], np.int32), np.empty(ptr0[m])
+    idx1, val1 = np.empty(ptr1[m], np.int32), np.empty(ptr1[m])
+    for a in range(m):
+        r = rows[a]
+        k0, k1 = ptr0[a], ptr1[a]
+        for p in range(indptr[r], indptr[r + 1]):
+            c = indices[p]
+            side = (0 if c < r else (1 if c > r else 2)) if by_triangle else column_side[c]
+            if side == 0:
+                idx0[k0], val0[k0] = new_column[c], data[p]
+                k0 += 1
+            elif side == 1:
+                idx1[k1], val1[k1] = new_column[c], data[p]
+                k1 += 1
+    return ptr0, idx0, val0, ptr1, idx1, val1
+
+
+def split_csr(A: sp.csr_matrix, rows: IndexArray, column_side: IndexArray | None,
+              new_column: IndexArray) -> tuple[IndexArray, IndexArray, FloatArray,
+                                               IndexArray, IndexArray, FloatArray]:
+    """Rows ``rows`` of ``A`` split in two CSR blocks in one compiled pass: by
+    ``column_side`` (0 or 1 per column, other values dropped), or, when it is None, into
+    the strictly lower and strictly upper triangles. Columns renumbered by ``new_column``.
+    Returns (pointers, columns, values) of the first block, then of the second."""
+    A = A.tocsr()
+    by_triangle = column_side is None
+    side = np.zeros(1, np.int8) if column_side is None else np.asarray(column_side, np.int8)
+    return _split_kernel(A.indptr, A.indices, np.asarray(A.data, dtype=float),
+                         np.asarray(rows, dtype=np.int64), side,
+                         np.asarray(new_column, dtype=np.int64), by_triangle)
 
 
 # The triangular passes below keep two partial sums per row: the rows of a pass depend on
@@ -187,7 +213,8 @@ class SymmetricGaussSeidel:
         self.d = data[dpos]
         self.inv_d = 1.0 / self.d
         self.n = A.shape[0]
-        lp, li, ld, up, ui, ud = _triangles(A.indptr, A.indices, data, dpos)
+        all_rows = np.arange(self.n, dtype=np.int64)
+        lp, li, ld, up, ui, ud = split_csr(A, all_rows, None, all_rows)
         self._lower = (lp, li, ld)
         self._upper = (up, ui, ud)
 

@@ -21,6 +21,7 @@ from fe3d.linalg import FLOW_TOLERANCE, solve_spd
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import gradients, split_rows
+from fe3d.sgs import plus_diagonal
 
 __all__ = ["BoundaryFlow", "FlowField", "solve_flow", "unit_materials"]
 
@@ -220,7 +221,6 @@ def solve_flow(
     active = [np.ones(n, dtype=bool) for _ in robin]
     fixed = np.nonzero(is_fixed)[0]
     free = np.nonzero(~is_fixed)[0]
-    diag_at = site.pattern.diagonal_slots()
     iterations = 0
     stats: dict[str, float] = {}
     for _ in range(50):
@@ -229,9 +229,7 @@ def solve_flow(
         for (hd, la), act in zip(robin, active, strict=True):
             diag += la * act
             rhs += la * act * hd.stage
-        data = A.data.copy()
-        data[diag_at] += diag
-        M = site.pattern.matrix(data)
+        M = plus_diagonal(A, diag)
         if fixed.size:
             M_ff, M_fD = split_rows(M, free, fixed)
             b_f = rhs[free] - M_fD @ head[fixed]

@@ -11,7 +11,7 @@ import pytest
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from fe3d.sgs import SymmetricGaussSeidel, plus_diagonal
+from fe3d.sgs import SymmetricGaussSeidel, plus_diagonal, split_csr
 
 
 def _matrix(n: int = 60, seed: int = 4) -> sp.csr_matrix:
@@ -71,3 +71,26 @@ def test_plus_diagonal_shares_the_pattern_and_matches_scipy() -> None:
     no_diag = sp.csr_matrix(np.array([[0.0, 1.0], [1.0, 0.0]]))  # diagonal not stored
     assert np.allclose(plus_diagonal(no_diag, np.array([3.0, 4.0])).toarray(),
                        [[3.0, 1.0], [1.0, 4.0]])
+
+
+def test_split_csr_gives_the_triangles_and_the_free_fixed_blocks() -> None:
+    """Both uses of the one split kernel against scipy's tril/triu and fancy indexing."""
+    A = _matrix(40, seed=6)
+    A.sort_indices()
+    rows = np.arange(40)
+    lp, li, ld, up, ui, ud = split_csr(A, rows, None, rows)
+    lower = sp.csr_matrix((ld, li, lp), shape=A.shape)
+    upper = sp.csr_matrix((ud, ui, up), shape=A.shape)
+    assert abs(lower - sp.tril(A, k=-1)).max() == 0.0
+    assert abs(upper - sp.triu(A, k=1)).max() == 0.0
+    keep = np.array([1, 4, 5, 20, 39])
+    side = np.ones(40, np.int8)
+    side[keep] = 0
+    new = np.zeros(40, np.int64)
+    new[keep] = np.arange(keep.size)
+    new[side == 1] = np.arange(40 - keep.size)
+    p0, i0, v0, p1, i1, v1 = split_csr(A, keep, side, new)
+    block0 = sp.csr_matrix((v0, i0, p0), shape=(keep.size, keep.size))
+    block1 = sp.csr_matrix((v1, i1, p1), shape=(keep.size, 40 - keep.size))
+    assert abs(block0 - A[keep][:, keep]).max() == 0.0
+    assert abs(block1 - A[keep][:, side == 1]).max() == 0.0
