@@ -20,6 +20,7 @@ import scipy.sparse.linalg as spla
 
 from fe3d._typing import FloatArray
 from fe3d.errors import SolverError
+from fe3d.krylov import SolutionWindow, bicgstab
 from fe3d.sgs import SymmetricGaussSeidel
 
 __all__ = ["DIRECT_LIMIT", "FLOW_TOLERANCE", "PROBE_ITERATIONS", "TRANSPORT_METHODS",
@@ -116,6 +117,19 @@ def solve_spd(A: sp.csr_matrix, b: FloatArray, *, tol: float = 1e-12,
 TRANSPORT_METHODS = ("auto", "direct", "iterative", "gauss_seidel", "jacobi", "amg")
 """Accepted ``method`` values of :class:`LinearSolver`."""
 
+START_WINDOW = 6
+"""Number of earlier solutions a Gauss–Seidel :class:`LinearSolver` keeps to start the next
+solve from their best combination (fe3d/krylov.py, :class:`SolutionWindow`): 2 × 6 vectors
+of the system's size. Measured on the 223 k-node benchmark step matrices over 16 steps of a
+growing plume: 4, 6 and 8 kept took the iterations from 5 to 3–4 at Courant 1 and from 15
+to 13, 11–12 and 11 at Courant 10 (docs/performance.md); 0 turns it off."""
+
+RELAXATION = 1.2
+"""Relaxation factor ω of the Gauss–Seidel preconditioner (SSOR; 1 is symmetric
+Gauss–Seidel). Measured on the 223 k-node benchmark step matrices, BiCGSTAB iterations to
+1e-10 from a zero start for ω = 0.8, 1.0, 1.1, 1.2, 1.3, 1.4, 1.6: 8, 6, 6, 6, 7, 8, 11 at
+Courant 1 and 20, 16, 15, 13, 13, 14, 21 at Courant 10 (docs/performance.md)."""
+
 PROBE_ITERATIONS = 30
 """Largest number of BiCGSTAB iterations with the Gauss–Seidel preconditioner the automatic
 choice allows on its probe solve before it builds an AMG preconditioner instead. Measured on
@@ -179,7 +193,9 @@ class LinearSolver:
       split system with Eisenstat's product (fe3d/sgs.py): one product of the preconditioned
       operator is one backward and one forward triangular pass (1.4–1.6 SpMV) instead of a
       product with A plus a two-sweep Gauss–Seidel (about 3.6 SpMV); a 1 M-node step fell
-      from 44 to 33 SpMV at Courant 1 (docs/performance.md);
+      from 44 to 33 SpMV at Courant 1 (docs/performance.md). Each solve starts from the
+      best combination of the last ``window`` solutions (fe3d/krylov.py), so a run of time
+      steps with one matrix needs fewer iterations as it goes;
     - ``"jacobi"``: BiCGSTAB preconditioned by the inverse diagonal;
     - ``"amg"``: GMRES with one V-cycle of pyamg unsmoothed aggregation, hierarchy kept;
     - ``"iterative"``: ``"gauss_seidel"`` or ``"amg"``, chosen by a probe solve:
@@ -196,7 +212,8 @@ class LinearSolver:
     """
 
     def __init__(self, A: sp.csr_matrix, *, method: str = "auto", tol: float = 1e-10,
-                 max_iter: int = 300) -> None:
+                 max_iter: int = 300, window: int = START_WINDOW,
+                 omega: float = RELAXATION) -> None:
         import time
 
         if method not in TRANSPORT_METHODS:
@@ -205,6 +222,7 @@ class LinearSolver:
         self.A = A.tocsr()
         self.tol = tol
         self.max_iter = max_iter
+        self.omega = omega
         self.iterations: list[int] = []
         self.probe_iterations = 0
         self._ml: Any = None
@@ -221,6 +239,7 @@ class LinearSolver:
             self.method = self._probe()
         if self.method == "amg":
             self._build_amg()
+        self._window = SolutionWindow(n, window if self.method == "gauss_seidel" else 0)
         self.setup_s = time.perf_counter() - t0
 
     def _diagonal_inverse(self) -> FloatArray:
@@ -241,19 +260,36 @@ class LinearSolver:
         """The compiled symmetric Gauss–Seidel splitting of A, built once."""
         if self._split is None:
             try:
-                self._split = SymmetricGaussSeidel(self.A)
+                self._split = SymmetricGaussSeidel(self.A, omega=self.omega)
             except ValueError as exc:
                 raise SolverError(str(exc)) from exc
         return self._split
 
-    def _sgs_solve(self, b: FloatArray, x0: FloatArray | None,
-                   max_iter: int) -> tuple[FloatArray, int]:
-        """BiCGSTAB on the SGS-split system (Eisenstat's product, fe3d/sgs.py)."""
+    def _sgs_solve(self, b: FloatArray, x0: FloatArray | None, max_iter: int,
+                   window: SolutionWindow | None = None,
+                   ) -> tuple[FloatArray, FloatArray, int]:
+        """BiCGSTAB (fe3d/krylov.py) on the SGS-split system Â y = M_L⁻¹ b with Eisenstat's
+        product (fe3d/sgs.py), started from the window's best combination of earlier
+        solutions when it holds any, else from ``x0``. Returns (x, y = M_R x, iterations);
+        stops when ‖M_L⁻¹(b − A x)‖ ≤ tol ‖M_L⁻¹ b‖."""
         g = self._sgs()
-        y0 = None if x0 is None else g.right(x0)
-        y, its = _krylov(g.split_operator(), g.left(b), None, tol=self.tol, x0=y0,
-                         max_iter=max_iter, kind="bicgstab")
-        return g.right_solve(y), its
+        b = np.ascontiguousarray(b, dtype=float)
+        if window is not None and len(window):
+            y, r = window.start(b)
+            b_hat, r_hat = g.left_pair(b, r)
+        elif x0 is not None and np.any(x0):
+            x0 = np.ascontiguousarray(x0, dtype=float)
+            y = g.right(x0)
+            b_hat, r_hat = g.left_pair(b, b - self.A @ x0)
+        else:
+            y = np.zeros_like(b)
+            b_hat = g.left(b)
+            r_hat = b_hat.copy()
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            its, _ = bicgstab(g.split_product, r_hat, y,
+                              target=self.tol * float(np.linalg.norm(b_hat)),
+                              max_iter=max_iter)
+        return g.right_solve(y), y, its
 
     def _build_amg(self) -> None:
         import pyamg
@@ -266,9 +302,9 @@ class LinearSolver:
         """Gauss–Seidel or AMG: try BiCGSTAB on b = A x for a fixed pseudo-random x."""
         rng = np.random.default_rng(0)
         b = self.A @ rng.standard_normal(self.A.shape[0])
-        x, its = self._sgs_solve(b, None, PROBE_ITERATIONS)
+        x, _, its = self._sgs_solve(b, None, PROBE_ITERATIONS)
         self.probe_iterations = its
-        ok = _converged(self.A, x, b, self.tol)
+        ok = _residual(self.A, x, b, self.tol) is not None
         logger.info("linear solver probe: Gauss-Seidel-BiCGSTAB %d iterations, %s", its,
                     "kept" if ok else "AMG chosen")
         return "gauss_seidel" if ok else "amg"
@@ -306,11 +342,14 @@ class LinearSolver:
             self.iterations.append(0)
         elif self.method in ("gauss_seidel", "jacobi"):
             if self.method == "gauss_seidel":
-                x, its = self._sgs_solve(b, x0, self.max_iter)
+                x, y, its = self._sgs_solve(b, x0, self.max_iter, self._window)
             else:
                 x, its = _krylov(self.A, b, self.preconditioner(), tol=self.tol, x0=x0,
                                  max_iter=self.max_iter, kind="bicgstab")
-            verified = _converged(self.A, x, b, self.tol)
+            residual = _residual(self.A, x, b, self.tol)
+            verified = residual is not None
+            if residual is not None and self.method == "gauss_seidel":
+                self._window.add(y, b - residual)
             if not verified:
                 logger.info("%s-BiCGSTAB missed the tolerance after %d iterations; AMG from "
                             "now", self.method, its)
@@ -331,9 +370,13 @@ class LinearSolver:
         return x
 
 
-def _converged(A: Any, x: FloatArray, b: FloatArray, tol: float) -> bool:
-    """True residual within the tolerance accepted by ``_check`` (10 tol)."""
+def _residual(A: Any, x: FloatArray, b: FloatArray, tol: float) -> FloatArray | None:
+    """The true residual b − Ax when it is within the tolerance accepted by ``_check``
+    (‖b − Ax‖ ≤ 10 tol ‖b‖), else None."""
     if not np.all(np.isfinite(x)):
-        return False
+        return None
     with np.errstate(invalid="ignore", over="ignore"):
-        return _relative_residual(A, x, b) <= max(10.0 * tol, 1e-13)
+        r = b - A @ x
+        nb = float(np.linalg.norm(b))
+        ok = nb == 0.0 or float(np.linalg.norm(r)) <= max(10.0 * tol, 1e-13) * nb
+    return r if ok else None

@@ -11,6 +11,11 @@ methods", SIAM J. Sci. Stat. Comput. 2(1)). One product with Â costs one backwa
 forward triangular pass, about the work of one product with A, where an explicit product
 plus an SGS sweep costs about three. The Krylov method runs on Â y = M_L⁻¹ b, and
 x = M_R⁻¹ y.
+
+With a relaxation factor ω (symmetric successive over-relaxation, SSOR) D is replaced by
+D/ω in M_L and M_R, and A = (D/ω + L) + (D/ω + U) − (2D/ω − D) gives the same product with
+v − (2D/ω − D) w in the forward pass; ω = 1 is SGS. The constant factor ω(2 − ω) of the
+usual SSOR matrix changes no Krylov iterate and is left out.
 """
 
 from __future__ import annotations
@@ -142,10 +147,26 @@ def _lower_solve(lp: IndexArray, li: IndexArray, ld: FloatArray, inv_d: FloatArr
 
 
 @_jit
+def _lower_solve_pair(lp: IndexArray, li: IndexArray, ld: FloatArray, inv_d: FloatArray,
+                      v1: FloatArray, v2: FloatArray, out1: FloatArray,
+                      out2: FloatArray) -> None:
+    """out1 = (D + L)⁻¹ v1 and out2 = (D + L)⁻¹ v2 in one pass over L."""
+    for i in range(v1.size):
+        s1, s2 = v1[i], v2[i]
+        for p in range(lp[i], lp[i + 1]):
+            c, a = li[p], ld[p]
+            s1 -= a * out1[c]
+            s2 -= a * out2[c]
+        out1[i] = s1 * inv_d[i]
+        out2[i] = s2 * inv_d[i]
+
+
+@_jit
 def _split_product(lp: IndexArray, li: IndexArray, ld: FloatArray, up: IndexArray,
                    ui: IndexArray, ud: FloatArray, d: FloatArray, inv_d: FloatArray,
-                   v: FloatArray, w: FloatArray, out: FloatArray) -> None:
-    """out = Â v (module docstring): w = (D + U)⁻¹ v, then out = D [w + (D + L)⁻¹(v − D w)]."""
+                   e: FloatArray, v: FloatArray, w: FloatArray, out: FloatArray) -> None:
+    """out = Â v (module docstring) with d the relaxed diagonal D/ω and e = 2D/ω − D:
+    w = (D/ω + U)⁻¹ v, then out = D/ω [w + (D/ω + L)⁻¹(v − e w)]."""
     n = v.size
     for i in range(n - 1, -1, -1):
         s1, s2 = v[i], 0.0
@@ -158,7 +179,7 @@ def _split_product(lp: IndexArray, li: IndexArray, ld: FloatArray, up: IndexArra
             s1 -= ud[p] * w[ui[p]]
         w[i] = (s1 + s2) * inv_d[i]
     for i in range(n):
-        s1, s2 = v[i] - d[i] * w[i], 0.0
+        s1, s2 = v[i] - e[i] * w[i], 0.0
         p, b = lp[i], lp[i + 1]
         while p + 1 < b:
             s1 -= ld[p] * out[li[p]]
@@ -196,11 +217,12 @@ def plus_diagonal(A: sp.csr_matrix, d: FloatArray) -> sp.csr_matrix:
 
 
 class SymmetricGaussSeidel:
-    """SGS splitting of a square CSR matrix with a nonzero diagonal (``ValueError``
-    otherwise); column indices are sorted on a copy when they are not. Holds the strictly
-    lower and upper parts as two CSR arrays (about the memory of A once more)."""
+    """SGS (``omega`` = 1) or SSOR (0 < ``omega`` < 2) splitting of a square CSR matrix
+    with a nonzero diagonal (``ValueError`` otherwise); column indices are sorted on a copy
+    when they are not. Holds the strictly lower and upper parts as two CSR arrays (about
+    the memory of A once more). ``d`` is the relaxed diagonal D/ω."""
 
-    def __init__(self, A: sp.csr_matrix) -> None:
+    def __init__(self, A: sp.csr_matrix, omega: float = 1.0) -> None:
         A = A.tocsr()
         if not _is_sorted(A.indptr, A.indices):
             A = A.copy()
@@ -210,8 +232,13 @@ class SymmetricGaussSeidel:
         if np.any(dpos < 0) or np.any(data[np.maximum(dpos, 0)] == 0.0):
             msg = "the matrix has a zero on its diagonal: no Gauss–Seidel"
             raise ValueError(msg)
-        self.d = data[dpos]
+        if not 0.0 < omega < 2.0:
+            msg = f"relaxation factor omega = {omega!r}: expected 0 < omega < 2"
+            raise ValueError(msg)
+        self.omega = float(omega)
+        self.d = data[dpos] / self.omega  # the relaxed diagonal D/ω
         self.inv_d = 1.0 / self.d
+        self.e = 2.0 * self.d - data[dpos]
         self.n = A.shape[0]
         all_rows = np.arange(self.n, dtype=np.int64)
         lp, li, ld, up, ui, ud = split_csr(A, all_rows, None, all_rows)
@@ -219,7 +246,7 @@ class SymmetricGaussSeidel:
         self._upper = (up, ui, ud)
 
     def preconditioner(self) -> spla.LinearOperator:
-        """M⁻¹ = (D + U)⁻¹ D (D + L)⁻¹ as an operator (one forward and one backward pass)."""
+        """M⁻¹ = (D/ω + U)⁻¹ D/ω (D/ω + L)⁻¹ as an operator (one forward and one backward pass)."""
         n = self.n
 
         def apply(v: FloatArray) -> FloatArray:
@@ -235,31 +262,40 @@ class SymmetricGaussSeidel:
 
     def split_operator(self) -> spla.LinearOperator:
         """Â = M_L⁻¹ A M_R⁻¹ by Eisenstat's product (module docstring)."""
-        n = self.n
-        w = np.empty(n)
-
         def apply(v: FloatArray) -> FloatArray:
-            out = np.empty(n)
-            _split_product(*self._lower, *self._upper, self.d, self.inv_d,
-                           np.ascontiguousarray(v, dtype=float).ravel(), w, out)
-            return out
+            return self.split_product(np.ascontiguousarray(v, dtype=float).ravel())
 
-        return spla.LinearOperator((n, n), matvec=apply, dtype=float)
+        return spla.LinearOperator((self.n, self.n), matvec=apply, dtype=float)
+
+    def split_product(self, v: FloatArray) -> FloatArray:
+        """Â v (one backward and one forward pass); ``v`` contiguous float64."""
+        out, w = np.empty(self.n), np.empty(self.n)
+        _split_product(*self._lower, *self._upper, self.d, self.inv_d, self.e, v, w, out)
+        return out
 
     def left(self, b: FloatArray) -> FloatArray:
-        """M_L⁻¹ b = D (D + L)⁻¹ b."""
+        """M_L⁻¹ b = D/ω (D/ω + L)⁻¹ b."""
         out = np.empty(self.n)
         _lower_solve(*self._lower, self.inv_d, np.ascontiguousarray(b, dtype=float), out)
         return out * self.d
 
+    def left_pair(self, b: FloatArray, r: FloatArray) -> tuple[FloatArray, FloatArray]:
+        """(M_L⁻¹ b, M_L⁻¹ r) in one pass over the lower triangle."""
+        out1, out2 = np.empty(self.n), np.empty(self.n)
+        _lower_solve_pair(*self._lower, self.inv_d, np.ascontiguousarray(b, dtype=float),
+                          np.ascontiguousarray(r, dtype=float), out1, out2)
+        out1 *= self.d
+        out2 *= self.d
+        return out1, out2
+
     def right(self, x: FloatArray) -> FloatArray:
-        """M_R x = (D + U) x."""
+        """M_R x = (D/ω + U) x."""
         out = np.empty(self.n)
         _upper_product(*self._upper, self.d, np.ascontiguousarray(x, dtype=float), out)
         return out
 
     def right_solve(self, y: FloatArray) -> FloatArray:
-        """M_R⁻¹ y = (D + U)⁻¹ y."""
+        """M_R⁻¹ y = (D/ω + U)⁻¹ y."""
         out = np.empty(self.n)
         _upper_solve(*self._upper, self.inv_d, np.ascontiguousarray(y, dtype=float), out)
         return out

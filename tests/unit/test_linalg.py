@@ -99,7 +99,10 @@ def test_linear_solver_matches_reference(method: str, kind: str) -> None:
     if solver.method == "direct":
         assert solver.iterations == [0, 0]
     else:
-        assert all(i > 0 for i in solver.iterations)
+        assert solver.iterations[0] > 0
+        # Gauss–Seidel starts from the best combination of its earlier solutions, and 2b is
+        # in their span: no iteration; the others start from x0 = x, half the answer
+        assert (solver.iterations[1] == 0) == (solver.method == "gauss_seidel")
         assert solver.stats["iterations_total"] == sum(solver.iterations)
 
 
@@ -108,11 +111,11 @@ def test_automatic_choice_follows_the_courant_number() -> None:
     (``method="iterative"`` skips the direct branch at these small sizes)."""
     h = 1.0 / (N1 + 1)
     low = LinearSolver(transport_3d(dt=0.5 * h), method="iterative", tol=TOL)
-    # 64 000 unknowns, dispersion-dominated (grid Fourier number about 80 000): point-
-    # preconditioned Krylov iterations grow like h^(-1/2) or faster (measured 23, 37, 46 at
-    # 20, 30, 40 points per side), above the probe's limit at 40
-    h2 = 1.0 / 41
-    high = LinearSolver(transport_3d(40, dt=50.0 * h2, dispersion=1.0), method="iterative",
+    # 110 592 unknowns, dispersion-dominated (grid Fourier number about 10⁷): point-
+    # preconditioned Krylov iterations grow with the grid (SSOR ω = 1.2 needed 37 and 36
+    # from a zero start at 40 and 44 points per side), beyond the probe's limit at 48
+    h2 = 1.0 / 49
+    high = LinearSolver(transport_3d(48, dt=5000.0 * h2, dispersion=1.0), method="iterative",
                         tol=TOL)
     assert (low.method, high.method) == ("gauss_seidel", "amg")
     assert 0 < low.probe_iterations <= PROBE_ITERATIONS

@@ -42,6 +42,38 @@ def test_split_operator_and_preconditioner_match_explicit_triangular_solves() ->
     got = g.preconditioner() @ v
     assert np.allclose(got, ref_m, rtol=0, atol=1e-12 * abs(ref_m).max())
     assert np.allclose(g.right_solve(g.right(v)), v, atol=1e-12)
+    # the pair of left solves in one pass: D (D+L)⁻¹ b and D (D+L)⁻¹ r
+    r = np.random.default_rng(1).standard_normal(n)
+    got_b, got_r = g.left_pair(v, r)
+    for got, rhs in ((got_b, v), (got_r, r)):
+        ref_l = d * spla.spsolve_triangular(lower, rhs)
+        assert np.allclose(got, ref_l, rtol=0, atol=1e-12 * abs(ref_l).max())
+    assert np.allclose(g.split_product(v), ref, rtol=0, atol=1e-12 * abs(ref).max())
+
+
+@pytest.mark.parametrize("omega", [0.7, 1.2, 1.6])
+def test_relaxed_split_operator_matches_explicit_ssor(omega: float) -> None:
+    """SSOR: D → D/ω in both triangular factors (Saad 2003, "Iterative methods for sparse
+    linear systems", 2nd ed., sec. 4.1 and 10.2); the product Â v = D/ω (D/ω + L)⁻¹ A
+    (D/ω + U)⁻¹ v still costs one backward and one forward pass."""
+    A = _matrix(seed=11)
+    n = A.shape[0]
+    dw = A.diagonal() / omega
+    lower = (sp.tril(A, k=-1) + sp.diags(dw)).tocsr()
+    upper = (sp.triu(A, k=1) + sp.diags(dw)).tocsr()
+    g = SymmetricGaussSeidel(A, omega=omega)
+    v = np.random.default_rng(2).standard_normal(n)
+    ref = dw * spla.spsolve_triangular(lower, A @ spla.spsolve_triangular(upper, v, lower=False))
+    assert np.allclose(g.split_product(v), ref, rtol=0, atol=1e-12 * abs(ref).max())
+    ref_m = spla.spsolve_triangular(upper, dw * spla.spsolve_triangular(lower, v), lower=False)
+    assert np.allclose(g.preconditioner() @ v, ref_m, rtol=0, atol=1e-12 * abs(ref_m).max())
+    assert np.allclose(g.left(v), dw * spla.spsolve_triangular(lower, v), atol=1e-12)
+    assert np.allclose(g.right(v), upper @ v, atol=1e-12)
+
+
+def test_relaxation_outside_0_2_is_refused() -> None:
+    with pytest.raises(ValueError, match="omega"):
+        SymmetricGaussSeidel(_matrix(), omega=2.0)
 
 
 def test_split_solve_recovers_the_solution() -> None:
