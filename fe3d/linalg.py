@@ -133,9 +133,9 @@ Courant 1 and 20, 16, 15, 13, 13, 14, 21 at Courant 10 (docs/performance.md)."""
 PROBE_ITERATIONS = 30
 """Largest number of BiCGSTAB iterations with the Gauss–Seidel preconditioner the automatic
 choice allows on its probe solve before it builds an AMG preconditioner instead. Measured on
-the 223 k-node transport benchmark (docs/performance.md) from a zero start: 5 iterations at
-Courant 1 and 16 at Courant 10 for a relative 1e-10, where AMG-GMRES took 7 and 17
-iterations at about 14 SpMV each."""
+the 223 k-node transport benchmark (docs/performance.md) from a zero start: 6 iterations at
+Courant 1 and 13 at Courant 10 for a relative 1e-10 (SSOR, ω = 1.2; 5–6 and 16 with
+ω = 1), where AMG-GMRES took 7 and 17 iterations at about 14 SpMV each."""
 
 
 def _krylov(A: Any, b: FloatArray, M: Any, *, tol: float, x0: FloatArray | None,
