@@ -5,8 +5,8 @@ smoothly converging variant of Bi-CG for the solution of nonsymmetric linear sys
 SIAM J. Sci. Stat. Comput. 13(2)) on an operator given as a function, started from a given
 residual. Its vector updates and the inner products that follow them are done in one
 compiled pass each, so an iteration reads and writes about 20 vectors instead of the
-40-odd of a loop of numpy expressions; at 1 M unknowns the vectors no longer fit in the
-cache and this is a fifth of an iteration's cost (docs/performance.md).
+40-odd of a loop of numpy expressions (counted; at 1 M unknowns the vectors no longer fit
+in the cache). Starting from a given residual saves the product a start otherwise costs.
 
 :class:`SolutionWindow` keeps the last few solutions x_k of one matrix A with their
 images A x_k and starts the next solve from the combination x₀ = Σ c_k x_k that minimises
@@ -172,8 +172,3 @@ class SolutionWindow:
         self.gram[j, :self.count] = row
         self.gram[:self.count, j] = row
         self._next = (j + 1) % self.size
-
-    def clear(self) -> None:
-        """Forget every stored solution."""
-        self.count = 0
-        self._next = 0

@@ -23,8 +23,8 @@ from fe3d.errors import SolverError
 from fe3d.krylov import SolutionWindow, bicgstab
 from fe3d.sgs import SymmetricGaussSeidel
 
-__all__ = ["DIRECT_LIMIT", "FLOW_TOLERANCE", "PROBE_ITERATIONS", "TRANSPORT_METHODS",
-           "LinearSolver", "solve_spd", "solve_with_preconditioner"]
+__all__ = ["DIRECT_LIMIT", "FLOW_TOLERANCE", "PROBE_ITERATIONS", "RELAXATION", "START_WINDOW",
+           "TRANSPORT_METHODS", "LinearSolver", "solve_spd", "solve_with_preconditioner"]
 
 logger = logging.getLogger(__name__)
 
@@ -189,11 +189,11 @@ class LinearSolver:
     ``method`` (see :data:`TRANSPORT_METHODS`):
 
     - ``"direct"``: SuperLU factor, kept;
-    - ``"gauss_seidel"``: BiCGSTAB preconditioned by symmetric Gauss–Seidel, run on the
-      split system with Eisenstat's product (fe3d/sgs.py): one product of the preconditioned
-      operator is one backward and one forward triangular pass (1.4–1.6 SpMV) instead of a
-      product with A plus a two-sweep Gauss–Seidel (about 3.6 SpMV); a 1 M-node step fell
-      from 44 to 33 SpMV at Courant 1 (docs/performance.md). Each solve starts from the
+    - ``"gauss_seidel"``: BiCGSTAB preconditioned by symmetric Gauss–Seidel relaxed by
+      ``omega`` (SSOR, :data:`RELAXATION`), run on the split system with Eisenstat's product
+      (fe3d/sgs.py): one product of the preconditioned operator is one backward and one
+      forward triangular pass (1.4–1.9 SpMV) instead of a product with A plus a two-sweep
+      Gauss–Seidel (about 3.6 SpMV) (docs/performance.md). Each solve starts from the
       best combination of the last ``window`` solutions (fe3d/krylov.py), so a run of time
       steps with one matrix needs fewer iterations as it goes;
     - ``"jacobi"``: BiCGSTAB preconditioned by the inverse diagonal;
