@@ -16,6 +16,7 @@ import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.mesh.geometry import p1_gradients
+from fe3d.mesh.locate import CellFinder
 
 __all__ = ["Pathline", "Tracker"]
 
@@ -66,7 +67,7 @@ class Tracker:
         w = np.bincount(cells.ravel(), weights=np.tile(vol, 4), minlength=n)
         self._nodal = np.vstack([np.bincount(cells.ravel(), weights=np.tile(vol * velocity[i], 4),
                                              minlength=n) for i in range(3)]) / w
-        self._finder = None
+        self._finder: CellFinder | None = None
 
     def _barycentric(self, e: int, x: FloatArray) -> FloatArray:
         x0 = self.points[:, self.cells[0, e]]
@@ -75,28 +76,14 @@ class Tracker:
         return lam
 
     def locate(self, x: FloatArray, *, hint: tuple[int, ...] = ()) -> int:
-        """Index of the cell containing point x [m], or -1 outside the mesh."""
+        """Index of the cell containing point x [m], or -1 outside the mesh: the cells in
+        ``hint`` first, then the mesh's :class:`~fe3d.mesh.locate.CellFinder`."""
         for e in hint:
             if e >= 0 and np.all(self._barycentric(e, x) >= -1e-9):
                 return e
         if self._finder is None:
-            from scipy.spatial import cKDTree
-
-            centres = self.points[:, self.cells].mean(axis=1).T
-            self._finder = cKDTree(centres)
-        # flat layer cells have centres far from points they contain: widen the search
-        for k in (64, 512, 4096):
-            _, cand = self._finder.query(x, k=min(k, self.cells.shape[1]))
-            cand = np.atleast_1d(cand)
-            lam = np.einsum("eik,ek->ei", self.grads[cand],
-                            x[None, :] - self.points[:, self.cells[0, cand]].T)
-            lam[:, 0] = 1.0 - lam[:, 1:].sum(axis=1)
-            inside = np.nonzero(np.all(lam >= -1e-9, axis=1))[0]
-            if inside.size:
-                return int(cand[inside[0]])
-            if k >= self.cells.shape[1]:
-                break
-        return -1
+            self._finder = CellFinder(self.points, self.cells)
+        return int(self._finder.find(np.reshape(x, (3, 1)))[0][0])
 
     def velocity_at(self, x: FloatArray, e: int) -> FloatArray:
         """P1 interpolation of the node-averaged velocity at x in cell e [m/s]."""

@@ -9,7 +9,7 @@ from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
 from fe3d.mesh.geometry import p1_gradients
 
-__all__ = ["locate_points", "sample_operator", "screen_points"]
+__all__ = ["CellFinder", "locate_points", "sample_operator", "screen_points"]
 
 
 def screen_points(x: float, y: float, top: float, bottom: float, *, spacing: float) -> FloatArray:
@@ -22,20 +22,58 @@ def screen_points(x: float, y: float, top: float, bottom: float, *, spacing: flo
     return np.vstack([np.full(k, x), np.full(k, y), z])
 
 
+class CellFinder:
+    """Finds the cell that contains a point: a k-d tree of the centres of ``cells`` (all
+    of the mesh's, or the subset ``ids``), whose nearest candidates are checked by
+    barycentric coordinates ≥ −tol, widening the search 16 → 128 → 1024 → 8192 (flat
+    layer cells have centres far from points they contain)."""
+
+    def __init__(self, points: FloatArray, cells: IndexArray,
+                 ids: IndexArray | None = None) -> None:
+        from scipy.spatial import cKDTree
+
+        self.points = points
+        self.ids = np.arange(cells.shape[1]) if ids is None else np.asarray(ids)
+        self.cells = cells[:, self.ids]
+        self._tree = cKDTree(points[:, self.cells].mean(axis=1).T)
+
+    def find(self, xs: FloatArray, *, tol: float = 1e-9) -> tuple[IndexArray, FloatArray]:
+        """Containing cell (index into the mesh's cells, −1 when in none) and barycentric
+        coordinates of each point ``xs`` [m] ``(3, k)``; shapes ``(k,)`` and ``(4, k)``."""
+        k = xs.shape[1]
+        m = self.cells.shape[1]
+        found = np.full(k, -1, dtype=np.int64)
+        bary = np.zeros((4, k))
+        for n_cand in (16, 128, 1024, 8192):
+            todo = np.nonzero(found < 0)[0]
+            if todo.size == 0:
+                break
+            _, cand = self._tree.query(xs[:, todo].T, k=min(n_cand, m))
+            cand = np.asarray(cand).reshape(todo.size, -1)
+            for j, i in enumerate(todo):
+                c = cand[j]
+                grads, _ = p1_gradients(self.points, self.cells[:, c])
+                lam = np.einsum("eik,ke->ie", grads, xs[:, [i]] - self.points[:, self.cells[0, c]])
+                lam[0] = 1.0 - lam[1:].sum(axis=0)
+                ok = np.nonzero(np.all(lam >= -tol, axis=0))[0]
+                if ok.size:
+                    found[i] = c[ok[0]]
+                    bary[:, i] = lam[:, ok[0]]
+            if n_cand >= m:
+                break
+        return np.where(found >= 0, self.ids[np.maximum(found, 0)], -1), bary
+
+
 def locate_points(points: FloatArray, cells: IndexArray, xs: FloatArray, *,
                   tol: float = 1e-9) -> tuple[IndexArray, FloatArray]:
-    """Containing cell and barycentric coordinates of each point.
-
-    Candidates are the cells whose centres are nearest (k-d tree), checked by barycentric
-    coordinates ≥ −tol; a point in no cell raises :class:`MeshError`.
+    """Containing cell and barycentric coordinates of each point (:class:`CellFinder` over
+    the cells that can hold them); a point in no cell raises :class:`MeshError`.
 
     Returns
     -------
     cell_ids, bary
         Shapes ``(k,)`` and ``(4, k)``.
     """
-    from scipy.spatial import cKDTree
-
     # only cells whose bounding box meets the points' bounding box can hold them (a small
     # tree is quick to build); filtered one axis at a time, so that the later axes only look
     # at the cells that passed the earlier ones (a single gather of every cell's corners cost
@@ -46,36 +84,15 @@ def locate_points(points: FloatArray, cells: IndexArray, xs: FloatArray, *,
         corner = points[axis, cells[:, near]]  # (4, k)
         keep = (corner.max(axis=0) >= lo[axis] - 1e-9) & (corner.min(axis=0) <= hi[axis] + 1e-9)
         near = near[keep]
-    if near.size == 0:
-        bad = xs[:, 0]
-        msg = f"a sample point near {bad.round(3).tolist()} m lies outside the mesh"
-        raise MeshError(msg)
-    cells = cells[:, near]
-    centres = points[:, cells].mean(axis=1).T
-    tree = cKDTree(centres)
-    k = xs.shape[1]
-    found = np.full(k, -1, dtype=np.int64)
-    bary = np.zeros((4, k))
-    for n_cand in (16, 128, 1024):
-        todo = np.nonzero(found < 0)[0]
-        if todo.size == 0:
-            break
-        _, cand = tree.query(xs[:, todo].T, k=min(n_cand, cells.shape[1]))
-        cand = np.atleast_2d(cand)
-        for j, i in enumerate(todo):
-            c = cand[j]
-            grads, _ = p1_gradients(points, cells[:, c])
-            lam = np.einsum("eik,ke->ie", grads, xs[:, [i]] - points[:, cells[0, c]])
-            lam[0] = 1.0 - lam[1:].sum(axis=0)
-            ok = np.nonzero(np.all(lam >= -tol, axis=0))[0]
-            if ok.size:
-                found[i] = c[ok[0]]
-                bary[:, i] = lam[:, ok[0]]
+    found = np.full(xs.shape[1], -1, dtype=np.int64)
+    bary = np.zeros((4, xs.shape[1]))
+    if near.size:
+        found, bary = CellFinder(points, cells, near).find(xs, tol=tol)
     if np.any(found < 0):
         bad = xs[:, int(np.argmax(found < 0))]
         msg = f"a sample point near {bad.round(3).tolist()} m lies outside the mesh"
         raise MeshError(msg)
-    return near[found], bary
+    return found, bary
 
 
 def sample_operator(points: FloatArray, cells: IndexArray, xs: FloatArray, *,
