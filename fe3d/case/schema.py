@@ -368,6 +368,7 @@ class SolverControl(_Section):
     max_step_cuts: Annotated[int, Field(ge=0, le=20)] = 6
     shock_capturing: bool = False
     shock_capturing_passes: Annotated[int, Field(ge=1, le=10)] = 2
+    monotone: bool = False  # lumped storage + discrete upwinding instead of SUPG (T16)
     newton_max_iterations: Annotated[int, Field(ge=1, le=200)] = 30
 
 
@@ -477,6 +478,10 @@ def cross_checks(case: Case) -> list[CaseError]:
     """Rules that relate one section to another; one error per problem, with its key path."""
     errs: list[CaseError] = []
     tu = case.output.time_unit
+    if case.solver.monotone and case.solver.shock_capturing:
+        errs.append(CaseError("solver.shock_capturing", "true",
+                              "is not used with solver.monotone = true (the low-order "
+                              "scheme needs no shock capturing): set one of them false"))
     if case.box is not None:
         if not case.box.x[1] > case.box.x[0]:
             errs.append(CaseError("box.x", f"{list(case.box.x)} m",

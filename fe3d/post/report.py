@@ -90,7 +90,9 @@ def quality_warnings(s: RunSummary) -> list[str]:
             where = "" if at is None else (
                 f" near x={at[0]:.1f} m, y={at[1]:.1f} m, z={at[2]:.1f} m")
             out.append(f"{sp}: most negative concentration {from_si(c_min, cu):.3g} {cu} "
-                       f"({-c_min / c_src:.1%} of the source){where}: refine the mesh there")
+                       f"({-c_min / c_src:.1%} of the source){where}: refine the mesh "
+                       "there, or set solver.monotone = true (no negative values, more "
+                       "numerical spreading) and compare")
     return out
 
 

@@ -15,12 +15,13 @@ round-off (tested), at a fraction of the time and memory: the compiled kernel of
 
 from __future__ import annotations
 
+import numpy as np
 import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.p1 import MASS_FRACTION, CsrPattern
 
-__all__ = ["P1_MASS", "transport_operators"]
+__all__ = ["P1_MASS", "monotone_operators", "transport_operators"]
 
 P1_MASS = MASS_FRACTION  # ∫φ_iφ_j dV / V on a tetrahedron
 
@@ -67,3 +68,31 @@ def transport_operators(
                              q=q, a=a, tau=tau, theta_d=theta_d,
                              galerkin=parts in ("all", "galerkin"),
                              supg=parts in ("all", "supg"))
+
+
+def monotone_operators(M: sp.csr_matrix, K: sp.csr_matrix,
+                       ) -> tuple[sp.csr_matrix, sp.csr_matrix]:
+    """Low-order operators by discrete upwinding (theory.md T16; Kuzmin & Turek 2002): the
+    mass operator lumped to its row sums, and K + D with the symmetric D that removes every
+    positive off-diagonal entry of K, d_ij = −max(0, k_ij, k_ji) (i ≠ j), d_ii = −Σ_j d_ij.
+
+    D has zero row and column sums, so no mass is made or lost; M_L/Δt + K + D has no
+    positive off-diagonal entry. Both results keep the CSR structure of ``M`` and ``K``,
+    which must be one structurally symmetric pattern with sorted column indices (the
+    mesh's :class:`fe3d.p1.CsrPattern`), so operators still add by their value arrays."""
+    M, K = M.tocsr(), K.tocsr()
+    n = K.shape[0]
+    Kt = K.T.tocsr()
+    Kt.sort_indices()
+    if not (np.array_equal(Kt.indptr, K.indptr) and np.array_equal(Kt.indices, K.indices)
+            and np.array_equal(M.indptr, K.indptr) and np.array_equal(M.indices, K.indices)):
+        msg = "monotone operators need one structurally symmetric pattern with sorted columns"
+        raise ValueError(msg)
+    rows = np.repeat(np.arange(n), np.diff(K.indptr))
+    off = rows != K.indices
+    d = np.where(off, -np.maximum(0.0, np.maximum(K.data, Kt.data)), 0.0)
+    diag = ~off
+    d[diag] = -np.bincount(rows, weights=d, minlength=n)[rows[diag]]
+    lumped = np.where(diag, np.bincount(rows, weights=M.data, minlength=n)[rows], 0.0)
+    return (sp.csr_matrix((lumped, M.indices, M.indptr), shape=M.shape),
+            sp.csr_matrix((K.data + d, K.indices, K.indptr), shape=K.shape))

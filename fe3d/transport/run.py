@@ -36,7 +36,7 @@ from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import BoundaryFacets, gradients, length_along, split_rows, volumes
 from fe3d.reactions import kinetics, sorption
 from fe3d.sgs import plus_diagonal
-from fe3d.transport.assembly import P1_MASS, transport_operators
+from fe3d.transport.assembly import P1_MASS, monotone_operators, transport_operators
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.dispersion import dispersion_tensor
 from fe3d.transport.newton import newton
@@ -266,7 +266,8 @@ def run_transport(
     outflow_load = {f: fb.load(qn_out[f], n) for f, fb in facets.items()}
     outflow_mass = sum((fb.mass(qn_out[f], n) for f, fb in facets.items()),
                        sp.csr_matrix((n, n)))
-    supg_on = case.solver.supg
+    monotone = case.solver.monotone  # T16 replaces SUPG
+    supg_on = case.solver.supg and not monotone
     user = case.user_reactions
     user_law = None if user is None else kinetics.user_kinetics(
         user.function, n_species=len(user.species), key_path="user_reactions.function",
@@ -338,31 +339,45 @@ def run_transport(
         return tc.step * 2.0 ** round(math.log2(dt / tc.step))
 
     def operators(s: _Species, dt_tau: float) -> tuple[sp.csr_matrix, sp.csr_matrix]:
-        """Mass and spatial operators (T1–T6, outflow included) with τ built for dt_tau.
+        """Mass and spatial operators (T1–T6, outflow included) with τ built for dt_tau, or
+        with ``solver.monotone`` the low-order ones of T16 (no τ).
 
         The Galerkin part does not depend on the step length and is built once per species;
         a new step length rebuilds only the SUPG part (T6)."""
+        if monotone:  # T16: no step-length dependence, built once per species
+            if not s.operators:
+                s.operators[0.0] = monotone_operators(*galerkin(s))
+                s.galerkin = None  # not needed again: free its memory
+            return s.operators[0.0]
         if dt_tau not in s.operators:
-            c = s.coef
-            nonlin = bool(c["sorbers"])
-            kw = {"m": theta if nonlin else c["m"], "k": c["k"], "q": q, "a": c["a"],
-                  "theta_d": thetaD, "n": n, "m_supg": c["m"] if nonlin else None}
-            if s.galerkin is None:
-                M0, K0 = transport_operators(site.points, site.cells,
-                                             tau=np.zeros_like(c["m"]),
-                                             parts="galerkin", pattern=pattern, **kw)
-                K0.data += pattern.values_of(s.outflow_matrix)
-                s.galerkin = (M0, K0)
-            M, K = s.galerkin
+            M, K = galerkin(s)
             if supg_on:  # same pattern: the parts add by their value arrays
+                c = s.coef
                 tau = supg_tau(c["a"], c["kappa"], c["sigma"], s.h, dt_tau)
                 Ms, Ks = transport_operators(site.points, site.cells, tau=tau, parts="supg",
-                                             pattern=pattern, **kw)
+                                             pattern=pattern, **kwargs(s))
                 M, K = pattern.matrix(M.data + Ms.data), pattern.matrix(K.data + Ks.data)
             while len(s.operators) >= 2:  # keep at most two step lengths' operators
                 s.operators.pop(next(iter(s.operators)))
             s.operators[dt_tau] = (M, K)
         return s.operators[dt_tau]
+
+    def kwargs(s: _Species) -> dict[str, Any]:
+        """Coefficients of the species' operators (T1–T6) for transport_operators."""
+        c = s.coef
+        nonlin = bool(c["sorbers"])
+        return {"m": theta if nonlin else c["m"], "k": c["k"], "q": q, "a": c["a"],
+                "theta_d": thetaD, "n": n, "m_supg": c["m"] if nonlin else None}
+
+    def galerkin(s: _Species) -> tuple[sp.csr_matrix, sp.csr_matrix]:
+        """The Galerkin mass and spatial operators with the outflow term, built once."""
+        if s.galerkin is None:
+            M0, K0 = transport_operators(site.points, site.cells,
+                                         tau=np.zeros_like(s.coef["m"]), parts="galerkin",
+                                         pattern=pattern, **kwargs(s))
+            K0.data += pattern.values_of(s.outflow_matrix)
+            s.galerkin = (M0, K0)
+        return s.galerkin
 
     def system(s: _Species, dt: float, co: StepCoefficients,
                active: tuple[str, ...]) -> _System:

@@ -166,6 +166,9 @@ BAD_INPUTS = [
      "output.time_unit", "'kg'", "must be a time unit"),
     ("solver_tolerance_too_loose", "[output]", "[solver]\ntolerance = 0.5\n\n[output]",
      "solver.tolerance", "0.5", "must be less than 0.01"),
+    ("monotone_with_shock_capturing", "[output]",
+     "[solver]\nmonotone = true\nshock_capturing = true\n\n[output]",
+     "solver.shock_capturing", "'true'", "is not used with solver.monotone = true"),
     ("fine_cells_coarser_than_cells", 'fine_cell_size = "4 m"', 'fine_cell_size = "10 m"',
      "mesh.fine_cell_size", "'10 m'", "must not exceed mesh.cell_size (8 m)"),
 ]

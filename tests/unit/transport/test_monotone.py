@@ -1,0 +1,64 @@
+"""Low-order operators by discrete upwinding (fe3d/transport/assembly.py, theory.md T16;
+Kuzmin & Turek 2002, "Flux correction tools for finite elements", J. Comput. Phys. 175).
+
+On a mesh of flat cells (plan size 10× the thickness, as in layered aquifers) with an
+anisotropic dispersion tensor the Galerkin operator has positive off-diagonal entries; the
+checks are the construction's defining properties (no positive off-diagonal entry, D
+symmetric with zero row sums, lumping keeps every row sum) and their consequence, a
+nonnegative inverse of the backward Euler step matrix (an M-matrix: Varga 1962, *Matrix
+Iterative Analysis*, from memory), computed with numpy's dense inverse (reference library).
+Tolerances are round-off: 1e-12 relative to the largest entry."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from skfem import MeshTet
+
+from fe3d.transport.assembly import monotone_operators, transport_operators
+from fe3d.transport.dispersion import dispersion_tensor
+
+
+def _operators() -> tuple[sp.csr_matrix, sp.csr_matrix]:
+    m = MeshTet.init_tensor(np.linspace(0, 50, 6), np.linspace(0, 30, 4), np.linspace(0, 2, 3))
+    points, cells = np.asarray(m.p, dtype=float), np.asarray(m.t, dtype=np.int64)
+    e = cells.shape[1]
+    theta = np.full(e, 0.3)
+    q = np.tile(np.array([[1.0], [0.4], [0.05]]) * 1e-6, (1, e))  # Darcy flux [m/s]
+    v = q / theta
+    D = dispersion_tensor(v, alpha_l=np.full(e, 5.0), alpha_th=np.full(e, 0.5),
+                          alpha_tv=np.full(e, 0.05), d_eff=np.full(e, 1e-9))
+    m_coef = theta * 1.5
+    return transport_operators(points, cells, m=m_coef, k=np.full(e, 1e-9), q=q, a=q / m_coef,
+                               tau=np.zeros(e), theta_d=theta * D, n=points.shape[1],
+                               parts="galerkin")
+
+
+def test_discrete_upwinding_properties() -> None:
+    M, K = _operators()
+    off = ~np.eye(K.shape[0], dtype=bool)
+    k_dense = K.toarray()
+    scale = np.abs(k_dense).max()
+    assert k_dense[off].max() > 1e-6 * scale  # the Galerkin operator is not monotone here
+    ML, KD = monotone_operators(M, K)
+    d = KD.toarray() - k_dense
+    assert np.all(KD.toarray()[off] <= 1e-12 * scale)
+    assert np.allclose(d, d.T, rtol=0, atol=1e-12 * scale)
+    assert np.allclose(d.sum(axis=1), 0.0, rtol=0, atol=1e-12 * scale)
+    ml = ML.toarray()
+    assert np.count_nonzero(ml[off]) == 0
+    assert np.allclose(ml.sum(axis=1), M.toarray().sum(axis=1), rtol=1e-12, atol=0)
+    # the same CSR structure: operators of one mesh still add by their value arrays
+    assert np.array_equal(KD.indices, K.indices) and np.array_equal(ML.indptr, M.indptr)
+
+
+@pytest.mark.parametrize("dt", [1e5, 1e7, 1e9])
+def test_backward_euler_step_matrix_has_a_nonnegative_inverse(dt: float) -> None:
+    M, K = _operators()
+    ML, KD = monotone_operators(M, K)
+    inv = np.linalg.inv((ML / dt + KD).toarray())
+    assert inv.min() >= -1e-12 * np.abs(inv).max()
+    # the consistent-mass Galerkin step matrix does not have that property here
+    inv_g = np.linalg.inv((M / dt + K).toarray())
+    assert inv_g.min() < -1e-6 * np.abs(inv_g).max()
