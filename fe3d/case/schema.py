@@ -369,6 +369,7 @@ class SolverControl(_Section):
     shock_capturing: bool = False
     shock_capturing_passes: Annotated[int, Field(ge=1, le=10)] = 2
     monotone: bool = False  # lumped storage + discrete upwinding instead of SUPG (T16)
+    flux_limiting: bool = False  # limited antidiffusion on top of monotone (T16b)
     newton_max_iterations: Annotated[int, Field(ge=1, le=200)] = 30
 
 
@@ -482,6 +483,13 @@ def cross_checks(case: Case) -> list[CaseError]:
         errs.append(CaseError("solver.shock_capturing", "true",
                               "is not used with solver.monotone = true (the low-order "
                               "scheme needs no shock capturing): set one of them false"))
+    if case.solver.flux_limiting and not case.solver.monotone:
+        errs.append(CaseError("solver.flux_limiting", "true",
+                              "needs solver.monotone = true (it limits the low-order scheme)"))
+    if case.solver.flux_limiting and case.time.scheme != "backward_euler":
+        errs.append(CaseError("solver.flux_limiting", "true",
+                              f"works with time.scheme = 'backward_euler' only, not "
+                              f"{case.time.scheme!r}"))
     if case.box is not None:
         if not case.box.x[1] > case.box.x[0]:
             errs.append(CaseError("box.x", f"{list(case.box.x)} m",

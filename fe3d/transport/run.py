@@ -39,6 +39,7 @@ from fe3d.sgs import plus_diagonal
 from fe3d.transport.assembly import P1_MASS, monotone_operators, transport_operators
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.dispersion import dispersion_tensor
+from fe3d.transport.limiter import limited_fluxes
 from fe3d.transport.newton import newton
 from fe3d.transport.shock import isotropic_stiffness, shock_diffusivity
 from fe3d.transport.stabilization import supg_tau
@@ -172,6 +173,7 @@ class _Species:
     h: FloatArray
     operators: dict[float, tuple[sp.csr_matrix, sp.csr_matrix]] = field(default_factory=dict)
     galerkin: tuple[sp.csr_matrix, sp.csr_matrix] | None = None
+    limiter: tuple[sp.csr_matrix, sp.csr_matrix, FloatArray] | None = None  # T16b: M, D, m_L
     systems: dict[tuple[float, float, float, tuple[str, ...]], _System] = field(
         default_factory=dict)
     user_rate: Callable[[FloatArray], tuple[FloatArray, FloatArray]] | None = None
@@ -267,6 +269,7 @@ def run_transport(
     outflow_mass = sum((fb.mass(qn_out[f], n) for f, fb in facets.items()),
                        sp.csr_matrix((n, n)))
     monotone = case.solver.monotone  # T16 replaces SUPG
+    limiting = monotone and case.solver.flux_limiting  # T16b, backward Euler only
     supg_on = case.solver.supg and not monotone
     user = case.user_reactions
     user_law = None if user is None else kinetics.user_kinetics(
@@ -346,7 +349,11 @@ def run_transport(
         a new step length rebuilds only the SUPG part (T6)."""
         if monotone:  # T16: no step-length dependence, built once per species
             if not s.operators:
-                s.operators[0.0] = monotone_operators(*galerkin(s))
+                M0, K0 = galerkin(s)
+                ML, KD = monotone_operators(M0, K0)
+                s.operators[0.0] = (ML, KD)
+                if limiting and not s.nonlinear:
+                    s.limiter = (M0, pattern.matrix(KD.data - K0.data), ML.diagonal())
                 s.galerkin = None  # not needed again: free its memory
             return s.operators[0.0]
         if dt_tau not in s.operators:
@@ -514,6 +521,7 @@ def run_transport(
         new_conc = dict(conc)
         items: dict[str, dict[str, Any]] = {}
         decay_loss: dict[str, FloatArray] = {}
+        flux_state: dict[str, FloatArray] = {}  # T16b: the low-order field the fluxes act on
         newton_max, kind = 1, "none"
         # species of a user law that couple both ways are swept again until their fields
         # agree (Gauss–Seidel over the species, T11b): the coupled step is then solved
@@ -577,7 +585,14 @@ def run_transport(
                     out[sy.free] = sy.solver.solve(rhs_[sy.free] - sy.S_fD @ guess[sy.fixed],
                                                    x0=old[sy.free])
                     # budget from the consistent residual of the full (unreduced) system (T9)
-                    return out, sy.S @ out - rhs_, 0.0, 1
+                    r_ = sy.S @ out - rhs_
+                    if s.limiter is not None:  # T16b: the limited fluxes, explicit
+                        M0, D, m_l = s.limiter
+                        g = limited_fluxes(M0, D, m_l, out, old, dt, sy.fixed)
+                        flux_state[s.name] = out.copy()  # the state the fluxes act on
+                        out[sy.free] += dt * g[sy.free] / m_l[sy.free]
+                        r_ -= g
+                    return out, r_, 0.0, 1
 
                 new, r, other_loss, its = solve(sysm, rhs, new)
                 for _ in range(case.solver.shock_capturing_passes
@@ -611,7 +626,7 @@ def run_transport(
                 if not np.all(np.isfinite(new)):
                     msg = f"{s.name}: the step from t = {t0:.6g} s gave non-finite values"
                     raise SolverError(msg)
-                c_mid = co.theta * new + (1.0 - co.theta) * old
+                c_mid = co.theta * flux_state.pop(s.name, new) + (1.0 - co.theta) * old
                 if s.name in decay_matrix:
                     decay_loss[s.name] = decay_matrix[s.name] @ c_mid + (
                         _sorbed_decay_rate(s, new, old, co.theta) if s.coef["sorbers"] else 0.0)

@@ -169,6 +169,9 @@ BAD_INPUTS = [
     ("monotone_with_shock_capturing", "[output]",
      "[solver]\nmonotone = true\nshock_capturing = true\n\n[output]",
      "solver.shock_capturing", "'true'", "is not used with solver.monotone = true"),
+    ("flux_limiting_without_monotone", "[output]",
+     "[solver]\nflux_limiting = true\n\n[output]",
+     "solver.flux_limiting", "'true'", "needs solver.monotone = true"),
     ("fine_cells_coarser_than_cells", 'fine_cell_size = "4 m"', 'fine_cell_size = "10 m"',
      "mesh.fine_cell_size", "'10 m'", "must not exceed mesh.cell_size (8 m)"),
 ]
