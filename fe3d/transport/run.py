@@ -79,6 +79,7 @@ class TransportDiagnostics:
     smallest_step: float = 0.0
     largest_step: float = 0.0
     max_newton_iterations: int = 0
+    max_coupling_sweeps: int = 0  # sweeps over the species of a user law in one step (T11b)
 
 
 @dataclass(frozen=True)
@@ -486,7 +487,8 @@ def run_transport(
         dl = s.coef["kappa"] * s.coef["m"] / theta
         peclet[s.name] = float(np.max(np.divide(speed_v * s.h, dl, out=np.full_like(dl, np.inf),
                                                 where=dl > 0))) if np.any(speed_v > 0) else 0.0
-    stats = {"cuts": 0, "rejected": 0, "dt_min": math.inf, "dt_max": 0.0, "newton": 0}
+    stats = {"cuts": 0, "rejected": 0, "dt_min": math.inf, "dt_max": 0.0, "newton": 0,
+             "sweeps": 0}
     solver_used = "none"
 
     def snapshot(t: float, n_steps: int) -> Snapshot:
@@ -500,7 +502,8 @@ def run_transport(
             min_concentration=dict(cmin), solver=solver_used, step_cuts=int(stats["cuts"]),
             rejected_steps=int(stats["rejected"]),
             smallest_step=0.0 if n_steps == 0 else float(stats["dt_min"]),
-            largest_step=float(stats["dt_max"]), max_newton_iterations=int(stats["newton"]))
+            largest_step=float(stats["dt_max"]), max_newton_iterations=int(stats["newton"]),
+            max_coupling_sweeps=int(stats["sweeps"]))
         return Snapshot(time=t, concentration={k: c.copy() for k, c in conc.items()},
                         budgets=budgets, history_times=np.array(hist_t),
                         history={k: np.array(vv) for k, vv in hist.items()}, diagnostics=diag)
@@ -528,6 +531,7 @@ def run_transport(
         # as one system, conservative and of the scheme's order
         coupled = [s.name for s in species if s.coef["user"]]
         order = list(species)
+        mixing: list[tuple[FloatArray, FloatArray]] = []  # (sweep result, its change)
         for _sweep in range(_MAX_SWEEPS):
             before = {k: new_conc[k] for k in coupled}
             for s in order:
@@ -651,10 +655,16 @@ def run_transport(
             if change <= 10.0 * case.solver.tolerance * scale:
                 break
             order = species[next(i for i, s in enumerate(species) if s.coef["user"]):]
+            start = _anderson(mixing, np.concatenate([before[k] for k in coupled]),
+                              np.concatenate([new_conc[k] for k in coupled]))
+            for k, part in zip(coupled, np.split(start, len(coupled)), strict=True):
+                new_conc[k] = part
         else:
             msg = (f"the species of user_reactions did not agree after {_MAX_SWEEPS} sweeps "
                    f"in the step from t = {t0:.6g} s")
             raise SolverError(msg)
+        if len(coupled) >= 2:
+            stats["sweeps"] = max(stats["sweeps"], _sweep + 1)
         return new_conc, items, newton_max, kind
 
     # ---- the time loop: fixed steps (a queue, halves on failure) or adaptive steps
@@ -762,6 +772,30 @@ def run_transport(
             on_step(t, tc.end)
         if any(abs(t - x) <= 1e-9 * max(1.0, x) for x in out_set):
             yield snapshot(t, n_steps)
+
+
+_MIXING_DEPTH = 5
+"""Earlier sweeps the coupling of user laws combines (Anderson acceleration, T11b)."""
+
+
+def _anderson(history: list[tuple[FloatArray, FloatArray]], x: FloatArray,
+              g: FloatArray) -> FloatArray:
+    """Start of the next sweep over the species of a user law (T11b): Anderson's
+    acceleration of the fixed-point iteration x → g(x) (Walker & Ni 2011, "Anderson
+    acceleration for fixed-point iterations", SIAM J. Numer. Anal. 49). ``history`` holds
+    the last sweeps' (g, g − x) and is updated; the result is g − ΔG γ with γ minimising
+    ‖f − ΔF γ‖₂, the differences taken against the newest sweep. The plain g when there
+    is no history yet or the combination is not finite."""
+    f = g - x
+    history.append((g, f))
+    del history[:-(_MIXING_DEPTH + 1)]
+    if len(history) < 2:
+        return g
+    dF = np.stack([f - fi for _, fi in history[:-1]], axis=1)
+    dG = np.stack([g - gi for gi, _ in history[:-1]], axis=1)
+    gamma = np.linalg.lstsq(dF, f, rcond=None)[0]
+    out = g - dG @ gamma
+    return out if np.all(np.isfinite(out)) else g
 
 
 def _user_rate(law: Callable[[FloatArray], tuple[FloatArray, FloatArray]],
