@@ -169,22 +169,19 @@ def second_order(c):
 K1 = np.log(2.0) / (3.0 * 86400.0)  # 1/s
 
 
-def a_b_reversible(c):
-    kf, kb = 0.3 / 86400.0, 0.1 / 86400.0
-    a, b = c
-    r = np.vstack([-kf * a + kb * b, kf * a - kb * b])
-    jac = np.zeros((2, 2) + a.shape)
-    jac[0, 0], jac[0, 1], jac[1, 0], jac[1, 1] = -kf, kb, kf, -kb
-    return r, jac
+def _reversible(kf, kb):
+    """A ⇌ B with forward and backward rates kf, kb [1/s]."""
+    def law(c):
+        a, b = c
+        r = np.vstack([-kf * a + kb * b, kf * a - kb * b])
+        jac = np.zeros((2, 2) + a.shape)
+        jac[0, 0], jac[0, 1], jac[1, 0], jac[1, 1] = -kf, kb, kf, -kb
+        return r, jac
+    return law
 
 
-def a_b_fast(c):
-    kf, kb = 30.0 / 86400.0, 10.0 / 86400.0
-    a, b = c
-    r = np.vstack([-kf * a + kb * b, kf * a - kb * b])
-    jac = np.zeros((2, 2) + a.shape)
-    jac[0, 0], jac[0, 1], jac[1, 0], jac[1, 1] = -kf, kb, kf, -kb
-    return r, jac
+a_b_reversible = _reversible(0.3 / 86400.0, 0.1 / 86400.0)
+a_b_fast = _reversible(30.0 / 86400.0, 10.0 / 86400.0)
 
 
 def a_to_b(c):
