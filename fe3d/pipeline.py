@@ -197,7 +197,7 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
         title=case.title, site=case.site, n_nodes=site.n_nodes, n_cells=site.n_cells,
         end_time=case.time.end, n_steps=d.n_steps, observations=obs_results,
         step_range=(d.smallest_step, d.largest_step), step_cuts=d.step_cuts,
-        rejected_steps=d.rejected_steps,
+        rejected_steps=d.rejected_steps, method=_method_words(case),
         mass_balance_error=worst, flow_inflow=flow.total_inflow,
         flow_discrepancy=flow.discrepancy, max_grid_peclet=d.max_grid_peclet,
         max_courant=d.max_courant,
@@ -222,6 +222,24 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     write_summary_json(out_dir / "summary.json", summary)
     write_report(out_dir / "report.md", summary)
     return summary
+
+
+def _method_words(case: Case) -> str:
+    """The transport method in words, for the report (theory.md T6, T13–T16b)."""
+    sc = case.solver
+    names = {"backward_euler": "backward Euler", "crank_nicolson": "Crank–Nicolson",
+             "bdf2": "BDF2"}
+    time_words = names[case.time.scheme] + (", adaptive steps" if case.time.adaptive else "")
+    if sc.monotone:
+        space = ("low-order monotone (lumped storage, discrete upwinding)"
+                 + (" with flux limiting" if sc.flux_limiting else ""))
+    elif sc.supg:
+        space = "SUPG" + (" with shock capturing" if sc.shock_capturing else "")
+    else:
+        space = "Galerkin, no stabilisation" + (" with shock capturing"
+                                                if sc.shock_capturing else "")
+    return f"{time_words}; {space}; linear solver {sc.linear_solver}, " \
+           f"relative tolerance {sc.tolerance:.0e}"
 
 
 def mesh_case(case: Case, out_dir: Path) -> tuple[SiteMesh, bool, list[Path]]:

@@ -65,6 +65,7 @@ class RunSummary:
     step_range: tuple[float, float] = (0.0, 0.0)
     step_cuts: int = 0
     rejected_steps: int = 0
+    method: str = ""  # the time scheme and the spatial scheme, in words
 
 
 def quality_warnings(s: RunSummary) -> list[str]:
@@ -120,6 +121,7 @@ def write_report(path: Path, s: RunSummary) -> Path:
         f"- simulated period: {from_si(s.end_time, tu):.4g} {tu} in {s.n_steps} steps of "
         f"{_t(s.step_range[0], tu)} to {_t(s.step_range[1], tu)} ({s.step_cuts} step cuts "
         f"after a failed solve, {s.rejected_steps} steps rejected by the error control)",
+        *([f"- transport method: {s.method}"] if s.method else []),
         f"- groundwater through the model: {s.flow_inflow * 86400:.4g} m³/d, "
         f"budget discrepancy {s.flow_discrepancy:.1e}",
         "", "## Extent of the plume above the limit (at output times)", "",

@@ -212,6 +212,9 @@ def test_run_writes_every_output(tiny_run: tuple[Path, str]) -> None:
     # every step is logged with the most negative concentration and where it is
     assert "step 1: t = " in log
     assert "tracer min " in log and " at (" in log
+    # the report names the method the numbers came from
+    assert "- transport method: backward Euler; SUPG; linear solver" in \
+        (out / "report.md").read_text(encoding="utf-8")
 
 
 @pytest.mark.slow
