@@ -93,7 +93,8 @@ def quality_warnings(s: RunSummary) -> list[str]:
             out.append(f"{sp}: most negative concentration {from_si(c_min, cu):.3g} {cu} "
                        f"({-c_min / c_src:.1%} of the source){where}: refine the mesh "
                        "there, or set solver.monotone = true (no negative values, more "
-                       "numerical spreading) and compare")
+                       "numerical spreading; add flux_limiting = true with backward Euler "
+                       "to sharpen it again) and compare")
     return out
 
 
