@@ -66,6 +66,7 @@ class RunSummary:
     step_cuts: int = 0
     rejected_steps: int = 0
     method: str = ""  # the time scheme and the spatial scheme, in words
+    flux_limiting: bool = False  # solver.flux_limiting (T16b)
 
 
 def quality_warnings(s: RunSummary) -> list[str]:
@@ -82,6 +83,11 @@ def quality_warnings(s: RunSummary) -> list[str]:
             out.append(f"{sp}: largest Courant number {s.max_courant[sp]:.2g} > 1; first "
                        "arrival times at low concentrations may come too early (numerical "
                        "spreading): shorten time.step and compare")
+            if s.flux_limiting:
+                out.append(f"{sp}: flux limiting leaves the nodes where a step is long "
+                           "against their exchange with their neighbours at the low-order "
+                           "value, many of them at this Courant number: shorten time.step "
+                           "for a sharper result")
         if s.max_grid_peclet[sp] > 2.0:
             out.append(f"{sp}: largest grid Péclet number {s.max_grid_peclet[sp]:.2g} > 2; "
                        "the mesh is coarse against the dispersivities: refine and compare")

@@ -31,16 +31,17 @@ __all__ = ["limited_fluxes"]
 @numba.njit(cache=True, nogil=True)
 def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
            lumped: FloatArray, c_low: FloatArray, rate: FloatArray, dt: float,
-           is_fixed: np.ndarray) -> FloatArray:
+           is_fixed: np.ndarray, reach: float) -> FloatArray:
     n = lumped.size
     f = np.zeros(cols.size)
     r_plus, r_minus = np.ones(n), np.ones(n)
     for i in range(n):
-        p_plus = p_minus = q_plus = q_minus = 0.0
+        p_plus = p_minus = q_plus = q_minus = exchange = 0.0
         for p in range(indptr[i], indptr[i + 1]):
             j = cols[p]
             if j == i:
                 continue
+            exchange -= d[p]
             dc = c_low[i] - c_low[j]
             fij = m[p] * (rate[i] - rate[j]) - d[p] * dc  # d_ij ≤ 0 stored: −d is ≥ 0
             if fij * dc < 0.0:  # prelimiting: down the gradient, diffusive
@@ -52,7 +53,9 @@ def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
                 p_minus += fij
             q_plus = max(q_plus, -dc)
             q_minus = min(q_minus, -dc)
-        if not is_fixed[i]:
+        if not is_fixed[i] and dt * exchange > reach * lumped[i]:
+            r_plus[i] = r_minus[i] = 0.0  # the step is long against this node's exchange
+        elif not is_fixed[i]:
             if p_plus > 0.0:
                 r_plus[i] = min(1.0, lumped[i] * q_plus / (dt * p_plus))
             if p_minus < 0.0:
@@ -72,7 +75,7 @@ def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
 
 def limited_fluxes(mass: sp.csr_matrix, diffusion: sp.csr_matrix, lumped: FloatArray,
                    c_low: FloatArray, c_old: FloatArray, dt: float,
-                   fixed: IndexArray) -> FloatArray:
+                   fixed: IndexArray, *, reach: float = np.inf) -> FloatArray:
     """Net limited antidiffusive flux g_i = Σ_j α_ij f_ij into every node [kg/s].
 
     ``mass`` is the consistent mass operator M and ``diffusion`` the symmetric D of T16
@@ -80,8 +83,10 @@ def limited_fluxes(mass: sp.csr_matrix, diffusion: sp.csr_matrix, lumped: FloatA
     ``lumped`` the row sums of M. Nodes ``fixed`` (fixed concentrations) take no correction
     and do not limit their neighbours; the fluxes they exchange still appear in g (with
     the opposite sign at the fixed node), so Σ g = 0. The corrected field is
-    c_L + Δt g / m_L at the other nodes. One compiled pass for the fluxes and the limiter's
-    sums, one for the limited fluxes."""
+    c_L + Δt g / m_L at the other nodes. A node whose step is long against its exchange
+    with its neighbours, Δt Σ_j |d_ij| > ``reach`` m_i, takes and gives no flux (there the
+    explicit correction would push it to a neighbour's extreme). One compiled pass for
+    the fluxes and the limiter's sums, one for the limited fluxes."""
     if not (np.array_equal(mass.indptr, diffusion.indptr)
             and np.array_equal(mass.indices, diffusion.indices)):
         msg = "the mass and diffusion operators must share one CSR pattern"
@@ -92,4 +97,5 @@ def limited_fluxes(mass: sp.csr_matrix, diffusion: sp.csr_matrix, lumped: FloatA
     rate = (c_low - np.asarray(c_old, dtype=float)) / dt
     return _limit(mass.indptr, mass.indices, np.asarray(mass.data, dtype=float),
                   np.asarray(diffusion.data, dtype=float),
-                  np.asarray(lumped, dtype=float), c_low, rate, float(dt), is_fixed)
+                  np.asarray(lumped, dtype=float), c_low, rate, float(dt), is_fixed,
+                  float(reach))

@@ -61,6 +61,15 @@ logger = logging.getLogger(__name__)
 _MAX_CACHED = 3
 """Step systems (matrix + factor or preconditioner) kept per species: a few step lengths."""
 
+LIMITING_REACH = 4.0
+"""Flux limiting (T16b) acts at a node only while Δt Σ_j |d_ij| ≤ LIMITING_REACH · m_i (the
+step at most about four times the node's low-order exchange time); such nodes keep the
+low-order value. Measured: with no such bound the explicit correction pushed nodes of the
+steady 3D point-source case (Courant ≈ 50) to their neighbours' extremes, centreline error
+34 % against 23 % for the low-order scheme alone (with the bound: 23 %); the sharp-front
+column keeps its whole gain up to a cell Courant number of 4 (error 0.118 against 0.135
+low order, 0.112 SUPG), and the 3D slug at Courant 20 keeps part of it."""
+
 _MAX_SWEEPS = 50
 """Sweeps over the species of a user law that couple both ways before a step is cut."""
 
@@ -592,7 +601,8 @@ def run_transport(
                     r_ = sy.S @ out - rhs_
                     if s.limiter is not None:  # T16b: the limited fluxes, explicit
                         M0, D, m_l = s.limiter
-                        g = limited_fluxes(M0, D, m_l, out, old, dt, sy.fixed)
+                        g = limited_fluxes(M0, D, m_l, out, old, dt, sy.fixed,
+                                           reach=LIMITING_REACH)
                         flux_state[s.name] = out.copy()  # the state the fluxes act on
                         out[sy.free] += dt * g[sy.free] / m_l[sy.free]
                         r_ -= g

@@ -89,3 +89,23 @@ def test_limited_fluxes_conserve_and_keep_local_bounds() -> None:
         nb = c_low[adj.indices[adj.indptr[i]:adj.indptr[i + 1]]]
         assert nb.min() - 1e-12 <= c[i] <= nb.max() + 1e-12
     assert np.abs(dt * g[free] / m_l[free]).max() > 1e-3  # the correction is not trivially 0
+
+
+def test_limiting_stops_where_the_step_is_long() -> None:
+    """A node whose step is long against its low-order exchange (Δt Σ|d_ij| > reach m_i)
+    takes and gives no flux (theory.md T16b): with reach 0 no flux is left, and with a reach
+    between the nodes' smallest and largest ratios the blocked nodes get none."""
+    M, K = _operators()
+    ML, KD = monotone_operators(M, K)
+    D = sp.csr_matrix((KD.data - K.data, K.indices, K.indptr), shape=K.shape)
+    n = K.shape[0]
+    rng = np.random.default_rng(3)
+    c_low, c_old = rng.random(n), rng.random(n)
+    m_l, dt = ML.diagonal(), 1e6
+    none = np.array([], dtype=np.int64)
+    assert np.all(limited_fluxes(M, D, m_l, c_low, c_old, dt, none, reach=0.0) == 0.0)
+    ratio = dt * (-(D - sp.diags(D.diagonal())).sum(axis=1).A1) / m_l
+    reach = float(np.median(ratio))
+    g = limited_fluxes(M, D, m_l, c_low, c_old, dt, none, reach=reach)
+    assert np.all(g[ratio > reach] == 0.0)
+    assert np.any(g[ratio <= reach] != 0.0)
