@@ -65,26 +65,31 @@ def test_backward_euler_step_matrix_has_a_nonnegative_inverse(dt: float) -> None
     assert inv_g.min() < -1e-6 * np.abs(inv_g).max()
 
 
+def _limiter_inputs(seed: int) -> tuple:
+    """M, its row sums, the added diffusion D of T16, and random low-order and old fields
+    (random, so that the limiter is active)."""
+    M, K = _operators()
+    ML, KD = monotone_operators(M, K)
+    D = sp.csr_matrix((KD.data - K.data, K.indices, K.indptr), shape=K.shape)
+    rng = np.random.default_rng(seed)
+    return M, ML.diagonal(), D, rng.random(K.shape[0]), rng.random(K.shape[0])
+
+
 def test_limited_fluxes_conserve_and_keep_local_bounds() -> None:
     """Linearised flux correction (theory.md T16b): the limited fluxes cancel in pairs (Σ g
     = 0 to round-off) and every corrected free value lies within the low-order values of
     its node and neighbours (Zalesak 1979's limiter, by construction); fixed nodes take no
-    correction. Random fields, so that the limiter is active."""
-    M, K = _operators()
-    ML, KD = monotone_operators(M, K)
-    D = sp.csr_matrix((KD.data - K.data, K.indices, K.indptr), shape=K.shape)
-    n = K.shape[0]
-    rng = np.random.default_rng(8)
-    c_low, c_old = rng.random(n), rng.random(n)
+    correction."""
+    M, m_l, D, c_low, c_old = _limiter_inputs(8)
+    n = m_l.size
     fixed = np.arange(0, n, 7)
     dt = 1e6
-    m_l = ML.diagonal()
     g = limited_fluxes(M, D, m_l, c_low, c_old, dt, fixed)
     assert abs(g.sum()) <= 1e-12 * np.abs(g).sum()
     free = np.setdiff1d(np.arange(n), fixed)
     c = c_low.copy()
     c[free] += dt * g[free] / m_l[free]
-    adj = (abs(K) + sp.identity(n)).tocsr()
+    adj = (abs(M) + sp.identity(n)).tocsr()
     for i in free:
         nb = c_low[adj.indices[adj.indptr[i]:adj.indptr[i + 1]]]
         assert nb.min() - 1e-12 <= c[i] <= nb.max() + 1e-12
@@ -95,13 +100,8 @@ def test_limiting_stops_where_the_step_is_long() -> None:
     """A node whose step is long against its low-order exchange (Δt Σ|d_ij| > reach m_i)
     takes and gives no flux (theory.md T16b): with reach 0 no flux is left, and with a reach
     between the nodes' smallest and largest ratios the blocked nodes get none."""
-    M, K = _operators()
-    ML, KD = monotone_operators(M, K)
-    D = sp.csr_matrix((KD.data - K.data, K.indices, K.indptr), shape=K.shape)
-    n = K.shape[0]
-    rng = np.random.default_rng(3)
-    c_low, c_old = rng.random(n), rng.random(n)
-    m_l, dt = ML.diagonal(), 1e6
+    M, m_l, D, c_low, c_old = _limiter_inputs(3)
+    dt = 1e6
     none = np.array([], dtype=np.int64)
     assert np.all(limited_fluxes(M, D, m_l, c_low, c_old, dt, none, reach=0.0) == 0.0)
     ratio = dt * (-(D - sp.diags(D.diagonal())).sum(axis=1).A1) / m_l
