@@ -86,8 +86,7 @@ def quality_warnings(s: RunSummary) -> list[str]:
             if s.flux_limiting:
                 out.append(f"{sp}: flux limiting leaves the nodes where a step is long "
                            "against their exchange with their neighbours at the low-order "
-                           "value, many of them at this Courant number: shorten time.step "
-                           "for a sharper result")
+                           "value (theory.md T16b): shorten time.step and compare")
         if s.max_grid_peclet[sp] > 2.0:
             out.append(f"{sp}: largest grid Péclet number {s.max_grid_peclet[sp]:.2g} > 2; "
                        "the mesh is coarse against the dispersivities: refine and compare")
