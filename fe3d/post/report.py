@@ -66,7 +66,7 @@ class RunSummary:
     step_cuts: int = 0
     rejected_steps: int = 0
     method: str = ""  # the time scheme and the spatial scheme, in words
-    flux_limiting: bool = False  # solver.flux_limiting (T16b)
+    limiting_blocked: dict[str, float] = field(default_factory=dict)  # T16b, fraction
 
 
 def quality_warnings(s: RunSummary) -> list[str]:
@@ -83,13 +83,15 @@ def quality_warnings(s: RunSummary) -> list[str]:
             out.append(f"{sp}: largest Courant number {s.max_courant[sp]:.2g} > 1; first "
                        "arrival times at low concentrations may come too early (numerical "
                        "spreading): shorten time.step and compare")
-            if s.flux_limiting:
-                out.append(f"{sp}: flux limiting leaves the nodes where a step is long "
-                           "against their exchange with their neighbours at the low-order "
-                           "value (theory.md T16b): shorten time.step and compare")
+
         if s.max_grid_peclet[sp] > 2.0:
             out.append(f"{sp}: largest grid Péclet number {s.max_grid_peclet[sp]:.2g} > 2; "
                        "the mesh is coarse against the dispersivities: refine and compare")
+        if s.limiting_blocked.get(sp, 0.0) > 0.0:
+            out.append(f"{sp}: flux limiting left up to {s.limiting_blocked[sp]:.0%} of the "
+                       "nodes at the low-order value in a step (the step is long against "
+                       "their exchange with their neighbours, theory.md T16b): shorten "
+                       "time.step and compare")
         c_min, c_src = s.min_concentration[sp], s.source_max.get(sp, 0.0)
         if c_src > 0 and c_min < -0.01 * c_src:
             at = s.min_concentration_at.get(sp)

@@ -89,6 +89,8 @@ class TransportDiagnostics:
     largest_step: float = 0.0
     max_newton_iterations: int = 0
     max_coupling_sweeps: int = 0  # sweeps over the species of a user law in one step (T11b)
+    # largest fraction of the nodes flux limiting left at the low-order value in a step (T16b)
+    limiting_blocked: dict[str, float] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -183,7 +185,8 @@ class _Species:
     h: FloatArray
     operators: dict[float, tuple[sp.csr_matrix, sp.csr_matrix]] = field(default_factory=dict)
     galerkin: tuple[sp.csr_matrix, sp.csr_matrix] | None = None
-    limiter: tuple[sp.csr_matrix, sp.csr_matrix, FloatArray] | None = None  # T16b: M, D, m_L
+    # T16b: M, D, the lumped mass m_L and each node's exchange Σ_j |d_ij| (D's diagonal)
+    limiter: tuple[sp.csr_matrix, sp.csr_matrix, FloatArray, FloatArray] | None = None
     systems: dict[tuple[float, float, float, tuple[str, ...]], _System] = field(
         default_factory=dict)
     user_rate: Callable[[FloatArray], tuple[FloatArray, FloatArray]] | None = None
@@ -363,7 +366,8 @@ def run_transport(
                 ML, KD = monotone_operators(M0, K0)
                 s.operators[0.0] = (ML, KD)
                 if limiting and not s.nonlinear:
-                    s.limiter = (M0, pattern.matrix(KD.data - K0.data), ML.diagonal())
+                    D = pattern.matrix(KD.data - K0.data)
+                    s.limiter = (M0, D, ML.diagonal(), D.diagonal())
                 s.galerkin = None  # not needed again: free its memory
             return s.operators[0.0]
         if dt_tau not in s.operators:
@@ -490,6 +494,7 @@ def run_transport(
     cmin: dict[str, tuple[float, tuple[float, ...] | None]] = {
         s.name: (0.0, None) for s in species}
     courant = {s.name: 0.0 for s in species}
+    blocked: dict[str, float] = {}  # T16b, see TransportDiagnostics.limiting_blocked
     peclet = {}
     for s in species:
         speed_v = np.sqrt(np.sum(v * v, axis=0))
@@ -512,7 +517,7 @@ def run_transport(
             rejected_steps=int(stats["rejected"]),
             smallest_step=0.0 if n_steps == 0 else float(stats["dt_min"]),
             largest_step=float(stats["dt_max"]), max_newton_iterations=int(stats["newton"]),
-            max_coupling_sweeps=int(stats["sweeps"]))
+            max_coupling_sweeps=int(stats["sweeps"]), limiting_blocked=dict(blocked))
         return Snapshot(time=t, concentration={k: c.copy() for k, c in conc.items()},
                         budgets=budgets, history_times=np.array(hist_t),
                         history={k: np.array(vv) for k, vv in hist.items()}, diagnostics=diag)
@@ -600,9 +605,11 @@ def run_transport(
                     # budget from the consistent residual of the full (unreduced) system (T9)
                     r_ = sy.S @ out - rhs_
                     if s.limiter is not None:  # T16b: the limited fluxes, explicit
-                        M0, D, m_l = s.limiter
+                        M0, D, m_l, exchange = s.limiter
                         g = limited_fluxes(M0, D, m_l, out, old, dt, sy.fixed,
                                            reach=LIMITING_REACH)
+                        blocked[s.name] = max(blocked.get(s.name, 0.0), float(np.mean(
+                            dt * exchange[sy.free] > LIMITING_REACH * m_l[sy.free])))
                         flux_state[s.name] = out.copy()  # the state the fluxes act on
                         out[sy.free] += dt * g[sy.free] / m_l[sy.free]
                         r_ -= g

@@ -345,6 +345,22 @@ def test_flux_limiting_sharpens_the_monotone_front(column, courant):
                 assert snap.budgets["tracer"].relative_error <= 1e-8
         prof = np.sum(bary * snaps[-1].concentration["tracer"][nodes], axis=0) / C0
         err[name] = float(np.mean(np.abs(prof - exact)))
+        if name == "limited":  # every node short enough for the correction at these steps
+            assert snaps[-1].diagnostics.limiting_blocked["tracer"] == 0.0
     print(f"Courant {courant}: mean |error| {err}")
     assert err["limited"] <= 1.1 * err["supg"], err
     assert err["limited"] * 1.3 <= err["low"], err
+
+
+def test_flux_limiting_on_long_steps_keeps_the_low_order_value(column):
+    """At a nominal Courant number of 8 (13.7 over the cells) every node's step is long
+    against its low-order exchange (theory.md T16b, LIMITING_REACH): the run reports the
+    blocked share (measured: all free nodes; 1 % at a nominal Courant number of 2, none at
+    1) and its result is the low-order one to round-off."""
+    site, flow, _ = column
+    text = _case_text(8.0 * CELL / V) + '[solver]\nlinear_solver = "direct"\nmonotone = true\n'
+    low = list(run_transport(site, flow, parse_case(text)))[-1]
+    lim = list(run_transport(site, flow, parse_case(text + "flux_limiting = true\n")))[-1]
+    assert lim.diagnostics.limiting_blocked["tracer"] == 1.0
+    np.testing.assert_allclose(lim.concentration["tracer"], low.concentration["tracer"],
+                               rtol=0, atol=1e-12 * C0)
