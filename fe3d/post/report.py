@@ -83,7 +83,6 @@ def quality_warnings(s: RunSummary) -> list[str]:
             out.append(f"{sp}: largest Courant number {s.max_courant[sp]:.2g} > 1; first "
                        "arrival times at low concentrations may come too early (numerical "
                        "spreading): shorten time.step and compare")
-
         if s.max_grid_peclet[sp] > 2.0:
             out.append(f"{sp}: largest grid Péclet number {s.max_grid_peclet[sp]:.2g} > 2; "
                        "the mesh is coarse against the dispersivities: refine and compare")
