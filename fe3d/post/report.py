@@ -163,7 +163,9 @@ def write_report(path: Path, s: RunSummary) -> Path:
                      f"{s.max_courant[sp]:.3g} | {s.min_concentration[sp] * sc:.3g} |")
     warnings = quality_warnings(s)
     lines += ["", "Negative concentrations are a discretisation artefact near steep fronts; "
-              "where they are large against the limit, refine the mesh near the plume.", "",
+              "where they are large against the limit, refine the mesh near the plume, or "
+              "compare with a run with `solver.monotone = true` (never negative, more "
+              "numerical spreading).", "",
               "### Warnings", "", *([f"- {w}" for w in warnings] or ["- none"]), "",
               "## Files", "", *[f"- `{f}`" for f in s.files], ""]
     write_text_atomic(path, "\n".join(lines))
