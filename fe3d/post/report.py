@@ -66,6 +66,7 @@ class RunSummary:
     step_cuts: int = 0
     rejected_steps: int = 0
     method: str = ""  # the time scheme and the spatial scheme, in words
+    monotone: bool = False  # solver.monotone was on (T16)
     limiting_blocked: dict[str, float] = field(default_factory=dict)  # T16b, fraction
 
 
@@ -96,11 +97,14 @@ def quality_warnings(s: RunSummary) -> list[str]:
             at = s.min_concentration_at.get(sp)
             where = "" if at is None else (
                 f" near x={at[0]:.1f} m, y={at[1]:.1f} m, z={at[2]:.1f} m")
+            advice = ("solver.monotone keeps values nonnegative with backward Euler "
+                      "only: use time.scheme = 'backward_euler'" if s.monotone else
+                      "or set solver.monotone = true (no negative values, more numerical "
+                      "spreading; add flux_limiting = true with backward Euler to sharpen "
+                      "it again) and compare")
             out.append(f"{sp}: most negative concentration {from_si(c_min, cu):.3g} {cu} "
                        f"({-c_min / c_src:.1%} of the source){where}: refine the mesh "
-                       "there, or set solver.monotone = true (no negative values, more "
-                       "numerical spreading; add flux_limiting = true with backward Euler "
-                       "to sharpen it again) and compare")
+                       f"there, {advice}")
     return out
 
 

@@ -30,6 +30,7 @@ def test_no_warning_for_a_resolved_run():
     ("max_courant", {"x": 3.0}, "Courant"),
     ("max_grid_peclet", {"x": 8.0}, "Péclet"),
     ("min_concentration", {"x": -0.05}, "negative"),
+    ("limiting_blocked", {"x": 0.25}, "25% of the nodes"),
 ])
 def test_each_threshold_warns(field, value, word):
     """Thresholds: Courant 1, grid Péclet 2, undershoot 1 % of the source (common practice,
@@ -37,6 +38,14 @@ def test_each_threshold_warns(field, value, word):
     w = quality_warnings(_summary(**{field: value}))
     assert len(w) == 1
     assert word in w[0]
+
+
+def test_negative_values_advice_follows_the_scheme():
+    """The advice names the monotone option, or, when it was on, backward Euler (T16)."""
+    plain = quality_warnings(_summary(min_concentration={"x": -0.05}))[0]
+    assert "set solver.monotone = true" in plain
+    mono = quality_warnings(_summary(min_concentration={"x": -0.05}, monotone=True))[0]
+    assert "backward Euler only" in mono and "set solver.monotone" not in mono
 
 
 def test_breakthrough_interpolates_crossing_times():
