@@ -486,6 +486,10 @@ def cross_checks(case: Case) -> list[CaseError]:
     if case.solver.flux_limiting and not case.solver.monotone:
         errs.append(CaseError("solver.flux_limiting", "true",
                               "needs solver.monotone = true (it limits the low-order scheme)"))
+    if case.solver.flux_limiting and case.time.adaptive:
+        errs.append(CaseError("solver.flux_limiting", "true",
+                              "works with fixed steps only (time.adaptive = false): the "
+                              "limiter's switching defeats the step-size control"))
     if case.solver.flux_limiting and case.time.scheme != "backward_euler":
         errs.append(CaseError("solver.flux_limiting", "true",
                               f"works with time.scheme = 'backward_euler' only, not "

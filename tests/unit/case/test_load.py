@@ -172,6 +172,10 @@ BAD_INPUTS = [
     ("flux_limiting_without_monotone", "[output]",
      "[solver]\nflux_limiting = true\n\n[output]",
      "solver.flux_limiting", "'true'", "needs solver.monotone = true"),
+    ("flux_limiting_with_adaptive_steps", 'output_interval = "0.5 yr"\n',
+     'output_interval = "0.5 yr"\nadaptive = true\n\n[solver]\nmonotone = true\n'
+     'flux_limiting = true\n',
+     "solver.flux_limiting", "'true'", "works with fixed steps only"),
     ("fine_cells_coarser_than_cells", 'fine_cell_size = "4 m"', 'fine_cell_size = "10 m"',
      "mesh.fine_cell_size", "'10 m'", "must not exceed mesh.cell_size (8 m)"),
 ]
