@@ -319,8 +319,8 @@ class LinearSolver:
                 "probe_iterations": self.probe_iterations, "setup_s": self.setup_s}
 
     def preconditioner(self) -> spla.LinearOperator:
-        """An operator M ≈ A⁻¹: the LU solve (direct), symmetric Gauss–Seidel
-        ((D + U)⁻¹ D (D + L)⁻¹, one forward and one backward pass), the inverse diagonal
+        """An operator M ≈ A⁻¹: the LU solve (direct), SSOR ((D/ω + U)⁻¹ (D/ω) (D/ω + L)⁻¹,
+        one forward and one backward pass), the inverse diagonal
         (Jacobi) or one AMG V-cycle; for :func:`solve_with_preconditioner`
         on nearby matrices (Newton Jacobians of the same step)."""
         n = self.A.shape[0]

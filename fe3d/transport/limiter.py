@@ -31,8 +31,9 @@ __all__ = ["limited_fluxes"]
 @numba.njit(cache=True, nogil=True)
 def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
            lumped: FloatArray, c_low: FloatArray, rate: FloatArray, dt: float,
-           is_fixed: np.ndarray, reach: float) -> FloatArray:
+           is_fixed: np.ndarray, reach: float) -> tuple[FloatArray, int]:
     n = lumped.size
+    blocked = 0
     f = np.zeros(cols.size)
     r_plus, r_minus = np.ones(n), np.ones(n)
     for i in range(n):
@@ -55,6 +56,7 @@ def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
             q_minus = min(q_minus, -dc)
         if not is_fixed[i] and dt * exchange > reach * lumped[i]:
             r_plus[i] = r_minus[i] = 0.0  # the step is long against this node's exchange
+            blocked += 1
         elif not is_fixed[i]:
             if p_plus > 0.0:
                 r_plus[i] = min(1.0, lumped[i] * q_plus / (dt * p_plus))
@@ -70,13 +72,14 @@ def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
             elif fij < 0.0:
                 s += min(r_minus[i], r_plus[cols[p]]) * fij
         g[i] = s
-    return g
+    return g, blocked
 
 
 def limited_fluxes(mass: sp.csr_matrix, diffusion: sp.csr_matrix, lumped: FloatArray,
                    c_low: FloatArray, c_old: FloatArray, dt: float,
-                   fixed: IndexArray, *, reach: float = np.inf) -> FloatArray:
-    """Net limited antidiffusive flux g_i = Σ_j α_ij f_ij into every node [kg/s].
+                   fixed: IndexArray, *, reach: float = np.inf) -> tuple[FloatArray, int]:
+    """Net limited antidiffusive flux g_i = Σ_j α_ij f_ij into every node [kg/s], and the
+    number of nodes the ``reach`` rule below blocked.
 
     ``mass`` is the consistent mass operator M and ``diffusion`` the symmetric D of T16
     (nonpositive off-diagonal entries), both on one CSR pattern with its diagonal;

@@ -185,8 +185,7 @@ class _Species:
     h: FloatArray
     operators: dict[float, tuple[sp.csr_matrix, sp.csr_matrix]] = field(default_factory=dict)
     galerkin: tuple[sp.csr_matrix, sp.csr_matrix] | None = None
-    # T16b: M, D, the lumped mass m_L and each node's exchange Σ_j |d_ij| (D's diagonal)
-    limiter: tuple[sp.csr_matrix, sp.csr_matrix, FloatArray, FloatArray] | None = None
+    limiter: tuple[sp.csr_matrix, sp.csr_matrix, FloatArray] | None = None  # T16b: M, D, m_L
     systems: dict[tuple[float, float, float, tuple[str, ...]], _System] = field(
         default_factory=dict)
     user_rate: Callable[[FloatArray], tuple[FloatArray, FloatArray]] | None = None
@@ -366,8 +365,7 @@ def run_transport(
                 ML, KD = monotone_operators(M0, K0)
                 s.operators[0.0] = (ML, KD)
                 if limiting and not s.nonlinear:
-                    D = pattern.matrix(KD.data - K0.data)
-                    s.limiter = (M0, D, ML.diagonal(), D.diagonal())
+                    s.limiter = (M0, pattern.matrix(KD.data - K0.data), ML.diagonal())
                 s.galerkin = None  # not needed again: free its memory
             return s.operators[0.0]
         if dt_tau not in s.operators:
@@ -605,11 +603,11 @@ def run_transport(
                     # budget from the consistent residual of the full (unreduced) system (T9)
                     r_ = sy.S @ out - rhs_
                     if s.limiter is not None:  # T16b: the limited fluxes, explicit
-                        M0, D, m_l, exchange = s.limiter
-                        g = limited_fluxes(M0, D, m_l, out, old, dt, sy.fixed,
-                                           reach=LIMITING_REACH)
-                        blocked[s.name] = max(blocked.get(s.name, 0.0), float(np.mean(
-                            dt * exchange[sy.free] > LIMITING_REACH * m_l[sy.free])))
+                        M0, D, m_l = s.limiter
+                        g, n_blocked = limited_fluxes(M0, D, m_l, out, old, dt, sy.fixed,
+                                                      reach=LIMITING_REACH)
+                        blocked[s.name] = max(blocked.get(s.name, 0.0),
+                                              n_blocked / max(sy.free.size, 1))
                         flux_state[s.name] = out.copy()  # the state the fluxes act on
                         out[sy.free] += dt * g[sy.free] / m_l[sy.free]
                         r_ -= g

@@ -84,7 +84,8 @@ def test_limited_fluxes_conserve_and_keep_local_bounds() -> None:
     n = m_l.size
     fixed = np.arange(0, n, 7)
     dt = 1e6
-    g = limited_fluxes(M, D, m_l, c_low, c_old, dt, fixed)
+    g, n_blocked = limited_fluxes(M, D, m_l, c_low, c_old, dt, fixed)
+    assert n_blocked == 0  # no reach given: no node blocked
     assert abs(g.sum()) <= 1e-12 * np.abs(g).sum()
     free = np.setdiff1d(np.arange(n), fixed)
     c = c_low.copy()
@@ -103,9 +104,14 @@ def test_limiting_stops_where_the_step_is_long() -> None:
     M, m_l, D, c_low, c_old = _limiter_inputs(3)
     dt = 1e6
     none = np.array([], dtype=np.int64)
-    assert np.all(limited_fluxes(M, D, m_l, c_low, c_old, dt, none, reach=0.0) == 0.0)
     ratio = dt * (-(D - sp.diags(D.diagonal())).sum(axis=1).A1) / m_l
-    reach = float(np.median(ratio))
-    g = limited_fluxes(M, D, m_l, c_low, c_old, dt, none, reach=reach)
+    g0, n0 = limited_fluxes(M, D, m_l, c_low, c_old, dt, none, reach=0.0)
+    assert np.all(g0 == 0.0) and n0 == int(np.sum(ratio > 0.0))  # a node with no exchange
+    # is not blocked, but all its neighbours are
+    levels = np.unique(ratio)  # the regular mesh repeats ratios: reach between two of them
+    k = levels.size // 2
+    reach = float(0.5 * (levels[k] + levels[k + 1]))
+    g, n_blocked = limited_fluxes(M, D, m_l, c_low, c_old, dt, none, reach=reach)
+    assert n_blocked == int(np.sum(ratio > reach))
     assert np.all(g[ratio > reach] == 0.0)
     assert np.any(g[ratio <= reach] != 0.0)
