@@ -260,15 +260,9 @@ class SymmetricGaussSeidel:
 
         return spla.LinearOperator((n, n), matvec=apply, dtype=float)
 
-    def split_operator(self) -> spla.LinearOperator:
-        """Â = M_L⁻¹ A M_R⁻¹ by Eisenstat's product (module docstring)."""
-        def apply(v: FloatArray) -> FloatArray:
-            return self.split_product(np.ascontiguousarray(v, dtype=float).ravel())
-
-        return spla.LinearOperator((self.n, self.n), matvec=apply, dtype=float)
-
     def split_product(self, v: FloatArray) -> FloatArray:
-        """Â v (one backward and one forward pass); ``v`` contiguous float64."""
+        """Â v = M_L⁻¹ A M_R⁻¹ v by Eisenstat's product (module docstring): one backward and
+        one forward pass; ``v`` contiguous float64."""
         out, w = np.empty(self.n), np.empty(self.n)
         _split_product(*self._lower, *self._upper, self.d, self.inv_d, self.e, v, w, out)
         return out
