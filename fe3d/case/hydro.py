@@ -3,9 +3,9 @@ boundaries (streams, drains) and specified fluxes. Values are SI after validatio
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Literal
+from typing import TYPE_CHECKING, Annotated, Literal
 
-from pydantic import Field
+from pydantic import BeforeValidator, Field
 
 from fe3d.case.schema_types import (
     Concentration,
@@ -55,16 +55,24 @@ class Recharge(Section):
     zone: PlanPolygon | None = None
 
 
+def _renamed_kind(value: object) -> object:
+    if value == "river":
+        msg = "must be 'stream' or 'drain' ('river' is now called 'stream')"
+        raise ValueError(msg)
+    return value
+
+
 class HeadDependent(Section):
     """A head-dependent boundary on a named face (default the top), optionally limited to
     the part inside a plan polygon: q_in = leakance · (stage − h).
 
-    A ``river`` both gains and loses water; a ``drain`` only removes water (no inflow when
-    the head is below the stage).
+    A ``stream`` both gains and loses water; a ``drain`` only removes water (no inflow when
+    the head is below the stage). The former word ``river`` for a stream is refused with a
+    line that names the new one.
     """
 
     name: Name
-    kind: Literal["river", "drain"]
+    kind: Annotated[Literal["stream", "drain"], BeforeValidator(_renamed_kind)]
     stage: Length
     leakance: PositiveLeakance
     face: Name = "top"

@@ -237,7 +237,7 @@ def solve_flow(
         else:
             head = solve_spd(M, rhs, tol=FLOW_TOLERANCE, stats=stats)
         iterations += int(stats.get("iterations", 0))
-        new_active = [np.ones(n, dtype=bool) if hd.kind == "river" else head > hd.stage
+        new_active = [np.ones(n, dtype=bool) if hd.kind == "stream" else head > hd.stage
                       for hd, _ in robin]
         if all(np.array_equal(a1, a2) for a1, a2 in zip(active, new_active, strict=True)):
             break

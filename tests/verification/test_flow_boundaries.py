@@ -50,7 +50,7 @@ def test_river_on_a_lateral_face_matches_the_series_resistance():
             'top = "0 m"\n' + MATS.format(K=K)
             + '[[layers]]\nname = "sand"\nmaterial = "sand"\nbottom = "-10 m"\n'
             f'[[fixed_heads]]\nface = "west"\nhead = "{hw} m"\n'
-            f'[[head_dependent]]\nname = "brook"\nkind = "river"\nface = "east"\n'
+            f'[[head_dependent]]\nname = "brook"\nkind = "stream"\nface = "east"\n'
             f'stage = "{H} m"\nleakance = "{leak} d^-1"\n'
             '[mesh]\ncell_size = "10 m"\nlayer_cell_thickness = "5 m"\n')
     case = parse_case(text)

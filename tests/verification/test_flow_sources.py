@@ -181,7 +181,7 @@ def test_drain_only_removes_water_and_river_both_ways():
     assert ditch.inflow == 0.0
     assert ditch.outflow == 0.0
     np.testing.assert_allclose(flow.head, -1.0, atol=1e-12)
-    river = _case(L=100, W=50, extra=extra.replace('"drain"', '"river"'))
+    river = _case(L=100, W=50, extra=extra.replace('"drain"', '"stream"'))
     flow = solve_flow(build_mesh(river), river)
     r = next(i for i in flow.budget if i.name == "ditch")
     assert r.inflow > 0
@@ -198,7 +198,7 @@ def test_bad_flow_inputs_name_the_field():
         _case(K=-1.0, extra='[[fixed_heads]]\nface = "west"\nhead = "1 m"\n')
     assert "materials.aquifer.horizontal_conductivity" in str(e.value)
     extra = ('[[fixed_heads]]\nface = "west"\nhead = "1 m"\n'
-             '[[head_dependent]]\nname = "brook"\nkind = "river"\nstage = "-10.5 m"\n'
+             '[[head_dependent]]\nname = "brook"\nkind = "stream"\nstage = "-10.5 m"\n'
              'leakance = "1 d^-1"\nzone = [["0 m", "0 m"], ["50 m", "0 m"], ["50 m", "50 m"]]\n')
     case = _case(extra=extra, b=10.0)
     with pytest.raises(Exception, match=r"head_dependent\[brook\]\.stage"):
