@@ -203,7 +203,7 @@ def _mesh(case_path: Path, out: Path | None) -> int:
     con = Console()
     how = "reused (inputs unchanged)" if reused else "built"
     con.print(f"[bold]{case.title}[/bold]: mesh {how} in {folder}/")
-    for line in report_lines(site.info["quality"]):
+    for line in report_lines(site.report.quality):
         con.print(f"  {line}", highlight=False)
     con.print("  sublayers: " + ", ".join(f"{k} {v}" for k, v in
                                          (site.info.get("sublayers") or {}).items()))

@@ -22,7 +22,7 @@ from __future__ import annotations
 import itertools
 import logging
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -32,6 +32,7 @@ from scipy.sparse.csgraph import reverse_cuthill_mckee
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
 from fe3d.mesh.quality import quality_report
+from fe3d.mesh.report import LensFit, MeshReport, PlanLayout
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.mesh.stratigraphy import unit_surfaces
 from fe3d.p1 import node_graph
@@ -488,7 +489,7 @@ def build_mesh(case: Case) -> SiteMesh:
     z, lens_notes = _fit_lenses(case, z, layer_unit, level_frac, surfaces, lens_in,
                                 node_area)
     for note in lens_notes:
-        logger.warning("%s", note["line"])
+        logger.warning("%s", note.line)
     points, cells, cell_unit, cell_level, cell_tri, node_level = extrude(
         xy, tri, z, np.array(layer_unit, dtype=np.int64))
     cell_unit = _tag_lenses(case, xy, tri, z, layer_unit, level_frac, cell_unit, cell_level,
@@ -508,18 +509,16 @@ def build_mesh(case: Case) -> SiteMesh:
     base_z = surfaces[-1]
     unit_names = tuple([ly.name for ly in case.layers] + [ls.name for ls in case.lenses])
     faces = _classify_faces(points, cells, node_level, xy, base_z, plan.edges)
-    site = SiteMesh(points=points, cells=cells, cell_layer=cell_unit, layer_names=unit_names,
-                    faces=faces,
-                    info={"sublayers": {ly.name: len(fr) - 1 for ly, fr in
-                                        zip(case.layers, fractions, strict=True)},
-                          "plan_nodes": int(xy.shape[1]), "plan_triangles": int(tri.shape[1]),
-                          "surface_rules": [a.as_dict() for a in applied],
-                          "surface_rule_lines": [a.line() for a in applied],
-                          "lens_fit": lens_notes,
-                          "plan_xy": xy, "plan_tri": tri, "surfaces": surfaces,
-                          "borehole_nodes": boreholes, "well_nodes": well_node})
-    check_volumes(site)
-    site.info["quality"] = quality_report(site)
+    bare = SiteMesh(points=points, cells=cells, cell_layer=cell_unit, layer_names=unit_names,
+                    faces=faces)
+    check_volumes(bare)
+    report = MeshReport(
+        quality=quality_report(bare), origin="built",
+        sublayers={ly.name: len(fr) - 1 for ly, fr in zip(case.layers, fractions, strict=True)},
+        surface_rules=tuple(applied), lens_fits=tuple(lens_notes),
+        plan=PlanLayout(xy=xy, tri=tri, surfaces=np.array(surfaces),
+                        borehole_nodes=boreholes, well_nodes=well_node))
+    site = replace(bare, report=report)
     logger.info("mesh: %d nodes, %d tetrahedra", site.n_nodes, site.n_cells)
     return site
 
@@ -531,8 +530,6 @@ def _imported(case: Case) -> SiteMesh:
     tagged triangles, which must then include every face of the case; a file without tagged
     triangles gets its faces from the case's boundary outline (:func:`faces_from_outline`).
     """
-    from dataclasses import replace
-
     from fe3d.mesh.io import faces_from_outline, read_site_mesh
 
     assert case.mesh.import_file is not None
@@ -560,8 +557,11 @@ def _imported(case: Case) -> SiteMesh:
     site = replace(site, cell_layer=order[site.cell_layer], layer_names=tuple(units),
                    faces={**{f: faces[f] for f in needed}, **faces})
     check_volumes(site)
-    site.info["quality"] = quality_report(site)
-    return site
+    assert site.report is not None  # read_site_mesh measured the shapes; units renamed here
+    vol = site.cell_volumes()
+    quality = replace(site.report.quality, volume_per_unit_m3={
+        name: float(vol[site.cell_layer == i].sum()) for i, name in enumerate(units)})
+    return replace(site, report=replace(site.report, quality=quality))
 
 
 def obtain_mesh(case: Case, folders: list[Path], *, save_to: Path | None = None,
@@ -715,7 +715,7 @@ def _lens_rows(case: Case, li: int, z: FloatArray, layer_unit: list[int],
 def _fit_lenses(case: Case, z: FloatArray, layer_unit: list[int],
                 level_frac: list[tuple[int, float]], surfaces: list[FloatArray],
                 lens_in: list[np.ndarray], node_area: FloatArray,
-                ) -> tuple[FloatArray, list[dict[str, object]]]:
+                ) -> tuple[FloatArray, list[LensFit]]:
     """Move the host-unit levels at the lens nodes so that two levels follow the lens top and
     bottom (clipped to the host unit); levels in between are spread linearly.
 
@@ -723,7 +723,7 @@ def _fit_lenses(case: Case, z: FloatArray, layer_unit: list[int],
     it (clipped to the host unit, or snapped to the host's top or base), for the report.
     """
     z = z.copy()
-    notes: list[dict[str, object]] = []
+    notes: list[LensFit] = []
     for li, mask in enumerate(lens_in):
         lens = case.lenses[li]
         k, r0, r1, rt, rb, _ = _lens_rows(case, li, z, layer_unit, level_frac, surfaces, mask)
@@ -754,7 +754,7 @@ def _fit_lenses(case: Case, z: FloatArray, layer_unit: list[int],
 
 def _lens_note(name: str, host: str, side: str, want: float, idx: IndexArray,
                outside: np.ndarray, snapped: np.ndarray, shift: FloatArray, live: np.ndarray,
-               node_area: FloatArray) -> dict[str, object]:
+               node_area: FloatArray) -> LensFit:
     """One report record of a lens side that does not lie where the case puts it."""
     parts = []
     if outside.any():
@@ -770,10 +770,11 @@ def _lens_note(name: str, host: str, side: str, want: float, idx: IndexArray,
     text = (f"lens {name!r} {side} ({want:g} m): " + "; ".join(parts)
             + f"; moved by up to {float(shift.max()):.3g} m")
     where = idx[outside | snapped | ~live]
-    return {"lens": name, "host": host, "side": side, "n_clipped": int(outside.sum()),
-            "n_snapped": int(snapped.sum()), "n_host_absent": int((~live).sum()),
-            "n_lens_nodes": int(idx.size), "max_shift_m": float(shift.max()),
-            "area_m2": float(node_area[where].sum()), "line": text}
+    return LensFit(lens=name, host=host, side="top" if side == "top" else "bottom",
+                   n_clipped=int(outside.sum()), n_snapped=int(snapped.sum()),
+                   n_host_absent=int((~live).sum()), n_lens_nodes=int(idx.size),
+                   max_shift_m=float(shift.max()), area_m2=float(node_area[where].sum()),
+                   line=text)
 
 
 def _tag_lenses(case: Case, xy: FloatArray, tri: IndexArray, z: FloatArray,

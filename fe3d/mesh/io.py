@@ -7,6 +7,7 @@ import contextlib
 import hashlib
 import io
 import json
+from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -14,7 +15,10 @@ import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
+from fe3d.mesh.quality import quality_report
+from fe3d.mesh.report import LensFit, MeshQuality, MeshReport, PlanLayout
 from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.mesh.stratigraphy import RuleApplied
 
 if TYPE_CHECKING:
     from fe3d.case.schema import Case
@@ -22,7 +26,7 @@ if TYPE_CHECKING:
 __all__ = ["faces_from_outline", "load_cached", "mesh_inputs_hash", "read_site_mesh",
            "save_cached"]
 
-MESH_FORMAT = 3  # bump when the mesher's output for the same inputs changes
+MESH_FORMAT = 4  # bump when the mesher's output for the same inputs changes
 
 
 def read_site_mesh(path: Path, *, unit_tag: str | None = None, key: str = "mesh file",
@@ -121,8 +125,10 @@ def read_site_mesh(path: Path, *, unit_tag: str | None = None, key: str = "mesh 
     a, b, c, d = (points[:, cells[i]] for i in range(4))
     neg = np.einsum("ij,ij->j", b - a, np.cross(c - a, d - a, axis=0)) < 0
     cells[[1, 2]] = np.where(neg, cells[[2, 1]], cells[[1, 2]])
-    return SiteMesh(points=points, cells=cells, cell_layer=cell_layer, layer_names=names,
-                    faces=faces, info={"imported_from": str(path)})
+    bare = SiteMesh(points=points, cells=cells, cell_layer=cell_layer, layer_names=names,
+                    faces=faces)
+    return replace(bare, report=MeshReport(quality=quality_report(bare), origin="imported",
+                                           origin_path=str(path)))
 
 
 def faces_from_outline(points: FloatArray, cells: IndexArray,
@@ -200,26 +206,43 @@ def mesh_inputs_hash(case: Case) -> str:
 
 
 def save_cached(site: SiteMesh, folder: Path, digest: str) -> Path:
-    """Write ``mesh.npz`` (exact arrays) and ``mesh.json`` (hash and quality) in ``folder``."""
+    """Write ``mesh.npz`` (exact arrays, the plan layout included) and ``mesh.json`` (hash,
+    units, faces and the rest of the mesh report) in ``folder``."""
+    report = site.report
+    if report is None:
+        msg = "a mesh without a mesher report (assembled from bare arrays) is not cached"
+        raise MeshError(msg)
     folder.mkdir(parents=True, exist_ok=True)
     arrays = {"points": site.points, "cells": site.cells, "cell_layer": site.cell_layer}
     arrays |= {f"face:{k}": v for k, v in site.faces.items()}
+    plan = report.plan
+    if plan is not None:
+        arrays |= {"plan:xy": plan.xy, "plan:tri": plan.tri, "plan:surfaces": plan.surfaces}
     tmp = folder / "mesh.npz.part"
     with tmp.open("wb") as fh:
         np.savez(fh, **arrays)
     tmp.replace(folder / "mesh.npz")
     meta = {"mesh_inputs_sha256": digest, "units": list(site.layer_names),
             "faces": list(site.faces),
-            "quality": site.info.get("quality"),
-            "surface_rules": site.info.get("surface_rules", []),
-            "lens_fit": site.info.get("lens_fit", []),
-            "sublayers": site.info.get("sublayers")}
-    (folder / "mesh.json").write_text(json.dumps(meta, indent=2), encoding="utf-8")
+            "quality": report.quality.as_dict(),
+            "surface_rules": [r.as_dict() for r in report.surface_rules],
+            "lens_fit": [n.as_dict() for n in report.lens_fits],
+            "sublayers": report.sublayers,
+            "origin": report.origin, "origin_path": report.origin_path,
+            "plan_nodes": None if plan is None else {"boreholes": plan.borehole_nodes,
+                                                     "wells": plan.well_nodes}}
+    tmp_json = folder / "mesh.json.part"
+    tmp_json.write_text(json.dumps(meta, indent=2), encoding="utf-8")
+    tmp_json.replace(folder / "mesh.json")
     return folder / "mesh.npz"
 
 
 def load_cached(folder: Path, digest: str) -> SiteMesh | None:
-    """The cached mesh in ``folder`` if its stored hash equals ``digest``, else ``None``."""
+    """The cached mesh in ``folder`` if its stored hash equals ``digest``, else ``None``.
+
+    Its report equals the one of the mesh when it was built, but for ``origin`` (``"cached"``)
+    and ``origin_path`` (this folder).
+    """
     meta_path, npz = folder / "mesh.json", folder / "mesh.npz"
     if not (meta_path.is_file() and npz.is_file()):
         return None
@@ -229,12 +252,17 @@ def load_cached(folder: Path, digest: str) -> SiteMesh | None:
             return None
         with np.load(npz) as z:
             faces = {name: z[f"face:{name}"] for name in meta["faces"]}
+            nodes = meta["plan_nodes"]
+            plan = None if nodes is None else PlanLayout(
+                xy=z["plan:xy"], tri=z["plan:tri"], surfaces=z["plan:surfaces"],
+                borehole_nodes=dict(nodes["boreholes"]), well_nodes=dict(nodes["wells"]))
+            report = MeshReport(
+                quality=MeshQuality.from_dict(meta["quality"]), origin="cached",
+                origin_path=str(folder), sublayers=dict(meta["sublayers"]),
+                surface_rules=tuple(RuleApplied.from_dict(r) for r in meta["surface_rules"]),
+                lens_fits=tuple(LensFit.from_dict(n) for n in meta["lens_fit"]), plan=plan)
             site = SiteMesh(points=z["points"], cells=z["cells"], cell_layer=z["cell_layer"],
-                            layer_names=tuple(meta["units"]), faces=faces,
-                            info={"reused_from": str(folder), "quality": meta.get("quality"),
-                                  "surface_rules": meta.get("surface_rules", []),
-                                  "lens_fit": meta.get("lens_fit", []),
-                                  "sublayers": meta.get("sublayers")})
-    except (OSError, ValueError, KeyError):
+                            layer_names=tuple(meta["units"]), faces=faces, report=report)
+    except (OSError, ValueError, KeyError, TypeError):
         return None
     return site

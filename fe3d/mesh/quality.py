@@ -12,16 +12,17 @@ Analysis and Design 15:255–261; normalisation recalled from memory).
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.mesh.report import MeshQuality
 
 if TYPE_CHECKING:
     from fe3d.mesh.site_mesh import SiteMesh
 
-__all__ = ["aspect_ratios", "dihedral_angles", "quality_report"]
+__all__ = ["aspect_ratios", "dihedral_angles", "quality_report", "report_lines"]
 
 _FACES = ((1, 2, 3), (0, 2, 3), (0, 1, 3), (0, 1, 2))  # face i is opposite vertex i
 
@@ -66,7 +67,7 @@ def aspect_ratios(points: FloatArray, cells: IndexArray) -> FloatArray:
         return longest / (2.0 * np.sqrt(6.0) * r_in)
 
 
-def quality_report(site: SiteMesh, *, chunk: int = 500_000) -> dict[str, Any]:
+def quality_report(site: SiteMesh, *, chunk: int = 500_000) -> MeshQuality:
     """Cell and node counts, volume per unit [m³], min and 1st-percentile dihedral angle
     [degrees] and the worst aspect ratio (with where it is)."""
     m = site.n_cells
@@ -80,30 +81,29 @@ def quality_report(site: SiteMesh, *, chunk: int = 500_000) -> dict[str, Any]:
         ar[s:s + chunk] = aspect_ratios(site.points, c)
     vol = site.cell_volumes()
     worst = int(np.argmax(ar))
-    where = site.points[:, site.cells[:, worst]].mean(axis=1)
-    return {
-        "cells": m,
-        "nodes": site.n_nodes,
-        "volume_per_unit_m3": {name: float(vol[site.cell_layer == i].sum())
-                               for i, name in enumerate(site.layer_names)},
-        "min_dihedral_deg": float(mins.min()),
-        "p01_dihedral_deg": float(np.percentile(mins, 1.0)),
-        "max_dihedral_deg": float(maxs.max()),
-        "worst_aspect_ratio": float(ar[worst]),
-        "worst_aspect_ratio_at_m": [float(v) for v in where],
-        "min_volume_m3": float(vol.min()),
-    }
+    x, y, z = (float(v) for v in site.points[:, site.cells[:, worst]].mean(axis=1))
+    return MeshQuality(
+        cells=m, nodes=site.n_nodes,
+        volume_per_unit_m3={name: float(vol[site.cell_layer == i].sum())
+                            for i, name in enumerate(site.layer_names)},
+        min_dihedral_deg=float(mins.min()),
+        p01_dihedral_deg=float(np.percentile(mins, 1.0)),
+        max_dihedral_deg=float(maxs.max()),
+        worst_aspect_ratio=float(ar[worst]),
+        worst_aspect_ratio_at_m=(x, y, z),
+        min_volume_m3=float(vol.min()),
+    )
 
 
-def report_lines(report: dict[str, Any]) -> list[str]:
+def report_lines(report: MeshQuality) -> list[str]:
     """The quality report as short text lines."""
-    lines = [f"{report['cells']:,} tetrahedra, {report['nodes']:,} nodes"]
-    for name, v in report["volume_per_unit_m3"].items():
+    lines = [f"{report.cells:,} tetrahedra, {report.nodes:,} nodes"]
+    for name, v in report.volume_per_unit_m3.items():
         lines.append(f"volume of {name}: {v:.6g} m³")
-    w = report["worst_aspect_ratio_at_m"]
-    lines += [f"dihedral angle: min {report['min_dihedral_deg']:.2f}°, 1st percentile of the "
-              f"cell minima {report['p01_dihedral_deg']:.2f}°, max "
-              f"{report['max_dihedral_deg']:.2f}°",
-              f"worst aspect ratio {report['worst_aspect_ratio']:.3g} near x={w[0]:.1f} m, "
+    w = report.worst_aspect_ratio_at_m
+    lines += [f"dihedral angle: min {report.min_dihedral_deg:.2f}°, 1st percentile of the "
+              f"cell minima {report.p01_dihedral_deg:.2f}°, max "
+              f"{report.max_dihedral_deg:.2f}°",
+              f"worst aspect ratio {report.worst_aspect_ratio:.3g} near x={w[0]:.1f} m, "
               f"y={w[1]:.1f} m, z={w[2]:.2f} m"]
     return lines

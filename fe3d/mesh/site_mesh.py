@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from functools import cached_property
+from types import MappingProxyType
 from typing import Any
 
 import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.mesh.report import MeshReport
 from fe3d.p1 import CsrPattern
 
 __all__ = ["SiteMesh"]
@@ -30,8 +32,11 @@ class SiteMesh:
         Hydrostratigraphic unit names, top down.
     faces
         Boundary face name → node-id triples of its triangles, shape ``(3, n_facets)``.
-    info
-        Mesher details (plan mesh, sublayers, pinch-out and lens reports, well nodes).
+    report
+        What the mesher reports: quality, sublayers, surface rules, lens fits, plan layout
+        (:class:`~fe3d.mesh.report.MeshReport`). Every mesh from
+        :func:`~fe3d.mesh.build.build_mesh`, the mesh cache or a mesh file has one; ``None``
+        only for a mesh a script assembles from bare arrays.
     """
 
     points: FloatArray
@@ -39,7 +44,7 @@ class SiteMesh:
     cell_layer: IndexArray
     layer_names: tuple[str, ...]
     faces: dict[str, IndexArray]
-    info: dict[str, Any] = field(default_factory=dict)
+    report: MeshReport | None = None
 
     @property
     def n_nodes(self) -> int:
@@ -57,11 +62,40 @@ class SiteMesh:
         built once and shared by every operator of the flow and transport stages."""
         return CsrPattern.of_cells(self.cells, self.n_nodes)
 
-    def cell_volumes(self) -> FloatArray:
-        """Signed volume of every tetrahedron [m³], shape ``(n_cells,)``."""
+    @cached_property
+    def _volumes(self) -> FloatArray:
         p = self.points
         a, b, c, d = (p[:, self.cells[i]] for i in range(4))
-        return np.einsum("ij,ij->j", b - a, np.cross(c - a, d - a, axis=0)) / 6.0
+        vol = np.einsum("ij,ij->j", b - a, np.cross(c - a, d - a, axis=0)) / 6.0
+        vol.flags.writeable = False
+        return vol
+
+    def cell_volumes(self) -> FloatArray:
+        """Signed volume of every tetrahedron [m³], shape ``(n_cells,)``: computed once on
+        first use and shared (read-only; copy before changing it). Positive on a valid mesh
+        (:func:`~fe3d.mesh.build.check_volumes` refuses any other)."""
+        return self._volumes
+
+    def lumped(self, per_cell: FloatArray) -> FloatArray:
+        """Nodal lumping Σ over the cells at each node of value · |V| / 4.
+
+        ``per_cell`` has shape ``(n_cells,)`` or ``(k, n_cells)``; the result has shape
+        ``(n_nodes,)`` or ``(k, n_nodes)``. ``site.lumped(np.ones(n_cells))`` is the volume
+        each node stands for [m³] (P1 row-sum lumping of the mass matrix).
+        """
+        w = np.abs(self._volumes) / 4.0
+        v = np.asarray(per_cell, dtype=float)
+        flat = self.cells.ravel()
+        if v.ndim == 1:
+            return np.bincount(flat, weights=np.tile(v * w, 4), minlength=self.n_nodes)
+        return np.vstack([np.bincount(flat, weights=np.tile(row * w, 4),
+                                      minlength=self.n_nodes) for row in v])
+
+    @property
+    def info(self) -> MappingProxyType[str, Any]:
+        """Read-only view of :attr:`report` under the keys of the former ``info`` dict
+        (compatibility for callers not yet switched to :attr:`report`; to be removed)."""
+        return MappingProxyType({} if self.report is None else self.report.as_legacy_dict())
 
     def face_nodes(self, name: str) -> IndexArray:
         """Sorted unique node ids on a named boundary face."""

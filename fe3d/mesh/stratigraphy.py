@@ -70,6 +70,13 @@ class RuleApplied:
                 "area_m2": self.area, "x_range_m": list(self.x_range),
                 "y_range_m": list(self.y_range), "boreholes": list(self.boreholes)}
 
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> RuleApplied:
+        """Inverse of :meth:`as_dict`."""
+        return cls(unit=data["unit"], rule=data["rule"], n_nodes=int(data["n_nodes"]),
+                   area=float(data["area_m2"]), x_range=tuple(data["x_range_m"]),
+                   y_range=tuple(data["y_range_m"]), boreholes=tuple(data["boreholes"]))
+
 
 def interpolate_surface(data_xy: FloatArray, data_z: FloatArray, xy: FloatArray, *,
                         method: str, what: str) -> FloatArray:

@@ -68,3 +68,42 @@ def test_source_strength_and_well_rate_do_not_change_the_mesh_hash():
                        + well.format(rate=3))
     assert mesh_inputs_hash(stronger) == mesh_inputs_hash(base)
     assert mesh_inputs_hash(moved) != mesh_inputs_hash(base)
+
+
+def test_a_cached_mesh_carries_the_same_report_as_a_fresh_one(tmp_path):
+    """The mesher's report is a frozen record set at construction; loading the mesh from the
+    cache gives equal fields (only origin and origin_path say where it came from)."""
+    case = load_case(TINY)
+    fresh, _ = obtain_mesh(case, [tmp_path], save_to=tmp_path)
+    cached, reused = obtain_mesh(case, [tmp_path], save_to=tmp_path)
+    assert reused
+    a, b = fresh.report, cached.report
+    assert (a.origin, b.origin, b.origin_path) == ("built", "cached", str(tmp_path))
+    assert b.quality == a.quality
+    assert (b.sublayers, b.surface_rules, b.lens_fits) == \
+        (a.sublayers, a.surface_rules, a.lens_fits)
+    for name in ("xy", "tri", "surfaces"):
+        np.testing.assert_array_equal(getattr(b.plan, name), getattr(a.plan, name))
+    assert (b.plan.borehole_nodes, b.plan.well_nodes) == \
+        (a.plan.borehole_nodes, a.plan.well_nodes)
+    assert set(cached.info) - {"reused_from"} == set(fresh.info)
+    with pytest.raises(TypeError):
+        cached.info["quality"] = {}  # the compatibility view is read-only
+
+
+def test_lumping_gives_each_node_a_quarter_of_its_cells():
+    """Σ_nodes lumped(v) = Σ_cells v·|V| (each cell hands |V|/4 to each of its 4 nodes:
+    P1 row-sum lumping, exact by construction); the volumes are computed once. Tolerance:
+    the round-off bound of summing n_cells positive terms, n_cells · eps (Higham 2002,
+    Accuracy and Stability of Numerical Algorithms, §4.2)."""
+    site, _ = obtain_mesh(load_case(TINY), [])
+    v = np.linspace(1.0, 2.0, site.n_cells)
+    vol = site.cell_volumes()
+    assert site.cell_volumes() is vol
+    assert not vol.flags.writeable
+    total = float(v @ np.abs(vol))
+    rtol = site.n_cells * np.finfo(float).eps
+    assert site.lumped(v).sum() == pytest.approx(total, rel=rtol)
+    both = site.lumped(np.vstack([v, np.ones_like(v)]))
+    np.testing.assert_allclose(both[0], site.lumped(v), rtol=0, atol=0)
+    assert both[1].sum() == pytest.approx(float(np.abs(vol).sum()), rel=rtol)
