@@ -20,10 +20,9 @@ import math
 
 import numpy as np
 import pytest
-from conftest import box_case_text
 from scipy.special import erfc, erfcx
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import Layer, Material, Solver, Source, Species, Time, box_case
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -76,19 +75,14 @@ def test_reference_solution_satisfies_the_equation():
 
 def _column_error(h: float, *, scheme: str, supg: bool = True) -> tuple[float, float]:
     """Max |c − c_ref|/c0 over the nodes at T_END, and the grid Péclet number."""
-    species = (f'[species.tracer]\nkd = "{KD * 1000} L/kg"\nhalf_life = '
-               f'"{math.log(2) / LAMBDA} d"\nlimit = "1 mg/L"\n'
-               '[[sources]]\nname = "inlet"\nspecies = "tracer"\nshape = "face_patch"\n'
-               'face = "west"\nconcentration = "1 kg/m^3"\n')
     dt = 0.5 * h / V  # Courant v·dt/(R·h) ≈ 0.36; dt ∝ h keeps the time error at the space order
-    text = box_case_text(
-        length=LENGTH, width=h, layers=[("sand", -h, 10.0, 10.0)],
-        heads={"west": 2.5, "east": 0.0}, cell=h, dz=h, porosity=POROSITY,
-        bulk_density=RHO_B, alpha_l=ALPHA_L, alpha_t=0.1, end=f"{T_END} d", step=f"{dt} d",
-        species=species)
-    text = text.replace('step = "', f'scheme = "{scheme}"\nstep = "')
-    text += f"[solver]\nsupg = {'true' if supg else 'false'}\n"
-    case = parse_case(text)
+    case = box_case(
+        length=LENGTH, width=h, cell=h, dz=h, heads={"west": 2.5, "east": 0.0},
+        layers=[Layer("sand", -h, Material(10.0, 10.0, porosity=POROSITY, bulk_density=RHO_B,
+                                           longitudinal_dispersivity=ALPHA_L))],
+        species=[Species(kd=KD * 1000, half_life=math.log(2) / LAMBDA)],
+        sources=[Source("inlet", shape="face_patch", face="west", concentration="1 kg/m^3")],
+        time=Time(T_END, dt, scheme=scheme), solver=Solver(supg=supg))
     site, flow = mesh_and_flow(case)
     # K = 10 m/d, gradient 2.5/100 → q = 0.25 m/d, v = q/θ = 1 m/d as assumed above
     np.testing.assert_allclose(flow.darcy_flux[0] * DAY / POROSITY, V, rtol=1e-9)

@@ -18,10 +18,9 @@ import math
 
 import numpy as np
 import pytest
-from conftest import box_case_text
 from test_column import DAY, KD, LAMBDA, MU, POROSITY, RHO_B, D, R, V, _exp_erfc
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import Layer, Material, Source, Species, Time, box_case
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -56,16 +55,13 @@ def test_flux_reference_solves_the_problem():
 @pytest.mark.slow
 def test_column_with_flux_inlet_matches_analytic():
     h, t_end = 0.8, 40.0
-    species = (f'[species.tracer]\nkd = "{KD * 1000} L/kg"\nhalf_life = '
-               f'"{math.log(2) / LAMBDA} d"\nlimit = "1 mg/L"\n'
-               '[[sources]]\nname = "inlet"\nspecies = "tracer"\nshape = "face_patch"\n'
-               'face = "west"\nkind = "inflow_concentration"\nconcentration = "1 kg/m^3"\n')
-    text = box_case_text(length=100.0, width=h, layers=[("sand", -h, 10.0, 10.0)],
-                         heads={"west": 2.5, "east": 0.0}, cell=h, dz=h, porosity=POROSITY,
-                         bulk_density=RHO_B, alpha_l=1.0, alpha_t=0.1, end=f"{t_end} d",
-                         step=f"{0.5 * h} d", species=species)
-    text = text.replace('step = "', 'scheme = "crank_nicolson"\nstep = "')
-    case = parse_case(text)
+    case = box_case(
+        length=100.0, width=h, cell=h, dz=h, heads={"west": 2.5, "east": 0.0},
+        layers=[Layer("sand", -h, Material(10.0, 10.0, porosity=POROSITY, bulk_density=RHO_B))],
+        species=[Species(kd=KD * 1000, half_life=math.log(2) / LAMBDA)],
+        sources=[Source("inlet", shape="face_patch", face="west", kind="inflow_concentration",
+                        concentration="1 kg/m^3")],
+        time=Time(t_end, 0.5 * h, scheme="crank_nicolson"))
     site, flow = mesh_and_flow(case)
     np.testing.assert_allclose(flow.darcy_flux[0] * DAY / POROSITY, V, rtol=1e-9)
     *_, last = run_transport(site, flow, case)

@@ -16,10 +16,9 @@ import math
 
 import numpy as np
 import pytest
-from conftest import box_case_text
 from test_column import _exp_erfc
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import Layer, Material, Solver, Source, Species, Time, box_case
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -72,25 +71,21 @@ def test_reference_chain_satisfies_the_coupled_equations():
 @pytest.mark.slow
 def test_three_member_chain_matches_the_analytical_solution():
     h = 0.5
-    sp = ""
     names = ["parent", "daughter", "granddaughter"]
-    for i, name in enumerate(names):
-        sp += (f'[species.{name}]\nlimit = "1 mg/L"\nkd = "{KD * 1000} L/kg"\n'
-               f'half_life = "{math.log(2) / K[i]} d"\n')
-        if i:
-            sp += f'parent = "{names[i - 1]}"\nyield_from_parent = {Y[i - 1]}\n'
+    species = [Species(name, kd=KD * 1000, half_life=math.log(2) / K[i],
+                       parent=names[i - 1] if i else None,
+                       options={"yield_from_parent": Y[i - 1]} if i else {})
+               for i, name in enumerate(names)]
     # first-type inlet for every member, as in the reference: the parent at c0, the others
     # held clean (c = 0)
-    for name, c_in in zip(names, ("1 kg/m^3", "0 kg/m^3", "0 kg/m^3"), strict=True):
-        sp += (f'[[sources]]\nname = "inlet_{name}"\nspecies = "{name}"\n'
-               f'shape = "face_patch"\nface = "west"\nconcentration = "{c_in}"\n')
-    text = box_case_text(length=100.0, width=h, layers=[("sand", -h, 10.0, 10.0)],
-                         heads={"west": 2.5, "east": 0.0}, cell=h, dz=h, porosity=THETA,
-                         bulk_density=RHO_B, alpha_l=1.0, alpha_t=0.1, end=f"{T_END} d",
-                         step="0.25 d", species=sp)
-    text = text.replace('step = "0.25 d"', 'step = "0.25 d"\nscheme = "crank_nicolson"')
-    text += '[solver]\nlinear_solver = "direct"\n'
-    case = parse_case(text)
+    inlets = [Source(f"inlet_{name}", species=name, shape="face_patch", face="west",
+                     concentration=c_in)
+              for name, c_in in zip(names, ("1 kg/m^3", "0 kg/m^3", "0 kg/m^3"), strict=True)]
+    case = box_case(
+        length=100.0, width=h, cell=h, dz=h, heads={"west": 2.5, "east": 0.0},
+        layers=[Layer("sand", -h, Material(10.0, 10.0, porosity=THETA, bulk_density=RHO_B))],
+        species=species, sources=inlets, time=Time(T_END, 0.25, scheme="crank_nicolson"),
+        solver=Solver(linear_solver="direct"))
     site, flow = mesh_and_flow(case)
     *_, last = run_transport(site, flow, case)
     ref = reference(site.points[0], T_END)

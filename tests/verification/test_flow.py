@@ -13,6 +13,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from fe3d.case.builder import Layer, Material, box_case
 from fe3d.pipeline import mesh_and_flow
 
 pytestmark = pytest.mark.verification
@@ -25,15 +26,21 @@ LAYERS = [("sand", -3.0, 12.0, 1.2), ("clay", -4.5, 0.02, 0.004), ("gravel", -9.
 HEAD_ATOL = 1e-10
 
 
+def _case(**kwargs):
+    """The box with LAYERS (name, bottom [m], K_h [m/d], K_v [m/d]) from the top at 0 m."""
+    return box_case(layers=[Layer(n, b, Material(kh, kv)) for n, b, kh, kv in LAYERS],
+                    **kwargs)
+
+
 def _thickness(layers: list[tuple[str, float, float, float]]) -> list[float]:
     tops = [0.0] + [b for _, b, _, _ in layers[:-1]]
     return [t - b for t, (_, b, _, _) in zip(tops, layers, strict=True)]
 
 
-def test_linear_head_between_fixed_heads_is_exact(make_case):
+def test_linear_head_between_fixed_heads_is_exact():
     """Head is linear in x in every layer (exact solution contained in P1)."""
-    case = make_case(length=120.0, width=30.0, layers=LAYERS, heads={"west": 10.0, "east": 7.0},
-                     cell=12.0, dz=1.5)
+    case = _case(length=120.0, width=30.0, heads={"west": 10.0, "east": 7.0}, cell=12.0,
+                 dz=1.5)
     site, flow = mesh_and_flow(case)
     x = site.points[0]
     exact = 10.0 - 3.0 * x / 120.0
@@ -45,10 +52,10 @@ def test_linear_head_between_fixed_heads_is_exact(make_case):
     assert np.max(np.abs(flow.darcy_flux[1:])) <= 1e-8 * np.max(np.abs(qx_expected))
 
 
-def test_flow_parallel_to_layers_gives_arithmetic_mean(make_case):
+def test_flow_parallel_to_layers_gives_arithmetic_mean():
     """Q = K_arith · A · Δh / L with K_arith = Σ K_i b_i / Σ b_i (Freeze & Cherry 1979)."""
-    case = make_case(length=120.0, width=30.0, layers=LAYERS, heads={"west": 10.0, "east": 7.0},
-                     cell=12.0, dz=1.5)
+    case = _case(length=120.0, width=30.0, heads={"west": 10.0, "east": 7.0}, cell=12.0,
+                 dz=1.5)
     _, flow = mesh_and_flow(case)
     b = _thickness(LAYERS)
     k_arith = sum(k * t for (_, _, k, _), t in zip(LAYERS, b, strict=True)) / sum(b) / DAY
@@ -58,10 +65,10 @@ def test_flow_parallel_to_layers_gives_arithmetic_mean(make_case):
     assert flow.discrepancy <= 1e-10
 
 
-def test_flow_across_layers_gives_harmonic_mean(make_case):
+def test_flow_across_layers_gives_harmonic_mean():
     """Q = K_harm · A · Δh / B with K_harm = Σ b_i / Σ (b_i / K_v,i) (Freeze & Cherry 1979)."""
-    case = make_case(length=40.0, width=30.0, layers=LAYERS, heads={"top": 10.0, "bottom": 6.0},
-                     cell=10.0, dz=1.0)
+    case = _case(length=40.0, width=30.0, heads={"top": 10.0, "bottom": 6.0}, cell=10.0,
+                 dz=1.0)
     site, flow = mesh_and_flow(case)
     b = _thickness(LAYERS)
     k_harm = sum(b) / sum(t / kv for (_, _, _, kv), t in zip(LAYERS, b, strict=True)) / DAY
@@ -77,10 +84,10 @@ def test_flow_across_layers_gives_harmonic_mean(make_case):
     np.testing.assert_allclose(flow.head[at_iface], h_interface, atol=HEAD_ATOL)
 
 
-def test_budget_closes_on_demo_like_heterogeneous_case(make_case):
+def test_budget_closes_on_demo_like_heterogeneous_case():
     """Budget discrepancy ≤ 1e-10 (design target for the consistent residual flux)."""
-    case = make_case(length=200.0, width=80.0, layers=LAYERS,
-                     heads={"west": 10.0, "north": 8.0, "east": 7.5}, cell=15.0, dz=2.0)
+    case = _case(length=200.0, width=80.0, heads={"west": 10.0, "north": 8.0, "east": 7.5},
+                 cell=15.0, dz=2.0)
     _, flow = mesh_and_flow(case)
     assert flow.total_inflow > 0
     assert flow.discrepancy <= 1e-10

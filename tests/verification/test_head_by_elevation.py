@@ -19,9 +19,8 @@ import math
 
 import numpy as np
 import pytest
-from conftest import box_case_text
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import FixedHead, Layer, Material, box_case
 from fe3d.errors import CaseErrors
 from fe3d.flow.solve import solve_flow
 from fe3d.mesh.build import build_mesh
@@ -31,18 +30,17 @@ pytestmark = pytest.mark.verification
 L, B, H, A = 40.0, 10.0, 20.0, 1.0
 
 
-def _table(dz: float) -> str:
+def _table(dz: float) -> list[tuple[str, str]]:
     z = np.arange(-B, 1e-9, dz)
-    pairs = ", ".join(f'["{zi:.6g} m", "{H + A * math.cos(math.pi * (zi + B) / B):.12g} m"]'
-                      for zi in z)
-    return f"[{pairs}]"
+    return [(f"{zi:.6g} m", f"{H + A * math.cos(math.pi * (zi + B) / B):.12g} m") for zi in z]
 
 
-def _text(dz: float, cell: float, table: str) -> str:
-    heads = (f'[[fixed_heads]]\nface = "west"\nhead_by_elevation = {table}\n'
-             f'[[fixed_heads]]\nface = "east"\nhead = "{H} m"\n')
-    return box_case_text(length=L, width=2 * cell, layers=[("aq", -B, 5.0, 5.0)], heads={},
-                         cell=cell, dz=dz, extra=heads)
+def _case(dz: float, cell: float, table: list[tuple[str, str]], **west: object):
+    """The aquifer with the elevation ``table`` on the west face (and ``west`` keys there)."""
+    return box_case(length=L, width=2 * cell, cell=cell, dz=dz,
+                    layers=[Layer("aq", -B, Material(5.0, 5.0))],
+                    fixed_heads=[FixedHead("west", head_by_elevation=table, **west),
+                                 FixedHead("east", head=H)])
 
 
 @pytest.mark.parametrize(("dz", "cell", "tol"), [(1.0, 2.0, 0.02), (0.5, 1.0, 0.008)])
@@ -50,7 +48,7 @@ def test_head_from_an_elevation_table_matches_the_series_solution(dz, cell, tol)
     """Max |h − h_exact| ≤ tol · A: 2 % at 1 m layers and 2 m cells, 0.8 % at half that
     (measured when written: 1.19 %, 0.47 % and, at a quarter, 0.14 %: observed order 1.4
     then 1.7, tending to 2); the budget closes to 1e-8."""
-    case = parse_case(_text(dz, cell, _table(dz)))
+    case = _case(dz, cell, _table(dz))
     site = build_mesh(case)
     flow = solve_flow(site, case)
     x, z = site.points[0], site.points[2]
@@ -64,22 +62,17 @@ def test_head_from_an_elevation_table_matches_the_series_solution(dz, cell, tol)
 
 
 @pytest.mark.parametrize(("table", "gradient", "allowed"), [
-    ('[["-2 m", "20 m"], ["-5 m", "21 m"]]', None, "strictly increasing elevations"),
-    ('[["-2 m", "20 m"]]', None, "at least two"),
-    ('[["-5 m", "20 m"], ["-2 m", "21 m"]]', "[0.0, 0.0, 0.01]", "vertical component"),
+    ([("-2 m", "20 m"), ("-5 m", "21 m")], None, "strictly increasing elevations"),
+    ([("-2 m", "20 m")], None, "at least two"),
+    ([("-5 m", "20 m"), ("-2 m", "21 m")], (0.0, 0.0, 0.01), "vertical component"),
 ])
 def test_bad_elevation_tables_are_rejected(table, gradient, allowed):
-    text = _text(1.0, 2.0, table)
-    if gradient is not None:
-        text = text.replace("head_by_elevation", f"head_gradient = {gradient}\nhead_by_elevation")
     with pytest.raises(CaseErrors) as err:
-        parse_case(text)
+        _case(1.0, 2.0, table, head_gradient=gradient)
     assert allowed in str(err.value)
     assert "fixed_heads[0]" in str(err.value)
 
 
 def test_head_and_table_together_are_rejected():
-    text = _text(1.0, 2.0, '[["-5 m", "20 m"], ["-2 m", "21 m"]]').replace(
-        "head_by_elevation", 'head = "3 m"\nhead_by_elevation')
     with pytest.raises(CaseErrors, match="exactly one of head"):
-        parse_case(text)
+        _case(1.0, 2.0, [("-5 m", "20 m"), ("-2 m", "21 m")], head=3.0)
