@@ -357,6 +357,14 @@ class MeshControl(_Section):
     layer_cell_thickness: PositiveLength
     import_file: str | None = None  # a meshio-readable tetrahedral mesh with unit tags
 
+    @property
+    def sample_spacing(self) -> float:
+        """Spacing [m] of the points that sample a well screen, an observation screen or a
+        line source: a quarter of ``layer_cell_thickness``, so every cell layer a screen
+        crosses holds about four points, but no closer than 5 cm (common practice, no
+        source)."""
+        return max(self.layer_cell_thickness / 4.0, 0.05)
+
 
 class SolverControl(_Section):
     """Transport options."""

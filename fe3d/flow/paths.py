@@ -10,8 +10,9 @@ import numpy as np
 
 from fe3d._typing import FloatArray
 from fe3d.case.schema import Case
-from fe3d.flow.solve import FlowField, unit_materials
+from fe3d.flow.solve import FlowField
 from fe3d.flow.tracking import Pathline, Tracker
+from fe3d.mesh.materials import cell_values, unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
 
 __all__ = ["ReceptorArrival", "TravelPaths", "travel_paths"]
@@ -76,7 +77,7 @@ def _receptors(case: Case) -> list[tuple[str, float, float, float, float]]:
 def travel_paths(site: SiteMesh, flow: FlowField, case: Case) -> TravelPaths:
     """Track water particles for a quick check of arrival times (theory.md F8)."""
     mats, _ = unit_materials(case, site)
-    theta = np.array([m.porosity for m in mats])[site.cell_layer]
+    theta = cell_values(mats, site, "porosity")
     tracker = Tracker(site.points, site.cells, flow.darcy_flux / theta)
     reach = 2.0 * (case.mesh.fine_cell_size or case.mesh.cell_size)
     # forward particles end in a cell near an extraction well's screen (it takes their water)

@@ -12,13 +12,14 @@ import numpy as np
 from fe3d._threads import limit_blas_threads
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.hydro import Well
-from fe3d.case.schema import Case, Material
+from fe3d.case.schema import Case
 from fe3d.errors import CaseError, SolverError
 from fe3d.flow.assembly import conductance_matrix
 from fe3d.flow.boundaries import in_polygon, lumped_face_weights
 from fe3d.flow.conductivity import conductivity_tensors
 from fe3d.linalg import FLOW_TOLERANCE, solve_spd
 from fe3d.mesh.locate import sample_operator, screen_points
+from fe3d.mesh.materials import unit_materials  # re-exported here until its callers move
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import gradients, split_rows
 from fe3d.sgs import plus_diagonal
@@ -99,21 +100,6 @@ class FlowField:
         return abs(self.total_inflow - self.total_outflow) / scale if scale > 0 else 0.0
 
 
-def unit_materials(case: Case, site: SiteMesh) -> tuple[list[Material], list[str]]:
-    """Material of every unit of the mesh, in ``site.layer_names`` order, and its name."""
-    by_name = {layer.name: layer.material for layer in case.layers}
-    for lens in getattr(case, "lenses", []) or []:
-        by_name[lens.name] = lens.material
-    mats, keys = [], []
-    for name in site.layer_names:
-        mat = by_name.get(name)
-        if mat is None or mat not in case.materials:
-            raise CaseError(f"layers[{name}].material", mat, "must name a defined material")
-        mats.append(case.materials[mat])
-        keys.append(mat)
-    return mats, keys
-
-
 def _split(f: FloatArray) -> tuple[float, float]:
     return float(np.clip(f, 0, None).sum()), float(np.clip(-f, 0, None).sum())
 
@@ -185,8 +171,7 @@ def solve_flow(
         items.append((rc.name, "recharge", rc.rate * lumped_face_weights(p, top, n, mask)))
     well_ops = {}
     for well in case.wells:
-        spacing = max(case.mesh.layer_cell_thickness / 4.0, 0.05)
-        pts = np.hstack([screen_points(well.x, well.y, t, b, spacing=spacing)
+        pts = np.hstack([screen_points(well.x, well.y, t, b, spacing=case.mesh.sample_spacing)
                          for t, b in well.screens])
         op, in_cells = sample_operator(p, site.cells, pts, weights_per_cell=principal[0])
         if well.unit is not None:

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
-from fe3d.mesh.geometry import p1_gradients
+from fe3d.mesh.geometry import lump_to_nodes, p1_gradients
 from fe3d.mesh.locate import CellFinder
 
 __all__ = ["Pathline", "Tracker"]
@@ -45,7 +45,7 @@ class Tracker:
         self.points = points
         self.cells = cells
         self.velocity = velocity
-        self.grads, _ = p1_gradients(points, cells)
+        self.grads, vol = p1_gradients(points, cells)
         # neighbour across the face opposite each local vertex (-1 on the boundary)
         m = cells.shape[1]
         faces = np.sort(np.stack([np.delete(cells, k, axis=0) for k in range(4)], axis=1),
@@ -62,11 +62,9 @@ class Tracker:
         nb[a], nb[b] = b % m, a % m
         self.neighbour = nb.reshape(4, m)
         self._size = 1.0 / np.sqrt((self.grads**2).sum(axis=2)).max(axis=1)  # min height [m]
-        _, vol = p1_gradients(points, cells)
         n = points.shape[1]
-        w = np.bincount(cells.ravel(), weights=np.tile(vol, 4), minlength=n)
-        self._nodal = np.vstack([np.bincount(cells.ravel(), weights=np.tile(vol * velocity[i], 4),
-                                             minlength=n) for i in range(3)]) / w
+        self._nodal = (lump_to_nodes(cells, vol, velocity, n)
+                       / lump_to_nodes(cells, vol, np.ones(m), n))  # volume-weighted mean
         self._finder: CellFinder | None = None
 
     def _barycentric(self, e: int, x: FloatArray) -> FloatArray:

@@ -10,6 +10,7 @@ from typing import Any
 import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.mesh.geometry import lump_to_nodes
 from fe3d.mesh.report import MeshReport
 from fe3d.p1 import CsrPattern
 
@@ -77,19 +78,14 @@ class SiteMesh:
         return self._volumes
 
     def lumped(self, per_cell: FloatArray) -> FloatArray:
-        """Nodal lumping Σ over the cells at each node of value · |V| / 4.
+        """Nodal lumping Σ over the cells at each node of value · |V| / 4
+        (:func:`~fe3d.mesh.geometry.lump_to_nodes` with the cached volumes).
 
         ``per_cell`` has shape ``(n_cells,)`` or ``(k, n_cells)``; the result has shape
         ``(n_nodes,)`` or ``(k, n_nodes)``. ``site.lumped(np.ones(n_cells))`` is the volume
-        each node stands for [m³] (P1 row-sum lumping of the mass matrix).
+        each node stands for [m³]; ``site.lumped(porosity)`` its pore volume.
         """
-        w = np.abs(self._volumes) / 4.0
-        v = np.asarray(per_cell, dtype=float)
-        flat = self.cells.ravel()
-        if v.ndim == 1:
-            return np.bincount(flat, weights=np.tile(v * w, 4), minlength=self.n_nodes)
-        return np.vstack([np.bincount(flat, weights=np.tile(row * w, 4),
-                                      minlength=self.n_nodes) for row in v])
+        return lump_to_nodes(self.cells, self._volumes, per_cell, self.n_nodes)
 
     @property
     def info(self) -> MappingProxyType[str, Any]:

@@ -1,0 +1,49 @@
+"""Material of every unit of a mesh and material values per cell: the one place where the
+case's layers and lenses are matched with the mesh's units."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from fe3d._typing import FloatArray
+from fe3d.errors import CaseError
+from fe3d.mesh.site_mesh import SiteMesh
+
+if TYPE_CHECKING:
+    from fe3d.case.schema import Case, Material
+
+__all__ = ["cell_values", "unit_materials"]
+
+
+def unit_materials(case: Case, site: SiteMesh) -> tuple[list[Material], list[str]]:
+    """Material of every unit of the mesh, in ``site.layer_names`` order, and its name.
+
+    Raises
+    ------
+    CaseError
+        When a unit of the mesh names no layer or lens of the case, or its material is not
+        defined.
+    """
+    by_name = {layer.name: layer.material for layer in case.layers}
+    for lens in case.lenses:
+        by_name[lens.name] = lens.material
+    mats, keys = [], []
+    for name in site.layer_names:
+        mat = by_name.get(name)
+        if mat is None or mat not in case.materials:
+            raise CaseError(f"layers[{name}].material", mat, "must name a defined material")
+        mats.append(case.materials[mat])
+        keys.append(mat)
+    return mats, keys
+
+
+def cell_values(materials: Sequence[Material], site: SiteMesh, attribute: str) -> FloatArray:
+    """A material value per cell, shape ``(n_cells,)``: ``attribute`` (a field or property
+    of :class:`~fe3d.case.schema.Material`, e.g. ``"porosity"``, ``"bulk_density"``,
+    ``"k_vertical"``) of the material of each cell's unit (``materials`` from
+    :func:`unit_materials`)."""
+    per_unit = np.array([float(getattr(m, attribute)) for m in materials])
+    return per_unit[site.cell_layer]
