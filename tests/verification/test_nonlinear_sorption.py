@@ -14,9 +14,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from conftest import box_case_text
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import Layer, Material, Solver, Source, Species, Time, box_case
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -46,19 +45,18 @@ def test_langmuir_front_moves_at_the_shock_speed_and_mass_is_conserved(scheme, m
     negative concentration (round-off 1e-12 c0; the M-matrix property, Varga 1962, from
     memory)."""
     h = 0.25
-    species = ('[species.solute]\nlimit = "1 mg/L"\nsorption = "langmuir"\n'
-               f'langmuir_capacity = "{S_MAX * 1e6} mg/kg"\n'
-               f'langmuir_affinity = "{K_L} m^3/kg"\n'
-               '[[sources]]\nname = "inlet"\nspecies = "solute"\nshape = "face_patch"\n'
-               'face = "west"\nconcentration = "1 kg/m^3"\n')
-    text = box_case_text(length=60.0, width=h, layers=[("sand", -h, 10.0, 10.0)],
-                         heads={"west": 2.5 * 0.6, "east": 0.0}, cell=h, dz=h,
-                         porosity=THETA, bulk_density=RHO_B, alpha_l=0.1, alpha_t=0.01,
-                         end="50 d", step="0.1 d", species=species)
-    text = text.replace('step = "0.1 d"', f'step = "0.1 d"\nscheme = "{scheme}"\n'
-                        'output_times = ["20 d", "50 d"]')
-    text += '[solver]\nlinear_solver = "direct"\n' + ("monotone = true\n" if monotone else "")
-    case = parse_case(text)
+    case = box_case(
+        length=60.0, width=h, cell=h, dz=h, heads={"west": 2.5 * 0.6, "east": 0.0},
+        layers=[Layer("sand", -h, Material(10.0, 10.0, porosity=THETA, bulk_density=RHO_B,
+                                           longitudinal_dispersivity=0.1,
+                                           transverse_dispersivity=0.01))],
+        species=[Species("solute", options={"sorption": "langmuir",
+                                            "langmuir_capacity": f"{S_MAX * 1e6} mg/kg",
+                                            "langmuir_affinity": f"{K_L} m^3/kg"})],
+        sources=[Source("inlet", species="solute", shape="face_patch", face="west",
+                        concentration="1 kg/m^3")],
+        time=Time(50.0, 0.1, scheme=scheme, output_times=(20.0, 50.0)),
+        solver=Solver(linear_solver="direct", monotone=True if monotone else None))
     site, flow = mesh_and_flow(case)
     v = flow.darcy_flux[0].mean() * DAY / THETA
     assert v == pytest.approx(1.0, rel=1e-9)  # K 10 m/d, gradient 1.5/60, θ 0.25

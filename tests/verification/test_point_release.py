@@ -13,9 +13,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from conftest import box_case_text
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import Layer, Material, Source, Species, Time, box_case, with_changes
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -30,18 +29,16 @@ ALPHA_L, ALPHA_T = 1.0, 0.1
 def _slug(scheme: str):
     """The slug case (K 10 m/d, heads 3 → 0.5 m over 100 m: q = 0.25 m/d, v = q/θ = 1 m/d),
     its mesh and flow, the seepage velocity [m/d] and the plume's (centroid, variances)."""
-    species = ('[species.slug]\nlimit = "1 mg/L"\n'
-               f'kd = "{KD * 1000} L/kg"\n'
-               '[[sources]]\nname = "slug"\nspecies = "slug"\nshape = "box"\n'
-               'kind = "initial_plume"\nconcentration = "1 kg/m^3"\n'
-               'x = ["14 m", "18 m"]\ny = ["13 m", "17 m"]\nz = ["-12 m", "-8 m"]\n')
-    text = box_case_text(length=100.0, width=30.0, layers=[("sand", -20.0, 10.0, 10.0)],
-                         heads={"west": 3.0, "east": 0.5}, cell=1.0, dz=1.0,
-                         porosity=THETA, bulk_density=RHO_B, alpha_l=ALPHA_L,
-                         alpha_t=ALPHA_T, end="40 d", step="0.5 d", species=species)
-    text = text.replace('step = "0.5 d"', f'step = "0.5 d"\nscheme = "{scheme}"\n'
-                        'output_times = ["10 d", "40 d"]')
-    site, flow = mesh_and_flow(parse_case(text))
+    case = box_case(
+        length=100.0, width=30.0, cell=1.0, dz=1.0, heads={"west": 3.0, "east": 0.5},
+        layers=[Layer("sand", -20.0, Material(10.0, 10.0, porosity=THETA, bulk_density=RHO_B,
+                                              longitudinal_dispersivity=ALPHA_L,
+                                              transverse_dispersivity=ALPHA_T))],
+        species=[Species("slug", kd=KD * 1000)],
+        sources=[Source("slug", species="slug", kind="initial_plume", concentration="1 kg/m^3",
+                        x=(14, 18), y=(13, 17), z=(-12, -8))],
+        time=Time(40.0, 0.5, scheme=scheme, output_times=(10.0, 40.0)))
+    site, flow = mesh_and_flow(case)
     v = float(flow.darcy_flux[0].mean()) * DAY / THETA
     w = np.bincount(site.cells.ravel(), weights=np.tile(np.abs(site.cell_volumes()) / 4.0, 4),
                     minlength=site.n_nodes)
@@ -51,14 +48,14 @@ def _slug(scheme: str):
         centre = (site.points * m).sum(axis=1) / m.sum()
         return centre, ((site.points - centre[:, None]) ** 2 * m).sum(axis=1) / m.sum()
 
-    return text, site, flow, v, moments
+    return case, site, flow, v, moments
 
 
 @pytest.mark.slow
 def test_slug_moments_follow_the_analytical_growth():
-    text, site, flow, v, moments = _slug("crank_nicolson")
+    case, site, flow, v, moments = _slug("crank_nicolson")
     assert v == pytest.approx(1.0, rel=1e-9)
-    snaps = {round(s.time / DAY): s for s in run_transport(site, flow, parse_case(text))}
+    snaps = {round(s.time / DAY): s for s in run_transport(site, flow, case)}
     c10, v10 = moments(snaps[10].concentration["slug"])
     c40, v40 = moments(snaps[40].concentration["slug"])
     speed = (c40[0] - c10[0]) / 30.0
@@ -86,12 +83,12 @@ def test_slug_spreads_correctly_with_the_limited_monotone_scheme():
     The 10 % and 2 % are project criteria, no source. Measured when written (x, y, z
     growth [m²], expected 40, 4, 4): SUPG 46.65, 4.00, 4.00 (minimum −3.4e-3); low order
     51.04, 12.86, 14.26; limited 46.53, 4.27, 3.91 (minimum 0)."""
-    text, site, flow, v, moments = _slug("backward_euler")
+    case, site, flow, v, moments = _slug("backward_euler")
     growth, speed = {}, {}
-    for name, extra in (("supg", ""), ("low", "[solver]\nmonotone = true\n"),
-                        ("limited", "[solver]\nmonotone = true\nflux_limiting = true\n")):
-        snaps = {round(s.time / DAY): s for s in run_transport(site, flow,
-                                                                parse_case(text + extra))}
+    for name, solver in (("supg", {}), ("low", {"monotone": True}),
+                         ("limited", {"monotone": True, "flux_limiting": True})):
+        snaps = {round(s.time / DAY): s for s in run_transport(
+            site, flow, with_changes(case, solver=solver) if solver else case)}
         (c10, v10), (c40, v40) = (moments(snaps[t].concentration["slug"]) for t in (10, 40))
         growth[name], speed[name] = v40 - v10, (c40[0] - c10[0]) / 30.0
         if name == "limited":

@@ -47,9 +47,8 @@ import math
 import numpy as np
 import pytest
 from _point_source import mirrored, point_source
-from conftest import box_case_text
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import Layer, Material, Solver, Source, Species, Time, box_case
 from fe3d.linalg import FLOW_TOLERANCE
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
@@ -138,23 +137,21 @@ def test_reference_solution_carries_the_source_rate():
     assert (4 * f2 - f1) / 3 == pytest.approx(MASS_RATE, rel=1e-5)
 
 
-def _case_text(h: float, dz: float, solver: str) -> str:
+def _case(h: float, dz: float, solver: str):
     a = h / 2  # half-width of the loaded box: its plan corners become mesh nodes
-    species = (
-        f'[species.plume]\nlimit = "1 mg/L"\nkd = "{KD * 1000} L/kg"\n'
-        f'half_life = "{math.log(2) / (DECAY * DAY)} d"\ndecay_in_sorbed_phase = false\n'
-        '[[sources]]\nname = "tank_leak"\nspecies = "plume"\nshape = "box"\n'
-        f'kind = "mass_loading"\nmass_rate = "{MASS_RATE * DAY * 1000} g/d"\n'
-        f'x = ["{X_SOURCE - a} m", "{X_SOURCE + a} m"]\ny = ["0 m", "{a} m"]\n'
-        f'z = ["{-DEPTH} m", "{-DEPTH + a} m"]\n')
-    text = box_case_text(
-        length=LENGTH, width=WIDTH, layers=[("gravel", -DEPTH, 10.0, 10.0)],
-        heads={"west": 0.025 * LENGTH, "east": 0.0}, cell=h, dz=dz, porosity=THETA,
-        alpha_l=ALPHA[0], alpha_t=ALPHA[1], end="2000 d", step="200 d", species=species)
-    text = text.replace('transverse_dispersivity = "0.4 m"',
-                        'transverse_dispersivity = "0.4 m"\nvertical_dispersivity = "0.2 m"')
-    text = text.replace('step = "200 d"', 'step = "200 d"\noutput_times = ["1800 d", "2000 d"]')
-    return text + f'[solver]\nlinear_solver = "{solver}"\n'
+    return box_case(
+        length=LENGTH, width=WIDTH, cell=h, dz=dz, heads={"west": 0.025 * LENGTH, "east": 0.0},
+        layers=[Layer("gravel", -DEPTH, Material(10.0, 10.0, porosity=THETA,
+                                                 longitudinal_dispersivity=ALPHA[0],
+                                                 transverse_dispersivity=ALPHA[1],
+                                                 vertical_dispersivity=ALPHA[2]))],
+        species=[Species("plume", kd=KD * 1000, half_life=math.log(2) / (DECAY * DAY),
+                         options={"decay_in_sorbed_phase": False})],
+        sources=[Source("tank_leak", species="plume", kind="mass_loading",
+                        mass_rate=MASS_RATE * DAY * 1000, x=(X_SOURCE - a, X_SOURCE + a),
+                        y=(0, a), z=(-DEPTH, -DEPTH + a))],
+        time=Time(2000.0, 200.0, output_times=(1800.0, 2000.0)),
+        solver=Solver(linear_solver=solver))
 
 
 def _flux_tolerance(h: float, dz: float) -> float:
@@ -175,7 +172,7 @@ def _flux_tolerance(h: float, dz: float) -> float:
 
 def _run_and_compare(h: float, dz: float, solver: str = "auto") -> dict[str, float]:
     """Run fe3d to steady state; return the largest errors (see the module docstring)."""
-    case = parse_case(_case_text(h, dz, solver))
+    case = _case(h, dz, solver)
     site, flow = mesh_and_flow(case)
     rtol = _flux_tolerance(h, dz)
     np.testing.assert_allclose(flow.darcy_flux[0] / THETA, V, rtol=rtol)

@@ -13,10 +13,9 @@ import math
 
 import numpy as np
 import pytest
-from conftest import box_case_text
 from scipy.special import erfc
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import Layer, Material, Solver, Source, Time, box_case
 from fe3d.errors import CaseErrors
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
@@ -28,22 +27,19 @@ D0 = 1e-9  # m²/s
 THETA = 0.3
 
 
-def _case(tortuosity: str):
-    species = ('[species.tracer]\nlimit = "1 mg/L"\n'
-               '[[sources]]\nname = "wall"\nspecies = "tracer"\nshape = "face_patch"\n'
-               'face = "west"\nconcentration = "1 kg/m^3"\n')
-    text = box_case_text(length=3.0, width=0.05, layers=[("clay", -0.05, 1e-4, 1e-4)],
-                         heads={"west": 1.0, "east": 1.0}, cell=0.05, dz=0.05,
-                         porosity=THETA, alpha_l=0.0, alpha_t=0.0, end="10 yr",
-                         step="0.05 yr", species=species)
-    text = text.replace('transverse_dispersivity = "0.0 m"\n',
-                        f'transverse_dispersivity = "0.0 m"\ndiffusion_coefficient = "{D0} m^2/s"'
-                        f'\ntortuosity = {tortuosity}\n')
-    return parse_case(text + '[solver]\nlinear_solver = "direct"\nsupg = false\n')
+def _case(tortuosity: float | str):
+    return box_case(
+        length=3.0, width=0.05, cell=0.05, dz=0.05, heads={"west": 1.0, "east": 1.0},
+        layers=[Layer("clay", -0.05, Material(1e-4, 1e-4, porosity=THETA,
+                                              longitudinal_dispersivity=0.0,
+                                              transverse_dispersivity=0.0,
+                                              diffusion_coefficient=D0, tortuosity=tortuosity))],
+        sources=[Source("wall", shape="face_patch", face="west", concentration="1 kg/m^3")],
+        time=Time("10 yr", "0.05 yr"), solver=Solver(linear_solver="direct", supg=False))
 
 
-@pytest.mark.parametrize(("tortuosity", "factor"), [("0.5", 0.5),
-                                                   ('"millington_quirk"', THETA ** (1 / 3))])
+@pytest.mark.parametrize(("tortuosity", "factor"), [(0.5, 0.5),
+                                                   ("millington_quirk", THETA ** (1 / 3))])
 def test_diffusion_from_a_fixed_wall_matches_erfc(tortuosity, factor):
     """No flow (equal heads), 5 cm cells, backward Euler 0.05 yr to 10 yr: max error ≤ 1 % of
     c0 (measured when written: 0.027 % and 0.038 %); the exact profiles of the two factors
@@ -67,4 +63,4 @@ def test_diffusion_from_a_fixed_wall_matches_erfc(tortuosity, factor):
 
 def test_unknown_tortuosity_word_is_rejected():
     with pytest.raises(CaseErrors, match="tortuosity"):
-        _case('"archie"')
+        _case("archie")

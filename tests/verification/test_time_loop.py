@@ -15,9 +15,8 @@ import math
 
 import numpy as np
 import pytest
-from conftest import box_case_text
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import Layer, Material, Solver, Species, Time, box_case
 from fe3d.errors import NewtonError
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
@@ -28,16 +27,19 @@ DAY = 86400.0
 C0 = 2.0  # kg/m³
 
 
-def _case(reaction: str, *, end: float = 10.0, step: float = 1.0, time_extra: str = "",
-          solver_extra: str = "", output: str = ""):
-    species = (f'[species.s]\nlimit = "1 mg/L"\ninitial_concentration = "{C0} kg/m^3"\n'
-               + reaction)
-    text = box_case_text(length=20.0, width=10.0, layers=[("sand", -4.0, 5.0, 5.0)],
-                         heads={"west": 1.0, "east": 1.0}, cell=5.0, dz=2.0,
-                         end=f"{end} d", step=f"{step} d", species=species)
-    text = text.replace('step = "', f'{time_extra}{output}step = "', 1)
-    text += f'[solver]\nlinear_solver = "direct"\n{solver_extra}'
-    return parse_case(text)
+def batch_case(species: list[Species], *, time: Time, solver: Solver | None = None,
+               **kwargs: object):
+    """The 20 m × 10 m × 4 m sand box (K 5 m/d) with equal heads: no flow, so every node
+    follows the batch reaction of ``species``; direct linear solves unless ``solver`` says."""
+    return box_case(length=20.0, width=10.0, cell=5.0, dz=2.0, heads={"west": 1.0, "east": 1.0},
+                    layers=[Layer("sand", -4.0, Material(5.0, 5.0))], species=species,
+                    time=time, solver=solver or Solver(linear_solver="direct"), **kwargs)
+
+
+def _case(reaction: dict[str, str], *, time: Time, **solver: object):
+    """Species ``s`` at C0 with the ``reaction`` keys, in the no-flow box."""
+    species = Species("s", initial_concentration=f"{C0} kg/m^3", options=reaction)
+    return batch_case([species], time=time, solver=Solver(linear_solver="direct", **solver))
 
 
 def _run(case):
@@ -51,7 +53,7 @@ def test_bdf2_first_order_decay_is_second_order_accurate():
     backward-Euler start partly cancels BDF2's own: 3.6e-5 vs 3.1e-5 at 20, not asymptotic.)"""
     errs = []
     for n in (20, 40, 80):
-        case = _case('half_life = "3 d"\n', step=10.0 / n, time_extra='scheme = "bdf2"\n')
+        case = _case({"half_life": "3 d"}, time=Time(10.0, 10.0 / n, scheme="bdf2"))
         last = _run(case)[-1]
         c = float(last.concentration["s"].mean())
         errs.append(abs(c - C0 * math.exp(-math.log(2) / 3.0 * 10.0)) / C0)
@@ -70,10 +72,9 @@ def test_adaptive_steps_meet_the_tolerance_and_hit_output_times(scheme):
     practice, no source; measured 2.1 % for backward Euler); the budget closes ≤ 1e-6
     (nonlinear target)."""
     k = 0.5  # m³/kg/d
-    case = _case(f'second_order_rate = "{k} m^3/kg/d"\n', end=10.0, step=0.01,
-                 time_extra=f'scheme = "{scheme}"\nadaptive = true\nerror_tolerance = 1e-3\n'
-                            'max_step = "2 d"\n',
-                 output='output_times = ["0.37 d", "3 d", "7.5 d"]\n')
+    case = _case({"second_order_rate": f"{k} m^3/kg/d"},
+                 time=Time(10.0, 0.01, scheme=scheme, adaptive=True, error_tolerance=1e-3,
+                           max_step="2 d", output_times=("0.37 d", "3 d", "7.5 d")))
     snaps = _run(case)
     times = [s.time for s in snaps]
     assert times == [0.0, 0.37 * DAY, 3.0 * DAY, 7.5 * DAY, 10.0 * DAY]
@@ -95,8 +96,8 @@ def test_failed_newton_steps_are_cut_and_retried():
     closed form) to 1e-9 relative, and lies within 20 % of c0/(1 + k c0 t) (backward Euler
     at these steps)."""
     k = 50.0
-    case = _case(f'second_order_rate = "{k} m^3/kg/d"\n', end=1.0, step=1.0,
-                 solver_extra="newton_max_iterations = 3\nmax_step_cuts = 12\n")
+    case = _case({"second_order_rate": f"{k} m^3/kg/d"}, time=Time(1.0, 1.0),
+                 newton_max_iterations=3, max_step_cuts=12)
     snaps = _run(case)
     last = snaps[-1]
     assert last.time == pytest.approx(DAY, rel=1e-12)
@@ -115,8 +116,8 @@ def test_failed_newton_steps_are_cut_and_retried():
 def test_a_step_that_fails_after_the_allowed_cuts_stops_with_a_clear_message():
     """Same problem with no cuts allowed: NewtonError naming the times and the cut count;
     the snapshot already yielded (t = 0) is intact and finite."""
-    case = _case('second_order_rate = "50 m^3/kg/d"\n', end=1.0, step=1.0,
-                 solver_extra="newton_max_iterations = 3\nmax_step_cuts = 0\n")
+    case = _case({"second_order_rate": "50 m^3/kg/d"}, time=Time(1.0, 1.0),
+                 newton_max_iterations=3, max_step_cuts=0)
     site, flow = mesh_and_flow(case)
     gen = run_transport(site, flow, case)
     first = next(gen)

@@ -15,10 +15,11 @@ import math
 
 import numpy as np
 import pytest
-from conftest import box_case_text
 from scipy.optimize import brentq
+from test_time_loop import batch_case
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import Species, Time, with_changes
+from fe3d.case.load import load_case
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -28,15 +29,9 @@ DAY = 86400.0
 C0 = 2.0  # kg/m³ = 2 g/L
 
 
-def _run(reaction: str, scheme: str, steps: int) -> tuple[float, float]:
-    species = (f'[species.s]\nlimit = "1 mg/L"\ninitial_concentration = "{C0} kg/m^3"\n'
-               + reaction)
-    text = box_case_text(length=20.0, width=10.0, layers=[("sand", -4.0, 5.0, 5.0)],
-                         heads={"west": 1.0, "east": 1.0}, cell=5.0, dz=2.0,
-                         end="10 d", step=f"{10.0 / steps} d", species=species)
-    text = text.replace('step = "', f'scheme = "{scheme}"\nstep = "') + \
-        '[solver]\nlinear_solver = "direct"\n'
-    case = parse_case(text)
+def _run(reaction: dict[str, str], scheme: str, steps: int) -> tuple[float, float]:
+    species = Species("s", initial_concentration=f"{C0} kg/m^3", options=reaction)
+    case = batch_case([species], time=Time(10.0, 10.0 / steps, scheme=scheme))
     site, flow = mesh_and_flow(case)
     *_, last = run_transport(site, flow, case)
     c = last.concentration["s"]
@@ -51,7 +46,7 @@ def test_second_order_decay_in_transport(scheme, order):
     exact = C0 / (1 + k * C0 * 10.0)
     errs = []
     for steps in (10, 20, 40):
-        c, budget = _run(f'second_order_rate = "{k} m^3/kg/d"\n', scheme, steps)
+        c, budget = _run({"second_order_rate": f"{k} m^3/kg/d"}, scheme, steps)
         errs.append(abs(c - exact) / exact)
         assert budget <= 1e-6
     orders = [math.log2(errs[i] / errs[i + 1]) for i in range(2)]
@@ -61,7 +56,7 @@ def test_second_order_decay_in_transport(scheme, order):
 def test_monod_decay_in_transport():
     mu, ks = 0.1, 0.5  # kg/m³/d, kg/m³
     exact = brentq(lambda c: ks * math.log(c / C0) + (c - C0) + mu * 10.0, 1e-9, C0)
-    c, budget = _run(f'monod_max_rate = "{mu} kg/m^3/d"\nmonod_half_saturation = "{ks} kg/m^3"\n',
+    c, budget = _run({"monod_max_rate": f"{mu} kg/m^3/d", "monod_half_saturation": f"{ks} kg/m^3"},
                      "crank_nicolson", 80)
     assert c == pytest.approx(exact, rel=1e-4)
     assert budget <= 1e-6
@@ -73,8 +68,8 @@ def test_langmuir_with_decay_of_both_phases_in_a_batch():
     library). Crank–Nicolson with 80 steps: 1e-4 relative; budget ≤ 1e-6."""
     theta, rho_b, s_max, k_l, half_life = 0.25, 1600.0, 1e-4, 5.0, 4.0
     lam = math.log(2) / half_life
-    reaction = (f'half_life = "{half_life} d"\nsorption = "langmuir"\n'
-                f'langmuir_capacity = "{s_max * 1e6} mg/kg"\nlangmuir_affinity = "{k_l} m^3/kg"\n')
+    reaction = {"half_life": f"{half_life} d", "sorption": "langmuir",
+                "langmuir_capacity": f"{s_max * 1e6} mg/kg", "langmuir_affinity": f"{k_l} m^3/kg"}
 
     def total(c: float) -> float:
         return theta * c + rho_b * s_max * k_l * c / (1 + k_l * c)
@@ -94,12 +89,11 @@ def test_newton_with_the_reused_step_preconditioner_matches_the_direct_solve(met
     budget closes ≤ 1e-6 (nonlinear target of the issue)."""
     from pathlib import Path
 
-    tiny = (Path(__file__).parents[2] / "cases" / "tiny" / "case.toml").read_text()
-    text = tiny.replace('half_life = "5 yr"', 'half_life = "5 yr"\n'
-                        'second_order_rate = "50 m^3/kg/d"')
+    tiny = load_case(Path(__file__).parents[2] / "cases" / "tiny" / "case.toml")
     results = {}
     for solver in ("direct", method):
-        case = parse_case(text + f'\n[solver]\nlinear_solver = "{solver}"\n')
+        case = with_changes(tiny, species={"tracer": {"second_order_rate": "50 m^3/kg/d"}},
+                            solver={"linear_solver": solver})
         site, flow = mesh_and_flow(case)
         *_, last = run_transport(site, flow, case)
         assert last.budgets["tracer"].relative_error <= 1e-6
@@ -116,7 +110,7 @@ def test_second_order_decay_with_linear_sorption_is_slowed_by_retardation():
     storage twice on this path.)"""
     k, kd, rho, theta = 0.05, 1e-4, 1600.0, 0.25  # m³/kg/d, m³/kg, kg/m³, -
     R = 1.0 + rho * kd / theta
-    c, budget = _run(f'kd = "{kd * 1000} L/kg"\ndecay_in_sorbed_phase = false\n'
-                     f'second_order_rate = "{k} m^3/kg/d"\n', "crank_nicolson", 80)
+    c, budget = _run({"kd": f"{kd * 1000} L/kg", "decay_in_sorbed_phase": False,
+                      "second_order_rate": f"{k} m^3/kg/d"}, "crank_nicolson", 80)
     assert c == pytest.approx(C0 / (1 + k * C0 * 10.0 / R), rel=1e-4)
     assert budget <= 1e-6
