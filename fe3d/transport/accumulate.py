@@ -1,0 +1,127 @@
+"""Running totals folded over the accepted steps: the mass budget of every species (T9) and
+the diagnostics that tell whether the discretisation was adequate."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from fe3d._typing import FloatArray
+from fe3d.transport.budget import MassBudget
+from fe3d.transport.model import SpeciesModel
+from fe3d.transport.step import StepBudget, StepResult
+
+__all__ = ["BudgetTotals", "RunStatistics", "TransportDiagnostics", "grid_peclet"]
+
+
+@dataclass(frozen=True)
+class TransportDiagnostics:
+    """Numbers that tell whether the discretisation was adequate.
+
+    Per species: the largest grid Péclet and Courant numbers, the most negative value
+    [kg/m³] and where [m] (None before any value fell below zero) and the largest share of
+    free nodes flux limiting left at low order in a step (T16b). For the run: steps taken,
+    the linear solver used, step cuts and rejections, the smallest and largest step [s],
+    the most Newton iterations and user-law sweeps (T11b) in one step."""
+
+    n_steps: int
+    max_grid_peclet: dict[str, float]
+    max_courant: dict[str, float]
+    min_concentration: dict[str, tuple[float, tuple[float, ...] | None]]
+    solver: str
+    step_cuts: int = 0
+    rejected_steps: int = 0
+    smallest_step: float = 0.0
+    largest_step: float = 0.0
+    max_newton_iterations: int = 0
+    max_coupling_sweeps: int = 0
+    limiting_blocked: dict[str, float] = field(default_factory=dict)
+
+
+def grid_peclet(s: SpeciesModel, seepage_velocity: FloatArray, porosity: FloatArray) -> float:
+    """Largest grid Péclet number |v| h / D_L of the species over the cells (0 without flow)."""
+    speed = np.sqrt(np.sum(seepage_velocity * seepage_velocity, axis=0))
+    if not np.any(speed > 0):
+        return 0.0
+    c = s.coefficients
+    d_l = c.along_flow_diffusivity * c.storage / porosity
+    return float(np.max(np.divide(speed * c.element_length, d_l,
+                                  out=np.full_like(d_l, np.inf), where=d_l > 0)))
+
+
+class BudgetTotals:
+    """Mass that entered, decayed and flowed out of each species so far [kg] (T9)."""
+
+    def __init__(self, species: tuple[SpeciesModel, ...], fields: dict[str, FloatArray]) -> None:
+        self.initial = {s.name: float(s.dissolved_volume @ fields[s.name])
+                        + s.sorbed_mass(fields[s.name]) for s in species}
+        self.source_input = dict.fromkeys(self.initial, 0.0)
+        self.decayed = dict.fromkeys(self.initial, 0.0)
+        self.outflow = {s.name: dict.fromkeys(s.outflow_weights, 0.0) for s in species}
+
+    def add(self, budget: dict[str, StepBudget]) -> None:
+        """Fold one accepted step's terms in."""
+        for name, b in budget.items():
+            self.source_input[name] += b.source_input + b.switch_on
+            self.decayed[name] += b.decayed
+            for f, x in b.outflow.items():
+                self.outflow[name][f] += x
+
+    def at(self, t: float, species: tuple[SpeciesModel, ...],
+           fields: dict[str, FloatArray]) -> dict[str, MassBudget]:
+        """The budget of every species at time ``t`` [s] with the fields then."""
+        return {s.name: MassBudget(
+            species=s.name, time=t, dissolved=float(s.dissolved_volume @ fields[s.name]),
+            sorbed=s.sorbed_mass(fields[s.name]), initial=self.initial[s.name],
+            source_input=self.source_input[s.name], outflow=dict(self.outflow[s.name]),
+            decayed=self.decayed[s.name]) for s in species}
+
+
+class RunStatistics:
+    """Diagnostics folded over the accepted steps."""
+
+    def __init__(self, peclet: dict[str, float]) -> None:
+        self.peclet = peclet
+        self.courant = dict.fromkeys(peclet, 0.0)
+        self.lowest: dict[str, tuple[float, tuple[float, ...] | None]] = dict.fromkeys(
+            peclet, (0.0, None))
+        self.blocked: dict[str, float] = {}
+        self.n_steps = 0
+        self.dt_min, self.dt_max = math.inf, 0.0
+        self.newton = self.sweeps = 0
+        self.solver = "none"
+
+    def add(self, result: StepResult, dt: float, species: tuple[SpeciesModel, ...],
+            points: FloatArray) -> list[str]:
+        """Fold one accepted step in; returns a log line per species (its lowest value)."""
+        self.n_steps += 1
+        self.solver = result.solver_kind
+        self.dt_min, self.dt_max = min(self.dt_min, dt), max(self.dt_max, dt)
+        if result.solver_kind == "newton":
+            self.newton = max(self.newton, result.newton_iterations)
+        self.sweeps = max(self.sweeps, result.sweeps)
+        for name, share in result.limiting_blocked.items():
+            self.blocked[name] = max(self.blocked.get(name, 0.0), share)
+        lows = []
+        for s in species:
+            new = result.fields[s.name]
+            j = int(np.argmin(new))
+            if new[j] < self.lowest[s.name][0]:
+                self.lowest[s.name] = (float(new[j]), tuple(float(x) for x in points[:, j]))
+            where = ", ".join(f"{x:.1f}" for x in points[:, j])
+            lows.append(f"{s.name} min {new[j]:.3g} kg/m³ at ({where}) m")
+            self.courant[s.name] = max(self.courant[s.name],
+                                       dt * s.coefficients.courant_rate)
+        return lows
+
+    def diagnostics(self, step_cuts: int, rejected: int) -> TransportDiagnostics:
+        """The diagnostics so far."""
+        return TransportDiagnostics(
+            n_steps=self.n_steps, max_grid_peclet=dict(self.peclet),
+            max_courant=dict(self.courant), min_concentration=dict(self.lowest),
+            solver=self.solver, step_cuts=step_cuts, rejected_steps=rejected,
+            smallest_step=0.0 if self.n_steps == 0 else float(self.dt_min),
+            largest_step=float(self.dt_max), max_newton_iterations=self.newton,
+            max_coupling_sweeps=self.sweeps, limiting_blocked=dict(self.blocked))

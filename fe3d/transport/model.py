@@ -1,0 +1,236 @@
+"""What each species needs for its steps, built once from the mesh, the flow and the case.
+
+:class:`SpeciesModel` holds the per-cell coefficients of T0–T8 (:class:`Coefficients`) and
+the nodal weights of the lumped terms (T9, T10); :func:`build_species` makes one per species,
+parents before daughters. Pure data and pointwise laws: no operators, no time stepping.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sp
+
+from fe3d._typing import FloatArray
+from fe3d.case.schema import Case, Species
+from fe3d.flow.solve import FlowField, unit_materials
+from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.p1 import BoundaryFacets, length_along, volumes
+from fe3d.reactions import kinetics, sorption
+from fe3d.transport.dispersion import dispersion_tensor
+
+__all__ = ["Coefficients", "Isotherm", "MediumFields", "SpeciesModel", "build_medium",
+           "build_species", "lumped"]
+
+RATE_LAWS = {"second_order": kinetics.second_order, "monod": kinetics.monod}
+ISOTHERMS = {"linear": sorption.linear, "freundlich": sorption.freundlich,
+             "langmuir": sorption.langmuir}
+
+RateLaw = Callable[[FloatArray], tuple[FloatArray, FloatArray]]
+
+
+def lumped(site: SiteMesh, per_cell_volume_weighted: FloatArray) -> FloatArray:
+    """Σ over cells of the value/4 at each of their nodes (∫φ_j = V/4 for P1); the value is
+    per cell already multiplied by the cell volume, shape ``(n_cells,)``."""
+    return np.bincount(site.cells.ravel(), weights=np.tile(per_cell_volume_weighted / 4.0, 4),
+                       minlength=site.n_nodes)
+
+
+@dataclass(frozen=True)
+class MediumFields:
+    """Fields shared by every species: porosity θ [-], bulk density ρ_b [kg/m³], signed cell
+    volume [m³] per cell, θD [m²/s] shape ``(3, 3, n_cells)``, the seepage velocity [m/s]
+    shape ``(3, n_cells)``, and the outflow of water on the fixed-head faces and at the
+    budget items that take water out (T3b): nodal weights [m³/s] per item and their sum as a
+    diagonal-plus-face matrix."""
+
+    porosity: FloatArray
+    bulk_density: FloatArray
+    cell_volume: FloatArray
+    theta_dispersion: FloatArray
+    seepage_velocity: FloatArray
+    material_names: list[str]
+    outflow_weights: dict[str, FloatArray]
+    outflow_matrix: sp.csr_matrix
+
+
+def build_medium(site: SiteMesh, flow: FlowField, case: Case) -> MediumFields:
+    """Porosity, bulk density, θD and the outflow terms per cell and node (T3b, T4)."""
+    n = site.n_nodes
+    mats, mat_names = unit_materials(case, site)
+    lay = site.cell_layer
+    theta = np.array([m.porosity for m in mats])[lay]
+    q = flow.darcy_flux
+    v = q / theta
+    D = dispersion_tensor(
+        v,
+        alpha_l=np.array([m.longitudinal_dispersivity for m in mats])[lay],
+        alpha_th=np.array([m.transverse_dispersivity for m in mats])[lay],
+        alpha_tv=np.array([m.alpha_vertical for m in mats])[lay],
+        d_eff=np.array([m.effective_diffusion for m in mats])[lay],
+    )
+    theta_d = np.multiply(D, theta, out=D)  # θD in place: one (3, 3, cells) array less
+    facets = {name: BoundaryFacets.of(site.points, site.cells, site.faces[name])
+              for name in flow.fixed_head_nodes}
+    qn_out = {name: np.clip(fb.normal_flux(q), 0.0, None) for name, fb in facets.items()}
+    weights = {f: fb.load(qn_out[f], n) for f, fb in facets.items()}
+    matrix = sum((fb.mass(qn_out[f], n) for f, fb in facets.items()), sp.csr_matrix((n, n)))
+    for item, f in flow.exchange.items():
+        out_rate = np.clip(-f, 0.0, None)  # water leaving [m³/s] per node
+        if np.any(out_rate > 0):
+            weights[item] = out_rate
+            matrix = matrix + sp.diags(out_rate)
+    return MediumFields(
+        porosity=theta, bulk_density=np.array([m.bulk_density for m in mats])[lay],
+        cell_volume=volumes(site.points, site.cells), theta_dispersion=theta_d,
+        seepage_velocity=v, material_names=mat_names, outflow_weights=weights,
+        outflow_matrix=sp.csr_matrix(matrix))
+
+
+@dataclass(frozen=True)
+class Isotherm:
+    """A nonlinear isotherm in one unit: lumped nodal bulk mass ρ_b V of the unit [kg]
+    (T10), the law's name and its parameters."""
+
+    bulk_mass: FloatArray
+    law: str
+    parameters: dict[str, float]
+
+
+@dataclass(frozen=True)
+class Coefficients:
+    """Per-cell coefficients of one species (theory.md symbol table).
+
+    ``storage`` m = θR [-], ``decay`` k [1/s] (λm, or λθ when only the dissolved phase
+    decays), ``velocity`` a = q/m [m/s] shape ``(3, n_cells)``, ``along_flow_diffusivity``
+    κ = aᵀθDa/(|a|² m) [m²/s], ``reaction_rate`` σ = k/m [1/s] (τ, T8), ``element_length``
+    h along a [m]; ``courant_rate`` max |a|/h [1/s] (Courant number per second of step)."""
+
+    storage: FloatArray
+    decay: FloatArray
+    velocity: FloatArray
+    along_flow_diffusivity: FloatArray
+    reaction_rate: FloatArray
+    element_length: FloatArray
+    courant_rate: float
+
+
+@dataclass(frozen=True)
+class SpeciesModel:
+    """Everything one species' steps need that does not change in time.
+
+    ``isotherms`` is empty for linear sorption (then K_d is in ``storage``);
+    ``reaction`` is a nonlinear rate law (name, parameters) or None; ``in_user_law`` tells
+    whether a user rate law includes the species (T11b); ``sorbed_decay`` [1/s] is λ when
+    the sorbed phase decays. Nodal weights [m³ or kg, lumped, T9]: ``dissolved_volume``
+    ∫θφ, ``sorbed_capacity`` ∫ρ_b K_d φ, ``decay_weight`` ∫kφ."""
+
+    name: str
+    spec: Species
+    coefficients: Coefficients
+    isotherms: tuple[Isotherm, ...]
+    reaction: tuple[str, dict[str, float]] | None
+    in_user_law: bool
+    sorbed_decay: float
+    dissolved_volume: FloatArray
+    sorbed_capacity: FloatArray
+    decay_weight: FloatArray
+    outflow_weights: dict[str, FloatArray]
+
+    @property
+    def nonlinear(self) -> bool:
+        """Solved by Newton: nonlinear sorption, a nonlinear or a user reaction."""
+        return bool(self.isotherms or self.reaction or self.in_user_law)
+
+    def sorbed(self, c: FloatArray) -> tuple[FloatArray, FloatArray]:
+        """Nodal sorbed mass [kg] and its derivative [m³] (lumped, T10); linear: W_ρ K_d c."""
+        if not self.isotherms:
+            return self.sorbed_capacity * c, self.sorbed_capacity.copy()
+        total, slope = np.zeros_like(c), np.zeros_like(c)
+        for iso in self.isotherms:
+            s_u, ds_u = ISOTHERMS[iso.law](c, **iso.parameters)
+            total += iso.bulk_mass * s_u
+            slope += iso.bulk_mass * ds_u
+        return total, slope
+
+    def reaction_loss(self, c: FloatArray, user_rate: RateLaw | None = None,
+                      ) -> tuple[FloatArray, FloatArray]:
+        """Nodal mass loss rate [kg/s] of the nonlinear reaction and of ``user_rate`` (T11,
+        T11b; negative: production) and its derivative [m³/s]; zero without either."""
+        r, dr = np.zeros_like(c), np.zeros_like(c)
+        if self.reaction:
+            kind, par = self.reaction
+            r, dr = RATE_LAWS[kind](c, **par)
+        if user_rate is not None:
+            ru, dru = user_rate(c)
+            r, dr = r + ru, dr + dru
+        return -self.dissolved_volume * r, -self.dissolved_volume * dr
+
+    def sorbed_mass(self, c: FloatArray) -> float:
+        """Sorbed mass in the model [kg]."""
+        return float(self.sorbed(c)[0].sum())
+
+    def mass(self, c: FloatArray) -> float:
+        """Dissolved plus sorbed mass [kg] of the field ``c``."""
+        return float(self.dissolved_volume @ c) + self.sorbed_mass(c)
+
+
+def _reference_concentration(name: str, spec: Species, case: Case) -> float:
+    """Concentration [kg/m³] at which a nonlinear isotherm is linearised for the velocity,
+    τ and the SUPG storage: the largest source or initial value, at least the limit."""
+    return max([src.peak_concentration for src in case.sources
+                if src.species == name and src.peak_concentration is not None]
+               + [spec.initial_concentration, spec.limit])
+
+
+def build_species(site: SiteMesh, flow: FlowField, case: Case,
+                  medium: MediumFields) -> list[SpeciesModel]:
+    """One :class:`SpeciesModel` per species, parents before daughters (T12)."""
+    lay = site.cell_layer
+    theta, rho_b, vol = medium.porosity, medium.bulk_density, medium.cell_volume
+    q = flow.darcy_flux
+    user = case.user_reactions
+
+    def depth(name: str) -> int:
+        parent = case.species[name].parent
+        return 0 if parent is None else 1 + depth(parent)
+
+    out = []
+    for name, spec in sorted(case.species.items(), key=lambda item: depth(item[0])):
+        isotherms: list[Isotherm] = []
+        if spec.sorption != "linear":
+            c_ref = _reference_concentration(name, spec, case)
+            kd = np.zeros(site.n_cells)
+            for u, mn in enumerate(medium.material_names):
+                law, par = spec.isotherm_of(mn)
+                _, ds = ISOTHERMS[law](np.array([c_ref]), **par)
+                kd[lay == u] = ds[0]
+                isotherms.append(Isotherm(
+                    bulk_mass=lumped(site, np.where(lay == u, rho_b * vol, 0.0)),
+                    law=law, parameters=par))
+        else:
+            kd = np.array([spec.kd_of(mn) for mn in medium.material_names])[lay]
+        m = theta + rho_b * kd
+        lam = spec.decay_rate
+        k = lam * (m if spec.decay_in_sorbed_phase and not isotherms else theta)
+        a = q / m
+        speed2 = np.sum(a * a, axis=0)
+        along = np.einsum("ie,ije,je->e", a, medium.theta_dispersion, a)
+        kappa = np.divide(along, speed2 * m, out=np.zeros_like(m), where=speed2 > 0)
+        h = length_along(site.points, site.cells, a)
+        out.append(SpeciesModel(
+            name=name, spec=spec,
+            coefficients=Coefficients(
+                storage=m, decay=k, velocity=a, along_flow_diffusivity=kappa,
+                reaction_rate=k / m, element_length=h,
+                courant_rate=float(np.max(np.sqrt(speed2) / h))),
+            isotherms=tuple(isotherms), reaction=spec.nonlinear_reaction,
+            in_user_law=user is not None and name in user.species,
+            sorbed_decay=lam if spec.decay_in_sorbed_phase else 0.0,
+            dissolved_volume=lumped(site, theta * vol),
+            sorbed_capacity=lumped(site, rho_b * kd * vol),
+            decay_weight=lumped(site, k * vol),
+            outflow_weights=dict(medium.outflow_weights)))
+    return out

@@ -1,0 +1,188 @@
+"""Step systems of each species: operators assembled once, step matrices and their solvers
+reused while the step length and the held nodes repeat (theory.md T1–T8, T13, T16).
+
+:class:`StepSystems` is the one cache of a run: per species the Galerkin operators, the
+SUPG or low-order operators per step length, and a few step matrices S = a0/Δt M + θK split
+into free and held nodes with their solver (:class:`StepSystem`).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from fe3d._typing import FloatArray, IndexArray
+from fe3d.case.schema import SolverControl, TimeControl
+from fe3d.linalg import LinearSolver, solve_with_preconditioner
+from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.p1 import split_rows
+from fe3d.transport.assembly import monotone_operators, transport_operators
+from fe3d.transport.model import MediumFields, SpeciesModel
+from fe3d.transport.stabilization import supg_tau
+from fe3d.transport.timeschemes import StepCoefficients
+
+__all__ = ["NearbySolver", "Scheme", "StepSystem", "StepSystems"]
+
+MAX_CACHED = 3
+"""Step systems (matrix + factor or preconditioner) kept per species: a few step lengths."""
+
+
+@dataclass(frozen=True)
+class NearbySolver:
+    """Solves a matrix close to one whose solver is already set up (the same step with an
+    extra diagonal or diffusion term) by GMRES with that solver's preconditioner."""
+
+    A: sp.csr_matrix
+    M: Any
+    tol: float
+    method: str
+
+    def solve(self, b: FloatArray, x0: FloatArray | None = None) -> FloatArray:
+        """Solve A x = b; raises SolverError when the tolerance is missed."""
+        return solve_with_preconditioner(self.A, b, self.M, tol=self.tol, x0=x0)
+
+
+@dataclass(frozen=True)
+class StepSystem:
+    """The step matrix S = a0/Δt M + θK of one species, split by held/free nodes, with its
+    solver (factor or preconditioner), the mass operator M and the explicit part
+    ``explicit_part`` = (θ − 1)K."""
+
+    S: sp.csr_matrix
+    explicit_part: sp.csr_matrix
+    M: sp.csr_matrix
+    solver: LinearSolver | NearbySolver
+    free: IndexArray
+    fixed: IndexArray
+    S_fD: sp.csr_matrix
+
+
+@dataclass(frozen=True)
+class Scheme:
+    """The spatial scheme of a run: ``monotone`` low-order operators (T16) or SUPG (T6)
+    when ``supg``; ``flux_limiting`` corrects the low-order step (T16b)."""
+
+    monotone: bool
+    supg: bool
+    flux_limiting: bool
+
+    @classmethod
+    def of(cls, solver: SolverControl) -> Scheme:
+        """The scheme the case's solver section selects."""
+        return cls(monotone=solver.monotone, supg=solver.supg and not solver.monotone,
+                   flux_limiting=solver.monotone and solver.flux_limiting)
+
+
+@dataclass
+class _SpeciesCache:
+    """Operators of one species (mutable: filled on first use)."""
+
+    galerkin: tuple[sp.csr_matrix, sp.csr_matrix] | None = None
+    operators: dict[float, tuple[sp.csr_matrix, sp.csr_matrix]] = field(default_factory=dict)
+    limiter: tuple[sp.csr_matrix, sp.csr_matrix, FloatArray] | None = None
+    systems: dict[tuple[float, float, float, tuple[str, ...]], StepSystem] = field(
+        default_factory=dict)
+
+
+class StepSystems:
+    """Operators and step systems of every species of a run, built on first use."""
+
+    def __init__(self, site: SiteMesh, medium: MediumFields, darcy_flux: FloatArray,
+                 scheme: Scheme, time: TimeControl, solver: SolverControl,
+                 held_nodes: dict[str, IndexArray]) -> None:
+        self.site, self.medium, self.q = site, medium, darcy_flux
+        self.scheme, self.time, self.solver = scheme, time, solver
+        self.held_nodes = held_nodes
+        self._cache: dict[str, _SpeciesCache] = {}
+
+    def _of(self, s: SpeciesModel) -> _SpeciesCache:
+        return self._cache.setdefault(s.name, _SpeciesCache())
+
+    def tau_step(self, dt: float) -> float:
+        """Step length that τ (T8) is built with: the step itself with fixed steps; with
+        adaptive steps the nearest time.step · 2^k, so that operators are reused."""
+        if not self.time.adaptive:
+            return dt
+        return self.time.step * 2.0 ** round(math.log2(dt / self.time.step))
+
+    def limiter(self, s: SpeciesModel) -> tuple[sp.csr_matrix, sp.csr_matrix, FloatArray] | None:
+        """Consistent mass M, added diffusion D and lumped mass m_L of the species' flux
+        limiting (T16b), or None when it is not limited."""
+        return self._of(s).limiter
+
+    def operators(self, s: SpeciesModel, dt_tau: float) -> tuple[sp.csr_matrix, sp.csr_matrix]:
+        """Mass and spatial operators (T1–T6, outflow included) with τ built for dt_tau, or
+        with ``solver.monotone`` the low-order ones of T16 (no τ).
+
+        The Galerkin part does not depend on the step length and is built once per species;
+        a new step length rebuilds only the SUPG part (T6)."""
+        cache, pattern = self._of(s), self.site.pattern
+        if self.scheme.monotone:  # T16: no step-length dependence, built once per species
+            if not cache.operators:
+                M0, K0 = self.galerkin(s)
+                ML, KD = monotone_operators(M0, K0)
+                cache.operators[0.0] = (ML, KD)
+                if self.scheme.flux_limiting and not s.nonlinear:
+                    cache.limiter = (M0, pattern.matrix(KD.data - K0.data), ML.diagonal())
+                cache.galerkin = None  # not needed again: free its memory
+            return cache.operators[0.0]
+        if dt_tau not in cache.operators:
+            M, K = self.galerkin(s)
+            if self.scheme.supg:  # same pattern: the parts add by their value arrays
+                c = s.coefficients
+                tau = supg_tau(c.velocity, c.along_flow_diffusivity, c.reaction_rate,
+                               c.element_length, dt_tau)
+                Ms, Ks = transport_operators(self.site.points, self.site.cells, tau=tau,
+                                             parts="supg", pattern=pattern, **self._terms(s))
+                M, K = pattern.matrix(M.data + Ms.data), pattern.matrix(K.data + Ks.data)
+            while len(cache.operators) >= 2:  # keep at most two step lengths' operators
+                cache.operators.pop(next(iter(cache.operators)))
+            cache.operators[dt_tau] = (M, K)
+        return cache.operators[dt_tau]
+
+    def _terms(self, s: SpeciesModel) -> dict[str, Any]:
+        """Coefficients of the species' operators (T1–T6) for transport_operators."""
+        c = s.coefficients
+        nonlinear_sorption = bool(s.isotherms)
+        return {"m": self.medium.porosity if nonlinear_sorption else c.storage, "k": c.decay,
+                "q": self.q, "a": c.velocity, "theta_d": self.medium.theta_dispersion,
+                "n": self.site.n_nodes, "m_supg": c.storage if nonlinear_sorption else None}
+
+    def galerkin(self, s: SpeciesModel) -> tuple[sp.csr_matrix, sp.csr_matrix]:
+        """The Galerkin mass and spatial operators with the outflow term, built once."""
+        cache, pattern = self._of(s), self.site.pattern
+        if cache.galerkin is None:
+            M0, K0 = transport_operators(self.site.points, self.site.cells,
+                                         tau=np.zeros_like(s.coefficients.storage),
+                                         parts="galerkin", pattern=pattern, **self._terms(s))
+            K0.data += pattern.values_of(self.medium.outflow_matrix)
+            cache.galerkin = (M0, K0)
+        return cache.galerkin
+
+    def system(self, s: SpeciesModel, dt: float, co: StepCoefficients,
+               active: tuple[str, ...]) -> StepSystem:
+        """S = a0/Δt M + θK for this step, reduced to the free nodes, with its solver."""
+        cache, pattern, n = self._of(s), self.site.pattern, self.site.n_nodes
+        dt_tau = self.tau_step(dt)
+        key = (float(f"{co.a0 / dt:.12g}"), co.theta, dt_tau, active)
+        if key not in cache.systems:
+            M, K = self.operators(s, dt_tau)
+            S = pattern.matrix((co.a0 / dt) * M.data + co.theta * K.data)
+            is_fixed = np.zeros(n, dtype=bool)
+            for name in active:
+                is_fixed[self.held_nodes[name]] = True
+            free = np.nonzero(~is_fixed)[0]
+            fixed = np.nonzero(is_fixed)[0]
+            S_ff, S_fD = split_rows(S, free, fixed)
+            solver = LinearSolver(S_ff, method=self.solver.linear_solver,
+                                  tol=self.solver.tolerance)
+            while len(cache.systems) >= MAX_CACHED:
+                cache.systems.pop(next(iter(cache.systems)))
+            cache.systems[key] = StepSystem(
+                S=S, explicit_part=pattern.matrix((co.theta - 1.0) * K.data), M=M,
+                solver=solver, free=free, fixed=fixed, S_fD=S_fD)
+        return cache.systems[key]
