@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -10,7 +11,7 @@ from fe3d._typing import FloatArray
 from fe3d.post.files import write_atomic
 from fe3d.units import from_si
 
-__all__ = ["plot_breakthrough", "plot_heads"]
+__all__ = ["plot_breakthrough", "plot_heads", "plot_refinement_breakthrough"]
 
 
 def plot_breakthrough(path: Path, times: FloatArray, history: dict[str, FloatArray],
@@ -92,3 +93,59 @@ def plot_heads(path: Path, points: FloatArray, top_triangles: FloatArray, head: 
     write_atomic(path, lambda p: fig.savefig(p, dpi=120, format="png"))
     plt.close(fig)
     return path
+
+
+def plot_refinement_breakthrough(path: Path, levels: list[tuple[str, FloatArray,
+                                                                dict[str, FloatArray]]],
+                                 names: list[str], limits: dict[str, float], *,
+                                 time_unit: str, conc_unit: str, title: str) -> Path:
+    """Breakthrough curves of every refinement level overlaid, one panel per observation
+    point and species, with the species' limit drawn.
+
+    ``levels`` holds (label, times ``(n_t,)`` [s], concentrations per species
+    ``(n_t, len(names))`` [kg/m³]) per level, coarse first.
+    """
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    species = list(limits)
+    panels = [(j, sp) for j in range(len(names)) for sp in species]
+    fig, axes = plt.subplots(len(panels), 1, figsize=(8, 2.8 * len(panels)), squeeze=False,
+                             sharex=True)
+    tscale, scale = from_si(1.0, time_unit), from_si(1.0, conc_unit)
+    for ax, (j, sp) in zip(axes[:, 0], panels, strict=True):
+        peak = 0.0
+        for k, (label, times, history) in enumerate(levels):
+            values = history[sp][:, j] * scale
+            peak = max(peak, float(values.max()) if values.size else 0.0)
+            ax.plot(times * tscale, values, label=label, linewidth=1.0 + 0.5 * k)
+        _limit_line(ax, limits[sp] * scale, peak, conc_unit)
+        ax.set_ylabel(f"{names[j]} {sp}\n[{conc_unit}]", fontsize=8)
+    axes[-1, 0].set_xlabel(f"time [{time_unit}]")
+    fig.suptitle(title, fontsize=10)
+    _save_with_caution(fig, path)
+    return path
+
+
+def _limit_line(ax: Any, lim: float, peak: float, conc_unit: str) -> None:
+    """The limit as a dashed line; a log axis when the limit is far below the peak."""
+    ax.axhline(lim, color="k", linestyle="--", linewidth=1.0,
+               label=f"limit {lim:.3g} {conc_unit}")
+    if peak > 50.0 * lim:  # a limit far below the peak is invisible on a linear axis
+        ax.set_yscale("log")
+        ax.set_ylim(lim / 100.0, peak * 2.0)
+    ax.grid(visible=True, alpha=0.3)
+    ax.legend(fontsize=7, loc="upper right")
+
+
+def _save_with_caution(fig: Any, path: Path) -> None:
+    """The screening caution in the corner, PNG written atomically, figure closed."""
+    import matplotlib.pyplot as plt
+
+    fig.text(0.01, 0.005, "Screening estimate: depends on the inputs; not a substitute "
+             "for local regulations or licensed professional judgement.", fontsize=7)
+    fig.tight_layout(rect=(0, 0.03, 1, 1))
+    write_atomic(path, lambda p: fig.savefig(p, dpi=110, format="png"))
+    plt.close(fig)
