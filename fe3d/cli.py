@@ -1,4 +1,4 @@
-"""Command line: ``fe3d check CASE`` and ``fe3d run CASE [--out DIR]``.
+"""Command line: ``fe3d check``, ``fe3d mesh``, ``fe3d run`` and ``fe3d refine`` (each CASE).
 
 Only this module prints or exits. Every :class:`~fe3d.errors.Fe3dError` becomes one line per
 problem on standard error and exit code 2; no traceback is shown for bad input.
@@ -49,18 +49,27 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--out", type=Path, default=None,
                    help="run folder (default: output.folder of the case, else runs/<case name>)")
     r.add_argument("--quiet", action="store_true", help="no progress bar")
-    f = sub.add_parser("refine", help="mesh-refinement study: three grids, order and GCI",
-                       description="Run the case on three grids (its own sizes, then every cell "
-                                   "size and the time step divided by RATIO and RATIO²) and "
-                                   "report the observed order, the extrapolated value and the "
-                                   "grid convergence index of every breakthrough quantity "
-                                   "(refinement.csv, refinement.md). Costs about 1 + RATIO⁴ "
-                                   "+ RATIO⁸ runs of the case.")
+    f = sub.add_parser("refine", help="mesh-refinement study: levels, order, GCI, verdict",
+                       description="Run the case on refinement levels (its own sizes, then every "
+                                   "cell size and the time step divided by RATIO, RATIO², ...: "
+                                   "the Courant number stays the same) concurrently, and give "
+                                   "for every breakthrough quantity the values per level, the "
+                                   "observed order, the extrapolated value, the grid convergence "
+                                   "index and a verdict (converged, converging, oscillatory, "
+                                   "diverging, unchanged, missing). Writes refinement.csv, "
+                                   "refinement.md and refinement_breakthrough.png. The finest "
+                                   "of three levels costs about RATIO⁸ times the base run.")
     f.add_argument("case", type=Path, help="case file (TOML)")
     f.add_argument("--out", type=Path, default=None,
                    help="study folder (default: runs/<case name>_refinement)")
     f.add_argument("--ratio", type=float, default=1.5,
-                   help="refinement ratio between grids, > 1 (default 1.5)")
+                   help="refinement ratio between levels, in (1, 3] (default 1.5)")
+    f.add_argument("--levels", type=int, default=3,
+                   help="number of levels, 2 to 5 (default 3; an order needs 3)")
+    f.add_argument("--threshold", type=float, default=5.0,
+                   help="GCI below which a quantity is 'converged' [%%] (default 5)")
+    f.add_argument("--workers", type=int, default=None,
+                   help="levels run at once (default: CPU cores, at most the levels)")
     return p
 
 
@@ -94,6 +103,10 @@ def _check(case_path: Path) -> int:
 
     case = load_case(case_path)
     check_user_code(case, case_path.resolve().parent)
+    from fe3d.flow.site_rules import check_mesh_rules  # builds or reuses it; writes nothing
+
+    check_mesh_rules(case, [_default_mesh_folder(case_path),
+                            Path(case.output.folder or f"runs/{case_path.stem}")])
     con = Console()
     con.print(f"[bold]{case.title}[/bold]  ({case_path})")
     verts = case.outline()[0]
@@ -106,8 +119,8 @@ def _check(case_path: Path) -> int:
                 "α_L/α_TH/α_TV [m]"):
         t.add_column(col)
     for name, m in case.materials.items():
-        t.add_row(name, f"{m.horizontal_conductivity * 86400:.4g}",
-                  f"{m.k_vertical * 86400:.4g}", f"{m.porosity:.3g}", f"{m.bulk_density:.4g}",
+        t.add_row(name, f"{from_si(m.horizontal_conductivity, 'm/d'):.4g}",
+                  f"{from_si(m.k_vertical, 'm/d'):.4g}", f"{m.porosity:.3g}", f"{m.bulk_density:.4g}",
                   f"{m.longitudinal_dispersivity:g}/{m.transverse_dispersivity:g}/"
                   f"{m.alpha_vertical:g}")
     con.print(t)
@@ -223,28 +236,65 @@ def _mesh(case_path: Path, out: Path | None) -> int:
     return 0
 
 
-def _refine(case_path: Path, out: Path | None, ratio: float) -> int:
+def _refine(case_path: Path, out: Path | None, *, ratio: float, levels: int,
+            threshold: float, workers: int | None) -> int:
     from rich.console import Console
 
     from fe3d.errors import CaseError
     from fe3d.post.report import CAUTION
-    from fe3d.studies.refinement import refinement_study
+    from fe3d.studies.refinement import LevelResult, refinement_study
 
-    if not ratio > 1.0 or ratio > 3.0:
-        raise CaseErrors([CaseError("--ratio", ratio, "must be in (1, 3]")])
+    problems = []
+    if not 1.0 < ratio <= 3.0:
+        problems.append(CaseError("--ratio", ratio, "must be in (1, 3]"))
+    if not 2 <= levels <= 5:
+        problems.append(CaseError("--levels", levels, "must be 2 to 5"))
+    if not 0.0 < threshold < 100.0:
+        problems.append(CaseError("--threshold", threshold, "must be a percentage in (0, 100)"))
+    if workers is not None and workers < 1:
+        problems.append(CaseError("--workers", workers, "must be 1 or more"))
+    if problems:
+        raise CaseErrors(problems)
     case = load_case(case_path)
     folder = out or Path(f"runs/{case_path.stem}_refinement")
     con = Console()
-    con.print(f"refinement study of {case_path}: 3 grids, ratio {ratio:g} (this runs the case "
-              "three times, the last on a much finer mesh)")
-    result = refinement_study(case, folder, ratio=ratio, base_dir=case_path.resolve().parent,
-                              progress=lambda stage, d, t: None)
-    for key, c in result.items():
-        order = "oscillatory" if c.order is None else f"order {c.order:.3g}"
-        gci = "" if c.gci is None else f", GCI {100 * c.gci:.2g} %"
-        con.print(f"{key}: {c.coarse:.4g} → {c.medium:.4g} → {c.fine:.4g} ({order}{gci})",
-                  markup=False)
-    con.print(f"tables in {folder}/refinement.csv and refinement.md")
+    con.print(f"refinement study of {case_path}: {levels} levels, ratio {ratio:g}; cell sizes "
+              "and time step are divided by the same factor on each level, so the Courant "
+              "number stays fixed", highlight=False)
+
+    def tell(lv: LevelResult) -> None:
+        if lv.summary is None:
+            con.print(f"level {lv.index} (÷{lv.factor:.4g}) [red]failed[/red]: {lv.error}",
+                      highlight=False)
+            return
+        courant = ", ".join(f"{sp} {c:.3g}" for sp, c in lv.summary.max_courant.items())
+        con.print(f"level {lv.index} (÷{lv.factor:.4g}) done: {lv.summary.n_nodes:,} nodes, "
+                  f"{lv.summary.n_steps} steps, largest Courant {courant}", highlight=False)
+
+    executor = None
+    if workers is not None:
+        from concurrent.futures import ProcessPoolExecutor
+        from multiprocessing import get_context
+
+        from fe3d.studies.refinement import SerialExecutor
+
+        executor = SerialExecutor() if workers == 1 else ProcessPoolExecutor(
+            max_workers=min(workers, levels), mp_context=get_context("spawn"))
+    try:
+        study = refinement_study(case, folder, ratio=ratio, levels=levels,
+                                 threshold=threshold / 100.0,
+                                 base_dir=case_path.resolve().parent, executor=executor,
+                                 on_level=tell)
+    finally:
+        if executor is not None:
+            executor.shutdown(wait=True)
+    for q in study.verdicts:
+        con.print(study.line(q), markup=False, highlight=False)
+    failed = [lv for lv in study.levels if lv.summary is None]
+    for lv in failed:
+        con.print(f"level {lv.index} failed: {lv.error}", markup=False, highlight=False)
+    con.print(f"tables in {folder}/refinement.csv and refinement.md, curves in "
+              "refinement_breakthrough.png", highlight=False)
     con.print(CAUTION)
     return 0
 
@@ -261,7 +311,8 @@ def main(argv: list[str] | None = None) -> int:
         if args.command == "mesh":
             return _mesh(args.case, args.out)
         if args.command == "refine":
-            return _refine(args.case, args.out, args.ratio)
+            return _refine(args.case, args.out, ratio=args.ratio, levels=args.levels,
+                           threshold=args.threshold, workers=args.workers)
         return _run(args.case, args.out, quiet=args.quiet)
     except CaseErrors as exc:
         for e in exc.errors:

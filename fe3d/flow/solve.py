@@ -11,12 +11,18 @@ import numpy as np
 
 from fe3d._threads import limit_blas_threads
 from fe3d._typing import FloatArray, IndexArray
-from fe3d.case.hydro import Well
 from fe3d.case.schema import Case
 from fe3d.errors import CaseError, SolverError
 from fe3d.flow.assembly import conductance_matrix
-from fe3d.flow.boundaries import in_polygon, lumped_face_weights
+from fe3d.flow.boundaries import lumped_face_weights
 from fe3d.flow.conductivity import conductivity_tensors
+from fe3d.flow.site_rules import (
+    head_dependent_problems,
+    recharge_mask,
+    recharge_problems,
+    screened_unit_problems,
+    zone_mask,
+)
 from fe3d.linalg import FLOW_TOLERANCE, solve_spd
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.materials import unit_materials  # re-exported here until its callers move
@@ -161,21 +167,16 @@ def solve_flow(
     for sf in case.specified_fluxes:
         w = lumped_face_weights(p, site.faces[sf.face], n)
         items.append((f"flux_{sf.face}", "specified flux", sf.flux * w))
-    top = site.faces["top"]
-    top_c = p[:, top].mean(axis=1)
     for rc in case.recharge:
-        mask = None if rc.zone is None else in_polygon(top_c[0], top_c[1], rc.zone)
-        if mask is not None and not mask.any():
-            raise CaseError(f"recharge[{rc.name}].zone", "(polygon)",
-                            "must cover at least one top face of the mesh")
-        items.append((rc.name, "recharge", rc.rate * lumped_face_weights(p, top, n, mask)))
+        _raise_first(recharge_problems(site, rc))
+        items.append((rc.name, "recharge", rc.rate * lumped_face_weights(
+            p, site.faces["top"], n, recharge_mask(site, rc))))
     well_ops = {}
     for well in case.wells:
         pts = np.hstack([screen_points(well.x, well.y, t, b, spacing=case.mesh.sample_spacing)
                          for t, b in well.screens])
         op, in_cells = sample_operator(p, site.cells, pts, weights_per_cell=principal[0])
-        if well.unit is not None:
-            _check_screened_unit(site, well, in_cells)
+        _raise_first(screened_unit_problems(site, well, in_cells))
         well_ops[well.name] = op
         sign = {"extraction": -1.0, "injection": 1.0, "observation": 0.0}[well.kind]
         items.append((well.name, "well", sign * well.rate * np.asarray(op.todense()).ravel()))
@@ -184,22 +185,8 @@ def solve_flow(
     # head-dependent zones (lumped): inflow = L a_i (stage − h_i); drains only remove water
     robin = []
     for hd in case.head_dependent:
-        tri = site.faces[hd.face]
-        cen = p[:, tri].mean(axis=1)
-        mask = np.ones(tri.shape[1], dtype=bool) if hd.zone is None else \
-            in_polygon(cen[0], cen[1], hd.zone)
-        key = f"head_dependent[{hd.name}]"
-        if not mask.any():
-            raise CaseError(f"{key}.zone", "(polygon)",
-                            f"must cover at least one triangle of the face {hd.face!r}")
-        floor = _top_cell_bottom(site, tri[:, mask]) if hd.face == "top" else \
-            float(p[2, tri[:, mask]].min())
-        if hd.stage < floor:
-            where = "the bottom of the top cells under the zone" if hd.face == "top" else \
-                "the lowest point of the zone on its face"
-            raise CaseError(f"{key}.stage", f"{hd.stage:g} m",
-                            f"must not lie below {where} ({floor:.3g} m)")
-        la = hd.leakance * lumped_face_weights(p, tri, n, mask)
+        _raise_first(head_dependent_problems(site, hd))
+        la = hd.leakance * lumped_face_weights(p, site.faces[hd.face], n, zone_mask(site, hd))
         la[is_fixed] = 0.0
         robin.append((hd, la))
 
@@ -253,37 +240,7 @@ def solve_flow(
     return result
 
 
-def _top_cell_bottom(site: SiteMesh, tri: IndexArray) -> float:
-    """Highest bottom elevation [m] of the cells under the given top triangles."""
-    z = site.points[2]
-    top_nodes = np.unique(tri)
-    is_top = np.zeros(site.n_nodes, dtype=bool)
-    is_top[top_nodes] = True
-    touching = np.any(is_top[site.cells], axis=0)
-    return float(np.max(z[site.cells[:, touching]].min(axis=0)))
-
-
-def _check_screened_unit(site: SiteMesh, well: Well, screen_cells: IndexArray) -> None:
-    """Every screen sample must lie in the well's named unit (theory.md F7)."""
-    key = f"wells[{well.name}].unit"
-    if well.unit not in site.layer_names:
-        raise CaseError(key, well.unit, f"must be one of the units: {list(site.layer_names)}")
-    u = site.layer_names.index(well.unit)
-    found = site.cell_layer[screen_cells]
-    if np.all(found == u):
-        return
-    # is the unit present at all in the column under the well?
-    col = np.nonzero(np.hypot(site.points[0] - well.x, site.points[1] - well.y) < 1e-6)[0]
-    present = False
-    if col.size >= 2:
-        z = np.sort(site.points[2, col])
-        mid = 0.5 * (z[1:] + z[:-1])
-        pts = np.vstack([np.full(mid.size, well.x), np.full(mid.size, well.y), mid])
-        _, cells = sample_operator(site.points, site.cells, pts)
-        present = bool(np.any(site.cell_layer[cells] == u))
-    if not present:
-        raise CaseError(key, well.unit, "this unit is pinched out (absent) at the well; "
-                        "screen another unit")
-    others = sorted({site.layer_names[i] for i in np.unique(found) if i != u})
-    raise CaseError(key, well.unit, f"the screens also reach {others}; keep them inside "
-                    f"{well.unit!r} at the well")
+def _raise_first(problems: list[CaseError]) -> None:
+    """Stop at the first broken mesh rule of an item (``fe3d check`` lists them all)."""
+    if problems:
+        raise problems[0]
