@@ -29,7 +29,7 @@ from typing import Any, ClassVar
 from pydantic import ValidationError, create_model
 
 from fe3d.case import schema
-from fe3d.case.load import _errors_from, parse_case
+from fe3d.case.load import _errors_from, parse_case, with_release_files
 from fe3d.case.schema import Case, cross_checks
 from fe3d.case.schema_types import Section
 from fe3d.errors import CaseError, CaseErrors
@@ -200,7 +200,7 @@ class Species(_Block):
 class Source(_Block):
     """A source. Numbers are in mg/L (``concentration``), g/d (``mass_rate``), m (``x``,
     ``y``, ``z`` ranges and ``points``) and d (``start``, ``stop``,
-    ``depletion_half_life``)."""
+    ``depletion_half_life``); ``options`` takes any other key as the case file writes it."""
 
     name: str
     species: str = "tracer"
@@ -218,6 +218,7 @@ class Source(_Block):
     depletion_half_life: Quantity | None = None
     release_file: str | None = None
     concentration_file: str | None = None
+    options: Mapping[str, Any] = field(default_factory=dict)
 
     _UNITS: ClassVar[dict[str, str]] = {
         "concentration": "mg/L", "mass_rate": "g/d", "x": "m", "y": "m", "z": "m",
@@ -421,7 +422,8 @@ def box_case(
                       **kwargs)
 
 
-def with_changes(case: Case, **sections: Mapping[str, Any] | Sequence[Any]) -> Case:
+def with_changes(case: Case, *, base_dir: Path | None = None,
+                 **sections: Mapping[str, Any] | Sequence[Any]) -> Case:
     """A copy of ``case`` with some sections changed and validated.
 
     Parameters
@@ -433,8 +435,10 @@ def with_changes(case: Case, **sections: Mapping[str, Any] | Sequence[Any]) -> C
         written as in a case file (``time={"step": "0.5 d", "scheme": "bdf2"}``); for
         ``materials`` and ``species``, name → fields; for a list section (``sources``,
         ``observation_points``, ``wells``, ...) the whole new list, of builder records
-        (:class:`Source`, ...) or tables as the case file writes them. Data files named by
-        new entries (release files) are not read.
+        (:class:`Source`, ...) or tables as the case file writes them.
+    base_dir
+        Folder that release and concentration files named by the sources are read from
+        [path] (default: the current folder), as :func:`~fe3d.case.load.parse_case` does.
 
     Returns
     -------
@@ -477,7 +481,10 @@ def with_changes(case: Case, **sections: Mapping[str, Any] | Sequence[Any]) -> C
                                       new.items()}}
         else:
             update[name] = old.model_copy(update=_set(new))
-    changed = case.model_copy(update=update)
+    try:
+        changed = with_release_files(case.model_copy(update=update), base_dir or Path())
+    except CaseError as exc:
+        raise CaseErrors([exc]) from None
     problems = cross_checks(changed)
     if problems:
         raise CaseErrors(problems)

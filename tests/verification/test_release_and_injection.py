@@ -14,29 +14,47 @@ Budget targets: ≤ 1e-8 (linear), ≤ 1e-6 (nonlinear), the issue's criteria.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest import box_case_text
+from test_time_loop import batch_case
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import (
+    FixedHead,
+    Layer,
+    Material,
+    Solver,
+    Source,
+    Species,
+    Time,
+    box_case,
+    with_changes,
+)
+from fe3d.case.load import load_case
 from fe3d.errors import CaseError, CaseErrors
 from fe3d.pipeline import check_user_code, mesh_and_flow
 from fe3d.transport.run import run_transport
 
 pytestmark = pytest.mark.verification
-TINY = (Path(__file__).parents[2] / "cases" / "tiny" / "case.toml").read_text()
+TINY = load_case(Path(__file__).parents[2] / "cases" / "tiny" / "case.toml")
 DAY = 86400.0
-SPILL_LINES = ('concentration = "5 mg/L"\nx = ["8 m", "12 m"]', 'stop = "200 d"\n')
+SPILL = Source("drum_spill", concentration="5 mg/L", x=(8, 12), y=(8, 12), z=(2, 4), stop=200)
+"""The source of cases/tiny/case.toml."""
 
 
-def _tiny(tmp_path: Path, source_edit, extra: str = "", csv: str | None = None):
-    text = source_edit(TINY) + extra
+def _tiny(tmp_path: Path, spill: Source | None, csv: str | None = None, **changes: object):
+    """The tiny case with ``spill`` as its one source (``None``: no source), data files read
+    from ``tmp_path``, and other sections changed as :func:`with_changes` takes them."""
     if csv is not None:
         (tmp_path / "release.csv").write_text(csv, encoding="utf-8")
-    return parse_case(text, base_dir=tmp_path)
+    return with_changes(TINY, base_dir=tmp_path, sources=[spill] if spill else [], **changes)
+
+
+def _spill(**changes: object) -> Source:
+    return dataclasses.replace(SPILL, **changes)
 
 
 def _series_integral(rows, t):
@@ -50,9 +68,8 @@ def _series_integral(rows, t):
 
 def test_mass_loading_release_series_puts_in_its_integral(tmp_path):
     csv = "# invented release history\ntime [d], mass_rate [g/d]\n0, 0\n50, 4\n150, 4\n200, 0\n"
-    case = _tiny(tmp_path, lambda t: t.replace(
-        'concentration = "5 mg/L"', 'kind = "mass_loading"\nrelease_file = "release.csv"'
-    ).replace('stop = "200 d"\n', ''), csv=csv)
+    case = _tiny(tmp_path, _spill(concentration=None, kind="mass_loading",
+                                  release_file="release.csv", stop=None), csv=csv)
     site, flow = mesh_and_flow(case)
     snaps = list(run_transport(site, flow, case))
     rows = [(t * DAY, v * 1e-3 / DAY) for t, v in ((0, 0), (50, 4), (150, 4), (200, 0))]
@@ -65,8 +82,7 @@ def test_mass_loading_release_series_puts_in_its_integral(tmp_path):
 
 def test_fixed_concentration_release_series_holds_the_interpolated_value(tmp_path):
     csv = "time [d], concentration [mg/L]\n0, 5\n365.25, 1\n"
-    case = _tiny(tmp_path, lambda t: t.replace(
-        'concentration = "5 mg/L"', 'release_file = "release.csv"'), csv=csv)
+    case = _tiny(tmp_path, _spill(concentration=None, release_file="release.csv"), csv=csv)
     site, flow = mesh_and_flow(case)
     snaps = list(run_transport(site, flow, case))
     first = snaps[1]  # 0.5 yr = 182.625 d, inside the source's 200 d
@@ -87,9 +103,8 @@ def test_fixed_concentration_release_series_holds_the_interpolated_value(tmp_pat
 ])
 def test_bad_release_files_name_the_field(tmp_path, csv, allowed):
     with pytest.raises(CaseErrors) as err:
-        _tiny(tmp_path, lambda t: t.replace(
-            'concentration = "5 mg/L"', 'kind = "mass_loading"\nrelease_file = "release.csv"'),
-            csv=csv)
+        _tiny(tmp_path, _spill(concentration=None, kind="mass_loading",
+                               release_file="release.csv"), csv=csv)
     text = str(err.value)
     assert "sources[drum_spill].release_file" in text
     assert allowed in text
@@ -97,20 +112,17 @@ def test_bad_release_files_name_the_field(tmp_path, csv, allowed):
 
 def test_release_file_and_constant_value_together_are_rejected(tmp_path):
     with pytest.raises(CaseErrors, match="not both"):
-        _tiny(tmp_path, lambda t: t.replace(
-            'concentration = "5 mg/L"', 'concentration = "5 mg/L"\nrelease_file = "release.csv"'),
-            csv="time [d], concentration [mg/L]\n0, 1\n")
+        _tiny(tmp_path, _spill(release_file="release.csv"),
+              csv="time [d], concentration [mg/L]\n0, 1\n")
 
 
 def test_missing_release_file_is_reported(tmp_path):
     with pytest.raises(CaseErrors, match="cannot be read"):
-        _tiny(tmp_path, lambda t: t.replace('concentration = "5 mg/L"',
-                                            'release_file = "nowhere.csv"'))
+        _tiny(tmp_path, _spill(concentration=None, release_file="nowhere.csv"))
 
 
-WELL = ('\n[[wells]]\nname = "recharge_well"\nx = "20 m"\ny = "10 m"\n'
-        'screens = [["4 m", "2 m"]]\nrate = "5 m^3/d"\nkind = "injection"\n'
-        'injection_concentration = { tracer = "2 mg/L" }\n')
+WELL = {"name": "recharge_well", "x": "20 m", "y": "10 m", "screens": [["4 m", "2 m"]],
+        "rate": "5 m^3/d", "kind": "injection", "injection_concentration": {"tracer": "2 mg/L"}}
 
 
 def test_injection_well_fills_its_surroundings_with_its_concentration(tmp_path):
@@ -120,9 +132,8 @@ def test_injection_well_fills_its_surroundings_with_its_concentration(tmp_path):
     exactly where only injected water flows, see theory.md T3d). The spill box is
     switched to clean water (0 mg/L): its residual input is ≤ 0, so the total input stays
     ≤ Q c_inj t; budget ≤ 1e-8."""
-    case = _tiny(tmp_path, lambda t: t.replace(
-        'concentration = "5 mg/L"', 'concentration = "0 mg/L"').replace(
-        'head = "4.0 m"', 'head = "4.6 m"'), extra=WELL)
+    case = _tiny(tmp_path, _spill(concentration="0 mg/L"), wells=[WELL],
+                 fixed_heads=[FixedHead("west", "4.6 m"), FixedHead("east", "4.6 m")])
     site, flow = mesh_and_flow(case)
     snaps = list(run_transport(site, flow, case))
     q, c_inj = 5.0 / DAY, 2e-3
@@ -137,8 +148,7 @@ def test_injection_well_fills_its_surroundings_with_its_concentration(tmp_path):
 
 
 def test_injection_well_input_is_exact_without_other_sources(tmp_path):
-    case = _tiny(tmp_path, lambda t: t.split("[[sources]]")[0] + "[[observation_points]]"
-                 + t.split("[[observation_points]]", 1)[1], extra=WELL)
+    case = _tiny(tmp_path, None, wells=[WELL])
     assert not case.sources
     site, flow = mesh_and_flow(case)
     for snap in list(run_transport(site, flow, case))[1:]:
@@ -148,9 +158,8 @@ def test_injection_well_input_is_exact_without_other_sources(tmp_path):
 
 
 def test_injection_concentration_needs_an_injection_well():
-    bad = WELL.replace('kind = "injection"', 'kind = "extraction"')
     with pytest.raises(CaseErrors, match=r"wells\[recharge_well\].injection_concentration"):
-        parse_case(TINY + bad)
+        with_changes(TINY, wells=[{**WELL, "kind": "extraction"}])
 
 
 # --- user reaction laws ----------------------------------------------------------------------
@@ -196,24 +205,23 @@ def a_to_b(c):
 C0 = 2.0
 
 
-def _batch(tmp_path: Path, species: str, extra: str, scheme: str = "crank_nicolson",
-           steps: int = 80):
+def _batch(tmp_path: Path, species: list[Species], function: str | None,
+           scheme: str = "crank_nicolson", steps: int = 80):
+    """The no-flow batch over 10 d with the user law ``function`` over all ``species``."""
     (tmp_path / "site_laws.py").write_text(LAWS, encoding="utf-8")
-    text = box_case_text(length=20.0, width=10.0, layers=[("sand", -4.0, 5.0, 5.0)],
-                         heads={"west": 1.0, "east": 1.0}, cell=5.0, dz=2.0,
-                         end="10 d", step=f"{10.0 / steps} d", species=species)
-    text = text.replace('step = "', f'scheme = "{scheme}"\nstep = "') + extra + \
-        '[solver]\nlinear_solver = "direct"\n'
-    case = parse_case(text, base_dir=tmp_path)
+    laws = {} if function is None else {"user_reactions": {
+        "function": function, "species": [s.name for s in species]}}
+    case = batch_case(species, time=Time(10.0, 10.0 / steps, scheme=scheme), sections=laws,
+                      base_dir=tmp_path)
     site, flow = mesh_and_flow(case)
     return list(run_transport(site, flow, case, base_dir=tmp_path))[-1]
 
 
 def test_user_law_equals_the_built_in_second_order_law(tmp_path):
-    sp = f'[species.s]\nlimit = "1 mg/L"\ninitial_concentration = "{C0} kg/m^3"\n'
-    user = _batch(tmp_path, sp, '[user_reactions]\nfunction = "site_laws:second_order"\n'
-                  'species = ["s"]\n')
-    built_in = _batch(tmp_path, sp + 'second_order_rate = "0.05 m^3/kg/d"\n', "")
+    sp = Species("s", initial_concentration=f"{C0} kg/m^3")
+    user = _batch(tmp_path, [sp], "site_laws:second_order")
+    built_in = _batch(tmp_path, [dataclasses.replace(
+        sp, options={"second_order_rate": "0.05 m^3/kg/d"})], None)
     np.testing.assert_allclose(user.concentration["s"], built_in.concentration["s"],
                                rtol=1e-12)
     exact = C0 / (1 + 0.05 * C0 * 10.0)
@@ -225,10 +233,8 @@ def test_user_law_couples_two_species(tmp_path):
     """A → B at k = ln2/3 d⁻¹ through one user function; Crank–Nicolson, 80 steps:
     both within 3e-4 of the closed form (the scheme's own error, (λΔt)² λt/12 ≈ 1.6e-4);
     A + B conserved to 1e-10; budgets ≤ 1e-6."""
-    sp = (f'[species.a]\nlimit = "1 mg/L"\ninitial_concentration = "{C0} kg/m^3"\n'
-          '[species.b]\nlimit = "1 mg/L"\n')
-    last = _batch(tmp_path, sp, '[user_reactions]\nfunction = "site_laws:a_to_b"\n'
-                  'species = ["a", "b"]\n')
+    sp = [Species("a", initial_concentration=f"{C0} kg/m^3"), Species("b")]
+    last = _batch(tmp_path, sp, "site_laws:a_to_b")
     k = math.log(2.0) / 3.0
     a, b = (float(last.concentration[x].mean()) for x in ("a", "b"))
     assert a == pytest.approx(C0 * math.exp(-k * 10.0), rel=3e-4)
@@ -245,10 +251,9 @@ def test_user_law_couples_two_species(tmp_path):
 ])
 def test_user_law_that_cannot_be_loaded_is_a_clear_error(tmp_path, function, allowed):
     (tmp_path / "site_laws.py").write_text(LAWS, encoding="utf-8")
-    text = box_case_text(length=20.0, width=10.0, layers=[("sand", -4.0, 5.0, 5.0)],
-                         heads={"west": 1.0, "east": 1.0}, cell=5.0, dz=2.0)
-    text += f'[user_reactions]\nfunction = "{function}"\nspecies = ["tracer"]\n'
-    case = parse_case(text, base_dir=tmp_path)
+    case = batch_case([Species()], time=Time(), solver=Solver(), base_dir=tmp_path,
+                      sections={"user_reactions": {"function": function,
+                                                   "species": ["tracer"]}})
     with pytest.raises(CaseError) as err:
         check_user_code(case, tmp_path)
     assert err.value.key_path == "user_reactions.function"
@@ -256,11 +261,9 @@ def test_user_law_that_cannot_be_loaded_is_a_clear_error(tmp_path, function, all
 
 
 def test_user_reactions_must_name_species():
-    text = box_case_text(length=20.0, width=10.0, layers=[("sand", -4.0, 5.0, 5.0)],
-                         heads={"west": 1.0, "east": 1.0}, cell=5.0, dz=2.0)
-    text += '[user_reactions]\nfunction = "m:f"\nspecies = ["ghost"]\n'
     with pytest.raises(CaseErrors, match=r"user_reactions.species\[0\]"):
-        parse_case(text)
+        batch_case([Species()], time=Time(), solver=Solver(),
+                   sections={"user_reactions": {"function": "m:f", "species": ["ghost"]}})
 
 
 # --- initial plume from measured points ------------------------------------------------------
@@ -283,11 +286,9 @@ def test_initial_plume_from_points_is_interpolated_linearly(tmp_path):
     the points' hull hold the field to 1e-12; nodes outside the hull start clean; the
     initial mass is the stored mass and the budget closes ≤ 1e-8 afterwards."""
     _plume_csv(tmp_path)
-    case = _tiny(tmp_path, lambda t: t.replace(
-        'concentration = "5 mg/L"\nx = ["8 m", "12 m"]',
-        'kind = "initial_plume"\nconcentration_file = "survey.csv"\nx = ["4 m", "16 m"]'
-    ).replace('y = ["8 m", "12 m"]', 'y = ["4 m", "16 m"]').replace(
-        'z = ["2 m", "4 m"]', 'z = ["1 m", "5 m"]').replace('stop = "200 d"\n', ''))
+    case = _tiny(tmp_path, _spill(concentration=None, kind="initial_plume",
+                                  concentration_file="survey.csv", x=(4, 16), y=(4, 16),
+                                  z=(1, 5), stop=None))
     site, flow = mesh_and_flow(case)
     snaps = list(run_transport(site, flow, case))
     c0 = snaps[0].concentration["tracer"]
@@ -312,9 +313,8 @@ def test_initial_plume_from_points_is_interpolated_linearly(tmp_path):
 def test_bad_concentration_files_name_the_field(tmp_path, csv, allowed):
     (tmp_path / "survey.csv").write_text(csv, encoding="utf-8")
     with pytest.raises(CaseErrors) as err:
-        _tiny(tmp_path, lambda t: t.replace(
-            'concentration = "5 mg/L"', 'kind = "initial_plume"\nconcentration_file = '
-            '"survey.csv"').replace('stop = "200 d"\n', ''))
+        _tiny(tmp_path, _spill(concentration=None, kind="initial_plume",
+                               concentration_file="survey.csv", stop=None))
     assert "sources[drum_spill].concentration_file" in str(err.value)
     assert allowed in str(err.value)
 
@@ -322,17 +322,14 @@ def test_bad_concentration_files_name_the_field(tmp_path, csv, allowed):
 # --- point and line mass loading -------------------------------------------------------------
 
 
-def _no_flow_loading(shape_lines: str):
-    species = ('[species.s]\nlimit = "1 mg/L"\n'
-               '[[sources]]\nname = "drip"\nspecies = "s"\nkind = "mass_loading"\n'
-               f'mass_rate = "3 g/d"\n{shape_lines}')
-    text = box_case_text(length=40.0, width=40.0, layers=[("sand", -12.0, 5.0, 5.0)],
-                         heads={"west": 1.0, "east": 1.0}, cell=2.0, dz=1.0,
-                         end="10 d", step="1 d", species=species)
-    text = text.replace('transverse_dispersivity = "0.1 m"\n',
-                        'transverse_dispersivity = "0.1 m"\ndiffusion_coefficient = '
-                        '"1e-8 m^2/s"\n')
-    return parse_case(text + '[solver]\nlinear_solver = "direct"\n')
+def _no_flow_loading(shape: str, points: list[tuple[float, float, float]]):
+    return box_case(
+        length=40.0, width=40.0, cell=2.0, dz=1.0, heads={"west": 1.0, "east": 1.0},
+        layers=[Layer("sand", -12.0, Material(5.0, 5.0, diffusion_coefficient="1e-8 m^2/s"))],
+        species=[Species("s")],
+        sources=[Source("drip", species="s", kind="mass_loading", mass_rate="3 g/d",
+                        shape=shape, points=points)],
+        time=Time(10.0, 1.0), solver=Solver(linear_solver="direct"))
 
 
 def _first_moment(site, c):
@@ -349,19 +346,18 @@ def _first_moment(site, c):
     return (site.points @ mc) / mc.sum()
 
 
-@pytest.mark.parametrize(("shape_lines", "centre"), [
-    ('shape = "point"\npoints = [["20.3 m", "20.2 m", "-6.1 m"]]\n', (20.3, 20.2, -6.1)),
-    ('shape = "line"\npoints = [["16.1 m", "18.3 m", "-4.2 m"], ["23.7 m", "21.9 m", "-7.4 m"]]'
-     '\n', (19.9, 20.1, -5.8)),
+@pytest.mark.parametrize(("shape", "points", "centre"), [
+    ("point", [(20.3, 20.2, -6.1)], (20.3, 20.2, -6.1)),
+    ("line", [(16.1, 18.3, -4.2), (23.7, 21.9, -7.4)], (19.9, 20.1, -5.8)),
 ])
-def test_point_and_line_loading_put_their_mass_where_they_are(shape_lines, centre):
+def test_point_and_line_loading_put_their_mass_where_they_are(shape, points, centre):
     """No flow, diffusion only: the mass put in is rate × time (1e-12), and the centroid of
     the stored mass is the point (or the line's midpoint) to 0.1 mm. The Galerkin load of a
     point source is φ_j(x_s), whose first moment Σ φ_j(x_s) x_j = x_s because P1 reproduces
     linear functions; diffusion keeps the first moment while c = 0 on the boundary (T3f;
     exact by construction). The source sits 6–10 cells from every face, so the boundary
     values of the implicit solution stay small (measured ≤ 4e-6 m off when written)."""
-    case = _no_flow_loading(shape_lines)
+    case = _no_flow_loading(shape, points)
     site, flow = mesh_and_flow(case)
     snaps = list(run_transport(site, flow, case))
     for snap in snaps[1:]:
@@ -372,15 +368,14 @@ def test_point_and_line_loading_put_their_mass_where_they_are(shape_lines, centr
                                    atol=1e-4)
 
 
-@pytest.mark.parametrize(("shape_lines", "allowed"), [
-    ('shape = "point"\npoints = [["10 m", "5 m", "-2 m"], ["11 m", "5 m", "-2 m"]]\n',
-     "a point source needs points"),
-    ('shape = "line"\npoints = [["10 m", "5 m", "-2 m"]]\n', "at least two points"),
-    ('shape = "point"\npoints = [["10 m", "5 m", "2 m"]]\n', "must lie inside the model"),
+@pytest.mark.parametrize(("shape", "points", "allowed"), [
+    ("point", [(10, 5, -2), (11, 5, -2)], "a point source needs points"),
+    ("line", [(10, 5, -2)], "at least two points"),
+    ("point", [(10, 5, 2)], "must lie inside the model"),
 ])
-def test_bad_point_and_line_sources_name_the_field(shape_lines, allowed):
+def test_bad_point_and_line_sources_name_the_field(shape, points, allowed):
     with pytest.raises(CaseErrors) as err:
-        _no_flow_loading(shape_lines)
+        _no_flow_loading(shape, points)
     assert "sources[drip]" in str(err.value)
     assert allowed in str(err.value)
 
@@ -389,9 +384,7 @@ def test_filled_series_cannot_be_written_in_the_case_file(tmp_path):
     """The SI series are read from the files, with their units; written inline (no units)
     they are refused with a one-line error naming the file key to use."""
     with pytest.raises(CaseErrors, match="give release_file instead"):
-        _tiny(tmp_path, lambda t: t.replace('concentration = "5 mg/L"',
-                                            'concentration = "5 mg/L"\nrelease_series = '
-                                            '[[0.0, 1.0]]'))
+        _tiny(tmp_path, _spill(options={"release_series": [[0.0, 1.0]]}))
 
 
 def test_mutual_user_law_is_solved_as_one_coupled_step(tmp_path):
@@ -403,15 +396,13 @@ def test_mutual_user_law_is_solved_as_one_coupled_step(tmp_path):
     ±0.15), A + B is conserved to 1e-10 and each budget closes ≤ 1e-6. (Stepped once, one
     species after another, the error fell at order 1 only and A + B lost 1.8 % at 20 steps,
     measured when this was built.)"""
-    sp = (f'[species.a]\nlimit = "1 mg/L"\ninitial_concentration = "{C0} kg/m^3"\n'
-          '[species.b]\nlimit = "1 mg/L"\n')
+    sp = [Species("a", initial_concentration=f"{C0} kg/m^3"), Species("b")]
     kf, kb = 0.3, 0.1
     a_eq = C0 * kb / (kf + kb)
     exact = a_eq + (C0 - a_eq) * math.exp(-(kf + kb) * 10.0)
     errs = []
     for steps in (20, 40, 80):
-        last = _batch(tmp_path, sp, '[user_reactions]\nfunction = "site_laws:a_b_reversible"\n'
-                      'species = ["a", "b"]\n', steps=steps)
+        last = _batch(tmp_path, sp, "site_laws:a_b_reversible", steps=steps)
         a, b = (float(last.concentration[x].mean()) for x in ("a", "b"))
         errs.append(abs(a - exact) / C0)
         assert a + b == pytest.approx(C0, rel=1e-10)
@@ -430,16 +421,11 @@ def test_stiff_coupled_law_converges_without_step_cuts(tmp_path):
     backward Euler recurrence (I − Δt J) cⁿ⁺¹ = cⁿ of the two-species linear system, solved
     by numpy (reference library); tolerance 1e-8 relative (10 × the sweep tolerance of
     1e-10 and the linear solves)."""
-    sp = (f'[species.a]\nlimit = "1 mg/L"\ninitial_concentration = "{C0} kg/m^3"\n'
-          '[species.b]\nlimit = "1 mg/L"\n')
+    sp = [Species("a", initial_concentration=f"{C0} kg/m^3"), Species("b")]
     (tmp_path / "site_laws.py").write_text(LAWS, encoding="utf-8")
-    text = box_case_text(length=20.0, width=10.0, layers=[("sand", -4.0, 5.0, 5.0)],
-                         heads={"west": 1.0, "east": 1.0}, cell=5.0, dz=2.0,
-                         end="2 d", step="1 d", species=sp)
-    text = text.replace('step = "', 'scheme = "backward_euler"\nstep = "') + \
-        '[user_reactions]\nfunction = "site_laws:a_b_fast"\nspecies = ["a", "b"]\n' + \
-        '[solver]\nlinear_solver = "direct"\n'
-    case = parse_case(text, base_dir=tmp_path)
+    case = batch_case(sp, time=Time(2.0, 1.0, scheme="backward_euler"), base_dir=tmp_path,
+                      sections={"user_reactions": {"function": "site_laws:a_b_fast",
+                                                   "species": ["a", "b"]}})
     site, flow = mesh_and_flow(case)
     last = list(run_transport(site, flow, case, base_dir=tmp_path))[-1]
     kf, kb = 30.0, 10.0  # per day
