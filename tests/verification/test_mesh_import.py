@@ -19,7 +19,9 @@ import meshio
 import numpy as np
 import pytest
 
+from fe3d.case.builder import with_changes
 from fe3d.case.load import load_case
+from fe3d.case.schema import Case
 from fe3d.errors import MeshError
 from fe3d.mesh.build import build_mesh
 from fe3d.post.vtk import write_mesh
@@ -28,17 +30,12 @@ pytestmark = pytest.mark.verification
 
 ROOT = Path(__file__).resolve().parents[2]
 TINY = ROOT / "cases" / "tiny" / "case.toml"
-TINY_TEXT = TINY.read_text(encoding="utf-8")
 
 
-def import_case(folder: Path, mesh_name: str) -> Path:
+def import_case(folder: Path, mesh_name: str) -> Case:
     """The tiny case (box 60 m × 20 m, ground 5 m, top_sand to 1 m, silt_base to -1 m) with
-    ``mesh.import_file`` set, written in ``folder``."""
-    text = TINY_TEXT.replace("[mesh]\n", f'[mesh]\nimport_file = "{mesh_name}"\n')
-    assert text != TINY_TEXT
-    path = folder / "case.toml"
-    path.write_text(text, encoding="utf-8")
-    return path
+    ``mesh.import_file`` set to ``mesh_name`` in ``folder``."""
+    return with_changes(load_case(TINY), mesh={"import_file": str(folder / mesh_name)})
 
 
 def tri_set(tri: np.ndarray) -> set[tuple[int, ...]]:
@@ -69,7 +66,7 @@ def test_fe3d_mesh_comes_back_through_the_import_route(built, tmp_path, name):
     from the case outline) give back the nodes (1e-12 m), tetrahedra, units and faces."""
     site, folder = built
     (tmp_path / name).write_bytes((folder / name).read_bytes())
-    back = build_mesh(load_case(import_case(tmp_path, name)))
+    back = build_mesh(import_case(tmp_path, name))
     assert back.info["imported_from"].endswith(name)
     np.testing.assert_allclose(back.points, site.points, atol=1e-12)
     assert back.n_cells == site.n_cells
@@ -117,7 +114,7 @@ def test_hand_made_meshio_mesh_with_named_units(tmp_path):
                        cell_data={"gmsh:physical": [phys], "gmsh:geometrical": [phys]},
                        field_data={"top_sand": np.array([7, 3]), "silt_base": np.array([9, 3])})
     meshio.write(tmp_path / "hand.msh", mesh, file_format="gmsh22", binary=False)
-    site = build_mesh(load_case(import_case(tmp_path, "hand.msh")))
+    site = build_mesh(import_case(tmp_path, "hand.msh"))
     assert site.n_cells == 6 * 2 * 3 * 6
     vol = site.cell_volumes()
     assert vol.min() > 0  # the reader orients every tetrahedron positively
@@ -140,7 +137,7 @@ def bad_import(tmp_path: Path, mesh: meshio.Mesh | None, name: str = "bad.msh",
         meshio.write(tmp_path / name, mesh, file_format=fmt, **(
             {"binary": False} if fmt == "gmsh22" else {}))
     with pytest.raises(MeshError) as info:
-        build_mesh(load_case(import_case(tmp_path, name)))
+        build_mesh(import_case(tmp_path, name))
     line = str(info.value)
     assert "\n" not in line
     assert line.startswith(f"mesh.import_file = '{tmp_path / name}': ")

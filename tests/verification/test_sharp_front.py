@@ -44,12 +44,11 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
-from conftest import box_case_text
 from scipy.integrate import quad
 from scipy.optimize import brentq
 from scipy.special import erfc, erfcx
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import Layer, Material, Solver, Source, Time, box_case, with_changes
 from fe3d.mesh.geometry import p1_gradients
 from fe3d.mesh.locate import locate_points
 from fe3d.pipeline import mesh_and_flow
@@ -99,21 +98,21 @@ def test_reference_satisfies_its_equation():
     assert ogata_banks(np.array([1.0]), 1e-3)[0] == pytest.approx(0.0, abs=1e-12)
 
 
-def _case_text(dt: float) -> str:
-    species = ('[species.tracer]\nlimit = "1 mg/L"\n'
-               '[[sources]]\nname = "inlet"\nspecies = "tracer"\nshape = "face_patch"\n'
-               f'face = "west"\nconcentration = "{C0} kg/m^3"\n')
-    return box_case_text(
-        length=LENGTH, width=WIDTH, layers=[("sand", -CELL, 10.0, 10.0)],
-        heads={"west": 1.0, "east": 0.0}, cell=CELL, dz=CELL, porosity=POROSITY,
-        alpha_l=ALPHA, alpha_t=ALPHA, end=f"{T_END / DAY} d", step=f"{dt / DAY} d",
-        species=species)
+def _case(dt: float, **solver: object):
+    """The column with steps of ``dt`` [s] and the ``solver`` keys given."""
+    return box_case(
+        length=LENGTH, width=WIDTH, cell=CELL, dz=CELL, heads={"west": 1.0, "east": 0.0},
+        layers=[Layer("sand", -CELL, Material(10.0, 10.0, porosity=POROSITY,
+                                              longitudinal_dispersivity=ALPHA,
+                                              transverse_dispersivity=ALPHA))],
+        sources=[Source("inlet", shape="face_patch", face="west", concentration=f"{C0} kg/m^3")],
+        time=Time(T_END / DAY, dt / DAY), solver=Solver(**solver) if solver else None)
 
 
 @pytest.fixture(scope="module")
 def column():
     """Mesh, steady flow and the centre-line sampler of the column (built once)."""
-    case = parse_case(_case_text(CELL / V))
+    case = _case(CELL / V)
     site, flow = mesh_and_flow(case)
     # the case gives v = K·(Δh/L)/θ = 10·(1/40)/0.25 = 1 m/d exactly
     np.testing.assert_allclose(flow.darcy_flux[0] / POROSITY, V, rtol=1e-9)
@@ -262,7 +261,7 @@ def test_hand_loop_is_the_discretisation_of_run_transport(column):
     (both solve the same systems directly; 1e-9 leaves room for round-off over 40 steps)."""
     site, flow, _ = column
     dt = 0.5 * CELL / V
-    case = parse_case(_case_text(dt) + '[solver]\nlinear_solver = "direct"\n')
+    case = _case(dt, linear_solver="direct")
     *_, last = run_transport(site, flow, case)
     mine = _run(site, flow, dt, shock=False)
     assert np.max(np.abs(last.concentration["tracer"] - mine["c"])) <= 1e-9 * C0
@@ -276,10 +275,9 @@ def test_run_transport_with_shock_capturing(column, courant):
     every output (linear target; the extra matrix has zero column sums, T15)."""
     site, flow, _ = column
     dt = courant * CELL / V
-    text = _case_text(dt) + '[solver]\nlinear_solver = "direct"\n'
     worst = {}
     for shock in (False, True):
-        case = parse_case(text + f"shock_capturing = {'true' if shock else 'false'}\n")
+        case = _case(dt, linear_solver="direct", shock_capturing=shock)
         snaps = list(run_transport(site, flow, case))
         for snap in snaps:
             assert snap.budgets["tracer"].relative_error <= 1e-8
@@ -305,7 +303,7 @@ def test_monotone_scheme_keeps_the_bounds(column, courant):
     outside that bound and only the bounds are checked."""
     site, flow, line = column
     dt = courant * CELL / V
-    case = parse_case(_case_text(dt) + '[solver]\nlinear_solver = "direct"\nmonotone = true\n')
+    case = _case(dt, linear_solver="direct", monotone=True)
     snaps = list(run_transport(site, flow, case))
     lo = min(float(s.concentration["tracer"].min()) for s in snaps)
     hi = max(float(s.concentration["tracer"].max()) for s in snaps)
@@ -334,10 +332,9 @@ def test_flux_limiting_sharpens_the_monotone_front(column, courant):
     xs, nodes, bary = line
     exact = ogata_banks(xs, T_END)
     err = {}
-    for name, extra in (("supg", ""), ("low", "monotone = true\n"),
-                        ("limited", "monotone = true\nflux_limiting = true\n")):
-        text = _case_text(dt) + '[solver]\nlinear_solver = "direct"\n' + extra
-        snaps = list(run_transport(site, flow, parse_case(text)))
+    for name, extra in (("supg", {}), ("low", {"monotone": True}),
+                        ("limited", {"monotone": True, "flux_limiting": True})):
+        snaps = list(run_transport(site, flow, _case(dt, linear_solver="direct", **extra)))
         if name != "supg":
             for snap in snaps:
                 c = snap.concentration["tracer"]
@@ -358,9 +355,9 @@ def test_flux_limiting_on_long_steps_keeps_the_low_order_value(column):
     blocked share (measured: all free nodes; 1 % at a nominal Courant number of 2, none at
     1) and its result is the low-order one to round-off."""
     site, flow, _ = column
-    text = _case_text(8.0 * CELL / V) + '[solver]\nlinear_solver = "direct"\nmonotone = true\n'
-    low = list(run_transport(site, flow, parse_case(text)))[-1]
-    lim = list(run_transport(site, flow, parse_case(text + "flux_limiting = true\n")))[-1]
+    case = _case(8.0 * CELL / V, linear_solver="direct", monotone=True)
+    low = list(run_transport(site, flow, case))[-1]
+    lim = list(run_transport(site, flow, with_changes(case, solver={"flux_limiting": True})))[-1]
     assert lim.diagnostics.limiting_blocked["tracer"] == 1.0
     np.testing.assert_allclose(lim.concentration["tracer"], low.concentration["tracer"],
                                rtol=0, atol=1e-12 * C0)

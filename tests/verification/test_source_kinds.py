@@ -7,41 +7,30 @@ c0 · 2^(−(t − start)/half-life) (the definition of a half-life).
 
 from __future__ import annotations
 
-from pathlib import Path
+import dataclasses
 
 import numpy as np
 import pytest
+from test_release_and_injection import SPILL, TINY
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import with_changes
 from fe3d.errors import CaseErrors
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
 pytestmark = pytest.mark.verification
-TINY = (Path(__file__).parents[2] / "cases" / "tiny" / "case.toml").read_text()
 DAY = 86400.0
-SPILL = '''[[sources]]
-name = "drum_spill"
-species = "tracer"
-shape = "box"
-concentration = "5 mg/L"
-x = ["8 m", "12 m"]
-y = ["8 m", "12 m"]
-z = ["2 m", "4 m"]
-stop = "200 d"
-'''
 
 
-def _run(source: str):
-    assert SPILL in TINY
-    case = parse_case(TINY.replace(SPILL, source))
+def _run(**spill: object):
+    """The tiny case with its spill source changed by the ``spill`` fields."""
+    case = with_changes(TINY, sources=[dataclasses.replace(SPILL, **spill)])
     site, flow = mesh_and_flow(case)
     return site, list(run_transport(site, flow, case))
 
 
 def test_mass_loading_injects_rate_times_duration():
-    src = SPILL.replace('concentration = "5 mg/L"', 'kind = "mass_loading"\nmass_rate = "2 g/d"')
-    _, snaps = _run(src)
+    _, snaps = _run(concentration=None, kind="mass_loading", mass_rate="2 g/d")
     final = snaps[-1].budgets["tracer"]
     assert final.source_input == pytest.approx(2e-3 * 200.0, rel=1e-12)  # kg
     for snap in snaps:
@@ -49,9 +38,7 @@ def test_mass_loading_injects_rate_times_duration():
 
 
 def test_initial_plume_is_there_at_the_start_and_conserved():
-    src = SPILL.replace('concentration = "5 mg/L"', 'kind = "initial_plume"\n'
-                        'concentration = "5 mg/L"').replace('stop = "200 d"\n', '')
-    site, snaps = _run(src)
+    site, snaps = _run(kind="initial_plume", stop=None)
     first = snaps[0]
     inside = (np.abs(site.points[0] - 10) <= 2) & (np.abs(site.points[1] - 10) <= 2) & \
         (site.points[2] >= 2) & (site.points[2] <= 4)
@@ -64,8 +51,7 @@ def test_initial_plume_is_there_at_the_start_and_conserved():
 
 
 def test_depleting_source_follows_its_half_life():
-    src = SPILL.replace('stop = "200 d"\n', 'depletion_half_life = "100 d"\n')
-    site, snaps = _run(src)
+    site, snaps = _run(stop=None, depletion_half_life="100 d")
     inside = (np.abs(site.points[0] - 10) <= 2 - 1e-9) & (np.abs(site.points[1] - 10) <= 2) & \
         (site.points[2] >= 2) & (site.points[2] <= 4)
     for snap in snaps[1:]:
@@ -75,6 +61,5 @@ def test_depleting_source_follows_its_half_life():
 
 
 def test_source_kind_needs_its_fields():
-    bad = SPILL.replace('concentration = "5 mg/L"', 'kind = "mass_loading"')
     with pytest.raises(CaseErrors, match=r"sources\[drum_spill\]\.mass_rate"):
-        parse_case(TINY.replace(SPILL, bad))
+        _run(concentration=None, kind="mass_loading")
