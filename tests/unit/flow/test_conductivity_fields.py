@@ -6,43 +6,22 @@ import meshio
 import numpy as np
 import pytest
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import Layer, Material, Species, Time, box_case
 from fe3d.errors import CaseError
 from fe3d.flow.conductivity import bedding_normal, conductivity_tensors
 from fe3d.flow.solve import unit_materials
 from fe3d.mesh.build import build_mesh
 
-CASE = """
-title = "field"
-[box]
-x = ["0 m", "40 m"]
-y = ["0 m", "20 m"]
-top = "0 m"
-[materials.sand]
-horizontal_conductivity = "10 m/d"
-vertical_conductivity = "1 m/d"
-porosity = 0.3
-bulk_density = "1700 kg/m^3"
-longitudinal_dispersivity = "1 m"
-transverse_dispersivity = "0.1 m"
-conductivity_file = "{file}"
-[[layers]]
-name = "sand"
-material = "sand"
-bottom = "-4 m"
-[[fixed_heads]]
-face = "west"
-head = "1 m"
-[species.t]
-limit = "1 mg/L"
-[time]
-end = "1 d"
-step = "1 d"
-[mesh]
-cell_size = "5 m"
-layer_cell_thickness = "2 m"
-"""
 DAY = 86400.0
+
+
+def _case(file: str):
+    """A 40 m × 20 m × 4 m sand box (K_h 10, K_v 1 m/d) whose conductivity comes from ``file``."""
+    return box_case(length=40.0, width=20.0, cell=5.0, dz=2.0, heads={"west": 1.0},
+                    layers=[Layer("sand", -4.0, Material(10.0, 1.0, porosity=0.3,
+                                                         bulk_density=1700.0,
+                                                         conductivity_file=file))],
+                    species=[Species("t")], time=Time(1.0, 1.0))
 
 
 def _tensors(case, site, base_dir):
@@ -52,7 +31,7 @@ def _tensors(case, site, base_dir):
 
 
 def test_vtk_cell_array_on_the_same_mesh_is_taken_exactly(tmp_path):
-    case = parse_case(CASE.format(file="k.vtu"))
+    case = _case("k.vtu")
     site = build_mesh(case)
     k = np.linspace(1.0, 50.0, site.n_cells)  # [m/d]
     meshio.write(tmp_path / "k.vtu", meshio.Mesh(site.points.T, [("tetra", site.cells.T)],
@@ -70,7 +49,7 @@ def test_point_field_is_interpolated_in_log_k(tmp_path):
             for z in (0.0, -4.0):
                 rows.append(f"{x},{y},{z},{np.exp(0.05 * x):.17g}")
     (tmp_path / "k.csv").write_text("\n".join(rows) + "\n")
-    case = parse_case(CASE.format(file="k.csv"))
+    case = _case("k.csv")
     site = build_mesh(case)
     _, principal = _tensors(case, site, tmp_path)
     xc = site.points[0, site.cells].mean(axis=0)
@@ -79,7 +58,7 @@ def test_point_field_is_interpolated_in_log_k(tmp_path):
 
 def test_bad_field_file_names_the_key(tmp_path):
     (tmp_path / "k.csv").write_text("x,y,z,k\n0,0,0,1\n")
-    case = parse_case(CASE.format(file="k.csv"))
+    case = _case("k.csv")
     site = build_mesh(case)
     with pytest.raises(CaseError, match=r"materials\.sand\.conductivity_file"):
         _tensors(case, site, tmp_path)

@@ -8,7 +8,8 @@ import meshio
 import numpy as np
 import pytest
 
-from fe3d.case.load import load_case, parse_case
+from fe3d.case.builder import Layer, with_changes
+from fe3d.case.load import load_case
 from fe3d.mesh.build import build_mesh
 from fe3d.post.vtk import write_mesh
 
@@ -41,9 +42,9 @@ def test_mesh_is_conforming_and_positive(tiny_mesh):
 
 def test_unit_volumes_match_layer_thickness_with_sloping_bottom():
     """A planar sloping bottom: each unit's volume equals ∫ thickness dA, exact for planes."""
-    text = TINY.read_text().replace('bottom = "1 m"', 'bottom = "1 m"\nbottom_gradient = '
-                                    '[0.01, -0.02]')
-    case = parse_case(text)
+    case = with_changes(load_case(TINY), layers=[
+        Layer("top_sand", 1.0, "sand", bottom_gradient=(0.01, -0.02)),
+        Layer("silt_base", -1.0, "silt")])
     site = build_mesh(case)
     vol = site.cell_volumes()
     (x0, x1), (y0, y1) = case.box.x, case.box.y

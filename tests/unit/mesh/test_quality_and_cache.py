@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from pathlib import Path
 
 import numpy as np
 import pytest
 
-from fe3d.case.load import load_case, parse_case
+from fe3d.case.builder import Source, with_changes
+from fe3d.case.load import load_case
 from fe3d.mesh.build import obtain_mesh
 from fe3d.mesh.io import mesh_inputs_hash
 from fe3d.mesh.quality import aspect_ratios, dihedral_angles
@@ -45,11 +47,10 @@ def test_mesh_is_reused_only_while_mesh_inputs_are_unchanged(tmp_path):
     np.testing.assert_array_equal(again.points, site.points)
     assert {k: v.shape for k, v in again.faces.items()} == \
         {k: v.shape for k, v in site.faces.items()}
-    text = TINY.read_text(encoding="utf-8")
     # a physics-only change keeps the mesh; a mesh-input change rebuilds it
-    physics = parse_case(text.replace('porosity = 0.3\n', 'porosity = 0.25\n'))
+    physics = with_changes(case, materials={"sand": {"porosity": 0.25}})
     assert mesh_inputs_hash(physics) == mesh_inputs_hash(case)
-    finer = parse_case(text.replace('cell_size = "8 m"', 'cell_size = "6 m"'))
+    finer = with_changes(case, mesh={"cell_size": "6 m"})
     assert mesh_inputs_hash(finer) != mesh_inputs_hash(case)
     _, reused = obtain_mesh(finer, [tmp_path], save_to=tmp_path)
     assert not reused
@@ -58,14 +59,19 @@ def test_mesh_is_reused_only_while_mesh_inputs_are_unchanged(tmp_path):
 def test_source_strength_and_well_rate_do_not_change_the_mesh_hash():
     """Only where sources and wells are shapes the mesh (their corners and screens are mesh
     nodes and levels); strengths, rates and kinds do not."""
-    text = TINY.read_text(encoding="utf-8")
-    well = ('\n[[wells]]\nname = "w"\nx = "30 m"\ny = "10 m"\nscreens = [["4 m", "2 m"]]\n'
-            'rate = "{rate} m^3/d"\n')
-    base = parse_case(text + well.format(rate=3))
-    stronger = parse_case(text.replace('concentration = "5 mg/L"', 'concentration = "9 mg/L"')
-                          + well.format(rate=7))
-    moved = parse_case(text.replace('x = ["8 m", "12 m"]', 'x = ["8 m", "13 m"]')
-                       + well.format(rate=3))
+    tiny = load_case(TINY)
+    spill = Source("drum_spill", concentration="5 mg/L", x=(8, 12), y=(8, 12), z=(2, 4),
+                   stop=200)
+
+    def with_well(rate: float, **source: object):
+        well = {"name": "w", "x": "30 m", "y": "10 m", "screens": [["4 m", "2 m"]],
+                "rate": f"{rate} m^3/d"}
+        return with_changes(tiny, wells=[well],
+                            sources=[dataclasses.replace(spill, **source)])
+
+    base = with_well(3)
+    stronger = with_well(7, concentration="9 mg/L")
+    moved = with_well(3, x=(8, 13))
     assert mesh_inputs_hash(stronger) == mesh_inputs_hash(base)
     assert mesh_inputs_hash(moved) != mesh_inputs_hash(base)
 
