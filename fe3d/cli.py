@@ -120,7 +120,8 @@ def _check(case_path: Path) -> int:
         t.add_column(col)
     for name, m in case.materials.items():
         t.add_row(name, f"{from_si(m.horizontal_conductivity, 'm/d'):.4g}",
-                  f"{from_si(m.k_vertical, 'm/d'):.4g}", f"{m.porosity:.3g}", f"{m.bulk_density:.4g}",
+                  f"{from_si(m.k_vertical, 'm/d'):.4g}", f"{m.porosity:.3g}",
+                  f"{m.bulk_density:.4g}",
                   f"{m.longitudinal_dispersivity:g}/{m.transverse_dispersivity:g}/"
                   f"{m.alpha_vertical:g}")
     con.print(t)
@@ -260,7 +261,8 @@ def _refine(case_path: Path, out: Path | None, *, ratio: float, levels: int,
     con = Console()
     con.print(f"refinement study of {case_path}: {levels} levels, ratio {ratio:g}; cell sizes "
               "and time step are divided by the same factor on each level, so the Courant "
-              "number stays fixed", highlight=False)
+              "number stays fixed (its largest value still varies with the smallest cells "
+              "the mesher makes)", highlight=False)
 
     def tell(lv: LevelResult) -> None:
         if lv.summary is None:

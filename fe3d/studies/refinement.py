@@ -504,7 +504,9 @@ def _write_reports(case: Case, study: RefinementStudy, out_dir: Path) -> None:
                      f"{v.verdict}{_detail(v)} |")
     lines += ["", "Peak, peak time and first time above the limit come from each level's "
               "summary; the last time above the limit is not in the run summary and is "
-              f"computed here from each level's `histories.csv` (8 significant digits, {tu}). "
+              f"computed here from each level's `histories.csv` (8 significant digits, {tu}); "
+              "a last time equal to the end of the simulated period means the receptor is "
+              "still above the limit at the end. "
               "A verdict other than converged means: refine further, or treat the spread "
               "between levels as part of the uncertainty.", ""]
     write_text_atomic(out_dir / "refinement.md", "\n".join(lines))
@@ -516,7 +518,8 @@ def _level_lines(study: RefinementStudy) -> list[str]:
     out = ["## Levels", "",
            "Each level divides every target cell size and the time step by the same factor, "
            "so the Courant number is the same on every level (the largest per level is "
-           "listed) while the grid Péclet number falls.", ""]
+           "listed; it varies with the smallest cells the mesher makes) while the grid Péclet "
+           "number falls.", ""]
     for lv in study.levels:
         s = lv.summary
         if s is None:

@@ -292,3 +292,44 @@ def test_run_pvd_lists_the_times_written(tiny_run: tuple[Path, str]) -> None:
     for name in files:
         assert (out / name).is_file(), name
     assert sorted(files) == sorted(p.name for p in out.glob("concentration_*.vtu"))
+
+
+# ------------------------------------------------------------------------------------ refine
+
+
+def test_refine_bad_options_exit_2_one_line_each(tmp_path: Path) -> None:
+    res = fe3d("refine", TINY, "--ratio", "0.5", "--levels", "9", "--threshold", "0",
+               cwd=tmp_path)
+    assert res.returncode == 2
+    lines = res.stderr.strip().splitlines()
+    assert [ln.split(" = ")[0] for ln in lines] == [
+        "error: --ratio", "error: --levels", "error: --threshold"]
+    assert "Traceback" not in res.stderr
+
+
+@pytest.mark.slow
+def test_refine_tiny_case_gives_a_verdict_per_quantity(tmp_path: Path) -> None:
+    """Three levels of the tiny case on the default (process-pool) executor: one line per
+    quantity with its values in display units and a verdict word, the Courant note, the
+    caution; the study folder holds the tables, the figure and every level's run."""
+    res = fe3d("refine", TINY, "--ratio", "1.25", "--out", tmp_path / "study", cwd=tmp_path)
+    assert res.returncode == 0, res.stderr
+    out = flat(res.stdout)
+    assert "so the Courant number stays fixed" in out
+    verdict = r"(converged|converging|oscillatory|diverging|unchanged|missing)"
+    assert re.search(r"BH-A tracer peak: [\d.e+-]+ → [\d.e+-]+ → [\d.e+-]+ mg/L → " + verdict,
+                     out), out
+    assert re.search(r"fence_well tracer first above limit: .* d → " + verdict, out), out
+    assert re.search(r"plume tracer largest extent: .* m → " + verdict, out), out
+    assert flat(CAUTION) in out
+    study = tmp_path / "study"
+    for name in ("refinement.csv", "refinement.md", "refinement_breakthrough.png"):
+        assert (study / name).stat().st_size > 0
+    for k in range(3):
+        assert (study / f"level_{k}" / "summary.json").is_file()
+    with (study / "refinement.csv").open(newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    units = {(r["quantity"], r["unit"]) for r in rows}
+    assert ("peak", "mg/L") in units
+    assert ("first above limit", "d") in units
+    assert ("largest extent", "m") in units
