@@ -6,7 +6,7 @@ import re
 from functools import lru_cache
 from typing import Any
 
-__all__ = ["DIMENSIONS", "format_quantity", "from_si", "to_si"]
+__all__ = ["DIMENSIONS", "from_si", "to_seconds", "to_si", "unit_is"]
 
 # dimension name → (pint dimensionality, an example shown in error messages)
 DIMENSIONS: dict[str, tuple[str, str]] = {
@@ -76,11 +76,6 @@ def from_si(value: float, unit: str) -> float:
     reg = _registry()
     q = reg.Quantity(1.0, unit)
     return float(value / q.to_base_units().magnitude)
-
-
-def format_quantity(value: float, unit: str, digits: int = 4) -> str:
-    """Format an SI value in ``unit`` with ``digits`` significant figures."""
-    return f"{from_si(value, unit):.{digits}g} {unit}"
 
 
 def unit_is(unit: str, dimension: str) -> bool:

@@ -1,4 +1,6 @@
-"""TOML text → validated :class:`Case`. Reads the file and nothing else; never evaluates text."""
+"""TOML text → validated :class:`Case`. Reads the case file and the data files it names
+(borehole picks, surface points, grids, release histories, plume points); never evaluates
+text."""
 
 from __future__ import annotations
 

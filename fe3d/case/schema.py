@@ -30,6 +30,7 @@ from fe3d.case.hydro import HeadDependent, Recharge, SpecifiedFlux, Well, hydro_
 from fe3d.case.schema_types import (
     Angle,
     Concentration,
+    Conductivity,
     Diffusivity,
     Fraction,
     Length,
@@ -38,11 +39,11 @@ from fe3d.case.schema_types import (
     Name,
     NonNegativeLength,
     Partition,
+    Porosity,
     PositiveConcentration,
     PositiveDensity,
     PositiveLength,
     PositiveTime,
-    PositiveVelocity,
     Range,
     ReactionRate,
     SecondOrderRate,
@@ -72,10 +73,8 @@ __all__ = [
 ]
 
 
-_Section = Section
 
-
-class ModelBox(_Section):
+class ModelBox(Section):
     """Axis-aligned model box: plan extent and a flat top; the base is the lowest layer bottom."""
 
     x: Range
@@ -83,12 +82,12 @@ class ModelBox(_Section):
     top: Length
 
 
-class Material(_Section):
+class Material(Section):
     """Hydraulic and transport properties of one hydrostratigraphic material."""
 
-    horizontal_conductivity: PositiveVelocity
-    vertical_conductivity: PositiveVelocity | None = None
-    porosity: Fraction
+    horizontal_conductivity: Conductivity
+    vertical_conductivity: Conductivity | None = None
+    porosity: Porosity
     bulk_density: PositiveDensity
     longitudinal_dispersivity: NonNegativeLength
     transverse_dispersivity: NonNegativeLength
@@ -123,7 +122,7 @@ class Material(_Section):
         return self.vertical_dispersivity
 
 
-class Layer(_Section):
+class Layer(Section):
     """A hydrostratigraphic unit between the previous layer's bottom (or the top) and its own."""
 
     name: Name
@@ -140,7 +139,7 @@ class Layer(_Section):
         return self.bottom + gx * (x - x0) + gy * (y - y0)
 
 
-class FixedHead(_Section):
+class FixedHead(Section):
     """A fixed hydraulic head on a named face of the model (a boundary edge name, top, bottom).
 
     Either ``head`` plus ``head_gradient`` · (point − ``reference_point``) (constant or
@@ -168,7 +167,7 @@ class FixedHead(_Section):
         return np.interp(points[2], z, h) + sum(g[i] * (points[i] - r[i]) for i in range(2))
 
 
-class Species(_Section):
+class Species(Section):
     """A dissolved species: sorption, decay and its compliance limit."""
 
     kd: Partition | dict[Name, Partition] = 0.0
@@ -229,7 +228,7 @@ def _per_material(value: float | dict[str, float], material: str) -> float:
     return value.get(material, 0.0) if isinstance(value, dict) else value
 
 
-class Source(_Section):
+class Source(Section):
     """A source in a box or on a patch of a boundary face (theory.md "Sources").
 
     ``kind``: ``fixed_concentration`` holds the nodes at ``concentration`` (optionally
@@ -313,7 +312,7 @@ def _series_mean(series: list[tuple[float, float]], t0: float, t1: float) -> flo
     return float(np.sum(0.5 * (vals[1:] + vals[:-1]) * np.diff(knots)) / (t1 - t0))
 
 
-class UserReactions(_Section):
+class UserReactions(Section):
     """Rate laws written by the user in Python (theory.md R10, T11b): ``function`` names
     ``"module:function"`` (imported from the case folder or the Python path, never evaluated
     from text); it receives the concentrations of ``species`` (rows in this order) and
@@ -323,7 +322,7 @@ class UserReactions(_Section):
     species: list[Name] = Field(min_length=1)
 
 
-class ObservationPoint(_Section):
+class ObservationPoint(Section):
     """A point (``z``) or a vertical well screen (``screen``) where concentrations are recorded."""
 
     name: Name
@@ -334,7 +333,7 @@ class ObservationPoint(_Section):
     kind: Literal["monitoring", "receptor"] = "monitoring"
 
 
-class TimeControl(_Section):
+class TimeControl(Section):
     """Simulated period, step and output times."""
 
     end: PositiveTime
@@ -348,7 +347,7 @@ class TimeControl(_Section):
     error_tolerance: Annotated[float, Field(gt=0.0, le=0.5)] = 0.01
 
 
-class MeshControl(_Section):
+class MeshControl(Section):
     """Target cell sizes [m]: plan size away from features, near features, and layer thickness."""
 
     cell_size: PositiveLength
@@ -366,7 +365,7 @@ class MeshControl(_Section):
         return max(self.layer_cell_thickness / 4.0, 0.05)
 
 
-class SolverControl(_Section):
+class SolverControl(Section):
     """Transport options."""
 
     supg: bool = True
@@ -381,7 +380,7 @@ class SolverControl(_Section):
     newton_max_iterations: Annotated[int, Field(ge=1, le=200)] = 30
 
 
-class OutputControl(_Section):
+class OutputControl(Section):
     """Where results go and in which units they are shown."""
 
     folder: str | None = None
@@ -389,7 +388,7 @@ class OutputControl(_Section):
     time_unit: Annotated[str, AfterValidator(_time_unit)] = "d"
 
 
-class Case(_Section):
+class Case(Section):
     """A whole validated case, every number in SI units."""
 
     title: str

@@ -36,6 +36,40 @@ def _fraction(x: float) -> float:
     return x
 
 
+CONDUCTIVITY_RANGE_M_PER_DAY = (1e-12, 1e5)
+"""Accepted hydraulic conductivity [m/d]. Natural materials span about 1e-9 m/d (unfractured
+igneous rock) to about 1e5 m/d (clean gravel, ~1 m/s): Freeze & Cherry 1979, Groundwater,
+Table 2.2, recalled from memory; the lower bound leaves three decades of margin. A value
+outside is taken as a unit slip (m/s written for m/d, cm/s for m/s)."""
+
+MIN_POROSITY = 1e-4
+"""Smallest accepted porosity [-] (common practice, no source: the effective porosity of
+fractured rock is rarely set lower, and below it the pore velocity q/θ grows without bound)."""
+
+
+def _conductivity_range(x: float) -> float:
+    lo, hi = (v / 86400.0 for v in CONDUCTIVITY_RANGE_M_PER_DAY)
+    if not lo <= x <= hi:
+        msg = (f"must be between {CONDUCTIVITY_RANGE_M_PER_DAY[0]:g} and "
+               f"{CONDUCTIVITY_RANGE_M_PER_DAY[1]:g} m/d (here {x * 86400.0:.3g} m/d; natural "
+               "materials span about 1e-9 m/d, unfractured rock, to 1e5 m/d, clean gravel: "
+               "Freeze & Cherry 1979, Groundwater, Table 2.2); check the unit")
+        raise ValueError(msg)
+    return x
+
+
+def _usable_porosity(x: float) -> float:
+    if x < MIN_POROSITY:
+        msg = (f"must be at least {MIN_POROSITY:g} (common practice, no source: below it the "
+               "pore velocity q/θ grows without bound)")
+        raise ValueError(msg)
+    if x == 1.0:
+        msg = ("must be below 1: a porosity of 1 leaves no solids, yet the material has a "
+               "bulk_density")
+        raise ValueError(msg)
+    return x
+
+
 def _concentration_unit(u: str) -> str:
     if not unit_is(u, "concentration"):
         msg = "must be a mass-per-volume unit such as 'mg/L', 'ug/L' or 'kg/m^3'"
@@ -62,6 +96,9 @@ PositiveDensity = Annotated[float, _quantity("density"), AfterValidator(_positiv
 Partition = Annotated[float, _quantity("specific_volume"), AfterValidator(_non_negative)]
 Diffusivity = Annotated[float, _quantity("diffusivity"), AfterValidator(_non_negative)]
 Fraction = Annotated[float, AfterValidator(_fraction)]
+Porosity = Annotated[float, AfterValidator(_fraction), AfterValidator(_usable_porosity)]
+Conductivity = Annotated[float, _quantity("velocity"), AfterValidator(_positive),
+                         AfterValidator(_conductivity_range)]
 Name = Annotated[str, Field(pattern=r"^[A-Za-z][A-Za-z0-9_\-]*$", max_length=64)]
 Range = tuple[Length, Length]
 PlanPoint = tuple[Length, Length]
