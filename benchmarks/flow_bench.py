@@ -21,78 +21,34 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 from fe3d.linalg import FLOW_TOLERANCE as FLOW_TOL  # noqa: E402
 
-CASE = """
-title = "flow benchmark"
-[box]
-x = ["0 m", "1000 m"]
-y = ["0 m", "1000 m"]
-top = "0 m"
-[materials.sand]
-horizontal_conductivity = "10 m/d"
-vertical_conductivity = "1 m/d"
-porosity = 0.3
-bulk_density = "1650 kg/m^3"
-longitudinal_dispersivity = "5 m"
-transverse_dispersivity = "0.5 m"
-[materials.clay]
-horizontal_conductivity = "0.01 m/d"
-vertical_conductivity = "0.001 m/d"
-porosity = 0.4
-bulk_density = "1550 kg/m^3"
-longitudinal_dispersivity = "1 m"
-transverse_dispersivity = "0.1 m"
-[materials.gravel]
-horizontal_conductivity = "60 m/d"
-porosity = 0.25
-bulk_density = "1800 kg/m^3"
-longitudinal_dispersivity = "5 m"
-transverse_dispersivity = "0.5 m"
-[[layers]]
-name = "sand"
-material = "sand"
-bottom = "-8 m"
-[[layers]]
-name = "clay"
-material = "clay"
-bottom = "-12 m"
-bottom_gradient = [0.002, 0.0]
-[[layers]]
-name = "gravel"
-material = "gravel"
-bottom = "-25 m"
-[[fixed_heads]]
-face = "west"
-head = "2 m"
-[[fixed_heads]]
-face = "east"
-head = "0 m"
-[[recharge]]
-name = "rain"
-rate = "200 mm/yr"
-[[wells]]
-name = "PW"
-x = "600 m"
-y = "500 m"
-screens = [["-14 m", "-24 m"]]
-rate = "800 m^3/d"
-[species.tracer]
-limit = "1 mg/L"
-[time]
-end = "1 d"
-step = "1 d"
-[mesh]
-cell_size = "{h} m"
-layer_cell_thickness = "{dz} m"
-"""
+
+def flow_case(h: float, dz: float) -> Any:
+    """The layered 1 km × 1 km site (sand / clay / gravel) with plan cell ``h`` and layer cell
+    thickness ``dz`` [m]: fixed heads west and east, recharge and a pumping well."""
+    from fe3d.case.builder import Layer, Material, Time, box_case
+
+    sand = Material(10.0, 1.0, porosity=0.3, bulk_density=1650.0, longitudinal_dispersivity=5.0,
+                    transverse_dispersivity=0.5)
+    clay = Material(0.01, 0.001, porosity=0.4, bulk_density=1550.0)
+    gravel = Material(60.0, porosity=0.25, bulk_density=1800.0, longitudinal_dispersivity=5.0,
+                      transverse_dispersivity=0.5)
+    return box_case(
+        title="flow benchmark", length=1000.0, width=1000.0, cell=h, dz=dz,
+        heads={"west": 2.0, "east": 0.0}, time=Time(1.0, 1.0),
+        layers=[Layer("sand", -8.0, sand),
+                Layer("clay", -12.0, clay, bottom_gradient=(0.002, 0.0)),
+                Layer("gravel", -25.0, gravel)],
+        sections={"recharge": [{"name": "rain", "rate": "200 mm/yr"}],
+                  "wells": [{"name": "PW", "x": "600 m", "y": "500 m",
+                             "screens": [["-14 m", "-24 m"]], "rate": "800 m^3/d"}]})
 
 
 def one(h: float, dz: float) -> dict[str, float]:
     import fe3d.flow.solve as flow_solve
-    from fe3d.case.load import parse_case
     from fe3d.linalg import solve_spd
     from fe3d.mesh.build import build_mesh
 
-    case = parse_case(CASE.format(h=h, dz=dz))
+    case = flow_case(h, dz)
     t = time.perf_counter()
     site = build_mesh(case)
     t_mesh = time.perf_counter() - t

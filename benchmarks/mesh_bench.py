@@ -13,75 +13,40 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 
-CASE = """
-title = "mesh benchmark (invented site)"
-[boundary]
-vertices = [["0 m", "0 m"], ["900 m", "-50 m"], ["1100 m", "400 m"], ["600 m", "650 m"],
-            ["-50 m", "500 m"]]
-edge_names = ["upgradient", "south_edge", "stream", "north_edge", "west_edge"]
-[stratigraphy]
-borehole_file = "boreholes.csv"
-interpolation = "linear"
-min_thickness = "0.3 m"
-[materials.sand]
-horizontal_conductivity = "10 m/d"
-porosity = 0.3
-bulk_density = "1600 kg/m^3"
-longitudinal_dispersivity = "1 m"
-transverse_dispersivity = "0.1 m"
-[[layers]]
-name = "topsoil_sand"
-material = "sand"
-sublayers = 4
-[[layers]]
-name = "silt"
-material = "sand"
-sublayers = 3
-[[layers]]
-name = "sand"
-material = "sand"
-sublayers = 6
-[[layers]]
-name = "gravel"
-material = "sand"
-sublayers = 4
-[[lenses]]
-name = "peat_lens"
-material = "sand"
-host = "sand"
-polygon = [["400 m", "200 m"], ["550 m", "220 m"], ["520 m", "330 m"], ["380 m", "300 m"]]
-top = "4 m"
-bottom = "1 m"
-[[refinement_lines]]
-name = "stream_bank"
-points = [["900 m", "-50 m"], ["1100 m", "400 m"]]
-cell_size = "{fine} m"
-radius = "10 m"
-[[wells]]
-name = "PW-1"
-x = "700 m"
-y = "300 m"
-screens = [["4 m", "-3 m"]]
-rate = "200 m^3/d"
-[[fixed_heads]]
-face = "upgradient"
-head = "9 m"
-[species.tracer]
-limit = "1 mg/L"
-[time]
-end = "10 d"
-step = "1 d"
-[mesh]
-cell_size = "{cell} m"
-fine_cell_size = "{fine} m"
-fine_zone_radius = "20 m"
-layer_cell_thickness = "1 m"
-"""
+
+
+def site_case(folder: Path, cell: float, fine: float) -> Any:
+    """The invented polygon site on the boreholes in ``folder``: four sand units (one
+    pinching out), a lens, a refinement line along the stream edge and a pumping well, with
+    plan cells ``cell`` and ``fine`` [m]."""
+    from fe3d.case.builder import Layer, Material, Mesh, build_case
+
+    sand = Material(porosity=0.3, name="sand")
+    vertices = [["0 m", "0 m"], ["900 m", "-50 m"], ["1100 m", "400 m"], ["600 m", "650 m"],
+         ["-50 m", "500 m"]]
+    sections = {
+        "boundary": {"vertices": vertices, "edge_names": ["upgradient", "south_edge", "stream",
+                                                   "north_edge", "west_edge"]},
+        "stratigraphy": {"borehole_file": "boreholes.csv", "interpolation": "linear",
+                         "min_thickness": "0.3 m"},
+        "lenses": [{"name": "peat_lens", "material": "sand", "host": "sand", "top": "4 m",
+                    "bottom": "1 m", "polygon": [["400 m", "200 m"], ["550 m", "220 m"],
+                                                 ["520 m", "330 m"], ["380 m", "300 m"]]}],
+        "refinement_lines": [{"name": "stream_bank", "points": vertices[1:3],
+                              "cell_size": f"{fine} m", "radius": "10 m"}],
+        "wells": [{"name": "PW-1", "x": "700 m", "y": "300 m", "screens": [["4 m", "-3 m"]],
+                   "rate": "200 m^3/d"}]}
+    layers = [Layer(name, None, sand, sublayers=n) for name, n in
+              (("topsoil_sand", 4), ("silt", 3), ("sand", 6), ("gravel", 4))]
+    return build_case(title="mesh benchmark (invented site)", layers=layers,
+                      heads={"upgradient": 9.0}, sections=sections, base_dir=folder,
+                      mesh=Mesh(cell, 1.0, fine_cell_size=fine, fine_zone_radius=20.0))
 
 
 def _boreholes() -> str:
@@ -100,14 +65,12 @@ def _boreholes() -> str:
 
 
 def run(cell: float, fine: float) -> dict[str, float]:
-    from fe3d.case.load import load_case
     from fe3d.mesh.build import build_mesh
 
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         (folder / "boreholes.csv").write_text(_boreholes(), encoding="utf-8")
-        (folder / "case.toml").write_text(CASE.format(cell=cell, fine=fine), encoding="utf-8")
-        case = load_case(folder / "case.toml")
+        case = site_case(folder, cell, fine)
         t = time.perf_counter()
         site = build_mesh(case)
         wall = time.perf_counter() - t

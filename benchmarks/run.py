@@ -37,52 +37,21 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 DAY = 86400.0
 
-CASE = """
-title = "transport benchmark"
-site = "Harrow Flats test box (invented)"
-[box]
-x = ["0 m", "400 m"]
-y = ["0 m", "200 m"]
-top = "10 m"
-[materials.sand]
-horizontal_conductivity = "12 m/d"
-vertical_conductivity = "3 m/d"
-porosity = 0.3
-bulk_density = "1600 kg/m^3"
-longitudinal_dispersivity = "2 m"
-transverse_dispersivity = "0.2 m"
-[materials.silt]
-horizontal_conductivity = "0.8 m/d"
-vertical_conductivity = "0.2 m/d"
-porosity = 0.35
-bulk_density = "1500 kg/m^3"
-longitudinal_dispersivity = "1 m"
-transverse_dispersivity = "0.1 m"
-[[layers]]
-name = "sand"
-material = "sand"
-bottom = "2 m"
-[[layers]]
-name = "silt"
-material = "silt"
-bottom = "-2 m"
-[[fixed_heads]]
-face = "west"
-head = "9.5 m"
-[[fixed_heads]]
-face = "east"
-head = "8.3 m"
-[species.solvent]
-kd = "0.1 L/kg"
-half_life = "3 yr"
-limit = "5 ug/L"
-[time]
-end = "10 d"
-step = "1 d"
-[mesh]
-cell_size = "{h} m"
-layer_cell_thickness = "{dz} m"
-"""
+
+
+def site_case(h: float, dz: float) -> Any:
+    """The Harrow Flats test box (sand over silt, fixed heads west and east, one solvent)
+    with plan cell ``h`` and layer cell thickness ``dz`` [m]."""
+    from fe3d.case.builder import Layer, Material, Species, box_case
+
+    sand = Material(12.0, 3.0, porosity=0.3, longitudinal_dispersivity=2.0,
+                    transverse_dispersivity=0.2)
+    silt = Material(0.8, 0.2, porosity=0.35, bulk_density=1500.0)
+    return box_case(title="transport benchmark", length=400.0, width=200.0, top=10.0,
+                    cell=h, dz=dz, heads={"west": 9.5, "east": 8.3},
+                    layers=[Layer("sand", 2.0, sand), Layer("silt", -2.0, silt)],
+                    species=[Species("solvent", limit="5 ug/L", kd=0.1, half_life="3 yr")],
+                    sections={"site": "Harrow Flats test box (invented)"})
 
 SOURCE_BOX = ((40.0, 60.0), (90.0, 110.0), (6.0, 9.0))
 """Fixed-concentration source [m] (x, y, z ranges), held at C0."""
@@ -112,11 +81,10 @@ def site_stage(h: float, dz: float, folder: Path) -> dict[str, Any]:
     transport stage, which runs in a fresh process (its peak memory is that of one species'
     transport with the mesh and flow held, not of the mesher's and flow solver's
     temporaries)."""
-    from fe3d.case.load import parse_case
     from fe3d.flow.solve import solve_flow
     from fe3d.mesh.build import build_mesh
 
-    case = parse_case(CASE.format(h=h, dz=dz))
+    case = site_case(h, dz)
     t = time.perf_counter()
     site = build_mesh(case)
     t_mesh = time.perf_counter() - t
@@ -136,7 +104,6 @@ def site_stage(h: float, dz: float, folder: Path) -> dict[str, Any]:
 
 def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
 
-    from fe3d.case.load import parse_case
     from fe3d.flow.solve import unit_materials
     from fe3d.linalg import LinearSolver, solve_with_preconditioner
     from fe3d.mesh.site_mesh import SiteMesh
@@ -146,7 +113,7 @@ def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
     from fe3d.transport.dispersion import dispersion_tensor
     from fe3d.transport.stabilization import supg_tau
 
-    case = parse_case(CASE.format(h=h, dz=dz))
+    case = site_case(h, dz)
     z = np.load(folder / "site.npz")
     site = SiteMesh(points=z["points"], cells=z["cells"], cell_layer=z["cell_layer"],
                     layer_names=tuple(str(x) for x in z["layer_names"]), faces={})

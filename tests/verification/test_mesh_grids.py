@@ -19,7 +19,8 @@ import numpy as np
 import pytest
 from scipy.interpolate import RegularGridInterpolator
 
-from fe3d.case.load import load_case
+from fe3d.case.builder import Layer, Material, box_case
+from fe3d.case.schema import Case
 from fe3d.errors import CaseErrors
 from fe3d.mesh.build import build_mesh
 from fe3d.mesh.stratigraphy import grid_surface, unit_surfaces
@@ -27,39 +28,7 @@ from fe3d.mesh.stratigraphy import grid_surface, unit_surfaces
 pytestmark = pytest.mark.verification
 
 # invented site "Hollin Brook yard": a 100 m × 60 m box
-CASE = """
-title = "grid surfaces check"
-[box]
-x = ["0 m", "100 m"]
-y = ["0 m", "60 m"]
-top = "12 m"
-[stratigraphy]
-grid_files = {{ ground = "ground.csv", upper = "upper_base.csv" }}
-[materials.sand]
-horizontal_conductivity = "10 m/d"
-porosity = 0.3
-bulk_density = "1600 kg/m^3"
-longitudinal_dispersivity = "1 m"
-transverse_dispersivity = "0.1 m"
-[[layers]]
-name = "upper"
-material = "sand"
-[[layers]]
-name = "lower"
-material = "sand"
-bottom = "-8 m"
-[[fixed_heads]]
-face = "west"
-head = "9 m"
-[species.tracer]
-limit = "1 mg/L"
-[time]
-end = "10 d"
-step = "1 d"
-[mesh]
-cell_size = "{cell} m"
-layer_cell_thickness = "3 m"
-"""
+SAND = Material(porosity=0.3, name="sand")
 
 GX = np.array([-5.0, 20.0, 55.0, 80.0, 105.0])  # uneven spacing, beyond the box
 GY = np.array([-2.0, 25.0, 62.0])
@@ -74,13 +43,20 @@ def grid_text(x: np.ndarray, y: np.ndarray, z: np.ndarray, *, flip_y: bool = Fal
     return "# invented elevations, metres\n" + "\n".join(rows) + "\n"
 
 
-def write_case(folder: Path, ground: np.ndarray, upper: np.ndarray, *, cell: float = 9.0,
-               x: np.ndarray = GX, y: np.ndarray = GY) -> Path:
+def write_grids(folder: Path, ground: np.ndarray, upper: np.ndarray, *, x: np.ndarray = GX,
+                y: np.ndarray = GY) -> None:
     (folder / "ground.csv").write_text(grid_text(x, y, ground, flip_y=True), encoding="utf-8")
     (folder / "upper_base.csv").write_text(grid_text(x, y, upper), encoding="utf-8")
-    path = folder / "case.toml"
-    path.write_text(CASE.format(cell=cell), encoding="utf-8")
-    return path
+
+
+def grid_case(folder: Path, *, cell: float = 9.0, **grid_files: str) -> Case:
+    """The box with the ground and the upper unit's base from the grid files in ``folder``
+    (and any further ``grid_files``)."""
+    grids = {"ground": "ground.csv", "upper": "upper_base.csv", **grid_files}
+    return box_case(title="grid surfaces check", length=100.0, width=60.0, top=12.0,
+                    cell=cell, dz=3.0, heads={"west": 9.0},
+                    layers=[Layer("upper", None, SAND), Layer("lower", -8.0, SAND)],
+                    sections={"stratigraphy": {"grid_files": grids}}, base_dir=folder)
 
 
 def random_grids(seed: int = 3) -> tuple[np.ndarray, np.ndarray]:
@@ -108,7 +84,8 @@ def test_mesh_surfaces_follow_the_grid_files(tmp_path):
     unit's base equal scipy's bilinear interpolant of the files (1e-9 m); at the grid nodes
     inside the box the case's surfaces equal the file values (1 mm)."""
     ground, upper = random_grids()
-    case = load_case(write_case(tmp_path, ground, upper))
+    write_grids(tmp_path, ground, upper)
+    case = grid_case(tmp_path)
     site = build_mesh(case)
     xy, s = site.info["plan_xy"], site.info["surfaces"]
     for k, z in ((0, ground), (1, upper)):
@@ -129,7 +106,8 @@ def test_planar_grids_give_the_analytic_volume(tmp_path):
     gx, gy = np.meshgrid(GX, GY)
     ground = 10.0 + 0.01 * gx - 0.02 * gy
     upper = 2.0 + 0.005 * gx + 0.01 * gy
-    site = build_mesh(load_case(write_case(tmp_path, ground, upper, cell=12.0)))
+    write_grids(tmp_path, ground, upper)
+    site = build_mesh(grid_case(tmp_path, cell=12.0))
     vol = site.cell_volumes()
     got = {n: float(vol[site.cell_layer == i].sum()) for i, n in enumerate(site.layer_names)}
     g_c, u_c = 10.0 + 0.5 - 0.6, 2.0 + 0.25 + 0.3
@@ -137,27 +115,27 @@ def test_planar_grids_give_the_analytic_volume(tmp_path):
     assert got["lower"] == pytest.approx(6000.0 * (u_c + 8.0), rel=1e-9)
 
 
-def one_error(path: Path) -> str:
+def one_error(folder: Path, **grid_files: str) -> str:
     with pytest.raises(CaseErrors) as info:
-        load_case(path)
+        grid_case(folder, **grid_files)
     assert len(info.value.errors) == 1, [e.line() for e in info.value.errors]
     return info.value.errors[0].line()
 
 
 def test_grid_not_covering_the_boundary(tmp_path):
     ground, upper = random_grids()
-    path = write_case(tmp_path, ground, upper)
+    write_grids(tmp_path, ground, upper)
     x = GX.copy()
     x[-1] = 90.0  # the upper unit's grid stops 10 m short of the east edge
     (tmp_path / "upper_base.csv").write_text(grid_text(x, GY, upper), encoding="utf-8")
-    line = one_error(path)
+    line = one_error(tmp_path)
     assert line.startswith("stratigraphy.grid_files.upper = 'x -5–90 m, y -2–62 m': the grid "
                            "must cover the model boundary (vertex x = 100 m")
 
 
 def test_bad_grid_files(tmp_path):
     ground, upper = random_grids()
-    path = write_case(tmp_path, ground, upper)
+    write_grids(tmp_path, ground, upper)
     good = (tmp_path / "upper_base.csv").read_text(encoding="utf-8")
     lines = good.splitlines()
     cases = {
@@ -174,20 +152,15 @@ def test_bad_grid_files(tmp_path):
     }
     for what, (text, expected) in cases.items():
         (tmp_path / "upper_base.csv").write_text("\n".join(text) + "\n", encoding="utf-8")
-        line = one_error(path)
+        line = one_error(tmp_path)
         assert expected in line, (what, line)
         assert line.startswith("stratigraphy.grid_files.upper"), (what, line)
 
 
 def test_grid_for_a_unit_with_a_bottom_or_no_unit(tmp_path):
     ground, upper = random_grids()
-    path = write_case(tmp_path, ground, upper)
-    text = path.read_text(encoding="utf-8")
-    path.write_text(text.replace('upper = "upper_base.csv"', 'upper = "upper_base.csv", '
-                                 'lower = "upper_base.csv"'), encoding="utf-8")
-    assert one_error(path).startswith("stratigraphy.grid_files.lower = 'lower': "
-                                      "layers[lower] has a bottom")
-    path.write_text(text.replace('upper = "upper_base.csv"', 'upper = "upper_base.csv", '
-                                 'gravel = "upper_base.csv"'), encoding="utf-8")
-    assert one_error(path).startswith("stratigraphy.grid_files.gravel = 'gravel': must be "
-                                      "'ground' or a unit")
+    write_grids(tmp_path, ground, upper)
+    assert one_error(tmp_path, lower="upper_base.csv").startswith(
+        "stratigraphy.grid_files.lower = 'lower': layers[lower] has a bottom")
+    assert one_error(tmp_path, gravel="upper_base.csv").startswith(
+        "stratigraphy.grid_files.gravel = 'gravel': must be 'ground' or a unit")

@@ -23,7 +23,9 @@ import numpy as np
 import pytest
 from scipy.interpolate import LinearNDInterpolator, RBFInterpolator
 
+from fe3d.case.builder import Layer, Material, Mesh, build_case
 from fe3d.case.load import load_case
+from fe3d.case.schema import Case
 from fe3d.errors import CaseErrors, MeshError
 from fe3d.mesh.build import build_mesh
 from fe3d.mesh.io import mesh_inputs_hash, read_site_mesh, save_cached
@@ -35,58 +37,24 @@ pytestmark = pytest.mark.verification
 PENTAGON = [(0.0, 0.0), (120.0, 0.0), (150.0, 70.0), (60.0, 110.0), (-10.0, 60.0)]
 EDGES = ["upgradient", "south_fence", "creek", "north_fence", "west_fence"]
 
-CASE = """
-title = "stratigraphy check"
-[boundary]
-vertices = {vertices}
-edge_names = {edges}
-[stratigraphy]
-borehole_file = "boreholes.csv"
-interpolation = "{method}"
-min_thickness = "{tmin} m"
-[materials.sand]
-horizontal_conductivity = "10 m/d"
-porosity = 0.3
-bulk_density = "1600 kg/m^3"
-longitudinal_dispersivity = "1 m"
-transverse_dispersivity = "0.1 m"
-[[layers]]
-name = "upper"
-material = "sand"
-[[layers]]
-name = "middle"
-material = "sand"
-[[layers]]
-name = "lower"
-material = "sand"
-{extra}
-[[fixed_heads]]
-face = "upgradient"
-head = "9 m"
-[[fixed_heads]]
-face = "creek"
-head = "8 m"
-[species.tracer]
-limit = "1 mg/L"
-[time]
-end = "10 d"
-step = "1 d"
-[mesh]
-cell_size = "{cell} m"
-layer_cell_thickness = "2 m"
-"""
+SAND = Material(porosity=0.3, name="sand")
 
 
 def write_case(folder: Path, rows: list[str], *, method: str = "linear", tmin: float = 0.0,
-               extra: str = "", cell: float = 12.0, vertices=PENTAGON, edges=EDGES) -> Path:
-    verts = "[" + ", ".join(f'["{x} m", "{y} m"]' for x, y in vertices) + "]"
-    names = "[" + ", ".join(f'"{e}"' for e in edges) + "]"
+               cell: float = 12.0, vertices=PENTAGON, edges=EDGES, mesh: Mesh | None = None,
+               **sections: object) -> Case:
+    """Write the borehole ``rows`` to ``folder`` and build the three-unit site on them
+    (``sections``: lenses, wells, refinement lines as the case file writes them)."""
     (folder / "boreholes.csv").write_text(
         "borehole,x,y,ground,upper,middle,lower\n" + "\n".join(rows) + "\n", encoding="utf-8")
-    path = folder / "case.toml"
-    path.write_text(CASE.format(vertices=verts, edges=names, method=method, tmin=tmin,
-                                extra=extra, cell=cell), encoding="utf-8")
-    return path
+    geometry = {"boundary": {"vertices": [[f"{x} m", f"{y} m"] for x, y in vertices],
+                             "edge_names": list(edges)},
+                "stratigraphy": {"borehole_file": "boreholes.csv", "interpolation": method,
+                                 "min_thickness": f"{tmin} m"}}
+    return build_case(title="stratigraphy check", heads={"upgradient": 9.0, "creek": 8.0},
+                      layers=[Layer(name, None, SAND) for name in ("upper", "middle", "lower")],
+                      mesh=mesh or Mesh(cell, 2.0), sections={**geometry, **sections},
+                      base_dir=folder)
 
 
 # boreholes at the five vertices plus three inside: the data hull is the whole boundary
@@ -129,7 +97,7 @@ def test_surfaces_honour_picks_and_reference_interpolant(tmp_path, method):
     """At every borehole the surfaces equal the picks within 1 mm; at every plan node they
     equal scipy's interpolant of the same picks (1e-6 m)."""
     rows = irregular_rows()
-    site = build_mesh(load_case(write_case(tmp_path, rows, method=method)))
+    site = build_mesh(write_case(tmp_path, rows, method=method))
     xy_p, z_p = picks(rows)
     s = site.info["surfaces"]
     nodes = site.info["borehole_nodes"]
@@ -153,20 +121,18 @@ def test_surfaces_honour_picks_and_reference_interpolant(tmp_path, method):
 
 
 def lens_block(name: str, *, top: str | None = None, bottom: str | None = None,
-               picks: str | None = None,
+               picks: list[dict[str, str]] | None = None,
                polygon: tuple[tuple[float, float], ...] = ((40, 30), (80, 30), (80, 60),
-                                                           (40, 60))) -> str:
-    """TOML of one lens in the unit 'lower' (sand), by elevations or by picks."""
-    poly = ", ".join(f'["{x} m", "{y} m"]' for x, y in polygon)
-    levels = f"picks = {picks}\n" if picks is not None else \
-        f'top = "{top}"\nbottom = "{bottom}"\n'
-    return (f'\n[[lenses]]\nname = "{name}"\nmaterial = "sand"\nhost = "lower"\n'
-            f"polygon = [{poly}]\n{levels}")
+                                                           (40, 60))) -> dict[str, object]:
+    """One lens in the unit 'lower' (sand), by elevations or by picks."""
+    levels = {"picks": picks} if picks is not None else {"top": top, "bottom": bottom}
+    return {"name": name, "material": "sand", "host": "lower",
+            "polygon": [[f"{x} m", f"{y} m"] for x, y in polygon], **levels}
 
 def test_unit_volume_equals_integral_of_thickness(tmp_path):
     """Surfaces linear on each plan triangle: cell volumes per unit = Σ area × mean thickness
     (truncated prism, CRC tables), ≤ 1e-9 relative."""
-    site = build_mesh(load_case(write_case(tmp_path, irregular_rows())))
+    site = build_mesh(write_case(tmp_path, irregular_rows()))
     got, ref = unit_volumes(site), prism_volumes(site)
     for name in ("upper", "middle", "lower"):
         assert got[name] == pytest.approx(ref[name], rel=1e-9)
@@ -181,7 +147,7 @@ def test_planar_picks_give_the_analytic_volume(tmp_path):
     for i, (x, y) in enumerate(BOREHOLE_XY):
         z = [c + gx * x + gy * y for c, gx, gy in planes]
         rows.append(f"BH-{i + 1},{x},{y}," + ",".join(f"{v!r}" for v in z))
-    site = build_mesh(load_case(write_case(tmp_path, rows)))
+    site = build_mesh(write_case(tmp_path, rows))
     v = PENTAGON
     a = 0.5 * sum(v[i][0] * v[(i + 1) % 5][1] - v[(i + 1) % 5][0] * v[i][1] for i in range(5))
     cx = sum((v[i][0] + v[(i + 1) % 5][0]) * (v[i][0] * v[(i + 1) % 5][1]
@@ -205,7 +171,7 @@ def test_pinch_out_and_crossing_are_corrected_and_reported(tmp_path):
         cols[i][5] = ""  # middle absent
     cols[3][5] = f"{float(cols[3][4]) + 1.0:.4f}"  # middle base 1 m above upper base
     rows = [",".join(c) for c in cols]
-    site = build_mesh(load_case(write_case(tmp_path, rows, tmin=0.3)))
+    site = build_mesh(write_case(tmp_path, rows, tmin=0.3))
     assert site.cell_volumes().min() > 0
     rules = site.info["surface_rules"]
     kinds = {(r["unit"], r["rule"]) for r in rules}
@@ -226,25 +192,13 @@ def test_refinement_near_well_and_stream_line(tmp_path):
     and along a refinement line is at most its target; far away edges reach at least half
     the background size (gmsh sizes are targets: the 0.5× bound is common practice, no
     source)."""
-    extra = """
-[[wells]]
-name = "PW-1"
-x = "60 m"
-y = "50 m"
-screens = [["4 m", "-4 m"]]
-rate = "100 m^3/d"
-[[refinement_lines]]
-name = "creek_bank"
-points = [["120 m", "0 m"], ["150 m", "70 m"]]
-cell_size = "3 m"
-radius = "4 m"
-"""
-    path = write_case(tmp_path, irregular_rows(), extra=extra, cell=15.0)
-    text = path.read_text().replace('layer_cell_thickness = "2 m"',
-                                    'layer_cell_thickness = "2 m"\nfine_cell_size = "2 m"\n'
-                                    'fine_zone_radius = "6 m"')
-    path.write_text(text)
-    site = build_mesh(load_case(path))
+    well = {"name": "PW-1", "x": "60 m", "y": "50 m", "screens": [["4 m", "-4 m"]],
+            "rate": "100 m^3/d"}
+    line = {"name": "creek_bank", "points": [["120 m", "0 m"], ["150 m", "70 m"]],
+            "cell_size": "3 m", "radius": "4 m"}
+    site = build_mesh(write_case(tmp_path, irregular_rows(), wells=[well],
+                                 refinement_lines=[line],
+                                 mesh=Mesh(15.0, 2.0, fine_cell_size=2.0, fine_zone_radius=6.0)))
     xy, tri = site.info["plan_xy"], site.info["plan_tri"]
     e = np.hstack([tri[[0, 1]], tri[[1, 2]], tri[[0, 2]]])
     length = np.linalg.norm(xy[:, e[0]] - xy[:, e[1]], axis=0)
@@ -276,8 +230,8 @@ radius = "4 m"
 def test_msh_skfem_vtu_round_trip_keeps_named_tags(tmp_path):
     """.msh → SiteMesh → scikit-fem → .vtu: node coordinates (1e-12 m), unit tags and every
     named face survive (exact by construction)."""
-    extra = lens_block("clay_lens", top="-2 m", bottom="-5 m")
-    site = build_mesh(load_case(write_case(tmp_path, irregular_rows(), extra=extra)))
+    lens = lens_block("clay_lens", top="-2 m", bottom="-5 m")
+    site = build_mesh(write_case(tmp_path, irregular_rows(), lenses=[lens]))
     assert "clay_lens" in site.layer_names
     assert np.any(site.cell_layer == site.layer_names.index("clay_lens"))
     write_mesh(site, tmp_path)
@@ -306,22 +260,22 @@ def test_msh_skfem_vtu_round_trip_keeps_named_tags(tmp_path):
 def test_lens_volume_is_its_prism(tmp_path):
     """A lens inside its host everywhere: its cells fill polygon area × (top − bottom)
     (exact by construction: its outline is embedded and two host levels follow it)."""
-    extra = lens_block("clay_lens", top="-2 m", bottom="-5 m")
-    site = build_mesh(load_case(write_case(tmp_path, irregular_rows(), extra=extra)))
+    lens = lens_block("clay_lens", top="-2 m", bottom="-5 m")
+    site = build_mesh(write_case(tmp_path, irregular_rows(), lenses=[lens]))
     assert unit_volumes(site)["clay_lens"] == pytest.approx(40 * 30 * 3.0, rel=1e-9)
     assert site.cell_volumes().min() > 0
 
 
-def _error_line(path: Path) -> str:
+def _error_line(folder: Path, rows: list[str], **kwargs: object) -> str:
     with pytest.raises(CaseErrors) as info:
-        load_case(path)
+        write_case(folder, rows, **kwargs)
     assert len(info.value.errors) == 1
     return info.value.errors[0].line()
 
 
 def test_borehole_outside_boundary(tmp_path):
     rows = [*irregular_rows(), "BH-far,400,400,10,5,1,-8"]
-    line = _error_line(write_case(tmp_path, rows))
+    line = _error_line(tmp_path, rows)
     assert line.startswith("stratigraphy.boreholes[BH-far] = 'x = 400 m, y = 400 m'")
     assert "outside the model boundary" in line
 
@@ -329,7 +283,7 @@ def test_borehole_outside_boundary(tmp_path):
 def test_too_few_picks_names_the_unit(tmp_path):
     rows = ["BH-1,0,0,10,5,1,-8", "BH-2,120,0,10,5,1,-8"]
     with pytest.raises(CaseErrors) as info:
-        load_case(write_case(tmp_path, rows))
+        write_case(tmp_path, rows)
     lines = [e.line() for e in info.value.errors]
     assert "layers[lower] = '2 picks': linear interpolation of its base needs at least 3 " \
            "boreholes or surface points" in lines
@@ -339,13 +293,12 @@ def test_collinear_picks_name_the_surface(tmp_path):
     rows = ["BH-1,0,0,10,5,1,-8", "BH-2,50,0,10,5,1,-8", "BH-3,100,0,10,5,1,-8"]
     with pytest.raises(MeshError, match="surface 'ground': linear interpolation needs at "
                                         "least 3 data points not on one line"):
-        build_mesh(load_case(write_case(tmp_path, rows)))
+        build_mesh(write_case(tmp_path, rows))
 
 
 def test_self_intersecting_boundary(tmp_path):
     bowtie = [(0.0, 0.0), (100.0, 100.0), (100.0, 0.0), (0.0, 100.0)]
-    line = _error_line(write_case(tmp_path, irregular_rows()[:1], vertices=bowtie,
-                                  edges=EDGES[:4]))
+    line = _error_line(tmp_path, irregular_rows()[:1], vertices=bowtie, edges=EDGES[:4])
     assert line.startswith("boundary.vertices = '4 vertices': must form a simple polygon: "
                            "edges 0 and 2 touch or cross")
 
@@ -355,11 +308,11 @@ def test_screen_outside_model_names_the_well(tmp_path):
     range but above the ground (about 11 m) at a well at x = 10 m."""
     rows = [f"BH-{i + 1},{x},{y},{10 + 0.1 * x},{4 + 0.1 * x},0,-8"
             for i, (x, y) in enumerate(BOREHOLE_XY)]
-    extra = ('[[wells]]\nname = "PW-high"\nx = "10 m"\ny = "30 m"\n'
-             'screens = [["20 m", "5 m"]]\nrate = "50 m^3/d"\n')
+    well = {"name": "PW-high", "x": "10 m", "y": "30 m", "screens": [["20 m", "5 m"]],
+            "rate": "50 m^3/d"}
     with pytest.raises(MeshError, match=r"^wells\[PW-high\]\.screens = \[20, 5\] m lies "
                                         r"outside the model at the well \(ground 11\.000 m"):
-        build_mesh(load_case(write_case(tmp_path, rows, extra=extra)))
+        build_mesh(write_case(tmp_path, rows, wells=[well]))
 
 
 def test_box_case_faces_unchanged():
@@ -375,11 +328,12 @@ def test_lens_sticking_out_of_its_host_is_reported(tmp_path, caplog):
     info, in mesh.json and as a logged warning (behaviour requirement, no source); the clipped
     lens still fills its outline between the host top and its bottom (truncated prisms, as
     in M1) and a lens inside its host is not reported."""
-    extra = lens_block("peat_lens", top="3 m", bottom="-5 m") + lens_block(
+    lenses = [lens_block("peat_lens", top="3 m", bottom="-5 m"), lens_block(
         "inner_lens", top="-3 m", bottom="-5 m", polygon=((90, 20), (110, 20), (110, 35),
-                                                          (90, 35)))
+                                                          (90, 35)))]
+    case = write_case(tmp_path, irregular_rows(), lenses=lenses)
     with caplog.at_level("WARNING", logger="fe3d.mesh.build"):
-        site = build_mesh(load_case(write_case(tmp_path, irregular_rows(), extra=extra)))
+        site = build_mesh(case)
     notes = site.info["lens_fit"]
     assert [(n["lens"], n["side"]) for n in notes] == [("peat_lens", "top")]
     assert notes[0]["n_clipped"] == notes[0]["n_lens_nodes"] > 0
@@ -388,7 +342,7 @@ def test_lens_sticking_out_of_its_host_is_reported(tmp_path, caplog):
     assert any("peat_lens" in r.getMessage() and r.levelname == "WARNING"
                for r in caplog.records)
     assert not any("inner_lens" in r.getMessage() for r in caplog.records)
-    save_cached(site, tmp_path / "m", mesh_inputs_hash(load_case(tmp_path / "case.toml")))
+    save_cached(site, tmp_path / "m", mesh_inputs_hash(case))
     meta = json.loads((tmp_path / "m" / "mesh.json").read_text())
     assert meta["lens_fit"][0]["lens"] == "peat_lens"
     # clipped lens = host top (the 'middle' base surface) down to -5 m inside the outline
@@ -396,15 +350,15 @@ def test_lens_sticking_out_of_its_host_is_reported(tmp_path, caplog):
     assert unit_volumes(site)["inner_lens"] == pytest.approx(20 * 15 * 2.0, rel=1e-9)
 
 
-LENS_FROM_PICKS = lens_block("clay_lens", picks='[{{ borehole = "{bh}", top = "-2.2 m", '
-                                                'bottom = "-5.1 m" }}]')
+def lens_from_picks(borehole: str) -> dict[str, object]:
+    return lens_block("clay_lens", picks=[{"borehole": borehole, "top": "-2.2 m",
+                                           "bottom": "-5.1 m"}])
 
 
 def test_lens_given_by_borehole_picks(tmp_path):
     """A lens whose top and bottom come from the borehole crossing it (flat lens: the mean
     of the picks): its cells fill polygon area × (top − bottom), exact by construction."""
-    case = load_case(write_case(tmp_path, irregular_rows(),
-                                extra=LENS_FROM_PICKS.format(bh="BH-6")))
+    case = write_case(tmp_path, irregular_rows(), lenses=[lens_from_picks("BH-6")])
     lens = case.lenses[0]
     assert (lens.top, lens.bottom, lens.pick_spread) == (-2.2, -5.1, 0.0)
     site = build_mesh(case)
@@ -412,13 +366,11 @@ def test_lens_given_by_borehole_picks(tmp_path):
 
 
 def test_lens_picks_must_come_from_boreholes_inside_it(tmp_path):
-    line = _error_line(write_case(tmp_path, irregular_rows(),
-                                  extra=LENS_FROM_PICKS.format(bh="BH-7")))
+    line = _error_line(tmp_path, irregular_rows(), lenses=[lens_from_picks("BH-7")])
     assert line.startswith("lenses[clay_lens].picks = 'BH-7'")
     assert "inside the lens polygon" in line
-    line = _error_line(write_case(tmp_path, irregular_rows(),
-                                  extra=LENS_FROM_PICKS.format(bh="BH-99")))
+    line = _error_line(tmp_path, irregular_rows(), lenses=[lens_from_picks("BH-99")])
     assert line.startswith("lenses[clay_lens].picks = 'BH-99'")
-    both = LENS_FROM_PICKS.format(bh="BH-6") + 'top = "-2 m"\n'
-    line = _error_line(write_case(tmp_path, irregular_rows(), extra=both))
+    both = {**lens_from_picks("BH-6"), "top": "-2 m"}
+    line = _error_line(tmp_path, irregular_rows(), lenses=[both])
     assert "not both" in line
