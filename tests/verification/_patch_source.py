@@ -54,10 +54,10 @@ because transverse dispersion keeps the transverse integral of the indicator. So
 solute flux through the inflow plane is that of the 1D problem times the patch area, in
 closed form (:func:`entered_mass`, derived in its docstring). Through the patch alone it is
 not finite: next to the patch edge, where c jumps from c0 to 0 on the plane, the normal
-gradient goes like 1/(π d) at a distance d from the edge (the local solution is dispersion
--dominated and harmonic in stretched coordinates), so the dispersive inflow through the patch
-and the dispersive outflow through the plane just outside it both diverge logarithmically and
-cancel in the net.
+gradient goes like c0 √(D_y/D_x)/(π d) at a distance d from the edge (the local solution is
+dispersion-dominated, ½ − atan(ỹ/x̃)/π in stretched coordinates; checked in
+``test_patch_source.py``), so the dispersive inflow through the patch and the dispersive
+outflow through the plane just outside it both diverge logarithmically and cancel in the net.
 """
 
 from __future__ import annotations
@@ -307,10 +307,10 @@ class PatchSite:
         return {"velocity": self.velocity, "dispersion": self.dispersion, "patch_y": py,
                 "patch_z": pz, "retardation": self.retardation}
 
-    def case(self, *, step: float, solver: Solver | None = None,
+    def case(self, *, step: float, solver: Solver | None = None, scheme: str | None = None,
              fine_cell: float | None = None) -> Case:
-        """The fe3d case: ``step`` [yr], ``solver`` options (default: fe3d's defaults) and
-        the corridor cell size [m] (default ``fine_cell``)."""
+        """The fe3d case: ``step`` [yr], ``solver`` options and time ``scheme`` (default:
+        fe3d's defaults) and the corridor cell size [m] (default ``fine_cell``)."""
         h = self.fine_cell if fine_cell is None else fine_cell
         sand = Material(self.conductivity, self.conductivity, porosity=self.porosity,
                         bulk_density=self.bulk_density, longitudinal_dispersivity=self.alpha_l,
@@ -329,7 +329,7 @@ class PatchSite:
                             z=(-self.patch_height, 0.0))],
             observation_points=[ObservationPoint(f"R{x:.0f}", x, 0.0, self.receptor_z,
                                                  kind="receptor") for x in self.receptors],
-            time=Time(f"{self.end} yr", f"{step} yr"), solver=solver,
+            time=Time(f"{self.end} yr", f"{step} yr", scheme=scheme), solver=solver,
             sections={"refinement_lines": [corridor]}, title="patch source site check")
 
     def exact_first_times(self, *, walls: bool = False) -> list[float | None]:
