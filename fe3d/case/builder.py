@@ -311,16 +311,20 @@ def case_data(
                 msg = f"two different materials are named {layer.material_name!r}"
                 raise ValueError(msg)
     heads_list = [FixedHead(face, head=h).data() for face, h in (heads or {}).items()]
-    data: dict[str, Any] = {"title": title, **(sections or {}), "materials": mats,
-                            "layers": [layer.data() for layer in layers],
-                            "fixed_heads": heads_list + [f.data() for f in fixed_heads],
-                            "species": {s.name: s.data() for s in species},
-                            "sources": [s.data() for s in sources],
-                            "observation_points": [o.data() for o in observation_points],
-                            "time": (time or Time()).data(), "mesh": mesh.data()}
+    typed: dict[str, Any] = {"materials": mats, "layers": [layer.data() for layer in layers],
+                             "fixed_heads": heads_list + [f.data() for f in fixed_heads],
+                             "species": {s.name: s.data() for s in species},
+                             "sources": [s.data() for s in sources],
+                             "observation_points": [o.data() for o in observation_points],
+                             "time": (time or Time()).data(), "mesh": mesh.data()}
     if solver is not None:
-        data["solver"] = solver.data()
-    return {k: v for k, v in data.items() if v != []}
+        typed["solver"] = solver.data()
+    typed = {k: v for k, v in typed.items() if v != []}
+    twice = sorted(typed.keys() & (sections or {}).keys())
+    if twice:
+        msg = f"sections {twice} are given both as arguments and in sections"
+        raise ValueError(msg)
+    return {"title": title, **(sections or {}), **typed}
 
 
 def build_case(

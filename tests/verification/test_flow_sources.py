@@ -18,7 +18,7 @@ import math
 import numpy as np
 import pytest
 
-from fe3d.case.load import parse_case
+from fe3d.case.builder import Layer, Material, ObservationPoint, Time, box_case
 from fe3d.errors import CaseErrors
 from fe3d.flow.solve import solve_flow
 from fe3d.mesh.build import build_mesh
@@ -26,42 +26,18 @@ from fe3d.mesh.build import build_mesh
 pytestmark = pytest.mark.verification
 
 DAY = 86400.0
-BASE = """
-title = "flow check"
-[box]
-x = ["0 m", "{L} m"]
-y = ["0 m", "{W} m"]
-top = "0 m"
-[materials.aquifer]
-horizontal_conductivity = "{K} m/d"
-porosity = 0.3
-bulk_density = "1700 kg/m^3"
-longitudinal_dispersivity = "1 m"
-transverse_dispersivity = "0.1 m"
-{material_extra}
-[[layers]]
-name = "aquifer"
-material = "aquifer"
-bottom = "-{b} m"
-{extra}
-[species.tracer]
-limit = "1 mg/L"
-[time]
-end = "1 d"
-step = "1 d"
-[mesh]
-cell_size = "{h} m"
-fine_cell_size = "{hf} m"
-fine_zone_radius = "{rf} m"
-layer_cell_thickness = "{b} m"
-"""
 
 
-def _case(**kw):
-    values = {"L": 200, "W": 200, "K": 10.0, "b": 10.0, "h": 10.0, "hf": 10.0, "rf": 0.0,
-              "extra": "", "material_extra": ""}
-    values.update(kw)
-    return parse_case(BASE.format(**values))
+def _case(*, L=200, W=200, K=10.0, b=10.0, h=10.0, hf=10.0, rf=0.0, dz=None, heads=None,
+          material=None, observation_points=(), **sections):
+    """One aquifer of conductivity ``K`` [m/d] and thickness ``b`` [m] under a top at 0 m in
+    an ``L`` × ``W`` box; plan cells ``h`` (``hf`` within ``rf`` of features) and cell layers
+    ``dz`` (default: one cell layer) [m]; ``sections`` as the case file writes them."""
+    aquifer = Material(K, porosity=0.3, bulk_density=1700.0, **(material or {}))
+    return box_case(title="flow check", length=L, width=W, cell=h, dz=b if dz is None else dz,
+                    fine_cell=hf, fine_radius=rf, heads=heads, time=Time(1.0, 1.0),
+                    layers=[Layer("aquifer", -b, aquifer)],
+                    observation_points=observation_points, sections=sections)
 
 
 @pytest.mark.slow
@@ -74,14 +50,11 @@ def test_thiem_drawdown_around_a_pumping_well():
     largest exact drawdown in the compared region (r from 2 m to 90 m).
     """
     q, K, b, hf = 500.0, 10.0, 10.0, 1.0
-    extra = ('[[fixed_heads]]\nface = "west"\nhead = "20 m"\n'
-             '[[wells]]\nname = "PW"\nx = "100 m"\ny = "100 m"\nscreens = [["0 m", "-10 m"]]\n'
-             f'rate = "{q} m^3/d"\n'
-             '[[observation_points]]\nname = "PW_loc"\nx = "100 m"\ny = "100 m"\nz = "-5 m"\n')
-    # one-metre cell layers (the shared BASE makes one cell layer per layer)
-    text = BASE.replace('layer_cell_thickness = "{b} m"', 'layer_cell_thickness = "1 m"')
-    case = parse_case(text.format(L=200, W=200, K=K, b=b, h=6.0, hf=hf, rf=15.0, extra=extra,
-                                  material_extra=""))
+    well = {"name": "PW", "x": "100 m", "y": "100 m", "screens": [["0 m", "-10 m"]],
+            "rate": f"{q} m^3/d"}
+    # one-metre cell layers
+    case = _case(K=K, b=b, h=6.0, hf=hf, rf=15.0, dz=1.0, heads={"west": 20.0}, wells=[well],
+                 observation_points=[ObservationPoint("PW_loc", 100.0, 100.0, z=-5.0)])
     site = build_mesh(case)
     assert site.info["sublayers"] == {"aquifer": 10}
     T = K * b / DAY
@@ -126,10 +99,8 @@ def test_strip_aquifer_with_recharge_is_parabolic():
     """h(x) = h1 + (h2 − h1)x/L + W x(L − x)/(2T) within 0.5 % of the head rise above the
     linear profile plus the range (Freeze & Cherry 1979)."""
     L, K, b, W = 500.0, 5.0, 20.0, 300.0  # W in mm/yr
-    extra = ('[[fixed_heads]]\nface = "west"\nhead = "30 m"\n'
-             '[[fixed_heads]]\nface = "east"\nhead = "28 m"\n'
-             f'[[recharge]]\nname = "rain"\nrate = "{W} mm/yr"\n')
-    case = _case(L=L, W=50, K=K, b=b, h=10.0, hf=10.0, extra=extra)
+    case = _case(L=L, W=50, K=K, b=b, h=10.0, hf=10.0, heads={"west": 30.0, "east": 28.0},
+                 recharge=[{"name": "rain", "rate": f"{W} mm/yr"}])
     site = build_mesh(case)
     flow = solve_flow(site, case)
     w = W / 1000.0 / (365.25 * DAY)
@@ -147,11 +118,8 @@ def test_strip_aquifer_with_recharge_is_parabolic():
 def test_dipping_bedding_rotates_the_conductivity_tensor():
     """With strike 0° and dip 30° (beds dip east), K = K_h I + (K_v − K_h) n nᵀ, n =
     (sin 30°, 0, cos 30°) (Bear 1972); a head gradient along x then drives a vertical flux."""
-    extra = ('[[fixed_heads]]\nface = "west"\nhead = "10 m"\n'
-             '[[fixed_heads]]\nface = "east"\nhead = "9 m"\n')
-    mat = ('vertical_conductivity = "1 m/d"\nconductivity_strike = "0 deg"\n'
-           'conductivity_dip = "30 deg"')
-    case = _case(L=100, W=20, K=10.0, h=10.0, extra=extra, material_extra=mat)
+    mat = {"vertical_conductivity": 1.0, "conductivity_strike": 0.0, "conductivity_dip": 30.0}
+    case = _case(L=100, W=20, K=10.0, h=10.0, heads={"west": 10.0, "east": 9.0}, material=mat)
     site = build_mesh(case)
     flow = solve_flow(site, case)
     n = np.array([math.sin(math.pi / 6), 0.0, math.cos(math.pi / 6)])
@@ -168,21 +136,19 @@ def test_dipping_bedding_rotates_the_conductivity_tensor():
 
 
 def test_drain_only_removes_water_and_river_both_ways():
-    """A drain above the water table carries no flow; a river below it gains water; the
+    """A drain above the water table carries no flow; a stream below it gains water; the
     budget closes (design target ≤ 1e-8, common practice, no source)."""
-    zone = '[["40 m", "0 m"], ["60 m", "0 m"], ["60 m", "50 m"], ["40 m", "50 m"]]'
-    extra = ('[[fixed_heads]]\nface = "west"\nhead = "-1 m"\n'
-             '[[fixed_heads]]\nface = "east"\nhead = "-1 m"\n'
-             f'[[head_dependent]]\nname = "ditch"\nkind = "drain"\nstage = "-0.5 m"\n'
-             f'leakance = "1 d^-1"\nzone = {zone}\n')
-    case = _case(L=100, W=50, extra=extra)
+    drain = {"name": "ditch", "kind": "drain", "stage": "-0.5 m", "leakance": "1 d^-1",
+             "zone": [["40 m", "0 m"], ["60 m", "0 m"], ["60 m", "50 m"], ["40 m", "50 m"]]}
+    heads = {"west": -1.0, "east": -1.0}
+    case = _case(L=100, W=50, heads=heads, head_dependent=[drain])
     flow = solve_flow(build_mesh(case), case)
     ditch = next(i for i in flow.budget if i.name == "ditch")
     assert ditch.inflow == 0.0
     assert ditch.outflow == 0.0
     np.testing.assert_allclose(flow.head, -1.0, atol=1e-12)
-    river = _case(L=100, W=50, extra=extra.replace('"drain"', '"stream"'))
-    flow = solve_flow(build_mesh(river), river)
+    stream = _case(L=100, W=50, heads=heads, head_dependent=[{**drain, "kind": "stream"}])
+    flow = solve_flow(build_mesh(stream), stream)
     r = next(i for i in flow.budget if i.name == "ditch")
     assert r.inflow > 0
     assert flow.discrepancy <= 1e-8
@@ -194,18 +160,18 @@ def test_bad_flow_inputs_name_the_field():
     top cells: one line each naming the field."""
     with pytest.raises(CaseErrors, match=r"fixed_heads = '\(none\)': give at least one"):
         _case()
+    west = {"west": 1.0}
     with pytest.raises(CaseErrors) as e:
-        _case(K=-1.0, extra='[[fixed_heads]]\nface = "west"\nhead = "1 m"\n')
+        _case(K=-1.0, heads=west)
     assert "materials.aquifer.horizontal_conductivity" in str(e.value)
-    extra = ('[[fixed_heads]]\nface = "west"\nhead = "1 m"\n'
-             '[[head_dependent]]\nname = "brook"\nkind = "stream"\nstage = "-10.5 m"\n'
-             'leakance = "1 d^-1"\nzone = [["0 m", "0 m"], ["50 m", "0 m"], ["50 m", "50 m"]]\n')
-    case = _case(extra=extra, b=10.0)
+    brook = {"name": "brook", "kind": "stream", "stage": "-10.5 m", "leakance": "1 d^-1",
+             "zone": [["0 m", "0 m"], ["50 m", "0 m"], ["50 m", "50 m"]]}
+    case = _case(heads=west, head_dependent=[brook], b=10.0)
     with pytest.raises(Exception, match=r"head_dependent\[brook\]\.stage"):
         solve_flow(build_mesh(case), case)
-    well = ('[[fixed_heads]]\nface = "west"\nhead = "1 m"\n[[wells]]\nname = "PW"\n'
-            'x = "50 m"\ny = "50 m"\nscreens = [["-2 m", "-14 m"]]\nrate = "10 m^3/d"\n')
+    well = {"name": "PW", "x": "50 m", "y": "50 m", "screens": [["-2 m", "-14 m"]],
+            "rate": "10 m^3/d"}
     with pytest.raises(CaseErrors, match=r"wells\[PW\]\.screens\[0\]"):
-        _case(extra=well)
+        _case(heads=west, wells=[well])
     with pytest.raises(CaseErrors, match=r"wells\[PW\]"):
-        _case(extra=well.replace('x = "50 m"', 'x = "500 m"'))
+        _case(heads=west, wells=[{**well, "x": "500 m"}])
