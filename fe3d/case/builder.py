@@ -437,7 +437,8 @@ def with_changes(case: Case, *, base_dir: Path | None = None,
     **sections
         Section name (``time``, ``solver``, ``mesh``, ``box``, ``output``) → fields to change,
         written as in a case file (``time={"step": "0.5 d", "scheme": "bdf2"}``); for
-        ``materials`` and ``species``, name → fields; for a list section (``sources``,
+        ``materials`` and ``species``, name → fields (a new name adds an entry, from a
+        :class:`Material` or :class:`Species` or a table); for a list section (``sources``,
         ``observation_points``, ``wells``, ...) the whole new list, of builder records
         (:class:`Source`, ...) or tables as the case file writes them.
     base_dir
@@ -454,35 +455,44 @@ def with_changes(case: Case, *, base_dir: Path | None = None,
     CaseErrors
         The errors of the equivalent case file (key paths such as ``time.step``).
     """
-    wrapper_fields: dict[str, Any] = {}
-    raw: dict[str, Any] = {}
+    changed_raw: dict[str, Any] = {}  # changes to sections and entries the case has
+    changed_types: dict[str, Any] = {}
+    added_raw: dict[str, Any] = {}  # new materials or species
+    added_types: dict[str, Any] = {}
     for name, change in sections.items():
         if not isinstance(change, Mapping):  # a whole list: sources, layers, wells, ...
-            raw[name] = [c.data() if isinstance(c, _Block) else c for c in change]
-            wrapper_fields[name] = (Case.model_fields[name].annotation, ...)
+            changed_raw[name] = [c.data() if isinstance(c, _Block) else c for c in change]
+            changed_types[name] = Case.model_fields[name].annotation
             continue
-        raw[name] = change
         model = _section_model(name)
-        partial = create_model(  # type: ignore[call-overload]
-            f"Partial{model.__name__}", __base__=Section,
-            **{k: (model.model_fields[k].annotation, model.model_fields[k])
-               for k in _changed_keys(name, change) if k in model.model_fields})
-        keyed = name in ("materials", "species")
-        wrapper_fields[name] = (dict[str, partial] if keyed else partial, ...)
-    wrapper = create_model("Changes", **wrapper_fields)  # type: ignore[call-overload]
-    try:
-        checked = wrapper.model_validate(raw)
-    except ValidationError as exc:
-        raise CaseErrors(_errors_from(exc, raw)) from None
+        if name not in _KEYED:
+            changed_raw[name] = dict(change)
+            changed_types[name] = _partial(model, change)
+            continue
+        entries = {k: v.data() if isinstance(v, _Block) else v for k, v in change.items()}
+        old = getattr(case, name)
+        known = {k: v for k, v in entries.items() if k in old}
+        if known:
+            changed_raw[name] = known
+            changed_types[name] = dict[str, _partial(model, {f for v in known.values()
+                                                             for f in v})]  # type: ignore[misc]
+        if len(known) < len(entries):
+            added_raw[name] = {k: v for k, v in entries.items() if k not in old}
+            added_types[name] = dict[str, model]  # type: ignore[valid-type]
+    errors: list[CaseError] = []
+    checked = _validated(changed_types, changed_raw, errors)
+    added = _validated(added_types, added_raw, errors)
+    if errors:
+        raise CaseErrors(errors)
     update: dict[str, Any] = {}
     for name in sections:
-        new = getattr(checked, name)
+        new = getattr(checked, name, None)
         old = getattr(case, name)
         if isinstance(new, list):
             update[name] = new
-        elif isinstance(new, dict):
+        elif name in _KEYED:
             update[name] = {**old, **{k: old[k].model_copy(update=_set(v)) for k, v in
-                                      new.items()}}
+                                      (new or {}).items()}, **getattr(added, name, {})}
         else:
             update[name] = old.model_copy(update=_set(new))
     try:
@@ -495,9 +505,34 @@ def with_changes(case: Case, *, base_dir: Path | None = None,
     return changed
 
 
+_KEYED = ("materials", "species")
+"""Sections that are tables of named entries."""
+
+
+def _partial(model: type[Section], keys: Any) -> Any:
+    """A model of the fields ``keys`` of ``model`` only, with their validators."""
+    return create_model(  # type: ignore[call-overload]
+        f"Partial{model.__name__}", __base__=Section,
+        **{k: (model.model_fields[k].annotation, model.model_fields[k])
+           for k in keys if k in model.model_fields})
+
+
+def _validated(types: Mapping[str, Any], raw: dict[str, Any], errors: list[CaseError]) -> Any:
+    """``raw`` validated as the sections ``types``; errors, with case-file key paths, are
+    added to ``errors``."""
+    fields = {k: (v, ...) for k, v in types.items()}
+    wrapper = create_model("Changes", **fields)  # type: ignore[call-overload]
+    try:
+        return wrapper.model_validate(raw)
+    except ValidationError as exc:
+        errors += _errors_from(exc, raw)
+        return None
+
+
 def _section_model(name: str) -> type[Section]:
     """The model of the one-table section ``name`` (of each entry for materials, species)."""
-    models = {"materials": schema.Material, "species": schema.Species}
+    models: dict[str, type[Section]] = {"materials": schema.Material,
+                                        "species": schema.Species}
     if name in models:
         return models[name]
     annotation = Case.model_fields[name].annotation if name in Case.model_fields else None
@@ -506,12 +541,6 @@ def _section_model(name: str) -> type[Section]:
             return cls
     msg = f"with_changes changes single sections, materials or species, not {name!r}"
     raise CaseError(name, "(change)", msg)
-
-
-def _changed_keys(name: str, change: Mapping[str, Any]) -> set[str]:
-    if name in ("materials", "species"):
-        return {k for entry in change.values() for k in entry}
-    return set(change)
 
 
 def _set(partial: Section) -> dict[str, Any]:

@@ -8,12 +8,15 @@ criterion; common practice, no source).
 
 from __future__ import annotations
 
+import dataclasses
 from pathlib import Path
 
 import numpy as np
 import pytest
+from test_release_and_injection import SPILL
 
-from fe3d.case.load import load_case, parse_case
+from fe3d.case.builder import Species, with_changes
+from fe3d.case.load import load_case
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -25,11 +28,8 @@ TINY = Path(__file__).parents[2] / "cases" / "tiny" / "case.toml"
 @pytest.mark.parametrize("scheme", ["backward_euler", "crank_nicolson", "bdf2"])
 @pytest.mark.parametrize("solver", ["direct", "iterative"])
 def test_mass_budget_closes_every_output_time(scheme, solver):
-    case = load_case(TINY)
-    case = case.model_copy(update={
-        "time": case.time.model_copy(update={"scheme": scheme}),
-        "solver": case.solver.model_copy(update={"linear_solver": solver}),
-    })
+    case = with_changes(load_case(TINY), time={"scheme": scheme},
+                        solver={"linear_solver": solver})
     site, flow = mesh_and_flow(case)
     snaps = list(run_transport(site, flow, case))
     assert len(snaps) == 1 + len(case.output_schedule())
@@ -51,14 +51,12 @@ def test_mass_budget_closes_with_a_pumping_well_and_two_species():
     """Water leaving through a well takes solute at the local concentration (theory.md T3);
     the budget still closes ≤ 1e-8 and the well's outflow is booked to the well. Two species
     guard against a name clash between wells and species (a past bug)."""
-    text = TINY.read_text(encoding="utf-8")
-    text += ('\n[[wells]]\nname = "fence_pump"\nx = "40 m"\ny = "10 m"\n'
-             'screens = [["4 m", "2 m"]]\nrate = "3 m^3/d"\n'
-             '\n[species.marker]\nlimit = "1 mg/L"\n'
-             '\n[[sources]]\nname = "marker_spill"\nspecies = "marker"\nshape = "box"\n'
-             'concentration = "2 mg/L"\nx = ["8 m", "12 m"]\ny = ["8 m", "12 m"]\n'
-             'z = ["2 m", "4 m"]\nstop = "200 d"\n')
-    case = parse_case(text)
+    pump = {"name": "fence_pump", "x": "40 m", "y": "10 m", "screens": [["4 m", "2 m"]],
+            "rate": "3 m^3/d"}
+    marker = dataclasses.replace(SPILL, name="marker_spill", species="marker",
+                                 concentration="2 mg/L")
+    case = with_changes(load_case(TINY), wells=[pump], species={"marker": Species("marker")},
+                        sources=[SPILL, marker])
     site, flow = mesh_and_flow(case)
     assert flow.discrepancy <= 1e-8
     snaps = list(run_transport(site, flow, case))

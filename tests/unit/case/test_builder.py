@@ -120,3 +120,15 @@ def test_with_changes_refuses_what_the_case_file_refuses():
         with_changes(_built(), sources=[dataclasses.replace(SPILL, species="ghost")])
     assert str(bad_entry.value) == "sources[drum_spill].species = 'ghost': must be one of the " \
         "species: ['tracer']"
+
+
+def test_with_changes_adds_a_species_as_the_case_file_would():
+    marker = dataclasses.replace(SPILL, name="marker_spill", species="marker")
+    added = with_changes(_built(), species={"marker": Species("marker", kd=0.2)},
+                         sources=[SPILL, marker])
+    expected = _built(species=[Species(limit="10 ug/L", kd=0.1, half_life="5 yr"),
+                               Species("marker", kd=0.2)], sources=[SPILL, marker])
+    assert added == expected
+    with pytest.raises(CaseErrors) as bad:
+        with_changes(_built(), species={"marker": {"limit": "-1 mg/L"}})
+    assert str(bad.value) == "species.marker.limit = '-1 mg/L': must be greater than zero"
