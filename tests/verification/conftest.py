@@ -1,13 +1,10 @@
-"""Case builders for the verification tests (TOML text assembled from a few parameters)."""
+"""Case text for the tests that still edit TOML text (tests/unit/studies/test_refinement.py).
+
+New tests build their cases with :mod:`fe3d.case.builder`; remove this file once
+``box_case_text`` has no user left.
+"""
 
 from __future__ import annotations
-
-from collections.abc import Callable
-
-import pytest
-
-from fe3d.case.load import parse_case
-from fe3d.case.schema import Case
 
 _MATERIAL = """
 [materials.{name}]
@@ -41,13 +38,3 @@ def box_case_text(
     text.append(f'[mesh]\ncell_size = "{cell} m"\nlayer_cell_thickness = "{dz} m"\n')
     text.append(extra)
     return "\n".join(text)
-
-
-@pytest.fixture
-def make_case() -> Callable[..., Case]:
-    """Build a validated :class:`Case` from :func:`box_case_text` keyword arguments."""
-
-    def build(**kwargs: object) -> Case:
-        return parse_case(box_case_text(**kwargs))  # type: ignore[arg-type]
-
-    return build
