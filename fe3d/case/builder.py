@@ -21,6 +21,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import numbers
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -55,11 +56,20 @@ Quantity = float | str
 """A number in the field's stated unit, or a string with its own unit (``"3 g/d"``)."""
 
 
+def _number(value: Any) -> str | None:
+    """TOML text of a real number (numpy scalars included), or ``None`` for anything else."""
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        return None
+    if isinstance(value, numbers.Integral):
+        return repr(int(value))
+    x = float(value)
+    return repr(x) if math.isfinite(x) else ("nan" if math.isnan(x) else f"{x:+}")
+
+
 def _quantity(value: Any, unit: str) -> Any:
     """``value`` as a case-file quantity: numbers get ``unit``, strings pass as written."""
-    if isinstance(value, bool) or not isinstance(value, int | float):
-        return value
-    return f"{value!r} {unit}"
+    text = _number(value)
+    return value if text is None else f"{text} {unit}"
 
 
 def _value(value: Any, unit: str | None) -> Any:
@@ -560,10 +570,9 @@ def _key(key: str) -> str:
 def _inline(value: Any) -> str:
     if isinstance(value, bool):
         return "true" if value else "false"
-    if isinstance(value, int | float):
-        if isinstance(value, float) and not math.isfinite(value):
-            return "nan" if math.isnan(value) else ("inf" if value > 0 else "-inf")
-        return repr(value)
+    number = _number(value)
+    if number is not None:
+        return number
     if isinstance(value, str):
         return json.dumps(value, ensure_ascii=False)
     if isinstance(value, Mapping):

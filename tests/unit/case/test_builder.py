@@ -10,6 +10,7 @@ from __future__ import annotations
 import dataclasses
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from fe3d.case.builder import (
@@ -132,3 +133,13 @@ def test_with_changes_adds_a_species_as_the_case_file_would():
     with pytest.raises(CaseErrors) as bad:
         with_changes(_built(), species={"marker": {"limit": "-1 mg/L"}})
     assert str(bad.value) == "species.marker.limit = '-1 mg/L': must be greater than zero"
+
+
+def test_builder_takes_numpy_numbers():
+    """A numpy scalar is written as the plain number it holds (numpy 2 prints its type)."""
+    case = _built(species=[Species(limit=np.float64(0.01), kd=np.float32(0.5),
+                                   half_life=np.int64(30))])
+    tracer = case.species["tracer"]
+    assert tracer.limit == pytest.approx(0.01 * MILLIGRAM / LITRE, rel=1e-15)
+    assert tracer.kd == pytest.approx(0.5 * LITRE, rel=1e-15)  # 0.5 is exact in float32
+    assert tracer.half_life == 30 * DAY
