@@ -1,23 +1,26 @@
-"""Flux limiting of the low-order monotone step (theory.md T16b).
+"""Flux correction of the low-order monotone step towards a high-order target (theory.md T16b).
 
-The low-order step of T16, M_L (c_L − cⁿ)/Δt + A_L c_L = b, differs from the Galerkin step
-with consistent mass, M (c − cⁿ)/Δt + A c = b, by a sum of antidiffusive fluxes between
-neighbours,
-
-    f_ij = m_ij (ċ_i − ċ_j) + d_ij (c_i − c_j),   ċ = (c_L − cⁿ)/Δt,  f_ji = −f_ij,
-
-(m_ij the consistent mass, d_ij ≥ 0 the diffusion T16 added). Linearised flux correction
-adds back as much of each flux as keeps every node within the range of its neighbours'
-low-order values (Zalesak's limiter):
+The low-order step of T16, M_L (c_L − cⁿ)/Δt + L c_L = b (backward Euler, lumped storage,
+discrete upwinding: bounded at any step), and a high-order target step, the Galerkin
+θ-scheme M (c_H − cⁿ)/Δt + K(θ c_H + (1 − θ) cⁿ) = b (Crank–Nicolson or backward Euler),
+differ by a sum of antisymmetric fluxes between neighbours plus a remainder at the sinks
+(decay and outflow; :func:`limited_target_fluxes`). Flux correction adds back as much of
+each flux as keeps every node within the range of its neighbours' values (Zalesak's
+limiter), and repeats that on the unused part of the fluxes against the corrected field:
 
     c_i = c_L,i + Δt/m_i Σ_j α_ij f_ij,   0 ≤ α_ij = α_ji ≤ 1.
 
 Kuzmin 2009, "Explicit and implicit FEM-FCT algorithms with flux linearization", J. Comput.
-Phys. 228; Zalesak 1979, "Fully multidimensional flux-corrected transport algorithms for
-fluids", J. Comput. Phys. 31 (both from memory). Compiled (numba) on the CSR arrays.
+Phys. 228 (the linearised correction and its bounds); Zalesak 1979, "Fully multidimensional
+flux-corrected transport algorithms for fluids", J. Comput. Phys. 31 (the limiter); Schär &
+Smolarkiewicz 1996, "A synchronous and iterative flux-correction formalism for coupled
+transport equations", J. Comput. Phys. 128 (iterating the limiter on the remaining fluxes);
+all from memory. Compiled (numba) on the CSR arrays.
 """
 
 from __future__ import annotations
+
+from dataclasses import dataclass
 
 import numba
 import numpy as np
@@ -25,80 +28,176 @@ import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
 
-__all__ = ["limited_fluxes"]
+__all__ = ["LIMITER_PASSES", "PASS_TOLERANCE", "TargetFluxes", "limited_target_fluxes",
+           "raw_flux_sums"]
+
+LIMITER_PASSES = 4
+"""Passes of Zalesak's limiter over the fluxes not yet used (iterative flux correction)."""
+
+PASS_TOLERANCE = 1e-3
+"""The passes stop once every unused flux is below this share of the largest raw flux."""
 
 
 @numba.njit(cache=True, nogil=True)
-def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
-           lumped: FloatArray, c_low: FloatArray, rate: FloatArray, dt: float,
-           is_fixed: np.ndarray, reach: float) -> tuple[FloatArray, int]:
-    n = lumped.size
-    blocked = 0
+def _target_fluxes(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
+                   low: FloatArray, low_t: FloatArray, c_low: FloatArray, rate: FloatArray,
+                   c_mean: FloatArray, prelimit: bool) -> FloatArray:
+    """Raw fluxes f_ij towards the target, per CSR entry; ``prelimit``: zero those that run
+    down the gradient of c_L (they would add diffusion)."""
     f = np.zeros(cols.size)
-    r_plus, r_minus = np.ones(n), np.ones(n)
-    for i in range(n):
-        p_plus = p_minus = q_plus = q_minus = exchange = 0.0
+    for i in range(c_low.size):
+        x_i = c_low[i] - c_mean[i]
         for p in range(indptr[i], indptr[i + 1]):
             j = cols[p]
             if j == i:
                 continue
-            exchange -= d[p]
-            dc = c_low[i] - c_low[j]
-            fij = m[p] * (rate[i] - rate[j]) - d[p] * dc  # d_ij ≤ 0 stored: −d is ≥ 0
-            if fij * dc < 0.0:  # prelimiting: down the gradient, diffusive
+            fij = (m[p] * (rate[i] - rate[j]) - d[p] * (c_mean[i] - c_mean[j])
+                   + low[p] * (c_low[j] - c_mean[j]) - low_t[p] * x_i)
+            if prelimit and fij * (c_low[i] - c_low[j]) < 0.0:
                 fij = 0.0
             f[p] = fij
-            if fij > 0.0:
-                p_plus += fij
+    return f
+
+
+@numba.njit(cache=True, nogil=True)
+def _zalesak(indptr: IndexArray, cols: IndexArray, f: FloatArray, lumped: FloatArray,
+             c: FloatArray, dt: float, held: np.ndarray, blocked: np.ndarray,
+             ) -> tuple[FloatArray, FloatArray]:
+    """One pass of Zalesak's limiter: the share α_ij f_ij of each flux that keeps every free
+    node within its neighbours' range of ``c``, per CSR entry, and the net flux per node.
+    Held nodes do not limit their neighbours; blocked nodes take and give no flux."""
+    n = lumped.size
+    r_plus, r_minus = np.ones(n), np.ones(n)
+    for i in range(n):
+        if held[i]:
+            continue
+        if blocked[i]:
+            r_plus[i] = r_minus[i] = 0.0
+            continue
+        p_plus = p_minus = q_plus = q_minus = 0.0
+        for p in range(indptr[i], indptr[i + 1]):
+            j = cols[p]
+            if j == i:
+                continue
+            if f[p] > 0.0:
+                p_plus += f[p]
             else:
-                p_minus += fij
-            q_plus = max(q_plus, -dc)
-            q_minus = min(q_minus, -dc)
-        if not is_fixed[i] and dt * exchange > reach * lumped[i]:
-            r_plus[i] = r_minus[i] = 0.0  # the step is long against this node's exchange
-            blocked += 1
-        elif not is_fixed[i]:
-            if p_plus > 0.0:
-                r_plus[i] = min(1.0, lumped[i] * q_plus / (dt * p_plus))
-            if p_minus < 0.0:
-                r_minus[i] = min(1.0, lumped[i] * q_minus / (dt * p_minus))
+                p_minus += f[p]
+            q_plus = max(q_plus, c[j] - c[i])
+            q_minus = min(q_minus, c[j] - c[i])
+        if p_plus > 0.0:
+            r_plus[i] = min(1.0, lumped[i] * q_plus / (dt * p_plus))
+        if p_minus < 0.0:
+            r_minus[i] = min(1.0, lumped[i] * q_minus / (dt * p_minus))
+    applied = np.zeros(cols.size)
     g = np.zeros(n)
     for i in range(n):
         s = 0.0
         for p in range(indptr[i], indptr[i + 1]):
             fij = f[p]
             if fij > 0.0:
-                s += min(r_plus[i], r_minus[cols[p]]) * fij
+                a = min(r_plus[i], r_minus[cols[p]]) * fij
             elif fij < 0.0:
-                s += min(r_minus[i], r_plus[cols[p]]) * fij
+                a = min(r_minus[i], r_plus[cols[p]]) * fij
+            else:
+                continue
+            applied[p] = a
+            s += a
         g[i] = s
-    return g, blocked
+    return applied, g
 
 
-def limited_fluxes(mass: sp.csr_matrix, diffusion: sp.csr_matrix, lumped: FloatArray,
-                   c_low: FloatArray, c_old: FloatArray, dt: float,
-                   fixed: IndexArray, *, reach: float = np.inf) -> tuple[FloatArray, int]:
-    """Net limited antidiffusive flux g_i = Σ_j α_ij f_ij into every node [kg/s], and the
-    number of nodes the ``reach`` rule below blocked.
+@dataclass(frozen=True)
+class TargetFluxes:
+    """The operators the correction towards a high-order target needs, on one CSR pattern:
+    the consistent mass M, the diffusion D that the low-order operator added (T16,
+    nonpositive off-diagonal entries), the low-order operator L = K + D and its transpose's
+    values on the same pattern, and the lumped mass m_L (row sums of M)."""
 
-    ``mass`` is the consistent mass operator M and ``diffusion`` the symmetric D of T16
-    (nonpositive off-diagonal entries), both on one CSR pattern with its diagonal;
-    ``lumped`` the row sums of M. Nodes ``fixed`` (fixed concentrations) take no correction
-    and do not limit their neighbours; the fluxes they exchange still appear in g (with
-    the opposite sign at the fixed node), so Σ g = 0. The corrected field is
-    c_L + Δt g / m_L at the other nodes. A node whose step is long against its exchange
-    with its neighbours, Δt Σ_j |d_ij| > ``reach`` m_i, takes and gives no flux (there the
-    explicit correction would push it to a neighbour's extreme). One compiled pass for
-    the fluxes and the limiter's sums, one for the limited fluxes."""
-    if not (np.array_equal(mass.indptr, diffusion.indptr)
-            and np.array_equal(mass.indices, diffusion.indices)):
-        msg = "the mass and diffusion operators must share one CSR pattern"
-        raise ValueError(msg)
-    is_fixed = np.zeros(lumped.size, dtype=np.bool_)
-    is_fixed[fixed] = True
+    mass: sp.csr_matrix
+    diffusion: sp.csr_matrix
+    low_order: sp.csr_matrix
+    low_order_transposed: FloatArray
+    lumped: FloatArray
+
+    @classmethod
+    def of(cls, mass: sp.csr_matrix, galerkin: sp.csr_matrix,
+           low_order: sp.csr_matrix) -> TargetFluxes:
+        """From the Galerkin operators M, K and the low-order spatial operator L."""
+        lt = low_order.T.tocsr()
+        lt.sort_indices()
+        if not (np.array_equal(mass.indptr, low_order.indptr)
+                and np.array_equal(mass.indices, low_order.indices)
+                and np.array_equal(lt.indices, low_order.indices)):
+            msg = "the operators must share one structurally symmetric CSR pattern"
+            raise ValueError(msg)
+        diffusion = sp.csr_matrix((low_order.data - galerkin.data, low_order.indices,
+                                   low_order.indptr), shape=low_order.shape)
+        return cls(mass=mass, diffusion=diffusion, low_order=low_order,
+                   low_order_transposed=np.ascontiguousarray(lt.data),
+                   lumped=np.asarray(mass.sum(axis=1)).ravel())
+
+
+def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray,
+                          c_old: FloatArray, dt: float, theta: float, fixed: IndexArray,
+                          *, reach: float = np.inf, passes: int = LIMITER_PASSES,
+                          ) -> tuple[FloatArray, int, int]:
+    """Net limited flux g_i = Σ_j α_ij f_ij [kg/s] that moves the low-order step c_L towards
+    a high-order target step c_H (theory.md T16b), the nodes the ``reach`` rule blocked and
+    the limiter passes used.
+
+    The target solves M(c_H − cⁿ)/Δt + K ĉ = b with ĉ = θ c_H + (1 − θ) cⁿ (Galerkin,
+    backward Euler or Crank–Nicolson), the low-order step M_L(c_L − cⁿ)/Δt + L c_L = b with
+    L = K + D. Their difference is M_L(c_H − c_L)/Δt = Σ_j f_ij + r_i with the antisymmetric
+
+        f_ij = m_ij (ċ_i − ċ_j) + d_ij (ĉ_i − ĉ_j) + l_ij x_j − l_ji x_i,
+        ċ = (c_H − cⁿ)/Δt,  x = c_L − ĉ,
+
+    (d_ij ≥ 0 the added diffusion) and the remainder r_i = x_i Σ_j l_ji, nonzero only where
+    L's column sums are: decay and outflow, which therefore stay at the low-order step's
+    values. Unlimited (α = 1) the correction gives c_H up to that remainder. Zalesak's
+    limiter keeps every corrected value within the range of its neighbours' values; it is
+    applied again to the part of each flux not yet used, against the corrected field, up to
+    ``passes`` times (iterative flux correction: each pass stays bounded, so the result is
+    bounded whatever the step). Nodes ``fixed`` take no correction; the fluxes they exchange
+    still appear in g (with the opposite sign at the fixed node), so Σ g = 0. A node whose
+    step is long against its exchange with its neighbours, Δt Σ_j d_ij > ``reach`` m_i,
+    takes and gives no flux."""
+    n = ops.lumped.size
+    held = np.zeros(n, dtype=np.bool_)
+    held[fixed] = True
+    blocked = ~held & (dt * ops.diffusion.diagonal() > reach * ops.lumped)
     c_low = np.ascontiguousarray(c_low, dtype=float)
-    rate = (c_low - np.asarray(c_old, dtype=float)) / dt
-    return _limit(mass.indptr, mass.indices, np.asarray(mass.data, dtype=float),
-                  np.asarray(diffusion.data, dtype=float),
-                  np.asarray(lumped, dtype=float), c_low, rate, float(dt), is_fixed,
-                  float(reach))
+    indptr, cols = ops.mass.indptr, ops.mass.indices
+    f = _raw_fluxes(ops, c_low, c_high, c_old, dt, theta, prelimit=True)
+    c, total = c_low.copy(), np.zeros(n)
+    free = ~held
+    scale = float(np.max(np.abs(f))) if f.size else 0.0
+    used = 0
+    for used in range(1, passes + 1):  # noqa: B007 (the count is reported)
+        applied, g = _zalesak(indptr, cols, f, ops.lumped, c, float(dt), held, blocked)
+        c[free] += dt * g[free] / ops.lumped[free]
+        total += g
+        f -= applied
+        if float(np.max(np.abs(f), initial=0.0)) <= PASS_TOLERANCE * scale:
+            break
+    return total, int(blocked.sum()), used
+
+
+def _raw_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray, c_old: FloatArray,
+                dt: float, theta: float, *, prelimit: bool) -> FloatArray:
+    c_high = np.asarray(c_high, dtype=float)
+    rate = (c_high - c_old) / dt
+    c_mean = theta * c_high + (1.0 - theta) * c_old
+    return _target_fluxes(ops.mass.indptr, ops.mass.indices, ops.mass.data,
+                          ops.diffusion.data, ops.low_order.data, ops.low_order_transposed,
+                          np.ascontiguousarray(c_low, dtype=float), rate, c_mean, prelimit)
+
+
+def raw_flux_sums(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray,
+                  c_old: FloatArray, dt: float, theta: float) -> FloatArray:
+    """Σ_j f_ij at every node [kg/s], before any limiting or prelimiting: the part of
+    M_L(c_H − c_L)/Δt that the correction can move (see :func:`limited_target_fluxes`)."""
+    f = _raw_fluxes(ops, c_low, c_high, c_old, dt, theta, prelimit=False)
+    rows = np.repeat(np.arange(ops.lumped.size), np.diff(ops.mass.indptr))
+    return np.bincount(rows, weights=f, minlength=ops.lumped.size)

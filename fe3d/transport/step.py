@@ -22,13 +22,16 @@ from fe3d.linalg import LinearSolver, solve_with_preconditioner
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import split_rows
 from fe3d.sgs import plus_diagonal
-from fe3d.transport.limiter import limited_fluxes
+from fe3d.transport.limiter import limited_target_fluxes
 from fe3d.transport.model import RateLaw, SpeciesModel
 from fe3d.transport.newton import newton
 from fe3d.transport.shock import isotropic_stiffness, shock_diffusivity
 from fe3d.transport.sources import SourceGeometry
 from fe3d.transport.systems import NearbySolver, StepSystem, StepSystems
 from fe3d.transport.timeschemes import StepCoefficients
+
+BACKWARD_EULER = StepCoefficients(1.0, -1.0, 0.0, 1.0)
+"""The low-order step of flux correction (T16b): backward Euler keeps it bounded."""
 
 __all__ = ["NEWTON_LINEAR_TOLERANCE", "StepBudget", "StepContext", "StepResult", "StepState",
            "UserLaw", "take_step"]
@@ -211,6 +214,9 @@ def _step_species(
     # sources are evaluated at the step's mean (θ-schemes) or its end (BDF2)
     ta, tb = (t1, t1) if ctx.time_scheme == "bdf2" else (t0, t1)
     held = ctx.sources.held(s.name, t0, t1)
+    target = None
+    if ctx.systems.limited(s):  # T16b: a low-order backward Euler step, then corrected
+        target, co = co, BACKWARD_EULER
     sysm = ctx.systems.system(s, dt, co, held.active)
     fixed = sysm.fixed
     load = ctx.sources.load(s.name, t0, t1, ta, tb)
@@ -233,6 +239,9 @@ def _step_species(
     guess = old.copy()
     guess[fixed] = held.end[fixed]
     solve = _Solve(ctx, s, old, prev, dt, co, user_rates)
+    if target is not None:
+        solve.target = (target, ctx.systems.target_system(s, dt, target, held.active),
+                        load, None if state.older is None else state.older[s.name])
     new, r, other_loss, its = solve(sysm, rhs, guess)
     for _ in range(ctx.solver.shock_capturing_passes if ctx.solver.shock_capturing else 0):
         sys_x, extra = _with_shock_capturing(ctx, s, sysm, new, old, prev, dt, co)
@@ -273,6 +282,9 @@ class _Solve:
         self.user_rates = user_rates
         self.limited_state: FloatArray | None = None
         self.blocked: float | None = None
+        # the target of flux correction (T16b): its scheme, system, load and older level
+        self.target: tuple[StepCoefficients, StepSystem, FloatArray,
+                           FloatArray | None] | None = None
 
     def __call__(self, sy: StepSystem, rhs: FloatArray, guess: FloatArray,
                  ) -> tuple[FloatArray, FloatArray, float, int]:
@@ -287,16 +299,28 @@ class _Solve:
                                        x0=old[sy.free])
         # budget from the consistent residual of the full (unreduced) system (T9)
         r = sy.S @ out - rhs
-        limiter = self.ctx.systems.limiter(s)
-        if limiter is not None:  # T16b: the limited fluxes, explicit
-            M0, D, m_l = limiter
-            g, n_blocked = limited_fluxes(M0, D, m_l, out, old, dt, sy.fixed,
-                                          reach=LIMITING_REACH)
+        ops = self.ctx.systems.limiter(s)
+        if ops is not None and self.target is not None:  # T16b: the limited fluxes, explicit
+            high = self._target_step(guess, out)
+            g, n_blocked, _passes = limited_target_fluxes(ops, out, high, old, dt,
+                                                          self.target[0].theta, sy.fixed,
+                                                          reach=LIMITING_REACH)
             self.blocked = max(self.blocked or 0.0, n_blocked / max(sy.free.size, 1))
             self.limited_state = out.copy()  # the state the fluxes act on
-            out[sy.free] += dt * g[sy.free] / m_l[sy.free]
+            out[sy.free] += dt * g[sy.free] / ops.lumped[sy.free]
             r -= g
         return out, r, 0.0, 1
+
+    def _target_step(self, guess: FloatArray, low: FloatArray) -> FloatArray:
+        """The Galerkin step of the target scheme (T16b), started from the low-order one."""
+        assert self.target is not None
+        co, sy, load, prev = self.target
+        hist = co.a1 * self.old + (0.0 if prev is None else co.a2 * prev)
+        rhs = -(sy.M @ hist) / self.dt + sy.explicit_part @ self.old + load
+        high = guess.copy()
+        high[sy.free] = sy.solver.solve(rhs[sy.free] - sy.S_fD @ guess[sy.fixed],
+                                        x0=low[sy.free])
+        return high
 
 
 def _with_shock_capturing(

@@ -21,6 +21,7 @@ from fe3d.linalg import LinearSolver, solve_with_preconditioner
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import split_rows
 from fe3d.transport.assembly import monotone_operators, transport_operators
+from fe3d.transport.limiter import TargetFluxes
 from fe3d.transport.model import MediumFields, SpeciesModel
 from fe3d.transport.stabilization import supg_tau
 from fe3d.transport.timeschemes import StepCoefficients
@@ -83,8 +84,10 @@ class _SpeciesCache:
 
     galerkin: tuple[sp.csr_matrix, sp.csr_matrix] | None = None
     operators: dict[float, tuple[sp.csr_matrix, sp.csr_matrix]] = field(default_factory=dict)
-    limiter: tuple[sp.csr_matrix, sp.csr_matrix, FloatArray] | None = None
+    limiter: TargetFluxes | None = None
     systems: dict[tuple[float, float, float, tuple[str, ...]], StepSystem] = field(
+        default_factory=dict)
+    targets: dict[tuple[float, float, tuple[str, ...]], StepSystem] = field(
         default_factory=dict)
 
 
@@ -109,9 +112,13 @@ class StepSystems:
             return dt
         return self.time.step * 2.0 ** round(math.log2(dt / self.time.step))
 
-    def limiter(self, s: SpeciesModel) -> tuple[sp.csr_matrix, sp.csr_matrix, FloatArray] | None:
-        """Consistent mass M, added diffusion D and lumped mass m_L of the species' flux
-        limiting (T16b), or None when it is not limited."""
+    def limited(self, s: SpeciesModel) -> bool:
+        """True when the species' low-order steps are corrected towards a target (T16b)."""
+        return self.scheme.flux_limiting and not s.nonlinear
+
+    def limiter(self, s: SpeciesModel) -> TargetFluxes | None:
+        """The operators of the species' flux correction (T16b), or None when it is not
+        limited."""
         return self._of(s).limiter
 
     def operators(self, s: SpeciesModel, dt_tau: float) -> tuple[sp.csr_matrix, sp.csr_matrix]:
@@ -126,9 +133,10 @@ class StepSystems:
                 M0, K0 = self.galerkin(s)
                 ML, KD = monotone_operators(M0, K0)
                 cache.operators[0.0] = (ML, KD)
-                if self.scheme.flux_limiting and not s.nonlinear:
-                    cache.limiter = (M0, pattern.matrix(KD.data - K0.data), ML.diagonal())
-                cache.galerkin = None  # not needed again: free its memory
+                if self.limited(s):  # the Galerkin operators are the target's (T16b)
+                    cache.limiter = TargetFluxes.of(M0, K0, KD)
+                else:
+                    cache.galerkin = None  # not needed again: free its memory
             return cache.operators[0.0]
         if dt_tau not in cache.operators:
             M, K = self.galerkin(s)
@@ -163,26 +171,43 @@ class StepSystems:
             cache.galerkin = (M0, K0)
         return cache.galerkin
 
+    def target_system(self, s: SpeciesModel, dt: float, co: StepCoefficients,
+                      active: tuple[str, ...]) -> StepSystem:
+        """The Galerkin step a0/Δt M + θK that flux correction aims at (T16b), reduced to
+        the free nodes, with its solver; built like :meth:`system`."""
+        cache = self._of(s)
+        key = (float(f"{co.a0 / dt:.12g}"), co.theta, active)
+        if key not in cache.targets:
+            M, K = self.galerkin(s)
+            while len(cache.targets) >= MAX_CACHED:
+                cache.targets.pop(next(iter(cache.targets)))
+            cache.targets[key] = self._split(M, K, dt, co, active)
+        return cache.targets[key]
+
+    def _split(self, M: sp.csr_matrix, K: sp.csr_matrix, dt: float, co: StepCoefficients,
+               active: tuple[str, ...]) -> StepSystem:
+        """S = a0/Δt M + θK split by held and free nodes, with its solver."""
+        pattern, n = self.site.pattern, self.site.n_nodes
+        S = pattern.matrix((co.a0 / dt) * M.data + co.theta * K.data)
+        is_fixed = np.zeros(n, dtype=bool)
+        for name in active:
+            is_fixed[self.held_nodes[name]] = True
+        free = np.nonzero(~is_fixed)[0]
+        fixed = np.nonzero(is_fixed)[0]
+        S_ff, S_fD = split_rows(S, free, fixed)
+        solver = LinearSolver(S_ff, method=self.solver.linear_solver, tol=self.solver.tolerance)
+        return StepSystem(S=S, explicit_part=pattern.matrix((co.theta - 1.0) * K.data), M=M,
+                          solver=solver, free=free, fixed=fixed, S_fD=S_fD)
+
     def system(self, s: SpeciesModel, dt: float, co: StepCoefficients,
                active: tuple[str, ...]) -> StepSystem:
         """S = a0/Δt M + θK for this step, reduced to the free nodes, with its solver."""
-        cache, pattern, n = self._of(s), self.site.pattern, self.site.n_nodes
+        cache = self._of(s)
         dt_tau = self.tau_step(dt)
         key = (float(f"{co.a0 / dt:.12g}"), co.theta, dt_tau, active)
         if key not in cache.systems:
             M, K = self.operators(s, dt_tau)
-            S = pattern.matrix((co.a0 / dt) * M.data + co.theta * K.data)
-            is_fixed = np.zeros(n, dtype=bool)
-            for name in active:
-                is_fixed[self.held_nodes[name]] = True
-            free = np.nonzero(~is_fixed)[0]
-            fixed = np.nonzero(is_fixed)[0]
-            S_ff, S_fD = split_rows(S, free, fixed)
-            solver = LinearSolver(S_ff, method=self.solver.linear_solver,
-                                  tol=self.solver.tolerance)
             while len(cache.systems) >= MAX_CACHED:
                 cache.systems.pop(next(iter(cache.systems)))
-            cache.systems[key] = StepSystem(
-                S=S, explicit_part=pattern.matrix((co.theta - 1.0) * K.data), M=M,
-                solver=solver, free=free, fixed=fixed, S_fD=S_fD)
+            cache.systems[key] = self._split(M, K, dt, co, active)
         return cache.systems[key]

@@ -18,7 +18,7 @@ from skfem import MeshTet
 
 from fe3d.transport.assembly import monotone_operators, transport_operators
 from fe3d.transport.dispersion import dispersion_tensor
-from fe3d.transport.limiter import limited_fluxes
+from fe3d.transport.limiter import TargetFluxes, limited_target_fluxes, raw_flux_sums
 
 
 def _operators() -> tuple[sp.csr_matrix, sp.csr_matrix]:
@@ -66,52 +66,86 @@ def test_backward_euler_step_matrix_has_a_nonnegative_inverse(dt: float) -> None
 
 
 def _limiter_inputs(seed: int) -> tuple:
-    """M, its row sums, the added diffusion D of T16, and random low-order and old fields
-    (random, so that the limiter is active)."""
+    """The correction's operators (theory.md T16b) and random low-order, target and old
+    fields (random, so that the limiter is active)."""
     M, K = _operators()
-    ML, KD = monotone_operators(M, K)
-    D = sp.csr_matrix((KD.data - K.data, K.indices, K.indptr), shape=K.shape)
+    _, KD = monotone_operators(M, K)
     rng = np.random.default_rng(seed)
-    return M, ML.diagonal(), D, rng.random(K.shape[0]), rng.random(K.shape[0])
+    n = K.shape[0]
+    return TargetFluxes.of(M, K, KD), rng.random(n), rng.random(n), rng.random(n)
+
+
+def _neighbourhood(ops: TargetFluxes) -> sp.csr_matrix:
+    return (abs(ops.mass) + sp.identity(ops.lumped.size)).tocsr()
 
 
 def test_limited_fluxes_conserve_and_keep_local_bounds() -> None:
-    """Linearised flux correction (theory.md T16b): the limited fluxes cancel in pairs (Σ g
-    = 0 to round-off) and every corrected free value lies within the low-order values of
-    its node and neighbours (Zalesak 1979's limiter, by construction); fixed nodes take no
+    """Flux correction (theory.md T16b): the limited fluxes cancel in pairs (Σ g = 0 to
+    round-off); with one pass of the limiter every corrected free value lies within the
+    low-order values of its node and neighbours (Zalesak 1979's limiter, by construction);
+    with the default passes within the low-order field's global range; fixed nodes take no
     correction."""
-    M, m_l, D, c_low, c_old = _limiter_inputs(8)
-    n = m_l.size
+    ops, c_low, c_high, c_old = _limiter_inputs(8)
+    m_l, n = ops.lumped, ops.lumped.size
     fixed = np.arange(0, n, 7)
-    dt = 1e6
-    g, n_blocked = limited_fluxes(M, D, m_l, c_low, c_old, dt, fixed)
-    assert n_blocked == 0  # no reach given: no node blocked
-    assert abs(g.sum()) <= 1e-12 * np.abs(g).sum()
     free = np.setdiff1d(np.arange(n), fixed)
+    dt = 1e6
+    g, n_blocked, passes = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 0.5, fixed,
+                                                 passes=1)
+    assert n_blocked == 0 and passes == 1  # no reach given: no node blocked
+    assert abs(g.sum()) <= 1e-12 * np.abs(g).sum()
     c = c_low.copy()
     c[free] += dt * g[free] / m_l[free]
-    adj = (abs(M) + sp.identity(n)).tocsr()
+    adj = _neighbourhood(ops)
     for i in free:
         nb = c_low[adj.indices[adj.indptr[i]:adj.indptr[i + 1]]]
         assert nb.min() - 1e-12 <= c[i] <= nb.max() + 1e-12
     assert np.abs(dt * g[free] / m_l[free]).max() > 1e-3  # the correction is not trivially 0
+    g, _, passes = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 0.5, fixed)
+    assert passes > 1
+    assert abs(g.sum()) <= 1e-12 * np.abs(g).sum()
+    c = c_low.copy()
+    c[free] += dt * g[free] / m_l[free]
+    assert c_low.min() - 1e-12 <= c.min() and c.max() <= c_low.max() + 1e-12
+
+
+def test_raw_fluxes_carry_the_difference_between_the_steps() -> None:
+    """The flux decomposition of T16b: for the low-order backward Euler step c_L and the
+    Galerkin Crank–Nicolson step c_H from the same cⁿ (dense solves, numpy), M_L(c_H −
+    c_L)/Δt equals the sum of the raw fluxes plus x_i Σ_j l_ji, x = c_L − ĉ. Tolerance:
+    1e-9 of the largest term (the dense solves' round-off times the step matrices'
+    condition numbers, about 1e3 here)."""
+    M, K = _operators()
+    ML, KD = monotone_operators(M, K)
+    ops = TargetFluxes.of(M, K, KD)
+    rng = np.random.default_rng(5)
+    n = K.shape[0]
+    c_old, b, dt = rng.random(n), 1e-7 * rng.random(n), 3e5
+    Md, Kd, MLd, KDd = M.toarray(), K.toarray(), ML.toarray(), KD.toarray()
+    c_low = np.linalg.solve(MLd / dt + KDd, MLd @ c_old / dt + b)
+    c_high = np.linalg.solve(Md / dt + 0.5 * Kd, Md @ c_old / dt - 0.5 * Kd @ c_old + b)
+    x = c_low - 0.5 * (c_high + c_old)
+    lhs = ops.lumped * (c_high - c_low) / dt
+    rhs = raw_flux_sums(ops, c_low, c_high, c_old, dt, 0.5) + x * KDd.sum(axis=0)
+    np.testing.assert_allclose(rhs, lhs, rtol=0, atol=1e-9 * np.abs(lhs).max())
 
 
 def test_limiting_stops_where_the_step_is_long() -> None:
-    """A node whose step is long against its low-order exchange (Δt Σ|d_ij| > reach m_i)
+    """A node whose step is long against its low-order exchange (Δt Σ d_ij > reach m_i)
     takes and gives no flux (theory.md T16b): with reach 0 no flux is left, and with a reach
     between the nodes' smallest and largest ratios the blocked nodes get none."""
-    M, m_l, D, c_low, c_old = _limiter_inputs(3)
+    ops, c_low, c_high, c_old = _limiter_inputs(3)
     dt = 1e6
     none = np.array([], dtype=np.int64)
-    ratio = dt * (-(D - sp.diags(D.diagonal())).sum(axis=1).A1) / m_l
-    g0, n0 = limited_fluxes(M, D, m_l, c_low, c_old, dt, none, reach=0.0)
+    ratio = dt * ops.diffusion.diagonal() / ops.lumped
+    g0, n0, _ = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 1.0, none, reach=0.0)
     assert np.all(g0 == 0.0) and n0 == int(np.sum(ratio > 0.0))  # a node with no exchange
     # is not blocked, but all its neighbours are
     levels = np.unique(ratio)  # the regular mesh repeats ratios: reach between two of them
     k = levels.size // 2
     reach = float(0.5 * (levels[k] + levels[k + 1]))
-    g, n_blocked = limited_fluxes(M, D, m_l, c_low, c_old, dt, none, reach=reach)
+    g, n_blocked, _ = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 1.0, none,
+                                            reach=reach)
     assert n_blocked == int(np.sum(ratio > reach))
     assert np.all(g[ratio > reach] == 0.0)
     assert np.any(g[ratio <= reach] != 0.0)
