@@ -1,0 +1,217 @@
+"""Everything a run writes after the flow and during and after the transport.
+
+:func:`write_flow_outputs` writes the flow field, its budget, the pathlines and the head
+map; :class:`SeriesWriter` writes each output time as the transport yields it (the
+concentration series, plume surfaces and tables, the mass budget) and, at the end, the
+histories, the breakthrough figure, ``summary.json`` and ``report.md``. Nothing here
+recomputes physics: it reads the records of the earlier stages.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from fe3d._typing import FloatArray
+from fe3d.case.schema import Case
+from fe3d.flow.paths import TravelPaths
+from fe3d.flow.solve import FlowField
+from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.post.figures import plot_breakthrough, plot_heads
+from fe3d.post.plume import plume_extent, write_isosurface
+from fe3d.post.probes import breakthrough
+from fe3d.post.report import ObservationResult, RunSummary, write_report, write_summary_json
+from fe3d.post.tables import (
+    write_flow_budget,
+    write_histories,
+    write_mass_budget,
+    write_plume_table,
+)
+from fe3d.post.vtk import write_field, write_pathlines, write_pvd
+from fe3d.transport.budget import MassBudget
+from fe3d.transport.run import Snapshot
+from fe3d.units import from_si, to_seconds
+
+__all__ = ["PlumeRow", "SeriesWriter", "method_words", "write_flow_outputs"]
+
+
+def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField,
+                       porosity: FloatArray, paths: TravelPaths) -> list[str]:
+    """``flow.vtu`` (head, Darcy flux, seepage velocity, conductivity in m/d),
+    ``flow_budget.csv``, the forward and backward pathlines and the head map; returns the
+    names of the files written. ``porosity`` is per cell."""
+    per_day = to_seconds("d")
+    write_field(site, out_dir / "flow.vtu", point_data={"head [m]": flow.head},
+                cell_data={"darcy_flux [m/d]": (flow.darcy_flux * per_day).T,
+                           "seepage_velocity [m/d]": (flow.darcy_flux / porosity * per_day).T,
+                           "conductivity [m/d]": (flow.conductivity * per_day).T})
+    write_flow_budget(out_dir / "flow_budget.csv", flow)
+    tu = case.output.time_unit
+    tsec = to_seconds(tu)
+    forward = [p for lines in paths.forward.values() for p in lines]
+    backward = [p for lines in paths.backward.values() for p in lines]
+    write_pathlines(out_dir / "pathlines_forward.vtp", [(p.points, p.times) for p in forward],
+                    time_unit_seconds=tsec, time_unit=tu)
+    write_pathlines(out_dir / "pathlines_backward.vtp", [(p.points, p.times) for p in backward],
+                    time_unit_seconds=tsec, time_unit=tu)
+    top = site.faces["top"]
+    under_top = np.isin(site.cells, np.unique(top)).sum(axis=0) >= 3
+    centres = site.points[:2, site.cells[:, under_top]].mean(axis=1)
+    plot_heads(out_dir / "heads_plan.png", site.points, top, flow.head,
+               (centres, flow.darcy_flux[:2, under_top]),
+               markers={**{o.name: (o.x, o.y) for o in case.observation_points},
+                        **{w.name: (w.x, w.y) for w in case.wells}},
+               pathlines=[p.points for p in forward] + [p.points for p in backward],
+               title=f"{case.title}: head on the top face")
+    return ["flow.vtu", "flow_budget.csv", "pathlines_forward.vtp", "pathlines_backward.vtp",
+            "heads_plan.png"]
+
+
+@dataclass(frozen=True)
+class PlumeRow:
+    """The part of one species' plume above its limit at one output time (SI units)."""
+
+    species: str
+    time: float
+    limit: float
+    volume: float
+    dissolved_mass: float
+    extent: float
+
+
+class SeriesWriter:
+    """Writes a run's transport outputs as the snapshots arrive, then the summary.
+
+    ``porosity`` is per cell; the nodal volumes and pore volumes of the plume measures are
+    lumped from it once here."""
+
+    def __init__(self, out_dir: Path, case: Case, site: SiteMesh, porosity: FloatArray) -> None:
+        self.out_dir, self.case, self.site = out_dir, case, site
+        self.node_volume = site.lumped(np.ones(site.n_cells))
+        self.node_pore_volume = site.lumped(porosity)
+        self.origins = {sp: next((s.plan_centre for s in case.sources
+                                  if s.species == sp and s.plan_centre is not None),
+                                 (float(site.points[0].mean()), float(site.points[1].mean())))
+                        for sp in case.species}
+        self.plume_rows: list[PlumeRow] = []
+        self.series: list[tuple[float, str]] = []
+        self.budgets: list[MassBudget] = []
+        self.last: Snapshot | None = None
+
+    def add(self, snap: Snapshot) -> None:
+        """Write one output time: the fields, the plume surfaces and the running tables."""
+        out, case = self.out_dir, self.case
+        tu, cu = case.output.time_unit, case.output.concentration_unit
+        scale = from_si(1.0, cu)
+        k = len(self.series)
+        name = f"concentration_{k:04d}.vtu"
+        write_field(self.site, out / name, point_data={
+            f"{sp} [{cu}]": c * scale for sp, c in snap.concentration.items()})
+        self.series.append((from_si(snap.time, tu), name))
+        write_pvd(out / "concentration.pvd", self.series, time_unit=tu)
+        for sp, c in snap.concentration.items():
+            lim = case.species[sp].limit
+            ext = plume_extent(self.site.points, self.node_volume, self.node_pore_volume, c,
+                               lim, self.origins[sp])
+            self.plume_rows.append(PlumeRow(sp, snap.time, lim, ext.volume, ext.dissolved_mass,
+                                            ext.extent))
+            write_isosurface(out / f"plume_{sp}_{k:04d}.vtp", self.site.points,
+                             self.site.cells, c * scale, lim * scale, name=f"{sp} [{cu}]")
+        write_plume_table(out / "plume.csv",
+                          [(r.species, r.time, r.limit, r.volume, r.dissolved_mass, r.extent)
+                           for r in self.plume_rows], time_unit=tu, conc_unit=cu)
+        self.budgets += list(snap.budgets.values())
+        write_mass_budget(out / "mass_budget.csv", self.budgets, time_unit=tu)
+        self.last = snap
+
+    def finish(self, flow: FlowField, paths: TravelPaths, files: list[str],
+               started: float) -> RunSummary:
+        """Write the histories, the breakthrough figure, ``summary.json`` and ``report.md``
+        after the last snapshot; ``files`` are those written before the transport and
+        ``started`` the run's start (``time.perf_counter``). Returns the summary."""
+        last, case, out = self.last, self.case, self.out_dir
+        assert last is not None
+        tu, cu = case.output.time_unit, case.output.concentration_unit
+        names = [o.name for o in case.observation_points]
+        write_histories(out / "histories.csv", last.history_times, last.history, names,
+                        time_unit=tu, conc_unit=cu)
+        limits = {sp: s.limit for sp, s in case.species.items()}
+        files = list(files)
+        if names:
+            plot_breakthrough(out / "breakthrough.png", last.history_times, last.history,
+                              names, limits, time_unit=tu, conc_unit=cu, title=case.title)
+            files.append("breakthrough.png")
+        files += [f"plume_{sp}_{k:04d}.vtp" for k in range(len(self.series))
+                  for sp in case.species]
+        files += ["concentration.pvd", *[f for _, f in self.series], "mass_budget.csv",
+                  "histories.csv", "plume.csv", "summary.json", "report.md", "solver.log"]
+        summary = self._summary(last, flow, paths, files, started)
+        write_summary_json(out / "summary.json", summary)
+        write_report(out / "report.md", summary)
+        return summary
+
+    def _summary(self, last: Snapshot, flow: FlowField, paths: TravelPaths,
+                 files: list[str], started: float) -> RunSummary:
+        case, site = self.case, self.site
+        limits = {sp: s.limit for sp, s in case.species.items()}
+        observations = []
+        for sp, values in last.history.items():
+            for j, o in enumerate(case.observation_points):
+                b = breakthrough(last.history_times, values[:, j], limits[sp])
+                observations.append(ObservationResult(
+                    name=o.name, kind=o.kind, species=sp, peak=b.peak, peak_time=b.peak_time,
+                    first_above_limit=b.first_above_limit, limit=limits[sp]))
+        worst = {sp: max(b.relative_error for b in self.budgets if b.species == sp)
+                 for sp in case.species}
+        d = last.diagnostics
+        plume = {}
+        for sp in case.species:
+            rows = [r for r in self.plume_rows if r.species == sp]
+            largest = max(rows, key=lambda r: r.extent)
+            plume[sp] = {"largest_extent": largest.extent,
+                         "time_of_largest_extent": largest.time,
+                         "largest_volume": max(r.volume for r in rows),
+                         "final_extent": rows[-1].extent}
+        return RunSummary(
+            title=case.title, site=case.site, n_nodes=site.n_nodes, n_cells=site.n_cells,
+            end_time=case.time.end, n_steps=d.n_steps, observations=observations,
+            step_range=(d.smallest_step, d.largest_step), step_cuts=d.step_cuts,
+            rejected_steps=d.rejected_steps, method=method_words(case),
+            limiting_blocked=d.limiting_blocked, monotone=case.solver.monotone,
+            mass_balance_error=worst, flow_inflow=flow.total_inflow,
+            flow_discrepancy=flow.discrepancy, max_grid_peclet=d.max_grid_peclet,
+            max_courant=d.max_courant,
+            min_concentration={k: v[0] for k, v in d.min_concentration.items()},
+            min_concentration_at={k: v[1] for k, v in d.min_concentration.items()},
+            source_max={sp: max([src.peak_concentration for src in case.sources
+                                 if src.species == sp and src.peak_concentration is not None]
+                                + [c for w in case.wells for name, c in
+                                   w.injection_concentration.items() if name == sp],
+                                default=0.0) for sp in case.species},
+            plume=plume,
+            travel_times=[{"source": a.source, "receptor": a.receptor, "time": a.time,
+                           "closest": a.closest, "reach": a.reach} for a in paths.arrivals],
+            well_heads=dict(flow.well_heads),
+            wall_time=time.perf_counter() - started, time_unit=case.output.time_unit,
+            concentration_unit=case.output.concentration_unit, files=files)
+
+
+def method_words(case: Case) -> str:
+    """The transport method in words, for the report (theory.md T6, T13–T16b)."""
+    sc = case.solver
+    names = {"backward_euler": "backward Euler", "crank_nicolson": "Crank–Nicolson",
+             "bdf2": "BDF2"}
+    time_words = names[case.time.scheme] + (", adaptive steps" if case.time.adaptive else "")
+    if sc.monotone:
+        space = ("low-order monotone (lumped storage, discrete upwinding)"
+                 + (" with flux limiting" if sc.flux_limiting else ""))
+    elif sc.supg:
+        space = "SUPG" + (" with shock capturing" if sc.shock_capturing else "")
+    else:
+        space = "Galerkin, no stabilisation" + (" with shock capturing"
+                                                if sc.shock_capturing else "")
+    return f"{time_words}; {space}; linear solver {sc.linear_solver}, " \
+           f"relative tolerance {sc.tolerance:.0e}"
