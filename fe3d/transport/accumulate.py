@@ -21,7 +21,8 @@ class TransportDiagnostics:
     """Numbers that tell whether the discretisation was adequate.
 
     Per species: the largest grid Péclet and Courant numbers, the most negative value
-    [kg/m³] and where [m] (None before any value fell below zero) and the largest share of
+    [kg/m³] and where [m] (None before any value fell below zero), the largest value over
+    the run [kg/m³] and where (None at t = 0), and the largest share of
     free nodes flux limiting left at low order in a step (T16b). For the run: steps taken,
     the linear solver used, step cuts and rejections, the smallest and largest step [s],
     the most Newton iterations and user-law sweeps (T11b) in one step."""
@@ -38,6 +39,8 @@ class TransportDiagnostics:
     max_newton_iterations: int = 0
     max_coupling_sweeps: int = 0
     limiting_blocked: dict[str, float] = field(default_factory=dict)
+    max_concentration: dict[str, tuple[float, tuple[float, ...] | None]] = field(
+        default_factory=dict)
 
 
 def grid_peclet(s: SpeciesModel, seepage_velocity: FloatArray, porosity: FloatArray) -> float:
@@ -87,6 +90,8 @@ class RunStatistics:
         self.courant = dict.fromkeys(peclet, 0.0)
         self.lowest: dict[str, tuple[float, tuple[float, ...] | None]] = dict.fromkeys(
             peclet, (0.0, None))
+        self.highest: dict[str, tuple[float, tuple[float, ...] | None]] = dict.fromkeys(
+            peclet, (-np.inf, None))
         self.blocked: dict[str, float] = {}
         self.n_steps = 0
         self.dt_min, self.dt_max = math.inf, 0.0
@@ -110,6 +115,9 @@ class RunStatistics:
             j = int(np.argmin(new))
             if new[j] < self.lowest[s.name][0]:
                 self.lowest[s.name] = (float(new[j]), tuple(float(x) for x in points[:, j]))
+            k = int(np.argmax(new))
+            if new[k] > self.highest[s.name][0]:
+                self.highest[s.name] = (float(new[k]), tuple(float(x) for x in points[:, k]))
             where = ", ".join(f"{x:.1f}" for x in points[:, j])
             lows.append(f"{s.name} min {new[j]:.3g} kg/m³ at ({where}) m")
             self.courant[s.name] = max(self.courant[s.name],
@@ -124,4 +132,5 @@ class RunStatistics:
             solver=self.solver, step_cuts=step_cuts, rejected_steps=rejected,
             smallest_step=0.0 if self.n_steps == 0 else float(self.dt_min),
             largest_step=float(self.dt_max), max_newton_iterations=self.newton,
-            max_coupling_sweeps=self.sweeps, limiting_blocked=dict(self.blocked))
+            max_coupling_sweeps=self.sweeps, limiting_blocked=dict(self.blocked),
+            max_concentration={k: v for k, v in self.highest.items() if v[1] is not None})
