@@ -20,7 +20,17 @@ from fe3d.case.schema import Case
 from fe3d.flow.paths import TravelPaths
 from fe3d.flow.solve import FlowField
 from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.p1 import BoundaryFacets
 from fe3d.post.figures import plot_breakthrough, plot_heads
+from fe3d.post.limit_checks import (
+    BoundaryContact,
+    boundary_contacts,
+    first_times_above,
+    outflow_nodes,
+    species_extremes,
+    upper_bound,
+    widen_window,
+)
 from fe3d.post.plume import plume_extent, write_isosurface
 from fe3d.post.probes import breakthrough
 from fe3d.post.report import ObservationResult, RunSummary, write_report, write_summary_json
@@ -100,6 +110,13 @@ class SeriesWriter:
         self.series: list[tuple[float, str]] = []
         self.budgets: list[MassBudget] = []
         self.last: Snapshot | None = None
+        # limit checks: first output time above the limit at each boundary node, and the
+        # output times between which each species' lowest and highest values were reached
+        self.boundary_nodes = np.unique(np.concatenate(
+            [t.ravel() for t in site.faces.values()])) if site.faces else np.zeros(0, int)
+        self.first_above = {sp: np.full(self.boundary_nodes.size, np.nan)
+                            for sp in case.species}
+        self.extreme_windows: dict[tuple[str, str], tuple[float, float] | None] = {}
 
     def add(self, snap: Snapshot) -> None:
         """Write one output time: the fields, the plume surfaces and the running tables."""
@@ -120,12 +137,30 @@ class SeriesWriter:
                                             ext.extent))
             write_isosurface(out / f"plume_{sp}_{k:04d}.vtp", self.site.points,
                              self.site.cells, c * scale, lim * scale, name=f"{sp} [{cu}]")
+            self.first_above[sp] = first_times_above(
+                self.first_above[sp], c[self.boundary_nodes], lim, snap.time)
+        self._follow_extremes(snap)
         write_plume_table(out / "plume.csv",
                           [(r.species, r.time, r.limit, r.volume, r.dissolved_mass, r.extent)
                            for r in self.plume_rows], time_unit=tu, conc_unit=cu)
         self.budgets += list(snap.budgets.values())
         write_mass_budget(out / "mass_budget.csv", self.budgets, time_unit=tu)
         self.last = snap
+
+    def _follow_extremes(self, snap: Snapshot) -> None:
+        """Note between which output times each running extreme was last reached."""
+        if self.last is None:
+            return
+        before, now = self.last.diagnostics, snap.diagnostics
+        for sp in self.case.species:
+            for kind, old, new in (
+                    ("lowest", before.min_concentration[sp][0],
+                     now.min_concentration[sp][0]),
+                    ("highest", before.max_concentration.get(sp, (-np.inf, None))[0],
+                     now.max_concentration.get(sp, (-np.inf, None))[0])):
+                self.extreme_windows[sp, kind] = widen_window(
+                    self.extreme_windows.get((sp, kind)), old, new, self.last.time,
+                    snap.time, lower=kind == "lowest")
 
     def finish(self, flow: FlowField, paths: TravelPaths, files: list[str],
                started: float) -> RunSummary:
@@ -167,6 +202,11 @@ class SeriesWriter:
         worst = {sp: max(b.relative_error for b in self.budgets if b.species == sp)
                  for sp in case.species}
         d = last.diagnostics
+        source_max = {sp: max([src.peak_concentration for src in case.sources
+                               if src.species == sp and src.peak_concentration is not None]
+                              + [c for w in case.wells for name, c in
+                                 w.injection_concentration.items() if name == sp],
+                              default=0.0) for sp in case.species}
         plume = {}
         for sp in case.species:
             rows = [r for r in self.plume_rows if r.species == sp]
@@ -186,17 +226,44 @@ class SeriesWriter:
             max_courant=d.max_courant,
             min_concentration={k: v[0] for k, v in d.min_concentration.items()},
             min_concentration_at={k: v[1] for k, v in d.min_concentration.items()},
-            source_max={sp: max([src.peak_concentration for src in case.sources
-                                 if src.species == sp and src.peak_concentration is not None]
-                                + [c for w in case.wells for name, c in
-                                   w.injection_concentration.items() if name == sp],
-                                default=0.0) for sp in case.species},
-            plume=plume,
+            source_max=source_max, plume=plume,
             travel_times=[{"source": a.source, "receptor": a.receptor, "time": a.time,
-                           "closest": a.closest, "reach": a.reach} for a in paths.arrivals],
+                           "closest": a.closest, "arrival_radius": a.reach}
+                          for a in paths.arrivals],
+            extremes={sp: species_extremes(
+                sp, limits[sp], lowest=d.min_concentration[sp],
+                highest=d.max_concentration.get(sp, (-np.inf, None)),
+                lowest_between=self.extreme_windows.get((sp, "lowest")),
+                highest_between=self.extreme_windows.get((sp, "highest")),
+                bound=upper_bound(
+                    [source_max[sp], case.species[sp].initial_concentration],
+                    has_parent=case.species[sp].parent is not None,
+                    has_mass_loading=any(src.species == sp and src.kind == "mass_loading"
+                                         for src in case.sources)))
+                for sp in case.species},
+            boundary_contacts=self._boundary_contacts(flow),
+            solver_tolerance=case.solver.tolerance,
             well_heads=dict(flow.well_heads),
             wall_time=time.perf_counter() - started, time_unit=case.output.time_unit,
             concentration_unit=case.output.concentration_unit, files=files)
+
+    def _boundary_contacts(self, flow: FlowField) -> list[BoundaryContact]:
+        """Faces where the part above a limit touched nodes that let no water out: not
+        on a fixed-head face where water leaves (outward flux at an adjacent facet, as the
+        transport's outflow term, theory.md T3b) nor at a budget item taking water out."""
+        site, n = self.site, self.site.n_nodes
+        face_outflow = {}
+        for name in flow.fixed_head_nodes:
+            facets = BoundaryFacets.of(site.points, site.cells, site.faces[name])
+            face_outflow[name] = facets.load(
+                np.clip(facets.normal_flux(flow.darcy_flux), 0.0, None), n)
+        leaves = outflow_nodes(n, face_outflow, flow.exchange)
+        contacts = []
+        for sp, first in self.first_above.items():
+            everywhere = np.full(n, np.nan)
+            everywhere[self.boundary_nodes] = first
+            contacts += boundary_contacts(sp, everywhere, site.faces, leaves)
+        return contacts
 
 
 def method_words(case: Case) -> str:

@@ -3,20 +3,31 @@
 from __future__ import annotations
 
 import json
+import math
+import re
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 from fe3d.post.files import write_text_atomic
+from fe3d.post.limit_checks import BoundaryContact, SpeciesExtremes
 from fe3d.units import from_si
 
 __all__ = [
     "CAUTION",
+    "SIGNIFICANT_DIGITS",
     "ObservationResult",
     "RunSummary",
+    "file_groups",
     "quality_warnings",
+    "rounded",
     "write_report",
     "write_summary_json",
 ]
+
+#: Significant digits of the numbers in summary.json: enough for every value a run
+#: computes (the linear solver's tolerance is 1e-8 or coarser), few enough to drop the
+#: binary round-off of unit conversions (4.999999999999999e-06 → 5e-06).
+SIGNIFICANT_DIGITS = 10
 
 CAUTION = ("CAUTION: fe3d results are screening estimates that depend entirely on the inputs "
            "(geology, conductivity, sources, parameters). They do not replace site "
@@ -68,6 +79,9 @@ class RunSummary:
     method: str = ""  # the time scheme and the spatial scheme, in words
     monotone: bool = False  # solver.monotone was on (T16)
     limiting_blocked: dict[str, float] = field(default_factory=dict)  # T16b, fraction
+    extremes: dict[str, SpeciesExtremes] = field(default_factory=dict)
+    boundary_contacts: list[BoundaryContact] = field(default_factory=list)
+    solver_tolerance: float = 0.0  # relative tolerance of the linear solver [-]
 
 
 def quality_warnings(s: RunSummary) -> list[str]:
@@ -78,7 +92,6 @@ def quality_warnings(s: RunSummary) -> list[str]:
     stabilisation; undershoots above 1 % of the source are visible against typical limits.
     """
     out: list[str] = []
-    cu = s.concentration_unit
     for sp in s.mass_balance_error:
         if s.max_courant[sp] > 1.0:
             out.append(f"{sp}: largest Courant number {s.max_courant[sp]:.2g} > 1; first "
@@ -92,25 +105,101 @@ def quality_warnings(s: RunSummary) -> list[str]:
                        "nodes at the low-order value in a step (the step is long against "
                        "their exchange with their neighbours, theory.md T16b): shorten "
                        "time.step and compare")
-        c_min, c_src = s.min_concentration[sp], s.source_max.get(sp, 0.0)
-        if c_src > 0 and c_min < -0.01 * c_src:
-            at = s.min_concentration_at.get(sp)
-            where = "" if at is None else (
-                f" near x={at[0]:.1f} m, y={at[1]:.1f} m, z={at[2]:.1f} m")
-            advice = ("solver.monotone keeps values nonnegative with backward Euler "
-                      "only: use time.scheme = 'backward_euler'" if s.monotone else
-                      "or set solver.monotone = true (no negative values, more numerical "
-                      "spreading; add flux_limiting = true with backward Euler to sharpen "
-                      "it again) and compare")
-            out.append(f"{sp}: most negative concentration {from_si(c_min, cu):.3g} {cu} "
-                       f"({-c_min / c_src:.1%} of the source){where}: refine the mesh "
-                       f"there, {advice}")
+        if sp in s.extremes:
+            out += _limit_warnings(s.extremes[sp], s)
+    out += [f"{b.species}: the part above the limit reaches the {b.face} face where no water "
+            f"leaves the model, first at {_t(b.first_time, s.time_unit)}: the boundary cuts "
+            "the plume; unless that face is a real limit of the aquifer (its base, the water "
+            "table), move it farther out and compare" for b in s.boundary_contacts]
     return out
 
 
+def _where(at: tuple[float, ...] | None) -> str:
+    return "" if at is None else f" near x={at[0]:.1f} m, y={at[1]:.1f} m, z={at[2]:.1f} m"
+
+
+def _between(window: tuple[float, float] | None, unit: str) -> str:
+    return "" if window is None else (f" between {from_si(window[0], unit):.3g} and "
+                                      f"{from_si(window[1], unit):.3g} {unit}")
+
+
+def _span(window: tuple[float, float] | None, unit: str) -> str:
+    return "–" if window is None else (f"{from_si(window[0], unit):.3g}–"
+                                       f"{from_si(window[1], unit):.3g} {unit}")
+
+
+def _limit_warnings(x: SpeciesExtremes, s: RunSummary) -> list[str]:
+    """Negative values and overshoots beyond 1 % of the limit (limit_checks), in words.
+
+    The rule is measured against the limit, not the source: a daughter has no source, and
+    1 % of the limit is what could move the answer "above or below the limit"."""
+    cu, tu, sp = s.concentration_unit, s.time_unit, x.species
+    lim = f"the limit of {from_si(x.limit, cu):.3g} {cu}"
+    advice = ("solver.monotone keeps values nonnegative with backward Euler only: use "
+              "time.scheme = 'backward_euler'" if s.monotone else
+              "or set solver.monotone = true (no negative values, more numerical spreading; "
+              "add flux_limiting = true with backward Euler to sharpen it again) and compare")
+    out = []
+    if x.negative_is_significant:
+        out.append(f"{sp}: most negative concentration {from_si(x.lowest, cu):.3g} {cu} "
+                   f"({x.below_zero_in_limits:.3g} × {lim}){_where(x.lowest_at)}"
+                   f"{_between(x.lowest_between, tu)}: refine the mesh there, {advice}")
+    if x.overshoot_is_significant:
+        assert x.upper_bound is not None and x.overshoot_in_limits is not None
+        out.append(f"{sp}: largest concentration {from_si(x.highest, cu):.4g} {cu} exceeds "
+                   f"the largest source, initial or injected concentration "
+                   f"({from_si(x.upper_bound, cu):.4g} {cu}) by {x.overshoot_in_limits:.3g} × "
+                   f"{lim}{_where(x.highest_at)}{_between(x.highest_between, tu)}: a "
+                   f"discretisation overshoot; refine the mesh there, {advice}")
+    return out
+
+
+def rounded(value: object, digits: int = SIGNIFICANT_DIGITS) -> object:
+    """``value`` with every float rounded to ``digits`` significant digits, recursively
+    through dicts, lists and tuples (tuples become lists, as in JSON)."""
+    if isinstance(value, float):
+        return float(f"{value:.{digits}g}") if math.isfinite(value) else value
+    if isinstance(value, dict):
+        return {k: rounded(v, digits) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [rounded(v, digits) for v in value]
+    return value
+
+
+_NUMBERED = re.compile(r"^(?P<stem>.+)_(?P<index>\d{4})\.(?P<ext>\w+)$")
+_KINDS = {"msh": "mesh and fields", "vtu": "mesh and fields", "pvd": "mesh and fields",
+          "vtp": "pathlines", "csv": "tables", "png": "figures", "json": "summary and report",
+          "md": "summary and report", "log": "log"}
+
+
+def file_groups(files: list[str]) -> list[str]:
+    """The files of a run as a few lines: numbered series counted (``16 concentration
+    fields `concentration_0000–0015.vtu```), the rest grouped by kind, in order of first
+    appearance."""
+    series: dict[tuple[str, str], list[str]] = {}
+    kinds: dict[str, list[str]] = {}
+    for f in files:
+        m = _NUMBERED.match(f)
+        if m:
+            series.setdefault((m["stem"], m["ext"]), []).append(m["index"])
+        else:
+            kinds.setdefault(_KINDS.get(f.rsplit(".", 1)[-1], "other"), []).append(f)
+    lines = []
+    for (stem, ext), idx in series.items():
+        label = ("concentration fields" if stem == "concentration" else
+                 f"surfaces at the limit of {stem[6:]}" if stem.startswith("plume_") else
+                 "files")
+        span = idx[0] if len(idx) == 1 else f"{min(idx)}–{max(idx)}"
+        lines.append(f"{len(idx)} {label} `{stem}_{span}.{ext}`")
+    lines += [f"{kind}: " + ", ".join(f"`{f}`" for f in names) for kind, names in kinds.items()]
+    return lines
+
+
 def write_summary_json(path: Path, s: RunSummary) -> Path:
-    """Everything in :class:`RunSummary`, SI units, keys naming their units."""
-    d = asdict(s)
+    """Everything in :class:`RunSummary`, SI units, numbers to :data:`SIGNIFICANT_DIGITS`
+    significant digits; README.md ("summary.json") describes every key."""
+    d = rounded(asdict(s))
+    assert isinstance(d, dict)
     d["units"] = {"time": "s", "concentration": "kg/m^3", "flow": "m^3/s", "length": "m"}
     d["caution"] = CAUTION
     d["warnings"] = quality_warnings(s)
@@ -120,6 +209,38 @@ def write_summary_json(path: Path, s: RunSummary) -> Path:
 
 def _t(x: float | None, unit: str) -> str:
     return "not reached" if x is None else f"{from_si(x, unit):.3g} {unit}"
+
+
+def _limit_section(s: RunSummary) -> list[str]:
+    """The lowest and highest value of each species over the run against its limit."""
+    if not s.extremes:
+        return []
+    tu, cu = s.time_unit, s.concentration_unit
+    sc = from_si(1.0, cu)
+    lines = ["### Concentrations against the limit (over every time step)", "",
+             f"| species | limit [{cu}] | most negative [{cu}] | × limit | reached | "
+             f"largest [{cu}] | upper bound [{cu}] | overshoot × limit | reached |",
+             "|---|---|---|---|---|---|---|---|---|"]
+    for sp, x in s.extremes.items():
+        bound, over = (("none (daughter or mass loading)", "–") if x.upper_bound is None else
+                       (f"{x.upper_bound * sc:.4g}", f"{x.overshoot_in_limits:.3g}"))
+        lines.append(f"| {sp} | {x.limit * sc:.3g} | {min(x.lowest, 0.0) * sc:.3g} | "
+                     f"{x.below_zero_in_limits:.3g} | {_span(x.lowest_between, tu)} "
+                     f"| {x.highest * sc:.4g} | {bound} | {over} | "
+                     f"{_span(x.highest_between, tu)} |")
+    lines += ["", "\"Reached\" gives the output times between which the value was "
+              "reached. The upper bound is the largest source, initial or injected "
+              "concentration: without decay chains or mass loadings, transport creates no "
+              "new maximum. A daughter's bound depends on how much parent mass (dissolved "
+              "and sorbed) decays near it, so only its largest value is given. Warnings "
+              "follow when a value lies more than 1 % of the limit below zero or above the "
+              "bound (common practice, no source).", ""]
+    if s.boundary_contacts:
+        lines += ["Faces where the part above the limit touches nodes that let no water out "
+                  "(the model may be too small):", "",
+                  *[f"- {b.species}: {b.face} face, first at {_t(b.first_time, tu)}"
+                    for b in s.boundary_contacts], ""]
+    return lines
 
 
 def write_report(path: Path, s: RunSummary) -> Path:
@@ -160,17 +281,19 @@ def write_report(path: Path, s: RunSummary) -> Path:
                      f"{_t(o.peak_time, tu)} | {_t(o.first_above_limit, tu)} | "
                      f"{o.limit * sc:.4g} |")
     lines += ["", "## Numerical quality", "",
-              "| species | mass-balance error [-] | max grid Péclet [-] | max Courant [-] | "
-              f"most negative c [{cu}] |", "|---|---|---|---|---|"]
+              "| species | mass-balance error [-] | max grid Péclet [-] | max Courant [-] |",
+              "|---|---|---|---|"]
     for sp, err in s.mass_balance_error.items():
         lines.append(f"| {sp} | {err:.2e} | {s.max_grid_peclet[sp]:.3g} | "
-                     f"{s.max_courant[sp]:.3g} | {s.min_concentration[sp] * sc:.3g} |")
+                     f"{s.max_courant[sp]:.3g} |")
     warnings = quality_warnings(s)
     lines += ["", "Negative concentrations are a discretisation artefact near steep fronts; "
               "where they are large against the limit, refine the mesh near the plume, or "
               "compare with a run with `solver.monotone = true` (never negative, more "
-              "numerical spreading).", "",
+              "numerical spreading).", "", *_limit_section(s),
               "### Warnings", "", *([f"- {w}" for w in warnings] or ["- none"]), "",
-              "## Files", "", *[f"- `{f}`" for f in s.files], ""]
+              "## Files", "", *[f"- {g}" for g in file_groups(s.files)], "",
+              "`solver.log` is in SI units (times in seconds, concentrations in kg/m³ = 1000 "
+              "mg/L, lengths in m); every other file uses the case's display units.", ""]
     write_text_atomic(path, "\n".join(lines))
     return path
