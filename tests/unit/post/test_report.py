@@ -1,12 +1,23 @@
-"""Quality warnings and breakthrough statistics (post-processing, no physics)."""
+"""Quality warnings, summary.json, the report and breakthrough statistics (post-processing,
+no physics). Behaviour tests unless a docstring names a reference."""
 
 from __future__ import annotations
+
+import json
 
 import numpy as np
 import pytest
 
+from fe3d.post.limit_checks import BoundaryContact, species_extremes
 from fe3d.post.probes import breakthrough
-from fe3d.post.report import RunSummary, quality_warnings
+from fe3d.post.report import (
+    RunSummary,
+    file_groups,
+    quality_warnings,
+    rounded,
+    write_report,
+    write_summary_json,
+)
 
 
 def _summary(**over: object) -> RunSummary:
@@ -29,12 +40,15 @@ def test_no_warning_for_a_resolved_run():
 @pytest.mark.parametrize(("field", "value", "word"), [
     ("max_courant", {"x": 3.0}, "Courant"),
     ("max_grid_peclet", {"x": 8.0}, "Péclet"),
-    ("min_concentration", {"x": -0.05}, "negative"),
+    ("extremes", {"x": species_extremes("x", 1.0, lowest=(-0.05, None),
+                                        highest=(1.0, None), bound=1.0)}, "negative"),
+    ("extremes", {"x": species_extremes("x", 1.0, lowest=(0.0, None),
+                                        highest=(1.05, None), bound=1.0)}, "overshoot"),
     ("limiting_blocked", {"x": 0.25}, "25% of the nodes"),
 ])
 def test_each_threshold_warns(field, value, word):
-    """Thresholds: Courant 1, grid Péclet 2, undershoot 1 % of the source (common practice,
-    no source)."""
+    """Thresholds: Courant 1, grid Péclet 2, undershoot and overshoot 1 % of the limit
+    (common practice, no source)."""
     w = quality_warnings(_summary(**{field: value}))
     assert len(w) == 1
     assert word in w[0]
@@ -42,10 +56,81 @@ def test_each_threshold_warns(field, value, word):
 
 def test_negative_values_advice_follows_the_scheme():
     """The advice names the monotone option, or, when it was on, backward Euler (T16)."""
-    plain = quality_warnings(_summary(min_concentration={"x": -0.05}))[0]
+    low = {"x": species_extremes("x", 1.0, lowest=(-0.05, None), highest=(1.0, None))}
+    plain = quality_warnings(_summary(extremes=low))[0]
     assert "set solver.monotone = true" in plain
-    mono = quality_warnings(_summary(min_concentration={"x": -0.05}, monotone=True))[0]
+    mono = quality_warnings(_summary(extremes=low, monotone=True))[0]
     assert "backward Euler only" in mono and "set solver.monotone" not in mono
+
+
+def test_daughter_below_zero_warns_against_its_limit():
+    """Issue 11: a daughter (no source, source_max 0) at −189 µg/L against a 70 µg/L limit
+    must warn, with the multiple of the limit (2.7), where and between which output times
+    (2 and 4 d). Units: 1 µg/L = 1e-6 kg/m³."""
+    x = species_extremes("x", 70e-6, lowest=(-189e-6, (10.0, 20.0, -3.0)),
+                         highest=(50e-6, None), lowest_between=(172800.0, 345600.0))
+    w = quality_warnings(_summary(source_max={"x": 0.0}, extremes={"x": x},
+                                  concentration_unit="ug/L"))
+    assert len(w) == 1
+    assert w[0].startswith("x: most negative concentration -189 ug/L (2.7 × the limit of 70")
+    assert "x=10.0 m, y=20.0 m, z=-3.0 m between 2 and 4 d" in w[0]
+
+
+def test_small_negatives_and_a_daughter_maximum_stay_silent():
+    """−0.5 % of the limit is below the 1 % rule; a daughter has no bound, so its largest
+    value (here 10 limits) is reported but never called an overshoot."""
+    x = species_extremes("x", 1.0, lowest=(-0.005, None), highest=(10.0, None))
+    assert quality_warnings(_summary(extremes={"x": x})) == []
+
+
+def test_plume_on_a_face_where_no_water_leaves_warns():
+    s = _summary(boundary_contacts=[BoundaryContact("x", "north", 3 * 86400.0)])
+    (w,) = quality_warnings(s)
+    assert w.startswith("x: the part above the limit reaches the north face where no water "
+                        "leaves the model, first at 3 d")
+
+
+def test_summary_json_has_no_float_noise(tmp_path):
+    """Values round to 10 significant digits and read back equal to the rounded value;
+    rounding moves a value by at most half a unit in the 10th digit (5e-10 relative)."""
+    assert json.dumps(rounded({"a": [4.999999999999999e-06, 1, True, None]})) == \
+        '{"a": [5e-06, 1, true, null]}'
+    values = np.random.default_rng(0).lognormal(0.0, 10.0, 50)
+    back = np.array(json.loads(json.dumps(rounded(values.tolist()))))
+    np.testing.assert_allclose(back, values, rtol=5e-10, atol=0)
+    s = _summary(source_max={"x": 0.019999999999999997}, end_time=946728000.0000001)
+    d = json.loads(write_summary_json(tmp_path / "summary.json", s).read_text())
+    assert d["source_max"] == {"x": 0.02}
+    assert d["end_time"] == 946728000.0
+    assert d["min_concentration_at"] == {"x": None}
+
+
+_DEMO_FILES = ["mesh.msh", "mesh.vtu", "flow.vtu", "flow_budget.csv", "pathlines_forward.vtp",
+               "pathlines_backward.vtp", "heads_plan.png", "breakthrough.png",
+               *[f"plume_{sp}_{k:04d}.vtp" for k in range(16) for sp in ("solvent", "brine")],
+               "concentration.pvd", *[f"concentration_{k:04d}.vtu" for k in range(16)],
+               "mass_budget.csv", "histories.csv", "plume.csv", "summary.json", "report.md",
+               "solver.log"]
+
+
+def test_file_groups_count_each_series():
+    lines = file_groups(_DEMO_FILES)
+    assert "16 concentration fields `concentration_0000–0015.vtu`" in lines
+    assert "16 surfaces at the limit of brine `plume_brine_0000–0015.vtp`" in lines
+    assert "figures: `heads_plan.png`, `breakthrough.png`" in lines
+    assert len(lines) == 9
+    listed = " ".join(lines)
+    assert all(f in listed for f in _DEMO_FILES if "_00" not in f)
+
+
+def test_report_lists_files_compactly(tmp_path):
+    """The 66 files of a demo-like run take 9 lines of the report, not 66; the report says
+    that solver.log is in SI units."""
+    text = write_report(tmp_path / "report.md", _summary(files=_DEMO_FILES)).read_text()
+    files = text.split("## Files", 1)[1].strip().splitlines()
+    items = [ln for ln in files if ln.startswith("- ")]
+    assert len(items) == 9
+    assert "`solver.log` is in SI units" in text
 
 
 def test_breakthrough_interpolates_crossing_times():
