@@ -167,3 +167,26 @@ def test_plume_extent_counts_nodes_above_the_limit(tmp_path):
     surf = pv.read(path)
     np.testing.assert_allclose(surf.points[:, 0], 2.0, atol=1e-12)
     assert surf.area == pytest.approx(1.0, rel=1e-12)
+
+
+def test_every_summary_key_is_described_in_the_readme(tmp_path):
+    """Each key of summary.json, and each key of its per-species and per-row records,
+    appears in backticks in README.md's "The keys of summary.json"."""
+    from pathlib import Path
+
+    from fe3d.post.report import ObservationResult
+
+    readme = (Path(__file__).parents[3] / "README.md").read_text(encoding="utf-8")
+    section = readme.split("### The keys of summary.json", 1)[1].split("\n## ", 1)[0]
+    x = species_extremes("x", 1.0, lowest=(-0.5, None), highest=(1.0, None), bound=1.0)
+    s = _summary(extremes={"x": x}, boundary_contacts=[BoundaryContact("x", "north", 1.0)],
+                 observations=[ObservationResult("p", "point", "x", 1.0, 1.0, None, 1.0)],
+                 plume={"x": {"largest_extent": 1.0, "time_of_largest_extent": 1.0,
+                              "largest_volume": 1.0, "final_extent": 1.0}},
+                 travel_times=[{"source": "s", "receptor": "r", "time": None, "closest": 1.0,
+                                "arrival_radius": 1.0}])
+    d = json.loads(write_summary_json(tmp_path / "summary.json", s).read_text())
+    keys = set(d) | set(d["extremes"]["x"]) | set(d["boundary_contacts"][0]) \
+        | set(d["observations"][0]) | set(d["plume"]["x"]) | set(d["travel_times"][0])
+    missing = sorted(k for k in keys if f"`{k}`" not in section)
+    assert missing == []
