@@ -27,7 +27,7 @@ if TYPE_CHECKING:
     from fe3d.case.schema import Case, ObservationPoint, Source
 
 __all__ = ["check_mesh_rules", "head_dependent_problems", "line_sample_points",
-           "mesh_rule_problems", "recharge_mask", "recharge_problems",
+           "mesh_rule_problems", "patch_triangles", "recharge_mask", "recharge_problems",
            "screened_unit_problems", "source_nodes", "zone_mask"]
 
 
@@ -136,6 +136,19 @@ def source_nodes(site: SiteMesh, src: Source) -> IndexArray:
     return cand[keep]
 
 
+def patch_triangles(site: SiteMesh, src: Source) -> BoolArray:
+    """Triangles of a face patch's face whose centre lies in its x, y and z ranges, shape
+    ``(n_facets,)``."""
+    assert src.face is not None
+    tri = site.faces[src.face]
+    mid = site.points[:, tri].mean(axis=1)
+    keep = np.ones(tri.shape[1], dtype=bool)
+    for axis, rng in enumerate((src.x, src.y, src.z)):
+        if rng is not None:
+            keep &= (mid[axis] >= rng[0]) & (mid[axis] <= rng[1])
+    return keep
+
+
 def line_sample_points(points: list[tuple[float, float, float]], spacing: float,
                        ) -> tuple[FloatArray, FloatArray]:
     """Sample points ``(3, k)`` [m] and their lengths ``(k,)`` [m] of a point source (the
@@ -175,16 +188,10 @@ def _source_problems(site: SiteMesh, src: Source, spacing: float) -> list[CaseEr
         return [CaseError(key, f"{src.shape}: {ranges or 'no ranges'}",
                           "must contain at least one mesh node; enlarge it or set a smaller "
                           "mesh.fine_cell_size / mesh.layer_cell_thickness")]
-    if src.kind == "inflow_concentration" and src.face is not None:
-        tri = site.faces[src.face]
-        mid = site.points[:, tri].mean(axis=1)
-        keep = np.ones(tri.shape[1], dtype=bool)
-        for axis, rng in enumerate((src.x, src.y, src.z)):
-            if rng is not None:
-                keep &= (mid[axis] >= rng[0]) & (mid[axis] <= rng[1])
-        if not keep.any():
-            return [CaseError(f"{key}.face", src.face, "must have at least one mesh triangle "
-                              "whose centre lies in the source's x, y and z ranges")]
+    if src.kind == "inflow_concentration" and src.face is not None \
+            and not patch_triangles(site, src).any():
+        return [CaseError(f"{key}.face", src.face, "must have at least one mesh triangle "
+                          "whose centre lies in the source's x, y and z ranges")]
     return []
 
 

@@ -1,15 +1,20 @@
 """Where and how strongly the sources act on the mesh (theory.md T3a–T3f), built once.
 
-:class:`SourceGeometry` holds, per source, the nodes a fixed concentration holds, the nodal
-weights of inflow patches and mass loadings, and per species the load of injection wells;
-:meth:`SourceGeometry.step_terms` turns them into the held values and the nodal load of one
-step. :func:`initial_fields` gives the fields at t = 0.
+:class:`SourceGeometry` holds, per source, the nodes a fixed concentration holds and the
+share of the source strength each is held at, the nodal weights of inflow patches and mass
+loadings, and per species the load of injection wells; :meth:`SourceGeometry.held` and
+:meth:`SourceGeometry.load` turn them into the held values and the nodal load of one step.
+:func:`initial_fields` gives the fields at t = 0.
+
+A face patch is weighted by the part of each face triangle inside it (T3a):
+:func:`clip_polygon` (Sutherland–Hodgman clipping against the patch's ranges) gives the
+exact part, and :func:`patch_integrals` the integrals ∫_P φ_i dA of the nodal basis
+functions over the patch, so that the held values and the inflow weights carry the patch's
+real area whether or not the mesh follows its outline.
 """
 
 from __future__ import annotations
 
-import itertools
-import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -17,12 +22,19 @@ import numpy as np
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import Case, Source
 from fe3d.errors import MeshError
+from fe3d.flow.site_rules import line_sample_points, patch_triangles, source_nodes
 from fe3d.flow.solve import FlowField
 from fe3d.mesh.locate import locate_points
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import BoundaryFacets
 
-__all__ = ["HeldValues", "SourceGeometry", "build_source_geometry", "initial_fields"]
+__all__ = ["HeldValues", "SourceGeometry", "build_source_geometry", "clip_polygon",
+           "initial_fields", "patch_integrals", "patch_shares"]
+
+# A node is held when its share of the patch exceeds this: shares are ratios of areas
+# computed to round-off (~1e-16 relative), so anything smaller is a triangle that only
+# touches the outline along an edge or at a corner.
+SHARE_FLOOR = 1e-12
 
 
 @dataclass(frozen=True)
@@ -41,12 +53,16 @@ class SourceGeometry:
 
     ``held_nodes``: source name → nodes held at (fixed concentration) or filled with
     (initial plume) its concentration, or loaded evenly by volume (box mass loading);
+    ``held_shares``: source name → the share of the source strength each of its
+    ``held_nodes`` is held at (T3a: the part of a face patch in the node's face area, in
+    (0, 1]; 1 for a box);
     ``inflow_weights``: inflow patch → nodal (−q·n)⁺ weights [m³/s] (T3b);
     ``loading_weights``: mass loading → nodal weights summing to 1 (T3f);
     ``injection``: species → nodal load of injection wells [kg/s] (T3d)."""
 
     sources: tuple[Source, ...]
     held_nodes: dict[str, IndexArray]
+    held_shares: dict[str, FloatArray]
     inflow_weights: dict[str, FloatArray]
     loading_weights: dict[str, FloatArray]
     injection: dict[str, FloatArray]
@@ -60,9 +76,9 @@ class SourceGeometry:
         start, end = np.zeros(n), np.zeros(n)
         for src in self.sources:
             if src.name in active:
-                nodes = self.held_nodes[src.name]
-                start[nodes] = np.maximum(start[nodes], src.strength(t0, t0))
-                end[nodes] = np.maximum(end[nodes], src.strength(t1, t1))
+                nodes, share = self.held_nodes[src.name], self.held_shares[src.name]
+                start[nodes] = np.maximum(start[nodes], share * src.strength(t0, t0))
+                end[nodes] = np.maximum(end[nodes], share * src.strength(t1, t1))
         return HeldValues(active=active, start=start, end=end)
 
     def load(self, species: str, t0: float, t1: float, ta: float, tb: float) -> FloatArray:
@@ -90,7 +106,10 @@ def build_source_geometry(site: SiteMesh, flow: FlowField, case: Case, *,
     lumped nodal volumes; ``spacing`` [m]: sampling step along a line source)."""
     n = site.n_nodes
     q = flow.darcy_flux
-    held = {src.name: _source_nodes(site, src) for src in case.sources if src.points is None}
+    held, shares = {}, {}
+    for src in case.sources:
+        if src.points is None:
+            held[src.name], shares[src.name] = _held_nodes(site, src)
     inflow = {src.name: _inflow_weights(site, src, q) for src in case.sources
               if src.kind == "inflow_concentration"}
     loading = {}
@@ -106,7 +125,8 @@ def build_source_geometry(site: SiteMesh, flow: FlowField, case: Case, *,
                             for w in case.wells if name in w.injection_concentration
                             and w.name in flow.exchange), np.zeros(n))
                  for name in case.species}
-    return SourceGeometry(sources=tuple(case.sources), held_nodes=held, inflow_weights=inflow,
+    return SourceGeometry(sources=tuple(case.sources), held_nodes=held, held_shares=shares,
+                          inflow_weights=inflow,
                           loading_weights=loading, injection=injection)
 
 
@@ -124,59 +144,150 @@ def initial_fields(case: Case, site: SiteMesh, geometry: SourceGeometry,
 
 
 def _inflow_weights(site: SiteMesh, src: Source, q: FloatArray) -> FloatArray:
-    """Nodal (−q·n)⁺ weights [m³/s] of the face triangles of an inflow patch (T3b)."""
+    """Nodal weights ∫_P (−q·n)⁺ φ_i dA [m³/s] of an inflow patch P (T3b): q·n is constant
+    on each face triangle, so the weight is (−q·n)⁺ times the triangle's part of
+    :func:`patch_integrals`."""
     assert src.face is not None
-    face = BoundaryFacets.of(site.points, site.cells, site.faces[src.face])
-    mid = site.points[:, face.tri].mean(axis=1)
-    keep = np.ones(face.area.size, dtype=bool)
-    for axis, rng in enumerate((src.x, src.y, src.z)):
-        if rng is not None:
-            keep &= (mid[axis] >= rng[0]) & (mid[axis] <= rng[1])
-    if not keep.any():
+    if not patch_triangles(site, src).any():
         msg = f"source {src.name!r}: no face triangle of {src.face!r} in its ranges"
         raise MeshError(msg)
-    inlet = face.subset(keep)
-    return inlet.load(np.clip(-inlet.normal_flux(q), 0.0, None), site.n_nodes)
+    face = BoundaryFacets.of(site.points, site.cells, site.faces[src.face])
+    inflow = np.clip(-face.normal_flux(q), 0.0, None)
+    return patch_integrals(site.points, face.tri, _ranges(src), n=site.n_nodes,
+                           facet_weight=inflow)
 
 
-def _source_nodes(site: SiteMesh, src: Source) -> IndexArray:
-    """Mesh nodes held at the source concentration."""
-    p = site.points
-    if src.shape == "face_patch":
-        assert src.face is not None
-        cand = site.face_nodes(src.face)
-    else:
-        cand = np.arange(site.n_nodes)
-    keep = np.ones(cand.size, dtype=bool)
+def _ranges(src: Source) -> tuple[FloatArray, FloatArray]:
+    """The source's x, y, z ranges as lower and upper corners [m] (±inf where not given)."""
+    lo, hi = np.full(3, -np.inf), np.full(3, np.inf)
     for axis, rng in enumerate((src.x, src.y, src.z)):
         if rng is not None:
-            tol = 1e-9 * max(1.0, abs(rng[1] - rng[0]))
-            keep &= (p[axis, cand] >= rng[0] - tol) & (p[axis, cand] <= rng[1] + tol)
-    nodes = cand[keep]
+            lo[axis], hi[axis] = rng
+    return lo, hi
+
+
+def _held_nodes(site: SiteMesh, src: Source) -> tuple[IndexArray, FloatArray]:
+    """Nodes of a box or face patch and the share of the strength each is held at.
+
+    A box holds its nodes (bounds included) at the full strength. A face patch of a fixed
+    concentration holds the nodes with a positive share of it (:func:`patch_shares`) at that
+    share (T3a). The patch must still contain a mesh node (as ``fe3d check`` demands) lest
+    it be smaller than the cells around it."""
+    nodes = source_nodes(site, src)
     if nodes.size == 0:
         msg = (f"source {src.name!r} contains no mesh node; enlarge it or set a smaller "
                "mesh.fine_cell_size / mesh.layer_cell_thickness")
         raise MeshError(msg)
-    return nodes
+    if src.shape != "face_patch" or src.kind != "fixed_concentration":
+        return nodes, np.ones(nodes.size)
+    assert src.face is not None
+    share = patch_shares(site.points, site.faces[src.face], _ranges(src), n=site.n_nodes)
+    nodes = np.nonzero(share > SHARE_FLOOR)[0]
+    return nodes, share[nodes]
+
+
+def clip_polygon(poly: FloatArray, lo: FloatArray, hi: FloatArray) -> FloatArray:
+    """The convex polygon ``poly`` ``(3, k)`` [m] clipped to the box lo ≤ x ≤ hi (bounds
+    may be ±inf), by Sutherland–Hodgman clipping against one bounding plane at a time
+    (Sutherland & Hodgman 1974); shape ``(3, m)``, ``m = 0`` when nothing is left.
+
+    A vertex on a plane counts as inside, so a polygon that only touches the box keeps a
+    zero-area sliver (an edge or a point)."""
+    pts = [poly[:, i] for i in range(poly.shape[1])]
+    for axis in range(3):
+        for bound, sign in ((lo[axis], 1.0), (hi[axis], -1.0)):
+            if not np.isfinite(bound) or not pts:
+                continue
+            out = []
+            for a, b in zip(pts, pts[1:] + pts[:1], strict=True):
+                da, db = sign * (a[axis] - bound), sign * (b[axis] - bound)
+                if da >= 0.0:
+                    out.append(a)
+                if (da > 0.0 > db) or (da < 0.0 < db):  # the edge crosses the plane
+                    out.append(a + (da / (da - db)) * (b - a))
+            pts = out
+    return np.array(pts, dtype=float).T if pts else np.zeros((3, 0))
+
+
+def _area_and_centroid(poly: FloatArray) -> tuple[float, FloatArray]:
+    """Area [m²] and centroid [m] of a planar convex polygon ``(3, k)`` (a fan of
+    triangles from its first vertex)."""
+    if poly.shape[1] < 3:
+        return 0.0, poly.mean(axis=1) if poly.shape[1] else np.zeros(3)
+    a = poly[:, :1]
+    u, w = poly[:, 1:-1] - a, poly[:, 2:] - a
+    areas = 0.5 * np.linalg.norm(np.cross(u, w, axis=0), axis=0)
+    total = float(areas.sum())
+    if total == 0.0:
+        return 0.0, poly.mean(axis=1)
+    centres = a + (u + w) / 3.0
+    return total, centres @ areas / total
+
+
+def _barycentric(corners: FloatArray, x: FloatArray) -> FloatArray:
+    """Barycentric coordinates ``(3,)`` of the point ``x`` in the plane of the triangle
+    ``corners`` ``(3, 3)`` (columns are the corners)."""
+    e = corners[:, 1:] - corners[:, :1]
+    lam = np.linalg.solve(e.T @ e, e.T @ (x - corners[:, 0]))
+    return np.array([1.0 - lam.sum(), lam[0], lam[1]])
+
+
+def _triangle_areas(points: FloatArray, tri: IndexArray) -> FloatArray:
+    p0, p1, p2 = (points[:, tri[i]] for i in range(3))
+    return 0.5 * np.linalg.norm(np.cross(p1 - p0, p2 - p0, axis=0), axis=0)
+
+
+def patch_integrals(points: FloatArray, tri: IndexArray, box: tuple[FloatArray, FloatArray],
+                    *, n: int, facet_weight: FloatArray | None = None) -> FloatArray:
+    """∫_P g φ_i dA per node [m² × g] over the part P of the face triangles ``tri``
+    ``(3, k)`` inside ``box`` = (lower, upper corner) [m], for ``g`` constant per triangle
+    (``facet_weight``, default 1); shape ``(n,)``.
+
+    A triangle inside the box gives g A/3 to each corner; one cut by the box is clipped
+    (:func:`clip_polygon`), and since φ_i is linear, ∫_{T∩P} φ_i = |T∩P| φ_i(centroid of
+    T∩P) exactly. The sum over the nodes is ∫_P g dA: the patch's real area for g = 1."""
+    lo, hi = box
+    g = np.ones(tri.shape[1]) if facet_weight is None else facet_weight
+    corners = points[:, tri]  # (3, 3, k): coordinate, corner, triangle
+    inside = np.all((corners >= lo[:, None, None]) & (corners <= hi[:, None, None]),
+                    axis=(0, 1))
+    outside = np.any(np.all(corners < lo[:, None, None], axis=1)
+                     | np.all(corners > hi[:, None, None], axis=1), axis=0)
+    area = _triangle_areas(points, tri)
+    out = np.bincount(tri[:, inside].ravel(), weights=np.tile(g[inside] * area[inside] / 3.0, 3),
+                      minlength=n).astype(float)
+    for k in np.nonzero(~inside & ~outside)[0]:
+        part, centre = _area_and_centroid(clip_polygon(corners[:, :, k], lo, hi))
+        if part > 0.0:
+            out[tri[:, k]] += g[k] * part * _barycentric(corners[:, :, k], centre)
+    return out
+
+
+def patch_shares(points: FloatArray, tri: IndexArray, box: tuple[FloatArray, FloatArray],
+                 *, n: int) -> FloatArray:
+    """Share [-] of each node's face area that lies in the patch: ∫_P φ_i dA / ∫ φ_i dA
+    over the face triangles ``tri`` (the lumped projection of the patch's indicator onto
+    the face's P1 functions; zero off the face); shape ``(n,)``.
+
+    Σ share_i ∫ φ_i dA equals the patch's area exactly, so a patch held at c0 × share lets
+    in c0 q A by advection through a face with uniform inflow q (T3a). A node on a straight
+    outline gets ½ on a mesh symmetric about it, a corner node about ¼."""
+    lumped = np.bincount(tri.ravel(), weights=np.tile(_triangle_areas(points, tri) / 3.0, 3),
+                         minlength=n)
+    inner = patch_integrals(points, tri, box, n=n)
+    share = np.zeros(n)
+    on = lumped > 0.0
+    share[on] = np.minimum(inner[on] / lumped[on], 1.0)
+    return share
 
 
 def _point_load_weights(site: SiteMesh, points: list[tuple[float, float, float]], *,
                         spacing: float) -> FloatArray:
     """Nodal weights (summing to 1) of a unit load at a point, or spread evenly along a
     polyline: the Galerkin load φ_j(x_s) of a point source (T3f); a line is sampled at the
-    midpoints of sub-segments no longer than ``spacing``, each weighted by its length."""
-    p = np.array(points, dtype=float).T  # (3, k)
-    if p.shape[1] == 1:
-        xs, lengths = p, np.ones(1)
-    else:
-        chunks, lens = [], []
-        for a, b in itertools.pairwise(p.T):
-            seg = float(np.linalg.norm(b - a))
-            k = max(1, math.ceil(seg / spacing))
-            f = (np.arange(k) + 0.5) / k
-            chunks.append(a[:, None] + (b - a)[:, None] * f)
-            lens.append(np.full(k, seg / k))
-        xs, lengths = np.hstack(chunks), np.concatenate(lens)
+    midpoints of sub-segments no longer than ``spacing``, each weighted by its length
+    (:func:`fe3d.flow.site_rules.line_sample_points`)."""
+    xs, lengths = line_sample_points(points, spacing)
     if lengths.sum() <= 0.0:
         msg = "a line source has zero length"
         raise MeshError(msg)
