@@ -213,12 +213,17 @@ def _mesh(case_path: Path, out: Path | None) -> int:
 
     case = load_case(case_path)
     folder = out or _default_mesh_folder(case_path)
-    site, reused, files = mesh_case(case, folder)
+    site, reused, files = mesh_case(case, folder, base_dir=case_path.parent)
     con = Console()
     how = "reused (inputs unchanged)" if reused else "built"
     con.print(f"[bold]{case.title}[/bold]: mesh {how} in {folder}/")
     for line in report_lines(site.report.quality):
         con.print(f"  {line}", highlight=False)
+    corridor = site.report.corridor
+    for line in [] if corridor is None else corridor.lines():
+        con.print(f"  {line}", highlight=False)
+    if corridor is not None and corridor.note:
+        con.print(f"  [yellow]warning:[/yellow] {corridor.note}", highlight=False)
     con.print("  sublayers: " + ", ".join(f"{k} {v}" for k, v in
                                          (site.info.get("sublayers") or {}).items()))
     con.print("  faces: " + ", ".join(f"{k} ({v.shape[1]} triangles)"

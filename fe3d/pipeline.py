@@ -12,6 +12,7 @@ from fe3d.case.schema import Case
 from fe3d.flow.paths import travel_paths
 from fe3d.flow.solve import FlowField, solve_flow
 from fe3d.mesh.build import build_mesh, obtain_mesh
+from fe3d.mesh.corridor import Corridor, site_corridor
 from fe3d.mesh.materials import cell_values, unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.post.outputs import SeriesWriter, write_flow_outputs
@@ -20,16 +21,36 @@ from fe3d.post.vtk import write_mesh
 from fe3d.reactions.kinetics import user_kinetics
 from fe3d.transport.run import run_transport
 
-__all__ = ["mesh_and_flow", "mesh_case", "run_case"]
+__all__ = ["mesh_and_flow", "mesh_case", "plume_corridor", "run_case"]
 
 logger = logging.getLogger(__name__)
 
 Progress = Callable[[str, float, float], None]
 
 
+def plume_corridor(case: Case, *, base_dir: Path | None = None) -> Corridor | None:
+    """The first pass of the corridor mesher: mesh the case as it is written, solve the flow,
+    track forward pathlines from every source and turn them into a corridor
+    (:func:`fe3d.mesh.corridor.site_corridor`). ``None`` when ``mesh.corridor`` is off, the
+    mesh is imported, the case has no source, or nothing needs refining."""
+    mc = case.mesh
+    if not mc.corridor or mc.import_file is not None or not case.sources:
+        return None
+    first = build_mesh(case)
+    flow = solve_flow(first, case, base_dir=base_dir)
+    paths = travel_paths(first, flow, case)
+    lines = {name: [(p.points, p.times) for p in found]
+             for name, found in paths.forward.items()}
+    corridor = site_corridor(case, first, lines)
+    if corridor is not None:
+        logger.info("%s", "; ".join(corridor.lines()))
+    return corridor
+
+
 def mesh_and_flow(case: Case, *, base_dir: Path | None = None) -> tuple[SiteMesh, FlowField]:
-    """Build the mesh and solve the steady flow of ``case``."""
-    site = build_mesh(case)
+    """Build the mesh (refined along the plume corridor, :func:`plume_corridor`) and solve the
+    steady flow of ``case``."""
+    site = build_mesh(case, corridor=plume_corridor(case, base_dir=base_dir))
     flow = solve_flow(site, case, base_dir=base_dir)
     return site, flow
 
@@ -91,8 +112,9 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     tell = progress or (lambda _s, _d, _t: None)
     out_dir.mkdir(parents=True, exist_ok=True)
     tell("mesh", 0, 1)
-    # reuse a mesh cached (run folder first) when the mesh inputs are unchanged
-    site, _reused = obtain_mesh(case, [out_dir, *(mesh_folders or [])], save_to=out_dir)
+    # reuse a mesh cached (run folder first) when the mesh inputs and corridor are unchanged
+    site, _reused = obtain_mesh(case, [out_dir, *(mesh_folders or [])], save_to=out_dir,
+                                corridor=plume_corridor(case, base_dir=base_dir))
     files = [p.name for p in write_mesh(site, out_dir)]
     tell("flow", 0, 1)
     flow = solve_flow(site, case, base_dir=base_dir)
@@ -107,13 +129,17 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     return writer.finish(flow, paths, files, started)
 
 
-def mesh_case(case: Case, out_dir: Path) -> tuple[SiteMesh, bool, list[Path]]:
-    """Build (or reuse, when the mesh inputs are unchanged) the mesh of ``case`` and write
-    ``mesh.msh``, ``mesh.vtu``, ``mesh.npz`` and ``mesh.json`` in ``out_dir``.
+def mesh_case(case: Case, out_dir: Path, *, base_dir: Path | None = None,
+              ) -> tuple[SiteMesh, bool, list[Path]]:
+    """Build (or reuse, when the mesh inputs and the plume corridor are unchanged) the mesh
+    of ``case`` and write ``mesh.msh``, ``mesh.vtu``, ``mesh.npz`` and ``mesh.json`` in
+    ``out_dir``. The corridor needs a first mesh and flow solve (:func:`plume_corridor`),
+    which run every time; only the final mesh is reused.
 
     Returns the mesh, whether it was reused, and the files written.
     """
     out_dir.mkdir(parents=True, exist_ok=True)
-    site, reused = obtain_mesh(case, [out_dir], save_to=out_dir)
+    site, reused = obtain_mesh(case, [out_dir], save_to=out_dir,
+                               corridor=plume_corridor(case, base_dir=base_dir))
     files = write_mesh(site, out_dir)
     return site, reused, [*files, out_dir / "mesh.npz", out_dir / "mesh.json"]

@@ -48,16 +48,35 @@ def _source_seeds(case: Case, name: str) -> FloatArray:
     if src.points is not None:  # a point or line source: start at its vertices
         return np.array(src.points, dtype=float).T
     rng = []
-    outline, _ = case.outline()
-    xs = [p[0] for p in outline]
-    ys = [p[1] for p in outline]
+    outline = case.outline()
+    xs = [p[0] for p in outline[0]]
+    ys = [p[1] for p in outline[0]]
     full = {"x": (min(xs), max(xs)), "y": (min(ys), max(ys)),
             "z": (case.z_bottom_min, case.z_top)}
     for axis in ("x", "y", "z"):
         lo, hi = getattr(src, axis) or full[axis]
         rng.append(np.linspace(lo + 0.25 * (hi - lo), hi - 0.25 * (hi - lo), 2)
                    if hi > lo else np.array([lo]))
-    return np.array(list(itertools.product(*rng))).T
+    seeds = np.array(list(itertools.product(*rng))).T
+    if src.shape == "face_patch" and src.face in set(outline[1]):
+        # a patch on a lateral face: start on the face, not inside the open range
+        edges = [i for i, n in enumerate(outline[1]) if n == src.face]
+        for j in range(seeds.shape[1]):
+            seeds[:2, j] = _nearest_on_edges(seeds[:2, j], outline[0], edges)
+    return np.unique(seeds, axis=1)
+
+
+def _nearest_on_edges(p: FloatArray, verts: list[tuple[float, float]],
+                      edges: list[int]) -> FloatArray:
+    """The point of the polygon edges ``edges`` (edge i: vertex i → i + 1) nearest to the
+    plan point ``p`` [m]."""
+    best, out = math.inf, p
+    for i in edges:
+        a, b = np.array(verts[i]), np.array(verts[(i + 1) % len(verts)])
+        q = a + np.clip(np.dot(p - a, b - a) / np.dot(b - a, b - a), 0.0, 1.0) * (b - a)
+        if np.hypot(*(p - q)) < best:
+            best, out = float(np.hypot(*(p - q))), q
+    return out
 
 
 def _receptors(case: Case) -> list[tuple[str, float, float, float, float]]:

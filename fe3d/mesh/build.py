@@ -31,6 +31,7 @@ from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
+from fe3d.mesh.corridor import FINE_SIZE_MARGIN, Corridor, corridor_zones, project_to_edges
 from fe3d.mesh.quality import quality_report
 from fe3d.mesh.report import LensFit, MeshReport, PlanLayout
 from fe3d.mesh.site_mesh import SiteMesh
@@ -39,9 +40,6 @@ from fe3d.p1 import node_graph
 
 if TYPE_CHECKING:
     from fe3d.case.schema import Case
-
-FINE_SIZE_MARGIN = 0.8
-"""Fraction of a fine target size requested from gmsh, so measured edges stay below it."""
 
 __all__ = ["PlanMesh", "RefineZone", "build_mesh", "check_volumes", "extrude", "feature_points",
            "obtain_mesh", "plan_mesh"]
@@ -70,20 +68,6 @@ class PlanMesh:
     point_nodes: dict[str, int]
 
 
-def _project_to_edges(p: tuple[float, float], verts: list[tuple[float, float]],
-                      which: list[int]) -> tuple[float, float]:
-    best, out = math.inf, p
-    for i in which:
-        (ax, ay), (bx, by) = verts[i], verts[(i + 1) % len(verts)]
-        dx, dy = bx - ax, by - ay
-        t = max(0.0, min(1.0, ((p[0] - ax) * dx + (p[1] - ay) * dy) / (dx * dx + dy * dy)))
-        q = (ax + t * dx, ay + t * dy)
-        d = math.hypot(p[0] - q[0], p[1] - q[1])
-        if d < best:
-            best, out = d, q
-    return out
-
-
 def feature_points(case: Case) -> list[tuple[float, float]]:
     """Plan points (x, y) [m] where the mesh must be fine: source outlines, observation points
     and wells."""
@@ -101,7 +85,7 @@ def feature_points(case: Case) -> list[tuple[float, float]]:
         if s.shape == "face_patch" and s.face in names:
             # a patch on a lateral face: refine along its trace on that face
             which = [i for i, n in enumerate(names) if n == s.face]
-            corners = [_project_to_edges(c, verts, which) for c in corners]
+            corners = [project_to_edges(c, verts, which) for c in corners]
         pts += corners
     pts += [(o.x, o.y) for o in case.observation_points]
     pts += [(w.x, w.y) for w in case.wells]
@@ -381,7 +365,7 @@ def _node_areas(xy: FloatArray, tri: IndexArray) -> FloatArray:
     return out
 
 
-def _refine_zones(case: Case) -> list[RefineZone]:
+def _refine_zones(case: Case, corridor: Corridor | None) -> list[RefineZone]:
     mc = case.mesh
     zones = []
     feats = feature_points(case)
@@ -392,6 +376,9 @@ def _refine_zones(case: Case) -> list[RefineZone]:
         zones.append(RefineZone(points=_sample_polyline(
             [(float(x), float(y)) for x, y in line.points], 0.5 * line.cell_size),
             size=line.cell_size, radius=line.radius))
+    if corridor is not None:  # gmsh takes the smallest size: hand-set sizes stay where finer
+        zones += [RefineZone(points=_sample_polyline(points, 0.5 * size), size=size,
+                             radius=radius) for points, size, radius in corridor_zones(corridor)]
     return zones
 
 
@@ -408,9 +395,12 @@ def _embedded_points(case: Case) -> dict[str, tuple[float, float]]:
 
 
 def _sublayer_fractions(case: Case, surfaces: list[FloatArray], well_node: dict[str, int],
-                        lens_levels: dict[int, list[float]]) -> list[list[float]]:
+                        lens_levels: dict[int, list[float]],
+                        corridor_dz: dict[str, float]) -> list[list[float]]:
     """Level fractions (0 = unit top, 1 = unit base) of every unit, with a level through
-    each screen end at its well node and each lens top and bottom."""
+    each screen end at its well node and each lens top and bottom; a unit's cell layers are
+    at most ``corridor_dz`` thick where the corridor asks [m] (not where ``sublayers`` is
+    set)."""
     needs: dict[int, list[float]] = {k: list(v) for k, v in lens_levels.items()}
     for w in case.wells:
         j = well_node[w.name]
@@ -435,7 +425,8 @@ def _sublayer_fractions(case: Case, surfaces: list[FloatArray], well_node: dict[
         if layer.sublayers is not None:
             n = layer.sublayers
         else:
-            dz = layer.cell_thickness or mc.layer_cell_thickness
+            dz = min(layer.cell_thickness or mc.layer_cell_thickness,
+                     corridor_dz.get(layer.name, math.inf))
             n = max(1, math.ceil(thick / dz - 1e-9))
         fr = [j / n for j in range(n + 1)]
         claimed: set[int] = set()
@@ -452,9 +443,11 @@ def _sublayer_fractions(case: Case, surfaces: list[FloatArray], well_node: dict[
     return out
 
 
-def build_mesh(case: Case) -> SiteMesh:
+def build_mesh(case: Case, *, corridor: Corridor | None = None) -> SiteMesh:
     """Mesh the case's plan boundary and units, refined near sources, wells, observation
-    points and refinement lines; boreholes and wells are plan nodes.
+    points, refinement lines and along the plume ``corridor`` (from
+    :func:`fe3d.mesh.corridor.site_corridor`; its plan sizes and cell layers apply where
+    finer than the case's own); boreholes and wells are plan nodes.
 
     Raises
     ------
@@ -467,7 +460,7 @@ def build_mesh(case: Case) -> SiteMesh:
     verts, names = case.outline()
     mc = case.mesh
     lens_polys = [[(float(x), float(y)) for x, y in lens.polygon] for lens in case.lenses]
-    plan = plan_mesh(verts, names, cell_size=mc.cell_size, zones=_refine_zones(case),
+    plan = plan_mesh(verts, names, cell_size=mc.cell_size, zones=_refine_zones(case, corridor),
                      points=_embedded_points(case), outlines=lens_polys)
     xy, tri = plan.xy, plan.tri
     node_area = _node_areas(xy, tri)
@@ -477,7 +470,8 @@ def build_mesh(case: Case) -> SiteMesh:
     well_node = {k.split(" ", 1)[1]: v for k, v in plan.point_nodes.items()
                  if k.startswith("well ")}
     lens_in, lens_levels = _lens_nodes(case, xy, tri, surfaces)
-    fractions = _sublayer_fractions(case, surfaces, well_node, lens_levels)
+    fractions = _sublayer_fractions(case, surfaces, well_node, lens_levels,
+                                    {} if corridor is None else corridor.layer_thickness)
     z_rows, layer_unit, level_frac = [surfaces[0]], [], []
     for k, fr in enumerate(fractions):
         top, bot = surfaces[k], surfaces[k + 1]
@@ -517,7 +511,8 @@ def build_mesh(case: Case) -> SiteMesh:
         sublayers={ly.name: len(fr) - 1 for ly, fr in zip(case.layers, fractions, strict=True)},
         surface_rules=tuple(applied), lens_fits=tuple(lens_notes),
         plan=PlanLayout(xy=xy, tri=tri, surfaces=np.array(surfaces),
-                        borehole_nodes=boreholes, well_nodes=well_node))
+                        borehole_nodes=boreholes, well_nodes=well_node),
+        corridor=corridor)
     site = replace(bare, report=report)
     logger.info("mesh: %d nodes, %d tetrahedra", site.n_nodes, site.n_cells)
     return site
@@ -565,9 +560,10 @@ def _imported(case: Case) -> SiteMesh:
 
 
 def obtain_mesh(case: Case, folders: list[Path], *, save_to: Path | None = None,
-                ) -> tuple[SiteMesh, bool]:
-    """The case's mesh: reused from the first folder holding a cached mesh built from the
-    same mesh inputs (hash), else built. Returns (mesh, reused).
+                corridor: Corridor | None = None) -> tuple[SiteMesh, bool]:
+    """The case's mesh (refined along ``corridor``, see :func:`build_mesh`): reused from the
+    first folder holding a cached mesh built from the same mesh inputs and corridor (hash),
+    else built. Returns (mesh, reused).
 
     ``save_to`` always ends up holding the mesh cache (``mesh.npz`` and ``mesh.json``): a
     newly built mesh is saved there, and a mesh reused from another folder is copied there
@@ -578,6 +574,12 @@ def obtain_mesh(case: Case, folders: list[Path], *, save_to: Path | None = None,
     from fe3d.mesh.io import load_cached, mesh_inputs_hash, save_cached
 
     digest = mesh_inputs_hash(case)
+    if corridor is not None:  # the corridor is rounded (Corridor docs): reruns give one key
+        import hashlib
+        import json
+
+        text = json.dumps(corridor.as_dict(), sort_keys=True, separators=(",", ":"))
+        digest = hashlib.sha256((digest + text).encode("utf-8")).hexdigest()
     if case.mesh.import_file is None:
         for folder in folders:
             site = load_cached(folder, digest)
@@ -591,7 +593,7 @@ def obtain_mesh(case: Case, folders: list[Path], *, save_to: Path | None = None,
                     tmp.replace(save_to / name)
             logger.info("mesh reused from %s (mesh inputs unchanged)", folder)
             return site, True
-    site = build_mesh(case)
+    site = build_mesh(case, corridor=corridor)
     if save_to is not None:
         save_cached(site, save_to, digest)
     return site, False

@@ -15,6 +15,7 @@ import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
+from fe3d.mesh.corridor import Corridor
 from fe3d.mesh.quality import quality_report
 from fe3d.mesh.report import LensFit, MeshQuality, MeshReport, PlanLayout
 from fe3d.mesh.site_mesh import SiteMesh
@@ -229,6 +230,7 @@ def save_cached(site: SiteMesh, folder: Path, digest: str) -> Path:
             "lens_fit": [n.as_dict() for n in report.lens_fits],
             "sublayers": report.sublayers,
             "origin": report.origin, "origin_path": report.origin_path,
+            "corridor": None if report.corridor is None else report.corridor.as_dict(),
             "plan_nodes": None if plan is None else {"boreholes": plan.borehole_nodes,
                                                      "wells": plan.well_nodes}}
     tmp_json = folder / "mesh.json.part"
@@ -260,7 +262,9 @@ def load_cached(folder: Path, digest: str) -> SiteMesh | None:
                 quality=MeshQuality.from_dict(meta["quality"]), origin="cached",
                 origin_path=str(folder), sublayers=dict(meta["sublayers"]),
                 surface_rules=tuple(RuleApplied.from_dict(r) for r in meta["surface_rules"]),
-                lens_fits=tuple(LensFit.from_dict(n) for n in meta["lens_fit"]), plan=plan)
+                lens_fits=tuple(LensFit.from_dict(n) for n in meta["lens_fit"]), plan=plan,
+                corridor=None if meta.get("corridor") is None else Corridor.from_dict(
+                    meta["corridor"]))
             site = SiteMesh(points=z["points"], cells=z["cells"], cell_layer=z["cell_layer"],
                             layer_names=tuple(meta["units"]), faces=faces, report=report)
     except (OSError, ValueError, KeyError, TypeError):

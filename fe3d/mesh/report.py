@@ -11,6 +11,7 @@ from dataclasses import asdict, dataclass, field
 from typing import Any, Literal
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.mesh.corridor import Corridor
 from fe3d.mesh.stratigraphy import RuleApplied
 
 __all__ = ["LensFit", "MeshQuality", "MeshReport", "PlanLayout"]
@@ -115,6 +116,8 @@ class MeshReport:
         Lens sides moved from where the case puts them.
     plan
         The plan layout (``None`` for an imported mesh).
+    corridor
+        The plume corridor the mesh was refined along (``None`` when there is none).
     """
 
     quality: MeshQuality
@@ -124,6 +127,7 @@ class MeshReport:
     surface_rules: tuple[RuleApplied, ...] = ()
     lens_fits: tuple[LensFit, ...] = ()
     plan: PlanLayout | None = None
+    corridor: Corridor | None = None
 
     def as_legacy_dict(self) -> dict[str, Any]:
         """The keys of the former ``SiteMesh.info`` dict, for callers not yet switched to

@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from fe3d._typing import FloatArray
+from fe3d.mesh.corridor import Corridor, corridor_gap
 from fe3d.post.files import write_atomic
 from fe3d.units import from_si
 
@@ -53,8 +54,9 @@ def plot_breakthrough(path: Path, times: FloatArray, history: dict[str, FloatArr
 def plot_heads(path: Path, points: FloatArray, top_triangles: FloatArray, head: FloatArray,
                top_flux: tuple[FloatArray, FloatArray], *,
                markers: dict[str, tuple[float, float]], pathlines: list[FloatArray],
-               title: str) -> Path:
-    """Plan view of the head on the top face: labelled contours, flow arrows, pathlines.
+               title: str, corridor: Corridor | None = None) -> Path:
+    """Plan view of the head on the top face: labelled contours, flow arrows, pathlines,
+    and the outline of the plume ``corridor`` the mesh was refined along (when given).
 
     ``top_flux`` is (centres ``(2, k)`` [m], horizontal Darcy flux ``(2, k)`` [m/s]) of the
     cells under the top face; ``markers`` maps a label to a plan position [m].
@@ -80,6 +82,8 @@ def plot_heads(path: Path, points: FloatArray, top_triangles: FloatArray, head: 
     for i, p in enumerate(pathlines):
         ax.plot(p[0], p[1], color="tab:red", linewidth=0.8,
                 label="pathlines" if i == 0 else None)
+    if corridor is not None:
+        _draw_corridor(ax, corridor, points)
     for label, (x, y) in markers.items():
         ax.plot(x, y, "k^", markersize=5)
         ax.annotate(label, (x, y), textcoords="offset points", xytext=(4, 4), fontsize=7)
@@ -93,6 +97,20 @@ def plot_heads(path: Path, points: FloatArray, top_triangles: FloatArray, head: 
     write_atomic(path, lambda p: fig.savefig(p, dpi=120, format="png"))
     plt.close(fig)
     return path
+
+
+def _draw_corridor(ax: Any, corridor: Corridor, points: FloatArray) -> None:
+    """The corridor's outline: the boundary of the union of its pieces (discs swept along
+    each polyline), traced as the 0 contour of a distance raster over the model."""
+    lo, hi = points[:2].min(axis=1), points[:2].max(axis=1)
+    step = max(float((hi - lo).max()) / 600.0, 0.25 * min(p.cell_size for p in corridor.pieces))
+    gx, gy = (np.arange(lo[k], hi[k] + step, step) for k in (0, 1))
+    px, py = np.meshgrid(gx, gy)
+    gap = corridor_gap(corridor, px, py)  # [m] beyond the corridor's edge
+    ax.contour(gx, gy, gap, levels=[0.0], colors="darkorange", linewidths=1.0,
+               linestyles="--")
+    ax.plot([], [], color="darkorange", linestyle="--", linewidth=1.0,
+            label=f"refined corridor (grid Péclet {corridor.peclet_reached:g})")
 
 
 def plot_refinement_breakthrough(path: Path, levels: list[tuple[str, FloatArray,

@@ -75,7 +75,8 @@ def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowFiel
                markers={**{o.name: (o.x, o.y) for o in case.observation_points},
                         **{w.name: (w.x, w.y) for w in case.wells}},
                pathlines=[p.points for p in forward] + [p.points for p in backward],
-               title=f"{case.title}: head on the top face")
+               title=f"{case.title}: head on the top face",
+               corridor=None if site.report is None else site.report.corridor)
     return ["flow.vtu", "flow_budget.csv", "pathlines_forward.vtp", "pathlines_backward.vtp",
             "heads_plan.png"]
 

@@ -227,6 +227,9 @@ def refine_case(case: Case, factor: float) -> Case:
         "cell_size": m.cell_size / factor,
         "fine_cell_size": None if m.fine_cell_size is None else m.fine_cell_size / factor,
         "layer_cell_thickness": m.layer_cell_thickness / factor,
+        # the plume corridor's cells and layers shrink with its Péclet target (theory.md M4)
+        "corridor_peclet": m.corridor_peclet / factor,
+        "max_nodes": int(m.max_nodes * factor**3),
     })
     t = case.time
     time = t.model_copy(update={

@@ -50,7 +50,9 @@ def _tiny(tmp_path: Path, spill: Source | None, csv: str | None = None, **change
     from ``tmp_path``, and other sections changed as :func:`with_changes` takes them."""
     if csv is not None:
         (tmp_path / "release.csv").write_text(csv, encoding="utf-8")
-    return with_changes(TINY, base_dir=tmp_path, sources=[spill] if spill else [], **changes)
+    # the mesh as stated (its cell size is part of the check): corridor off
+    return with_changes(TINY, base_dir=tmp_path, sources=[spill] if spill else [],
+                        mesh={"corridor": False}, **changes)
 
 
 def _spill(**changes: object) -> Source:

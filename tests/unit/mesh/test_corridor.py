@@ -1,0 +1,123 @@
+"""The plume corridor's geometry (fe3d.mesh.corridor), without a mesh.
+
+The rules checked are fe3d's own (docs/theory.md M1–M4): the plan cell size keeps the grid
+Péclet number h/α_L at its target (the Péclet ≤ 2 rule for central schemes is common
+practice; Zheng & Bennett 2002, *Applied contaminant transport modeling*, 2nd ed., ch. 7, from
+memory), and the corridor widens with the transverse spread √(2 α_T s) of a point-source plume
+(Bear 1972, *Dynamics of fluids in porous media*, §10.6, from memory). Tolerances: the record
+rounds its numbers to four significant digits (a stable cache key), so equalities hold to a
+relative 5e-4.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from fe3d.mesh.corridor import (
+    CELLS_PER_SPREAD,
+    SPREAD,
+    Corridor,
+    PathSample,
+    UnitColumn,
+    plan_corridor,
+)
+
+ROUNDING = 5e-4  # four significant digits
+
+
+def straight_path(length: float = 400.0, *, speed: float = 1.0, alpha_l: float = 1.0,
+                  alpha_t: float = 0.1, alpha_tv: float = 0.01, unit: np.ndarray | None = None,
+                  half_width: float = 0.0, n: int = 401) -> PathSample:
+    """A pathline along y = 50 m from x = 0 with a constant speed [m/s]."""
+    x = np.linspace(0.0, length, n)
+    pts = np.vstack([x, np.full(n, 50.0), np.full(n, -5.0)])
+    ones = np.ones(n)
+    return PathSample(points=pts, times=x / speed, alpha_l=alpha_l * ones,
+                      alpha_t=alpha_t * ones, alpha_tv=alpha_tv * ones,
+                      unit=np.zeros(n, dtype=np.int64) if unit is None else unit,
+                      half_width=half_width)
+
+
+BOX = np.array([[0.0, 500.0, 500.0, 0.0], [0.0, 0.0, 100.0, 100.0]])
+UNITS = [UnitColumn("sand", thickness=10.0, cell_thickness=2.0)]
+
+
+def corridor(paths: list[PathSample], **kw: object) -> Corridor:
+    args: dict[str, object] = {"peclet": 2.0, "end_time": math.inf, "outline": BOX,
+                               "background_size": 20.0, "plan_nodes": 200, "units": UNITS,
+                               "max_nodes": 10**8}
+    args.update(kw)
+    c = plan_corridor(paths, **args)  # type: ignore[arg-type]
+    assert c is not None
+    return c
+
+
+def test_corridor_width_grows_like_the_root_of_the_distance() -> None:
+    c = corridor([straight_path(half_width=3.0)])
+    for p in c.pieces:
+        s = max(x for x, _ in p.points)  # a piece's radius is the one at its far end
+        expected = max(3.0 + SPREAD * math.sqrt(2 * 0.1 * s), 2 * p.cell_size)
+        assert p.radius == pytest.approx(expected, rel=ROUNDING)
+    far = [p for p in c.pieces if max(x for x, _ in p.points) in (100.0, 400.0)]
+    ratio = (far[1].radius - 3.0) / (far[0].radius - 3.0)
+    assert ratio == pytest.approx(2.0, rel=ROUNDING)  # 4x the distance, 2x the spread
+
+
+def test_corridor_cell_size_keeps_the_grid_peclet_number() -> None:
+    unit = (np.linspace(0, 400, 401) >= 200).astype(np.int64)
+    alpha_l = np.where(unit == 0, 1.0, 3.0)
+    path = straight_path(unit=unit)
+    path = PathSample(points=path.points, times=path.times, alpha_l=alpha_l,
+                      alpha_t=path.alpha_t, alpha_tv=path.alpha_tv, unit=unit, half_width=0.0)
+    units = [*UNITS, UnitColumn("gravel", thickness=5.0, cell_thickness=5.0)]
+    c = corridor([path], peclet=2.0, units=units)
+    for p in c.pieces:
+        x_end = max(x for x, _ in p.points)
+        assert p.cell_size == pytest.approx(2.0 if x_end <= 200.0 else 6.0, rel=ROUNDING)
+    assert c.peclet_reached == 2.0
+    assert c.note == ""
+
+
+def test_corridor_ends_where_the_water_is_at_the_end_time() -> None:
+    c = corridor([straight_path(speed=1.0)], end_time=100.0)
+    spread = SPREAD * math.sqrt(2 * 1.0 * 100.0)  # σ_L ahead of the water at 100 m
+    assert c.length == pytest.approx(100.0 + spread, rel=ROUNDING)
+
+
+def test_corridor_layers_resolve_the_vertical_spread() -> None:
+    c = corridor([straight_path(alpha_tv=0.01)])
+    sigma_v = math.sqrt(2 * 0.01 * 200.0)  # at half the corridor length
+    assert c.layer_thickness["sand"] == pytest.approx(sigma_v / CELLS_PER_SPREAD, rel=ROUNDING)
+
+
+def test_corridor_keeps_finer_case_layers_and_fixed_sublayers() -> None:
+    fine = [UnitColumn("sand", thickness=10.0, cell_thickness=0.5)]
+    assert corridor([straight_path()], units=fine).layer_thickness == {}
+    fixed = [UnitColumn("sand", thickness=10.0, cell_thickness=2.0, fixed=True)]
+    assert corridor([straight_path()], units=fixed).layer_thickness == {}
+
+
+def test_corridor_node_guard_coarsens_and_says_so() -> None:
+    free = corridor([straight_path()])
+    budget = free.expected_nodes // 3
+    c = corridor([straight_path()], max_nodes=budget)
+    assert c.expected_nodes <= budget
+    assert c.peclet_reached > c.peclet_target
+    assert "max_nodes" in c.note
+    assert f"{c.peclet_reached:g}" in c.note
+    assert min(p.cell_size for p in c.pieces) > min(p.cell_size for p in free.pieces)
+
+
+def test_corridor_none_when_the_mesh_is_already_fine() -> None:
+    got = plan_corridor([straight_path()], peclet=2.0, end_time=math.inf, outline=BOX,
+                        background_size=1.0, plan_nodes=200, units=UNITS, max_nodes=10**8)
+    assert got is None
+
+
+def test_corridor_record_round_trip() -> None:
+    c = corridor([straight_path(half_width=2.0)])
+    assert Corridor.from_dict(c.as_dict()) == c
+    assert len(c.lines()) == 2
