@@ -334,13 +334,18 @@ class ObservationPoint(Section):
 
 
 class TimeControl(Section):
-    """Simulated period, step and output times."""
+    """Simulated period, step and output times.
+
+    Without ``step`` the step follows the plume: the longest ``end``/2^k that keeps the
+    cell Courant number at or below ``courant`` in the cells the plume occupies (theory.md
+    T14b). With ``step``, steps are that long (or adaptive from it)."""
 
     end: PositiveTime
-    step: PositiveTime
+    step: PositiveTime | None = None
+    courant: Annotated[float, Field(gt=0.0, le=100.0)] = 1.0
     output_interval: PositiveTime | None = None
     output_times: list[Time] | None = None
-    scheme: Literal["backward_euler", "crank_nicolson", "bdf2"] = "backward_euler"
+    scheme: Literal["backward_euler", "crank_nicolson", "bdf2"] = "crank_nicolson"
     adaptive: bool = False
     min_step: PositiveTime | None = None
     max_step: PositiveTime | None = None
@@ -348,13 +353,17 @@ class TimeControl(Section):
 
 
 class MeshControl(Section):
-    """Target cell sizes [m]: plan size away from features, near features, and layer thickness."""
+    """Target cell sizes [m]: plan size away from features, near features, and layer thickness;
+    the plume corridor (on by default): its grid Péclet target and the node budget."""
 
     cell_size: PositiveLength
     fine_cell_size: PositiveLength | None = None
     fine_zone_radius: NonNegativeLength = 0.0
     layer_cell_thickness: PositiveLength
     import_file: str | None = None  # a meshio-readable tetrahedral mesh with unit tags
+    corridor: bool = True  # refine along the sources' pathlines (docs/theory.md M1-M4)
+    corridor_peclet: Annotated[float, Field(gt=0, le=100)] = 2.0  # grid Péclet h/α_L target
+    max_nodes: Annotated[int, Field(ge=1000)] = 1_500_000  # node budget of the corridor
 
     @property
     def sample_spacing(self) -> float:
@@ -366,7 +375,13 @@ class MeshControl(Section):
 
 
 class SolverControl(Section):
-    """Transport options."""
+    """Transport options.
+
+    By default (``monotone`` and ``flux_limiting``) every step is the low-order backward
+    Euler step corrected towards the Galerkin step of ``time.scheme`` as far as the local
+    bounds allow (theory.md T16, T16b): no new minimum or maximum at any step length.
+    ``monotone = false`` selects SUPG (``supg``, T6) or plain Galerkin, which can undershoot
+    next to steep fronts; ``flux_limiting = false`` keeps the low-order step alone."""
 
     supg: bool = True
     linear_solver: Literal["auto", "direct", "iterative", "gauss_seidel", "jacobi",
@@ -375,8 +390,8 @@ class SolverControl(Section):
     max_step_cuts: Annotated[int, Field(ge=0, le=20)] = 6
     shock_capturing: bool = False
     shock_capturing_passes: Annotated[int, Field(ge=1, le=10)] = 2
-    monotone: bool = False  # lumped storage + discrete upwinding instead of SUPG (T16)
-    flux_limiting: bool = False  # limited antidiffusion on top of monotone (T16b)
+    monotone: bool = True  # lumped storage + discrete upwinding instead of SUPG (T16)
+    flux_limiting: bool = True  # corrected towards the time scheme's Galerkin step (T16b)
     newton_max_iterations: Annotated[int, Field(ge=1, le=200)] = 30
 
 
@@ -490,17 +505,16 @@ def cross_checks(case: Case) -> list[CaseError]:
         errs.append(CaseError("solver.shock_capturing", "true",
                               "is not used with solver.monotone = true (the low-order "
                               "scheme needs no shock capturing): set one of them false"))
-    if case.solver.flux_limiting and not case.solver.monotone:
+    explicit = case.solver.model_fields_set
+    if "flux_limiting" in explicit and case.solver.flux_limiting and not case.solver.monotone:
         errs.append(CaseError("solver.flux_limiting", "true",
-                              "needs solver.monotone = true (it limits the low-order scheme)"))
-    if case.solver.flux_limiting and case.time.adaptive:
-        errs.append(CaseError("solver.flux_limiting", "true",
-                              "works with fixed steps only (time.adaptive = false): the "
-                              "limiter's switching defeats the step-size control"))
-    if case.solver.flux_limiting and case.time.scheme == "bdf2":
-        errs.append(CaseError("solver.flux_limiting", "true",
-                              "works with time.scheme = 'crank_nicolson' or "
-                              "'backward_euler', not 'bdf2' (its step cannot be bounded)"))
+                              "needs solver.monotone = true (it corrects the low-order scheme)"))
+    if case.solver.monotone and case.time.scheme == "bdf2":
+        errs.append(CaseError("time.scheme", "bdf2",
+                              "cannot be bounded (its step can undershoot at any step length): "
+                              "choose 'crank_nicolson' (second order, bounded) or "
+                              "'backward_euler', or set solver.monotone = false to use BDF2 "
+                              "with SUPG, which may undershoot"))
     if case.box is not None:
         if not case.box.x[1] > case.box.x[0]:
             errs.append(CaseError("box.x", f"{list(case.box.x)} m",
@@ -691,13 +705,16 @@ def cross_checks(case: Case) -> list[CaseError]:
                 errs.append(CaseError(f"user_reactions.species[{j}]", name,
                                       f"must name a species: {sorted(case.species)}"))
     t = case.time
-    if t.min_step is not None and t.min_step > t.step:
+    if t.step is None and t.adaptive:
+        errs.append(CaseError("time.adaptive", "true", "needs time.step (the first step and "
+                              "the base of the adaptive steps)"))
+    if t.step is not None and t.min_step is not None and t.min_step > t.step:
         errs.append(CaseError("time.min_step", _time_text(t.min_step, tu),
                               f"must not exceed time.step ({_time_text(t.step, tu)})"))
-    if t.max_step is not None and t.max_step < t.step:
+    if t.step is not None and t.max_step is not None and t.max_step < t.step:
         errs.append(CaseError("time.max_step", _time_text(t.max_step, tu),
                               f"must not be below time.step ({_time_text(t.step, tu)})"))
-    if t.step > t.end:
+    if t.step is not None and t.step > t.end:
         errs.append(CaseError("time.step", _time_text(t.step, tu),
                               f"must not exceed time.end ({_time_text(t.end, tu)})"))
     for v in t.output_times or []:

@@ -20,7 +20,8 @@ __all__ = ["BudgetTotals", "RunStatistics", "TransportDiagnostics", "grid_peclet
 class TransportDiagnostics:
     """Numbers that tell whether the discretisation was adequate.
 
-    Per species: the largest grid Péclet and Courant numbers, the most negative value
+    Per species: the largest grid Péclet and Courant numbers (over all cells, and over the
+    cells of the plume, T14b), the most negative value
     [kg/m³] and where [m] (None before any value fell below zero), the largest value over
     the run [kg/m³] and where (None at t = 0), and the largest share of
     free nodes flux limiting left at low order in a step (T16b). For the run: steps taken,
@@ -41,6 +42,7 @@ class TransportDiagnostics:
     limiting_blocked: dict[str, float] = field(default_factory=dict)
     max_concentration: dict[str, tuple[float, tuple[float, ...] | None]] = field(
         default_factory=dict)
+    max_plume_courant: dict[str, float] = field(default_factory=dict)
 
 
 def grid_peclet(s: SpeciesModel, seepage_velocity: FloatArray, porosity: FloatArray) -> float:
@@ -88,6 +90,7 @@ class RunStatistics:
     def __init__(self, peclet: dict[str, float]) -> None:
         self.peclet = peclet
         self.courant = dict.fromkeys(peclet, 0.0)
+        self.plume_courant = dict.fromkeys(peclet, 0.0)
         self.lowest: dict[str, tuple[float, tuple[float, ...] | None]] = dict.fromkeys(
             peclet, (0.0, None))
         self.highest: dict[str, tuple[float, tuple[float, ...] | None]] = dict.fromkeys(
@@ -99,8 +102,10 @@ class RunStatistics:
         self.solver = "none"
 
     def add(self, result: StepResult, dt: float, species: tuple[SpeciesModel, ...],
-            points: FloatArray) -> list[str]:
-        """Fold one accepted step in; returns a log line per species (its lowest value)."""
+            points: FloatArray, plume_rates: dict[str, float]) -> list[str]:
+        """Fold one accepted step in; ``plume_rates`` [1/s] are the largest |a|/h over each
+        species' plume at the step's start. Returns a log line per species (its lowest
+        value)."""
         self.n_steps += 1
         self.solver = result.solver_kind
         self.dt_min, self.dt_max = min(self.dt_min, dt), max(self.dt_max, dt)
@@ -122,6 +127,8 @@ class RunStatistics:
             lows.append(f"{s.name} min {new[j]:.3g} kg/m³ at ({where}) m")
             self.courant[s.name] = max(self.courant[s.name],
                                        dt * s.coefficients.courant_rate)
+            self.plume_courant[s.name] = max(self.plume_courant[s.name],
+                                             dt * plume_rates[s.name])
         return lows
 
     def diagnostics(self, step_cuts: int, rejected: int) -> TransportDiagnostics:
@@ -133,4 +140,5 @@ class RunStatistics:
             smallest_step=0.0 if self.n_steps == 0 else float(self.dt_min),
             largest_step=float(self.dt_max), max_newton_iterations=self.newton,
             max_coupling_sweeps=self.sweeps, limiting_blocked=dict(self.blocked),
+            max_plume_courant=dict(self.plume_courant),
             max_concentration={k: v for k, v in self.highest.items() if v[1] is not None})

@@ -28,11 +28,13 @@ import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
 
-__all__ = ["LIMITER_PASSES", "PASS_TOLERANCE", "TargetFluxes", "limited_target_fluxes",
-           "raw_flux_sums"]
+__all__ = ["LIMITER_PASSES", "PASS_TOLERANCE", "Correction", "TargetFluxes",
+           "limited_target_fluxes", "raw_flux_sums"]
 
 LIMITER_PASSES = 4
 """Passes of Zalesak's limiter over the fluxes not yet used (iterative flux correction)."""
+
+PRELIMIT = False
 
 PASS_TOLERANCE = 1e-3
 """The passes stop once every unused flux is below this share of the largest raw flux."""
@@ -112,13 +114,15 @@ class TargetFluxes:
     """The operators the correction towards a high-order target needs, on one CSR pattern:
     the consistent mass M, the diffusion D that the low-order operator added (T16,
     nonpositive off-diagonal entries), the low-order operator L = K + D and its transpose's
-    values on the same pattern, and the lumped mass m_L (row sums of M)."""
+    values on the same pattern, the lumped mass m_L (row sums of M) and L's column sums
+    [m³/s] (the nodal decay and outflow: the sinks)."""
 
     mass: sp.csr_matrix
     diffusion: sp.csr_matrix
     low_order: sp.csr_matrix
     low_order_transposed: FloatArray
     lumped: FloatArray
+    sink: FloatArray
 
     @classmethod
     def of(cls, mass: sp.csr_matrix, galerkin: sp.csr_matrix,
@@ -135,16 +139,32 @@ class TargetFluxes:
                                    low_order.indptr), shape=low_order.shape)
         return cls(mass=mass, diffusion=diffusion, low_order=low_order,
                    low_order_transposed=np.ascontiguousarray(lt.data),
-                   lumped=np.asarray(mass.sum(axis=1)).ravel())
+                   lumped=np.asarray(mass.sum(axis=1)).ravel(),
+                   sink=np.asarray(low_order.sum(axis=0)).ravel())
+
+
+@dataclass(frozen=True)
+class Correction:
+    """The correction of one low-order step (theory.md T16b).
+
+    ``fluxes`` [kg/s per node]: the net limited fluxes, Σ = 0 (the fixed nodes' share goes
+    to the source input through the residual); ``corrected``: the new field (c_L plus both
+    corrections at the free nodes); ``sink_state``: the field the sinks (decay, outflow)
+    acted on, for the budget; ``blocked`` nodes and limiter ``passes``."""
+
+    fluxes: FloatArray
+    corrected: FloatArray
+    sink_state: FloatArray
+    blocked: int
+    passes: int
 
 
 def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray,
                           c_old: FloatArray, dt: float, theta: float, fixed: IndexArray,
                           *, reach: float = np.inf, passes: int = LIMITER_PASSES,
-                          ) -> tuple[FloatArray, int, int]:
-    """Net limited flux g_i = Σ_j α_ij f_ij [kg/s] that moves the low-order step c_L towards
-    a high-order target step c_H (theory.md T16b), the nodes the ``reach`` rule blocked and
-    the limiter passes used.
+                          ) -> Correction:
+    """Move the low-order step c_L towards a high-order target step c_H (theory.md T16b),
+    as far as the local bounds allow.
 
     The target solves M(c_H − cⁿ)/Δt + K ĉ = b with ĉ = θ c_H + (1 − θ) cⁿ (Galerkin,
     backward Euler or Crank–Nicolson), the low-order step M_L(c_L − cⁿ)/Δt + L c_L = b with
@@ -153,23 +173,25 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
         f_ij = m_ij (ċ_i − ċ_j) + d_ij (ĉ_i − ĉ_j) + l_ij x_j − l_ji x_i,
         ċ = (c_H − cⁿ)/Δt,  x = c_L − ĉ,
 
-    (d_ij ≥ 0 the added diffusion) and the remainder r_i = x_i Σ_j l_ji, nonzero only where
-    L's column sums are: decay and outflow, which therefore stay at the low-order step's
-    values. Unlimited (α = 1) the correction gives c_H up to that remainder. Zalesak's
-    limiter keeps every corrected value within the range of its neighbours' values; it is
-    applied again to the part of each flux not yet used, against the corrected field, up to
-    ``passes`` times (iterative flux correction: each pass stays bounded, so the result is
-    bounded whatever the step). Nodes ``fixed`` take no correction; the fluxes they exchange
-    still appear in g (with the opposite sign at the fixed node), so Σ g = 0. A node whose
-    step is long against its exchange with its neighbours, Δt Σ_j d_ij > ``reach`` m_i,
-    takes and gives no flux."""
+    (d_ij ≥ 0 the added diffusion) and the nodal remainder r_i = x_i Σ_j l_ji, nonzero only
+    where L's column sums are: at the sinks (decay and outflow, which the low-order step
+    takes at c_L and the target at ĉ). Unlimited, the two corrections give c_H exactly.
+    Zalesak's limiter keeps every corrected value within the range of its neighbours'
+    values; it is applied again to the part of each flux not yet used, against the
+    corrected field, up to ``passes`` times (iterative flux correction). The remainder is
+    then added at each free node as far as that node stays within its neighbours' range.
+    Every pass stays bounded, so the result is bounded whatever the step. Nodes ``fixed``
+    take no correction; the fluxes they exchange still appear in ``fluxes`` (with the
+    opposite sign at the fixed node), so their sum is 0. A node whose step is long against
+    its exchange with its neighbours, Δt Σ_j d_ij > ``reach`` m_i, takes and gives no
+    flux."""
     n = ops.lumped.size
     held = np.zeros(n, dtype=np.bool_)
     held[fixed] = True
     blocked = ~held & (dt * ops.diffusion.diagonal() > reach * ops.lumped)
     c_low = np.ascontiguousarray(c_low, dtype=float)
     indptr, cols = ops.mass.indptr, ops.mass.indices
-    f = _raw_fluxes(ops, c_low, c_high, c_old, dt, theta, prelimit=True)
+    f = _raw_fluxes(ops, c_low, c_high, c_old, dt, theta, prelimit=PRELIMIT)
     c, total = c_low.copy(), np.zeros(n)
     free = ~held
     scale = float(np.max(np.abs(f))) if f.size else 0.0
@@ -181,7 +203,29 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
         f -= applied
         if float(np.max(np.abs(f), initial=0.0)) <= PASS_TOLERANCE * scale:
             break
-    return total, int(blocked.sum()), used
+    x = c_low - (theta * np.asarray(c_high, dtype=float) + (1.0 - theta) * c_old)
+    share = _sink_share(indptr, cols, c, dt * ops.sink * x / ops.lumped, free & ~blocked)
+    c[free] += share[free] * dt * ops.sink[free] * x[free] / ops.lumped[free]
+    return Correction(fluxes=total, corrected=c, sink_state=c_low - share * x,
+                      blocked=int(blocked.sum()), passes=used)
+
+
+@numba.njit(cache=True, nogil=True)
+def _sink_share(indptr: IndexArray, cols: IndexArray, c: FloatArray, change: FloatArray,
+                free: np.ndarray) -> FloatArray:
+    """Share β_i ∈ [0, 1] of a nodal ``change`` that keeps each free node within its
+    neighbours' range of ``c``."""
+    beta = np.zeros(c.size)
+    for i in range(c.size):
+        if not free[i] or change[i] == 0.0:
+            continue
+        lo = hi = c[i]
+        for p in range(indptr[i], indptr[i + 1]):
+            lo = min(lo, c[cols[p]])
+            hi = max(hi, c[cols[p]])
+        room = (hi - c[i]) if change[i] > 0.0 else (lo - c[i])
+        beta[i] = min(1.0, room / change[i])
+    return beta
 
 
 def _raw_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray, c_old: FloatArray,

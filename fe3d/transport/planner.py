@@ -2,7 +2,9 @@
 a multistep scheme starts again (theory.md T13, T14).
 
 Fixed steps: a queue of equal steps between breakpoints (output and source-switch times,
-:func:`time_steps`); a failed step is replaced by its two halves. Adaptive steps: the step
+:func:`time_steps`); a failed step is replaced by its two halves. Plume steps (no
+``time.step``): the step the run loop hands in from the plume's Courant number (T14b),
+landing on every breakpoint. Adaptive steps: the step
 controller of :mod:`fe3d.transport.timeschemes` grows or shrinks the step, snapped to
 ``time.step · 2^k`` so that operators are reused, and every step lands on the next
 breakpoint. Knows no physics and no fields.
@@ -70,13 +72,15 @@ class StepPlanner:
         self.time, self.breaks, self.switches = time, breakpoints, switches
         self.max_step_cuts = max_step_cuts
         self.adaptive = time.adaptive
-        self.control = StepControl(dt_min=time.min_step or time.step * 1e-6,
+        self.follows_plume = time.step is None  # T14b: steps from the plume's Courant number
+        base = time.end if time.step is None else time.step
+        self.control = StepControl(dt_min=time.min_step or base * 1e-6,
                                    dt_max=time.max_step or time.end, order=ORDER[time.scheme])
-        self._queue = [] if self.adaptive else [(b, d) for _, b, d in
-                                                time_steps(breakpoints, time.step)]
+        self._queue = [] if self.adaptive or self.follows_plume else [
+            (b, d) for _, b, d in time_steps(breakpoints, base)]
         self._queue.reverse()  # pop() from the end
         self.t = 0.0
-        self._dt_want = time.step
+        self._dt_want = base
         self._cuts_here = 0
         self.step_cuts = 0
         self.rejected = 0
@@ -86,10 +90,15 @@ class StepPlanner:
         """True once the end time is reached."""
         return self.t >= self.time.end * (1.0 - 1e-12)
 
-    def next(self) -> PlannedStep:
-        """The next step from the current time."""
+    def next(self, plume_step: float | None = None) -> PlannedStep:
+        """The next step from the current time; ``plume_step`` [s] is the step that holds
+        the plume at the Courant target (used when the case gives no time.step), halved as
+        often as this position's steps have failed."""
         t = self.t
-        if self.adaptive:
+        if self.follows_plume and plume_step is not None:
+            cap = min(plume_step, self.control.dt_max) / 2.0**self._cuts_here
+            self._dt_want = cap
+        if self.adaptive or self.follows_plume:
             b = next(x for x in self.breaks if x > t * (1.0 + 1e-12))
             t1 = t + fit_to_next_time(t, self._dt_want, b)
             if abs(t1 - b) <= 1e-9 * max(1.0, b):
@@ -109,7 +118,7 @@ class StepPlanner:
             raise type(exc)(msg) from exc
         logger.warning("step from t = %.6g s failed (%s); retrying with Δt = %.4g s",
                        step.t0, exc, step.dt / 2)
-        if self.adaptive:
+        if self.adaptive or self.follows_plume:
             self._dt_want = step.dt / 2
         else:
             half = float(f"{step.dt / 2:.12g}")

@@ -40,6 +40,7 @@ from fe3d.transport.accumulate import (
 )
 from fe3d.transport.assembly import P1_MASS
 from fe3d.transport.budget import MassBudget
+from fe3d.transport.courant import PlumeCourant
 from fe3d.transport.model import build_medium, build_species, lumped
 from fe3d.transport.planner import StepPlanner, time_steps
 from fe3d.transport.sources import build_source_geometry, initial_fields
@@ -121,9 +122,11 @@ def run_transport(
                         history={k: np.array(v) for k, v in history.items()},
                         diagnostics=stats.diagnostics(planner.step_cuts, planner.rejected))
 
+    courant = PlumeCourant(site, species, ctx.sources)
     yield snapshot(0.0)
     while not planner.finished:
-        step = planner.next()
+        rates = courant.rates(state.fields, planner.t)
+        step = planner.next(PlumeCourant.step(rates, tc.courant, tc.end))
         co = step_coefficients(tc.scheme, step.dt, dt_prev)
         try:
             result = take_step(ctx, state if co.a2 else _without_older(state),
@@ -136,7 +139,7 @@ def run_transport(
         if not planner.judge(step, result.newton_iterations, error):
             continue
         totals.add(result.budget)
-        lows = stats.add(result, step.dt, species, site.points)
+        lows = stats.add(result, step.dt, species, site.points, rates)
         if logger.isEnabledFor(logging.INFO):
             logger.info("step %d: t = %.6g s, Δt = %.4g s, %s%s", stats.n_steps, step.t1,
                         step.dt, "; ".join(lows), f"; Newton {result.newton_iterations} "

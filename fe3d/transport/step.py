@@ -302,13 +302,12 @@ class _Solve:
         ops = self.ctx.systems.limiter(s)
         if ops is not None and self.target is not None:  # T16b: the limited fluxes, explicit
             high = self._target_step(guess, out)
-            g, n_blocked, _passes = limited_target_fluxes(ops, out, high, old, dt,
-                                                          self.target[0].theta, sy.fixed,
-                                                          reach=LIMITING_REACH)
-            self.blocked = max(self.blocked or 0.0, n_blocked / max(sy.free.size, 1))
-            self.limited_state = out.copy()  # the state the fluxes act on
-            out[sy.free] += dt * g[sy.free] / ops.lumped[sy.free]
-            r -= g
+            fix = limited_target_fluxes(ops, out, high, old, dt, self.target[0].theta,
+                                        sy.fixed, reach=LIMITING_REACH)
+            self.blocked = max(self.blocked or 0.0, fix.blocked / max(sy.free.size, 1))
+            self.limited_state = fix.sink_state  # the state decay and outflow acted on
+            out = fix.corrected
+            r -= fix.fluxes
         return out, r, 0.0, 1
 
     def _target_step(self, guess: FloatArray, low: FloatArray) -> FloatArray:

@@ -170,12 +170,11 @@ BAD_INPUTS = [
      "[solver]\nmonotone = true\nshock_capturing = true\n\n[output]",
      "solver.shock_capturing", "'true'", "is not used with solver.monotone = true"),
     ("flux_limiting_without_monotone", "[output]",
-     "[solver]\nflux_limiting = true\n\n[output]",
+     "[solver]\nmonotone = false\nflux_limiting = true\n\n[output]",
      "solver.flux_limiting", "'true'", "needs solver.monotone = true"),
-    ("flux_limiting_with_adaptive_steps", 'output_interval = "0.5 yr"\n',
-     'output_interval = "0.5 yr"\nadaptive = true\n\n[solver]\nmonotone = true\n'
-     'flux_limiting = true\n',
-     "solver.flux_limiting", "'true'", "works with fixed steps only"),
+    ("bdf2_with_the_bounded_scheme", 'output_interval = "0.5 yr"\n',
+     'output_interval = "0.5 yr"\nscheme = "bdf2"\n',
+     "time.scheme", "'bdf2'", "cannot be bounded"),
     ("fine_cells_coarser_than_cells", 'fine_cell_size = "4 m"', 'fine_cell_size = "10 m"',
      "mesh.fine_cell_size", "'10 m'", "must not exceed mesh.cell_size (8 m)"),
 ]

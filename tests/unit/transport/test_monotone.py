@@ -90,9 +90,9 @@ def test_limited_fluxes_conserve_and_keep_local_bounds() -> None:
     fixed = np.arange(0, n, 7)
     free = np.setdiff1d(np.arange(n), fixed)
     dt = 1e6
-    g, n_blocked, passes = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 0.5, fixed,
-                                                 passes=1)
-    assert n_blocked == 0 and passes == 1  # no reach given: no node blocked
+    fix = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 0.5, fixed, passes=1)
+    g = fix.fluxes
+    assert fix.blocked == 0 and fix.passes == 1  # no reach given: no node blocked
     assert abs(g.sum()) <= 1e-12 * np.abs(g).sum()
     c = c_low.copy()
     c[free] += dt * g[free] / m_l[free]
@@ -101,12 +101,13 @@ def test_limited_fluxes_conserve_and_keep_local_bounds() -> None:
         nb = c_low[adj.indices[adj.indptr[i]:adj.indptr[i + 1]]]
         assert nb.min() - 1e-12 <= c[i] <= nb.max() + 1e-12
     assert np.abs(dt * g[free] / m_l[free]).max() > 1e-3  # the correction is not trivially 0
-    g, _, passes = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 0.5, fixed)
-    assert passes > 1
+    fix = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 0.5, fixed)
+    g = fix.fluxes
+    assert fix.passes > 1
     assert abs(g.sum()) <= 1e-12 * np.abs(g).sum()
-    c = c_low.copy()
-    c[free] += dt * g[free] / m_l[free]
+    c = fix.corrected  # fluxes and the sinks' remainder
     assert c_low.min() - 1e-12 <= c.min() and c.max() <= c_low.max() + 1e-12
+    np.testing.assert_array_equal(c[fixed], c_low[fixed])
 
 
 def test_raw_fluxes_carry_the_difference_between_the_steps() -> None:
@@ -138,14 +139,14 @@ def test_limiting_stops_where_the_step_is_long() -> None:
     dt = 1e6
     none = np.array([], dtype=np.int64)
     ratio = dt * ops.diffusion.diagonal() / ops.lumped
-    g0, n0, _ = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 1.0, none, reach=0.0)
-    assert np.all(g0 == 0.0) and n0 == int(np.sum(ratio > 0.0))  # a node with no exchange
-    # is not blocked, but all its neighbours are
+    fix0 = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 1.0, none, reach=0.0)
+    # a node with no exchange is not blocked, but all its neighbours are
+    assert np.all(fix0.fluxes == 0.0) and fix0.blocked == int(np.sum(ratio > 0.0))
     levels = np.unique(ratio)  # the regular mesh repeats ratios: reach between two of them
     k = levels.size // 2
     reach = float(0.5 * (levels[k] + levels[k + 1]))
-    g, n_blocked, _ = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 1.0, none,
-                                            reach=reach)
+    fix = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 1.0, none, reach=reach)
+    g, n_blocked = fix.fluxes, fix.blocked
     assert n_blocked == int(np.sum(ratio > reach))
     assert np.all(g[ratio > reach] == 0.0)
     assert np.any(g[ratio <= reach] != 0.0)
