@@ -64,10 +64,11 @@ def _target_fluxes(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: Float
 @numba.njit(cache=True, nogil=True)
 def _zalesak(indptr: IndexArray, cols: IndexArray, f: FloatArray, lumped: FloatArray,
              c: FloatArray, dt: float, held: np.ndarray, blocked: np.ndarray,
-             ) -> tuple[FloatArray, FloatArray]:
+             cap: FloatArray) -> tuple[FloatArray, FloatArray]:
     """One pass of Zalesak's limiter: the share α_ij f_ij of each flux that keeps every free
-    node within its neighbours' range of ``c``, per CSR entry, and the net flux per node.
-    Held nodes do not limit their neighbours; blocked nodes take and give no flux."""
+    node within its neighbours' range of ``c`` (the upper end raised to ``cap``, what the
+    node's sources bring), per CSR entry, and the net flux per node. Held nodes do not
+    limit their neighbours; blocked nodes take and give no flux."""
     n = lumped.size
     r_plus, r_minus = np.ones(n), np.ones(n)
     for i in range(n):
@@ -76,7 +77,8 @@ def _zalesak(indptr: IndexArray, cols: IndexArray, f: FloatArray, lumped: FloatA
         if blocked[i]:
             r_plus[i] = r_minus[i] = 0.0
             continue
-        p_plus = p_minus = q_plus = q_minus = 0.0
+        p_plus = p_minus = q_minus = 0.0
+        q_plus = max(0.0, cap[i] - c[i])
         for p in range(indptr[i], indptr[i + 1]):
             j = cols[p]
             if j == i:
@@ -162,7 +164,7 @@ class Correction:
 def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray,
                           c_old: FloatArray, dt: float, theta: float, fixed: IndexArray,
                           *, reach: float = np.inf, passes: int = LIMITER_PASSES,
-                          ) -> Correction:
+                          upper: FloatArray | None = None) -> Correction:
     """Move the low-order step c_L towards a high-order target step c_H (theory.md T16b),
     as far as the local bounds allow.
 
@@ -178,7 +180,10 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
     takes at c_L and the target at ĉ). Unlimited, the two corrections give c_H exactly.
     Zalesak's limiter keeps every corrected value within the range of its neighbours'
     values; it is applied again to the part of each flux not yet used, against the
-    corrected field, up to ``passes`` times (iterative flux correction). The remainder is
+    corrected field, up to ``passes`` times (iterative flux correction). ``upper`` [kg/m³]
+    raises a node's upper bound to what its sources bring (injected or inflowing water's
+    concentration; +inf for a mass load), so a source node is not held down to its
+    neighbours' values. The remainder is
     then added at each free node as far as that node stays within its neighbours' range.
     Every pass stays bounded, so the result is bounded whatever the step. Nodes ``fixed``
     take no correction; the fluxes they exchange still appear in ``fluxes`` (with the
@@ -194,17 +199,19 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
     f = _raw_fluxes(ops, c_low, c_high, c_old, dt, theta, prelimit=PRELIMIT)
     c, total = c_low.copy(), np.zeros(n)
     free = ~held
+    cap = np.full(n, -np.inf) if upper is None else np.asarray(upper, dtype=float)
     scale = float(np.max(np.abs(f))) if f.size else 0.0
     used = 0
     for used in range(1, passes + 1):  # noqa: B007 (the count is reported)
-        applied, g = _zalesak(indptr, cols, f, ops.lumped, c, float(dt), held, blocked)
+        applied, g = _zalesak(indptr, cols, f, ops.lumped, c, float(dt), held, blocked, cap)
         c[free] += dt * g[free] / ops.lumped[free]
         total += g
         f -= applied
         if float(np.max(np.abs(f), initial=0.0)) <= PASS_TOLERANCE * scale:
             break
     x = c_low - (theta * np.asarray(c_high, dtype=float) + (1.0 - theta) * c_old)
-    share = _sink_share(indptr, cols, c, dt * ops.sink * x / ops.lumped, free & ~blocked)
+    share = _sink_share(indptr, cols, c, dt * ops.sink * x / ops.lumped, free & ~blocked,
+                        cap)
     c[free] += share[free] * dt * ops.sink[free] * x[free] / ops.lumped[free]
     return Correction(fluxes=total, corrected=c, sink_state=c_low - share * x,
                       blocked=int(blocked.sum()), passes=used)
@@ -212,19 +219,19 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
 
 @numba.njit(cache=True, nogil=True)
 def _sink_share(indptr: IndexArray, cols: IndexArray, c: FloatArray, change: FloatArray,
-                free: np.ndarray) -> FloatArray:
+                free: np.ndarray, cap: FloatArray) -> FloatArray:
     """Share β_i ∈ [0, 1] of a nodal ``change`` that keeps each free node within its
-    neighbours' range of ``c``."""
+    neighbours' range of ``c`` (the upper end raised to ``cap``)."""
     beta = np.zeros(c.size)
     for i in range(c.size):
         if not free[i] or change[i] == 0.0:
             continue
-        lo = hi = c[i]
+        lo, hi = c[i], max(c[i], cap[i])
         for p in range(indptr[i], indptr[i + 1]):
             lo = min(lo, c[cols[p]])
             hi = max(hi, c[cols[p]])
         room = (hi - c[i]) if change[i] > 0.0 else (lo - c[i])
-        beta[i] = min(1.0, room / change[i])
+        beta[i] = min(1.0, room / change[i])  # room = +inf: the whole change
     return beta
 
 

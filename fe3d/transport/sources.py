@@ -58,7 +58,9 @@ class SourceGeometry:
     (0, 1]; 1 for a box);
     ``inflow_weights``: inflow patch → nodal (−q·n)⁺ weights [m³/s] (T3b);
     ``loading_weights``: mass loading → nodal weights summing to 1 (T3f);
-    ``injection``: species → nodal load of injection wells [kg/s] (T3d)."""
+    ``injection``: species → nodal load of injection wells [kg/s] (T3d);
+    ``injected``: species → concentration [kg/m³] of the water injection wells bring to
+    each node (0 elsewhere)."""
 
     sources: tuple[Source, ...]
     held_nodes: dict[str, IndexArray]
@@ -66,6 +68,22 @@ class SourceGeometry:
     inflow_weights: dict[str, FloatArray]
     loading_weights: dict[str, FloatArray]
     injection: dict[str, FloatArray]
+    injected: dict[str, FloatArray]
+
+    def upper_bounds(self, species: str) -> FloatArray:
+        """The largest concentration [kg/m³] the sources of ``species`` can bring to each
+        node (T16b): the injected and inflowing water's concentration, +inf where mass is
+        loaded without water (a point load has no concentration of its own), 0 elsewhere."""
+        bound = self.injected[species].copy()
+        for src in self.sources:
+            if src.species != species:
+                continue
+            if src.kind == "mass_loading":
+                bound[self.loading_weights[src.name] > 0.0] = np.inf
+            elif src.kind == "inflow_concentration" and src.peak_concentration is not None:
+                nodes = self.inflow_weights[src.name] > 0.0
+                bound[nodes] = np.maximum(bound[nodes], src.peak_concentration)
+        return bound
 
     def held(self, species: str, t0: float, t1: float) -> HeldValues:
         """The fixed concentrations of ``species`` active over the step (t0, t1) [s]."""
@@ -125,9 +143,15 @@ def build_source_geometry(site: SiteMesh, flow: FlowField, case: Case, *,
                             for w in case.wells if name in w.injection_concentration
                             and w.name in flow.exchange), np.zeros(n))
                  for name in case.species}
+    injected = {name: np.zeros(n) for name in case.species}
+    for w in case.wells:
+        if w.name in flow.exchange:
+            into = flow.exchange[w.name] > 0.0
+            for name, c_inj in w.injection_concentration.items():
+                injected[name][into] = np.maximum(injected[name][into], c_inj)
     return SourceGeometry(sources=tuple(case.sources), held_nodes=held, held_shares=shares,
-                          inflow_weights=inflow,
-                          loading_weights=loading, injection=injection)
+                          inflow_weights=inflow, loading_weights=loading,
+                          injection=injection, injected=injected)
 
 
 def initial_fields(case: Case, site: SiteMesh, geometry: SourceGeometry,

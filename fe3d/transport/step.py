@@ -303,7 +303,8 @@ class _Solve:
         if ops is not None and self.target is not None:  # T16b: the limited fluxes, explicit
             high = self._target_step(guess, out)
             fix = limited_target_fluxes(ops, out, high, old, dt, self.target[0].theta,
-                                        sy.fixed, reach=LIMITING_REACH)
+                                        sy.fixed, reach=LIMITING_REACH,
+                                        upper=self.ctx.sources.upper_bounds(s.name))
             self.blocked = max(self.blocked or 0.0, fix.blocked / max(sy.free.size, 1))
             self.limited_state = fix.sink_state  # the state decay and outflow acted on
             out = fix.corrected

@@ -324,14 +324,14 @@ def test_bad_concentration_files_name_the_field(tmp_path, csv, allowed):
 # --- point and line mass loading -------------------------------------------------------------
 
 
-def _no_flow_loading(shape: str, points: list[tuple[float, float, float]]):
+def _no_flow_loading(shape: str, points: list[tuple[float, float, float]], **solver: object):
     return box_case(
         length=40.0, width=40.0, cell=2.0, dz=1.0, heads={"west": 1.0, "east": 1.0},
         layers=[Layer("sand", -12.0, Material(5.0, 5.0, diffusion_coefficient="1e-8 m^2/s"))],
         species=[Species("s")],
         sources=[Source("drip", species="s", kind="mass_loading", mass_rate="3 g/d",
                         shape=shape, points=points)],
-        time=Time(10.0, 1.0), solver=Solver(linear_solver="direct"))
+        time=Time(10.0, 1.0), solver=Solver(linear_solver="direct", **solver))
 
 
 def _first_moment(site, c):
@@ -358,16 +358,24 @@ def test_point_and_line_loading_put_their_mass_where_they_are(shape, points, cen
     point source is φ_j(x_s), whose first moment Σ φ_j(x_s) x_j = x_s because P1 reproduces
     linear functions; diffusion keeps the first moment while c = 0 on the boundary (T3f;
     exact by construction). The source sits 6–10 cells from every face, so the boundary
-    values of the implicit solution stay small (measured ≤ 4e-6 m off when written)."""
-    case = _no_flow_loading(shape, points)
-    site, flow = mesh_and_flow(case)
-    snaps = list(run_transport(site, flow, case))
-    for snap in snaps[1:]:
-        b = snap.budgets["s"]
-        assert b.source_input == pytest.approx(3e-3 / DAY * snap.time, rel=1e-12)
-        assert b.relative_error <= 1e-8
-        np.testing.assert_allclose(_first_moment(site, snap.concentration["s"]), centre,
-                                   atol=1e-4)
+    values of the implicit solution stay small (measured ≤ 4e-6 m off when written).
+
+    The first moment is a property of the consistent Galerkin operators (solver.monotone =
+    false; without flow SUPG is Galerkin). fe3d's default, the low-order step corrected
+    within local bounds (T16, T16b), puts in the same mass and closes its budget, but its
+    added diffusion does not keep the first moment: its centroid is only checked to lie
+    within one plan cell (2 m) of the source (measured 0.13–0.23 m off)."""
+    for scheme in ("galerkin", "default"):
+        case = _no_flow_loading(shape, points, **({"monotone": False}
+                                                  if scheme == "galerkin" else {}))
+        site, flow = mesh_and_flow(case)
+        snaps = list(run_transport(site, flow, case))
+        for snap in snaps[1:]:
+            b = snap.budgets["s"]
+            assert b.source_input == pytest.approx(3e-3 / DAY * snap.time, rel=1e-12)
+            assert b.relative_error <= 1e-8
+            np.testing.assert_allclose(_first_moment(site, snap.concentration["s"]), centre,
+                                       atol=1e-4 if scheme == "galerkin" else 2.0)
 
 
 @pytest.mark.parametrize(("shape", "points", "allowed"), [

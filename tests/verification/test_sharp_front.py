@@ -99,15 +99,18 @@ def test_reference_satisfies_its_equation():
 
 
 def _case(dt: float, **solver: object):
-    """The column with steps of ``dt`` [s] and the ``solver`` keys given (the mesh as
-    stated, corridor off: the grid Péclet number is part of the check)."""
+    """The column with backward Euler steps of ``dt`` [s] and the ``solver`` keys given on
+    top of SUPG (this file compares SUPG, shock capturing and the low-order and limited
+    schemes as they were written; fe3d's default is checked in test_bounded_default.py),
+    the mesh as stated (corridor off: the grid Péclet number is part of the check)."""
+    solver = {"monotone": False, "flux_limiting": False, **solver}
     case = box_case(
         length=LENGTH, width=WIDTH, cell=CELL, dz=CELL, heads={"west": 1.0, "east": 0.0},
         layers=[Layer("sand", -CELL, Material(10.0, 10.0, porosity=POROSITY,
                                               longitudinal_dispersivity=ALPHA,
                                               transverse_dispersivity=ALPHA))],
         sources=[Source("inlet", shape="face_patch", face="west", concentration=f"{C0} kg/m^3")],
-        time=Time(T_END / DAY, dt / DAY), solver=Solver(**solver) if solver else None)
+        time=Time(T_END / DAY, dt / DAY, scheme="backward_euler"), solver=Solver(**solver))
     return with_changes(case, mesh={"corridor": False})
 
 

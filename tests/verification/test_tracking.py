@@ -15,6 +15,7 @@ import numpy as np
 import pytest
 from test_flow_sources import _case
 
+from fe3d.case.builder import ObservationPoint
 from fe3d.flow.solve import solve_flow
 from fe3d.flow.tracking import Tracker
 from fe3d.mesh.build import build_mesh
@@ -24,9 +25,8 @@ DAY = 86400.0
 
 
 def test_uniform_flow_travel_time_is_exact():
-    extra = ('[[fixed_heads]]\nface = "west"\nhead = "10 m"\n'
-             '[[fixed_heads]]\nface = "east"\nhead = "9 m"\n')
-    case = _case(L=200, W=40, K=20.0, b=10.0, h=8.0, hf=8.0, extra=extra)
+    case = _case(L=200, W=40, K=20.0, b=10.0, h=8.0, hf=8.0,
+                 heads={"west": 10.0, "east": 9.0})
     site = build_mesh(case)
     flow = solve_flow(site, case)
     theta = 0.3
@@ -44,14 +44,11 @@ def test_uniform_flow_travel_time_is_exact():
 
 def test_radial_travel_time_to_a_well():
     q_well, b, theta = 500.0, 10.0, 0.3
-    extra = ('[[fixed_heads]]\nface = "west"\nhead = "20 m"\n'
-             '[[fixed_heads]]\nface = "east"\nhead = "20 m"\n'
-             '[[fixed_heads]]\nface = "south"\nhead = "20 m"\n'
-             '[[fixed_heads]]\nface = "north"\nhead = "20 m"\n'
-             '[[wells]]\nname = "PW"\nx = "100 m"\ny = "100 m"\nscreens = [["0 m", "-10 m"]]\n'
-             f'rate = "{q_well} m^3/d"\n'
-             '[[observation_points]]\nname = "PW_loc"\nx = "100 m"\ny = "100 m"\nz = "-5 m"\n')
-    case = _case(extra=extra, h=6.0, hf=1.0, rf=15.0, b=b)
+    well = {"name": "PW", "x": "100 m", "y": "100 m", "screens": [["0 m", "-10 m"]],
+            "rate": f"{q_well} m^3/d"}
+    case = _case(h=6.0, hf=1.0, rf=15.0, b=b, wells=[well],
+                 heads=dict.fromkeys(("west", "east", "south", "north"), 20.0),
+                 observation_points=[ObservationPoint("PW_loc", 100.0, 100.0, z=-5.0)])
     site = build_mesh(case)
     flow = solve_flow(site, case)
     tracker = Tracker(site.points, site.cells, flow.darcy_flux / theta)
