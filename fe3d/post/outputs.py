@@ -272,10 +272,16 @@ def method_words(case: Case) -> str:
     sc = case.solver
     names = {"backward_euler": "backward Euler", "crank_nicolson": "Crank–Nicolson",
              "bdf2": "BDF2"}
-    time_words = names[case.time.scheme] + (", adaptive steps" if case.time.adaptive else "")
-    if sc.monotone:
-        space = ("low-order monotone (lumped storage, discrete upwinding)"
-                 + (" with flux limiting" if sc.flux_limiting else ""))
+    t = case.time
+    steps = ("adaptive steps" if t.adaptive else "fixed steps" if t.step is not None
+             else f"steps holding the plume's Courant number at or below {t.courant:g}")
+    time_words = f"{names[t.scheme]}, {steps}"
+    if sc.monotone and sc.flux_limiting:
+        space = ("bounded: a low-order backward Euler step (lumped storage, discrete "
+                 f"upwinding) corrected towards the Galerkin {names[t.scheme]} step within "
+                 "local bounds")
+    elif sc.monotone:
+        space = "low-order backward Euler step (lumped storage, discrete upwinding)"
     elif sc.supg:
         space = "SUPG" + (" with shock capturing" if sc.shock_capturing else "")
     else:

@@ -217,6 +217,8 @@ def _step_species(
     target = None
     if ctx.systems.limited(s):  # T16b: a low-order backward Euler step, then corrected
         target, co = co, BACKWARD_EULER
+    elif ctx.systems.scheme.monotone:  # T16: the low-order step is bounded with backward Euler
+        co = BACKWARD_EULER
     sysm = ctx.systems.system(s, dt, co, held.active)
     fixed = sysm.fixed
     load = ctx.sources.load(s.name, t0, t1, ta, tb)

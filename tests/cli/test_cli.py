@@ -213,7 +213,8 @@ def test_run_writes_every_output(tiny_run: tuple[Path, str]) -> None:
     assert "step 1: t = " in log
     assert "tracer min " in log and " at (" in log
     # the report names the method the numbers came from
-    assert "- transport method: backward Euler; SUPG; linear solver" in \
+    assert "- transport method: Crank–Nicolson, fixed steps; bounded: a low-order backward " \
+        "Euler step" in \
         (out / "report.md").read_text(encoding="utf-8")
 
 
