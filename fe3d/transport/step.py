@@ -51,6 +51,11 @@ NEWTON_LINEAR_TOLERANCE = 1e-8
 """Relative residual of the preconditioned Krylov solves inside Newton (inexact Newton: the
 step's own tolerance is met by the outer iteration; Kelley 1995, ch. 6, from memory)."""
 
+ROUND_OFF_FACTOR = 64.0
+"""Newton inside a step stops once ‖R‖ ≤ ROUND_OFF_FACTOR · ε · max(‖rhs‖, ‖S cⁿ‖): the
+round-off of evaluating R from terms of that size (a sum over about 30 neighbours per
+row, rounded twice; common practice, no source)."""
+
 MAX_SWEEPS = 50
 """Sweeps over the species of a user law that couple both ways before a step is cut."""
 
@@ -427,8 +432,11 @@ def nonlinear_step(
         return solve_with_preconditioner(J, r, M_step,
                                          tol=max(NEWTON_LINEAR_TOLERANCE, min(tol, 1e-12)))
 
-    result = newton(residual, jacobian_solve, old[free].copy(), rtol=tol, atol=0.0,
-                    max_iter=max_iter)
+    # an absolute floor at the round-off of evaluating R: near a steady state the first
+    # residual is already tiny and tol times it would lie below what floating point reaches
+    scale = max(float(np.linalg.norm(rhs[free])), float(np.linalg.norm(S_ff @ old[free])))
+    result = newton(residual, jacobian_solve, old[free].copy(), rtol=tol,
+                    atol=ROUND_OFF_FACTOR * np.finfo(float).eps * scale, max_iter=max_iter)
     logger.info("%s: Newton %d iterations, residual norms %s", s.name, result.iterations,
                 ", ".join(f"{r:.2e}" for r in result.residual_norms))
     c = new.copy()
