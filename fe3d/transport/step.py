@@ -216,14 +216,44 @@ def _step_species(
     loss rate it hands to its daughters [kg/s per node] (None when it has none), the
     fraction of free nodes flux limiting blocked (None when not limited) and the kind of
     linear solver of the step system."""
+    step = (ctx, state, s, t0, t1, dt)
+    if ctx.systems.limited(s):  # T16b: a low-order backward Euler step, then corrected
+        return _attempt(*step, BACKWARD_EULER, co, decay_loss, user_rates)
+    if ctx.systems.scheme.monotone and co.theta < 1.0:
+        # T16: the low-order Crank–Nicolson step is kept when it stays within the bounds,
+        # else the step is taken again with backward Euler, which is bounded at any step
+        out = _attempt(*step, co, None, decay_loss, user_rates)
+        if _within_bounds(ctx, s, state.fields[s.name], out[0]):
+            return out
+        return _attempt(*step, BACKWARD_EULER, None, decay_loss, user_rates)
+    return _attempt(*step, co, None, decay_loss, user_rates)
+
+
+def _within_bounds(ctx: StepContext, s: SpeciesModel, old: FloatArray,
+                   new: FloatArray) -> bool:
+    """No value below zero, and none above the largest old, held or source value unless the
+    species is produced (a daughter or a user law), each to the solver tolerance."""
+    tol = ctx.solver.tolerance
+    upper = ctx.sources.upper_bounds(s.name)
+    top = max(float(old.max()), float(np.max(upper, initial=0.0)),
+              max((src.peak_concentration or 0.0 for src in ctx.sources.sources
+                   if src.species == s.name), default=0.0))
+    if new.min() < -tol * max(top, 1e-300):
+        return False
+    produced = s.spec.parent is not None or s.in_user_law
+    return produced or bool(new.max() <= top * (1.0 + tol))
+
+
+def _attempt(
+    ctx: StepContext, state: StepState, s: SpeciesModel, t0: float, t1: float, dt: float,
+    co: StepCoefficients, target: StepCoefficients | None,
+    decay_loss: dict[str, FloatArray], user_rates: tuple[RateLaw, RateLaw] | None,
+) -> tuple[FloatArray, StepBudget, int, FloatArray | None, float | None, str]:
+    """One species over one step with the coefficients ``co``, corrected towards the
+    Galerkin step of ``target`` when given (T16b); returns as :func:`_step_species`."""
     # sources are evaluated at the step's mean (θ-schemes) or its end (BDF2)
     ta, tb = (t1, t1) if ctx.time_scheme == "bdf2" else (t0, t1)
     held = ctx.sources.held(s.name, t0, t1)
-    target = None
-    if ctx.systems.limited(s):  # T16b: a low-order backward Euler step, then corrected
-        target, co = co, BACKWARD_EULER
-    elif ctx.systems.scheme.monotone:  # T16: the low-order step is bounded with backward Euler
-        co = BACKWARD_EULER
     sysm = ctx.systems.system(s, dt, co, held.active)
     fixed = sysm.fixed
     load = ctx.sources.load(s.name, t0, t1, ta, tb)
