@@ -62,13 +62,15 @@ def _target_fluxes(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: Float
 
 
 @numba.njit(cache=True, nogil=True)
-def _zalesak(indptr: IndexArray, cols: IndexArray, f: FloatArray, lumped: FloatArray,
-             c: FloatArray, dt: float, held: np.ndarray, blocked: np.ndarray,
-             cap: FloatArray) -> tuple[FloatArray, FloatArray]:
-    """One pass of Zalesak's limiter: the share α_ij f_ij of each flux that keeps every free
-    node within its neighbours' range of ``c`` (the upper end raised to ``cap``, what the
-    node's sources bring), per CSR entry, and the net flux per node. Held nodes do not
-    limit their neighbours; blocked nodes take and give no flux."""
+def _zalesak_pass(indptr: IndexArray, cols: IndexArray, f: FloatArray, lumped: FloatArray,
+                  c: FloatArray, dt: float, held: np.ndarray, blocked: np.ndarray,
+                  cap: FloatArray, total: FloatArray) -> float:
+    """One pass of Zalesak's limiter, in place: the share α_ij f_ij of each flux that keeps
+    every free node within its neighbours' range of ``c`` (the upper end raised to ``cap``,
+    what the node's sources bring) is added to ``total`` (net flux per node) and to ``c``
+    at the free nodes, and taken off ``f``. Held nodes do not limit their neighbours;
+    blocked nodes take and give no flux. Returns the largest flux left. Branch-free inner
+    loops (the signs of the fluxes are mixed)."""
     n = lumped.size
     r_plus, r_minus = np.ones(n), np.ones(n)
     for i in range(n):
@@ -79,36 +81,33 @@ def _zalesak(indptr: IndexArray, cols: IndexArray, f: FloatArray, lumped: FloatA
             continue
         p_plus = p_minus = q_minus = 0.0
         q_plus = max(0.0, cap[i] - c[i])
+        ci = c[i]
         for p in range(indptr[i], indptr[i + 1]):
-            j = cols[p]
-            if j == i:
-                continue
-            if f[p] > 0.0:
-                p_plus += f[p]
-            else:
-                p_minus += f[p]
-            q_plus = max(q_plus, c[j] - c[i])
-            q_minus = min(q_minus, c[j] - c[i])
+            fp = f[p]
+            p_plus += max(fp, 0.0)
+            p_minus += min(fp, 0.0)
+            d = c[cols[p]] - ci
+            q_plus = max(q_plus, d)
+            q_minus = min(q_minus, d)
         if p_plus > 0.0:
             r_plus[i] = min(1.0, lumped[i] * q_plus / (dt * p_plus))
         if p_minus < 0.0:
             r_minus[i] = min(1.0, lumped[i] * q_minus / (dt * p_minus))
-    applied = np.zeros(cols.size)
-    g = np.zeros(n)
+    left = 0.0
     for i in range(n):
         s = 0.0
+        rp, rm = r_plus[i], r_minus[i]
         for p in range(indptr[i], indptr[i + 1]):
             fij = f[p]
-            if fij > 0.0:
-                a = min(r_plus[i], r_minus[cols[p]]) * fij
-            elif fij < 0.0:
-                a = min(r_minus[i], r_plus[cols[p]]) * fij
-            else:
-                continue
-            applied[p] = a
+            j = cols[p]
+            a = max(fij, 0.0) * min(rp, r_minus[j]) + min(fij, 0.0) * min(rm, r_plus[j])
+            f[p] = fij - a
+            left = max(left, abs(fij - a))
             s += a
-        g[i] = s
-    return applied, g
+        total[i] += s
+        if not held[i]:
+            c[i] += dt * s / lumped[i]
+    return left
 
 
 @dataclass(frozen=True)
@@ -199,15 +198,14 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
     f = _raw_fluxes(ops, c_low, c_high, c_old, dt, theta, prelimit=PRELIMIT)
     c, total = c_low.copy(), np.zeros(n)
     free = ~held
+    # the diagonal of f is zero by construction (f_ii = 0): the passes may run over it
     cap = np.full(n, -np.inf) if upper is None else np.asarray(upper, dtype=float)
     scale = float(np.max(np.abs(f))) if f.size else 0.0
     used = 0
     for used in range(1, passes + 1):  # noqa: B007 (the count is reported)
-        applied, g = _zalesak(indptr, cols, f, ops.lumped, c, float(dt), held, blocked, cap)
-        c[free] += dt * g[free] / ops.lumped[free]
-        total += g
-        f -= applied
-        if float(np.max(np.abs(f), initial=0.0)) <= PASS_TOLERANCE * scale:
+        left = _zalesak_pass(indptr, cols, f, ops.lumped, c, float(dt), held, blocked, cap,
+                             total)
+        if left <= PASS_TOLERANCE * scale:
             break
     x = c_low - (theta * np.asarray(c_high, dtype=float) + (1.0 - theta) * c_old)
     share = _sink_share(indptr, cols, c, dt * ops.sink * x / ops.lumped, free & ~blocked,

@@ -38,7 +38,7 @@ def test_no_warning_for_a_resolved_run():
 
 
 @pytest.mark.parametrize(("field", "value", "word"), [
-    ("max_courant", {"x": 3.0}, "Courant"),
+    ("max_plume_courant", {"x": 3.0}, "Courant"),
     ("max_grid_peclet", {"x": 8.0}, "Péclet"),
     ("extremes", {"x": species_extremes("x", 1.0, lowest=(-0.05, None),
                                         highest=(1.0, None), bound=1.0)}, "negative"),
@@ -47,7 +47,7 @@ def test_no_warning_for_a_resolved_run():
     ("limiting_blocked", {"x": 0.25}, "25% of the nodes"),
 ])
 def test_each_threshold_warns(field, value, word):
-    """Thresholds: Courant 1, grid Péclet 2, undershoot and overshoot 1 % of the limit
+    """Thresholds: Courant 1 in the plume, grid Péclet 2, undershoot and overshoot 1 % of the limit
     (common practice, no source)."""
     w = quality_warnings(_summary(**{field: value}))
     assert len(w) == 1
