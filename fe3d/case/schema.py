@@ -179,6 +179,9 @@ class Species(Section):
     freundlich_kf: Partition | dict[Name, Partition] = 0.0
     freundlich_n: Annotated[float, Field(gt=0.0, le=5.0)] = 1.0
     freundlich_reference: PositiveConcentration = 1e-3
+    # concentration at which a nonlinear isotherm is linearised for the retarded velocity
+    # (corridor, step rule, SUPG τ); default: the largest source or initial value
+    linearisation_concentration: PositiveConcentration | None = None
     langmuir_capacity: MassRatio | dict[Name, MassRatio] = 0.0
     langmuir_affinity: Partition = 0.0
     parent: Name | None = None

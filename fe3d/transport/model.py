@@ -178,11 +178,18 @@ class SpeciesModel:
 
 
 def _reference_concentration(name: str, spec: Species, case: Case) -> float:
-    """Concentration [kg/m³] at which a nonlinear isotherm is linearised for the velocity,
-    τ and the SUPG storage: the largest source or initial value, at least the limit."""
-    return max([src.peak_concentration for src in case.sources
-                if src.species == name and src.peak_concentration is not None]
-               + [spec.initial_concentration, spec.limit])
+    """Concentration [kg/m³] at which a nonlinear isotherm is linearised for the retarded
+    velocity, τ and the SUPG storage: ``linearisation_concentration`` when the case gives
+    it, else the largest source, injected or initial value; the limit only for a species
+    with none of these (a daughter), where it is the scale that matters."""
+    if spec.linearisation_concentration is not None:
+        return spec.linearisation_concentration
+    values = [src.peak_concentration for src in case.sources
+              if src.species == name and src.peak_concentration is not None]
+    values += [w.injection_concentration[name] for w in case.wells
+               if name in w.injection_concentration]
+    largest = max([*values, spec.initial_concentration])
+    return largest if largest > 0.0 else spec.limit
 
 
 def build_species(site: SiteMesh, flow: FlowField, case: Case,
