@@ -11,7 +11,6 @@ __all__ = [
     "advection",
     "decay",
     "dispersion",
-    "inflow_weight",
     "outflow",
     "outflow_weight",
     "shock_diffusion",
@@ -44,12 +43,6 @@ def outflow(u: Any, v: Any, w: Any) -> Any:
 def outflow_weight(v: Any, w: Any) -> Any:
     r"""Outflow per unit concentration :math:`\int_{\Gamma_h}(q\cdot n)^+ v\,ds` (theory.md T3)."""
     return w.qn * v
-
-
-@LinearForm
-def inflow_weight(v: Any, w: Any) -> Any:
-    r"""Inflow per unit concentration :math:`\int_{\Gamma_s}(q\cdot n)^- v\,ds` (T3b)."""
-    return w.qn_in * v
 
 
 @BilinearForm
