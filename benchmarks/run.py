@@ -23,6 +23,7 @@ The script rewrites only the top part of docs/performance.md (up to its first "#
 
 from __future__ import annotations
 
+import functools
 import json
 import resource
 import subprocess
@@ -38,6 +39,17 @@ ROOT = Path(__file__).resolve().parents[1]
 DAY = 86400.0
 
 
+
+
+def _time_spmv(S: Any, spmv_s: list[float]) -> float:
+    """Time 5 SpMV of S now and append the mean to ``spmv_s``; on a shared machine the load
+    drifts, so every timed operation is divided by the SpMV measured right beside it."""
+    x = np.ones(S.shape[0])
+    t = time.perf_counter()
+    for _ in range(5):
+        S @ x
+    spmv_s.append((time.perf_counter() - t) / 5)
+    return spmv_s[-1]
 
 def site_case(h: float, dz: float) -> Any:
     """The Harrow Flats test box (sand over silt, fixed heads west and east, one solvent)
@@ -176,16 +188,7 @@ def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
         nnz = int(S.nnz)
         del S  # the unit below is the product of S on the free nodes, what the solver uses
         spmv_s: list[float] = []
-
-        def spmv_unit(S: Any = S_ff, spmv_s: list[float] = spmv_s) -> float:
-            """Time 5 SpMV of S now; on a shared machine the load drifts, so every timed
-            operation is divided by the SpMV measured right beside it."""
-            x = np.ones(S.shape[0])
-            t = time.perf_counter()
-            for _ in range(5):
-                S @ x
-            spmv_s.append((time.perf_counter() - t) / 5)
-            return spmv_s[-1]
+        spmv_unit = functools.partial(_time_spmv, S_ff, spmv_s)
 
         spmv_unit()
 
@@ -310,14 +313,7 @@ def bounded_steps(site: Any, pattern: Any, *, m: Any, k: Any, q: Any, a: Any, th
         SH_ff, SH_fD = split_rows(S_H, free, fixed)
         del S_L, S_H
         spmv_s: list[float] = []
-
-        def spmv_unit(S: Any = SL_ff, spmv_s: list[float] = spmv_s) -> float:
-            x = np.ones(S.shape[0])
-            t = time.perf_counter()
-            for _ in range(5):
-                S @ x
-            spmv_s.append((time.perf_counter() - t) / 5)
-            return spmv_s[-1]
+        spmv_unit = functools.partial(_time_spmv, SL_ff, spmv_s)
 
         spmv_unit()
         unit = spmv_unit()

@@ -30,8 +30,8 @@ from typing import Any, ClassVar
 from pydantic import ValidationError, create_model
 
 from fe3d.case import schema
-from fe3d.case.load import _errors_from, parse_case, with_release_files
-from fe3d.case.schema import Case, cross_checks
+from fe3d.case.load import _errors_from, completed_case, parse_case
+from fe3d.case.schema import Case
 from fe3d.case.schema_types import Section
 from fe3d.errors import CaseError, CaseErrors
 
@@ -505,14 +505,7 @@ def with_changes(case: Case, *, base_dir: Path | None = None,
                                       (new or {}).items()}, **getattr(added, name, {})}
         else:
             update[name] = old.model_copy(update=_set(new))
-    try:
-        changed = with_release_files(case.model_copy(update=update), base_dir or Path())
-    except CaseError as exc:
-        raise CaseErrors([exc]) from None
-    problems = cross_checks(changed)
-    if problems:
-        raise CaseErrors(problems)
-    return changed
+    return completed_case(case.model_copy(update=update), base_dir, geology=False)
 
 
 _KEYED = ("materials", "species")

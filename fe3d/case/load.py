@@ -15,7 +15,7 @@ from fe3d.case.schema import Case, cross_checks
 from fe3d.case.series import read_concentration_points, read_release_file
 from fe3d.errors import CaseError, CaseErrors
 
-__all__ = ["load_case", "parse_case"]
+__all__ = ["completed_case", "load_case", "parse_case"]
 
 _ALLOWED_HINTS = {
     "missing": "is required",
@@ -142,8 +142,15 @@ def parse_case(text: str, *, source: str = "<case>", base_dir: Path | None = Non
         case = Case.model_validate(raw)
     except ValidationError as exc:
         raise CaseErrors(_errors_from(exc, raw)) from None
+    return completed_case(case, base_dir)
+
+
+def completed_case(case: Case, base_dir: Path | None, *, geology: bool = True) -> Case:
+    """``case`` with its data files read (geology when ``geology``, release histories) from
+    ``base_dir`` and the rules between sections checked; raises :class:`CaseErrors`."""
     try:
-        case = with_geology_files(case, base_dir or Path())
+        if geology:
+            case = with_geology_files(case, base_dir or Path())
         case = with_release_files(case, base_dir or Path())
     except CaseError as exc:
         raise CaseErrors([exc]) from None
