@@ -34,8 +34,6 @@ __all__ = ["LIMITER_PASSES", "PASS_TOLERANCE", "Correction", "TargetFluxes",
 LIMITER_PASSES = 4
 """Passes of Zalesak's limiter over the fluxes not yet used (iterative flux correction)."""
 
-PRELIMIT = False
-
 PASS_TOLERANCE = 1e-3
 """The passes stop once every unused flux is below this share of the largest raw flux."""
 
@@ -43,9 +41,9 @@ PASS_TOLERANCE = 1e-3
 @numba.njit(cache=True, nogil=True)
 def _target_fluxes(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
                    low: FloatArray, low_t: FloatArray, c_low: FloatArray, rate: FloatArray,
-                   c_mean: FloatArray, prelimit: bool) -> FloatArray:
-    """Raw fluxes f_ij towards the target, per CSR entry; ``prelimit``: zero those that run
-    down the gradient of c_L (they would add diffusion)."""
+                   c_mean: FloatArray) -> FloatArray:
+    """Raw fluxes f_ij towards the target, per CSR entry. No prelimiting: dropping those
+    that run down the gradient of c_L removed the target's own spreading (T16b)."""
     f = np.zeros(cols.size)
     for i in range(c_low.size):
         x_i = c_low[i] - c_mean[i]
@@ -55,8 +53,6 @@ def _target_fluxes(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: Float
                 continue
             fij = (m[p] * (rate[i] - rate[j]) - d[p] * (c_mean[i] - c_mean[j])
                    + low[p] * (c_low[j] - c_mean[j]) - low_t[p] * x_i)
-            if prelimit and fij * (c_low[i] - c_low[j]) < 0.0:
-                fij = 0.0
             f[p] = fij
     return f
 
@@ -195,7 +191,7 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
     blocked = ~held & (dt * ops.diffusion.diagonal() > reach * ops.lumped)
     c_low = np.ascontiguousarray(c_low, dtype=float)
     indptr, cols = ops.mass.indptr, ops.mass.indices
-    f = _raw_fluxes(ops, c_low, c_high, c_old, dt, theta, prelimit=PRELIMIT)
+    f = _raw_fluxes(ops, c_low, c_high, c_old, dt, theta)
     c, total = c_low.copy(), np.zeros(n)
     free = ~held
     # the diagonal of f is zero by construction (f_ii = 0): the passes may run over it
@@ -234,19 +230,19 @@ def _sink_share(indptr: IndexArray, cols: IndexArray, c: FloatArray, change: Flo
 
 
 def _raw_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray, c_old: FloatArray,
-                dt: float, theta: float, *, prelimit: bool) -> FloatArray:
+                dt: float, theta: float) -> FloatArray:
     c_high = np.asarray(c_high, dtype=float)
     rate = (c_high - c_old) / dt
     c_mean = theta * c_high + (1.0 - theta) * c_old
     return _target_fluxes(ops.mass.indptr, ops.mass.indices, ops.mass.data,
                           ops.diffusion.data, ops.low_order.data, ops.low_order_transposed,
-                          np.ascontiguousarray(c_low, dtype=float), rate, c_mean, prelimit)
+                          np.ascontiguousarray(c_low, dtype=float), rate, c_mean)
 
 
 def raw_flux_sums(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray,
                   c_old: FloatArray, dt: float, theta: float) -> FloatArray:
-    """Σ_j f_ij at every node [kg/s], before any limiting or prelimiting: the part of
+    """Σ_j f_ij at every node [kg/s], before any limiting: the part of
     M_L(c_H − c_L)/Δt that the correction can move (see :func:`limited_target_fluxes`)."""
-    f = _raw_fluxes(ops, c_low, c_high, c_old, dt, theta, prelimit=False)
+    f = _raw_fluxes(ops, c_low, c_high, c_old, dt, theta)
     rows = np.repeat(np.arange(ops.lumped.size), np.diff(ops.mass.indptr))
     return np.bincount(rows, weights=f, minlength=ops.lumped.size)
