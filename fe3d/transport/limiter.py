@@ -179,7 +179,9 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
     raises a node's upper bound to what its sources bring (injected or inflowing water's
     concentration; +inf for a mass load), so a source node is not held down to its
     neighbours' values. The remainder is
-    then added at each free node as far as that node stays within its neighbours' range.
+    then added at each free node as far as the node stays at or above zero (where it
+    lowers it) or within its neighbours' range of the corrected field and of the step's
+    start (where it raises it).
     Every pass stays bounded, so the result is bounded whatever the step. Nodes ``fixed``
     take no correction; the fluxes they exchange still appear in ``fluxes`` (with the
     opposite sign at the fixed node), so their sum is 0. A node whose step is long against
@@ -204,27 +206,28 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
         if left <= PASS_TOLERANCE * scale:
             break
     x = c_low - (theta * np.asarray(c_high, dtype=float) + (1.0 - theta) * c_old)
-    share = _sink_share(indptr, cols, c, dt * ops.sink * x / ops.lumped, free & ~blocked,
-                        cap)
+    share = _sink_share(indptr, cols, c, np.asarray(c_old, dtype=float),
+                        dt * ops.sink * x / ops.lumped, free & ~blocked, cap)
     c[free] += share[free] * dt * ops.sink[free] * x[free] / ops.lumped[free]
     return Correction(fluxes=total, corrected=c, sink_state=c_low - share * x,
                       blocked=int(blocked.sum()), passes=used)
 
 
 @numba.njit(cache=True, nogil=True)
-def _sink_share(indptr: IndexArray, cols: IndexArray, c: FloatArray, change: FloatArray,
-                free: np.ndarray, cap: FloatArray) -> FloatArray:
-    """Share β_i ∈ [0, 1] of a nodal ``change`` that keeps each free node within its
-    neighbours' range of ``c`` (the upper end raised to ``cap``)."""
+def _sink_share(indptr: IndexArray, cols: IndexArray, c: FloatArray, c_old: FloatArray,
+                change: FloatArray, free: np.ndarray, cap: FloatArray) -> FloatArray:
+    """Share β_i ∈ [0, 1] of a nodal ``change`` that keeps each free node at or above zero
+    when it lowers the node (a sink only takes mass: decay may take a node below its
+    neighbours, as it does on a plateau), and within its neighbours' range of ``c`` and of
+    the step's start ``c_old`` when it raises it (the upper end raised to ``cap``)."""
     beta = np.zeros(c.size)
     for i in range(c.size):
         if not free[i] or change[i] == 0.0:
             continue
-        lo, hi = c[i], max(c[i], cap[i])
+        hi = max(c[i], cap[i])
         for p in range(indptr[i], indptr[i + 1]):
-            lo = min(lo, c[cols[p]])
-            hi = max(hi, c[cols[p]])
-        room = (hi - c[i]) if change[i] > 0.0 else (lo - c[i])
+            hi = max(hi, c[cols[p]], c_old[cols[p]])
+        room = (hi - c[i]) if change[i] > 0.0 else -max(c[i], 0.0)
         beta[i] = min(1.0, room / change[i])  # room = +inf: the whole change
     return beta
 

@@ -83,8 +83,8 @@ def test_limited_fluxes_conserve_and_keep_local_bounds() -> None:
     """Flux correction (theory.md T16b): the limited fluxes cancel in pairs (Σ g = 0 to
     round-off); with one pass of the limiter every corrected free value lies within the
     low-order values of its node and neighbours (Zalesak 1979's limiter, by construction);
-    with the default passes within the low-order field's global range; fixed nodes take no
-    correction."""
+    with the default passes and the sinks' remainder within [0, the largest low-order or
+    old value]; fixed nodes take no correction."""
     ops, c_low, c_high, c_old = _limiter_inputs(8)
     m_l, n = ops.lumped, ops.lumped.size
     fixed = np.arange(0, n, 7)
@@ -105,8 +105,8 @@ def test_limited_fluxes_conserve_and_keep_local_bounds() -> None:
     g = fix.fluxes
     assert fix.passes > 1
     assert abs(g.sum()) <= 1e-12 * np.abs(g).sum()
-    c = fix.corrected  # fluxes and the sinks' remainder
-    assert c_low.min() - 1e-12 <= c.min() and c.max() <= c_low.max() + 1e-12
+    c = fix.corrected  # fluxes and the sinks' remainder (decay may lower a node to 0)
+    assert c.min() >= -1e-12 and c.max() <= max(c_low.max(), c_old.max()) + 1e-12
     np.testing.assert_array_equal(c[fixed], c_low[fixed])
 
 
