@@ -134,8 +134,10 @@ def _check(case_path: Path) -> int:
         hl = "none" if sp.half_life is None else f"{from_si(sp.half_life, tu):.4g} {tu}"
         con.print(f"species {name}: limit {from_si(sp.limit, cu):.4g} {cu}, half-life {hl}")
     nn, nc = _estimate_cells(case)
-    con.print(f"period {from_si(case.time.end, tu):g} {tu}, step ≤ "
-              f"{from_si(case.time.step, tu):.4g} {tu}, {len(case.output_schedule())} outputs")
+    steps = (f"steps following the plume (Courant ≤ {case.time.courant:g} in its cells)"
+             if case.time.step is None else f"step ≤ {from_si(case.time.step, tu):.4g} {tu}")
+    con.print(f"period {from_si(case.time.end, tu):g} {tu}, {steps}, "
+              f"{len(case.output_schedule())} outputs")
     con.print(f"estimated mesh: ~{nn:,} nodes, ~{nc:,} tetrahedra")
     con.print("[green]case is valid[/green]")
     con.print(CAUTION)

@@ -81,6 +81,15 @@ def test_check_tiny_case(tmp_path: Path) -> None:
     assert list(tmp_path.iterdir()) == [], "check must write nothing"
 
 
+def test_check_a_case_without_a_time_step(tmp_path: Path) -> None:
+    """Without time.step the steps follow the plume (theory.md T14b): check says so."""
+    case = tmp_path / "case.toml"
+    case.write_text(edit('step = "20 d"\n', ""), encoding="utf-8")
+    res = fe3d("check", case, cwd=tmp_path)
+    assert res.returncode == 0, res.stderr
+    assert "steps following the plume (Courant ≤ 1 in its cells)" in flat(res.stdout)
+
+
 # --------------------------------------------------------------------------------- bad input
 
 # (id, case text, key path expected at the start of an error line)
