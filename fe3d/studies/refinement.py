@@ -233,7 +233,7 @@ def refine_case(case: Case, factor: float) -> Case:
     })
     t = case.time
     time = t.model_copy(update={
-        "step": t.step / factor,
+        "step": None if t.step is None else t.step / factor,  # None: steps follow the plume
         "min_step": None if t.min_step is None else t.min_step / factor,
         "max_step": None if t.max_step is None else t.max_step / factor,
     })

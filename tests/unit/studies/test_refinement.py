@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq
 
+from fe3d.case.builder import with_changes
 from fe3d.case.load import load_case, parse_case
 from fe3d.errors import CaseError, SolverError
 from fe3d.studies import refinement
@@ -162,6 +163,15 @@ def test_refine_case_divides_sizes_and_step():
     assert math.isclose(fine.mesh.fine_cell_size, case.mesh.fine_cell_size / 2)
     assert case.time.step / case.mesh.cell_size == pytest.approx(
         fine.time.step / fine.mesh.cell_size, rel=4 * EPS)
+
+
+def test_refine_case_keeps_plume_following_steps():
+    """Without time.step the steps follow the plume's Courant number (T14b), which the
+    refined cells keep by themselves: the level keeps no step."""
+    case = with_changes(load_case(TINY), time={"step": None})
+    fine = refine_case(case, 2.0)
+    assert fine.time.step is None
+    assert fine.mesh.cell_size == case.mesh.cell_size / 2
 
 
 def test_refine_case_refuses_an_imported_mesh():
