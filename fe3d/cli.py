@@ -13,7 +13,6 @@ from pathlib import Path
 
 from fe3d import __version__
 from fe3d.case.load import load_case
-from fe3d.case.schema import Case
 from fe3d.errors import CaseErrors, Fe3dError
 
 __all__ = ["main"]
@@ -73,40 +72,18 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
-def _estimate_cells(case: Case) -> tuple[int, int]:
-    """Rough node and cell counts from the target sizes (plan triangles × sublayers × 3)."""
-    import math
-
-    from fe3d.case.geology import polygon_area
-
-    area = abs(polygon_area(case.outline()[0]))
-    h = case.mesh.cell_size
-    n_tri = 2.3 * area / h**2
-    fine = case.mesh.fine_cell_size
-    if fine is not None:
-        from fe3d.mesh.build import feature_points
-
-        r = case.mesh.fine_zone_radius + 2 * h
-        n_tri += len(feature_points(case)) * 2.3 * math.pi * r**2 / fine**2 / 4
-    thick = case.z_top - case.z_bottom_min
-    n_lay = max(len(case.layers), math.ceil(thick / case.mesh.layer_cell_thickness))
-    return int(n_tri / 2 * (n_lay + 1)), int(3 * n_tri * n_lay)
-
-
 def _check(case_path: Path) -> int:
     from rich.console import Console
     from rich.table import Table
 
-    from fe3d.pipeline import check_user_code
+    from fe3d.pipeline import check_case, estimate_mesh_size
     from fe3d.post.report import CAUTION
     from fe3d.units import from_si
 
     case = load_case(case_path)
-    check_user_code(case, case_path.resolve().parent)
-    from fe3d.flow.site_rules import check_mesh_rules  # builds or reuses it; writes nothing
-
-    check_mesh_rules(case, [_default_mesh_folder(case_path),
-                            Path(case.output.folder or f"runs/{case_path.stem}")])
+    check_case(case, case_path.resolve().parent,  # builds or reuses the mesh; writes nothing
+               [_default_mesh_folder(case_path),
+                Path(case.output.folder or f"runs/{case_path.stem}")])
     con = Console()
     con.print(f"[bold]{case.title}[/bold]  ({case_path})")
     verts = case.outline()[0]
@@ -133,7 +110,7 @@ def _check(case_path: Path) -> int:
     for name, sp in case.species.items():
         hl = "none" if sp.half_life is None else f"{from_si(sp.half_life, tu):.4g} {tu}"
         con.print(f"species {name}: limit {from_si(sp.limit, cu):.4g} {cu}, half-life {hl}")
-    nn, nc = _estimate_cells(case)
+    nn, nc = estimate_mesh_size(case)
     steps = (f"steps following the plume (Courant ≤ {case.time.courant:g} in its cells)"
              if case.time.step is None else f"step ≤ {from_si(case.time.step, tu):.4g} {tu}")
     con.print(f"period {from_si(case.time.end, tu):g} {tu}, {steps}, "
@@ -208,9 +185,10 @@ def _default_mesh_folder(case_path: Path) -> Path:
 
 def _mesh(case_path: Path, out: Path | None) -> int:
     from rich.console import Console
+    from rich.markup import escape
 
-    from fe3d.mesh.quality import report_lines
     from fe3d.pipeline import mesh_case
+    from fe3d.post.mesh_lines import mesh_lines
     from fe3d.post.report import CAUTION
 
     case = load_case(case_path)
@@ -219,26 +197,9 @@ def _mesh(case_path: Path, out: Path | None) -> int:
     con = Console()
     how = "reused (inputs unchanged)" if reused else "built"
     con.print(f"[bold]{case.title}[/bold]: mesh {how} in {folder}/")
-    for line in report_lines(site.report.quality):
-        con.print(f"  {line}", highlight=False)
-    corridor = site.report.corridor
-    for line in [] if corridor is None else corridor.lines():
-        con.print(f"  {line}", highlight=False)
-    if corridor is not None and corridor.note:
-        con.print(f"  [yellow]warning:[/yellow] {corridor.note}", highlight=False)
-    con.print("  sublayers: " + ", ".join(f"{k} {v}" for k, v in
-                                         (site.info.get("sublayers") or {}).items()))
-    con.print("  faces: " + ", ".join(f"{k} ({v.shape[1]} triangles)"
-                                     for k, v in site.faces.items()), highlight=False)
-    for rule in site.info.get("surface_rules", []):
-        con.print(f"  [yellow]{rule['rule'].replace('_', '-')}[/yellow] rule: unit "
-                  f"{rule['unit']!r} at {rule['n_nodes']} plan nodes ({rule['area_m2']:.4g} m², "
-                  f"x {rule['x_range_m'][0]:.1f}–{rule['x_range_m'][1]:.1f} m, y "
-                  f"{rule['y_range_m'][0]:.1f}–{rule['y_range_m'][1]:.1f} m)"
-                  + (f"; boreholes {', '.join(rule['boreholes'])}" if rule["boreholes"] else ""),
-                  highlight=False)
-    for note in site.info.get("lens_fit", []):
-        con.print(f"  [yellow]warning:[/yellow] {note['line']}", highlight=False)
+    for line in mesh_lines(site):
+        tag = {"warning": "[yellow]warning:[/yellow] ", "rule": "[yellow]rule:[/yellow] "}
+        con.print(f"  {tag.get(line.kind, '')}{escape(line.text)}", highlight=False)
     con.print("wrote " + ", ".join(p.name for p in files))
     con.print(CAUTION)
     return 0

@@ -21,7 +21,8 @@ from fe3d.post.vtk import write_mesh
 from fe3d.reactions.kinetics import user_kinetics
 from fe3d.transport.run import run_transport
 
-__all__ = ["mesh_and_flow", "mesh_case", "plume_corridor", "run_case"]
+__all__ = ["check_case", "estimate_mesh_size", "mesh_and_flow", "mesh_case", "plume_corridor",
+           "run_case"]
 
 logger = logging.getLogger(__name__)
 
@@ -53,6 +54,37 @@ def mesh_and_flow(case: Case, *, base_dir: Path | None = None) -> tuple[SiteMesh
     site = build_mesh(case, corridor=plume_corridor(case, base_dir=base_dir))
     flow = solve_flow(site, case, base_dir=base_dir)
     return site, flow
+
+
+def check_case(case: Case, base_dir: Path | None, mesh_folders: list[Path]) -> None:
+    """Every check that needs more than the case file: the user's reaction code imports, and
+    the rules that depend on the mesh (built, or reused from ``mesh_folders``; nothing is
+    written). Raises :class:`~fe3d.errors.CaseErrors` naming each problem."""
+    from fe3d.flow.site_rules import check_mesh_rules
+
+    check_user_code(case, base_dir)
+    check_mesh_rules(case, mesh_folders)
+
+
+def estimate_mesh_size(case: Case) -> tuple[int, int]:
+    """Rough node and cell counts from the target sizes (plan triangles × sublayers × 3)."""
+    import math
+
+    from fe3d.case.geology import polygon_area
+
+    area = abs(polygon_area(case.outline()[0]))
+    h = case.mesh.cell_size
+    n_tri = 2.3 * area / h**2
+    fine = case.mesh.fine_cell_size
+    if fine is not None:
+        from fe3d.mesh.build import feature_points
+
+        r = case.mesh.fine_zone_radius + 2 * h
+        n_tri += len(feature_points(case)) * 2.3 * math.pi * r**2 / fine**2 / 4
+    thick = case.z_top - case.z_bottom_min
+    n_lay = max(len(case.layers), math.ceil(thick / case.mesh.layer_cell_thickness))
+    return int(n_tri / 2 * (n_lay + 1)), int(3 * n_tri * n_lay)
+
 
 
 def check_user_code(case: Case, base_dir: Path | None = None) -> None:
