@@ -15,7 +15,8 @@ import scipy.sparse as sp
 
 from fe3d._typing import FloatArray
 from fe3d.case.schema import Case, Species
-from fe3d.flow.solve import FlowField, unit_materials
+from fe3d.flow.solve import FlowField
+from fe3d.mesh.materials import cell_values, unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import BoundaryFacets, length_along, volumes
 from fe3d.reactions import kinetics, sorption
@@ -60,16 +61,15 @@ def build_medium(site: SiteMesh, flow: FlowField, case: Case) -> MediumFields:
     """Porosity, bulk density, θD and the outflow terms per cell and node (T3b, T4)."""
     n = site.n_nodes
     mats, mat_names = unit_materials(case, site)
-    lay = site.cell_layer
-    theta = np.array([m.porosity for m in mats])[lay]
+    theta = cell_values(mats, site, "porosity")
     q = flow.darcy_flux
     v = q / theta
     D = dispersion_tensor(
         v,
-        alpha_l=np.array([m.longitudinal_dispersivity for m in mats])[lay],
-        alpha_th=np.array([m.transverse_dispersivity for m in mats])[lay],
-        alpha_tv=np.array([m.alpha_vertical for m in mats])[lay],
-        d_eff=np.array([m.effective_diffusion for m in mats])[lay],
+        alpha_l=cell_values(mats, site, "longitudinal_dispersivity"),
+        alpha_th=cell_values(mats, site, "transverse_dispersivity"),
+        alpha_tv=cell_values(mats, site, "alpha_vertical"),
+        d_eff=cell_values(mats, site, "effective_diffusion"),
     )
     theta_d = np.multiply(D, theta, out=D)  # θD in place: one (3, 3, cells) array less
     facets = {name: BoundaryFacets.of(site.points, site.cells, site.faces[name])
@@ -83,7 +83,7 @@ def build_medium(site: SiteMesh, flow: FlowField, case: Case) -> MediumFields:
             weights[item] = out_rate
             matrix = matrix + sp.diags(out_rate)
     return MediumFields(
-        porosity=theta, bulk_density=np.array([m.bulk_density for m in mats])[lay],
+        porosity=theta, bulk_density=cell_values(mats, site, "bulk_density"),
         cell_volume=volumes(site.points, site.cells), theta_dispersion=theta_d,
         seepage_velocity=v, material_names=mat_names, outflow_weights=weights,
         outflow_matrix=sp.csr_matrix(matrix))
