@@ -15,7 +15,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import scipy.sparse as sp
 
-from fe3d._typing import FloatArray, IndexArray
+from fe3d._typing import BoolArray, FloatArray, IndexArray
 from fe3d.case.schema import SolverControl
 from fe3d.errors import SolverError
 from fe3d.linalg import LinearSolver, solve_with_preconditioner
@@ -111,7 +111,7 @@ class StepState:
     and the last step's budget terms (spread by multistep schemes, T13)."""
 
     fields: dict[str, FloatArray]
-    held_before: dict[str, FloatArray]
+    held_before: dict[str, BoolArray]
     older: dict[str, FloatArray] | None
     last_budget: dict[str, StepBudget]
 
