@@ -161,9 +161,10 @@ def _limit_warnings(x: SpeciesExtremes, s: RunSummary) -> list[str]:
 
 def rounded(value: object, digits: int = SIGNIFICANT_DIGITS) -> object:
     """``value`` with every float rounded to ``digits`` significant digits, recursively
-    through dicts, lists and tuples (tuples become lists, as in JSON)."""
+    through dicts, lists and tuples (tuples become lists, as in JSON); a float that is not
+    finite (a grid Péclet number without any dispersion) becomes None (JSON null)."""
     if isinstance(value, float):
-        return float(f"{value:.{digits}g}") if math.isfinite(value) else value
+        return float(f"{value:.{digits}g}") if math.isfinite(value) else None
     if isinstance(value, dict):
         return {k: rounded(v, digits) for k, v in value.items()}
     if isinstance(value, list | tuple):

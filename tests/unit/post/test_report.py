@@ -190,3 +190,12 @@ def test_every_summary_key_is_described_in_the_readme(tmp_path):
         | set(d["observations"][0]) | set(d["plume"]["x"]) | set(d["travel_times"][0])
     missing = sorted(k for k in keys if f"`{k}`" not in section)
     assert missing == []
+
+
+def test_summary_json_writes_an_infinite_number_as_null(tmp_path):
+    """A unit with no dispersion and no diffusion has an infinite grid Péclet number; the
+    summary is still written (JSON has no infinity: null), and the report warns."""
+    s = _summary(max_grid_peclet={"x": float("inf")})
+    path = write_summary_json(tmp_path / "summary.json", s)
+    assert json.loads(path.read_text(encoding="utf-8"))["max_grid_peclet"] == {"x": None}
+    assert any("Péclet" in w for w in quality_warnings(s))
