@@ -41,7 +41,7 @@ from fe3d.transport.accumulate import (
 from fe3d.transport.assembly import P1_MASS
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.courant import PlumeCourant
-from fe3d.transport.model import build_medium, build_species, lumped
+from fe3d.transport.model import SpeciesModel, build_medium, build_species, lumped
 from fe3d.transport.planner import StepPlanner, time_steps
 from fe3d.transport.sources import build_source_geometry, initial_fields
 from fe3d.transport.step import StepContext, StepResult, StepState, UserLaw, take_step
@@ -175,7 +175,7 @@ def _next_state(result: StepResult, n: int, restart: bool) -> StepState:
                      last_budget={} if restart else dict(result.budget))
 
 
-def _local_error(case: Case, species: tuple, result: StepResult, t1: float,
+def _local_error(case: Case, species: tuple[SpeciesModel, ...], result: StepResult, t1: float,
                  accepted: list[tuple[float, dict[str, FloatArray]]]) -> float | None:
     """Largest weighted local error of the step over the species (T14; 1 = tolerance),
     None without enough earlier levels."""

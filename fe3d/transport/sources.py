@@ -59,8 +59,9 @@ class SourceGeometry:
     ``inflow_weights``: inflow patch → nodal (−q·n)⁺ weights [m³/s] (T3b);
     ``loading_weights``: mass loading → nodal weights summing to 1 (T3f);
     ``injection``: species → nodal load of injection wells [kg/s] (T3d);
-    ``injected``: species → concentration [kg/m³] of the water injection wells bring to
-    each node (0 elsewhere)."""
+    ``upper_bound``: species → the largest concentration [kg/m³] its sources can bring to
+    each node (T16b): the injected and inflowing water's concentration, +inf where mass is
+    loaded without water (a point load has no concentration of its own), 0 elsewhere."""
 
     sources: tuple[Source, ...]
     held_nodes: dict[str, IndexArray]
@@ -68,22 +69,7 @@ class SourceGeometry:
     inflow_weights: dict[str, FloatArray]
     loading_weights: dict[str, FloatArray]
     injection: dict[str, FloatArray]
-    injected: dict[str, FloatArray]
-
-    def upper_bounds(self, species: str) -> FloatArray:
-        """The largest concentration [kg/m³] the sources of ``species`` can bring to each
-        node (T16b): the injected and inflowing water's concentration, +inf where mass is
-        loaded without water (a point load has no concentration of its own), 0 elsewhere."""
-        bound = self.injected[species].copy()
-        for src in self.sources:
-            if src.species != species:
-                continue
-            if src.kind == "mass_loading":
-                bound[self.loading_weights[src.name] > 0.0] = np.inf
-            elif src.kind == "inflow_concentration" and src.peak_concentration is not None:
-                nodes = self.inflow_weights[src.name] > 0.0
-                bound[nodes] = np.maximum(bound[nodes], src.peak_concentration)
-        return bound
+    upper_bound: dict[str, FloatArray]
 
     def held(self, species: str, t0: float, t1: float) -> HeldValues:
         """The fixed concentrations of ``species`` active over the step (t0, t1) [s]."""
@@ -143,15 +129,22 @@ def build_source_geometry(site: SiteMesh, flow: FlowField, case: Case, *,
                             for w in case.wells if name in w.injection_concentration
                             and w.name in flow.exchange), np.zeros(n))
                  for name in case.species}
-    injected = {name: np.zeros(n) for name in case.species}
-    for w in case.wells:
+    upper = {name: np.zeros(n) for name in case.species}
+    for w in case.wells:  # the water of injection wells
         if w.name in flow.exchange:
             into = flow.exchange[w.name] > 0.0
             for name, c_inj in w.injection_concentration.items():
-                injected[name][into] = np.maximum(injected[name][into], c_inj)
+                upper[name][into] = np.maximum(upper[name][into], c_inj)
+    for src in case.sources:
+        if src.kind == "mass_loading":
+            upper[src.species][loading[src.name] > 0.0] = np.inf
+        elif src.kind == "inflow_concentration" and src.peak_concentration is not None:
+            nodes = inflow[src.name] > 0.0
+            upper[src.species][nodes] = np.maximum(upper[src.species][nodes],
+                                                   src.peak_concentration)
     return SourceGeometry(sources=tuple(case.sources), held_nodes=held, held_shares=shares,
                           inflow_weights=inflow, loading_weights=loading,
-                          injection=injection, injected=injected)
+                          injection=injection, upper_bound=upper)
 
 
 def initial_fields(case: Case, site: SiteMesh, geometry: SourceGeometry,

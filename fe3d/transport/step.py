@@ -34,7 +34,7 @@ BACKWARD_EULER = StepCoefficients(1.0, -1.0, 0.0, 1.0)
 """The low-order step of flux correction (T16b): backward Euler keeps it bounded."""
 
 __all__ = ["NEWTON_LINEAR_TOLERANCE", "StepBudget", "StepContext", "StepResult", "StepState",
-           "UserLaw", "take_step"]
+           "Target", "UserLaw", "take_step"]
 
 logger = logging.getLogger(__name__)
 
@@ -234,7 +234,7 @@ def _within_bounds(ctx: StepContext, s: SpeciesModel, old: FloatArray,
     """No value below zero, and none above the largest old, held or source value unless the
     species is produced (a daughter or a user law), each to the solver tolerance."""
     tol = ctx.solver.tolerance
-    upper = ctx.sources.upper_bounds(s.name)
+    upper = ctx.sources.upper_bound[s.name]
     top = max(float(old.max()), float(np.max(upper, initial=0.0)),
               max((src.peak_concentration or 0.0 for src in ctx.sources.sources
                    if src.species == s.name), default=0.0))
@@ -272,13 +272,13 @@ def _attempt(
         old = old + jump
     prev = None if state.older is None else state.older[s.name]
     hist_part = co.a1 * old + (0.0 if prev is None else co.a2 * prev)
-    rhs = -(sysm.M @ hist_part) / dt + sysm.explicit_part @ old + load
+    rhs = sysm.known_terms(hist_part, old, dt) + load
     guess = old.copy()
     guess[fixed] = held.end[fixed]
-    solve = _Solve(ctx, s, old, prev, dt, co, user_rates)
-    if target is not None:
-        solve.target = (target, ctx.systems.target_system(s, dt, target, held.active),
-                        load, None if state.older is None else state.older[s.name])
+    aim = None if target is None else Target(
+        target, ctx.systems.target_system(s, dt, target, held.active), load,
+        None if state.older is None else state.older[s.name])
+    solve = _Solve(ctx, s, old, prev, dt, co, user_rates, aim)
     new, r, other_loss, its = solve(sysm, rhs, guess)
     for _ in range(ctx.solver.shock_capturing_passes if ctx.solver.shock_capturing else 0):
         sys_x, extra = _with_shock_capturing(ctx, s, sysm, new, old, prev, dt, co)
@@ -307,6 +307,17 @@ def _attempt(
     return new, now, its, loss, solve.blocked, sysm.solver.method
 
 
+@dataclass(frozen=True)
+class Target:
+    """The step flux correction aims at (T16b): its scheme's coefficients, its system, the
+    step's load [kg/s per node] and the level before (multistep schemes)."""
+
+    scheme: StepCoefficients
+    system: StepSystem
+    load: FloatArray
+    older: FloatArray | None
+
+
 class _Solve:
     """Solves one species' step system: Newton when nonlinear, else one linear solve with
     the flux correction of T16b when limited. Remembers the low-order field the limited
@@ -314,14 +325,11 @@ class _Solve:
 
     def __init__(self, ctx: StepContext, s: SpeciesModel, old: FloatArray,
                  prev: FloatArray | None, dt: float, co: StepCoefficients,
-                 user_rates: tuple[RateLaw, RateLaw] | None) -> None:
+                 user_rates: tuple[RateLaw, RateLaw] | None, target: Target | None) -> None:
         self.ctx, self.s, self.old, self.prev, self.dt, self.co = ctx, s, old, prev, dt, co
-        self.user_rates = user_rates
+        self.user_rates, self.target = user_rates, target
         self.limited_state: FloatArray | None = None
         self.blocked: float | None = None
-        # the target of flux correction (T16b): its scheme, system, load and older level
-        self.target: tuple[StepCoefficients, StepSystem, FloatArray,
-                           FloatArray | None] | None = None
 
     def __call__(self, sy: StepSystem, rhs: FloatArray, guess: FloatArray,
                  ) -> tuple[FloatArray, FloatArray, float, int]:
@@ -339,9 +347,9 @@ class _Solve:
         ops = self.ctx.systems.limiter(s)
         if ops is not None and self.target is not None:  # T16b: the limited fluxes, explicit
             high = self._target_step(guess, out)
-            fix = limited_target_fluxes(ops, out, high, old, dt, self.target[0].theta,
+            fix = limited_target_fluxes(ops, out, high, old, dt, self.target.scheme.theta,
                                         sy.fixed, reach=LIMITING_REACH,
-                                        upper=self.ctx.sources.upper_bounds(s.name))
+                                        upper=self.ctx.sources.upper_bound[s.name])
             self.blocked = max(self.blocked or 0.0, fix.blocked / max(sy.free.size, 1))
             self.limited_state = fix.sink_state  # the state decay and outflow acted on
             out = fix.corrected
@@ -351,9 +359,10 @@ class _Solve:
     def _target_step(self, guess: FloatArray, low: FloatArray) -> FloatArray:
         """The Galerkin step of the target scheme (T16b), started from the low-order one."""
         assert self.target is not None
-        co, sy, load, prev = self.target
+        co, sy, load, prev = (self.target.scheme, self.target.system, self.target.load,
+                              self.target.older)
         hist = co.a1 * self.old + (0.0 if prev is None else co.a2 * prev)
-        rhs = -(sy.M @ hist) / self.dt + sy.explicit_part @ self.old + load
+        rhs = sy.known_terms(hist, self.old, self.dt) + load
         high = guess.copy()
         high[sy.free] = sy.solver.solve(rhs[sy.free] - sy.S_fD @ guess[sy.fixed],
                                         x0=low[sy.free])

@@ -57,16 +57,26 @@ class NearbySolver:
 @dataclass(frozen=True)
 class StepSystem:
     """The step matrix S = a0/Δt M + θK of one species, split by held/free nodes, with its
-    solver (factor or preconditioner), the mass operator M and the explicit part
-    ``explicit_part`` = (θ − 1)K."""
+    solver (factor or preconditioner), the mass operator M (``lumped``: its diagonal when
+    M is lumped, T16, else None) and the explicit part ``explicit_part`` = (θ − 1)K (None
+    for θ = 1)."""
 
     S: sp.csr_matrix
-    explicit_part: sp.csr_matrix
+    explicit_part: sp.csr_matrix | None
     M: sp.csr_matrix
+    lumped: FloatArray | None
     solver: LinearSolver | NearbySolver
     free: IndexArray
     fixed: IndexArray
     S_fD: sp.csr_matrix
+
+    def known_terms(self, history: FloatArray, old: FloatArray, dt: float) -> FloatArray:
+        """−M·history/Δt + (θ − 1)K cⁿ [kg/s]: the right-hand side of the step before its
+        loads (T13), without products by zeros (a lumped M is a diagonal; θ = 1 has no
+        explicit part)."""
+        stored = self.lumped * history if self.lumped is not None else self.M @ history
+        known = -stored / dt
+        return known if self.explicit_part is None else known + self.explicit_part @ old
 
 
 @dataclass(frozen=True)
@@ -193,9 +203,10 @@ class StepSystems:
         return cache.targets[key]
 
     def _split(self, M: sp.csr_matrix, K: sp.csr_matrix, dt: float, co: StepCoefficients,
-               active: tuple[str, ...], tol: float | None = None) -> StepSystem:
+               active: tuple[str, ...], tol: float | None = None,
+               lumped: bool = False) -> StepSystem:
         """S = a0/Δt M + θK split by held and free nodes, with its solver (relative
-        tolerance ``tol``, default ``solver.tolerance``)."""
+        tolerance ``tol``, default ``solver.tolerance``); ``lumped``: M is diagonal."""
         pattern, n = self.site.pattern, self.site.n_nodes
         S = pattern.matrix((co.a0 / dt) * M.data + co.theta * K.data)
         is_fixed = np.zeros(n, dtype=bool)
@@ -206,8 +217,10 @@ class StepSystems:
         S_ff, S_fD = split_rows(S, free, fixed)
         solver = LinearSolver(S_ff, method=self.solver.linear_solver,
                               tol=self.solver.tolerance if tol is None else tol)
-        return StepSystem(S=S, explicit_part=pattern.matrix((co.theta - 1.0) * K.data), M=M,
-                          solver=solver, free=free, fixed=fixed, S_fD=S_fD)
+        explicit = None if co.theta == 1.0 else pattern.matrix((co.theta - 1.0) * K.data)
+        return StepSystem(S=S, explicit_part=explicit, M=M,
+                          lumped=M.diagonal() if lumped else None, solver=solver,
+                          free=free, fixed=fixed, S_fD=S_fD)
 
     def system(self, s: SpeciesModel, dt: float, co: StepCoefficients,
                active: tuple[str, ...]) -> StepSystem:
@@ -219,5 +232,6 @@ class StepSystems:
             M, K = self.operators(s, dt_tau)
             while len(cache.systems) >= MAX_CACHED:
                 cache.systems.pop(next(iter(cache.systems)))
-            cache.systems[key] = self._split(M, K, dt, co, active)
+            cache.systems[key] = self._split(M, K, dt, co, active,
+                                             lumped=self.scheme.monotone)
         return cache.systems[key]

@@ -126,7 +126,7 @@ def _context(site: SiteMesh, q: np.ndarray, *, half_life_days: float | None, sch
     solver = SolverControl(linear_solver="direct")
     sources = SourceGeometry(sources=(), held_nodes={}, held_shares={}, inflow_weights={},
                              loading_weights={}, injection={"s": np.zeros(n)},
-                             injected={"s": np.zeros(n)})
+                             upper_bound={"s": np.zeros(n)})
     systems = StepSystems(site, medium, q, Scheme.of(solver), time, solver, held_nodes={})
     ctx = StepContext(site=site, darcy_flux=q, species=(model,), systems=systems,
                       sources=sources, decay_matrix={}, user_law=None, solver=solver,
