@@ -118,7 +118,7 @@ def solver_log(path: Path) -> Iterator[None]:
 
 def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
              base_dir: Path | None = None, mesh_folders: list[Path] | None = None,
-             ) -> RunSummary:
+             site: SiteMesh | None = None) -> RunSummary:
     """Run every stage and write the run folder (with ``solver.log``); returns the summary.
 
     See :func:`_run_case` for the arguments.
@@ -127,26 +127,28 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     out_dir.mkdir(parents=True, exist_ok=True)
     with solver_log(out_dir / "solver.log"):
         return _run_case(case, out_dir, progress=progress, base_dir=base_dir,
-                         mesh_folders=mesh_folders)
+                         mesh_folders=mesh_folders, site=site)
 
 
 def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
               base_dir: Path | None = None, mesh_folders: list[Path] | None = None,
-              ) -> RunSummary:
+              site: SiteMesh | None = None) -> RunSummary:
     """Run every stage and write the run folder; returns the summary.
 
     ``progress(stage, done, total)`` is called as work advances (for a progress bar);
     ``base_dir`` resolves relative file names in the case (usually the case file's folder);
     ``mesh_folders`` are further folders (after the run folder) where a mesh cached with the
-    same mesh inputs is reused from, and copied into the run folder.
+    same mesh inputs is reused from, and copied into the run folder; ``site``, when given,
+    is used as it is (no corridor pass, no cache): a mesh shared by the members of a study.
     """
     started = time.perf_counter()
     tell = progress or (lambda _s, _d, _t: None)
     out_dir.mkdir(parents=True, exist_ok=True)
     tell("mesh", 0, 1)
     # reuse a mesh cached (run folder first) when the mesh inputs and corridor are unchanged
-    site, _reused = obtain_mesh(case, [out_dir, *(mesh_folders or [])], save_to=out_dir,
-                                corridor=plume_corridor(case, base_dir=base_dir))
+    if site is None:
+        site, _reused = obtain_mesh(case, [out_dir, *(mesh_folders or [])], save_to=out_dir,
+                                    corridor=plume_corridor(case, base_dir=base_dir))
     files = [p.name for p in write_mesh(site, out_dir)]
     tell("flow", 0, 1)
     flow = solve_flow(site, case, base_dir=base_dir)
