@@ -354,6 +354,18 @@ class TimeControl(Section):
     max_step: PositiveTime | None = None
     error_tolerance: Annotated[float, Field(gt=0.0, le=0.5)] = 0.01
 
+    def output_schedule(self) -> list[float]:
+        """Sorted output times [s] (always ending with the end time)."""
+        if self.output_times is not None:
+            times = set(self.output_times)
+        elif self.output_interval is not None:
+            n = math.floor(self.end / self.output_interval + 1e-9)
+            times = {k * self.output_interval for k in range(1, n + 1)}
+        else:
+            times = set()
+        times.add(self.end)
+        return sorted(x for x in times if x > 0)
+
 
 class MeshControl(Section):
     """Target cell sizes [m]: plan size away from features, near features, and layer thickness;
@@ -458,16 +470,7 @@ class Case(Section):
 
     def output_schedule(self) -> list[float]:
         """Sorted output times [s] (always ending with the end time)."""
-        t = self.time
-        if t.output_times is not None:
-            times = set(t.output_times)
-        elif t.output_interval is not None:
-            n = math.floor(t.end / t.output_interval + 1e-9)
-            times = {k * t.output_interval for k in range(1, n + 1)}
-        else:
-            times = set()
-        times.add(t.end)
-        return sorted(x for x in times if x > 0)
+        return self.time.output_schedule()
 
 
 def _in(value: float, lo: float, hi: float) -> bool:
