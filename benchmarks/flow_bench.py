@@ -19,6 +19,7 @@ from typing import Any
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+from fe3d.case.parts import FlowInputs  # noqa: E402
 from fe3d.linalg import FLOW_TOLERANCE as FLOW_TOL  # noqa: E402
 
 
@@ -61,7 +62,7 @@ def one(h: float, dz: float) -> dict[str, float]:
 
     flow_solve.solve_spd = keep
     t = time.perf_counter()
-    flow = flow_solve.solve_flow(site, case)
+    flow = flow_solve.solve_flow(site, FlowInputs.of(case))
     t_flow = time.perf_counter() - t
     row = {"nodes": site.n_nodes, "cells": site.n_cells, "mesh_s": t_mesh, "flow_s": t_flow,
            "amg_setup_s": flow.timings.get("setup_s", 0.0),

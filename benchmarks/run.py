@@ -35,6 +35,8 @@ from typing import Any
 
 import numpy as np
 
+from fe3d.case.parts import FlowInputs, Ground
+
 ROOT = Path(__file__).resolve().parents[1]
 DAY = 86400.0
 
@@ -105,7 +107,7 @@ def site_stage(h: float, dz: float, folder: Path) -> dict[str, Any]:
     _ = site.pattern
     t_pattern = time.perf_counter() - t
     t = time.perf_counter()
-    flow = solve_flow(site, case)
+    flow = solve_flow(site, FlowInputs.of(case))
     t_flow = time.perf_counter() - t
     np.savez(folder / "site.npz", points=site.points, cells=site.cells,
              cell_layer=site.cell_layer, layer_names=np.array(site.layer_names),
@@ -135,7 +137,7 @@ def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
     pattern = site.pattern
     t_pattern = time.perf_counter() - t
     n = site.n_nodes
-    mats, _ = unit_materials(case, site)
+    mats, _ = unit_materials(Ground.of(case), site)
     lay = site.cell_layer
     spec = case.species["solvent"]
 

@@ -8,6 +8,7 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
 
+from fe3d.case.parts import FlowInputs, Ground, TransportInputs, TravelInputs
 from fe3d.case.schema import Case
 from fe3d.flow.paths import travel_paths
 from fe3d.flow.solve import FlowField, solve_flow
@@ -38,8 +39,8 @@ def plume_corridor(case: Case, *, base_dir: Path | None = None) -> Corridor | No
     if not mc.corridor or mc.import_file is not None or not case.sources:
         return None
     first = build_mesh(case)
-    flow = solve_flow(first, case, base_dir=base_dir)
-    paths = travel_paths(first, flow, case)
+    flow = solve_flow(first, FlowInputs.of(case), base_dir=base_dir)
+    paths = travel_paths(first, flow, TravelInputs.of(case))
     lines = {name: [(p.points, p.times) for p in found]
              for name, found in paths.forward.items()}
     corridor = site_corridor(case, first, lines)
@@ -52,7 +53,7 @@ def mesh_and_flow(case: Case, *, base_dir: Path | None = None) -> tuple[SiteMesh
     """Build the mesh (refined along the plume corridor, :func:`plume_corridor`) and solve the
     steady flow of ``case``."""
     site = build_mesh(case, corridor=plume_corridor(case, base_dir=base_dir))
-    flow = solve_flow(site, case, base_dir=base_dir)
+    flow = solve_flow(site, FlowInputs.of(case), base_dir=base_dir)
     return site, flow
 
 
@@ -151,13 +152,13 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
                                     corridor=plume_corridor(case, base_dir=base_dir))
     files = [p.name for p in write_mesh(site, out_dir)]
     tell("flow", 0, 1)
-    flow = solve_flow(site, case, base_dir=base_dir)
-    porosity = cell_values(unit_materials(case, site)[0], site, "porosity")
+    flow = solve_flow(site, FlowInputs.of(case), base_dir=base_dir)
+    porosity = cell_values(unit_materials(Ground.of(case), site)[0], site, "porosity")
     tell("travel paths", 0, 1)
-    paths = travel_paths(site, flow, case)
+    paths = travel_paths(site, flow, TravelInputs.of(case))
     files += write_flow_outputs(out_dir, case, site, flow, porosity, paths)
     writer = SeriesWriter(out_dir, case, site, porosity)
-    for snap in run_transport(site, flow, case, base_dir=base_dir,
+    for snap in run_transport(site, flow, TransportInputs.of(case), base_dir=base_dir,
                               on_step=lambda t, end: tell("transport", t, end)):
         writer.add(snap)
     return writer.finish(flow, paths, files, started)

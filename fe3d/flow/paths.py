@@ -4,12 +4,14 @@ from __future__ import annotations
 
 import itertools
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
 
 from fe3d._typing import FloatArray
-from fe3d.case.schema import Case
+from fe3d.case.parts import TravelInputs
+from fe3d.case.schema import Source
 from fe3d.flow.solve import FlowField
 from fe3d.flow.tracking import Pathline, Tracker
 from fe3d.mesh.materials import cell_values, unit_materials
@@ -43,30 +45,27 @@ class TravelPaths:
     arrivals: list[ReceptorArrival]
 
 
-def _source_seeds(case: Case, name: str) -> FloatArray:
-    src = next(s for s in case.sources if s.name == name)
+def _source_seeds(inputs: TravelInputs, src: Source) -> FloatArray:
     if src.points is not None:  # a point or line source: start at its vertices
         return np.array(src.points, dtype=float).T
     rng = []
-    outline = case.outline()
-    xs = [p[0] for p in outline[0]]
-    ys = [p[1] for p in outline[0]]
-    full = {"x": (min(xs), max(xs)), "y": (min(ys), max(ys)),
-            "z": (case.z_bottom_min, case.z_top)}
+    xs = [p[0] for p in inputs.outline]
+    ys = [p[1] for p in inputs.outline]
+    full = {"x": (min(xs), max(xs)), "y": (min(ys), max(ys)), "z": inputs.elevation_range}
     for axis in ("x", "y", "z"):
         lo, hi = getattr(src, axis) or full[axis]
         rng.append(np.linspace(lo + 0.25 * (hi - lo), hi - 0.25 * (hi - lo), 2)
                    if hi > lo else np.array([lo]))
     seeds = np.array(list(itertools.product(*rng))).T
-    if src.shape == "face_patch" and src.face in set(outline[1]):
+    if src.shape == "face_patch" and src.face in set(inputs.edge_names):
         # a patch on a lateral face: start on the face, not inside the open range
-        edges = [i for i, n in enumerate(outline[1]) if n == src.face]
+        edges = [i for i, n in enumerate(inputs.edge_names) if n == src.face]
         for j in range(seeds.shape[1]):
-            seeds[:2, j] = _nearest_on_edges(seeds[:2, j], outline[0], edges)
+            seeds[:2, j] = _nearest_on_edges(seeds[:2, j], inputs.outline, edges)
     return np.unique(seeds, axis=1)
 
 
-def _nearest_on_edges(p: FloatArray, verts: list[tuple[float, float]],
+def _nearest_on_edges(p: FloatArray, verts: Sequence[tuple[float, float]],
                       edges: list[int]) -> FloatArray:
     """The point of the polygon edges ``edges`` (edge i: vertex i → i + 1) nearest to the
     plan point ``p`` [m]."""
@@ -79,30 +78,30 @@ def _nearest_on_edges(p: FloatArray, verts: list[tuple[float, float]],
     return out
 
 
-def _receptors(case: Case) -> list[tuple[str, float, float, float, float]]:
+def _receptors(inputs: TravelInputs) -> list[tuple[str, float, float, float, float]]:
     """(name, x, y, z_top, z_bottom) of receptor observation points and extraction wells."""
     out = []
-    for o in case.observation_points:
+    for o in inputs.observation_points:
         if o.kind == "receptor":
             top, bottom = o.screen if o.screen is not None else (o.z, o.z)
             out.append((o.name, o.x, o.y, top, bottom))
-    for w in case.wells:
+    for w in inputs.wells:
         if w.kind == "extraction":
             out.append((w.name, w.x, w.y, max(t for t, _ in w.screens),
                         min(b for _, b in w.screens)))
     return out
 
 
-def travel_paths(site: SiteMesh, flow: FlowField, case: Case) -> TravelPaths:
+def travel_paths(site: SiteMesh, flow: FlowField, inputs: TravelInputs) -> TravelPaths:
     """Track water particles for a quick check of arrival times (theory.md F8)."""
-    mats, _ = unit_materials(case, site)
+    mats, _ = unit_materials(inputs.ground, site)
     theta = cell_values(mats, site, "porosity")
     tracker = Tracker(site.points, site.cells, flow.darcy_flux / theta)
-    reach = 2.0 * (case.mesh.fine_cell_size or case.mesh.cell_size)
+    reach = inputs.reach
     # forward particles end in a cell near an extraction well's screen (it takes their water)
     centres = site.points[:, site.cells].mean(axis=1)
     capture: set[int] = set()
-    for w in case.wells:
+    for w in inputs.wells:
         if w.kind != "extraction":
             continue
         near = np.hypot(centres[0] - w.x, centres[1] - w.y) <= 0.5 * reach
@@ -111,14 +110,14 @@ def travel_paths(site: SiteMesh, flow: FlowField, case: Case) -> TravelPaths:
             capture.update(np.nonzero(near & band)[0].tolist())
     forward: dict[str, list[Pathline]] = {}
     done: dict[bytes, list[Pathline]] = {}  # sources sharing a region share their pathlines
-    for s in case.sources:
-        seeds = _source_seeds(case, s.name)
+    for s in inputs.sources:
+        seeds = _source_seeds(inputs, s)
         key = seeds.tobytes()
         if key not in done:
             done[key] = [tracker.track(x, capture_cells=capture or None) for x in seeds.T]
         forward[s.name] = done[key]
     backward: dict[str, list[Pathline]] = {}
-    for w in case.wells:
+    for w in inputs.wells:
         if w.kind != "extraction":
             continue
         seeds = []
@@ -127,11 +126,11 @@ def travel_paths(site: SiteMesh, flow: FlowField, case: Case) -> TravelPaths:
             for z in np.linspace(top, bottom, 3):
                 for a in np.linspace(0, 2 * math.pi, 8, endpoint=False):
                     seeds.append((w.x + r * math.cos(a), w.y + r * math.sin(a), z))
-        backward[w.name] = [tracker.track(np.array(x), backward=True, max_time=case.time.end)
+        backward[w.name] = [tracker.track(np.array(x), backward=True, max_time=inputs.end)
                             for x in seeds]
     arrivals = []
     for name, lines in forward.items():
-        for rec, rx, ry, top, bottom in _receptors(case):
+        for rec, rx, ry, top, bottom in _receptors(inputs):
             best_t, closest = None, math.inf
             for line in lines:
                 d = np.hypot(line.points[0] - rx, line.points[1] - ry)

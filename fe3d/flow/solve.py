@@ -11,7 +11,7 @@ import numpy as np
 
 from fe3d._threads import limit_blas_threads
 from fe3d._typing import FloatArray, IndexArray
-from fe3d.case.schema import Case
+from fe3d.case.parts import FlowInputs
 from fe3d.errors import CaseError, SolverError
 from fe3d.flow.assembly import conductance_matrix
 from fe3d.flow.boundaries import lumped_face_weights
@@ -111,7 +111,7 @@ def _split(f: FloatArray) -> tuple[float, float]:
 
 
 def solve_flow(
-    site: SiteMesh, case: Case, *, base_dir: Path | None = None,
+    site: SiteMesh, inputs: FlowInputs, *, base_dir: Path | None = None,
     extra_fixed: dict[str, tuple[IndexArray, FloatArray]] | None = None,
 ) -> FlowField:
     """Solve ∇·(K∇h) + sources = 0 (theory.md F1–F7).
@@ -120,8 +120,9 @@ def solve_flow(
     ----------
     site
         The mesh.
-    case
-        Materials, fixed heads, specified fluxes, recharge, head-dependent zones and wells.
+    inputs
+        Materials, fixed heads, specified fluxes, recharge, head-dependent zones and wells
+        (:meth:`FlowInputs.of <fe3d.case.parts.FlowInputs.of>` a case).
     base_dir
         Folder against which relative file names in the case (conductivity fields) resolve.
     extra_fixed
@@ -134,13 +135,13 @@ def solve_flow(
         When nothing fixes the head level (no fixed head and no head-dependent boundary).
     """
     limit_blas_threads()
-    if not case.fixed_heads and not case.head_dependent and not extra_fixed:
+    if not inputs.fixed_heads and not inputs.head_dependent and not extra_fixed:
         msg = ("at least one fixed head or head-dependent boundary is needed, otherwise the "
                "head is undetermined")
         raise CaseError("fixed_heads", "[]", msg)
     n = site.n_nodes
     p = site.points
-    mats, mat_names = unit_materials(case, site)
+    mats, mat_names = unit_materials(inputs.ground, site)
     tensors, principal = conductivity_tensors(p, site.cells, site.cell_layer, mats,
                                               unit_keys=[f"materials.{m}" for m in mat_names],
                                               base_dir=base_dir)
@@ -155,7 +156,7 @@ def solve_flow(
         head[nodes[keep]] = values[keep]
         is_fixed[nodes[keep]] = True
         owner[name] = nodes[keep]
-    for fh in case.fixed_heads:
+    for fh in inputs.fixed_heads:
         nodes = site.face_nodes(fh.face)
         nodes = nodes[~is_fixed[nodes]]
         head[nodes] = fh.head_at(p[:, nodes])
@@ -164,16 +165,16 @@ def solve_flow(
 
     # fixed nodal inflows [m³/s]: specified fluxes, recharge, wells
     items: list[tuple[str, str, FloatArray]] = []
-    for sf in case.specified_fluxes:
+    for sf in inputs.specified_fluxes:
         w = lumped_face_weights(p, site.faces[sf.face], n)
         items.append((f"flux_{sf.face}", "specified flux", sf.flux * w))
-    for rc in case.recharge:
+    for rc in inputs.recharge:
         _raise_first(recharge_problems(site, rc))
         items.append((rc.name, "recharge", rc.rate * lumped_face_weights(
             p, site.faces["top"], n, recharge_mask(site, rc))))
     well_ops = {}
-    for well in case.wells:
-        pts = np.hstack([screen_points(well.x, well.y, t, b, spacing=case.mesh.sample_spacing)
+    for well in inputs.wells:
+        pts = np.hstack([screen_points(well.x, well.y, t, b, spacing=inputs.sample_spacing)
                          for t, b in well.screens])
         op, in_cells = sample_operator(p, site.cells, pts, weights_per_cell=principal[0])
         _raise_first(screened_unit_problems(site, well, in_cells))
@@ -184,7 +185,7 @@ def solve_flow(
 
     # head-dependent zones (lumped): inflow = L a_i (stage − h_i); drains only remove water
     robin = []
-    for hd in case.head_dependent:
+    for hd in inputs.head_dependent:
         _raise_first(head_dependent_problems(site, hd))
         la = hd.leakance * lumped_face_weights(p, site.faces[hd.face], n, zone_mask(site, hd))
         la[is_fixed] = 0.0

@@ -42,6 +42,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.case.parts import Ground
 
 if TYPE_CHECKING:
     from fe3d.case.schema import Case
@@ -476,7 +477,7 @@ def site_corridor(case: Case, site: SiteMesh,
     from fe3d.mesh.locate import CellFinder
     from fe3d.mesh.materials import unit_materials
 
-    mats, _ = unit_materials(case, site)
+    mats, _ = unit_materials(Ground.of(case), site)
     alpha = np.array([[m.longitudinal_dispersivity, m.transverse_dispersivity,
                        m.alpha_vertical] for m in mats])
     finder = CellFinder(site.points, site.cells)

@@ -13,12 +13,13 @@ from fe3d.errors import CaseError
 from fe3d.mesh.site_mesh import SiteMesh
 
 if TYPE_CHECKING:
-    from fe3d.case.schema import Case, Material
+    from fe3d.case.parts import Ground
+    from fe3d.case.schema import Material
 
 __all__ = ["cell_values", "unit_materials"]
 
 
-def unit_materials(case: Case, site: SiteMesh) -> tuple[list[Material], list[str]]:
+def unit_materials(ground: Ground, site: SiteMesh) -> tuple[list[Material], list[str]]:
     """Material of every unit of the mesh, in ``site.layer_names`` order, and its name.
 
     Raises
@@ -27,15 +28,12 @@ def unit_materials(case: Case, site: SiteMesh) -> tuple[list[Material], list[str
         When a unit of the mesh names no layer or lens of the case, or its material is not
         defined.
     """
-    by_name = {layer.name: layer.material for layer in case.layers}
-    for lens in case.lenses:
-        by_name[lens.name] = lens.material
     mats, keys = [], []
     for name in site.layer_names:
-        mat = by_name.get(name)
-        if mat is None or mat not in case.materials:
+        mat = ground.unit_material.get(name)
+        if mat is None or mat not in ground.materials:
             raise CaseError(f"layers[{name}].material", mat, "must name a defined material")
-        mats.append(case.materials[mat])
+        mats.append(ground.materials[mat])
         keys.append(mat)
     return mats, keys
 

@@ -1,4 +1,5 @@
-"""What each species needs for its steps, built once from the mesh, the flow and the case.
+"""What each species needs for its steps, built once from the mesh, the flow and the
+transport inputs of the case.
 
 :class:`SpeciesModel` holds the per-cell coefficients of T0–T8 (:class:`Coefficients`) and
 the nodal weights of the lumped terms (T9, T10); :func:`build_species` makes one per species,
@@ -14,7 +15,8 @@ import numpy as np
 import scipy.sparse as sp
 
 from fe3d._typing import FloatArray
-from fe3d.case.schema import Case, Species
+from fe3d.case.parts import Ground, TransportInputs
+from fe3d.case.schema import Species
 from fe3d.flow.solve import FlowField
 from fe3d.mesh.materials import cell_values, unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
@@ -57,10 +59,10 @@ class MediumFields:
     outflow_matrix: sp.csr_matrix
 
 
-def build_medium(site: SiteMesh, flow: FlowField, case: Case) -> MediumFields:
+def build_medium(site: SiteMesh, flow: FlowField, ground: Ground) -> MediumFields:
     """Porosity, bulk density, θD and the outflow terms per cell and node (T3b, T4)."""
     n = site.n_nodes
-    mats, mat_names = unit_materials(case, site)
+    mats, mat_names = unit_materials(ground, site)
     theta = cell_values(mats, site, "porosity")
     q = flow.darcy_flux
     v = q / theta
@@ -177,38 +179,38 @@ class SpeciesModel:
         return float(self.dissolved_volume @ c) + self.sorbed_mass(c)
 
 
-def _reference_concentration(name: str, spec: Species, case: Case) -> float:
+def _reference_concentration(name: str, spec: Species, inputs: TransportInputs) -> float:
     """Concentration [kg/m³] at which a nonlinear isotherm is linearised for the retarded
     velocity, τ and the SUPG storage: ``linearisation_concentration`` when the case gives
     it, else the largest source, injected or initial value; the limit only for a species
     with none of these (a daughter), where it is the scale that matters."""
     if spec.linearisation_concentration is not None:
         return spec.linearisation_concentration
-    values = [src.peak_concentration for src in case.sources
+    values = [src.peak_concentration for src in inputs.sources
               if src.species == name and src.peak_concentration is not None]
-    values += [w.injection_concentration[name] for w in case.wells
+    values += [w.injection_concentration[name] for w in inputs.wells
                if name in w.injection_concentration]
     largest = max([*values, spec.initial_concentration])
     return largest if largest > 0.0 else spec.limit
 
 
-def build_species(site: SiteMesh, flow: FlowField, case: Case,
+def build_species(site: SiteMesh, flow: FlowField, inputs: TransportInputs,
                   medium: MediumFields) -> list[SpeciesModel]:
     """One :class:`SpeciesModel` per species, parents before daughters (T12)."""
     lay = site.cell_layer
     theta, rho_b, vol = medium.porosity, medium.bulk_density, medium.cell_volume
     q = flow.darcy_flux
-    user = case.user_reactions
+    user = inputs.user_reactions
 
     def depth(name: str) -> int:
-        parent = case.species[name].parent
+        parent = inputs.species[name].parent
         return 0 if parent is None else 1 + depth(parent)
 
     out = []
-    for name, spec in sorted(case.species.items(), key=lambda item: depth(item[0])):
+    for name, spec in sorted(inputs.species.items(), key=lambda item: depth(item[0])):
         isotherms: list[Isotherm] = []
         if spec.sorption != "linear":
-            c_ref = _reference_concentration(name, spec, case)
+            c_ref = _reference_concentration(name, spec, inputs)
             kd = np.zeros(site.n_cells)
             for u, mn in enumerate(medium.material_names):
                 law, par = spec.isotherm_of(mn)

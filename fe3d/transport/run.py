@@ -25,7 +25,8 @@ import scipy.sparse as sp
 
 from fe3d._threads import limit_blas_threads
 from fe3d._typing import FloatArray
-from fe3d.case.schema import Case
+from fe3d.case.parts import TransportInputs
+from fe3d.case.schema import TimeControl
 from fe3d.errors import SolverError
 from fe3d.flow.solve import FlowField
 from fe3d.mesh.locate import sample_operator, screen_points
@@ -70,18 +71,19 @@ class Snapshot:
 
 
 def run_transport(
-    site: SiteMesh, flow: FlowField, case: Case, *,
+    site: SiteMesh, flow: FlowField, inputs: TransportInputs, *,
     on_step: Callable[[float, float], None] | None = None, base_dir: Path | None = None,
 ) -> Iterator[Snapshot]:
-    """Step every species from 0 to ``case.time.end``; yield a :class:`Snapshot` at t = 0 and
+    """Step every species from 0 to ``inputs.time.end``; yield a :class:`Snapshot` at t = 0 and
     at every output time.
 
     Parameters
     ----------
     site, flow
         Mesh and steady flow field.
-    case
-        Materials, species, sources, observation points, time and solver controls.
+    inputs
+        Materials, species, sources, observation points, time and solver controls
+        (:meth:`TransportInputs.of <fe3d.case.parts.TransportInputs.of>` a case).
     on_step
         Called after every step with (time reached, end time) [s], for progress display.
     base_dir
@@ -95,16 +97,16 @@ def run_transport(
         before stays valid.
     """
     limit_blas_threads()
-    ctx = _step_context(site, flow, case, base_dir)
-    species, tc = ctx.species, case.time
-    probe = _observation_operator(site, flow, case)
-    schedule = case.output_schedule()
-    switches = {t for src in case.sources for t in (src.start, src.stop)
+    ctx = _step_context(site, flow, inputs, base_dir)
+    species, tc = ctx.species, inputs.time
+    probe = _observation_operator(site, flow, inputs)
+    schedule = inputs.output_schedule()
+    switches = {t for src in inputs.sources for t in (src.start, src.stop)
                 if t is not None and 0 < t < tc.end}
     out_set = set(schedule)
     planner = StepPlanner(tc, sorted({*schedule, *switches, tc.end}), switches,
-                          case.solver.max_step_cuts)
-    start = initial_fields(case, site, ctx.sources)
+                          inputs.solver.max_step_cuts)
+    start = initial_fields(inputs, site, ctx.sources)
     state = StepState(fields={s.name: start[s.name] for s in species},
                       held_before={s.name: np.zeros(site.n_nodes, dtype=bool) for s in species},
                       older=None, last_budget={})
@@ -134,7 +136,7 @@ def run_transport(
         except SolverError as exc:  # NewtonError included
             planner.failed(step, exc)
             continue
-        error = _local_error(case, species, result, step.t1, accepted) \
+        error = _local_error(tc, species, result, step.t1, accepted) \
             if planner.adaptive else None
         if not planner.judge(step, result.newton_iterations, error):
             continue
@@ -175,15 +177,15 @@ def _next_state(result: StepResult, n: int, restart: bool) -> StepState:
                      last_budget={} if restart else dict(result.budget))
 
 
-def _local_error(case: Case, species: tuple[SpeciesModel, ...], result: StepResult, t1: float,
-                 accepted: list[tuple[float, dict[str, FloatArray]]]) -> float | None:
+def _local_error(tc: TimeControl, species: tuple[SpeciesModel, ...], result: StepResult,
+                 t1: float, accepted: list[tuple[float, dict[str, FloatArray]]]) -> float | None:
     """Largest weighted local error of the step over the species (T14; 1 = tolerance),
     None without enough earlier levels."""
     times = [t1] + [a for a, _ in reversed(accepted)]
     errs = []
-    tol = case.time.error_tolerance
+    tol = tc.error_tolerance
     for s in species:
-        e = local_error(case.time.scheme, result.fields[s.name], times,
+        e = local_error(tc.scheme, result.fields[s.name], times,
                         [c[s.name] for _, c in reversed(accepted)])
         if e is not None:
             errs.append(weighted_error(e, result.fields[s.name], rtol=tol,
@@ -191,40 +193,41 @@ def _local_error(case: Case, species: tuple[SpeciesModel, ...], result: StepResu
     return max(errs) if errs else None
 
 
-def _step_context(site: SiteMesh, flow: FlowField, case: Case,
+def _step_context(site: SiteMesh, flow: FlowField, inputs: TransportInputs,
                   base_dir: Path | None) -> StepContext:
     """Everything the steps share, built once."""
-    medium = build_medium(site, flow, case)
-    species = tuple(build_species(site, flow, case, medium))
+    medium = build_medium(site, flow, inputs.ground)
+    species = tuple(build_species(site, flow, inputs, medium))
     node_volume = lumped(site, np.abs(medium.cell_volume))
-    geometry = build_source_geometry(site, flow, case, node_volume=node_volume,
-                                     spacing=max(case.mesh.layer_cell_thickness / 4.0, 0.05))
-    systems = StepSystems(site, medium, flow.darcy_flux, Scheme.of(case.solver), case.time,
-                          case.solver, geometry.held_nodes)
-    parents = {spec.parent for spec in case.species.values() if spec.parent is not None}
+    geometry = build_source_geometry(site, flow, inputs, node_volume=node_volume,
+                                     spacing=inputs.sample_spacing)
+    systems = StepSystems(site, medium, flow.darcy_flux, Scheme.of(inputs.solver), inputs.time,
+                          inputs.solver, geometry.held_nodes)
+    parents = {spec.parent for spec in inputs.species.values() if spec.parent is not None}
     decay_matrix = {s.name: site.pattern.element_sum(
         (s.coefficients.decay * np.abs(medium.cell_volume))[:, None, None] * P1_MASS)
         for s in species if s.name in parents}
-    user = case.user_reactions
+    user = inputs.user_reactions
     user_law = None if user is None else UserLaw(
         species=tuple(user.species), law=kinetics.user_kinetics(
             user.function, n_species=len(user.species), key_path="user_reactions.function",
             search_dirs=[base_dir or Path()]))
     # basis gradients (cells × 4 × 3) only where a term needs them stored: shock capturing
-    grads = gradients(site.points, site.cells)[0] if case.solver.shock_capturing else None
+    grads = gradients(site.points, site.cells)[0] if inputs.solver.shock_capturing else None
     return StepContext(site=site, darcy_flux=flow.darcy_flux, species=species,
                        systems=systems, sources=geometry, decay_matrix=decay_matrix,
-                       user_law=user_law, solver=case.solver, time_scheme=case.time.scheme,
+                       user_law=user_law, solver=inputs.solver, time_scheme=inputs.time.scheme,
                        grads=grads)
 
 
-def _observation_operator(site: SiteMesh, flow: FlowField, case: Case) -> sp.csr_matrix:
+def _observation_operator(site: SiteMesh, flow: FlowField, inputs: TransportInputs,
+                          ) -> sp.csr_matrix:
     """Rows that sample the nodal field at each observation point: a point value, or the
     conductivity-weighted mean over a well screen."""
     kh_cell = flow.conductivity[0]
-    spacing = max(case.mesh.layer_cell_thickness / 4.0, 0.05)
+    spacing = inputs.sample_spacing
     rows = []
-    for o in case.observation_points:
+    for o in inputs.observation_points:
         if o.screen is not None:
             pts = screen_points(o.x, o.y, o.screen[0], o.screen[1], spacing=spacing)
             op, _ = sample_operator(site.points, site.cells, pts, weights_per_cell=kh_cell)

@@ -20,7 +20,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
-from fe3d.case.schema import Case, Source
+from fe3d.case.parts import TransportInputs
+from fe3d.case.schema import Source
 from fe3d.errors import MeshError
 from fe3d.flow.site_rules import line_sample_points, patch_triangles, source_nodes
 from fe3d.flow.solve import FlowField
@@ -104,20 +105,20 @@ def _on(src: Source, t: float) -> bool:
     return src.start <= t and (src.stop is None or t <= src.stop)
 
 
-def build_source_geometry(site: SiteMesh, flow: FlowField, case: Case, *,
+def build_source_geometry(site: SiteMesh, flow: FlowField, inputs: TransportInputs, *,
                           node_volume: FloatArray, spacing: float) -> SourceGeometry:
-    """Nodes and weights of every source of ``case`` on ``site`` (``node_volume`` [m³]:
+    """Nodes and weights of every source of ``inputs`` on ``site`` (``node_volume`` [m³]:
     lumped nodal volumes; ``spacing`` [m]: sampling step along a line source)."""
     n = site.n_nodes
     q = flow.darcy_flux
     held, shares = {}, {}
-    for src in case.sources:
+    for src in inputs.sources:
         if src.points is None:
             held[src.name], shares[src.name] = _held_nodes(site, src)
-    inflow = {src.name: _inflow_weights(site, src, q) for src in case.sources
+    inflow = {src.name: _inflow_weights(site, src, q) for src in inputs.sources
               if src.kind == "inflow_concentration"}
     loading = {}
-    for src in case.sources:
+    for src in inputs.sources:
         if src.kind == "mass_loading" and src.points is not None:
             loading[src.name] = _point_load_weights(site, src.points, spacing=spacing)
         elif src.kind == "mass_loading":
@@ -126,33 +127,33 @@ def build_source_geometry(site: SiteMesh, flow: FlowField, case: Case, *,
             loading[src.name] = w / w.sum()
     injection = {name: sum((np.clip(flow.exchange[w.name], 0.0, None)
                             * w.injection_concentration[name]
-                            for w in case.wells if name in w.injection_concentration
+                            for w in inputs.wells if name in w.injection_concentration
                             and w.name in flow.exchange), np.zeros(n))
-                 for name in case.species}
-    upper = {name: np.zeros(n) for name in case.species}
-    for w in case.wells:  # the water of injection wells
+                 for name in inputs.species}
+    upper = {name: np.zeros(n) for name in inputs.species}
+    for w in inputs.wells:  # the water of injection wells
         if w.name in flow.exchange:
             into = flow.exchange[w.name] > 0.0
             for name, c_inj in w.injection_concentration.items():
                 upper[name][into] = np.maximum(upper[name][into], c_inj)
-    for src in case.sources:
+    for src in inputs.sources:
         if src.kind == "mass_loading":
             upper[src.species][loading[src.name] > 0.0] = np.inf
         elif src.kind == "inflow_concentration" and src.peak_concentration is not None:
             nodes = inflow[src.name] > 0.0
             upper[src.species][nodes] = np.maximum(upper[src.species][nodes],
                                                    src.peak_concentration)
-    return SourceGeometry(sources=tuple(case.sources), held_nodes=held, held_shares=shares,
+    return SourceGeometry(sources=tuple(inputs.sources), held_nodes=held, held_shares=shares,
                           inflow_weights=inflow, loading_weights=loading,
                           injection=injection, upper_bound=upper)
 
 
-def initial_fields(case: Case, site: SiteMesh, geometry: SourceGeometry,
+def initial_fields(inputs: TransportInputs, site: SiteMesh, geometry: SourceGeometry,
                    ) -> dict[str, FloatArray]:
     """Fields [kg/m³] at t = 0: each species' initial value, raised to the initial plumes."""
     conc = {name: np.full(site.n_nodes, spec.initial_concentration)
-            for name, spec in case.species.items()}
-    for src in case.sources:
+            for name, spec in inputs.species.items()}
+    for src in inputs.sources:
         if src.kind == "initial_plume":
             nodes = geometry.held_nodes[src.name]
             values = _plume_values(src, site.points[:, nodes])

@@ -9,6 +9,7 @@ from pathlib import Path
 import pytest
 
 from fe3d.case.load import parse_case
+from fe3d.case.parts import FlowInputs
 from fe3d.cli import main
 from fe3d.errors import CaseError
 from fe3d.flow.site_rules import mesh_rule_problems
@@ -53,7 +54,8 @@ def test_check_passes_the_tiny_case_and_the_run_rule_agrees(tmp_path, capsys, mo
     assert (code, lines) == (0, [])
     case = parse_case(TINY_TEXT + LOW_STREAM)
     with pytest.raises(CaseError, match=r"head_dependent\[brook\]\.stage = '3\.5 m'"):
-        solve_flow(build_mesh(case), case)  # the run stops on the rule check reports
+        # the run stops on the rule check reports
+        solve_flow(build_mesh(case), FlowInputs.of(case))
 
 
 def test_observation_screen_below_the_mesh_is_reported(tmp_path):

@@ -81,6 +81,7 @@ from fe3d.case.builder import (
     Time,
     box_case,
 )
+from fe3d.case.parts import TransportInputs
 from fe3d.case.schema import Case
 from fe3d.post.probes import breakthrough
 from fe3d.transport.run import run_transport
@@ -402,7 +403,7 @@ def run_site(site: PatchSite, case: Case, mesh_flow: tuple[object, object],
 
     mesh, flow = mesh_flow
     t0 = time.perf_counter()
-    *_, last = run_transport(mesh, flow, case)  # type: ignore[arg-type]
+    *_, last = run_transport(mesh, flow, TransportInputs.of(case))  # type: ignore[arg-type]
     seconds = time.perf_counter() - t0
     name = "solvent"
     hist = last.history[name]

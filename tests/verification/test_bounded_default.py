@@ -65,6 +65,7 @@ from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 from fe3d.case.builder import Layer, Material, Source, Species, Time, box_case, with_changes
+from fe3d.case.parts import TransportInputs
 from fe3d.errors import CaseErrors
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
@@ -183,7 +184,7 @@ def _assert_bounded(site, flow, case, budget_rtol: float, label: str) -> tuple[f
     """Run the case; assert −tol·c0 ≤ c ≤ (1 + tol)·c0 after every step (the run's own
     extremes, folded over every accepted step) and the budget at every output time.
     Returns (lowest value, largest excess above c0) [kg/m³]."""
-    snaps = list(run_transport(site, flow, case))
+    snaps = list(run_transport(site, flow, TransportInputs.of(case)))
     diag = snaps[-1].diagnostics
     lowest = min(diag.min_concentration["tracer"][0],
                  min(float(s.concentration["tracer"].min()) for s in snaps))
@@ -284,7 +285,7 @@ def test_supg_with_bdf2_undershoots(column):
                         time={"step": f"{0.1 * COLUMN_CELL!r} d",
                               "end": f"{40 * 0.1 * COLUMN_CELL!r} d", "scheme": "bdf2"},
                         solver={"monotone": False})
-    *_, last = run_transport(site, flow, case)
+    *_, last = run_transport(site, flow, TransportInputs.of(case))
     lowest = last.diagnostics.min_concentration["tracer"][0]
     print(f"SUPG + BDF2 minimum {lowest:.3e} kg/m³")
     assert lowest < -0.01 * C0

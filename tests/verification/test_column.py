@@ -23,6 +23,7 @@ import pytest
 from scipy.special import erfc, erfcx
 
 from fe3d.case.builder import Layer, Material, Solver, Source, Species, Time, box_case
+from fe3d.case.parts import TransportInputs
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -87,7 +88,7 @@ def _column_error(h: float, *, scheme: str, **solver: bool) -> tuple[float, floa
     site, flow = mesh_and_flow(case)
     # K = 10 m/d, gradient 2.5/100 → q = 0.25 m/d, v = q/θ = 1 m/d as assumed above
     np.testing.assert_allclose(flow.darcy_flux[0] * DAY / POROSITY, V, rtol=1e-9)
-    *_, last = run_transport(site, flow, case)
+    *_, last = run_transport(site, flow, TransportInputs.of(case))
     c = last.concentration["tracer"]
     err = float(np.max(np.abs(c - reference(site.points[0], T_END))))
     return err, V * h / D

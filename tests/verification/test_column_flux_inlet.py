@@ -21,6 +21,7 @@ import pytest
 from test_column import DAY, KD, LAMBDA, MU, POROSITY, RHO_B, D, R, V, _exp_erfc
 
 from fe3d.case.builder import Layer, Material, Source, Species, Time, box_case
+from fe3d.case.parts import TransportInputs
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -64,7 +65,7 @@ def test_column_with_flux_inlet_matches_analytic():
         time=Time(t_end, 0.5 * h, scheme="crank_nicolson"))
     site, flow = mesh_and_flow(case)
     np.testing.assert_allclose(flow.darcy_flux[0] * DAY / POROSITY, V, rtol=1e-9)
-    *_, last = run_transport(site, flow, case)
+    *_, last = run_transport(site, flow, TransportInputs.of(case))
     err = float(np.max(np.abs(last.concentration["tracer"]
                               - flux_reference(site.points[0], t_end))))
     print("flux inlet max error / c0", err)

@@ -19,6 +19,7 @@ import pytest
 from test_column import _exp_erfc
 
 from fe3d.case.builder import Layer, Material, Solver, Source, Species, Time, box_case
+from fe3d.case.parts import TransportInputs
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -87,7 +88,7 @@ def test_three_member_chain_matches_the_analytical_solution():
         species=species, sources=inlets, time=Time(T_END, 0.25, scheme="crank_nicolson"),
         solver=Solver(linear_solver="direct"))
     site, flow = mesh_and_flow(case)
-    *_, last = run_transport(site, flow, case)
+    *_, last = run_transport(site, flow, TransportInputs.of(case))
     ref = reference(site.points[0], T_END)
     for i, name in enumerate(names):
         err = np.max(np.abs(last.concentration[name] - ref[i])) / ref[i].max()

@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 
 from fe3d.case.builder import Layer, Material, Species, Time, box_case
+from fe3d.case.parts import FlowInputs
 from fe3d.errors import CaseError
 from fe3d.flow.solve import solve_flow
 from fe3d.mesh.build import build_mesh
@@ -36,7 +37,7 @@ def test_river_on_a_lateral_face_matches_the_series_resistance():
                 layers=[Layer("sand", -10.0, "sand")], heads={"west": hw},
                 sections={"head_dependent": [brook]})
     site = build_mesh(case)
-    flow = solve_flow(site, case)
+    flow = solve_flow(site, FlowInputs.of(case))
     h_east = (K / L * hw + leak * H) / (K / L + leak)
     east = site.face_nodes("east")
     np.testing.assert_allclose(flow.head[east], h_east, rtol=1e-9)
@@ -65,7 +66,7 @@ def test_well_screened_in_a_pinched_out_unit_is_refused():
             "rate": "5 m^3/d", "unit": "clay"}
     case = _layered(well)
     with pytest.raises(CaseError, match=r"wells\[PW\]\.unit = 'clay': this unit is pinched out"):
-        solve_flow(build_mesh(case), case)
+        solve_flow(build_mesh(case), FlowInputs.of(case))
 
 
 def test_well_screen_must_stay_in_its_unit():
@@ -73,7 +74,7 @@ def test_well_screen_must_stay_in_its_unit():
             "rate": "5 m^3/d", "unit": "gravel"}
     case = _layered(well)
     with pytest.raises(CaseError, match=r"wells\[PW\]\.unit = 'gravel': the screens also reach"):
-        solve_flow(build_mesh(case), case)
+        solve_flow(build_mesh(case), FlowInputs.of(case))
     ok = _layered({**well, "screens": [["-8 m", "-11 m"]]})
-    flow = solve_flow(build_mesh(ok), ok)
+    flow = solve_flow(build_mesh(ok), FlowInputs.of(ok))
     assert flow.discrepancy <= 1e-8

@@ -19,6 +19,7 @@ import numpy as np
 import pytest
 
 from fe3d.case.builder import Layer, Material, ObservationPoint, Time, box_case
+from fe3d.case.parts import FlowInputs
 from fe3d.errors import CaseErrors
 from fe3d.flow.solve import solve_flow
 from fe3d.mesh.build import build_mesh
@@ -67,7 +68,7 @@ def test_thiem_drawdown_around_a_pumping_well():
 
     lateral = np.unique(np.hstack([site.face_nodes(f) for f in ("west", "east", "south",
                                                                  "north")]))
-    flow = solve_flow(site, case, extra_fixed={
+    flow = solve_flow(site, FlowInputs.of(case), extra_fixed={
         "ring": (lateral, exact(site.points[0, lateral], site.points[1, lateral]))})
     x, y = site.points[0], site.points[1]
     r = np.hypot(x - 100.0, y - 100.0)
@@ -102,7 +103,7 @@ def test_strip_aquifer_with_recharge_is_parabolic():
     case = _case(L=L, W=50, K=K, b=b, h=10.0, hf=10.0, heads={"west": 30.0, "east": 28.0},
                  recharge=[{"name": "rain", "rate": f"{W} mm/yr"}])
     site = build_mesh(case)
-    flow = solve_flow(site, case)
+    flow = solve_flow(site, FlowInputs.of(case))
     w = W / 1000.0 / (365.25 * DAY)
     T = K * b / DAY
     x = site.points[0]
@@ -121,7 +122,7 @@ def test_dipping_bedding_rotates_the_conductivity_tensor():
     mat = {"vertical_conductivity": 1.0, "conductivity_strike": 0.0, "conductivity_dip": 30.0}
     case = _case(L=100, W=20, K=10.0, h=10.0, heads={"west": 10.0, "east": 9.0}, material=mat)
     site = build_mesh(case)
-    flow = solve_flow(site, case)
+    flow = solve_flow(site, FlowInputs.of(case))
     n = np.array([math.sin(math.pi / 6), 0.0, math.cos(math.pi / 6)])
     Kt = (10.0 * np.eye(3) + (1.0 - 10.0) * np.outer(n, n)) / DAY
     assert np.all(np.abs(flow.darcy_flux[2]) > 0)
@@ -142,13 +143,13 @@ def test_drain_only_removes_water_and_river_both_ways():
              "zone": [["40 m", "0 m"], ["60 m", "0 m"], ["60 m", "50 m"], ["40 m", "50 m"]]}
     heads = {"west": -1.0, "east": -1.0}
     case = _case(L=100, W=50, heads=heads, head_dependent=[drain])
-    flow = solve_flow(build_mesh(case), case)
+    flow = solve_flow(build_mesh(case), FlowInputs.of(case))
     ditch = next(i for i in flow.budget if i.name == "ditch")
     assert ditch.inflow == 0.0
     assert ditch.outflow == 0.0
     np.testing.assert_allclose(flow.head, -1.0, atol=1e-12)
     stream = _case(L=100, W=50, heads=heads, head_dependent=[{**drain, "kind": "stream"}])
-    flow = solve_flow(build_mesh(stream), stream)
+    flow = solve_flow(build_mesh(stream), FlowInputs.of(stream))
     r = next(i for i in flow.budget if i.name == "ditch")
     assert r.inflow > 0
     assert flow.discrepancy <= 1e-8
@@ -168,7 +169,7 @@ def test_bad_flow_inputs_name_the_field():
              "zone": [["0 m", "0 m"], ["50 m", "0 m"], ["50 m", "50 m"]]}
     case = _case(heads=west, head_dependent=[brook], b=10.0)
     with pytest.raises(Exception, match=r"head_dependent\[brook\]\.stage"):
-        solve_flow(build_mesh(case), case)
+        solve_flow(build_mesh(case), FlowInputs.of(case))
     well = {"name": "PW", "x": "50 m", "y": "50 m", "screens": [["-2 m", "-14 m"]],
             "rate": "10 m^3/d"}
     with pytest.raises(CaseErrors, match=r"wells\[PW\]\.screens\[0\]"):

@@ -21,6 +21,7 @@ import numpy as np
 import pytest
 
 from fe3d.case.builder import FixedHead, Layer, Material, box_case
+from fe3d.case.parts import FlowInputs
 from fe3d.errors import CaseErrors
 from fe3d.flow.solve import solve_flow
 from fe3d.mesh.build import build_mesh
@@ -50,7 +51,7 @@ def test_head_from_an_elevation_table_matches_the_series_solution(dz, cell, tol)
     then 1.7, tending to 2); the budget closes to 1e-8."""
     case = _case(dz, cell, _table(dz))
     site = build_mesh(case)
-    flow = solve_flow(site, case)
+    flow = solve_flow(site, FlowInputs.of(case))
     x, z = site.points[0], site.points[2]
     exact = H + A * np.cos(np.pi * (z + B) / B) * np.sinh(np.pi * (L - x) / B) \
         / math.sinh(math.pi * L / B)

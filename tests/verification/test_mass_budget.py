@@ -17,6 +17,7 @@ from test_release_and_injection import SPILL
 
 from fe3d.case.builder import Species, with_changes
 from fe3d.case.load import load_case
+from fe3d.case.parts import TransportInputs
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -32,7 +33,7 @@ def test_mass_budget_closes_every_output_time(scheme, solver):
     case = with_changes(load_case(TINY), time={"scheme": scheme},
                         solver={"linear_solver": solver, "monotone": scheme != "bdf2"})
     site, flow = mesh_and_flow(case)
-    snaps = list(run_transport(site, flow, case))
+    snaps = list(run_transport(site, flow, TransportInputs.of(case)))
     assert len(snaps) == 1 + len(case.output_schedule())
     for snap in snaps:
         b = snap.budgets["tracer"]
@@ -60,7 +61,7 @@ def test_mass_budget_closes_with_a_pumping_well_and_two_species():
                         sources=[SPILL, marker])
     site, flow = mesh_and_flow(case)
     assert flow.discrepancy <= 1e-8
-    snaps = list(run_transport(site, flow, case))
+    snaps = list(run_transport(site, flow, TransportInputs.of(case)))
     last = snaps[-1]
     assert set(last.history) == {"tracer", "marker"}
     assert last.history["marker"].shape == (last.history_times.size, 2)

@@ -16,6 +16,7 @@ import numpy as np
 import pytest
 
 from fe3d.case.builder import Layer, Material, Solver, Source, Species, Time, box_case
+from fe3d.case.parts import TransportInputs
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -61,7 +62,7 @@ def test_langmuir_front_moves_at_the_shock_speed_and_mass_is_conserved(scheme, m
     site, flow = mesh_and_flow(case)
     v = flow.darcy_flux[0].mean() * DAY / THETA
     assert v == pytest.approx(1.0, rel=1e-9)  # K 10 m/d, gradient 1.5/60, θ 0.25
-    snaps = {round(s.time / DAY): s for s in run_transport(site, flow, case)}
+    snaps = {round(s.time / DAY): s for s in run_transport(site, flow, TransportInputs.of(case))}
     x = site.points[0]
     x1, x2 = _front(x, snaps[20].concentration["solute"]), _front(x, snaps[50].concentration[
         "solute"])

@@ -15,6 +15,7 @@ import numpy as np
 import pytest
 
 from fe3d.case.builder import Layer, Material, Source, Species, Time, box_case, with_changes
+from fe3d.case.parts import TransportInputs
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -57,7 +58,7 @@ def _slug(scheme: str):
 def test_slug_moments_follow_the_analytical_growth():
     case, site, flow, v, moments = _slug("crank_nicolson")
     assert v == pytest.approx(1.0, rel=1e-9)
-    snaps = {round(s.time / DAY): s for s in run_transport(site, flow, case)}
+    snaps = {round(s.time / DAY): s for s in run_transport(site, flow, TransportInputs.of(case))}
     c10, v10 = moments(snaps[10].concentration["slug"])
     c40, v40 = moments(snaps[40].concentration["slug"])
     speed = (c40[0] - c10[0]) / 30.0
@@ -91,7 +92,7 @@ def test_slug_spreads_correctly_with_the_limited_monotone_scheme():
                          ("low", {"monotone": True, "flux_limiting": False}),
                          ("limited", {"monotone": True, "flux_limiting": True})):
         snaps = {round(s.time / DAY): s for s in run_transport(
-            site, flow, with_changes(case, solver=solver) if solver else case)}
+            site, flow, TransportInputs.of(with_changes(case, solver=solver) if solver else case))}
         (c10, v10), (c40, v40) = (moments(snaps[t].concentration["slug"]) for t in (10, 40))
         growth[name], speed[name] = v40 - v10, (c40[0] - c10[0]) / 30.0
         if name == "limited":

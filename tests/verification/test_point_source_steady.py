@@ -50,6 +50,7 @@ from _point_source import mirrored, point_source
 
 from fe3d.case import builder
 from fe3d.case.builder import Layer, Material, Solver, Source, Species, Time, box_case
+from fe3d.case.parts import TransportInputs
 from fe3d.linalg import FLOW_TOLERANCE
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
@@ -184,7 +185,7 @@ def _run_and_compare(h: float, dz: float, solver: str = "auto") -> dict[str, flo
     rtol = _flux_tolerance(h, dz)
     np.testing.assert_allclose(flow.darcy_flux[0] / THETA, V, rtol=rtol)
     np.testing.assert_allclose(flow.darcy_flux[1:], 0.0, atol=rtol * V * THETA)
-    snaps = list(run_transport(site, flow, case))
+    snaps = list(run_transport(site, flow, TransportInputs.of(case)))
     for snap in snaps:
         assert snap.budgets["plume"].relative_error <= 1e-8
     last = snaps[-1]

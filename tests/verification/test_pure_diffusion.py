@@ -16,6 +16,7 @@ import pytest
 from scipy.special import erfc
 
 from fe3d.case.builder import Layer, Material, Solver, Source, Time, box_case
+from fe3d.case.parts import TransportInputs
 from fe3d.errors import CaseErrors
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
@@ -47,7 +48,7 @@ def test_diffusion_from_a_fixed_wall_matches_erfc(tortuosity, factor):
     case = _case(tortuosity)
     site, flow = mesh_and_flow(case)
     assert np.max(np.abs(flow.darcy_flux)) <= 1e-15
-    *_, last = run_transport(site, flow, case)
+    *_, last = run_transport(site, flow, TransportInputs.of(case))
     x = site.points[0]
     t = 10 * YEAR
     d_eff = D0 * factor

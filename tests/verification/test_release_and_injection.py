@@ -34,6 +34,7 @@ from fe3d.case.builder import (
     with_changes,
 )
 from fe3d.case.load import load_case
+from fe3d.case.parts import TransportInputs
 from fe3d.errors import CaseError, CaseErrors
 from fe3d.pipeline import check_user_code, mesh_and_flow
 from fe3d.transport.run import run_transport
@@ -73,7 +74,7 @@ def test_mass_loading_release_series_puts_in_its_integral(tmp_path):
     case = _tiny(tmp_path, _spill(concentration=None, kind="mass_loading",
                                   release_file="release.csv", stop=None), csv=csv)
     site, flow = mesh_and_flow(case)
-    snaps = list(run_transport(site, flow, case))
+    snaps = list(run_transport(site, flow, TransportInputs.of(case)))
     rows = [(t * DAY, v * 1e-3 / DAY) for t, v in ((0, 0), (50, 4), (150, 4), (200, 0))]
     for snap in snaps[1:]:
         b = snap.budgets["tracer"]
@@ -86,7 +87,7 @@ def test_fixed_concentration_release_series_holds_the_interpolated_value(tmp_pat
     csv = "time [d], concentration [mg/L]\n0, 5\n365.25, 1\n"
     case = _tiny(tmp_path, _spill(concentration=None, release_file="release.csv"), csv=csv)
     site, flow = mesh_and_flow(case)
-    snaps = list(run_transport(site, flow, case))
+    snaps = list(run_transport(site, flow, TransportInputs.of(case)))
     first = snaps[1]  # 0.5 yr = 182.625 d, inside the source's 200 d
     p = site.points
     inside = (np.abs(p[0] - 10) <= 2) & (np.abs(p[1] - 10) <= 2) & (p[2] >= 2) & (p[2] <= 4)
@@ -137,7 +138,7 @@ def test_injection_well_fills_its_surroundings_with_its_concentration(tmp_path):
     case = _tiny(tmp_path, _spill(concentration="0 mg/L"), wells=[WELL],
                  fixed_heads=[FixedHead("west", "4.6 m"), FixedHead("east", "4.6 m")])
     site, flow = mesh_and_flow(case)
-    snaps = list(run_transport(site, flow, case))
+    snaps = list(run_transport(site, flow, TransportInputs.of(case)))
     q, c_inj = 5.0 / DAY, 2e-3
     screen = np.nonzero(flow.exchange["recharge_well"] > 0)[0]
     assert screen.size >= 2
@@ -153,7 +154,7 @@ def test_injection_well_input_is_exact_without_other_sources(tmp_path):
     case = _tiny(tmp_path, None, wells=[WELL])
     assert not case.sources
     site, flow = mesh_and_flow(case)
-    for snap in list(run_transport(site, flow, case))[1:]:
+    for snap in list(run_transport(site, flow, TransportInputs.of(case)))[1:]:
         b = snap.budgets["tracer"]
         assert b.source_input == pytest.approx(5.0 / DAY * 2e-3 * snap.time, rel=1e-10)
         assert b.relative_error <= 1e-8
@@ -216,7 +217,7 @@ def _batch(tmp_path: Path, species: list[Species], function: str | None,
     case = batch_case(species, time=Time(10.0, 10.0 / steps, scheme=scheme), sections=laws,
                       base_dir=tmp_path)
     site, flow = mesh_and_flow(case)
-    return list(run_transport(site, flow, case, base_dir=tmp_path))[-1]
+    return list(run_transport(site, flow, TransportInputs.of(case), base_dir=tmp_path))[-1]
 
 
 def test_user_law_equals_the_built_in_second_order_law(tmp_path):
@@ -292,7 +293,7 @@ def test_initial_plume_from_points_is_interpolated_linearly(tmp_path):
                                   concentration_file="survey.csv", x=(4, 16), y=(4, 16),
                                   z=(1, 5), stop=None))
     site, flow = mesh_and_flow(case)
-    snaps = list(run_transport(site, flow, case))
+    snaps = list(run_transport(site, flow, TransportInputs.of(case)))
     c0 = snaps[0].concentration["tracer"]
     x, y, z = site.points
     in_hull = (x >= 6 - 1e-9) & (x <= 14 + 1e-9) & (y >= 6 - 1e-9) & (y <= 14 + 1e-9) & \
@@ -369,7 +370,7 @@ def test_point_and_line_loading_put_their_mass_where_they_are(shape, points, cen
         case = _no_flow_loading(shape, points, **({"monotone": False}
                                                   if scheme == "galerkin" else {}))
         site, flow = mesh_and_flow(case)
-        snaps = list(run_transport(site, flow, case))
+        snaps = list(run_transport(site, flow, TransportInputs.of(case)))
         for snap in snaps[1:]:
             b = snap.budgets["s"]
             assert b.source_input == pytest.approx(3e-3 / DAY * snap.time, rel=1e-12)
@@ -437,7 +438,7 @@ def test_stiff_coupled_law_converges_without_step_cuts(tmp_path):
                       sections={"user_reactions": {"function": "site_laws:a_b_fast",
                                                    "species": ["a", "b"]}})
     site, flow = mesh_and_flow(case)
-    last = list(run_transport(site, flow, case, base_dir=tmp_path))[-1]
+    last = list(run_transport(site, flow, TransportInputs.of(case), base_dir=tmp_path))[-1]
     kf, kb = 30.0, 10.0  # per day
     jac = np.array([[-kf, kb], [kf, -kb]])
     ref = np.array([C0, 0.0])

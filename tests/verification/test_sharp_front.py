@@ -49,6 +49,7 @@ from scipy.optimize import brentq
 from scipy.special import erfc, erfcx
 
 from fe3d.case.builder import Layer, Material, Solver, Source, Time, box_case, with_changes
+from fe3d.case.parts import TransportInputs
 from fe3d.mesh.geometry import p1_gradients
 from fe3d.mesh.locate import locate_points
 from fe3d.pipeline import mesh_and_flow
@@ -267,7 +268,7 @@ def test_hand_loop_is_the_discretisation_of_run_transport(column):
     site, flow, _ = column
     dt = 0.5 * CELL / V
     case = _case(dt, linear_solver="direct")
-    *_, last = run_transport(site, flow, case)
+    *_, last = run_transport(site, flow, TransportInputs.of(case))
     mine = _run(site, flow, dt, shock=False)
     assert np.max(np.abs(last.concentration["tracer"] - mine["c"])) <= 1e-9 * C0
 
@@ -283,7 +284,7 @@ def test_run_transport_with_shock_capturing(column, courant):
     worst = {}
     for shock in (False, True):
         case = _case(dt, linear_solver="direct", shock_capturing=shock)
-        snaps = list(run_transport(site, flow, case))
+        snaps = list(run_transport(site, flow, TransportInputs.of(case)))
         for snap in snaps:
             assert snap.budgets["tracer"].relative_error <= 1e-8
         worst[shock] = snaps[-1].diagnostics.min_concentration["tracer"][0] / C0
@@ -309,7 +310,7 @@ def test_monotone_scheme_keeps_the_bounds(column, courant):
     site, flow, line = column
     dt = courant * CELL / V
     case = _case(dt, linear_solver="direct", monotone=True)
-    snaps = list(run_transport(site, flow, case))
+    snaps = list(run_transport(site, flow, TransportInputs.of(case)))
     lo = min(float(s.concentration["tracer"].min()) for s in snaps)
     hi = max(float(s.concentration["tracer"].max()) for s in snaps)
     assert lo >= -1e-12 * C0 and hi <= C0 * (1.0 + 1e-12), (lo, hi)
@@ -339,7 +340,8 @@ def test_flux_limiting_sharpens_the_monotone_front(column, courant):
     err = {}
     for name, extra in (("supg", {}), ("low", {"monotone": True}),
                         ("limited", {"monotone": True, "flux_limiting": True})):
-        snaps = list(run_transport(site, flow, _case(dt, linear_solver="direct", **extra)))
+        snaps = list(run_transport(
+            site, flow, TransportInputs.of(_case(dt, linear_solver="direct", **extra))))
         if name != "supg":
             for snap in snaps:
                 c = snap.concentration["tracer"]
@@ -361,8 +363,9 @@ def test_flux_limiting_on_long_steps_keeps_the_low_order_value(column):
     1) and its result is the low-order one to round-off."""
     site, flow, _ = column
     case = _case(8.0 * CELL / V, linear_solver="direct", monotone=True)
-    low = list(run_transport(site, flow, case))[-1]
-    lim = list(run_transport(site, flow, with_changes(case, solver={"flux_limiting": True})))[-1]
+    low = list(run_transport(site, flow, TransportInputs.of(case)))[-1]
+    limited = TransportInputs.of(with_changes(case, solver={"flux_limiting": True}))
+    lim = list(run_transport(site, flow, limited))[-1]
     assert lim.diagnostics.limiting_blocked["tracer"] == 1.0
     np.testing.assert_allclose(lim.concentration["tracer"], low.concentration["tracer"],
                                rtol=0, atol=1e-12 * C0)

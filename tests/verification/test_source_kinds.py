@@ -14,6 +14,7 @@ import pytest
 from test_release_and_injection import SPILL, TINY
 
 from fe3d.case.builder import with_changes
+from fe3d.case.parts import TransportInputs
 from fe3d.errors import CaseErrors
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
@@ -26,7 +27,7 @@ def _run(**spill: object):
     """The tiny case with its spill source changed by the ``spill`` fields."""
     case = with_changes(TINY, sources=[dataclasses.replace(SPILL, **spill)])
     site, flow = mesh_and_flow(case)
-    return site, list(run_transport(site, flow, case))
+    return site, list(run_transport(site, flow, TransportInputs.of(case)))
 
 
 def test_mass_loading_injects_rate_times_duration():

@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 
 from fe3d.case.builder import Layer, Material, Solver, Species, Time, box_case
+from fe3d.case.parts import TransportInputs
 from fe3d.errors import NewtonError
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
@@ -44,7 +45,7 @@ def _case(reaction: dict[str, str], *, time: Time, **solver: object):
 
 def _run(case):
     site, flow = mesh_and_flow(case)
-    return list(run_transport(site, flow, case))
+    return list(run_transport(site, flow, TransportInputs.of(case)))
 
 
 def test_bdf2_first_order_decay_is_second_order_accurate():
@@ -124,7 +125,7 @@ def test_a_step_that_fails_after_the_allowed_cuts_stops_with_a_clear_message():
                  time=Time(1.0, 1.0, scheme="backward_euler"),
                  newton_max_iterations=3, max_step_cuts=0)
     site, flow = mesh_and_flow(case)
-    gen = run_transport(site, flow, case)
+    gen = run_transport(site, flow, TransportInputs.of(case))
     first = next(gen)
     with pytest.raises(NewtonError, match=r"failed after 0 step cuts"):
         next(gen)

@@ -16,6 +16,7 @@ import pytest
 from test_flow_sources import _case
 
 from fe3d.case.builder import ObservationPoint
+from fe3d.case.parts import FlowInputs
 from fe3d.flow.solve import solve_flow
 from fe3d.flow.tracking import Tracker
 from fe3d.mesh.build import build_mesh
@@ -28,7 +29,7 @@ def test_uniform_flow_travel_time_is_exact():
     case = _case(L=200, W=40, K=20.0, b=10.0, h=8.0, hf=8.0,
                  heads={"west": 10.0, "east": 9.0})
     site = build_mesh(case)
-    flow = solve_flow(site, case)
+    flow = solve_flow(site, FlowInputs.of(case))
     theta = 0.3
     tracker = Tracker(site.points, site.cells, flow.darcy_flux / theta)
     path = tracker.track(np.array([10.0, 17.3, -4.1]))
@@ -50,7 +51,7 @@ def test_radial_travel_time_to_a_well():
                  heads=dict.fromkeys(("west", "east", "south", "north"), 20.0),
                  observation_points=[ObservationPoint("PW_loc", 100.0, 100.0, z=-5.0)])
     site = build_mesh(case)
-    flow = solve_flow(site, case)
+    flow = solve_flow(site, FlowInputs.of(case))
     tracker = Tracker(site.points, site.cells, flow.darcy_flux / theta)
     Q = q_well / DAY
     r0, r1 = 60.0, 10.0

@@ -20,6 +20,7 @@ from test_time_loop import batch_case
 
 from fe3d.case.builder import Solver, Species, Time, with_changes
 from fe3d.case.load import load_case
+from fe3d.case.parts import TransportInputs
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.run import run_transport
 
@@ -35,7 +36,7 @@ def _run(reaction: dict[str, str], scheme: str, steps: int) -> tuple[float, floa
     case = batch_case([species], time=Time(10.0, 10.0 / steps, scheme=scheme),
                       solver=Solver(linear_solver="direct", monotone=scheme != "bdf2"))
     site, flow = mesh_and_flow(case)
-    *_, last = run_transport(site, flow, case)
+    *_, last = run_transport(site, flow, TransportInputs.of(case))
     c = last.concentration["s"]
     assert np.ptp(c) <= 1e-9 * C0  # stays uniform
     return float(c.mean()), last.budgets["s"].relative_error
@@ -97,7 +98,7 @@ def test_newton_with_the_reused_step_preconditioner_matches_the_direct_solve(met
         case = with_changes(tiny, species={"tracer": {"second_order_rate": "50 m^3/kg/d"}},
                             solver={"linear_solver": solver})
         site, flow = mesh_and_flow(case)
-        *_, last = run_transport(site, flow, case)
+        *_, last = run_transport(site, flow, TransportInputs.of(case))
         assert last.budgets["tracer"].relative_error <= 1e-6
         assert last.diagnostics.max_newton_iterations >= 2
         results[solver] = last.concentration["tracer"]

@@ -7,6 +7,7 @@ import numpy as np
 import pytest
 
 from fe3d.case.builder import Layer, Material, Species, Time, box_case
+from fe3d.case.parts import Ground
 from fe3d.errors import CaseError
 from fe3d.flow.conductivity import bedding_normal, conductivity_tensors
 from fe3d.flow.solve import unit_materials
@@ -25,7 +26,7 @@ def _case(file: str):
 
 
 def _tensors(case, site, base_dir):
-    mats, names = unit_materials(case, site)
+    mats, names = unit_materials(Ground.of(case), site)
     return conductivity_tensors(site.points, site.cells, site.cell_layer, mats,
                                 unit_keys=[f"materials.{n}" for n in names], base_dir=base_dir)
 

@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 
 from fe3d.case.load import load_case
+from fe3d.case.parts import Ground
 from fe3d.errors import CaseError
 from fe3d.flow.solve import unit_materials as flow_unit_materials
 from fe3d.mesh.build import build_mesh
@@ -28,7 +29,7 @@ def test_porosity_per_cell_and_pore_volume(tiny):
     tolerance: n_cells · eps, the round-off bound of the sums, Higham 2002, Accuracy and
     Stability of Numerical Algorithms, §4.2)."""
     case, site = tiny
-    mats, names = unit_materials(case, site)
+    mats, names = unit_materials(Ground.of(case), site)
     assert names == ["sand", "silt"]
     theta = cell_values(mats, site, "porosity")
     assert set(np.unique(theta)) == {0.3, 0.35}
@@ -44,4 +45,4 @@ def test_a_unit_without_material_names_the_key(tiny):
     case, site = tiny
     bad = case.model_copy(update={"layers": case.layers[:1]})
     with pytest.raises(CaseError, match=r"layers\[silt_base\]\.material = None"):
-        unit_materials(bad, site)
+        unit_materials(Ground.of(bad), site)

@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 
 from fe3d.case.builder import Layer, Material, Solver, Source, Species, Time, box_case
+from fe3d.case.parts import FlowInputs, TransportInputs
 from fe3d.case.schema import Case
 from fe3d.errors import MeshError
 from fe3d.mesh.build import build_mesh
@@ -163,8 +164,8 @@ def test_a_patch_lets_in_the_mass_of_its_real_area() -> None:
     case = _slab((0.0, 3.3), (-2.25, 0.0), solver=Solver(monotone=True, flux_limiting=True),
                  scheme="crank_nicolson")
     site = build_mesh(case)
-    flow = solve_flow(site, case)
-    *_, last = run_transport(site, flow, case)
+    flow = solve_flow(site, FlowInputs.of(case))
+    *_, last = run_transport(site, flow, TransportInputs.of(case))
     theta, v, t, alpha, c0 = 0.25, 1.0 / 86400.0, 20 * 86400.0, 0.5, 0.01
     exact = c0 * theta * 3.3 * 2.25 * (v * t + alpha)
     entered = last.budgets["solvent"].source_input
