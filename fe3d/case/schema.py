@@ -52,6 +52,7 @@ from fe3d.case.schema_types import (
     _concentration_unit,
     _time_unit,
 )
+from fe3d.case.uncertain import UncertainInputs, uncertain_checks
 from fe3d.errors import CaseError
 from fe3d.units import from_si
 
@@ -443,6 +444,7 @@ class Case(Section):
     mesh: MeshControl
     solver: SolverControl = SolverControl()
     output: OutputControl = OutputControl()
+    uncertain: UncertainInputs | None = None  # ensembles only (fe3d/case/uncertain.py)
 
     @property
     def z_bottom_min(self) -> float:
@@ -733,4 +735,5 @@ def cross_checks(case: Case) -> list[CaseError]:
         errs.append(CaseError("mesh.fine_cell_size", f"{m.fine_cell_size:g} m",
                               f"must not exceed mesh.cell_size ({m.cell_size:g} m)"))
     errs += hydro_checks(case)
+    errs += uncertain_checks(case)
     return errs
