@@ -8,6 +8,7 @@ viewer reads either way.
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Literal
 from xml.sax.saxutils import quoteattr
 
 import meshio
@@ -33,9 +34,28 @@ def _tetra_mesh(site: SiteMesh, point_data: dict[str, FloatArray] | None = None,
                        cell_data=cd)
 
 
-def write_mesh(site: SiteMesh, folder: Path) -> list[Path]:
-    """Write ``mesh.msh`` (gmsh 2.2, physical groups per unit and face) and ``mesh.vtu``."""
-    msh_path, vtu_path = folder / "mesh.msh", folder / "mesh.vtu"
+def write_mesh(site: SiteMesh, folder: Path, *,
+               formats: tuple[Literal["msh", "vtu"], ...] = ("msh", "vtu"),
+               msh_binary: bool = False) -> list[Path]:
+    """Write ``mesh.msh`` (gmsh 2.2, physical groups per unit and face; text, or binary
+    with ``msh_binary``) and ``mesh.vtu``, those named in ``formats``; returns the paths.
+
+    A run that writes its fields as one VTKHDF series (:mod:`fe3d.post.series`) holds the
+    mesh there already: it needs neither file unless asked for (docs/outputs.md)."""
+    written = []
+    if "msh" in formats:
+        written.append(_write_msh(site, folder / "mesh.msh", binary=msh_binary))
+    if "vtu" in formats:
+        vtu_path = folder / "mesh.vtu"
+        vtu = _tetra_mesh(site)
+        write_atomic(vtu_path, lambda p: meshio.write(p, vtu, file_format="vtu",
+                                                      compression=None))
+        written.append(vtu_path)
+    return written
+
+
+def _write_msh(site: SiteMesh, msh_path: Path, *, binary: bool) -> Path:
+    """The mesh in gmsh 2.2 format with a physical group per unit and per face."""
     face_names = list(site.faces)
     tris = [site.faces[f].T for f in face_names]
     cells = [("tetra", site.cells.T), *[("triangle", t) for t in tris]]
@@ -46,10 +66,8 @@ def write_mesh(site: SiteMesh, folder: Path) -> list[Path]:
     msh = meshio.Mesh(site.points.T, cells,
                       cell_data={"gmsh:physical": phys, "gmsh:geometrical": phys},
                       field_data=field_data)
-    write_atomic(msh_path, lambda p: meshio.write(p, msh, file_format="gmsh22", binary=False))
-    vtu = _tetra_mesh(site)
-    write_atomic(vtu_path, lambda p: meshio.write(p, vtu, file_format="vtu", compression=None))
-    return [msh_path, vtu_path]
+    write_atomic(msh_path, lambda p: meshio.write(p, msh, file_format="gmsh22", binary=binary))
+    return msh_path
 
 
 def write_field(site: SiteMesh, path: Path, *, point_data: dict[str, FloatArray] | None = None,
