@@ -1,22 +1,17 @@
-"""Implicit time schemes as residual builders, a local error estimate and a step controller.
+"""The implicit time schemes' step coefficients, a local error estimate and a step controller.
 
-The semi-discrete system is written d S(c)/dt = f(c) (theory.md R16). S is the stored mass:
-S(c) = M c for linear storage, or the mass of water and sorbed phase for nonlinear sorption,
-which keeps the schemes mass-conservative. Both S and f are callables returning the value and
-its Jacobian: any objects that support ``a * J1 - b * J2`` (numpy arrays, scipy sparse
-matrices, or 1-D arrays of pointwise diagonals) work, as long as both Jacobians are of the
-same kind (a 1-D diagonal would broadcast wrongly against a matrix).
-
-Each ``*_step`` function returns the residual R(c) and its Jacobian for the unknown c^{n+1};
-the caller hands them to :func:`fe3d.transport.newton.newton`. Pure functions; no mesh.
+The semi-discrete system is written d S(c)/dt = f(c) (theory.md R16); one step of backward
+Euler, Crank–Nicolson or BDF2 is the linear multistep formula of :class:`StepCoefficients`
+(T13, R17–R19), which the transport's step systems and Newton residuals are built from. Pure
+functions; no mesh.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, Literal
+from typing import Literal
 
 import numpy as np
 
@@ -29,12 +24,7 @@ __all__ = [
     "StepCoefficients",
     "StepControl",
     "StepDecision",
-    "StepEquations",
-    "backward_euler_step",
-    "bdf2_step",
-    "crank_nicolson_step",
     "fit_to_next_time",
-    "linear_storage",
     "local_error",
     "next_step",
     "step_coefficients",
@@ -43,26 +33,6 @@ __all__ = [
 
 Scheme = Literal["backward_euler", "crank_nicolson", "bdf2"]
 ORDER: dict[str, int] = {"backward_euler": 1, "crank_nicolson": 2, "bdf2": 2}
-
-Operator = Any
-"""A Jacobian: dense or sparse matrix, or a 1-D array holding a diagonal."""
-ValueAndJacobian = Callable[[FloatArray], tuple[FloatArray, Operator]]
-
-
-@dataclass(frozen=True)
-class StepEquations:
-    """R(c^{n+1}) = 0 for one step, with its Jacobian dR/dc^{n+1}."""
-
-    residual: Callable[[FloatArray], FloatArray]
-    jacobian: Callable[[FloatArray], Operator]
-
-
-def linear_storage(m: Operator) -> ValueAndJacobian:
-    """S(c) = M c with constant M (matrix, or 1-D array for a diagonal/lumped M)."""
-    if isinstance(m, np.ndarray) and m.ndim == 1:
-        return lambda c: (m * c, m)
-    return lambda c: (m @ c, m)
-
 
 @dataclass(frozen=True)
 class StepCoefficients:
@@ -90,62 +60,6 @@ def step_coefficients(scheme: str, dt: float, dt_prev: float | None) -> StepCoef
         return StepCoefficients((1.0 + 2.0 * w) / (1.0 + w), -(1.0 + w), w * w / (1.0 + w), 1.0)
     return StepCoefficients(1.0, -1.0, 0.0, 1.0)
 
-
-
-def backward_euler_step(
-    storage: ValueAndJacobian, rhs: ValueAndJacobian, c_n: FloatArray, dt: float,
-) -> StepEquations:
-    """Backward Euler (R17): R = (S(c) − S(c^n))/Δt − f(c)."""
-    s_n = storage(c_n)[0]
-
-    def residual(c: FloatArray) -> FloatArray:
-        return (storage(c)[0] - s_n) / dt - rhs(c)[0]
-
-    def jacobian(c: FloatArray) -> Operator:
-        return storage(c)[1] * (1.0 / dt) - rhs(c)[1]
-
-    return StepEquations(residual, jacobian)
-
-
-def crank_nicolson_step(
-    storage: ValueAndJacobian, rhs: ValueAndJacobian, c_n: FloatArray, dt: float,
-) -> StepEquations:
-    """Crank–Nicolson (R18): R = (S(c) − S(c^n))/Δt − ½(f(c) + f(c^n))."""
-    s_n = storage(c_n)[0]
-    f_n = rhs(c_n)[0]
-
-    def residual(c: FloatArray) -> FloatArray:
-        return (storage(c)[0] - s_n) / dt - 0.5 * (rhs(c)[0] + f_n)
-
-    def jacobian(c: FloatArray) -> Operator:
-        return storage(c)[1] * (1.0 / dt) - rhs(c)[1] * 0.5
-
-    return StepEquations(residual, jacobian)
-
-
-def bdf2_step(
-    storage: ValueAndJacobian, rhs: ValueAndJacobian, c_n: FloatArray, c_nm1: FloatArray,
-    dt: float, dt_prev: float,
-) -> StepEquations:
-    """Variable-step BDF2 (R19), ω = Δt/Δt_prev:
-
-    R = [(1+2ω)/(1+ω) S(c) − (1+ω) S(c^n) + ω²/(1+ω) S(c^{n−1})]/Δt − f(c).
-
-    With ω = 1 this is (3/2 S^{n+1} − 2 S^n + ½ S^{n−1})/Δt = f^{n+1}. The first step of a
-    run (no c^{n−1}) is taken with backward Euler; its local error is O(Δt²), so the global
-    order stays 2.
-    """
-    co = step_coefficients("bdf2", dt, dt_prev)
-    a0, a1, a2 = co.a0, co.a1, co.a2
-    s_old = a1 * storage(c_n)[0] + a2 * storage(c_nm1)[0]
-
-    def residual(c: FloatArray) -> FloatArray:
-        return (a0 * storage(c)[0] + s_old) / dt - rhs(c)[0]
-
-    def jacobian(c: FloatArray) -> Operator:
-        return storage(c)[1] * (a0 / dt) - rhs(c)[1]
-
-    return StepEquations(residual, jacobian)
 
 
 # --- local error estimate ----------------------------------------------------------------

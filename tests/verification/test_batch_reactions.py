@@ -18,16 +18,10 @@ import scipy.optimize
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from fe3d.reactions.chains import chain_matrix
 from fe3d.reactions.kinetics import second_order
 from fe3d.reactions.sorption import freundlich, langmuir, linear
 from fe3d.transport.newton import newton
-from fe3d.transport.timeschemes import (
-    backward_euler_step,
-    bdf2_step,
-    crank_nicolson_step,
-    linear_storage,
-)
+from fe3d.transport.timeschemes import step_coefficients
 
 pytestmark = pytest.mark.verification
 
@@ -47,6 +41,31 @@ def _solve(jac, r):
     return r / jac if jac.ndim == 1 else np.linalg.solve(jac, r)
 
 
+def linear_storage(m):
+    """S(c) = M c with constant M (matrix, or 1-D array for a diagonal) and its Jacobian."""
+    if m.ndim == 1:
+        return lambda c: (m * c, m)
+    return lambda c: (m @ c, m)
+
+
+def step_equations(scheme, storage, rhs, c_n, c_nm1, dt):
+    """Residual and Jacobian of one step of d S(c)/dt = f(c) with the coefficients the
+    transport uses (``step_coefficients``, theory.md T13, R17–R19):
+    R = [a0 S(c) + a1 S(c^n) + a2 S(c^{n−1})]/Δt − θ f(c) − (1 − θ) f(c^n)."""
+    co = step_coefficients(scheme, dt, None if c_nm1 is None else dt)
+    known = co.a1 * storage(c_n)[0] - dt * (1.0 - co.theta) * rhs(c_n)[0]
+    if co.a2:
+        known = known + co.a2 * storage(c_nm1)[0]
+
+    def residual(c):
+        return (co.a0 * storage(c)[0] + known) / dt - co.theta * rhs(c)[0]
+
+    def jacobian(c):
+        return storage(c)[1] * (co.a0 / dt) - rhs(c)[1] * co.theta
+
+    return residual, jacobian
+
+
 def integrate(scheme, storage, rhs, c0, t_end, n_steps, *, record=()):
     """March n_steps equal steps with one scheme; Newton to 1e-13 relative at each step.
 
@@ -57,13 +76,8 @@ def integrate(scheme, storage, rhs, c0, t_end, n_steps, *, record=()):
     prev, cur = None, np.asarray(c0, dtype=float)
     kept = {}
     for k in range(n_steps):
-        if scheme == "crank_nicolson":
-            eq = crank_nicolson_step(storage, rhs, cur, dt)
-        elif scheme == "bdf2" and prev is not None:
-            eq = bdf2_step(storage, rhs, cur, prev, dt, dt)
-        else:
-            eq = backward_euler_step(storage, rhs, cur, dt)
-        out = newton(eq.residual, lambda x, r, eq=eq: _solve(eq.jacobian(x), r), cur,
+        residual, jacobian = step_equations(scheme, storage, rhs, cur, prev, dt)
+        out = newton(residual, lambda x, r, jacobian=jacobian: _solve(jacobian(x), r), cur,
                      rtol=1e-13, atol=1e-300, max_iter=30)
         prev, cur = cur, out.x
         if k + 1 in record:
@@ -223,6 +237,15 @@ CHAIN_K = np.log(2.0) / (np.array([3.0, 8.0, 20.0]) * YEAR)  # half-lives 3, 8, 
 CHAIN_Y = np.array([0.74, 0.65])  # mass yields (invented, of the order of dechlorination steps)
 CHAIN_C0 = np.array([1.0, 0.2, 0.0])  # kg/m³; the daughter is present from the start
 CHAIN_T = 12.0 * YEAR
+
+
+def chain_matrix(rates, yields):
+    """Rate matrix A of a sequential first-order chain, dc/dt = A c (theory.md R13): lower
+    bidiagonal, A[i, i] = −k_i, A[i+1, i] = y_i k_i."""
+    a = np.diag(-np.asarray(rates, dtype=float))
+    idx = np.arange(len(rates) - 1)
+    a[idx + 1, idx] = np.asarray(yields) * np.asarray(rates)[:-1]
+    return a
 
 
 def bateman(t):

@@ -8,17 +8,13 @@ import numpy as np
 import pytest
 
 from fe3d.errors import SolverError
-from fe3d.transport.newton import newton
 from fe3d.transport.timeschemes import (
     ORDER,
     StepControl,
-    backward_euler_step,
-    bdf2_step,
-    crank_nicolson_step,
     fit_to_next_time,
-    linear_storage,
     local_error,
     next_step,
+    step_coefficients,
     weighted_error,
 )
 
@@ -30,17 +26,12 @@ def _exact(t):
 
 
 def _one_step(scheme, t_new, times, hist):
-    storage = linear_storage(np.array([1.0]))
-    rhs = lambda c: (-LAM * c, np.array([-LAM]))  # noqa: E731
+    """One step of dc/dt = −λc with the transport's coefficients (theory.md T13):
+    (a0 c^{n+1} + a1 c^n + a2 c^{n−1})/Δt = −λ(θ c^{n+1} + (1 − θ) c^n), solved for c^{n+1}."""
     dt = t_new - times[0]
-    if scheme == "backward_euler":
-        eq = backward_euler_step(storage, rhs, hist[0], dt)
-    elif scheme == "crank_nicolson":
-        eq = crank_nicolson_step(storage, rhs, hist[0], dt)
-    else:
-        eq = bdf2_step(storage, rhs, hist[0], hist[1], dt, times[0] - times[1])
-    return newton(eq.residual, lambda x, r: r / eq.jacobian(x), hist[0], rtol=1e-14,
-                  atol=1e-300).x
+    co = step_coefficients(scheme, dt, times[0] - times[1])
+    known = co.a1 * hist[0] + co.a2 * hist[1] + dt * LAM * (1.0 - co.theta) * hist[0]
+    return -known / (co.a0 + dt * LAM * co.theta)
 
 
 @pytest.mark.parametrize("scheme", ["backward_euler", "crank_nicolson", "bdf2"])
