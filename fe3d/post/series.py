@@ -51,8 +51,9 @@ class SeriesFile:
     time_unit
         Unit of the time values passed to :meth:`add` (kept in the file's ``fe3d`` group).
     dtype
-        Storage type of the per-time arrays (float32 by default: 7 significant digits, for
-        viewing; the run's tables are computed in float64).
+        Storage type of the floating-point arrays, static and per time (float32 by default:
+        7 significant digits, for viewing; the run's tables are computed in float64). The
+        node coordinates are always float64 (site coordinates of 10⁶ m need them).
     """
 
     def __init__(self, path: Path, points: FloatArray, cells: IndexArray, *,
@@ -78,7 +79,8 @@ class SeriesFile:
         for group, arrays in (("PointData", self.static_point), ("CellData", self.static_cell)):
             g = root.create_group(group)
             for name, values in arrays.items():
-                g.create_dataset(array_name(name), data=np.ascontiguousarray(values))
+                kind = self.dtype if np.issubdtype(values.dtype, np.floating) else values.dtype
+                g.create_dataset(name, data=np.ascontiguousarray(values, dtype=kind))
         root.create_group("FieldData")
         steps = root.create_group("Steps")
         steps.attrs["NSteps"] = np.int64(0)
