@@ -74,9 +74,9 @@ def run(cell: float, fine: float) -> dict[str, float]:
         t = time.perf_counter()
         site = build_mesh(case)
         wall = time.perf_counter() - t
-    q = site.info["quality"]
+    q = site.report.quality.as_dict()
     return {"cells": site.n_cells, "nodes": site.n_nodes, "plan_triangles":
-            site.info["plan_triangles"], "mesh_s": wall,
+            site.report.plan.tri.shape[1], "mesh_s": wall,
             "min_dihedral": q["min_dihedral_deg"], "p01_dihedral": q["p01_dihedral_deg"],
             "worst_aspect": q["worst_aspect_ratio"],
             "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0}

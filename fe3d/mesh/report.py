@@ -128,25 +128,3 @@ class MeshReport:
     lens_fits: tuple[LensFit, ...] = ()
     plan: PlanLayout | None = None
     corridor: Corridor | None = None
-
-    def as_legacy_dict(self) -> dict[str, Any]:
-        """The keys of the former ``SiteMesh.info`` dict, for callers not yet switched to
-        the fields (read-only use; to be removed)."""
-        out: dict[str, Any] = {
-            "quality": self.quality.as_dict(), "sublayers": dict(self.sublayers),
-            "surface_rules": [r.as_dict() for r in self.surface_rules],
-            "surface_rule_lines": [r.line() for r in self.surface_rules],
-            "lens_fit": [n.as_dict() for n in self.lens_fits]}
-        if self.origin == "imported":
-            out["imported_from"] = self.origin_path
-        elif self.origin == "cached":
-            out["reused_from"] = self.origin_path
-        if self.plan is not None:
-            out |= {"plan_xy": self.plan.xy, "plan_tri": self.plan.tri,
-                    "surfaces": list(self.plan.surfaces),
-                    "plan_nodes": int(self.plan.xy.shape[1]),
-                    "plan_triangles": int(self.plan.tri.shape[1]),
-                    "borehole_nodes": dict(self.plan.borehole_nodes),
-                    "well_nodes": dict(self.plan.well_nodes)}
-        return out
-

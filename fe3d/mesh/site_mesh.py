@@ -4,7 +4,6 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from functools import cached_property
-from types import MappingProxyType
 from typing import Any
 
 import numpy as np
@@ -86,12 +85,6 @@ class SiteMesh:
         each node stands for [m³]; ``site.lumped(porosity)`` its pore volume.
         """
         return lump_to_nodes(self.cells, self._volumes, per_cell, self.n_nodes)
-
-    @property
-    def info(self) -> MappingProxyType[str, Any]:
-        """Read-only view of :attr:`report` under the keys of the former ``info`` dict
-        (compatibility for callers not yet switched to :attr:`report`; to be removed)."""
-        return MappingProxyType({} if self.report is None else self.report.as_legacy_dict())
 
     def face_nodes(self, name: str) -> IndexArray:
         """Sorted unique node ids on a named boundary face."""

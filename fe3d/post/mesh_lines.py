@@ -31,18 +31,17 @@ def mesh_lines(site: SiteMesh) -> list[MeshLine]:
         out += [MeshLine(line) for line in corridor.lines()]
         if corridor.note:
             out.append(MeshLine(corridor.note, "warning"))
-    legacy = site.info
     out.append(MeshLine("sublayers: " + ", ".join(
-        f"{k} {v}" for k, v in (legacy.get("sublayers") or {}).items())))
+        f"{k} {v}" for k, v in report.sublayers.items())))
     out.append(MeshLine("faces: " + ", ".join(f"{k} ({v.shape[1]} triangles)"
                                               for k, v in site.faces.items())))
-    for rule in legacy.get("surface_rules", []):
+    for rule in report.surface_rules:
         out.append(MeshLine(
-            f"{rule['rule'].replace('_', '-')} rule: unit {rule['unit']!r} at "
-            f"{rule['n_nodes']} plan nodes ({rule['area_m2']:.4g} m², x "
-            f"{rule['x_range_m'][0]:.1f}–{rule['x_range_m'][1]:.1f} m, y "
-            f"{rule['y_range_m'][0]:.1f}–{rule['y_range_m'][1]:.1f} m)"
-            + (f"; boreholes {', '.join(rule['boreholes'])}" if rule["boreholes"] else ""),
+            f"{rule.rule.replace('_', '-')} rule: unit {rule.unit!r} at "
+            f"{rule.n_nodes} plan nodes ({rule.area:.4g} m², x "
+            f"{rule.x_range[0]:.1f}–{rule.x_range[1]:.1f} m, y "
+            f"{rule.y_range[0]:.1f}–{rule.y_range[1]:.1f} m)"
+            + (f"; boreholes {', '.join(rule.boreholes)}" if rule.boreholes else ""),
             "rule"))
-    out += [MeshLine(note["line"], "warning") for note in legacy.get("lens_fit", [])]
+    out += [MeshLine(fit.line, "warning") for fit in report.lens_fits]
     return out

@@ -386,7 +386,7 @@ class SiteResult:
 def _corridor_edge(mesh: object, site: PatchSite) -> float:
     """Median length [m] of the plan triangle edges within 10 m of the centreline between
     the source and the last receptor."""
-    xy, tri = mesh.info["plan_xy"], mesh.info["plan_tri"]  # type: ignore[attr-defined]
+    xy, tri = mesh.report.plan.xy, mesh.report.plan.tri  # type: ignore[attr-defined]
     centre = xy[:, tri].mean(axis=1)
     near = (centre[1] < 10.0) & (centre[0] < max(site.receptors))
     lengths = [np.linalg.norm(xy[:, tri[i, near]] - xy[:, tri[(i + 1) % 3, near]], axis=0)

@@ -57,7 +57,7 @@ def test_thiem_drawdown_around_a_pumping_well():
     case = _case(K=K, b=b, h=6.0, hf=hf, rf=15.0, dz=1.0, heads={"west": 20.0}, wells=[well],
                  observation_points=[ObservationPoint("PW_loc", 100.0, 100.0, z=-5.0)])
     site = build_mesh(case)
-    assert site.info["sublayers"] == {"aquifer": 10}
+    assert site.report.sublayers == {"aquifer": 10}
     T = K * b / DAY
     Q = q / DAY
     H, R = 20.0, 100.0

@@ -87,7 +87,7 @@ def test_mesh_surfaces_follow_the_grid_files(tmp_path):
     write_grids(tmp_path, ground, upper)
     case = grid_case(tmp_path)
     site = build_mesh(case)
-    xy, s = site.info["plan_xy"], site.info["surfaces"]
+    xy, s = site.report.plan.xy, site.report.plan.surfaces
     for k, z in ((0, ground), (1, upper)):
         ref = RegularGridInterpolator((GY, GX), z, method="linear")(xy[::-1].T)
         np.testing.assert_allclose(s[k], ref, atol=1e-9, rtol=0)

@@ -67,7 +67,7 @@ def test_fe3d_mesh_comes_back_through_the_import_route(built, tmp_path, name):
     site, folder = built
     (tmp_path / name).write_bytes((folder / name).read_bytes())
     back = build_mesh(import_case(tmp_path, name))
-    assert back.info["imported_from"].endswith(name)
+    assert back.report.origin == "imported" and back.report.origin_path.endswith(name)
     np.testing.assert_allclose(back.points, site.points, atol=1e-12)
     assert back.n_cells == site.n_cells
     np.testing.assert_array_equal(np.sort(back.cells, axis=0), np.sort(site.cells, axis=0))
@@ -77,7 +77,7 @@ def test_fe3d_mesh_comes_back_through_the_import_route(built, tmp_path, name):
     for face, tri in site.faces.items():
         assert tri_set(back.faces[face]) == tri_set(tri), face
     assert back.cell_volumes().min() > 0
-    assert back.info["quality"]["cells"] == site.n_cells
+    assert back.report.quality.cells == site.n_cells
 
 
 def kuhn_box(nx: int, ny: int, nz: int, x: float, y: float, z0: float, z1: float):

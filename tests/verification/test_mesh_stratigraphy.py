@@ -85,7 +85,7 @@ def unit_volumes(site) -> dict[str, float]:
 
 def prism_volumes(site) -> dict[str, float]:
     """Σ over plan triangles of area × mean thickness (truncated prism, CRC tables)."""
-    xy, tri, s = site.info["plan_xy"], site.info["plan_tri"], site.info["surfaces"]
+    xy, tri, s = site.report.plan.xy, site.report.plan.tri, site.report.plan.surfaces
     a, b, c = (xy[:, tri[i]] for i in range(3))
     area = 0.5 * np.abs((b[0] - a[0]) * (c[1] - a[1]) - (c[0] - a[0]) * (b[1] - a[1]))
     return {n: float(np.sum(area * (s[k] - s[k + 1])[tri].mean(axis=0)))
@@ -99,13 +99,13 @@ def test_surfaces_honour_picks_and_reference_interpolant(tmp_path, method):
     rows = irregular_rows()
     site = build_mesh(write_case(tmp_path, rows, method=method))
     xy_p, z_p = picks(rows)
-    s = site.info["surfaces"]
-    nodes = site.info["borehole_nodes"]
+    s = site.report.plan.surfaces
+    nodes = site.report.plan.borehole_nodes
     for i in range(len(rows)):
         j = nodes[f"BH-{i + 1}"]
         for k in range(4):
             assert abs(s[k][j] - z_p[i, k]) <= 1e-3
-    xy = site.info["plan_xy"].T
+    xy = site.report.plan.xy.T
     for k in range(4):
         if method == "linear":
             ref = LinearNDInterpolator(xy_p, z_p[:, k])(xy)
@@ -173,13 +173,13 @@ def test_pinch_out_and_crossing_are_corrected_and_reported(tmp_path):
     rows = [",".join(c) for c in cols]
     site = build_mesh(write_case(tmp_path, rows, tmin=0.3))
     assert site.cell_volumes().min() > 0
-    rules = site.info["surface_rules"]
+    rules = [r.as_dict() for r in site.report.surface_rules]
     kinds = {(r["unit"], r["rule"]) for r in rules}
     assert ("middle", "crossing") in kinds
     assert ("middle", "pinch_out") in kinds
     crossing = next(r for r in rules if r["unit"] == "middle" and r["rule"] == "crossing")
     assert "BH-4" in crossing["boreholes"]
-    s, nodes = site.info["surfaces"], site.info["borehole_nodes"]
+    s, nodes = site.report.plan.surfaces, site.report.plan.borehole_nodes
     for bh in ("BH-2", "BH-4", "BH-7"):
         assert s[1][nodes[bh]] == s[2][nodes[bh]]
     thick = s[2] - s[3]
@@ -199,7 +199,7 @@ def test_refinement_near_well_and_stream_line(tmp_path):
     site = build_mesh(write_case(tmp_path, irregular_rows(), wells=[well],
                                  refinement_lines=[line],
                                  mesh=Mesh(15.0, 2.0, fine_cell_size=2.0, fine_zone_radius=6.0)))
-    xy, tri = site.info["plan_xy"], site.info["plan_tri"]
+    xy, tri = site.report.plan.xy, site.report.plan.tri
     e = np.hstack([tri[[0, 1]], tri[[1, 2]], tri[[0, 2]]])
     length = np.linalg.norm(xy[:, e[0]] - xy[:, e[1]], axis=0)
     mid = 0.5 * (xy[:, e[0]] + xy[:, e[1]])
@@ -220,7 +220,7 @@ def test_refinement_near_well_and_stream_line(tmp_path):
     far = (np.hypot(mid[0] - 60, mid[1] - 50) > 40) & (across > 40)
     assert length[far].max() >= 0.5 * 15.0
     # nodes along the screen: the well's plan node has nodes at the screen top and bottom
-    j = site.info["well_nodes"]["PW-1"]
+    j = site.report.plan.well_nodes["PW-1"]
     col = np.isclose(site.points[0], xy[0, j]) & np.isclose(site.points[1], xy[1, j])
     zc = site.points[2, col]
     assert np.isclose(zc, 4.0, atol=1e-9).any() and np.isclose(zc, -4.0, atol=1e-9).any()
@@ -334,7 +334,7 @@ def test_lens_sticking_out_of_its_host_is_reported(tmp_path, caplog):
     case = write_case(tmp_path, irregular_rows(), lenses=lenses)
     with caplog.at_level("WARNING", logger="fe3d.mesh.build"):
         site = build_mesh(case)
-    notes = site.info["lens_fit"]
+    notes = [n.as_dict() for n in site.report.lens_fits]
     assert [(n["lens"], n["side"]) for n in notes] == [("peat_lens", "top")]
     assert notes[0]["n_clipped"] == notes[0]["n_lens_nodes"] > 0
     assert notes[0]["line"].startswith("lens 'peat_lens' top (3 m): lies outside its host "
