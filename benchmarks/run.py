@@ -118,8 +118,8 @@ def site_stage(h: float, dz: float, folder: Path) -> dict[str, Any]:
 
 def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
 
-    from fe3d.flow.solve import unit_materials
     from fe3d.linalg import LinearSolver, solve_with_preconditioner
+    from fe3d.mesh.materials import unit_materials
     from fe3d.mesh.site_mesh import SiteMesh
     from fe3d.p1 import length_along, split_rows, volumes
     from fe3d.sgs import plus_diagonal

@@ -25,12 +25,12 @@ from fe3d.flow.site_rules import (
 )
 from fe3d.linalg import FLOW_TOLERANCE, solve_spd
 from fe3d.mesh.locate import sample_operator, screen_points
-from fe3d.mesh.materials import unit_materials  # re-exported here until its callers move
+from fe3d.mesh.materials import unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import gradients, split_rows
 from fe3d.sgs import plus_diagonal
 
-__all__ = ["BoundaryFlow", "FlowField", "solve_flow", "unit_materials"]
+__all__ = ["BoundaryFlow", "FlowField", "solve_flow"]
 
 logger = logging.getLogger(__name__)
 

@@ -10,8 +10,8 @@ from fe3d.case.builder import Layer, Material, Species, Time, box_case
 from fe3d.case.parts import Ground
 from fe3d.errors import CaseError
 from fe3d.flow.conductivity import bedding_normal, conductivity_tensors
-from fe3d.flow.solve import unit_materials
 from fe3d.mesh.build import build_mesh
+from fe3d.mesh.materials import unit_materials
 
 DAY = 86400.0
 

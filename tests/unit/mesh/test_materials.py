@@ -11,7 +11,6 @@ import pytest
 from fe3d.case.load import load_case
 from fe3d.case.parts import Ground
 from fe3d.errors import CaseError
-from fe3d.flow.solve import unit_materials as flow_unit_materials
 from fe3d.mesh.build import build_mesh
 from fe3d.mesh.materials import cell_values, unit_materials
 
@@ -38,7 +37,6 @@ def test_porosity_per_cell_and_pore_volume(tiny):
     assert site.lumped(theta).sum() == pytest.approx(2280.0, rel=rtol)
     k_v = cell_values(mats, site, "k_vertical")  # a property: silt defaults to K_h
     assert k_v[site.cell_layer == 1][0] == mats[1].horizontal_conductivity
-    assert flow_unit_materials is unit_materials  # kept importable from flow for now
 
 
 def test_a_unit_without_material_names_the_key(tiny):
