@@ -10,9 +10,114 @@ import numpy as np
 from fe3d._typing import FloatArray
 from fe3d.mesh.corridor import Corridor, corridor_gap
 from fe3d.post.files import write_atomic
+from fe3d.post.maps import SiteFeatures
 from fe3d.units import from_si
 
-__all__ = ["plot_breakthrough", "plot_heads", "plot_refinement_breakthrough"]
+__all__ = [
+    "CAUTION",
+    "CONCENTRATION_COLOURS",
+    "DRAWDOWN_COLOURS",
+    "HEAD_COLOURS",
+    "draw_site",
+    "place_labels",
+    "plot_breakthrough",
+    "plot_heads",
+    "plot_refinement_breakthrough",
+    "pyplot",
+    "save_figure",
+]
+
+# One style for every figure. Sequential colour maps whose lightness changes monotonically
+# (light = low), so that they read in grey scale too (matplotlib's colour map notes).
+CONCENTRATION_COLOURS = "YlOrRd"
+HEAD_COLOURS = "Blues"
+DRAWDOWN_COLOURS = "Purples"
+FORWARD_STYLE = {"color": "firebrick", "linewidth": 0.9, "linestyle": "-"}
+BACKWARD_STYLE = {"color": "navy", "linewidth": 0.8, "linestyle": (0, (4, 2))}
+CAUTION = ("Screening estimate: depends on the inputs; defer to local regulations and "
+           "licensed professional practice.")
+_MARK_STYLE = {"source": ("*", "firebrick"), "extraction": ("v", "navy"),
+               "injection": ("^", "teal"), "observation": ("D", "dimgray"),
+               "monitoring": ("o", "black"), "receptor": ("s", "black")}
+
+
+def pyplot() -> Any:
+    """matplotlib.pyplot on the off-screen Agg backend (no display needed)."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def save_figure(fig: Any, path: Path, *, dpi: int = 130) -> Path:
+    """The caution along the bottom edge, PNG written atomically, figure closed."""
+    fig.text(0.01, 0.005, CAUTION, fontsize=6.5, color="0.25")
+    write_atomic(path, lambda p: fig.savefig(p, dpi=dpi, format="png"))
+    pyplot().close(fig)
+    return path
+
+
+def draw_site(ax: Any, features: SiteFeatures) -> list[tuple[str, float, float]]:
+    """Draw the site outline, fixed-head edges, streams, lenses, source areas and marks;
+    returns the labels (text, x, y [m]) for :func:`place_labels`."""
+    o = features.outline.xy
+    ax.plot(*np.hstack([o, o[:, :1]]), color="black", linewidth=1.2, label="site outline")
+    for i, e in enumerate(features.fixed_head_edges):
+        ax.plot(*e.xy, color="royalblue", linewidth=3.0, alpha=0.8, solid_capstyle="butt",
+                label="fixed head" if i == 0 else None)
+    for i, z in enumerate(features.streams):
+        ax.fill(*z.xy, facecolor="none", edgecolor="royalblue", hatch="---", linewidth=0.8,
+                label="stream or drain zone" if i == 0 else None)
+    for i, lens in enumerate(features.lenses):
+        ax.fill(*lens.xy, facecolor="none", edgecolor="saddlebrown", linestyle=":",
+                linewidth=1.0, label="lens" if i == 0 else None)
+    labels = []
+    for i, a in enumerate(features.source_areas):
+        xy = np.hstack([a.xy, a.xy[:, :1]]) if a.closed else a.xy
+        ax.plot(*xy, color="white", linewidth=3.0)
+        ax.plot(*xy, color="black", linewidth=1.2, linestyle="--",
+                label="source area" if i == 0 else None)
+        labels.append((a.name, float(a.xy[0].max()), float(a.xy[1].max())))
+    seen = set()
+    for m in sorted(features.marks, key=lambda m: m.kind in ("extraction", "injection")):
+        marker, colour = _MARK_STYLE.get(m.kind, ("o", "black"))
+        size = 9 if m.kind in ("extraction", "injection") else 6
+        ax.plot(m.x, m.y, marker=marker, color=colour, markersize=size, linestyle="none",
+                markeredgecolor="white", markeredgewidth=0.6,
+                label=None if m.kind in seen else f"{m.kind} well" if m.kind in
+                ("extraction", "injection") else f"{m.kind} point")
+        seen.add(m.kind)
+        labels.append((m.name, m.x, m.y))
+    return labels
+
+
+def place_labels(ax: Any, labels: list[tuple[str, float, float]], *, fontsize: float = 7.0
+                 ) -> None:
+    """Write each label beside its point, trying eight positions around it and keeping the
+    first that stays inside the axes and overlaps no label placed before (the last try is
+    kept when none fits)."""
+    fig = ax.figure
+    renderer = fig.canvas.get_renderer()
+    box = ax.get_window_extent(renderer)
+    placed: list[Any] = []
+    offsets = [(5, 5), (5, -11), (-5, 5), (-5, -11), (8, -3), (-8, -3), (0, 9), (0, -14)]
+    for text, x, y in labels:
+        for dx, dy in offsets:
+            t = ax.annotate(text, (x, y), xytext=(dx, dy), textcoords="offset points",
+                            fontsize=fontsize, ha="left" if dx > 0 else
+                            "right" if dx < 0 else "center",
+                            bbox={"boxstyle": "round,pad=0.15", "facecolor": "white",
+                                  "edgecolor": "none", "alpha": 0.75}, annotation_clip=True)
+            ext = t.get_window_extent(renderer)
+            fits = (box.x0 <= ext.x0 and ext.x1 <= box.x1 and box.y0 <= ext.y0
+                    and ext.y1 <= box.y1)
+            if fits and not any(ext.overlaps(p) for p in placed):
+                break
+            if (dx, dy) != offsets[-1]:
+                t.remove()
+        placed.append(ext)
 
 
 def plot_breakthrough(path: Path, times: FloatArray, history: dict[str, FloatArray],
