@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
@@ -122,13 +123,14 @@ def place_labels(ax: Any, labels: list[tuple[str, float, float]], *, fontsize: f
 
 def plot_breakthrough(path: Path, times: FloatArray, history: dict[str, FloatArray],
                       names: list[str], limits: dict[str, float], *, time_unit: str,
-                      conc_unit: str, title: str) -> Path:
-    """Breakthrough curves, one panel per species, with the species' limit drawn."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
+                      conc_unit: str, title: str,
+                      source_activity: dict[str, list[tuple[float, float]]] | None = None
+                      ) -> Path:
+    """Breakthrough curves, one panel per species, with the species' limit drawn and the
+    periods when its sources are active (``source_activity``: species → (start, stop) [s])
+    shaded. A limit far below the peak gets a symmetric log axis, linear within a tenth of
+    the limit of zero, so that small and negative values stay visible (no cliffs)."""
+    plt = pyplot()
     n = len(history)
     fig, axes = plt.subplots(n, 1, figsize=(8, 3.2 * n), squeeze=False, sharex=True)
     t = from_si(1.0, time_unit) * times
@@ -136,35 +138,32 @@ def plot_breakthrough(path: Path, times: FloatArray, history: dict[str, FloatArr
     for ax, (sp, values) in zip(axes[:, 0], history.items(), strict=True):
         for j, name in enumerate(names):
             ax.plot(t, values[:, j] * scale, label=name)
-        ax.axhline(limits[sp] * scale, color="k", linestyle="--", linewidth=1.0,
-                   label=f"limit {limits[sp] * scale:.3g} {conc_unit}")
         peak = float(values.max()) * scale if values.size else 0.0
-        lim = limits[sp] * scale
-        if peak > 50.0 * lim:  # a limit far below the peak is invisible on a linear axis
-            ax.set_yscale("log")
-            ax.set_ylim(lim / 100.0, peak * 2.0)
+        for k, (start, stop) in enumerate((source_activity or {}).get(sp, [])):
+            ax.axvspan(start * from_si(1.0, time_unit), stop * from_si(1.0, time_unit),
+                       color="0.88", zorder=0, label="source active" if k == 0 else None)
+        _limit_line(ax, limits[sp] * scale, peak, conc_unit,
+                    lowest=float(values.min()) * scale if values.size else 0.0)
         ax.set_ylabel(f"{sp} [{conc_unit}]")
-        ax.grid(visible=True, alpha=0.3)
-        ax.legend(fontsize=8, loc="upper right")
     axes[-1, 0].set_xlabel(f"time [{time_unit}]")
     fig.suptitle(title, fontsize=10)
-    fig.text(0.01, 0.005, "Screening estimate: depends on the inputs; not a substitute for "
-             "local regulations or licensed professional judgement.", fontsize=7)
     fig.tight_layout(rect=(0, 0.03, 1, 1))
-    write_atomic(path, lambda p: fig.savefig(p, dpi=120, format="png"))
-    plt.close(fig)
-    return path
+    return save_figure(fig, path, dpi=120)
 
 
 def plot_heads(path: Path, points: FloatArray, top_triangles: FloatArray, head: FloatArray,
                top_flux: tuple[FloatArray, FloatArray], *,
                markers: dict[str, tuple[float, float]], pathlines: list[FloatArray],
-               title: str, corridor: Corridor | None = None) -> Path:
+               title: str, corridor: Corridor | None = None,
+               backward_pathlines: Sequence[FloatArray] = ()) -> Path:
     """Plan view of the head on the top face: labelled contours, flow arrows, pathlines,
     and the outline of the plume ``corridor`` the mesh was refined along (when given).
 
     ``top_flux`` is (centres ``(2, k)`` [m], horizontal Darcy flux ``(2, k)`` [m/s]) of the
-    cells under the top face; ``markers`` maps a label to a plan position [m].
+    cells under the top face; ``markers`` maps a label to a plan position [m];
+    ``pathlines`` are drawn solid and ``backward_pathlines`` (from wells) dashed. For the
+    head at the pumped unit's elevation with capture zones, see
+    :func:`fe3d.post.map_figures.plot_head_map`.
     """
     import matplotlib
 
@@ -174,10 +173,10 @@ def plot_heads(path: Path, points: FloatArray, top_triangles: FloatArray, head: 
 
     tri = Triangulation(points[0], points[1], top_triangles.T)
     fig, ax = plt.subplots(figsize=(8, 6))
-    filled = ax.tricontourf(tri, head, levels=20, cmap="Blues_r", alpha=0.6)
+    filled = ax.tricontourf(tri, head, levels=20, cmap=HEAD_COLOURS, alpha=0.7)
     lines = ax.tricontour(tri, head, levels=12, colors="k", linewidths=0.6)
     ax.clabel(lines, fmt="%.2f", fontsize=7)
-    fig.colorbar(filled, ax=ax, label="head [m]", fraction=0.046, pad=0.04)
+    fig.colorbar(filled, ax=ax, label="head [m]", shrink=0.8, pad=0.02)
     (cx, cy), (qx, qy) = top_flux
     step = max(1, cx.size // 250)
     speed = np.hypot(qx, qy)
@@ -185,23 +184,22 @@ def plot_heads(path: Path, points: FloatArray, top_triangles: FloatArray, head: 
     ax.quiver(cx[::step], cy[::step], (qx * scale)[::step], (qy * scale)[::step],
               color="tab:blue", alpha=0.7, width=0.002, label="flow direction")
     for i, p in enumerate(pathlines):
-        ax.plot(p[0], p[1], color="tab:red", linewidth=0.8,
-                label="pathlines" if i == 0 else None)
+        ax.plot(p[0], p[1], **FORWARD_STYLE, label="pathlines" if i == 0 else None)
+    for i, p in enumerate(backward_pathlines):
+        ax.plot(p[0], p[1], **BACKWARD_STYLE,
+                label="backward from extraction wells" if i == 0 else None)
     if corridor is not None:
         _draw_corridor(ax, corridor, points)
-    for label, (x, y) in markers.items():
+    for x, y in markers.values():
         ax.plot(x, y, "k^", markersize=5)
-        ax.annotate(label, (x, y), textcoords="offset points", xytext=(4, 4), fontsize=7)
     ax.set_aspect("equal")
     ax.set_xlabel("x [m]")
     ax.set_ylabel("y [m]")
     ax.set_title(title, fontsize=10)
-    ax.legend(fontsize=7, loc="lower right")
-    fig.text(0.01, 0.005, "Screening estimate: depends on the inputs.", fontsize=7)
-    fig.tight_layout()
-    write_atomic(path, lambda p: fig.savefig(p, dpi=120, format="png"))
-    plt.close(fig)
-    return path
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(0.0, -0.13), ncol=3, frameon=False)
+    fig.tight_layout(rect=(0, 0.03, 1, 1))
+    place_labels(ax, [(label, x, y) for label, (x, y) in markers.items()])
+    return save_figure(fig, path, dpi=120)
 
 
 def _draw_corridor(ax: Any, corridor: Corridor, points: FloatArray) -> None:
@@ -239,12 +237,13 @@ def plot_refinement_breakthrough(path: Path, levels: list[tuple[str, FloatArray,
                              sharex=True)
     tscale, scale = from_si(1.0, time_unit), from_si(1.0, conc_unit)
     for ax, (j, sp) in zip(axes[:, 0], panels, strict=True):
-        peak = 0.0
+        peak, lowest = 0.0, 0.0
         for k, (label, times, history) in enumerate(levels):
             values = history[sp][:, j] * scale
             peak = max(peak, float(values.max()) if values.size else 0.0)
+            lowest = min(lowest, float(values.min()) if values.size else 0.0)
             ax.plot(times * tscale, values, label=label, linewidth=1.0 + 0.5 * k)
-        _limit_line(ax, limits[sp] * scale, peak, conc_unit)
+        _limit_line(ax, limits[sp] * scale, peak, conc_unit, lowest=lowest)
         ax.set_ylabel(f"{names[j]} {sp}\n[{conc_unit}]", fontsize=8)
     axes[-1, 0].set_xlabel(f"time [{time_unit}]")
     fig.suptitle(title, fontsize=10)
@@ -252,13 +251,25 @@ def plot_refinement_breakthrough(path: Path, levels: list[tuple[str, FloatArray,
     return path
 
 
-def _limit_line(ax: Any, lim: float, peak: float, conc_unit: str) -> None:
-    """The limit as a dashed line; a log axis when the limit is far below the peak."""
+def _limit_line(ax: Any, lim: float, peak: float, conc_unit: str, *,
+                lowest: float = 0.0) -> None:
+    """The limit as a dashed line; a symmetric log axis (linear within lim/10 of zero, so
+    zero and negative values, down to ``lowest``, are drawn, not cut off) when the limit is
+    far below the peak."""
     ax.axhline(lim, color="k", linestyle="--", linewidth=1.0,
                label=f"limit {lim:.3g} {conc_unit}")
     if peak > 50.0 * lim:  # a limit far below the peak is invisible on a linear axis
-        ax.set_yscale("log")
-        ax.set_ylim(lim / 100.0, peak * 2.0)
+        linear = lim / 10.0
+        ax.set_yscale("symlog", linthresh=linear, linscale=0.6)
+        ticks = list(10.0 ** np.arange(np.ceil(np.log10(linear)),
+                                       np.ceil(np.log10(2.0 * peak)) + 1))
+        ticks = [0.0, *ticks[::max(1, len(ticks) // 7)]]
+        if 1.5 * lowest <= -linear:
+            ticks = [-linear, *ticks]
+        ax.set_yticks(ticks, labels=[f"{v:.3g}" for v in ticks])
+        ax.set_ylim(min(1.5 * lowest, -0.5 * linear), 2.0 * peak)
+        ax.axhspan(-linear, linear, color="0.95", zorder=0,
+                   label=f"linear scale within ±{linear:.3g} {conc_unit}")
     ax.grid(visible=True, alpha=0.3)
     ax.legend(fontsize=7, loc="upper right")
 
