@@ -1,0 +1,73 @@
+"""One 3D picture: the surface where a concentration equals its limit, inside the site's
+outline, rendered off-screen by pyvista (VTK). No display or GPU is needed: VTK falls back
+to an off-screen EGL context, which Mesa's software rasteriser serves (docs/outputs.md)."""
+
+from __future__ import annotations
+
+import logging
+from pathlib import Path
+
+import numpy as np
+
+from fe3d._typing import FloatArray, IndexArray
+from fe3d.post.files import write_atomic
+from fe3d.post.maps import SiteFeatures
+
+__all__ = ["render_limit_surface"]
+
+logger = logging.getLogger(__name__)
+
+
+def render_limit_surface(path: Path, points: FloatArray, cells: IndexArray,
+                         values: FloatArray, limit: float, *, features: SiteFeatures,
+                         label: str, vertical_scale: float = 5.0,
+                         window: tuple[int, int] = (1200, 800)) -> Path | None:
+    """Render the surface ``values`` = ``limit`` (both [kg/m³]; any consistent unit) with
+    the site outline at the ground and the model's bounding box, the elevation stretched by
+    ``vertical_scale``; ``label`` names the species, time and limit in the picture.
+
+    Returns the PNG's path, or None (with the reason logged) when nothing exceeds the
+    limit or no off-screen rendering context can be made on this machine.
+    """
+    import pyvista as pv
+
+    if not float(values.max()) > limit:
+        logger.info("no 3D view: nothing above the limit (%s)", label)
+        return None
+    grid = pv.UnstructuredGrid({pv.CellType.TETRA: np.ascontiguousarray(cells.T)},
+                               np.ascontiguousarray(points.T))
+    grid.point_data["c"] = values
+    surface = grid.contour([limit], scalars="c")
+    stretch = (1.0, 1.0, vertical_scale)
+    top = float(points[2].max())
+    ring = np.vstack([features.outline.xy, np.full(features.outline.xy.shape[1], top)]).T
+    outline = pv.lines_from_points(np.vstack([ring, ring[:1]]))
+    try:
+        with pv.vtk_verbosity("off"):  # VTK's note that it found no X display, then uses EGL
+            plotter = pv.Plotter(off_screen=True, window_size=list(window))
+            plotter.add_mesh(grid.outline(), color="gray", line_width=1)
+            plotter.add_mesh(outline, color="black", line_width=3)
+            plotter.add_mesh(surface, color="firebrick", smooth_shading=True, opacity=0.85)
+            for m in features.marks:
+                if m.kind in ("extraction", "injection"):
+                    well = pv.Line((m.x, m.y, top), (m.x, m.y, float(points[2].min())))
+                    plotter.add_mesh(well, color="navy", line_width=4)
+            plotter.set_scale(*stretch)
+            plotter.add_text(f"{features.site}\n{label}\nvertical scale ×{vertical_scale:g}",
+                             font_size=10, position="upper_left")
+            plotter.add_text("Screening estimate: depends on the inputs; defer to local "
+                             "regulations and licensed professional practice.",
+                             font_size=7, position="lower_left")
+            plotter.show_axes()
+            plotter.view_vector((-0.35, -1.0, 0.7), viewup=(0.0, 0.0, 1.0))  # from the SSW
+            plotter.reset_camera()
+            plotter.camera.zoom(1.3)
+            image = plotter.screenshot(return_img=True)
+        plotter.close()
+    except (RuntimeError, OSError) as err:  # no usable OpenGL context here
+        logger.warning("no 3D view: off-screen rendering failed (%s)", err)
+        return None
+    from PIL import Image
+
+    write_atomic(path, lambda p: Image.fromarray(image).save(p, format="PNG"))
+    return path
