@@ -29,7 +29,6 @@ from typing import Any
 
 import numpy as np
 
-from fe3d._typing import FloatArray
 from fe3d.case.schema import Case
 from fe3d.errors import CaseError, Fe3dError
 from fe3d.pipeline import run_case
@@ -37,6 +36,7 @@ from fe3d.post.figures import plot_refinement_breakthrough
 from fe3d.post.files import write_text_atomic
 from fe3d.post.probes import breakthrough
 from fe3d.post.report import CAUTION, RunSummary
+from fe3d.studies.run_folder import read_histories
 from fe3d.units import from_si
 
 __all__ = [
@@ -305,26 +305,12 @@ _MEASURES = (("peak", "concentration"), ("peak time", "time"),
              ("first above limit", "time"), ("last above limit", "time"))
 
 
-def _read_histories(folder: Path, case: Case) -> tuple[FloatArray, dict[str, FloatArray]]:
-    """Times [s] and concentrations [kg/m³] ``(n_times, n_points)`` per species from a run's
-    ``histories.csv`` (written in display units by fe3d.post.tables.write_histories)."""
-    tu, cu = case.output.time_unit, case.output.concentration_unit
-    with (folder / "histories.csv").open(newline="") as fh:
-        rows = list(csv.reader(fh))
-    header, data = rows[0], np.array(rows[1:], dtype=float).reshape(-1, len(rows[0]))
-    times = data[:, header.index(f"time [{tu}]")] / from_si(1.0, tu)
-    names = [o.name for o in case.observation_points]
-    history = {sp: np.stack([data[:, header.index(f"{o} {sp} [{cu}]")] for o in names],
-                            axis=1) / from_si(1.0, cu) for sp in case.species}
-    return times, history
-
-
 def _level_values(case: Case, level: LevelResult) -> dict[Quantity, float | None]:
     """Every reported quantity of one level, SI (None when its limit is never reached)."""
     s = level.summary
     assert s is not None
     out: dict[Quantity, float | None] = {}
-    times, history = _read_histories(level.folder, case)
+    times, history = read_histories(level.folder, case)
     names = [o.name for o in case.observation_points]
     for o in s.observations:
         b = breakthrough(times, history[o.species][:, names.index(o.name)], o.limit)
@@ -544,7 +530,7 @@ def _write_figure(case: Case, study: RefinementStudy, out_dir: Path) -> None:
         return
     curves = []
     for lv in ran:
-        times, history = _read_histories(lv.folder, case)
+        times, history = read_histories(lv.folder, case)
         curves.append((f"level {lv.index} (÷{lv.factor:.3g})", times, history))
     plot_refinement_breakthrough(
         out_dir / "refinement_breakthrough.png", curves, names,

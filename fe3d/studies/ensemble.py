@@ -1,0 +1,345 @@
+"""Uncertainty ensembles: the case run once per member of a sample of its uncertain values.
+
+The members are drawn by :func:`fe3d.studies.sampling.draw_sample` from the case's
+``[uncertain]`` section (fe3d/case/uncertain.py) and run by :func:`fe3d.pipeline.run_case`
+on the study's executor (:mod:`fe3d.studies.executors`: a local dask cluster or any cluster
+by address). A member whose values leave every mesh input unchanged runs on one mesh built
+once for the nominal case (with its plume corridor, which follows the nominal flow) and
+handed to every worker once; a member that changes a mesh input (geometry, cell sizes,
+source or well positions) meshes on its own, with its own corridor.
+
+Each member keeps only compact results: its receptor histories, the plume's largest extent,
+its node count and run time, in ``members/member_<k>.npz`` beside the study's
+``ensemble.json`` (seed, case fingerprint, size) and ``ensemble_draws.csv`` (every member's
+drawn values). Its run folder is written in a temporary folder on the worker and removed,
+unless the study keeps them (``runs/member_<k>/``). An interrupted study started again with
+the same case, seed and size runs only the members without a results file; a different
+case, seed or size is refused. A member that fails is recorded with its drawn values and
+the others go on.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import shutil
+import tempfile
+import time
+from collections.abc import Callable
+from concurrent.futures import Future, as_completed
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from fe3d import __version__
+from fe3d._typing import FloatArray
+from fe3d.case.schema import Case, cross_checks
+from fe3d.case.uncertain import UncertainInputs, parse_target, with_field
+from fe3d.errors import CaseError, CaseErrors, Fe3dError
+from fe3d.mesh.io import mesh_inputs_hash
+from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.pipeline import mesh_case, run_case
+from fe3d.post.files import write_atomic, write_text_atomic
+from fe3d.studies.executors import SerialExecutor, StudyExecutor
+from fe3d.studies.run_folder import read_histories
+from fe3d.studies.sampling import Sample, draw_sample
+
+__all__ = [
+    "Ensemble",
+    "MemberFailure",
+    "MemberResult",
+    "case_fingerprint",
+    "member_case",
+    "run_ensemble",
+]
+
+logger = logging.getLogger(__name__)
+
+MANIFEST = "ensemble.json"
+DRAWS = "ensemble_draws.csv"
+
+
+@dataclass(frozen=True)
+class MemberResult:
+    """What one finished member keeps (SI units).
+
+    ``times`` [s] shape ``(n_times,)``; ``history`` species → concentration [kg/m³] at the
+    observation points, shape ``(n_times, n_points)``; ``largest_extent`` species → the
+    largest distance [m] the part above the limit reached from its source; ``wall_time``
+    [s] is the member's whole time on its worker (run, reading back, removing its folder);
+    ``own_mesh`` says whether it meshed on
+    its own (a mesh input was uncertain) or ran on the shared mesh.
+    """
+
+    index: int
+    times: FloatArray
+    history: dict[str, FloatArray]
+    largest_extent: dict[str, float]
+    n_nodes: int
+    wall_time: float
+    own_mesh: bool
+
+
+@dataclass(frozen=True)
+class MemberFailure:
+    """A member that did not finish: its index and the one-line reason."""
+
+    index: int
+    error: str
+
+
+@dataclass(frozen=True)
+class Ensemble:
+    """A finished (or partly failed) ensemble.
+
+    ``results`` are the finished members by index, ``failures`` those that did not finish;
+    ``reused`` members were read from an earlier, interrupted start of the same study;
+    ``driver_time`` [s] is the time the driver spent on its own work (sampling, member
+    cases, submitting, writing member files, progress), outside the members' runs and the
+    shared mesh.
+    """
+
+    case: Case
+    sample: Sample
+    results: tuple[MemberResult, ...]
+    failures: tuple[MemberFailure, ...]
+    reused: int
+    folder: Path
+    where: str
+    driver_time: float
+    wall_time: float
+
+    @property
+    def n_members(self) -> int:
+        """Members of the sample."""
+        return int(self.sample.values.shape[0])
+
+
+# ----------------------------------------------------------------------------- members
+
+
+def member_case(nominal: Case, inputs: UncertainInputs, values: FloatArray) -> Case:
+    """The nominal case with the drawn ``values`` (one per uncertain value, in its unit)
+    set and every rule checked.
+
+    Raises
+    ------
+    CaseErrors
+        When a drawn value is refused by its field or by a rule between sections.
+    """
+    case = nominal
+    try:
+        for value, x in zip(inputs.values, values, strict=True):
+            target = parse_target(value.name)
+            assert target is not None  # checked when the case was loaded
+            case = with_field(case, target, float(x), value.unit,
+                              key=f"uncertain.values[{value.name}]")
+    except CaseError as exc:
+        raise CaseErrors([exc]) from None
+    problems = cross_checks(case)
+    if problems:
+        raise CaseErrors(problems)
+    return case
+
+
+def _run_member(index: int, case: Case, site: SiteMesh | None, base_dir: Path | None,
+                keep: Path | None) -> MemberResult | MemberFailure:
+    """Worker: run one member in a temporary folder (or ``keep``) and return its compact
+    results; an :class:`Fe3dError` comes back as a failure with its one-line message."""
+    started = time.perf_counter()
+    folder = keep if keep is not None else Path(tempfile.mkdtemp(prefix="fe3d-member-"))
+    try:
+        summary = run_case(case, folder, base_dir=base_dir, mesh_folders=[], site=site)
+        times, history = read_histories(folder, case)
+    except Fe3dError as exc:
+        return MemberFailure(index, f"{type(exc).__name__}: " + "; ".join(
+            str(exc).splitlines()))
+    finally:
+        if keep is None:
+            shutil.rmtree(folder, ignore_errors=True)
+    return MemberResult(index, times, history,
+                        {sp: float(p["largest_extent"]) for sp, p in summary.plume.items()},
+                        summary.n_nodes, time.perf_counter() - started, site is None)
+
+
+def _member_file(folder: Path, index: int) -> Path:
+    return folder / "members" / f"member_{index:04d}.npz"
+
+
+def _save_member(folder: Path, result: MemberResult) -> None:
+    arrays: dict[str, Any] = {"times": result.times, "n_nodes": result.n_nodes,
+                              "wall_time": result.wall_time, "own_mesh": result.own_mesh}
+    arrays |= {f"history/{sp}": h for sp, h in result.history.items()}
+    arrays |= {f"largest_extent/{sp}": e for sp, e in result.largest_extent.items()}
+
+    def write(path: Path) -> None:
+        with path.open("wb") as fh:
+            np.savez(fh, **arrays)
+
+    write_atomic(_member_file(folder, result.index), write)
+
+
+def _load_member(folder: Path, index: int) -> MemberResult | None:
+    path = _member_file(folder, index)
+    if not path.exists():
+        return None
+    with np.load(path) as data:
+        keys = list(data.keys())
+        return MemberResult(
+            index, data["times"],
+            {k.split("/", 1)[1]: data[k] for k in keys if k.startswith("history/")},
+            {k.split("/", 1)[1]: float(data[k]) for k in keys
+             if k.startswith("largest_extent/")},
+            int(data["n_nodes"]), float(data["wall_time"]), bool(data["own_mesh"]))
+
+
+# ----------------------------------------------------------------------------- study folder
+
+
+def case_fingerprint(case: Case) -> str:
+    """SHA-256 of every case input (the ``[uncertain]`` section included) except the output
+    folder: two starts of a study may only share members when this is equal."""
+    data = case.model_dump(mode="json", exclude={"output": {"folder"}})
+    text = json.dumps(data, sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def _manifest(case: Case, sample: Sample) -> dict[str, Any]:
+    return {"case_fingerprint": case_fingerprint(case), "seed": sample.seed,
+            "members": int(sample.values.shape[0]),
+            "values": [{"name": n, "unit": u} for n, u in zip(sample.names, sample.units,
+                                                             strict=True)],
+            "fe3d": __version__}
+
+
+def _claim_folder(folder: Path, manifest: dict[str, Any]) -> None:
+    """Write the manifest, or check that the folder's matches (resume); raise CaseError."""
+    path = folder / MANIFEST
+    if path.exists():
+        try:
+            old = json.loads(path.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            old = {}
+        differs = [k for k in ("case_fingerprint", "seed", "members", "values")
+                   if old.get(k) != manifest[k]]
+        if differs:
+            words = {"case_fingerprint": "case", "seed": "seed", "members": "member count",
+                     "values": "uncertain values"}
+            err = CaseError("--out", str(folder), "holds an ensemble with another "
+                            f"{', '.join(words[k] for k in differs)}; its members cannot be "
+                            "reused: give another folder or remove this one")
+            raise err
+        return
+    write_text_atomic(path, json.dumps(manifest, indent=2) + "\n")
+
+
+def _write_draws(folder: Path, sample: Sample) -> None:
+    header = ["member", *[f"{n} [{u or '-'}]" for n, u in zip(sample.names, sample.units,
+                                                               strict=True)]]
+    lines = [",".join(f'"{h}"' if "," in h else h for h in header)]
+    lines += [",".join([str(k), *[f"{x:.10g}" for x in row]])
+              for k, row in enumerate(sample.values)]
+    write_text_atomic(folder / DRAWS, "\n".join(lines) + "\n")
+
+
+# ----------------------------------------------------------------------------- driver
+
+
+OnMember = Callable[[int, int, MemberResult | MemberFailure], None]
+
+
+def run_ensemble(case: Case, out_dir: Path, *, n_members: int, executor: StudyExecutor,
+                 base_dir: Path | None = None, keep_runs: bool = False,
+                 on_member: OnMember | None = None) -> Ensemble:
+    """Run the members of the case's uncertain values that have no results yet.
+
+    Parameters
+    ----------
+    case
+        A case with an ``[uncertain]`` section.
+    out_dir
+        Study folder (``ensemble.json``, ``ensemble_draws.csv``, ``members/``, ``mesh/``).
+    n_members
+        Size of the Latin hypercube sample.
+    executor
+        Where the members run (:func:`fe3d.studies.executors.study_executor`).
+    base_dir
+        Folder that relative file names in the case are resolved from.
+    keep_runs
+        Keep every member's full run folder in ``out_dir/runs/member_<k>`` (VTK series
+        included); the workers must then see ``out_dir``.
+    on_member
+        ``on_member(done, total, outcome)`` in the calling process as each member ends
+        (``done`` counts the members reused from an earlier start too).
+
+    Raises
+    ------
+    CaseError
+        The case has no ``[uncertain]`` section, or the folder holds another study.
+    """
+    started = time.perf_counter()
+    inputs = case.uncertain
+    if inputs is None:
+        err = CaseError("uncertain", "(missing)", "an ensemble needs an [uncertain] section "
+                        "naming the uncertain values and their distributions")
+        raise err
+    sample = draw_sample(inputs, n_members)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    _claim_folder(out_dir, _manifest(case, sample))
+    _write_draws(out_dir, sample)
+    nominal = case.model_copy(update={"uncertain": None})
+    finished = {k: r for k in range(n_members) if (r := _load_member(out_dir, k)) is not None}
+    failures: dict[int, MemberFailure] = {}
+    cases: dict[int, Case] = {}
+    for k in range(n_members):
+        if k in finished:
+            continue
+        try:
+            cases[k] = member_case(nominal, inputs, sample.values[k])
+        except CaseErrors as exc:
+            failures[k] = MemberFailure(k, "; ".join(e.line() for e in exc.errors))
+    done = len(finished)
+    for outcome in [*finished.values(), *failures.values()]:
+        if on_member is not None:
+            on_member(done, n_members, outcome)
+    nominal_hash = mesh_inputs_hash(nominal)
+    shared = [k for k, c in cases.items() if mesh_inputs_hash(c) == nominal_hash]
+    driver = time.perf_counter() - started
+    site_handle = None
+    if shared:
+        site, _reused, _files = mesh_case(nominal, out_dir / "mesh", base_dir=base_dir)
+        site_handle = executor.share(site)
+    tick = time.perf_counter()
+    futures: dict[Future[Any], int] = {
+        executor.executor.submit(
+            _run_member, k, c, site_handle if k in shared else None, base_dir,
+            out_dir / "runs" / f"member_{k:04d}" if keep_runs else None): k
+        for k, c in cases.items()}
+    driver += time.perf_counter() - tick
+    if isinstance(executor.executor, SerialExecutor):  # the members ran inside submit
+        driver -= sum(fut.result().wall_time for fut in futures
+                      if isinstance(fut.result(), MemberResult))
+    done += len(failures)
+    for fut in as_completed(futures):
+        tick = time.perf_counter()
+        k = futures[fut]
+        try:
+            outcome = fut.result()
+        except Exception as exc:  # a worker lost or a bug: the other members go on
+            outcome = MemberFailure(k, f"{type(exc).__name__}: {exc}")
+        if isinstance(outcome, MemberResult):
+            _save_member(out_dir, outcome)
+            finished[k] = outcome
+        else:
+            failures[k] = outcome
+        done += 1
+        driver += time.perf_counter() - tick
+        if on_member is not None:
+            on_member(done, n_members, outcome)
+    return Ensemble(nominal, sample, tuple(finished[k] for k in sorted(finished)),
+                    tuple(failures[k] for k in sorted(failures)),
+                    len(finished) - len([k for k in cases if k in finished]), out_dir,
+                    executor.where, driver, time.perf_counter() - started)

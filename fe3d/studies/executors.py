@@ -1,0 +1,121 @@
+"""Where the runs of a study go: one executor for refinement levels and ensemble members.
+
+Studies submit independent runs to a :class:`concurrent.futures.Executor`. By default that is
+a dask.distributed ``LocalCluster`` sized to this machine (one single-threaded worker
+process per core, at most one per run); given a scheduler address it is that cluster,
+whatever its size. With one worker and no address the runs go one after the other in the
+calling process (:class:`SerialExecutor`, no pickling). This module is the only user of
+dask in fe3d.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+from collections.abc import Callable, Iterator
+from concurrent.futures import Executor, Future
+from contextlib import contextmanager
+from dataclasses import dataclass
+from typing import Any
+
+from fe3d.errors import CaseError
+
+__all__ = ["SerialExecutor", "StudyExecutor", "machine_workers", "study_executor"]
+
+logger = logging.getLogger(__name__)
+
+CONNECT_TIMEOUT = 20.0
+"""Seconds to wait for a scheduler given by address before giving up (common practice, no
+source: long enough for a scheduler on a busy network, short enough to fail visibly)."""
+
+
+class SerialExecutor(Executor):
+    """Runs each submitted call at once in the calling process (one worker, no pickling)."""
+
+    def submit(self, fn: Callable[..., Any], /, *args: Any, **kwargs: Any) -> Future[Any]:
+        """Call ``fn(*args, **kwargs)`` now; the future holds its result or exception."""
+        future: Future[Any] = Future()
+        try:
+            future.set_result(fn(*args, **kwargs))
+        except BaseException as exc:  # handed to the caller through the future
+            future.set_exception(exc)
+        return future
+
+
+def _same(obj: Any) -> Any:
+    return obj
+
+
+@dataclass(frozen=True)
+class StudyExecutor:
+    """An executor and what a study needs to know of it.
+
+    ``share(obj)`` hands a large object (a mesh) to every worker once and returns what to
+    pass to ``executor.submit`` in its place; ``workers`` is the number of runs that can go
+    at once; ``where`` says in words where the runs go.
+    """
+
+    executor: Executor
+    workers: int
+    where: str
+    share: Callable[[Any], Any] = _same
+
+
+def machine_workers(n_runs: int) -> int:
+    """Workers of the default local cluster: one per core, at most one per run."""
+    return max(1, min(os.cpu_count() or 1, n_runs))
+
+
+@contextmanager
+def study_executor(*, n_runs: int, scheduler: str | None = None,
+                   workers: int | None = None) -> Iterator[StudyExecutor]:
+    """Open the executor of a study, and close what was opened for it afterwards.
+
+    Parameters
+    ----------
+    n_runs
+        Runs the study will submit (the local cluster has no more workers than that).
+    scheduler
+        Address of a running dask.distributed scheduler (``tcp://host:8786``); its workers
+        take the runs. ``None``: a local cluster on this machine.
+    workers
+        Worker processes of the local cluster (default: :func:`machine_workers`); 1 runs
+        everything in this process.
+
+    Raises
+    ------
+    CaseError
+        Naming ``--scheduler`` when no scheduler answers at the address.
+    """
+    if scheduler is None and (workers or machine_workers(n_runs)) == 1:
+        yield StudyExecutor(SerialExecutor(), 1, "this process, one run at a time")
+        return
+    from distributed import Client, LocalCluster
+
+    cluster = None
+    if scheduler is None:
+        n = workers or machine_workers(n_runs)
+        # one thread per worker: fe3d's solvers hold one BLAS thread each (fe3d._threads)
+        cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                               dashboard_address=None, silence_logs=logging.ERROR)
+        client = Client(cluster)
+        where = f"local cluster, {n} worker processes × 1 thread"
+    else:
+        try:
+            client = Client(scheduler, timeout=CONNECT_TIMEOUT)
+        except (OSError, TimeoutError, ValueError) as exc:
+            err = CaseError("--scheduler", scheduler, f"no dask scheduler answers there "
+                            f"({type(exc).__name__}: {exc})")
+            raise err from None
+        n = max(1, sum(w.get("nthreads", 1) for w in
+                       client.scheduler_info()["workers"].values()))
+        where = f"cluster at {scheduler}, {n} worker threads"
+    executor = client.get_executor(pure=False)
+    try:
+        yield StudyExecutor(executor, n, where,
+                            lambda obj: client.scatter(obj, broadcast=True, hash=False))
+    finally:
+        executor.shutdown(wait=False)
+        client.close()
+        if cluster is not None:
+            cluster.close()
