@@ -9,6 +9,7 @@ recomputes physics: it reads the records of the earlier stages.
 
 from __future__ import annotations
 
+import itertools
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -16,11 +17,12 @@ from pathlib import Path
 import numpy as np
 
 from fe3d._typing import FloatArray
+from fe3d.case.parts import Ground
 from fe3d.case.schema import Case
 from fe3d.flow.paths import TravelPaths
 from fe3d.flow.solve import FlowField
+from fe3d.mesh.materials import cell_values, unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
-from fe3d.p1 import BoundaryFacets
 from fe3d.post.figures import plot_breakthrough, plot_heads
 from fe3d.post.limit_checks import (
     BoundaryContact,
@@ -31,21 +33,40 @@ from fe3d.post.limit_checks import (
     upper_bound,
     widen_window,
 )
-from fe3d.post.plume import plume_extent, write_isosurface
+from fe3d.post.plume import (
+    MeasuringFrame,
+    PlumeMeasures,
+    SorbedPhase,
+    measure_plume,
+    measuring_frames,
+    write_isosurface,
+)
 from fe3d.post.probes import breakthrough
+from fe3d.post.receptors import (
+    Receptor,
+    ReceptorResult,
+    ReceptorRow,
+    receptor_result,
+    receptors_of,
+)
 from fe3d.post.report import ObservationResult, RunSummary, write_report, write_summary_json
+from fe3d.post.run_fields import RunWideField
 from fe3d.post.tables import (
     write_flow_budget,
     write_histories,
     write_mass_budget,
     write_plume_table,
+    write_receptor_table,
 )
 from fe3d.post.vtk import write_field, write_pathlines, write_pvd
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.run import Snapshot
 from fe3d.units import from_si, to_seconds
 
-__all__ = ["PlumeRow", "SeriesWriter", "method_words", "write_flow_outputs"]
+__all__ = ["RUN_FIELDS", "PlumeRow", "SeriesWriter", "method_words", "write_flow_outputs"]
+
+#: The file of the fields over the whole run (theory.md P4).
+RUN_FIELDS = "over_the_run.vtu"
 
 
 def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField,
@@ -88,29 +109,35 @@ class PlumeRow:
     species: str
     time: float
     limit: float
-    volume: float
-    dissolved_mass: float
-    extent: float
+    measures: PlumeMeasures
 
 
 class SeriesWriter:
     """Writes a run's transport outputs as the snapshots arrive, then the summary.
 
-    ``porosity`` is per cell; the nodal volumes and pore volumes of the plume measures are
-    lumped from it once here."""
+    ``porosity`` is per cell. The plume measures and the receptors need the flow (the mean
+    flow direction, the water leaving each item): pass ``flow`` to measure each snapshot as
+    it arrives; without it the snapshots are kept and measured in :meth:`finish`."""
 
-    def __init__(self, out_dir: Path, case: Case, site: SiteMesh, porosity: FloatArray) -> None:
+    def __init__(self, out_dir: Path, case: Case, site: SiteMesh, porosity: FloatArray, *,
+                 flow: FlowField | None = None) -> None:
         self.out_dir, self.case, self.site = out_dir, case, site
-        self.node_volume = site.lumped(np.ones(site.n_cells))
-        self.node_pore_volume = site.lumped(porosity)
-        self.origins = {sp: next((s.plan_centre for s in case.sources
-                                  if s.species == sp and s.plan_centre is not None),
-                                 (float(site.points[0].mean()), float(site.points[1].mean())))
-                        for sp in case.species}
+        self.porosity = porosity
+        materials, names = unit_materials(Ground.of(case), site)
+        bulk_density = cell_values(materials, site, "bulk_density")
+        self.sorbed = {sp: SorbedPhase(bulk_density, site.cell_layer,
+                                       tuple(s.isotherm_of(m) for m in names))
+                       for sp, s in case.species.items()}
+        self.frames: dict[str, MeasuringFrame] = {}
+        self.receptors: tuple[Receptor, ...] = ()
+        self._flow_known = False
+        self._waiting: list[Snapshot] = []
         self.plume_rows: list[PlumeRow] = []
+        self.receptor_rows: list[ReceptorRow] = []
         self.series: list[tuple[float, str]] = []
         self.budgets: list[MassBudget] = []
         self.last: Snapshot | None = None
+        self.over_run = {sp: RunWideField.start(site.n_nodes) for sp in case.species}
         # limit checks: first output time above the limit at each boundary node, and the
         # output times between which each species' lowest and highest values were reached
         self.boundary_nodes = np.unique(np.concatenate(
@@ -118,6 +145,14 @@ class SeriesWriter:
         self.first_above = {sp: np.full(self.boundary_nodes.size, np.nan)
                             for sp in case.species}
         self.extreme_windows: dict[tuple[str, str], tuple[float, float] | None] = {}
+        if flow is not None:
+            self._know_flow(flow)
+
+    def _know_flow(self, flow: FlowField) -> None:
+        """The measuring frame of each species and the receptors, from the flow."""
+        self.frames = measuring_frames(self.case, self.site, flow)
+        self.receptors = receptors_of(self.site, flow)
+        self._flow_known = True
 
     def add(self, snap: Snapshot) -> None:
         """Write one output time: the fields, the plume surfaces and the running tables."""
@@ -132,21 +167,43 @@ class SeriesWriter:
         write_pvd(out / "concentration.pvd", self.series, time_unit=tu)
         for sp, c in snap.concentration.items():
             lim = case.species[sp].limit
-            ext = plume_extent(self.site.points, self.node_volume, self.node_pore_volume, c,
-                               lim, self.origins[sp])
-            self.plume_rows.append(PlumeRow(sp, snap.time, lim, ext.volume, ext.dissolved_mass,
-                                            ext.extent))
             write_isosurface(out / f"plume_{sp}_{k:04d}.vtp", self.site.points,
                              self.site.cells, c * scale, lim * scale, name=f"{sp} [{cu}]")
             self.first_above[sp] = first_times_above(
                 self.first_above[sp], c[self.boundary_nodes], lim, snap.time)
+            self.over_run[sp] = self.over_run[sp].add(
+                c, snap.time, lim, None if self.last is None else
+                (self.last.concentration[sp], self.last.time))
         self._follow_extremes(snap)
-        write_plume_table(out / "plume.csv",
-                          [(r.species, r.time, r.limit, r.volume, r.dissolved_mass, r.extent)
-                           for r in self.plume_rows], time_unit=tu, conc_unit=cu)
         self.budgets += list(snap.budgets.values())
         write_mass_budget(out / "mass_budget.csv", self.budgets, time_unit=tu)
+        if self._flow_known:
+            self._measure(snap)
+        else:
+            self._waiting.append(snap)
         self.last = snap
+
+    def _measure(self, snap: Snapshot) -> None:
+        """The plume measures and the receptors at one output time, and their tables."""
+        case, site = self.case, self.site
+        for sp, c in snap.concentration.items():
+            lim = case.species[sp].limit
+            self.plume_rows.append(PlumeRow(sp, snap.time, lim, measure_plume(
+                site.points, site.cells, site.cell_volumes(), self.porosity, self.sorbed[sp],
+                c, lim, self.frames[sp])))
+            for r in self.receptors:
+                self.receptor_rows.append(ReceptorRow(
+                    receptor=r.name, kind=r.kind, species=sp, time=snap.time,
+                    water_rate=r.water_rate, concentration=r.flux_averaged(c),
+                    mass_flux=r.mass_flux(c),
+                    mass_out=snap.budgets[sp].outflow.get(r.name, float("nan"))))
+        tu, cu = case.output.time_unit, case.output.concentration_unit
+        write_plume_table(self.out_dir / "plume.csv",
+                          [(r.species, r.time, r.limit, r.measures) for r in self.plume_rows],
+                          time_unit=tu, conc_unit=cu)
+        if self.receptors:
+            write_receptor_table(self.out_dir / "receptors.csv", self.receptor_rows,
+                                 time_unit=tu, conc_unit=cu)
 
     def _follow_extremes(self, snap: Snapshot) -> None:
         """Note between which output times each running extreme was last reached."""
@@ -170,7 +227,13 @@ class SeriesWriter:
         ``started`` the run's start (``time.perf_counter``). Returns the summary."""
         last, case, out = self.last, self.case, self.out_dir
         assert last is not None
+        if not self._flow_known:
+            self._know_flow(flow)
+            for snap in self._waiting:
+                self._measure(snap)
+            self._waiting = []
         tu, cu = case.output.time_unit, case.output.concentration_unit
+        self._write_run_fields()
         names = [o.name for o in case.observation_points]
         write_histories(out / "histories.csv", last.history_times, last.history, names,
                         time_unit=tu, conc_unit=cu)
@@ -182,12 +245,36 @@ class SeriesWriter:
             files.append("breakthrough.png")
         files += [f"plume_{sp}_{k:04d}.vtp" for k in range(len(self.series))
                   for sp in case.species]
-        files += ["concentration.pvd", *[f for _, f in self.series], "mass_budget.csv",
-                  "histories.csv", "plume.csv", "summary.json", "report.md", "solver.log"]
+        files += ["concentration.pvd", *[f for _, f in self.series], RUN_FIELDS,
+                  "mass_budget.csv", "histories.csv", "plume.csv",
+                  *(["receptors.csv"] if self.receptors else []), "summary.json", "report.md",
+                  "solver.log"]
         summary = self._summary(last, flow, paths, files, started)
         write_summary_json(out / "summary.json", summary)
         write_report(out / "report.md", summary)
         return summary
+
+    def _write_run_fields(self) -> None:
+        """The largest value, when it was reached and the first time above the limit at
+        every node over the output times, one file (theory.md P4)."""
+        tu, cu = self.case.output.time_unit, self.case.output.concentration_unit
+        scale, per_unit = from_si(1.0, cu), from_si(1.0, tu)
+        data = {}
+        for sp, f in self.over_run.items():
+            data[f"{sp} largest [{cu}]"] = f.largest * scale
+            data[f"{sp} time of largest [{tu}]"] = f.time_of_largest * per_unit
+            data[f"{sp} first above limit [{tu}]"] = f.first_above * per_unit
+        write_field(self.site, self.out_dir / RUN_FIELDS, point_data=data)
+
+    def _receptor_results(self) -> list[ReceptorResult]:
+        """Peak, crossing times, time above the limit and mass out of every receptor and
+        species, from the output times."""
+        out = []
+        for r in self.receptors:
+            for sp, spec in self.case.species.items():
+                rows = [x for x in self.receptor_rows if x.receptor == r.name and x.species == sp]
+                out.append(receptor_result(rows, spec.limit))
+        return out
 
     def _summary(self, last: Snapshot, flow: FlowField, paths: TravelPaths,
                  files: list[str], started: float) -> RunSummary:
@@ -210,12 +297,17 @@ class SeriesWriter:
                               default=0.0) for sp in case.species}
         plume = {}
         for sp in case.species:
-            rows = [r for r in self.plume_rows if r.species == sp]
-            largest = max(rows, key=lambda r: r.extent)
-            plume[sp] = {"largest_extent": largest.extent,
-                         "time_of_largest_extent": largest.time,
-                         "largest_volume": max(r.volume for r in rows),
-                         "final_extent": rows[-1].extent}
+            rows = [r.measures for r in self.plume_rows if r.species == sp]
+            times = [r.time for r in self.plume_rows if r.species == sp]
+            k = max(range(len(rows)), key=lambda i: rows[i].extent)
+            plume[sp] = {"largest_extent": rows[k].extent, "time_of_largest_extent": times[k],
+                         "largest_volume": max(m.volume for m in rows),
+                         "final_extent": rows[-1].extent,
+                         "largest_downstream": max(m.downstream for m in rows),
+                         "largest_mass": max(m.dissolved_mass + m.sorbed_mass for m in rows),
+                         "final_volume": rows[-1].volume,
+                         "final_dissolved_mass": rows[-1].dissolved_mass,
+                         "final_sorbed_mass": rows[-1].sorbed_mass}
         return RunSummary(
             title=case.title, site=case.site, n_nodes=site.n_nodes, n_cells=site.n_cells,
             end_time=case.time.end, n_steps=d.n_steps, observations=observations,
@@ -242,23 +334,25 @@ class SeriesWriter:
                     has_mass_loading=any(src.species == sp and src.kind == "mass_loading"
                                          for src in case.sources)))
                 for sp in case.species},
-            boundary_contacts=self._boundary_contacts(flow),
+            boundary_contacts=self._boundary_contacts(),
             solver_tolerance=case.solver.tolerance,
             well_heads=dict(flow.well_heads),
             wall_time=time.perf_counter() - started, time_unit=case.output.time_unit,
-            concentration_unit=case.output.concentration_unit, files=files)
+            concentration_unit=case.output.concentration_unit, files=files,
+            receptors=self._receptor_results(), output_step=self._output_step())
 
-    def _boundary_contacts(self, flow: FlowField) -> list[BoundaryContact]:
+    def _output_step(self) -> float:
+        """The longest interval between output times [s] (receptor and run-wide values are
+        taken at output times)."""
+        times = sorted({r.time for r in self.plume_rows})
+        return max((b - a for a, b in itertools.pairwise(times)), default=0.0)
+
+    def _boundary_contacts(self) -> list[BoundaryContact]:
         """Faces where the part above a limit touched nodes that let no water out: not
         on a fixed-head face where water leaves (outward flux at an adjacent facet, as the
         transport's outflow term, theory.md T3b) nor at a budget item taking water out."""
         site, n = self.site, self.site.n_nodes
-        face_outflow = {}
-        for name in flow.fixed_head_nodes:
-            facets = BoundaryFacets.of(site.points, site.cells, site.faces[name])
-            face_outflow[name] = facets.load(
-                np.clip(facets.normal_flux(flow.darcy_flux), 0.0, None), n)
-        leaves = outflow_nodes(n, face_outflow, flow.exchange)
+        leaves = outflow_nodes(n, {r.name: r.water_out for r in self.receptors}, {})
         contacts = []
         for sp, first in self.first_above.items():
             everywhere = np.full(n, np.nan)

@@ -10,6 +10,7 @@ from pathlib import Path
 
 from fe3d.post.files import write_text_atomic
 from fe3d.post.limit_checks import BoundaryContact, SpeciesExtremes
+from fe3d.post.receptors import ReceptorResult
 from fe3d.units import from_si
 
 __all__ = [
@@ -83,6 +84,8 @@ class RunSummary:
     extremes: dict[str, SpeciesExtremes] = field(default_factory=dict)
     boundary_contacts: list[BoundaryContact] = field(default_factory=list)
     solver_tolerance: float = 0.0  # relative tolerance of the linear solver [-]
+    receptors: list[ReceptorResult] = field(default_factory=list)  # wells, outflow items
+    output_step: float = 0.0  # longest interval between output times [s]
 
 
 def quality_warnings(s: RunSummary) -> list[str]:
@@ -249,6 +252,32 @@ def _limit_section(s: RunSummary) -> list[str]:
     return lines
 
 
+def _receptor_section(s: RunSummary) -> list[str]:
+    """The table of extraction wells and boundaries where water leaves (theory.md P3)."""
+    if not s.receptors:
+        return []
+    tu, cu = s.time_unit, s.concentration_unit
+    sc = from_si(1.0, cu)
+    lines = ["## What leaves the model: extraction wells and outflow boundaries", "",
+             f"| receptor | kind | species | water out [m³/d] | peak [{cu}] | peak time | "
+             "first above limit | last above limit | time above limit | mass out [kg] |",
+             "|---|---|---|---|---|---|---|---|---|---|"]
+    for r in s.receptors:
+        last = ("still above at the end" if r.last_above_limit is not None
+                and r.last_above_limit >= s.end_time else _t(r.last_above_limit, tu))
+        lines.append(f"| {r.name} | {r.kind} | {r.species} | {r.water_rate * 86400:.4g} | "
+                     f"{r.peak * sc:.4g} | {_t(r.peak_time, tu)} | "
+                     f"{_t(r.first_above_limit, tu)} | {last} | "
+                     f"{from_si(r.time_above_limit, tu):.3g} {tu} | {r.mass_out:.4g} |")
+    lines += ["", "The concentration is that of the water leaving, weighted by the flow at each "
+              "node (for a well, what it pumps; for a face or stream, the flux-averaged "
+              f"value). It is taken at the output times (every {_t(s.output_step, tu)} at "
+              "most): a peak between them is missed and crossing times are interpolated. The "
+              "mass out is the transport's own balance, over every step. `receptors.csv` "
+              "has every output time.", ""]
+    return lines
+
+
 def write_report(path: Path, s: RunSummary) -> Path:
     """A short Markdown report for a reviewer."""
     tu, cu = s.time_unit, s.concentration_unit
@@ -263,13 +292,20 @@ def write_report(path: Path, s: RunSummary) -> Path:
         f"- groundwater through the model: {s.flow_inflow * 86400:.4g} m³/d, "
         f"budget discrepancy {s.flow_discrepancy:.1e}",
         "", "## Extent of the plume above the limit (at output times)", "",
-        "| species | largest extent from the source [m] | at | largest volume above the "
-        "limit [m³] | extent at the end [m] |", "|---|---|---|---|---|",
+        "| species | largest extent from the source [m] | at | farthest downstream [m] | "
+        "largest volume above the limit [m³] | largest mass above the limit [kg] | "
+        "extent at the end [m] |", "|---|---|---|---|---|---|---|",
         *[f"| {sp} | {p['largest_extent']:.4g} | {_t(p['time_of_largest_extent'], tu)} | "
-          f"{p['largest_volume']:.4g} | {p['final_extent']:.4g} |" for sp, p in s.plume.items()],
-        "", "The extent is the farthest plan distance from the species' first source of a mesh "
-        "node above the limit; `plume.csv` has every output time and `plume_*.vtp` the "
-        "surfaces at the limit.", "",
+          f"{p.get('largest_downstream', 0.0):.4g} | {p['largest_volume']:.4g} | "
+          f"{p.get('largest_mass', 0.0):.4g} | {p['final_extent']:.4g} |"
+          for sp, p in s.plume.items()],
+        "", "Measured exactly on the computed (piecewise-linear) field, each tetrahedron cut "
+        "where the field crosses the limit: the extent is the farthest plan distance from the "
+        "species' first source (for a source on a face, the distance downstream of the face), "
+        "\"downstream\" is measured along the mean flow, the mass is dissolved plus sorbed. "
+        "`plume.csv` has every output time, with the extents across the flow and in "
+        "elevation and the centroid; `plume_*.vtp` the surfaces at the limit.", "",
+        *_receptor_section(s),
         "## Advective travel times of water (particle tracking)", "",
         "| from source | to receptor | travel time | closest approach [m] |",
         "|---|---|---|---|",

@@ -1,4 +1,5 @@
-"""CSV tables with units in the header (histories, mass budget, flow budget)."""
+"""CSV tables with units in the header (histories, mass budget, flow budget, plume measures,
+receptors)."""
 
 from __future__ import annotations
 
@@ -9,10 +10,13 @@ from pathlib import Path
 from fe3d._typing import FloatArray
 from fe3d.flow.solve import FlowField
 from fe3d.post.files import write_text_atomic
+from fe3d.post.plume import PlumeMeasures
+from fe3d.post.receptors import ReceptorRow
 from fe3d.transport.budget import MassBudget
 from fe3d.units import from_si
 
-__all__ = ["write_flow_budget", "write_histories", "write_mass_budget", "write_plume_table"]
+__all__ = ["write_flow_budget", "write_histories", "write_mass_budget", "write_plume_table",
+           "write_receptor_table"]
 
 
 def _csv(header: list[str], rows: list[list[object]]) -> str:
@@ -71,15 +75,46 @@ def write_flow_budget(path: Path, flow: FlowField) -> Path:
     return path
 
 
-def write_plume_table(path: Path, rows: list[tuple[str, float, float, float, float, float]],
-                      *, time_unit: str, conc_unit: str) -> Path:
-    """Per species and output time: the limit, and the volume, dissolved mass and plan extent
-    of the part above it. ``rows`` hold (species, time [s], limit [kg/m³], volume [m³],
-    mass [kg], extent [m])."""
+def _opt(x: float | None, scale: float = 1.0) -> str:
+    return "" if x is None else _g(x * scale)
+
+
+def write_plume_table(path: Path, rows: list[tuple[str, float, float, PlumeMeasures]], *,
+                      time_unit: str, conc_unit: str) -> Path:
+    """Per species and output time: the limit and the region above it, measured exactly on
+    the P1 field (theory.md P1, P2). ``rows`` hold (species, time [s], limit [kg/m³],
+    measures); a blank cell: nothing above the limit."""
     scale = from_si(1.0, conc_unit)
-    out = [[sp, _g(from_si(t, time_unit)), _g(lim * scale), _g(v), _g(m), _g(e)]
-           for sp, t, lim, v, m, e in rows]
-    write_text_atomic(path, _csv(["species", f"time [{time_unit}]", f"limit [{conc_unit}]",
-                                  "volume above limit [m3]", "dissolved mass above limit [kg]",
-                                  "farthest extent from source [m]"], out))
+    out = []
+    for sp, t, lim, m in rows:
+        centroid = m.centroid or (None, None, None)
+        across = m.across or (None, None)
+        elevation = m.elevation or (None, None)
+        out.append([sp, _g(from_si(t, time_unit)), _g(lim * scale), _g(m.volume),
+                    _g(m.dissolved_mass), _g(m.sorbed_mass), _g(m.extent), _g(m.downstream),
+                    _g(m.upstream), *(_opt(v) for v in across), *(_opt(v) for v in elevation),
+                    *(_opt(v) for v in centroid)])
+    header = ["species", f"time [{time_unit}]", f"limit [{conc_unit}]",
+              "volume above limit [m3]", "dissolved mass above limit [kg]",
+              "sorbed mass above limit [kg]", "farthest extent from source [m]",
+              "downstream of source [m]", "upstream of source [m]",
+              "across flow min [m]", "across flow max [m]", "lowest elevation [m]",
+              "highest elevation [m]", "centroid x [m]", "centroid y [m]", "centroid z [m]"]
+    write_text_atomic(path, _csv(header, out))
+    return path
+
+
+def write_receptor_table(path: Path, rows: list[ReceptorRow], *, time_unit: str,
+                         conc_unit: str) -> Path:
+    """Per receptor (well or boundary where water leaves), species and output time: the
+    water leaving [m³/d], its flux-averaged concentration, the mass flux [kg/d] and the mass
+    carried out since the start [kg] (theory.md P3)."""
+    scale, day = from_si(1.0, conc_unit), 86400.0
+    out = [[r.receptor, r.kind, r.species, _g(from_si(r.time, time_unit)),
+            _g(r.water_rate * day), _g(r.concentration * scale), _g(r.mass_flux * day),
+            _g(r.mass_out)] for r in rows]
+    header = ["receptor", "kind", "species", f"time [{time_unit}]", "water out [m3/d]",
+              f"flux-averaged concentration [{conc_unit}]", "mass flux [kg/d]",
+              "mass out since start [kg]"]
+    write_text_atomic(path, _csv(header, out))
     return path

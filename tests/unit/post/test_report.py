@@ -144,23 +144,30 @@ def test_breakthrough_interpolates_crossing_times():
     assert breakthrough(t, c, 5.0).first_above_limit is None
 
 
-def test_plume_extent_counts_nodes_above_the_limit(tmp_path):
-    """Lumped volume, pore-volume mass and plan extent over the nodes above the limit; the
+def test_plume_measures_and_isosurface_of_a_linear_field(tmp_path):
+    """c = 1 − x/4 on a 4 × 1 × 1 m bar, limit 0.4: P1 holds c exactly, so the region above
+    it is x < 2.4 m: volume 2.4 m³, dissolved mass θ∫c = 0.25 (2.4 − 2.4²/8) = 0.42 kg with
+    θ = 0.25, extent hypot(2.4, 1) m from (0, 0) (exact integrals; round-off 1e3 ε); the
     contour surface of a linear field is the plane c = level (exact for P1)."""
     from skfem import MeshTet
 
-    from fe3d.post.plume import plume_extent, write_isosurface
+    from fe3d.p1 import volumes
+    from fe3d.post.plume import MeasuringFrame, SorbedPhase, measure_plume, write_isosurface
 
     m = MeshTet.init_tensor(np.linspace(0, 4, 5), np.linspace(0, 1, 2), np.linspace(0, 1, 2))
     pts, cells = m.p, m.t
     conc = 1.0 - pts[0] / 4.0  # 1 at x = 0, 0 at x = 4
-    node_vol = np.full(pts.shape[1], 0.5)
-    ext = plume_extent(pts, node_vol, 0.25 * node_vol, conc, 0.4, (0.0, 0.0))
-    above = conc > 0.4  # x = 0, 1, 2 → 12 nodes
-    assert ext.volume == pytest.approx(0.5 * above.sum())
-    assert ext.dissolved_mass == pytest.approx(0.125 * conc[above].sum())
-    assert ext.extent == pytest.approx(np.hypot(2.0, 1.0))
-    assert plume_extent(pts, node_vol, node_vol, conc, 2.0, (0.0, 0.0)).volume == 0.0
+    n = cells.shape[1]
+    no_sorption = SorbedPhase(np.zeros(n), np.zeros(n, dtype=int), (("linear", {"kd": 0.0}),))
+    frame = MeasuringFrame((0.0, 0.0), (1.0, 0.0))
+    ext = measure_plume(pts, cells, volumes(pts, cells), np.full(n, 0.25), no_sorption, conc,
+                        0.4, frame)
+    tol = 1e3 * np.finfo(float).eps
+    assert ext.volume == pytest.approx(2.4, rel=tol)
+    assert ext.dissolved_mass == pytest.approx(0.42, rel=tol)
+    assert ext.extent == pytest.approx(np.hypot(2.4, 1.0), rel=tol)
+    assert measure_plume(pts, cells, volumes(pts, cells), np.full(n, 0.25), no_sorption,
+                         conc, 2.0, frame).volume == 0.0
     import pyvista as pv
 
     path = write_isosurface(tmp_path / "iso.vtp", pts, cells, conc, 0.5, name="c [mg/L]")
