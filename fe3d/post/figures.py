@@ -95,14 +95,15 @@ def draw_site(ax: Any, features: SiteFeatures) -> list[tuple[str, float, float]]
 
 
 def place_labels(ax: Any, labels: list[tuple[str, float, float]], *, fontsize: float = 7.0
-                 ) -> None:
+                 ) -> list[Any]:
     """Write each label beside its point, trying eight positions around it and keeping the
     first that stays inside the axes and overlaps no label placed before (the last try is
-    kept when none fits)."""
+    kept when none fits). Returns the text artists."""
     fig = ax.figure
     renderer = fig.canvas.get_renderer()
     box = ax.get_window_extent(renderer)
     placed: list[Any] = []
+    texts: list[Any] = []
     offsets = [(5, 5), (5, -11), (-5, 5), (-5, -11), (8, -3), (-8, -3), (0, 9), (0, -14)]
     for text, x, y in labels:
         for dx, dy in offsets:
@@ -119,6 +120,8 @@ def place_labels(ax: Any, labels: list[tuple[str, float, float]], *, fontsize: f
             if (dx, dy) != offsets[-1]:
                 t.remove()
         placed.append(ext)
+        texts.append(t)
+    return texts
 
 
 def plot_breakthrough(path: Path, times: FloatArray, history: dict[str, FloatArray],

@@ -85,7 +85,8 @@ def plot_plan_maximum(path: Path, plan: PlanField, *, limit: float, features: Si
         ax.plot([x0, x1], [y0, y1], color="0.3", linestyle="-.", linewidth=0.9)
         labels += [("A", float(x0), float(y0)), ("A'", float(x1), float(y1))]
     _concentration_bar(fig, ax, filled, f"{species}, largest over depth [{conc_unit}]")
-    _plan_axes(ax, f"{features.site}\n{species}: largest concentration over depth, {when}")
+    _plan_axes(ax, f"{features.site}\n{species}: largest concentration over depth, {when}",
+               features.outline.xy)
     if float(plan.values.max()) <= limit:
         ax.text(0.5, 0.02, "nowhere above the limit", transform=ax.transAxes, ha="center",
                 fontsize=8)
@@ -94,7 +95,13 @@ def plot_plan_maximum(path: Path, plan: PlanField, *, limit: float, features: Si
     return save_figure(fig, path)
 
 
-def _plan_axes(ax: Any, title: str) -> None:
+def _plan_axes(ax: Any, title: str, outline: FloatArray) -> None:
+    """Equal scales framed on the site outline ``(2, k)`` [m] (pathlines leaving it are
+    cut at the frame), axis labels, title and the legend under the map."""
+    lo, hi = outline.min(axis=1), outline.max(axis=1)
+    margin = 0.03 * float((hi - lo).max())
+    ax.set_xlim(lo[0] - margin, hi[0] + margin)
+    ax.set_ylim(lo[1] - margin, hi[1] + margin)
     ax.set_aspect("equal")
     ax.set_xlabel("x [m]")
     ax.set_ylabel("y [m]")
@@ -158,7 +165,8 @@ def plot_head_map(path: Path, plan: PlanField, *, features: SiteFeatures, elevat
     labelled contours, forward pathlines from the sources (solid), backward pathlines from
     the extraction wells (dashed), the area each well's backward pathlines sweep within
     ``capture_time`` (hatched), and the drawdown [m] where given. Without ``drawdown`` and
-    with ``pumping`` wells, the map says that drawdown was not drawn and why."""
+    with ``pumping`` wells, the map says that drawdown was not drawn and why. Contours are
+    labelled in ``head_unit``, as the colour bar."""
     from matplotlib.tri import Triangulation
 
     plt = pyplot()
@@ -167,7 +175,7 @@ def plot_head_map(path: Path, plan: PlanField, *, features: SiteFeatures, elevat
     tri = Triangulation(plan.x, plan.y, plan.triangles.T)
     filled = ax.tricontourf(tri, head, levels=16, cmap=HEAD_COLOURS)
     lines = ax.tricontour(tri, head, levels=filled.levels[::2], colors="0.2", linewidths=0.5)
-    ax.clabel(lines, fmt=f"%.2f {head_unit}", fontsize=6, inline=True, inline_spacing=2)
+    ax.clabel(lines, lines.levels[::2], fmt="%.2f", fontsize=6, inline=True)
     fig.colorbar(filled, ax=ax, shrink=0.8, pad=0.02,
                  label=f"head at {elevation:.1f} m elevation [{head_unit}]")
     for i, p in enumerate(forward):
@@ -183,14 +191,14 @@ def plot_head_map(path: Path, plan: PlanField, *, features: SiteFeatures, elevat
         dd = ax.tricontour(Triangulation(drawdown.x, drawdown.y, drawdown.triangles.T),
                            drawdown.values * from_si(1.0, head_unit), levels=6,
                            cmap=DRAWDOWN_COLOURS, linewidths=1.0)
-        ax.clabel(dd, fmt=f"%.2f {head_unit}", fontsize=6)
+        ax.clabel(dd, fmt="%.2f", fontsize=6)
         ax.plot([], [], color="indigo", label="drawdown")
     elif pumping:
         fig.text(0.99, 0.005, "drawdown not drawn: no head without pumping was computed",
                  ha="right", fontsize=6.5, color="0.25")
     labels = draw_site(ax, features)
     _plan_axes(ax, f"{features.site}\nhead at {elevation:.1f} m elevation, pathlines and "
-                   "capture zones")
+                   "capture zones", features.outline.xy)
     fig.tight_layout(rect=(0, 0.03, 1, 1))
     place_labels(ax, labels)
     return save_figure(fig, path)
