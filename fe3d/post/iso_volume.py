@@ -2,7 +2,7 @@
 
 A P1 field is linear in each tetrahedron, so the level cuts a tetrahedron along a plane and
 the part above it is a convex polyhedron whose vertices are the tetrahedron's nodes above the
-level and the points where the level crosses its edges (theory.md P1). With one node above,
+level and the points where the level crosses its edges (theory.md O1). With one node above,
 the part is a corner tetrahedron; with two or three, a prism with planar faces, split here
 into three tetrahedra. Every piece is therefore a tetrahedron with the level at its cut
 vertices, and the volume, the integral of the field (times a weight constant per cell) and

@@ -65,7 +65,7 @@ from fe3d.units import from_si, to_seconds
 
 __all__ = ["RUN_FIELDS", "PlumeRow", "SeriesWriter", "method_words", "write_flow_outputs"]
 
-#: The file of the fields over the whole run (theory.md P4).
+#: The file of the fields over the whole run (theory.md O4).
 RUN_FIELDS = "over_the_run.vtu"
 
 
@@ -256,7 +256,7 @@ class SeriesWriter:
 
     def _write_run_fields(self) -> None:
         """The largest value, when it was reached and the first time above the limit at
-        every node over the output times, one file (theory.md P4)."""
+        every node over the output times, one file (theory.md O4)."""
         tu, cu = self.case.output.time_unit, self.case.output.concentration_unit
         scale, per_unit = from_si(1.0, cu), from_si(1.0, tu)
         data = {}

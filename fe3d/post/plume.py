@@ -3,8 +3,8 @@
 :func:`measure_plume` takes the region where the field exceeds the limit from
 :mod:`fe3d.post.iso_volume` (whole cells and the pieces of the cells the limit cuts) and
 returns its volume, the dissolved and sorbed mass in it, its centroid and its extents along
-and across the mean flow and in elevation, measured from the species' source (theory.md P1,
-P2).
+and across the mean flow and in elevation, measured from the species' source (theory.md O1,
+O2).
 """
 
 from __future__ import annotations
@@ -115,7 +115,7 @@ def measure_plume(points: FloatArray, cells: IndexArray, cell_volume: FloatArray
         θ per cell [-], ``(n_cells,)``.
     sorbed
         Bulk density and isotherms per cell; with linear isotherms the sorbed mass is the
-        exact ρ_b K_d ∫c, otherwise the 4-point degree-2 rule on every part (theory.md P1).
+        exact ρ_b K_d ∫c, otherwise the 4-point degree-2 rule on every part (theory.md O1).
     conc, limit
         Nodal concentration ``(n_nodes,)`` and the limit [kg/m³].
     frame
@@ -160,7 +160,7 @@ def write_isosurface(path: Path, points: FloatArray, cells: IndexArray, conc: Fl
 
 
 def measuring_frames(case: Case, site: SiteMesh, flow: FlowField) -> dict[str, MeasuringFrame]:
-    """The frame each species' plume is measured in (theory.md P2).
+    """The frame each species' plume is measured in (theory.md O2).
 
     The direction is that of the volume-weighted mean horizontal Darcy flux over the model
     (+x when it vanishes). The origin is the plan centre of the species' first source; for

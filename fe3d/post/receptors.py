@@ -3,7 +3,7 @@
 Every budget item that takes water out is a receptor: an extraction well, a fixed-head face
 where water leaves (a stream bank, an outflow face, a property line drawn as a model face),
 a stream or drain zone, a flux face with outflow. Each one's water leaves at its nodes at
-the rates the transport's outflow term uses (theory.md T3b, P3): the outward Darcy flux
+the rates the transport's outflow term uses (theory.md T3b, O3): the outward Darcy flux
 lumped on the face's nodes, ∫(q·n)⁺ φ_j dS, or the item's nodal outflow from the flow
 solve. At any time its mass flux is Σ_j Q_j c_j [kg/s] (for a face, the exact boundary
 integral ∫(q·n)⁺ c dS of the P1 field) and its flux-averaged concentration Σ_j Q_j c_j /

@@ -253,7 +253,7 @@ def _limit_section(s: RunSummary) -> list[str]:
 
 
 def _receptor_section(s: RunSummary) -> list[str]:
-    """The table of extraction wells and boundaries where water leaves (theory.md P3)."""
+    """The table of extraction wells and boundaries where water leaves (theory.md O3)."""
     if not s.receptors:
         return []
     tu, cu = s.time_unit, s.concentration_unit

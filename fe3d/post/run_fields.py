@@ -1,5 +1,5 @@
 """Fields over the whole run: the largest concentration and the first time above the limit
-at every node (theory.md P4), folded over the output times."""
+at every node (theory.md O4), folded over the output times."""
 
 from __future__ import annotations
 

@@ -82,7 +82,7 @@ def _opt(x: float | None, scale: float = 1.0) -> str:
 def write_plume_table(path: Path, rows: list[tuple[str, float, float, PlumeMeasures]], *,
                       time_unit: str, conc_unit: str) -> Path:
     """Per species and output time: the limit and the region above it, measured exactly on
-    the P1 field (theory.md P1, P2). ``rows`` hold (species, time [s], limit [kg/m³],
+    the P1 field (theory.md O1, O2). ``rows`` hold (species, time [s], limit [kg/m³],
     measures); a blank cell: nothing above the limit."""
     scale = from_si(1.0, conc_unit)
     out = []
@@ -108,7 +108,7 @@ def write_receptor_table(path: Path, rows: list[ReceptorRow], *, time_unit: str,
                          conc_unit: str) -> Path:
     """Per receptor (well or boundary where water leaves), species and output time: the
     water leaving [m³/d], its flux-averaged concentration, the mass flux [kg/d] and the mass
-    carried out since the start [kg] (theory.md P3)."""
+    carried out since the start [kg] (theory.md O3)."""
     scale, day = from_si(1.0, conc_unit), 86400.0
     out = [[r.receptor, r.kind, r.species, _g(from_si(r.time, time_unit)),
             _g(r.water_rate * day), _g(r.concentration * scale), _g(r.mass_flux * day),
