@@ -23,6 +23,7 @@ __all__ = [
     "place_labels",
     "plot_breakthrough",
     "plot_heads",
+    "plot_plume_over_time",
     "plot_refinement_breakthrough",
     "pyplot",
     "save_figure",
@@ -286,3 +287,30 @@ def _save_with_caution(fig: Any, path: Path) -> None:
     fig.tight_layout(rect=(0, 0.03, 1, 1))
     write_atomic(path, lambda p: fig.savefig(p, dpi=110, format="png"))
     plt.close(fig)
+
+
+def plot_plume_over_time(path: Path, plumes: dict[str, tuple[FloatArray, FloatArray,
+                                                             FloatArray]], *,
+                         limits: dict[str, float], time_unit: str, conc_unit: str,
+                         mass_unit: str = "kg", site: str) -> Path:
+    """Volume of aquifer [m³] and dissolved mass [kg] above each species' limit over time:
+    ``plumes`` maps a species to (times [s], volume [m³], dissolved mass [kg]), each
+    ``(n_t,)``; ``limits`` [kg/m³] name the level in the legend."""
+    plt = pyplot()
+    n = len(plumes)
+    fig, axes = plt.subplots(2, n, figsize=(4.2 * n + 1.0, 5.6), sharex=True, squeeze=False)
+    tscale, mscale = from_si(1.0, time_unit), from_si(1.0, mass_unit)
+    for (top, bottom), (sp, (times, volume, mass)) in zip(axes.T, plumes.items(),
+                                                          strict=True):
+        top.plot(times * tscale, volume, marker="o", markersize=3, color="firebrick")
+        bottom.plot(times * tscale, mass * mscale, marker="o", markersize=3, color="navy")
+        top.set_title(f"{sp} above {limits[sp] * from_si(1.0, conc_unit):.3g} {conc_unit}",
+                      fontsize=9)
+        top.set_ylabel("aquifer volume [m³]")
+        bottom.set_ylabel(f"dissolved mass [{mass_unit}]")
+        bottom.set_xlabel(f"time [{time_unit}]")
+        for ax in (top, bottom):
+            ax.grid(visible=True, alpha=0.3)
+    fig.suptitle(f"{site}\nthe part of each plume above its limit", fontsize=9)
+    fig.tight_layout(rect=(0, 0.03, 1, 1))
+    return save_figure(fig, path, dpi=120)

@@ -156,8 +156,9 @@ def test_swept_area_matches_the_uniform_flow_capture_zone(n):
 
 
 def test_figures_write_readable_pngs(box, tmp_path):
-    """The plan map, section, head map and 3D view of a small box are written (behaviour
-    test; the pictures themselves were looked at on the demo)."""
+    """The plan map, section, head map, plume sizes and 3D view of a small box are written
+    (behaviour test; the pictures themselves were looked at on the demo)."""
+    from fe3d.post.figures import plot_plume_over_time
     from fe3d.post.map_figures import plot_head_map, plot_plan_maximum, plot_section
     from fe3d.post.maps import PlanMark, PlanShape, SiteFeatures
     from fe3d.post.render3d import render_limit_surface
@@ -188,6 +189,11 @@ def test_figures_write_readable_pngs(box, tmp_path):
                                                         step=1.0, x_far=-80.0)]},
                       wells={"W-1": (80.0, 25.0)}, capture_time="30 yr"),
     ]
+    t = np.array([0.0, 1.0, 2.0]) * 3.15576e7
+    written.append(plot_plume_over_time(
+        tmp_path / "plume.png", {"solvent": (t, np.array([0.0, 5.0, 9.0]),
+                                             np.array([0.0, 1e-3, 2e-3]))},
+        limits={"solvent": 5e-6}, time_unit="yr", conc_unit="mg/L", site=features.site))
     surface = render_limit_surface(tmp_path / "surface.png", points, cells, c, 5e-6,
                                    features=features, label="solvent at 2 yr")
     for path in [*written, *([surface] if surface is not None else [])]:
