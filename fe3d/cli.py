@@ -1,4 +1,5 @@
-"""Command line: ``fe3d check``, ``fe3d mesh``, ``fe3d run`` and ``fe3d refine`` (each CASE).
+"""Command line: ``fe3d check``, ``fe3d mesh``, ``fe3d run``, ``fe3d refine`` and
+``fe3d ensemble`` (each CASE).
 
 Only this module prints or exits. Every :class:`~fe3d.errors.Fe3dError` becomes one line per
 problem on standard error and exit code 2; no traceback is shown for bad input.
@@ -68,7 +69,36 @@ def _parser() -> argparse.ArgumentParser:
     f.add_argument("--threshold", type=float, default=5.0,
                    help="GCI below which a quantity is 'converged' [%%] (default 5)")
     f.add_argument("--workers", type=int, default=None,
-                   help="levels run at once (default: CPU cores, at most the levels)")
+                   help="levels run at once on a local cluster (default: CPU cores, at most "
+                        "the levels; 1: one after the other in this process)")
+    f.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="run the levels on the dask cluster whose scheduler is at ADDRESS "
+                        "(e.g. tcp://10.0.0.5:8786) instead of a local cluster")
+    e = sub.add_parser("ensemble", help="uncertainty ensemble over the case's [uncertain] "
+                                        "values",
+                       description="Run the case once per member of a Latin hypercube sample "
+                                   "of the values named in its [uncertain] section (rank "
+                                   "correlations imposed, seed recorded) on a dask cluster, "
+                                   "and give the probability of exceeding each species' limit "
+                                   "at each receptor over time, percentiles of peak "
+                                   "concentration and first time above the limit, and which "
+                                   "inputs matter. Started again on the same folder, it runs "
+                                   "only the members that have no results yet.")
+    e.add_argument("case", type=Path, help="case file (TOML) with an [uncertain] section")
+    e.add_argument("--members", type=int, required=True, metavar="N",
+                   help="number of members (runs), 2 to 100000")
+    e.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="run the members on the dask cluster whose scheduler is at ADDRESS "
+                        "(default: a local cluster on this machine)")
+    e.add_argument("--workers", type=int, default=None,
+                   help="worker processes of the local cluster (default: CPU cores; 1: one "
+                        "member after the other in this process)")
+    e.add_argument("--out", type=Path, default=None,
+                   help="study folder (default: runs/<case name>_ensemble)")
+    e.add_argument("--keep-runs", action="store_true",
+                   help="keep every member's full run folder (VTK series included) in "
+                        "OUT/runs/")
+    e.add_argument("--quiet", action="store_true", help="no progress bar")
     return p
 
 
@@ -206,7 +236,7 @@ def _mesh(case_path: Path, out: Path | None) -> int:
 
 
 def _refine(case_path: Path, out: Path | None, *, ratio: float, levels: int,
-            threshold: float, workers: int | None) -> int:
+            threshold: float, workers: int | None, scheduler: str | None) -> int:
     from rich.console import Console
 
     from fe3d.errors import CaseError
@@ -241,23 +271,15 @@ def _refine(case_path: Path, out: Path | None, *, ratio: float, levels: int,
         con.print(f"level {lv.index} (÷{lv.factor:.4g}) done: {lv.summary.n_nodes:,} nodes, "
                   f"{lv.summary.n_steps} steps, largest Courant {courant}", highlight=False)
 
-    executor = None
-    if workers is not None:
-        from concurrent.futures import ProcessPoolExecutor
-        from multiprocessing import get_context
+    from fe3d.studies.executors import study_executor
 
-        from fe3d.studies.refinement import SerialExecutor
-
-        executor = SerialExecutor() if workers == 1 else ProcessPoolExecutor(
-            max_workers=min(workers, levels), mp_context=get_context("spawn"))
-    try:
+    with study_executor(n_runs=levels, scheduler=scheduler,
+                        workers=None if workers is None else min(workers, levels)) as ex:
+        con.print(f"levels run on {ex.where}", highlight=False)
         study = refinement_study(case, folder, ratio=ratio, levels=levels,
                                  threshold=threshold / 100.0,
-                                 base_dir=case_path.resolve().parent, executor=executor,
+                                 base_dir=case_path.resolve().parent, executor=ex.executor,
                                  on_level=tell)
-    finally:
-        if executor is not None:
-            executor.shutdown(wait=True)
     for q in study.verdicts:
         con.print(study.line(q), markup=False, highlight=False)
     failed = [lv for lv in study.levels if lv.summary is None]
@@ -265,6 +287,84 @@ def _refine(case_path: Path, out: Path | None, *, ratio: float, levels: int,
         con.print(f"level {lv.index} failed: {lv.error}", markup=False, highlight=False)
     con.print(f"tables in {folder}/refinement.csv and refinement.md, curves in "
               "refinement_breakthrough.png", highlight=False)
+    con.print(CAUTION)
+    return 0
+
+
+def _ensemble(case_path: Path, out: Path | None, *, members: int, scheduler: str | None,
+              workers: int | None, keep_runs: bool, quiet: bool) -> int:
+    from rich.console import Console
+    from rich.progress import (
+        BarColumn,
+        MofNCompleteColumn,
+        Progress,
+        TextColumn,
+        TimeElapsedColumn,
+        TimeRemainingColumn,
+    )
+
+    from fe3d.errors import CaseError
+    from fe3d.post.report import CAUTION
+    from fe3d.studies.ensemble import MemberFailure, MemberResult, run_ensemble
+    from fe3d.studies.ensemble_results import summarise_ensemble, write_ensemble_tables
+    from fe3d.studies.executors import study_executor
+    from fe3d.units import from_si
+
+    problems = []
+    if not 2 <= members <= 100_000:
+        problems.append(CaseError("--members", members, "must be 2 to 100000"))
+    if workers is not None and workers < 1:
+        problems.append(CaseError("--workers", workers, "must be 1 or more"))
+    if workers is not None and scheduler is not None:
+        problems.append(CaseError("--workers", workers, "sizes the local cluster only; the "
+                                  "cluster at --scheduler has its own workers"))
+    if problems:
+        raise CaseErrors(problems)
+    case = load_case(case_path)
+    folder = out or Path(f"runs/{case_path.stem}_ensemble")
+    con = Console()
+    failed: list[MemberFailure] = []
+    with study_executor(n_runs=members, scheduler=scheduler, workers=workers) as ex, \
+            Progress(TextColumn("members"), BarColumn(), MofNCompleteColumn(),
+                     TextColumn("{task.fields[info]}"), TimeElapsedColumn(),
+                     TextColumn("left"), TimeRemainingColumn(), disable=quiet,
+                     console=con) as bar:
+        con.print(f"ensemble of {case_path}: {members} members on {ex.where}",
+                  highlight=False)
+        task = bar.add_task("members", total=members, info="")
+
+        def tell(done: int, total: int, outcome: MemberResult | MemberFailure) -> None:
+            if isinstance(outcome, MemberFailure):
+                failed.append(outcome)
+            bar.update(task, completed=done, info=f"{len(failed)} failed" if failed else "")
+
+        ensemble = run_ensemble(case, folder, n_members=members, executor=ex,
+                                base_dir=case_path.resolve().parent, keep_runs=keep_runs,
+                                on_member=tell)
+    stats = summarise_ensemble(ensemble)
+    files = write_ensemble_tables(ensemble, stats)
+    tu, cu = case.output.time_unit, case.output.concentration_unit
+    con.print(f"{len(ensemble.results)} members finished ({ensemble.reused} reused from an "
+              f"earlier start), {len(ensemble.failures)} failed; {ensemble.wall_time:.1f} s",
+              highlight=False)
+    for f in ensemble.failures:
+        drawn = ", ".join(f"{n} = {x:.4g}{' ' + u if u else ''}" for n, u, x in zip(
+            ensemble.sample.names, ensemble.sample.units, ensemble.sample.values[f.index],
+            strict=True))
+        con.print(f"member {f.index} failed ({drawn}): {f.error}", markup=False,
+                  highlight=False)
+    for (point, sp), (k, n) in stats.ever_above.items():
+        q = {x.measure: x for x in stats.quantities if x.point == point and x.species == sp}
+        pk, first = q["peak"].percentiles, q["first above limit"].percentiles
+
+        def show(v: float, unit: str) -> str:
+            return "not reached" if v == float("inf") else f"{from_si(v, unit):.3g}"
+
+        con.print(f"{point} {sp}: above the limit during the run in {k} of {n} members; "
+                  f"peak P5/P50/P95 {'/'.join(show(v, cu) for v in pk)} {cu}; first above "
+                  f"the limit P5/P50/P95 {'/'.join(show(v, tu) for v in first)} {tu}",
+                  markup=False, highlight=False)
+    con.print(f"results in {folder}/: {', '.join(files)}", highlight=False)
     con.print(CAUTION)
     return 0
 
@@ -282,7 +382,12 @@ def main(argv: list[str] | None = None) -> int:
             return _mesh(args.case, args.out)
         if args.command == "refine":
             return _refine(args.case, args.out, ratio=args.ratio, levels=args.levels,
-                           threshold=args.threshold, workers=args.workers)
+                           threshold=args.threshold, workers=args.workers,
+                           scheduler=args.scheduler)
+        if args.command == "ensemble":
+            return _ensemble(args.case, args.out, members=args.members,
+                             scheduler=args.scheduler, workers=args.workers,
+                             keep_runs=args.keep_runs, quiet=args.quiet)
         return _run(args.case, args.out, quiet=args.quiet)
     except CaseErrors as exc:
         for e in exc.errors:

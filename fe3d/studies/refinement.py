@@ -10,7 +10,8 @@ ratios, its fixed-point iteration for the apparent order, Eqs. 1–7); Roache, P
 
 Every level divides every target cell size **and** the time step by the same factor, so the
 Courant number v·Δt/h stays the same on every level while the grid Péclet number falls.
-Levels run concurrently on a :mod:`concurrent.futures` executor; a level that fails is named
+Levels run concurrently on the studies' executor (:mod:`fe3d.studies.executors`: a local
+dask cluster, or any cluster by address); a level that fails is named
 with its message and the levels that ran are still reported and written.
 """
 
@@ -19,13 +20,11 @@ from __future__ import annotations
 import csv
 import io
 import math
-import multiprocessing
-import os
 from collections.abc import Callable, Sequence
-from concurrent.futures import Executor, Future, ProcessPoolExecutor, as_completed
+from concurrent.futures import Executor, as_completed
+from contextlib import ExitStack
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 
@@ -36,6 +35,7 @@ from fe3d.post.figures import plot_refinement_breakthrough
 from fe3d.post.files import write_text_atomic
 from fe3d.post.probes import breakthrough
 from fe3d.post.report import CAUTION, RunSummary
+from fe3d.studies.executors import SerialExecutor, study_executor
 from fe3d.studies.run_folder import read_histories
 from fe3d.units import from_si
 
@@ -242,19 +242,6 @@ def refine_case(case: Case, factor: float) -> Case:
     return case.model_copy(update={"mesh": mesh, "time": time, "refinement_lines": lines})
 
 
-class SerialExecutor(Executor):
-    """Runs each submitted call at once in the calling process (one worker, no pickling)."""
-
-    def submit(self, fn: Callable[..., Any], /, *args: Any, **kwargs: Any) -> Future[Any]:
-        """Call ``fn(*args, **kwargs)`` now; the future holds its result or exception."""
-        future: Future[Any] = Future()
-        try:
-            future.set_result(fn(*args, **kwargs))
-        except BaseException as exc:  # handed to the caller through the future
-            future.set_exception(exc)
-        return future
-
-
 @dataclass(frozen=True)
 class LevelResult:
     """One refinement level: its factor, folder, and summary or one-line failure."""
@@ -272,15 +259,6 @@ def _run_level(case: Case, folder: Path, base_dir: Path | None) -> RunSummary | 
         return run_case(case, folder, base_dir=base_dir, mesh_folders=[])
     except Fe3dError as exc:
         return f"{type(exc).__name__}: " + "; ".join(str(exc).splitlines())
-
-
-def _default_executor(n_levels: int) -> Executor:
-    workers = max(1, min(os.cpu_count() or 1, n_levels))
-    if workers == 1:
-        return SerialExecutor()
-    # spawn: gmsh and the BLAS/numba thread pools are not safe to fork
-    return ProcessPoolExecutor(max_workers=workers,
-                               mp_context=multiprocessing.get_context("spawn"))
 
 
 # ----------------------------------------------------------------------------- quantities
@@ -390,9 +368,10 @@ def refinement_study(
     base_dir
         Folder that relative file names in the case are resolved from.
     executor
-        Where the level runs go (default: a spawn-context process pool with at most
-        ``os.cpu_count()`` workers and at most ``levels``; a ``dask.distributed`` client's
-        ``get_executor()`` fits too). Passed executors are not shut down.
+        Where the level runs go (default: the study executor of
+        :func:`fe3d.studies.executors.study_executor`, a dask.distributed local cluster
+        with one worker per core and at most ``levels``, closed afterwards). Passed
+        executors are not shut down.
     on_level
         Called in the calling process as each level finishes (in completion order).
 
@@ -405,11 +384,11 @@ def refinement_study(
     """
     factors = [ratio**k for k in range(levels)]
     cases = [refine_case(case, f) for f in factors]
-    own = executor is None
-    pool = executor if executor is not None else _default_executor(levels)
     results: list[LevelResult | None] = [None] * levels
     unexpected: BaseException | None = None
-    try:
+    with ExitStack() as stack:
+        pool = executor if executor is not None else stack.enter_context(
+            study_executor(n_runs=levels)).executor
         futures = {pool.submit(_run_level, c, out_dir / f"level_{k}", base_dir): k
                    for k, c in enumerate(cases)}
         for fut in as_completed(futures):
@@ -425,9 +404,6 @@ def refinement_study(
             results[k] = res
             if on_level is not None:
                 on_level(res)
-    finally:
-        if own:
-            pool.shutdown(wait=True)
     done = [r for r in results if r is not None]
     study = _judge_levels(case, done, threshold)
     _write_reports(case, study, out_dir)
