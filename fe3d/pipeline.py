@@ -30,15 +30,17 @@ logger = logging.getLogger(__name__)
 Progress = Callable[[str, float, float], None]
 
 
-def plume_corridor(case: Case, *, base_dir: Path | None = None) -> Corridor | None:
-    """The first pass of the corridor mesher: mesh the case as it is written, solve the flow,
-    track forward pathlines from every source and turn them into a corridor
-    (:func:`fe3d.mesh.corridor.site_corridor`). ``None`` when ``mesh.corridor`` is off, the
-    mesh is imported, the case has no source, or nothing needs refining."""
+def plume_corridor(case: Case, *, base_dir: Path | None = None,
+                   first: SiteMesh | None = None) -> Corridor | None:
+    """The first pass of the corridor mesher: mesh the case as it is written (or take that
+    mesh as ``first``), solve the flow, track forward pathlines from every source and turn
+    them into a corridor (:func:`fe3d.mesh.corridor.site_corridor`). ``None`` when
+    ``mesh.corridor`` is off, the mesh is imported, the case has no source, or nothing needs
+    refining."""
     mc = case.mesh
     if not mc.corridor or mc.import_file is not None or not case.sources:
         return None
-    first = build_mesh(case)
+    first = first or build_mesh(case)
     flow = solve_flow(first, FlowInputs.of(case), base_dir=base_dir)
     paths = travel_paths(first, flow, TravelInputs.of(case))
     lines = {name: [(p.points, p.times) for p in found]
@@ -59,12 +61,17 @@ def mesh_and_flow(case: Case, *, base_dir: Path | None = None) -> tuple[SiteMesh
 
 def check_case(case: Case, base_dir: Path | None, mesh_folders: list[Path]) -> None:
     """Every check that needs more than the case file: the user's reaction code imports, and
-    the rules that depend on the mesh (built, or reused from ``mesh_folders``; nothing is
-    written). Raises :class:`~fe3d.errors.CaseErrors` naming each problem."""
+    the rules that depend on the mesh, on the mesh as written (the first pass of the corridor
+    solves its flow) and on the mesh refined along the plume corridor that a run will use
+    (built, or reused from ``mesh_folders``; nothing is written). Raises
+    :class:`~fe3d.errors.CaseErrors` naming each problem."""
     from fe3d.flow.site_rules import check_mesh_rules
 
     check_user_code(case, base_dir)
-    check_mesh_rules(case, mesh_folders)
+    first = check_mesh_rules(case, mesh_folders)
+    corridor = plume_corridor(case, base_dir=base_dir, first=first)
+    if corridor is not None:
+        check_mesh_rules(case, mesh_folders, corridor=corridor)
 
 
 def estimate_mesh_size(case: Case) -> tuple[int, int]:

@@ -25,6 +25,7 @@ from fe3d.mesh.site_mesh import SiteMesh
 if TYPE_CHECKING:
     from fe3d.case.hydro import HeadDependent, Recharge, Well
     from fe3d.case.schema import Case, ObservationPoint, Source
+    from fe3d.mesh.corridor import Corridor
 
 __all__ = ["check_mesh_rules", "head_dependent_problems", "line_sample_points",
            "mesh_rule_problems", "patch_triangles", "recharge_mask", "recharge_problems",
@@ -243,9 +244,11 @@ def mesh_rule_problems(case: Case, site: SiteMesh) -> list[CaseError]:
     return problems
 
 
-def check_mesh_rules(case: Case, folders: list[Path]) -> SiteMesh:
-    """The case's mesh (reused from the first of ``folders`` holding it in the mesh cache,
-    else built in memory; nothing is written), checked by :func:`mesh_rule_problems`.
+def check_mesh_rules(case: Case, folders: list[Path], *,
+                     corridor: Corridor | None = None) -> SiteMesh:
+    """The case's mesh (refined along ``corridor`` when given; reused from the first of
+    ``folders`` holding it in the mesh cache, else built in memory; nothing is written),
+    checked by :func:`mesh_rule_problems`.
 
     Raises
     ------
@@ -256,7 +259,7 @@ def check_mesh_rules(case: Case, folders: list[Path]) -> SiteMesh:
     """
     from fe3d.mesh.build import obtain_mesh
 
-    site, _ = obtain_mesh(case, folders)
+    site, _ = obtain_mesh(case, folders, corridor=corridor)
     problems = mesh_rule_problems(case, site)
     if problems:
         raise CaseErrors(problems)

@@ -4,6 +4,7 @@ Behaviour requirements of the issue, no outside reference (common practice, no s
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import pytest
@@ -71,3 +72,24 @@ def test_observation_screen_below_the_mesh_is_reported(tmp_path):
     (problem,) = mesh_rule_problems(moved, site)
     assert problem.line().startswith("observation_points[fence_well].screen = [4.5, -1.5]: "
                                      "must lie inside the model's mesh at x = 50 m")
+
+
+def test_check_applies_the_rules_to_the_corridor_mesh_a_run_builds(tmp_path, capsys,
+                                                                    monkeypatch):
+    """With 2.5 m cell layers the mesh as written has its top cells down to 3 m, so a stream
+    stage of 3.5 m passes there; the plume corridor refines the sand's cell layers (top cells
+    ending higher up), and the run would refuse the stage on that mesh. ``check`` must
+    refuse it too, naming the corridor mesh's floor."""
+    text = TINY_TEXT.replace('layer_cell_thickness = "1 m"', 'layer_cell_thickness = "2.5 m"')
+    assert text != TINY_TEXT
+    case = parse_case(text + LOW_STREAM)
+    assert mesh_rule_problems(case, build_mesh(case)) == []  # the mesh as written passes
+    code, lines = _check(tmp_path, text + LOW_STREAM, capsys, monkeypatch)
+    assert code == 2
+    assert len(lines) == 1, lines
+    found = re.fullmatch(r"error: head_dependent\[brook\]\.stage = '3\.5 m': must not lie "
+                         r"below the bottom of the top cells under the zone \(([\d.]+) m\)",
+                         lines[0])
+    assert found is not None, lines
+    assert float(found.group(1)) > 3.5
+    assert [p.name for p in tmp_path.iterdir()] == ["pellet.toml"]  # check writes nothing

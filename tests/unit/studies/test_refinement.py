@@ -17,8 +17,18 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq
 
-from fe3d.case.builder import with_changes
-from fe3d.case.load import load_case, parse_case
+from fe3d.case.builder import (
+    Layer,
+    Material,
+    ObservationPoint,
+    Solver,
+    Source,
+    Species,
+    Time,
+    box_case,
+    with_changes,
+)
+from fe3d.case.load import load_case
 from fe3d.errors import CaseError, SolverError
 from fe3d.studies import refinement
 from fe3d.studies.refinement import (
@@ -32,7 +42,6 @@ from fe3d.studies.refinement import (
 _VERIFICATION = str(Path(__file__).parents[2] / "verification")
 if _VERIFICATION not in sys.path:
     sys.path.insert(0, _VERIFICATION)
-from conftest import box_case_text  # noqa: E402
 from test_column import KD, LAMBDA, LENGTH, POROSITY, RHO_B, T_END, V, reference  # noqa: E402
 
 TINY = Path(__file__).parents[3] / "cases" / "tiny" / "case.toml"
@@ -191,22 +200,19 @@ LIMIT = 0.5  # c/c0
 def column_case(h: float, scheme: str):
     """The Ogata–Banks column of tests/verification/test_column.py (retardation and decay),
     with receptors at RECEPTORS, limit c0/2, Galerkin (no SUPG), dt = h/(2v)."""
-    species = (f'[species.tracer]\nkd = "{KD * 1000} L/kg"\nhalf_life = '
-               f'"{math.log(2) / LAMBDA} d"\nlimit = "{LIMIT} kg/m^3"\n'
-               '[[sources]]\nname = "inlet"\nspecies = "tracer"\nshape = "face_patch"\n'
-               'face = "west"\nconcentration = "1 kg/m^3"\n')
-    text = box_case_text(
-        length=LENGTH, width=h, layers=[("sand", -h, 10.0, 10.0)],
-        heads={"west": 2.5, "east": 0.0}, cell=h, dz=h, porosity=POROSITY,
-        bulk_density=RHO_B, alpha_l=1.0, alpha_t=0.1, end=f"{T_END} d",
-        step=f"{0.5 * h / V} d", species=species)
-    text = text.replace('step = "', f'scheme = "{scheme}"\noutput_interval = "{T_END} d"\n'
-                        'step = "', 1)
-    text += "[solver]\nsupg = false\n"
-    for x in RECEPTORS:
-        text += (f'[[observation_points]]\nname = "X{x:g}"\nx = "{x} m"\ny = "{h / 2} m"\n'
-                 f'z = "{-h / 2} m"\n')
-    return parse_case(text + '[output]\nconcentration_unit = "mg/L"\ntime_unit = "d"\n')
+    return box_case(
+        length=LENGTH, width=h, cell=h, dz=h, heads={"west": 2.5, "east": 0.0},
+        layers=[Layer("sand", -h, Material(10.0, 10.0, porosity=POROSITY, bulk_density=RHO_B,
+                                           longitudinal_dispersivity=1.0,
+                                           transverse_dispersivity=0.1))],
+        species=[Species(kd=KD * 1000, half_life=math.log(2) / LAMBDA,
+                         limit=f"{LIMIT} kg/m^3")],
+        sources=[Source("inlet", shape="face_patch", face="west", concentration="1 kg/m^3")],
+        observation_points=[ObservationPoint(f"X{x:g}", x, h / 2, z=-h / 2)
+                            for x in RECEPTORS],
+        time=Time(T_END, 0.5 * h / V, scheme=scheme, output_interval=T_END),
+        solver=Solver(supg=False),
+        sections={"output": {"concentration_unit": "mg/L", "time_unit": "d"}})
 
 
 def test_a_failed_level_is_named_and_the_others_are_reported(tmp_path, monkeypatch):
