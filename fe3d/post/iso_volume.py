@@ -20,6 +20,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -40,8 +41,13 @@ class RegionAbove:
 
     Attributes
     ----------
+    points, cells, values, level
+        The mesh's nodes [m] ``(3, n_nodes)`` and tetrahedra ``(4, n_cells)``, the nodal
+        field ``(n_nodes,)`` and the level (held, not copied).
     whole
         Cells with every node above the level, shape ``(w,)``.
+    whole_volume
+        Their volumes [m³], shape ``(w,)``.
     piece_cell
         Cell each piece of a cut cell lies in, shape ``(k,)``.
     piece_points
@@ -50,19 +56,18 @@ class RegionAbove:
         The field at the pieces' vertices (the level at cut points), shape ``(4, k)``.
     piece_volume
         Volume of each piece [m³], shape ``(k,)``.
-    whole_volume, whole_values, whole_points
-        Volume [m³] ``(w,)``, nodal field ``(4, w)`` and nodes [m] ``(3, 4, w)`` of the
-        whole cells.
     """
 
+    points: FloatArray
+    cells: IndexArray
+    values: FloatArray
+    level: float
     whole: IndexArray
+    whole_volume: FloatArray
     piece_cell: IndexArray
     piece_points: FloatArray
     piece_values: FloatArray
     piece_volume: FloatArray
-    whole_volume: FloatArray
-    whole_values: FloatArray
-    whole_points: FloatArray
 
     @property
     def is_empty(self) -> bool:
@@ -74,14 +79,23 @@ class RegionAbove:
         """Volume of the region [m³]."""
         return float(self.whole_volume.sum() + self.piece_volume.sum())
 
+    @property
+    def whole_values(self) -> FloatArray:
+        """The field at the nodes of the whole cells, shape ``(4, w)``."""
+        return self.values[self.cells[:, self.whole]]
+
+    @cached_property
+    def _whole_mean(self) -> FloatArray:
+        """Mean of the field over each whole cell, shape ``(w,)`` (computed once)."""
+        return self.whole_values.mean(axis=0)
+
     def integral(self, weight_per_cell: FloatArray) -> float:
         """∫ w c dV over the region with ``w`` constant per cell, shape ``(n_cells,)``
         [units of w × c × m³]: exact (the mean of a linear field over a tetrahedron is the
         mean of its vertex values)."""
-        return float(
-            (weight_per_cell[self.whole] * self.whole_volume * self.whole_values.mean(0)).sum()
-            + (weight_per_cell[self.piece_cell] * self.piece_volume
-               * self.piece_values.mean(0)).sum())
+        return float((weight_per_cell[self.whole] * self.whole_volume * self._whole_mean).sum()
+                     + (weight_per_cell[self.piece_cell] * self.piece_volume
+                        * self.piece_values.mean(0)).sum())
 
     def integral_of_function(
             self, function: Callable[[FloatArray, IndexArray], FloatArray]) -> float:
@@ -99,13 +113,18 @@ class RegionAbove:
 
     def first_moment(self) -> FloatArray:
         """∫ x dV over the region [m⁴], shape ``(3,)``."""
-        return (self.whole_points.mean(1) * self.whole_volume).sum(1) + \
-            (self.piece_points.mean(1) * self.piece_volume).sum(1)
+        # Σ_e V_e x̄_e = Σ_j x_j Σ_{e ∋ j} V_e/4 over the whole cells e
+        weights = np.bincount(self.cells[:, self.whole].ravel(),
+                              weights=np.tile(self.whole_volume / 4.0, 4),
+                              minlength=self.values.size)
+        whole = self.points @ weights
+        return whole + (self.piece_points.mean(1) * self.piece_volume).sum(1)
 
     def vertices(self) -> FloatArray:
-        """Every vertex of the region [m], shape ``(3, p)`` (with repeats): the extreme
-        points of the region are among them, so extents taken over them are exact."""
-        return np.concatenate([self.whole_points.reshape(3, -1),
+        """Every vertex of the region [m], shape ``(3, p)`` (with repeats): the nodes above
+        the level and the pieces' vertices. The region's extreme points are among them, so
+        extents taken over them are exact."""
+        return np.concatenate([self.points[:, self.values > self.level],
                                self.piece_points.reshape(3, -1)], axis=1)
 
 
@@ -125,31 +144,34 @@ def region_above(points: FloatArray, cells: IndexArray, cell_volume: FloatArray,
         The level; a node exactly at it counts as not above (the region is open, its volume
         the same either way).
     """
-    s = values[cells] - level
-    above = s > 0.0
-    n_above = above.sum(axis=0)
+    is_above = values > level
+    n_above = is_above[cells].sum(axis=0, dtype=np.int8)
     whole = np.nonzero(n_above == 4)[0]
-    parts = [_pieces(points, cells, np.abs(cell_volume), s, above, np.nonzero(n_above == k)[0],
-                     k, level) for k in (1, 2, 3)]
+    cut = np.nonzero((n_above > 0) & (n_above < 4))[0]
+    s = values[cells[:, cut]] - level
+    parts = [_pieces(points, cells[:, cut], np.abs(cell_volume[cut]), s, n_above[cut] == k,
+                     cut, k, level) for k in (1, 2, 3)]
     return RegionAbove(
-        whole=whole,
+        points=points, cells=cells, values=values, level=level, whole=whole,
+        whole_volume=np.abs(cell_volume[whole]),
         piece_cell=np.concatenate([p[0] for p in parts]),
         piece_points=np.concatenate([p[1] for p in parts], axis=2),
         piece_values=np.concatenate([p[2] for p in parts], axis=1),
-        piece_volume=np.concatenate([p[3] for p in parts]),
-        whole_volume=np.abs(cell_volume[whole]), whole_values=values[cells[:, whole]],
-        whole_points=points[:, cells[:, whole]])
+        piece_volume=np.concatenate([p[3] for p in parts]))
 
 
-def _pieces(points: FloatArray, cells: IndexArray, volume: FloatArray, s: FloatArray,
-            above: BoolArray, ids: IndexArray, k: int, level: float,
+def _pieces(points: FloatArray, cut_cells: IndexArray, cut_volume: FloatArray, s: FloatArray,
+            select: BoolArray, cut_ids: IndexArray, k: int, level: float,
             ) -> tuple[IndexArray, FloatArray, FloatArray, FloatArray]:
-    """Tetrahedra covering the part above the level of the cells ``ids``, which have ``k``
-    nodes above it: (parent cell, vertices ``(3, 4, p)``, values ``(4, p)``, volumes)."""
-    order = np.argsort(~above[:, ids], axis=0, kind="stable")  # nodes above first
-    sv = np.take_along_axis(s[:, ids], order, axis=0)
-    x = points[:, np.take_along_axis(cells[:, ids], order, axis=0)]  # (3, 4, m)
-    v = volume[ids]
+    """Tetrahedra covering the part above the level of the cut cells ``select`` picks, which
+    have ``k`` nodes above it (``s`` = field − level at the cut cells' nodes ``(4, m)``):
+    (parent cell, vertices ``(3, 4, p)``, values ``(4, p)``, volumes)."""
+    ids = cut_ids[select]
+    s_k = s[:, select]
+    order = np.argsort(s_k <= 0.0, axis=0, kind="stable")  # nodes above first
+    sv = np.take_along_axis(s_k, order, axis=0)
+    x = points[:, np.take_along_axis(cut_cells[:, select], order, axis=0)]  # (3, 4, m)
+    v = cut_volume[select]
     c = sv + level
 
     def cut(i: int, j: int) -> tuple[FloatArray, FloatArray]:
