@@ -134,6 +134,7 @@ def plot_section(path: Path, section: Section, *, limit: float, conc_unit: str,
                   f"towards A' ({section.end[0]:.0f} m, {section.end[1]:.0f} m) [m]")
     ax.set_ylabel("elevation [m]")
     length = float(np.hypot(*(section.end - section.start)))
+    labels: list[tuple[str, float, float]] = []
     for name, s, top, bottom, kind in marks:
         if kind == "source":
             ax.add_patch(Rectangle((s[0], bottom), s[1] - s[0], top - bottom, fill=False,
@@ -142,9 +143,7 @@ def plot_section(path: Path, section: Section, *, limit: float, conc_unit: str,
             well = kind in ("extraction", "injection", "observation")
             ax.plot([s[0], s[0]], [bottom, top], color="navy" if well else "0.35",
                     linewidth=3.0 if well else 1.5)
-        right = s[0] > 0.75 * length
-        ax.annotate(name, (s[1] if right else s[0], top), xytext=(-2 if right else 2, 3),
-                    textcoords="offset points", fontsize=7, ha="right" if right else "left")
+        labels.append((name, s[0], top))
     title = f"{site}\n{species}: section A–A' along the mean flow through the source, {when}"
     ax.set_title(title + " (vertical scale ×00)", fontsize=9)
     fig.tight_layout(rect=(0, 0.03, 1, 1))
@@ -153,6 +152,7 @@ def plot_section(path: Path, section: Section, *, limit: float, conc_unit: str,
     exaggeration = (box.height / dz) / (box.width / length)
     ax.set_title(f"{title} (vertical scale ×{exaggeration:.0f})", fontsize=9)
     ax.legend(fontsize=7, loc="lower right")
+    place_labels(ax, labels)
     return save_figure(fig, path)
 
 
@@ -209,7 +209,7 @@ def _capture_zones(ax: Any, plan: PlanField, backward: dict[str, list[FloatArray
     """Hatch the area each well's backward pathlines sweep (:func:`maps.swept_area`)."""
     lo = np.array([plan.x.min(), plan.y.min()])
     hi = np.array([plan.x.max(), plan.y.max()])
-    step = float((hi - lo).max()) / 400.0
+    step = float((hi - lo).max()) / 300.0
     gx, gy = (np.arange(lo[k], hi[k] + step, step) for k in (0, 1))
     first = True
     for name, lines in backward.items():

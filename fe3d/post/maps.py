@@ -219,7 +219,7 @@ def swept_area(lines: list[FloatArray], centre: tuple[float, float], gx: FloatAr
     """
     px, py = np.meshgrid(gx, gy)
     inside = np.zeros(px.shape, dtype=bool)
-    usable = [p[:2] for p in lines if p.shape[1] >= 2]
+    usable = [_thinned(p[:2], 200) for p in lines if p.shape[1] >= 2]
     angle = [math.atan2(p[1, 0] - centre[1], p[0, 0] - centre[0]) for p in usable]
     order = np.argsort(angle, kind="stable")
     for i, j in zip(order, np.roll(order, -1), strict=True):
@@ -276,3 +276,11 @@ def section_marks(case: Case, start: FloatArray, end: FloatArray, *, within: flo
             marks.append((src.name, (min(s_all), max(s_all)), max(src.z), min(src.z),
                           "source"))
     return tuple(dict.fromkeys(marks))
+
+
+def _thinned(line: FloatArray, most: int) -> FloatArray:
+    """At most ``most`` vertices of a polyline ``(2, k)``, evenly picked, ends kept."""
+    if line.shape[1] <= most:
+        return line
+    keep = np.unique(np.linspace(0, line.shape[1] - 1, most).round().astype(int))
+    return line[:, keep]
