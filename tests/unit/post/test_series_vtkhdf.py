@@ -167,3 +167,23 @@ def test_mesh_files_only_on_request_and_binary_msh_reads_back(mesh, tmp_path):
     np.testing.assert_array_equal(m.points.T, points)
     np.testing.assert_array_equal(m.get_cells_type("tetra").T, cells)
     np.testing.assert_array_equal(m.get_cell_data("gmsh:physical", "tetra") - 1, layer)
+
+
+def test_pathlines_read_back_by_pyvista_with_times_in_the_display_unit(tmp_path):
+    """Each polyline comes back with its vertices, its travel times in the display unit and
+    its particle number; a line of one vertex is left out."""
+    from fe3d.post.vtk import write_pathlines
+
+    year = 3.15576e7
+    lines = [(np.array([[0.0, 1.0, 2.0], [0.0, 0.5, 1.0], [5.0, 5.0, 4.0]]),
+              np.array([0.0, 1.0, 2.5]) * year),
+             (np.zeros((3, 1)), np.zeros(1)),
+             (np.array([[9.0, 8.0], [1.0, 1.0], [2.0, 2.0]]), np.array([0.0, 3.0]) * year)]
+    path = write_pathlines(tmp_path / "pathlines.vtp", lines, time_unit_seconds=year,
+                           time_unit="yr")
+    poly = pv.read(path)
+    np.testing.assert_array_equal(poly.points, np.hstack([lines[0][0], lines[2][0]]).T)
+    np.testing.assert_allclose(poly.point_data["travel_time [yr]"], [0.0, 1.0, 2.5, 0.0, 3.0],
+                               rtol=1e-15)
+    np.testing.assert_array_equal(poly.cell_data["particle"], [0, 2])
+    assert poly.n_lines == 2
