@@ -49,7 +49,8 @@ from fe3d.transport.step import StepContext, StepResult, StepState, UserLaw, tak
 from fe3d.transport.systems import Scheme, StepSystems
 from fe3d.transport.timeschemes import local_error, step_coefficients, weighted_error
 
-__all__ = ["Snapshot", "TransportDiagnostics", "run_transport", "time_steps"]
+__all__ = ["Snapshot", "TransportDiagnostics", "next_state", "run_transport", "step_context",
+           "time_steps"]
 
 logger = logging.getLogger(__name__)
 
@@ -97,7 +98,7 @@ def run_transport(
         before stays valid.
     """
     limit_blas_threads()
-    ctx = _step_context(site, flow, inputs, base_dir)
+    ctx = step_context(site, flow, inputs, base_dir)
     species, tc = ctx.species, inputs.time
     probe = _observation_operator(site, flow, inputs)
     schedule = inputs.output_schedule()
@@ -147,7 +148,7 @@ def run_transport(
                         step.dt, "; ".join(lows), f"; Newton {result.newton_iterations} "
                         "iterations" if result.solver_kind == "newton" else "")
         restart = planner.advance(step)
-        state = _next_state(result, site.n_nodes, restart)
+        state = next_state(result, site.n_nodes, restart)
         dt_prev = None if restart else step.dt  # a source switched: multistep schemes restart
         accepted = [(step.t1, state.fields)] if restart else [
             *accepted[-2:], (step.t1, state.fields)]
@@ -166,7 +167,7 @@ def _without_older(state: StepState) -> StepState:
                      last_budget=state.last_budget)
 
 
-def _next_state(result: StepResult, n: int, restart: bool) -> StepState:
+def next_state(result: StepResult, n: int, restart: bool) -> StepState:
     """The state after an accepted step; after a restart nothing is carried (T13)."""
     held = {}
     for name, b in result.budget.items():
@@ -193,7 +194,7 @@ def _local_error(tc: TimeControl, species: tuple[SpeciesModel, ...], result: Ste
     return max(errs) if errs else None
 
 
-def _step_context(site: SiteMesh, flow: FlowField, inputs: TransportInputs,
+def step_context(site: SiteMesh, flow: FlowField, inputs: TransportInputs,
                   base_dir: Path | None) -> StepContext:
     """Everything the steps share, built once."""
     medium = build_medium(site, flow, inputs.ground)
