@@ -147,14 +147,24 @@ def measure_plume(points: FloatArray, cells: IndexArray, cell_volume: FloatArray
 
 def write_isosurface(path: Path, points: FloatArray, cells: IndexArray, conc: FloatArray,
                      level: float, *, name: str) -> Path:
-    """Contour surface c = level of a P1 field as .vtp (an empty file when nothing exceeds)."""
+    """Contour surface c = level of a P1 field as .vtp (an empty file when nothing exceeds).
+
+    Only the cells the level reaches (some node at or above it, some at or below) are handed
+    to VTK's contour filter: the surface lies in them alone, and the filter then reads a few
+    per cent of the mesh."""
     import pyvista as pv
 
-    grid = pv.UnstructuredGrid({pv.CellType.TETRA: np.ascontiguousarray(cells.T)},
-                               np.ascontiguousarray(points.T))
-    grid.point_data[name] = conc
-    surf = grid.contour([level], scalars=name) if conc.max() > level > conc.min() else \
-        pv.PolyData()
+    touches = (conc >= level)[cells].any(axis=0) & (conc <= level)[cells].any(axis=0)
+    cut = cells[:, touches]
+    if cut.size:
+        nodes, local = np.unique(cut, return_inverse=True)
+        grid = pv.UnstructuredGrid(
+            {pv.CellType.TETRA: np.ascontiguousarray(local.reshape(cut.shape).T)},
+            np.ascontiguousarray(points[:, nodes].T))
+        grid.point_data[name] = conc[nodes]
+        surf = grid.contour([level], scalars=name)
+    else:
+        surf = pv.PolyData()
     write_atomic(path, lambda p: surf.save(str(p)))
     return path
 
