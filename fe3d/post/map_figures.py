@@ -106,7 +106,7 @@ def _plan_axes(ax: Any, title: str, outline: FloatArray) -> None:
     ax.set_xlabel("x [m]")
     ax.set_ylabel("y [m]")
     ax.set_title(title, fontsize=9)
-    ax.legend(fontsize=6.5, loc="upper left", bbox_to_anchor=(0.0, -0.13), ncol=4,
+    ax.legend(fontsize=6.5, loc="upper left", bbox_to_anchor=(0.0, -0.16), ncol=4,
               frameon=False)
 
 
