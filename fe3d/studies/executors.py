@@ -90,6 +90,27 @@ def study_executor(*, n_runs: int, scheduler: str | None = None,
     if scheduler is None and (workers or machine_workers(n_runs)) == 1:
         yield StudyExecutor(SerialExecutor(), 1, "this process, one run at a time")
         return
+    quiet = logging.getLogger("distributed")
+    level = quiet.level
+    quiet.setLevel(logging.ERROR)  # the nannies' notes on closing are not the user's business
+    try:
+        with _client(scheduler, workers, n_runs) as (client, n, where):
+            executor = client.get_executor(pure=False)
+            try:
+                yield StudyExecutor(executor, n, where,
+                                    lambda obj: client.scatter(obj, broadcast=True,
+                                                               hash=False))
+            finally:
+                executor.shutdown(wait=False)
+    finally:
+        quiet.setLevel(level)
+
+
+@contextmanager
+def _client(scheduler: str | None, workers: int | None, n_runs: int
+            ) -> Iterator[tuple[Any, int, str]]:
+    """A dask client of a new local cluster or of the scheduler at ``scheduler``, the
+    number of runs it takes at once, and where that is in words."""
     from distributed import Client, LocalCluster
 
     cluster = None
@@ -110,12 +131,9 @@ def study_executor(*, n_runs: int, scheduler: str | None = None,
         n = max(1, sum(w.get("nthreads", 1) for w in
                        client.scheduler_info()["workers"].values()))
         where = f"cluster at {scheduler}, {n} worker threads"
-    executor = client.get_executor(pure=False)
     try:
-        yield StudyExecutor(executor, n, where,
-                            lambda obj: client.scatter(obj, broadcast=True, hash=False))
+        yield client, n, where
     finally:
-        executor.shutdown(wait=False)
         client.close()
         if cluster is not None:
             cluster.close()
