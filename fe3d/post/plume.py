@@ -174,10 +174,11 @@ def measuring_frames(case: Case, site: SiteMesh, flow: FlowField) -> dict[str, M
 
     The direction is that of the volume-weighted mean horizontal Darcy flux over the model
     (+x when it vanishes). The origin is the plan centre of the species' first source; for
-    a source on a face patch, the mean plan position of the face's nodes inside the patch's
-    ranges (the distance downstream is then the distance from the face when the face lies
-    across the flow); a daughter without a source of its own takes its parent's; a species
-    with no source at all, the plan centre of the model.
+    a source on a patch of a side face, the mean plan position of the face's nodes inside
+    the patch's ranges (the distance downstream is then the distance from the face when the
+    face lies across the flow; a patch on the top or bottom face is measured from its plan
+    centre like a box); a daughter without a source of its own takes its parent's; a
+    species with no source at all, the plan centre of the model.
     """
     vol = np.abs(site.cell_volumes())
     mean = (flow.darcy_flux[:2] * vol).sum(axis=1)
@@ -193,7 +194,7 @@ def measuring_frames(case: Case, site: SiteMesh, flow: FlowField) -> dict[str, M
         parent = case.species[name].parent
         if src is None:
             return frame(parent) if parent is not None else MeasuringFrame(centre, along)
-        if src.shape == "face_patch" and src.face is not None:
+        if src.shape == "face_patch" and src.face not in (None, "top", "bottom"):
             nodes = site.face_nodes(src.face)
             inside = np.ones(nodes.size, dtype=bool)
             for axis, rng in enumerate((src.x, src.y, src.z)):
