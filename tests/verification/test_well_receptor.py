@@ -63,23 +63,28 @@ def test_pumped_concentration_of_a_field_linear_in_depth_is_the_weighted_mean():
 @pytest.mark.parametrize(("scheme", "weight"), [("backward_euler", 1.0),
                                                 ("crank_nicolson", 0.5)])
 def test_mass_flux_of_each_receptor_is_the_budgets_outflow_term(scheme, weight):
-    """The tiny case with a pumping well, SUPG without the bounded correction, an output
-    at every step: for the well and the east face (fixed head, water leaving), the budget's
+    """The tiny case with a pumping well and a stream zone on the top face (stage 4 m,
+    below the head there, so water leaves into it), SUPG without the bounded correction, an
+    output at every step: for the well, the stream and the east face (fixed head, water
+    leaving), the budget's
     cumulative outflow grows over each step by Δt (ϑ F(t₁) + (1 − ϑ) F(t₀)), F the
     receptor's mass flux. Tolerance 1e-10 of the largest step increment (the issue's bound;
     the round-off of a cumulative sum of ~40 terms is ~40 ε of it)."""
     pump = {"name": "fence_pump", "x": "40 m", "y": "10 m", "screens": [["4 m", "2 m"]],
             "rate": "3 m^3/d"}
-    case = with_changes(load_case(TINY), wells=[pump],
+    creek = {"name": "creek", "kind": "stream", "stage": "4 m", "leakance": "0.1 d^-1",
+             "zone": [["44 m", "0 m"], ["56 m", "0 m"], ["56 m", "20 m"], ["44 m", "20 m"]]}
+    case = with_changes(load_case(TINY), wells=[pump], head_dependent=[creek],
                         time={"scheme": scheme, "end": "400 d", "step": "10 d",
                               "output_interval": "10 d"},
                         solver={"monotone": False})
     site, flow = mesh_and_flow(case)
     receptors = {r.name: r for r in receptors_of(site, flow)}
-    assert {"fence_pump", "east"} <= set(receptors)
+    assert {"fence_pump", "east", "creek"} <= set(receptors)
+    assert receptors["creek"].kind == "stream"
     assert "west" not in receptors  # water enters there
     snaps = list(run_transport(site, flow, TransportInputs.of(case)))
-    for name in ("fence_pump", "east"):
+    for name in ("fence_pump", "east", "creek"):
         r = receptors[name]
         steps = [(b.time - a.time,
                   b.budgets["tracer"].outflow[name] - a.budgets["tracer"].outflow[name],
