@@ -66,16 +66,18 @@ def draw_site(ax: Any, features: SiteFeatures) -> list[tuple[str, float, float]]
     returns the labels (text, x, y [m]) for :func:`place_labels`."""
     o = features.outline.xy
     ax.plot(*np.hstack([o, o[:, :1]]), color="black", linewidth=1.2, label="site outline")
+    labels = []
     for i, e in enumerate(features.fixed_head_edges):
         ax.plot(*e.xy, color="royalblue", linewidth=3.0, alpha=0.8, solid_capstyle="butt",
                 label="fixed head" if i == 0 else None)
+        if e.name not in [text for text, _, _ in labels]:
+            labels.append((e.name, float(e.xy[0].mean()), float(e.xy[1].mean())))
     for i, z in enumerate(features.streams):
         ax.fill(*z.xy, facecolor="none", edgecolor="royalblue", hatch="---", linewidth=0.8,
                 label="stream or drain zone" if i == 0 else None)
     for i, lens in enumerate(features.lenses):
         ax.fill(*lens.xy, facecolor="none", edgecolor="saddlebrown", linestyle=":",
                 linewidth=1.0, label="lens" if i == 0 else None)
-    labels = []
     for i, a in enumerate(features.source_areas):
         xy = np.hstack([a.xy, a.xy[:, :1]]) if a.closed else a.xy
         ax.plot(*xy, color="white", linewidth=3.0)

@@ -102,3 +102,20 @@ def test_series_of_a_run_holds_the_flow_once_and_every_time(pumped, tmp_path):
         np.testing.assert_allclose(grid.point_data["tracer [mg per L]"], f["tracer [mg/L]"],
                                    rtol=F32_ROUNDOFF)
         np.testing.assert_array_equal(grid.cell_data["unit_id"], site.cell_layer)
+
+
+def test_site_features_of_the_pumped_case(pumped):
+    """What a plan map marks, read from the case: the outline, the fixed-head edges, the
+    source's box and every well and observation point (behaviour test)."""
+    from fe3d.post.maps import site_features
+
+    case = pumped[0]
+    f = site_features(case)
+    assert f.site == "Pellet Lane test box (invented)"
+    np.testing.assert_allclose(np.sort(f.outline.xy[0]), [0.0, 0.0, 60.0, 60.0])
+    assert sorted(e.name for e in f.fixed_head_edges) == ["east", "west"]
+    (area,) = f.source_areas
+    assert area.name == "drum_spill" and area.closed
+    np.testing.assert_allclose(area.xy, [[8, 12, 12, 8], [8, 8, 12, 12]])
+    assert {(m.name, m.kind) for m in f.marks} == {
+        ("PW-1", "extraction"), ("BH-A", "monitoring"), ("fence_well", "receptor")}
