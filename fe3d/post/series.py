@@ -111,6 +111,26 @@ class SeriesFile:
         root.create_dataset("Offsets", data=np.arange(0, 4 * self.n_cells + 1, 4, dtype=index))
         root.create_dataset("Types", data=np.full(self.n_cells, VTK_TETRA, dtype=np.uint8))
 
+    def add_static(self, *, point_data: dict[str, FloatArray] | None = None,
+                   cell_data: dict[str, FloatArray] | None = None) -> None:
+        """Store further arrays once, shown at every time (e.g. the largest value over the
+        run, known only at its end); names must not repeat one already stored."""
+        root = self._file["VTKHDF"]
+        steps = root.get("Steps")
+        for group, arrays, known in (("PointData", point_data, self.static_point),
+                                     ("CellData", cell_data, self.static_cell)):
+            for name, values in (arrays or {}).items():
+                key = array_name(name)
+                if key in root[group] or key in (self.names or []):
+                    msg = f"array {key!r} is already stored in {self.path.name}"
+                    raise ValueError(msg)
+                kind = self.dtype if np.issubdtype(values.dtype, np.floating) else values.dtype
+                root[group].create_dataset(key, data=np.ascontiguousarray(values, dtype=kind))
+                if steps is not None:
+                    _offsets(steps[f"{group}Offsets"], key, step_count=self.n_steps)
+                known[key] = values
+        self._file.flush()
+
     def add(self, time: float, point_data: dict[str, FloatArray]) -> None:
         """Append one output time (in ``time_unit``) with its nodal arrays [display units],
         each shape ``(n_nodes,)``; every call must give the same names."""

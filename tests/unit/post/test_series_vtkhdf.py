@@ -72,6 +72,8 @@ def test_series_vtkhdf_gives_back_mesh_static_and_per_time_arrays(mesh, tmp_path
                     time_unit="yr") as series:
         for t, f in zip(times, fields, strict=True):
             series.add(t, f)
+        largest = np.max([f["solvent [mg/L]"] for f in fields], axis=0)
+        series.add_static(point_data={"solvent largest [mg/L]": largest})
     back_times, grids = _read_steps(path)
     assert back_times == times
     for grid, f in zip(grids, fields, strict=True):
@@ -79,6 +81,8 @@ def test_series_vtkhdf_gives_back_mesh_static_and_per_time_arrays(mesh, tmp_path
         np.testing.assert_array_equal(grid.cells_dict[pv.CellType.TETRA], cells.T)
         np.testing.assert_allclose(grid.point_data["head [m]"], head, rtol=F32_ROUNDOFF)
         np.testing.assert_array_equal(grid.cell_data["unit_id"], unit)
+        np.testing.assert_allclose(grid.point_data["solvent largest [mg per L]"], largest,
+                                   rtol=F32_ROUNDOFF)
         np.testing.assert_allclose(grid.cell_data["darcy_flux [m per d]"], flux, rtol=F32_ROUNDOFF)
         for name, values in f.items():
             got = grid.point_data[array_name(name)]
