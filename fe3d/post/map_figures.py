@@ -42,15 +42,16 @@ def concentration_levels(peak: float, limit: float) -> FloatArray:
 
 
 def _concentration_fill(ax: Any, x: FloatArray, y: FloatArray, tri: Any, values: FloatArray,
-                        limit: float, unit: str) -> Any:
-    """Log-spaced filled contours (values below the lowest level left blank) and the limit
-    contour; returns the filled set for the colour bar."""
+                        limit: float, unit: str, top: float | None = None) -> Any:
+    """Log-spaced filled contours up to ``top`` (default: the values' largest; values
+    below the lowest level left blank) and the limit contour; returns the filled set for
+    the colour bar."""
     from matplotlib.colors import BoundaryNorm
     from matplotlib.tri import Triangulation
 
     t = Triangulation(x, y, tri.T)
     peak = float(values.max())
-    levels = concentration_levels(peak, limit)
+    levels = concentration_levels(max(peak, top or 0.0), limit)
     cmap = pyplot().get_cmap(CONCENTRATION_COLOURS)
     filled = ax.tricontourf(t, values, levels=[*levels, max(peak, levels[-1]) * 1.001],
                             cmap=cmap, norm=BoundaryNorm(levels, cmap.N, extend="max"))
@@ -70,15 +71,19 @@ def _concentration_bar(fig: Any, ax: Any, filled: Any, label: str) -> None:
 
 def plot_plan_maximum(path: Path, plan: PlanField, *, limit: float, features: SiteFeatures,
                       conc_unit: str, species: str, when: str,
-                      section: tuple[FloatArray, FloatArray] | None = None) -> Path:
+                      section: tuple[FloatArray, FloatArray] | None = None,
+                      scale_top: float | None = None) -> Path:
     """Plan map of the largest concentration over depth (``plan.values`` [kg/m³]) with the
     limit [kg/m³] contour and the site's features; ``when`` says which time it shows (an
-    output time, or "largest over the whole run"); ``section`` marks a section's trace."""
+    output time, or "largest over the whole run"); ``section`` marks a section's trace;
+    ``scale_top`` [kg/m³] (e.g. the source's largest concentration) fixes the top of the
+    colour scale, so that the maps of a run's output times share one scale."""
     plt = pyplot()
     scale = from_si(1.0, conc_unit)
     fig, ax = plt.subplots(figsize=(8.5, 5.6))
     filled = _concentration_fill(ax, plan.x, plan.y, plan.triangles, plan.values * scale,
-                                 limit * scale, conc_unit)
+                                 limit * scale, conc_unit,
+                                 None if scale_top is None else scale_top * scale)
     labels = draw_site(ax, features)
     if section is not None:
         (x0, y0), (x1, y1) = section

@@ -114,11 +114,17 @@ class PlumeFigures:
         return written
 
     def _plan(self, name: str, c: FloatArray, species: str, when: str) -> None:
+        """One plan map; the colour scale tops at the species' largest source or initial
+        concentration when there is one, the same at every output time."""
+        top = max([s.peak_concentration for s in self.case.sources
+                   if s.species == species and s.peak_concentration is not None]
+                  + [self.case.species[species].initial_concentration], default=0.0)
         plot_plan_maximum(self.out_dir / name,
                           plan_maximum(self.site.points, c, self.features.outline.xy),
                           limit=self.case.species[species].limit, features=self.features,
                           conc_unit=self.case.output.concentration_unit, species=species,
-                          when=when, section=self.section_trace(species))
+                          when=when, section=self.section_trace(species),
+                          scale_top=top if top > 0 else None)
 
     def finish(self) -> list[str]:
         """The whole run's plan map, section and 3D view per species, and the plume sizes
