@@ -90,10 +90,10 @@ def measure(h: float, dz: float) -> dict[str, Any]:
             costs, seconds, lows = [], [], []
             dt_prev = None
             for k in range(STEPS):
-                co = step_coefficients(case.time.scheme, dt, dt_prev)
+                formula = step_coefficients(case.time.scheme, dt, dt_prev)
                 before = _spmv_seconds(unit_matrix)
                 t = time.perf_counter()
-                result = take_step(ctx, state, k * dt, (k + 1) * dt, dt, co)
+                result = take_step(ctx, state, k * dt, (k + 1) * dt, dt, formula)
                 spent = time.perf_counter() - t
                 unit = 0.5 * (before + _spmv_seconds(unit_matrix))
                 costs.append(spent / unit)

@@ -130,10 +130,10 @@ def run_transport(
     while not planner.finished:
         rates = courant.rates(state.fields, planner.t)
         step = planner.next(PlumeCourant.step(rates, tc.courant, tc.end))
-        co = step_coefficients(tc.scheme, step.dt, dt_prev)
+        formula = step_coefficients(tc.scheme, step.dt, dt_prev)
         try:
-            result = take_step(ctx, state if co.a2 else _without_older(state),
-                               step.t0, step.t1, step.dt, co)
+            result = take_step(ctx, state if formula.a2 else _without_older(state),
+                               step.t0, step.t1, step.dt, formula)
         except SolverError as exc:  # NewtonError included
             planner.failed(step, exc)
             continue

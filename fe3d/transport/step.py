@@ -145,7 +145,7 @@ class StepResult:
 
 
 def take_step(ctx: StepContext, state: StepState, t0: float, t1: float, dt: float,
-              co: StepCoefficients) -> StepResult:
+              formula: StepCoefficients) -> StepResult:
     """Every species from t0 to t1 [s]; nothing is committed (a failure leaves no trace).
 
     ``dt`` is t1 − t0 rounded to 12 significant digits, so that equal steps share their
@@ -167,7 +167,7 @@ def take_step(ctx: StepContext, state: StepState, t0: float, t1: float, dt: floa
         for s in order:
             user_rates = _user_rates(ctx, s, new_conc, conc)
             new, step_budget, its, loss, n_blocked, method = _step_species(
-                ctx, state, s, t0, t1, dt, co, decay_loss, user_rates)
+                ctx, state, s, t0, t1, dt, formula, decay_loss, user_rates)
             if n_blocked is not None:
                 blocked[s.name] = n_blocked
             if loss is not None:
@@ -209,7 +209,7 @@ def _user_rates(ctx: StepContext, s: SpeciesModel, current: dict[str, FloatArray
 
 def _step_species(
     ctx: StepContext, state: StepState, s: SpeciesModel, t0: float, t1: float, dt: float,
-    co: StepCoefficients, decay_loss: dict[str, FloatArray],
+    formula: StepCoefficients, decay_loss: dict[str, FloatArray],
     user_rates: tuple[RateLaw, RateLaw] | None,
 ) -> tuple[FloatArray, StepBudget, int, FloatArray | None, float | None, str]:
     """One species over one step: new field, budget terms, Newton iterations, the decay
@@ -218,15 +218,15 @@ def _step_species(
     linear solver of the step system."""
     step = (ctx, state, s, t0, t1, dt)
     if ctx.systems.limited(s):  # T16b: a low-order backward Euler step, then corrected
-        return _attempt(*step, BACKWARD_EULER, co, decay_loss, user_rates)
-    if ctx.systems.scheme.monotone and co.theta < 1.0:
+        return _attempt(*step, BACKWARD_EULER, formula, decay_loss, user_rates)
+    if ctx.systems.scheme.monotone and formula.theta < 1.0:
         # T16: the low-order Crank–Nicolson step is kept when it stays within the bounds,
         # else the step is taken again with backward Euler, which is bounded at any step
-        out = _attempt(*step, co, None, decay_loss, user_rates)
+        out = _attempt(*step, formula, None, decay_loss, user_rates)
         if _within_bounds(ctx, s, state.fields[s.name], out[0]):
             return out
         return _attempt(*step, BACKWARD_EULER, None, decay_loss, user_rates)
-    return _attempt(*step, co, None, decay_loss, user_rates)
+    return _attempt(*step, formula, None, decay_loss, user_rates)
 
 
 def _within_bounds(ctx: StepContext, s: SpeciesModel, old: FloatArray,
@@ -246,16 +246,16 @@ def _within_bounds(ctx: StepContext, s: SpeciesModel, old: FloatArray,
 
 def _attempt(
     ctx: StepContext, state: StepState, s: SpeciesModel, t0: float, t1: float, dt: float,
-    co: StepCoefficients, target: StepCoefficients | None,
+    formula: StepCoefficients, target: StepCoefficients | None,
     decay_loss: dict[str, FloatArray], user_rates: tuple[RateLaw, RateLaw] | None,
 ) -> tuple[FloatArray, StepBudget, int, FloatArray | None, float | None, str]:
-    """One species over one step with the coefficients ``co``, corrected towards the
+    """One species over one step with the coefficients ``formula``, corrected towards the
     Galerkin step of ``target`` when given (T16b); returns as :func:`_step_species`."""
     # sources are evaluated at the step's mean (θ-schemes) or its end (BDF2)
     ta, tb = (t1, t1) if ctx.time_scheme == "bdf2" else (t0, t1)
     held = ctx.sources.held(s.name, t0, t1)
-    sysm = ctx.systems.system(s, dt, co, held.active)
-    fixed = sysm.fixed
+    step_system = ctx.systems.system(s, dt, formula, held.active)
+    fixed = step_system.fixed
     load = ctx.sources.load(s.name, t0, t1, ta, tb)
     if s.spec.parent is not None:  # first-order decay of the parent feeds it (T12)
         load = load + s.spec.yield_from_parent * decay_loss[s.spec.parent]
@@ -271,40 +271,41 @@ def _attempt(
             s.sorbed_mass(old + jump) - s.sorbed_mass(old)
         old = old + jump
     prev = None if state.older is None else state.older[s.name]
-    hist_part = co.a1 * old + (0.0 if prev is None else co.a2 * prev)
-    rhs = sysm.known_terms(hist_part, old, dt) + load
+    hist_part = formula.a1 * old + (0.0 if prev is None else formula.a2 * prev)
+    rhs = step_system.known_terms(hist_part, old, dt) + load
     guess = old.copy()
     guess[fixed] = held.end[fixed]
     aim = None if target is None else Target(
         target, ctx.systems.target_system(s, dt, target, held.active), load,
         None if state.older is None else state.older[s.name])
-    solve = _Solve(ctx, s, old, prev, dt, co, user_rates, aim)
-    new, r, other_loss, its = solve(sysm, rhs, guess)
+    solve = _Solve(ctx, s, old, prev, dt, formula, user_rates, aim)
+    new, r, other_loss, its = solve(step_system, rhs, guess)
     for _ in range(ctx.solver.shock_capturing_passes if ctx.solver.shock_capturing else 0):
-        sys_x, extra = _with_shock_capturing(ctx, s, sysm, new, old, prev, dt, co)
+        sys_x, extra = _with_shock_capturing(ctx, s, step_system, new, old, prev, dt, formula)
         new, r, other_loss, its_x = solve(sys_x, rhs + extra, new)
         its = max(its, its_x)
     if not np.all(np.isfinite(new)):
         msg = f"{s.name}: the step from t = {t0:.6g} s gave non-finite values"
         raise SolverError(msg)
     flux_state = new if solve.limited_state is None else solve.limited_state
-    c_mid = co.theta * flux_state + (1.0 - co.theta) * old
+    c_mid = formula.theta * flux_state + (1.0 - formula.theta) * old
     loss = None
     if s.name in ctx.decay_matrix:
         loss = ctx.decay_matrix[s.name] @ c_mid + (
-            _sorbed_decay_rate(s, new, old, co.theta) if s.isotherms else 0.0)
+            _sorbed_decay_rate(s, new, old, formula.theta) if s.isotherms else 0.0)
     now = StepBudget(
         source_input=dt * (float(r[fixed].sum()) + float(load.sum())),
         decayed=dt * float(s.decay_weight @ c_mid) + other_loss,
         outflow={f: dt * float(w @ c_mid) for f, w in s.outflow_weights.items()},
         switch_on=switch_on, fixed=fixed, start=old)
     last = state.last_budget.get(s.name)
-    if co.a2 != 0.0 and last is not None:  # a multistep scheme spreads them (T13)
+    if formula.a2 != 0.0 and last is not None:  # a multistep scheme spreads them (T13)
+        a0, a2 = formula.a0, formula.a2
         now = replace(
-            now, source_input=(now.source_input + co.a2 * last.source_input) / co.a0,
-            decayed=(now.decayed + co.a2 * last.decayed) / co.a0,
-            outflow={f: (x + co.a2 * last.outflow[f]) / co.a0 for f, x in now.outflow.items()})
-    return new, now, its, loss, solve.blocked, sysm.solver.method
+            now, source_input=(now.source_input + a2 * last.source_input) / a0,
+            decayed=(now.decayed + a2 * last.decayed) / a0,
+            outflow={f: (x + a2 * last.outflow[f]) / a0 for f, x in now.outflow.items()})
+    return new, now, its, loss, solve.blocked, step_system.solver.method
 
 
 @dataclass(frozen=True)
@@ -324,9 +325,9 @@ class _Solve:
     fluxes acted on (the budget's state) and the share of nodes the limiter blocked."""
 
     def __init__(self, ctx: StepContext, s: SpeciesModel, old: FloatArray,
-                 prev: FloatArray | None, dt: float, co: StepCoefficients,
+                 prev: FloatArray | None, dt: float, formula: StepCoefficients,
                  user_rates: tuple[RateLaw, RateLaw] | None, target: Target | None) -> None:
-        self.ctx, self.s, self.old, self.prev, self.dt, self.co = ctx, s, old, prev, dt, co
+        self.ctx, self.s, self.old, self.prev, self.dt, self.co = ctx, s, old, prev, dt, formula
         self.user_rates, self.target = user_rates, target
         self.limited_state: FloatArray | None = None
         self.blocked: float | None = None
@@ -359,9 +360,9 @@ class _Solve:
     def _target_step(self, guess: FloatArray, low: FloatArray) -> FloatArray:
         """The Galerkin step of the target scheme (T16b), started from the low-order one."""
         assert self.target is not None
-        co, sy, load, prev = (self.target.scheme, self.target.system, self.target.load,
+        formula, sy, load, prev = (self.target.scheme, self.target.system, self.target.load,
                               self.target.older)
-        hist = co.a1 * self.old + (0.0 if prev is None else co.a2 * prev)
+        hist = formula.a1 * self.old + (0.0 if prev is None else formula.a2 * prev)
         rhs = sy.known_terms(hist, self.old, self.dt) + load
         high = guess.copy()
         high[sy.free] = sy.solver.solve(rhs[sy.free] - sy.S_fD @ guess[sy.fixed],
@@ -370,8 +371,8 @@ class _Solve:
 
 
 def _with_shock_capturing(
-    ctx: StepContext, s: SpeciesModel, sysm: StepSystem, new: FloatArray, old: FloatArray,
-    prev: FloatArray | None, dt: float, co: StepCoefficients,
+    ctx: StepContext, s: SpeciesModel, step_system: StepSystem, new: FloatArray, old: FloatArray,
+    prev: FloatArray | None, dt: float, formula: StepCoefficients,
 ) -> tuple[StepSystem, FloatArray]:
     """The step system with the shock-capturing diffusion of the last iterate held fixed
     (T15), and the explicit part it adds to the right-hand side."""
@@ -380,17 +381,17 @@ def _with_shock_capturing(
     nu = shock_diffusivity(
         site.cells, ctx.grads, new, old, dt=dt, m=c.storage, q=ctx.darcy_flux, k=c.decay,
         h=c.element_length, along_dispersion=c.storage * c.along_flow_diffusivity,
-        theta_t=co.theta, time_weights=(co.a0, co.a1, co.a2), c_older=prev)
+        theta_t=formula.theta, time_weights=(formula.a0, formula.a1, formula.a2), c_older=prev)
     Kx = isotropic_stiffness(site.points, site.cells, nu, site.n_nodes, pattern=pattern)
-    S_x = pattern.matrix(sysm.S.data + co.theta * Kx.data)
-    S_x_ff, S_x_fD = split_rows(S_x, sysm.free, sysm.fixed)
+    S_x = pattern.matrix(step_system.S.data + formula.theta * Kx.data)
+    S_x_ff, S_x_fD = split_rows(S_x, step_system.free, step_system.fixed)
     # small systems: a new factor; large ones: the step's preconditioner reused
     tol = ctx.solver.tolerance
     solver_x: LinearSolver | NearbySolver = LinearSolver(S_x_ff, method="direct", tol=tol) \
-        if sysm.solver.method == "direct" else NearbySolver(
-            S_x_ff, sysm.solver.preconditioner(), tol, sysm.solver.method)
-    return (replace(sysm, S=S_x, S_fD=S_x_fD, solver=solver_x),
-            (co.theta - 1.0) * (Kx @ old))
+        if step_system.solver.method == "direct" else NearbySolver(
+            S_x_ff, step_system.solver.preconditioner(), tol, step_system.solver.method)
+    return (replace(step_system, S=S_x, S_fD=S_x_fD, solver=solver_x),
+            (formula.theta - 1.0) * (Kx @ old))
 
 
 def anderson(history: list[tuple[FloatArray, FloatArray]], x: FloatArray,
@@ -414,8 +415,8 @@ def anderson(history: list[tuple[FloatArray, FloatArray]], x: FloatArray,
 
 
 def nonlinear_step(
-    s: SpeciesModel, sysm: StepSystem, rhs: FloatArray, old: FloatArray,
-    prev: FloatArray | None, new: FloatArray, dt: float, co: StepCoefficients, *, tol: float,
+    s: SpeciesModel, step_system: StepSystem, rhs: FloatArray, old: FloatArray,
+    prev: FloatArray | None, new: FloatArray, dt: float, formula: StepCoefficients, *, tol: float,
     max_iter: int, user_rates: tuple[RateLaw, RateLaw] | None = None,
 ) -> tuple[FloatArray, FloatArray, float, int]:
     """One step with nonlinear sorption and/or reactions, by Newton (T10, T11, T13).
@@ -437,21 +438,21 @@ def nonlinear_step(
     def sorbed(c: FloatArray) -> tuple[FloatArray, FloatArray]:
         return s.sorbed(c) if nonlin_sorption else (np.zeros_like(c), np.zeros_like(c))
 
-    th = co.theta
-    free = sysm.free
+    th = formula.theta
+    free = step_system.free
     sig_old, _ = sorbed(old)
-    sig_hist = co.a1 * sig_old + (0.0 if prev is None else co.a2 * sorbed(prev)[0])
+    sig_hist = formula.a1 * sig_old + (0.0 if prev is None else formula.a2 * sorbed(prev)[0])
     loss_old, _ = s.reaction_loss(old, rate_start)
-    S_ff = sysm.solver.A  # S on the free nodes, as the solver holds it
+    S_ff = step_system.solver.A  # S on the free nodes, as the solver holds it
     # the step matrix's factor or preconditioner serves every Newton iteration of the step:
     # J differs from S_ff by a diagonal (T10, T11); small systems are factorised afresh
-    direct = sysm.solver.method == "direct"
-    M_step = None if direct else sysm.solver.preconditioner()
+    direct = step_system.solver.method == "direct"
+    M_step = None if direct else step_system.solver.preconditioner()
 
     def full_residual(c: FloatArray) -> FloatArray:
         sig, _ = sorbed(c)
         loss, _ = s.reaction_loss(c, rate_now)
-        return (sysm.S @ c - rhs + (co.a0 * sig + sig_hist) / dt
+        return (step_system.S @ c - rhs + (formula.a0 * sig + sig_hist) / dt
                 + lam_s * (th * sig + (1 - th) * sig_old)
                 + th * loss + (1 - th) * loss_old)
 
@@ -465,7 +466,7 @@ def nonlinear_step(
         c[free] = x
         _, dsig = sorbed(c)
         _, dloss = s.reaction_loss(c, rate_now)
-        J = plus_diagonal(S_ff, dsig[free] * (co.a0 / dt + th * lam_s) + th * dloss[free])
+        J = plus_diagonal(S_ff, dsig[free] * (formula.a0 / dt + th * lam_s) + th * dloss[free])
         if M_step is None:
             return LinearSolver(J, method="direct", tol=min(tol, 1e-12)).solve(r)
         return solve_with_preconditioner(J, r, M_step,

@@ -188,27 +188,27 @@ class StepSystems:
             cache.galerkin = (M0, K0)
         return cache.galerkin
 
-    def target_system(self, s: SpeciesModel, dt: float, co: StepCoefficients,
+    def target_system(self, s: SpeciesModel, dt: float, formula: StepCoefficients,
                       active: tuple[str, ...]) -> StepSystem:
         """The Galerkin step a0/Δt M + θK that flux correction aims at (T16b), reduced to
         the free nodes, with its solver; built like :meth:`system`."""
         cache = self._of(s)
-        key = (float(f"{co.a0 / dt:.12g}"), co.theta, active)
+        key = (float(f"{formula.a0 / dt:.12g}"), formula.theta, active)
         if key not in cache.targets:
             M, K = self.galerkin(s)
             while len(cache.targets) >= MAX_CACHED:
                 cache.targets.pop(next(iter(cache.targets)))
-            cache.targets[key] = self._split(M, K, dt, co, active,
+            cache.targets[key] = self._split(M, K, dt, formula, active,
                                              tol=max(self.solver.tolerance, TARGET_TOLERANCE))
         return cache.targets[key]
 
-    def _split(self, M: sp.csr_matrix, K: sp.csr_matrix, dt: float, co: StepCoefficients,
+    def _split(self, M: sp.csr_matrix, K: sp.csr_matrix, dt: float, formula: StepCoefficients,
                active: tuple[str, ...], tol: float | None = None,
                lumped: bool = False) -> StepSystem:
         """S = a0/Δt M + θK split by held and free nodes, with its solver (relative
         tolerance ``tol``, default ``solver.tolerance``); ``lumped``: M is diagonal."""
         pattern, n = self.site.pattern, self.site.n_nodes
-        S = pattern.matrix((co.a0 / dt) * M.data + co.theta * K.data)
+        S = pattern.matrix((formula.a0 / dt) * M.data + formula.theta * K.data)
         is_fixed = np.zeros(n, dtype=bool)
         for name in active:
             is_fixed[self.held_nodes[name]] = True
@@ -217,21 +217,21 @@ class StepSystems:
         S_ff, S_fD = split_rows(S, free, fixed)
         solver = LinearSolver(S_ff, method=self.solver.linear_solver,
                               tol=self.solver.tolerance if tol is None else tol)
-        explicit = None if co.theta == 1.0 else pattern.matrix((co.theta - 1.0) * K.data)
+        explicit = None if formula.theta == 1.0 else pattern.matrix((formula.theta - 1.0) * K.data)
         return StepSystem(S=S, explicit_part=explicit, M=M,
                           lumped=M.diagonal() if lumped else None, solver=solver,
                           free=free, fixed=fixed, S_fD=S_fD)
 
-    def system(self, s: SpeciesModel, dt: float, co: StepCoefficients,
+    def system(self, s: SpeciesModel, dt: float, formula: StepCoefficients,
                active: tuple[str, ...]) -> StepSystem:
         """S = a0/Δt M + θK for this step, reduced to the free nodes, with its solver."""
         cache = self._of(s)
         dt_tau = self.tau_step(dt)
-        key = (float(f"{co.a0 / dt:.12g}"), co.theta, dt_tau, active)
+        key = (float(f"{formula.a0 / dt:.12g}"), formula.theta, dt_tau, active)
         if key not in cache.systems:
             M, K = self.operators(s, dt_tau)
             while len(cache.systems) >= MAX_CACHED:
                 cache.systems.pop(next(iter(cache.systems)))
-            cache.systems[key] = self._split(M, K, dt, co, active,
+            cache.systems[key] = self._split(M, K, dt, formula, active,
                                              lumped=self.scheme.monotone)
         return cache.systems[key]

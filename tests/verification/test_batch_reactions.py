@@ -52,16 +52,16 @@ def step_equations(scheme, storage, rhs, c_n, c_nm1, dt):
     """Residual and Jacobian of one step of d S(c)/dt = f(c) with the coefficients the
     transport uses (``step_coefficients``, theory.md T13, R17–R19):
     R = [a0 S(c) + a1 S(c^n) + a2 S(c^{n−1})]/Δt − θ f(c) − (1 − θ) f(c^n)."""
-    co = step_coefficients(scheme, dt, None if c_nm1 is None else dt)
-    known = co.a1 * storage(c_n)[0] - dt * (1.0 - co.theta) * rhs(c_n)[0]
-    if co.a2:
-        known = known + co.a2 * storage(c_nm1)[0]
+    formula = step_coefficients(scheme, dt, None if c_nm1 is None else dt)
+    known = formula.a1 * storage(c_n)[0] - dt * (1.0 - formula.theta) * rhs(c_n)[0]
+    if formula.a2:
+        known = known + formula.a2 * storage(c_nm1)[0]
 
     def residual(c):
-        return (co.a0 * storage(c)[0] + known) / dt - co.theta * rhs(c)[0]
+        return (formula.a0 * storage(c)[0] + known) / dt - formula.theta * rhs(c)[0]
 
     def jacobian(c):
-        return storage(c)[1] * (co.a0 / dt) - rhs(c)[1] * co.theta
+        return storage(c)[1] * (formula.a0 / dt) - rhs(c)[1] * formula.theta
 
     return residual, jacobian
 

@@ -29,9 +29,10 @@ def _one_step(scheme, t_new, times, hist):
     """One step of dc/dt = −λc with the transport's coefficients (theory.md T13):
     (a0 c^{n+1} + a1 c^n + a2 c^{n−1})/Δt = −λ(θ c^{n+1} + (1 − θ) c^n), solved for c^{n+1}."""
     dt = t_new - times[0]
-    co = step_coefficients(scheme, dt, times[0] - times[1])
-    known = co.a1 * hist[0] + co.a2 * hist[1] + dt * LAM * (1.0 - co.theta) * hist[0]
-    return -known / (co.a0 + dt * LAM * co.theta)
+    formula = step_coefficients(scheme, dt, times[0] - times[1])
+    known = (formula.a1 * hist[0] + formula.a2 * hist[1]
+             + dt * LAM * (1.0 - formula.theta) * hist[0])
+    return -known / (formula.a0 + dt * LAM * formula.theta)
 
 
 @pytest.mark.parametrize("scheme", ["backward_euler", "crank_nicolson", "bdf2"])
