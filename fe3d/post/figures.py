@@ -273,6 +273,7 @@ def _limit_line(ax: Any, lim: float, peak: float, conc_unit: str, *,
         if 1.5 * lowest <= -linear:
             ticks = [-linear, *ticks]
         ax.set_yticks(ticks, labels=[f"{v:.3g}" for v in ticks])
+        ax.minorticks_off()
         ax.set_ylim(min(1.5 * lowest, -0.5 * linear), 2.0 * peak)
         ax.axhspan(-linear, linear, color="0.95", zorder=0,
                    label=f"linear scale within ±{linear:.3g} {conc_unit}")
