@@ -19,6 +19,7 @@ from fe3d.errors import CaseErrors, Fe3dError
 __all__ = ["main"]
 
 EXIT_BAD_INPUT = 2
+EXIT_INTERRUPTED = 130  # the shell's code for a run stopped by Ctrl-C
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -305,7 +306,12 @@ def _ensemble(case_path: Path, out: Path | None, *, members: int, scheduler: str
 
     from fe3d.errors import CaseError
     from fe3d.post.report import CAUTION
-    from fe3d.studies.ensemble import MemberFailure, MemberResult, run_ensemble
+    from fe3d.studies.ensemble import (
+        MemberFailure,
+        MemberResult,
+        plan_ensemble,
+        run_ensemble,
+    )
     from fe3d.studies.ensemble_results import summarise_ensemble, write_ensemble_tables
     from fe3d.studies.executors import study_executor
     from fe3d.units import from_si
@@ -321,6 +327,7 @@ def _ensemble(case_path: Path, out: Path | None, *, members: int, scheduler: str
     if problems:
         raise CaseErrors(problems)
     case = load_case(case_path)
+    plan_ensemble(case, members)  # its errors before a cluster starts
     folder = out or Path(f"runs/{case_path.stem}_ensemble")
     con = Console()
     failed: list[MemberFailure] = []
@@ -338,9 +345,15 @@ def _ensemble(case_path: Path, out: Path | None, *, members: int, scheduler: str
                 failed.append(outcome)
             bar.update(task, completed=done, info=f"{len(failed)} failed" if failed else "")
 
-        ensemble = run_ensemble(case, folder, n_members=members, executor=ex,
-                                base_dir=case_path.resolve().parent, keep_runs=keep_runs,
-                                on_member=tell)
+        try:
+            ensemble = run_ensemble(case, folder, n_members=members, executor=ex,
+                                    base_dir=case_path.resolve().parent,
+                                    keep_runs=keep_runs, on_member=tell)
+        except KeyboardInterrupt:
+            bar.stop()
+            con.print(f"interrupted: the finished members are kept in {folder}/members; the "
+                      "same command again runs only the others", highlight=False)
+            return EXIT_INTERRUPTED
     stats = summarise_ensemble(ensemble)
     files = write_ensemble_tables(ensemble, stats)
     tu, cu = case.output.time_unit, case.output.concentration_unit

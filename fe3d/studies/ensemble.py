@@ -26,7 +26,7 @@ import logging
 import shutil
 import tempfile
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from concurrent.futures import Future, as_completed
 from dataclasses import dataclass
 from pathlib import Path
@@ -53,6 +53,7 @@ __all__ = [
     "MemberResult",
     "case_fingerprint",
     "member_case",
+    "plan_ensemble",
     "run_ensemble",
 ]
 
@@ -248,7 +249,49 @@ def _write_draws(folder: Path, sample: Sample) -> None:
 # ----------------------------------------------------------------------------- driver
 
 
+def _outcomes(executor: StudyExecutor, jobs: dict[int, tuple[Any, ...]]
+              ) -> Iterator[tuple[int, MemberResult | MemberFailure, float]]:
+    """Each member's outcome as it ends, with the driver's submission time [s] not yet
+    counted. In this process the members run one by one here, so each is saved before the
+    next starts; on a cluster all are submitted at once."""
+    if isinstance(executor.executor, SerialExecutor):
+        for k, args in jobs.items():
+            yield k, _outcome(k, executor.executor.submit(_run_member, *args)), 0.0
+        return
+    tick = time.perf_counter()
+    futures = {executor.executor.submit(_run_member, *args): k for k, args in jobs.items()}
+    submit_time = time.perf_counter() - tick
+    for fut in as_completed(futures):
+        yield futures[fut], _outcome(futures[fut], fut), submit_time
+        submit_time = 0.0
+
+
+def _outcome(k: int, fut: Future[Any]) -> MemberResult | MemberFailure:
+    try:
+        outcome: MemberResult | MemberFailure = fut.result()
+    except Exception as exc:  # a worker lost or a bug: the other members go on
+        return MemberFailure(k, f"{type(exc).__name__}: {exc}")
+    return outcome
+
+
 OnMember = Callable[[int, int, MemberResult | MemberFailure], None]
+
+
+def plan_ensemble(case: Case, n_members: int) -> tuple[UncertainInputs, Sample]:
+    """The case's uncertain values and their sample of ``n_members`` (cheap: call it to
+    check a study before starting a cluster).
+
+    Raises
+    ------
+    CaseError
+        The case has no ``[uncertain]`` section, or too few members for its correlations.
+    """
+    inputs = case.uncertain
+    if inputs is None:
+        err = CaseError("uncertain", "(missing)", "an ensemble needs an [uncertain] section "
+                        "naming the uncertain values and their distributions")
+        raise err
+    return inputs, draw_sample(inputs, n_members)
 
 
 def run_ensemble(case: Case, out_dir: Path, *, n_members: int, executor: StudyExecutor,
@@ -281,12 +324,7 @@ def run_ensemble(case: Case, out_dir: Path, *, n_members: int, executor: StudyEx
         The case has no ``[uncertain]`` section, or the folder holds another study.
     """
     started = time.perf_counter()
-    inputs = case.uncertain
-    if inputs is None:
-        err = CaseError("uncertain", "(missing)", "an ensemble needs an [uncertain] section "
-                        "naming the uncertain values and their distributions")
-        raise err
-    sample = draw_sample(inputs, n_members)
+    inputs, sample = plan_ensemble(case, n_members)
     out_dir.mkdir(parents=True, exist_ok=True)
     _claim_folder(out_dir, _manifest(case, sample))
     _write_draws(out_dir, sample)
@@ -306,30 +344,19 @@ def run_ensemble(case: Case, out_dir: Path, *, n_members: int, executor: StudyEx
         if on_member is not None:
             on_member(done, n_members, outcome)
     nominal_hash = mesh_inputs_hash(nominal)
-    shared = [k for k, c in cases.items() if mesh_inputs_hash(c) == nominal_hash]
+    shared = {k for k, c in cases.items() if mesh_inputs_hash(c) == nominal_hash}
     driver = time.perf_counter() - started
     site_handle = None
     if shared:
         site, _reused, _files = mesh_case(nominal, out_dir / "mesh", base_dir=base_dir)
         site_handle = executor.share(site)
-    tick = time.perf_counter()
-    futures: dict[Future[Any], int] = {
-        executor.executor.submit(
-            _run_member, k, c, site_handle if k in shared else None, base_dir,
-            out_dir / "runs" / f"member_{k:04d}" if keep_runs else None): k
-        for k, c in cases.items()}
-    driver += time.perf_counter() - tick
-    if isinstance(executor.executor, SerialExecutor):  # the members ran inside submit
-        driver -= sum(fut.result().wall_time for fut in futures
-                      if isinstance(fut.result(), MemberResult))
+    jobs = {k: (k, c, site_handle if k in shared else None, base_dir,
+                out_dir / "runs" / f"member_{k:04d}" if keep_runs else None)
+            for k, c in cases.items()}
     done += len(failures)
-    for fut in as_completed(futures):
+    for k, outcome, submit_time in _outcomes(executor, jobs):
         tick = time.perf_counter()
-        k = futures[fut]
-        try:
-            outcome = fut.result()
-        except Exception as exc:  # a worker lost or a bug: the other members go on
-            outcome = MemberFailure(k, f"{type(exc).__name__}: {exc}")
+        driver += submit_time
         if isinstance(outcome, MemberResult):
             _save_member(out_dir, outcome)
             finished[k] = outcome

@@ -117,8 +117,11 @@ def _client(scheduler: str | None, workers: int | None, n_runs: int
     if scheduler is None:
         n = workers or machine_workers(n_runs)
         # one thread per worker: fe3d's solvers hold one BLAS thread each (fe3d._threads)
+        # no dashboard, and the scheduler's web port chosen free (8787 may be taken by
+        # another study on the same machine)
         cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                               dashboard_address=None, silence_logs=logging.ERROR)
+                               dashboard_address=":0", scheduler_kwargs={"dashboard": False},
+                               silence_logs=logging.ERROR)
         client = Client(cluster)
         where = f"local cluster, {n} worker processes × 1 thread"
     else:

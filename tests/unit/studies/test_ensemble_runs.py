@@ -72,7 +72,7 @@ def test_local_cluster_resumes_only_missing_members_with_identical_results(tmp_p
         assert ex.workers == 2 and "local cluster" in ex.where
         with pytest.raises(_DriverStopped):
             run_ensemble(case, folder, n_members=N, executor=ex, on_member=stop_after_three)
-        saved = {p: p.stat().st_mtime_ns for p in (folder / "members").glob("*.npz")}
+        saved = {p: p.stat().st_mtime_ns for p in (folder / "members").glob("member_*.npz")}
         assert len(saved) == 3
         resumed = run_ensemble(case, folder, n_members=N, executor=ex)
     assert resumed.reused == 3
