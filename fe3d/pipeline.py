@@ -164,7 +164,7 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     tell("travel paths", 0, 1)
     paths = travel_paths(site, flow, TravelInputs.of(case))
     files += write_flow_outputs(out_dir, case, site, flow, porosity, paths)
-    writer = SeriesWriter(out_dir, case, site, porosity)
+    writer = SeriesWriter(out_dir, case, site, porosity, flow=flow)
     for snap in run_transport(site, flow, TransportInputs.of(case), base_dir=base_dir,
                               on_step=lambda t, end: tell("transport", t, end)):
         writer.add(snap)
