@@ -154,10 +154,11 @@ def _barycentric(points: FloatArray, cells: IndexArray, grads: FloatArray, e: in
 
 @_jit
 def _locate(points: FloatArray, cells: IndexArray, grads: FloatArray, nb: IndexArray,
-            x: FloatArray, start: int) -> int:
+            x: FloatArray, start: int, scan: bool) -> int:
     """Cell containing x, or −1: a walk from ``start`` towards x across the face of the most
     negative barycentric coordinate; where the walk meets the boundary or runs long (a
-    non-convex outline), a scan of every cell."""
+    non-convex outline), a scan of every cell if ``scan`` (else −1: for the short steps of
+    a particle, where meeting the boundary means leaving the mesh)."""
     lam = np.empty(4)
     m = cells.shape[1]
     e = max(start, 0)
@@ -168,6 +169,8 @@ def _locate(points: FloatArray, cells: IndexArray, grads: FloatArray, nb: IndexA
         if nb[k, e] < 0:
             break
         e = nb[k, e]
+    if not scan:
+        return -1
     for e in range(m):
         if _barycentric(points, cells, grads, e, x, lam) >= -_INSIDE:
             return e
@@ -295,14 +298,14 @@ def _track(points: FloatArray, cells: IndexArray, grads: FloatArray, nb: IndexAr
             dt = max_time - t
         for d in range(3):
             xs[d] = x[d] + 0.5 * dt * v[d]
-        em = _locate(points, cells, grads, nb, xs, e)
+        em = _locate(points, cells, grads, nb, xs, e, False)
         en = -1
         if em >= 0:
             _barycentric(points, cells, grads, em, xs, lam)
             _nodal_at(nodal, cells, em, lam, sign, vm)
             for d in range(3):
                 xs[d] = x[d] + dt * vm[d]
-            en = _locate(points, cells, grads, nb, xs, em)
+            en = _locate(points, cells, grads, nb, xs, em, False)
         if en < 0:
             # leaves the mesh: bisect an Euler step to end on the boundary
             lo, hi = 0.0, 1.0
@@ -310,7 +313,7 @@ def _track(points: FloatArray, cells: IndexArray, grads: FloatArray, nb: IndexAr
                 mid = 0.5 * (lo + hi)
                 for d in range(3):
                     xs[d] = x[d] + mid * dt * v[d]
-                if _locate(points, cells, grads, nb, xs, e) >= 0:
+                if _locate(points, cells, grads, nb, xs, e, False) >= 0:
                     lo = mid
                 else:
                     hi = mid
@@ -357,7 +360,7 @@ class Tracker:
         """Index of the cell containing point x [m] (barycentric tolerance 1e-9), or −1
         outside the mesh."""
         e = int(_locate(self.points, self.cells, self.grads, self.neighbour,
-                        np.asarray(x, dtype=float), self._last))
+                        np.asarray(x, dtype=float), self._last, True))
         if e >= 0:
             self._last = e
         return e
