@@ -15,7 +15,9 @@ load-independent counts (cells, particles, cell crossings, recorded points):
 
 Target (issue 16): travel paths ≤ 10 % of the transport time (about 6.4 s for 100 linear
 steps at 223 k nodes). Each size runs in its own process. ``--write`` appends the table to
-docs/performance.md; without it the rows are printed only.
+docs/performance.md; without it the rows are printed only. ``--scaling`` times the adjacency
+kernel alone on Kuhn boxes of 69 k to 1 M nodes (6 M cells; the boundary face count is
+checked against 12 n²).
 """
 
 from __future__ import annotations
@@ -136,6 +138,38 @@ def one(h: float, dz: float) -> dict[str, Any]:
     return row
 
 
+def kuhn_box(n: int) -> tuple[Any, Any]:
+    """Unit cube in n³ sub-cubes of 6 tetrahedra each (Kuhn's split along the diagonal):
+    nodes ``(3, (n + 1)³)`` and cells ``(4, 6 n³)``; 12 n² boundary faces."""
+    idx = np.arange((n + 1) ** 3).reshape(n + 1, n + 1, n + 1)
+    corner = {(i, j, k): idx[i:n + i, j:n + j, k:n + k].ravel()
+              for i in (0, 1) for j in (0, 1) for k in (0, 1)}
+    middle = [((1, 0, 0), (1, 1, 0)), ((1, 0, 0), (1, 0, 1)), ((0, 1, 0), (1, 1, 0)),
+              ((0, 1, 0), (0, 1, 1)), ((0, 0, 1), (1, 0, 1)), ((0, 0, 1), (0, 1, 1))]
+    cells = np.hstack([np.stack([corner[0, 0, 0], corner[a], corner[b], corner[1, 1, 1]])
+                       for a, b in middle])
+    g = np.arange(n + 1) / n
+    return np.array(np.meshgrid(g, g, g, indexing="ij")).reshape(3, -1), cells
+
+
+def adjacency_scaling() -> list[dict[str, Any]]:
+    """The adjacency kernel on Kuhn boxes of 0.07 to 1 M nodes (least of three)."""
+    from fe3d.flow.tracking import cell_neighbours
+
+    rows = []
+    for n in (40, 60, 80, 100):
+        pts, cells = kuhn_box(n)
+        clock = []
+        for _ in range(3):
+            t = time.perf_counter()
+            nb = cell_neighbours(cells, pts.shape[1])
+            clock.append(time.perf_counter() - t)
+        rows.append({"nodes": pts.shape[1], "cells": cells.shape[1], "adjacency_s": min(clock),
+                     "boundary_faces": int((nb < 0).sum()), "expected": 12 * n * n,
+                     "load": os.getloadavg()[0]})
+    return rows
+
+
 def write_section(rows: list[dict[str, Any]]) -> None:
     """Append the table of ``rows`` to docs/performance.md."""
     lines = ["", "## Particle tracking (benchmarks/tracking_bench.py)", "",
@@ -155,6 +189,10 @@ def write_section(rows: list[dict[str, Any]]) -> None:
 def main() -> int:
     if len(sys.argv) >= 4 and sys.argv[1] == "--one":
         print(json.dumps(one(float(sys.argv[2]), float(sys.argv[3]))))
+        return 0
+    if "--scaling" in sys.argv:
+        for row in adjacency_scaling():
+            print(json.dumps(row), flush=True)
         return 0
     sizes = SIZES[:1] if "--quick" in sys.argv else SIZES
     rows = []
