@@ -384,6 +384,9 @@ class Tracker:
         capture = np.zeros(0, dtype=np.bool_)
         if isinstance(capture_cells, np.ndarray):
             capture = np.ascontiguousarray(capture_cells, dtype=np.bool_)
+            if capture.shape != (self.cells.shape[1],):
+                msg = f"capture mask of shape {capture.shape}, not one flag per cell"
+                raise ValueError(msg)
         elif capture_cells:
             capture = np.zeros(self.cells.shape[1], dtype=np.bool_)
             capture[np.fromiter(capture_cells, dtype=np.int64)] = True

@@ -149,3 +149,28 @@ def test_thinning_keeps_the_ends_and_stays_within_the_tolerance():
         ab = b - a
         u = np.clip(((p[:, None] - a) * ab).sum(0) / (ab * ab).sum(0), 0.0, 1.0)
         assert np.min(np.linalg.norm(a + u * ab - p[:, None], axis=0)) <= 0.05 + 1e-12
+
+
+def test_cell_neighbours_of_a_kuhn_box_are_symmetric_and_count_its_boundary():
+    """The unit cube in n³ sub-cubes of 6 tetrahedra: its boundary has 6 · 2n² = 12 n²
+    triangles (counting), and every interior face is seen from both of its cells."""
+    n = 5
+    idx = np.arange((n + 1) ** 3).reshape(n + 1, n + 1, n + 1)
+    corner = {(i, j, k): idx[i:n + i, j:n + j, k:n + k].ravel()
+              for i in (0, 1) for j in (0, 1) for k in (0, 1)}
+    middle = [((1, 0, 0), (1, 1, 0)), ((1, 0, 0), (1, 0, 1)), ((0, 1, 0), (1, 1, 0)),
+              ((0, 1, 0), (0, 1, 1)), ((0, 0, 1), (1, 0, 1)), ((0, 0, 1), (0, 1, 1))]
+    cells = np.hstack([np.stack([corner[0, 0, 0], corner[a], corner[b], corner[1, 1, 1]])
+                       for a, b in middle])
+    nb = cell_neighbours(cells)
+    assert int((nb < 0).sum()) == 12 * n * n
+    k, e = np.nonzero(nb >= 0)
+    assert np.all((nb[:, nb[k, e]] == e).sum(axis=0) == 1)
+
+
+def test_a_capture_mask_of_the_wrong_size_is_refused():
+    tracker = Tracker(CORNER, np.arange(4)[:, None], np.array([[1.0], [0.5], [0.25]]))
+    with pytest.raises(ValueError, match="one flag per cell"):
+        tracker.track(np.array([0.1, 0.1, 0.1]), capture_cells=np.zeros(3, dtype=bool))
+    whole = tracker.track(np.array([0.1, 0.1, 0.1]), capture_cells=np.ones(1, dtype=bool))
+    assert whole.end == "captured"
