@@ -72,7 +72,8 @@ class MemberResult:
     largest distance [m] the part above the limit reached from its source; ``wall_time``
     [s] is the member's whole time on its worker (run, reading back, removing its folder);
     ``own_mesh`` says whether it meshed on
-    its own (a mesh input was uncertain) or ran on the shared mesh.
+    its own (a mesh input was uncertain) or ran on the shared mesh; ``peak_memory`` [B] is
+    the peak resident memory of the worker process so far (Linux ``ru_maxrss``).
     """
 
     index: int
@@ -82,6 +83,7 @@ class MemberResult:
     n_nodes: int
     wall_time: float
     own_mesh: bool
+    peak_memory: float = 0.0  # [B] the largest resident set of the process that ran it
 
 
 @dataclass(frozen=True)
@@ -163,7 +165,15 @@ def _run_member(index: int, case: Case, site: SiteMesh | None, base_dir: Path | 
             shutil.rmtree(folder, ignore_errors=True)
     return MemberResult(index, times, history,
                         {sp: float(p["largest_extent"]) for sp, p in summary.plume.items()},
-                        summary.n_nodes, time.perf_counter() - started, site is None)
+                        summary.n_nodes, time.perf_counter() - started, site is None,
+                        _peak_memory())
+
+
+def _peak_memory() -> float:
+    """Peak resident memory of this process [B] (``ru_maxrss`` is in KiB on Linux)."""
+    import resource
+
+    return float(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss) * 1024.0
 
 
 def _member_file(folder: Path, index: int) -> Path:
@@ -172,7 +182,8 @@ def _member_file(folder: Path, index: int) -> Path:
 
 def _save_member(folder: Path, result: MemberResult) -> None:
     arrays: dict[str, Any] = {"times": result.times, "n_nodes": result.n_nodes,
-                              "wall_time": result.wall_time, "own_mesh": result.own_mesh}
+                              "wall_time": result.wall_time, "own_mesh": result.own_mesh,
+                              "peak_memory": result.peak_memory}
     arrays |= {f"history/{sp}": h for sp, h in result.history.items()}
     arrays |= {f"largest_extent/{sp}": e for sp, e in result.largest_extent.items()}
 
@@ -194,7 +205,8 @@ def _load_member(folder: Path, index: int) -> MemberResult | None:
             {k.split("/", 1)[1]: data[k] for k in keys if k.startswith("history/")},
             {k.split("/", 1)[1]: float(data[k]) for k in keys
              if k.startswith("largest_extent/")},
-            int(data["n_nodes"]), float(data["wall_time"]), bool(data["own_mesh"]))
+            int(data["n_nodes"]), float(data["wall_time"]), bool(data["own_mesh"]),
+            float(data["peak_memory"]))
 
 
 # ----------------------------------------------------------------------------- study folder

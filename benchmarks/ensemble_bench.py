@@ -1,0 +1,128 @@
+"""Ensemble benchmark: members per hour with 1 and 2 workers, the driver's overhead per
+member, peak memory per worker, the size of the shared mesh.
+
+The tiny ensemble case (cases/tiny/ensemble.toml, invented: four uncertain values, one rank
+correlation) run with ``--members N`` in this process (1 worker) and on a dask
+LocalCluster of 2 single-threaded worker processes. Writes the "Ensembles" section of
+docs/performance.md (the rest of the file is kept) with ``--write``.
+
+Usage: ``python benchmarks/ensemble_bench.py [--members 12] [--write]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import pickle
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[1]
+CASE = ROOT / "cases" / "tiny" / "ensemble.toml"
+
+
+def measure(workers: int, members: int, folder: Path) -> dict[str, Any]:
+    """One ensemble on ``workers`` (1: in this process) from an empty folder."""
+    from fe3d.case.load import load_case
+    from fe3d.studies.ensemble import run_ensemble
+    from fe3d.studies.executors import study_executor
+
+    case = load_case(CASE)
+    started = time.perf_counter()
+    with study_executor(n_runs=members, workers=workers) as ex:
+        opened = time.perf_counter() - started
+        ens = run_ensemble(case, folder, n_members=members, executor=ex,
+                           base_dir=CASE.parent)
+    total = time.perf_counter() - started
+    assert len(ens.results) == members, ens.failures
+    runs = np.array([r.wall_time for r in ens.results])
+    return {"workers": workers, "members": members, "open": opened, "total": total,
+            "per_hour": members / total * 3600.0, "member_mean": float(runs.mean()),
+            "member_median": float(np.median(runs)), "member_max": float(runs.max()),
+            "driver": ens.driver_time, "nodes": ens.results[0].n_nodes,
+            "peak_mib": max(r.peak_memory for r in ens.results) / 2**20,
+            "steady_per_hour": workers * 3600.0 / float(np.median(runs))}
+
+
+def mesh_bytes() -> int:
+    """Pickled size of the shared mesh (what one scatter sends to each worker)."""
+    from fe3d.case.load import load_case
+    from fe3d.pipeline import mesh_case
+
+    case = load_case(CASE).model_copy(update={"uncertain": None})
+    with tempfile.TemporaryDirectory() as tmp:
+        site, _, _ = mesh_case(case, Path(tmp), base_dir=CASE.parent)
+    return len(pickle.dumps(site, protocol=pickle.HIGHEST_PROTOCOL))
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--members", type=int, default=12)
+    ap.add_argument("--write", action="store_true")
+    args = ap.parse_args()
+    rows = []
+    for workers in (1, 2):
+        with tempfile.TemporaryDirectory() as tmp:
+            r = measure(workers, args.members, Path(tmp) / "study")
+        rows.append(r)
+        print(r, flush=True)
+    load = os.getloadavg()
+    size = mesh_bytes()
+    one, two = rows
+    lines = ["## Ensembles (benchmarks/ensemble_bench.py)", "",
+             f"`fe3d ensemble` on the tiny ensemble case (cases/tiny/ensemble.toml, invented: "
+             f"four uncertain values, one rank correlation; {one['nodes']:,} nodes, 37 steps "
+             f"of 20 d) with {args.members} members, from an empty study folder: in this "
+             "process (1 worker) and on a dask LocalCluster of 2 single-threaded worker "
+             "processes. Each member is a whole `run_case` (flow, transport and every file "
+             "of a run folder, written to a temporary folder and removed) on the one shared "
+             "mesh. 'steady' divides the workers by the median member time, leaving out the "
+             "cluster's start and each worker's first member (imports, compiled kernels "
+             f"loaded from the cache). Load average while measured: {load[0]:.1f} "
+             f"{load[1]:.1f} {load[2]:.1f} on 2 cores (times scale with it).", "",
+             "| workers | members | cluster start [s] | total [s] | members per hour | "
+             "steady members per hour | member median / max [s] | driver per member [ms] "
+             "| driver / member time | peak memory per worker [MiB] |",
+             "|---|---|---|---|---|---|---|---|---|---|"]
+    for r in rows:
+        lines.append(
+            f"| {r['workers']} | {r['members']} | {r['open']:.1f} | {r['total']:.1f} | "
+            f"{r['per_hour']:.0f} | {r['steady_per_hour']:.0f} | {r['member_median']:.2f} / "
+            f"{r['member_max']:.1f} | {1000 * r['driver'] / r['members']:.1f} | "
+            f"{100 * r['driver'] / r['members'] / r['member_mean']:.2f} % | "
+            f"{r['peak_mib']:.0f} |")
+    lines += ["", f"Speed-up of 2 workers over 1: {two['per_hour'] / one['per_hour']:.2f}× "
+              f"overall, {two['steady_per_hour'] / one['steady_per_hour']:.2f}× steady "
+              "(target ≥ 1.8×). The shared mesh is sent once to each worker: "
+              f"{size / 2**20:.2f} MiB pickled here.", "",
+              "On a cluster of N machines the members are independent, so the steady "
+              "throughput grows with the number of worker processes until one of three "
+              "limits: the scheduler (a few hundred microseconds to a few milliseconds per "
+              "task, far below a member's seconds to hours), the driver (its share per member "
+              "is in the table: sampling, member cases, writing each member's compact file), "
+              "and the one-time transfer of the shared mesh to every worker (its size times "
+              "the workers, over the network at start). Each worker's first member also pays "
+              "the imports and the loading of the compiled kernels, a fixed start-up per "
+              "worker. Memory: a worker holds one member at a time (its peak is in the "
+              "table), so a machine takes as many workers as it has cores and memory for.",
+              ""]
+    print("\n".join(lines))
+    if args.write:
+        path = ROOT / "docs" / "performance.md"
+        text = path.read_text(encoding="utf-8")
+        head = "\n## Ensembles (benchmarks/ensemble_bench.py)\n"
+        if head in text:
+            start = text.index(head)
+            end = text.find("\n## ", start + len(head))
+            text = text[:start].rstrip("\n") + "\n" + ("" if end < 0 else text[end:])
+        path.write_text(text.rstrip("\n") + "\n\n" + "\n".join(lines), encoding="utf-8")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
