@@ -1,5 +1,6 @@
-"""The ensemble's figure: probability of exceeding the limit at each receptor over time,
-with its confidence band (off-screen matplotlib, as fe3d.post.figures)."""
+"""The ensemble's figures: probability of exceeding the limit at each receptor over time,
+with its confidence band, and the plan map of the probability of exceeding it during the run
+(off-screen matplotlib, as fe3d.post.figures)."""
 
 from __future__ import annotations
 
@@ -12,7 +13,7 @@ from fe3d._typing import FloatArray
 from fe3d.post.files import write_atomic
 from fe3d.units import from_si
 
-__all__ = ["plot_exceedance"]
+__all__ = ["plot_exceedance", "plot_probability_plan"]
 
 
 def plot_exceedance(path: Path, times: FloatArray,
@@ -38,6 +39,45 @@ def plot_exceedance(path: Path, times: FloatArray,
                  "binomial interval", fontsize=10)
     ax.grid(visible=True, alpha=0.3)
     ax.legend(fontsize=8, loc="upper left")
+    fig.text(0.01, 0.005, "Screening estimate: depends on the inputs; defer to local "
+             "regulations and licensed professional practice.", fontsize=7)
+    fig.tight_layout(rect=(0, 0.03, 1, 1))
+    write_atomic(path, lambda p: fig.savefig(p, dpi=130, format="png"))
+    plt.close(fig)
+    return path
+
+
+def plot_probability_plan(path: Path, plan_xy: FloatArray, triangles: FloatArray,
+                          probability: dict[str, FloatArray], *,
+                          markers: dict[str, tuple[float, float]], n_members: int,
+                          title: str) -> Path:
+    """Plan map per species of the probability [-] that the concentration exceeds the
+    limit during the run, the largest over depth: ``plan_xy`` [m] shape ``(2, n_plan)``,
+    ``triangles`` ``(3, n_triangles)`` indices into it, ``probability`` species →
+    ``(n_plan,)``; ``markers`` label → plan position [m]."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    from matplotlib.tri import Triangulation
+
+    tri = Triangulation(plan_xy[0], plan_xy[1], np.asarray(triangles).T)
+    n = len(probability)
+    fig, axes = plt.subplots(n, 1, figsize=(8, 3.2 * n + 0.8), squeeze=False)
+    for ax, (sp, p) in zip(axes[:, 0], probability.items(), strict=True):
+        # shaded, not contoured: filled contours leave out values exactly at the top level
+        filled = ax.tripcolor(tri, p, cmap="YlOrRd", vmin=0.0, vmax=1.0, shading="gouraud")
+        fig.colorbar(filled, ax=ax, label="probability above the limit [-]", fraction=0.046,
+                     pad=0.04)
+        for label, (x, y) in markers.items():
+            ax.plot(x, y, "ks", markersize=4)
+            ax.annotate(label, (x, y), textcoords="offset points", xytext=(4, 4), fontsize=7)
+        ax.set_aspect("equal")
+        ax.set_ylabel("y [m]")
+        ax.set_title(f"{sp}: probability of exceeding the limit during the run (largest "
+                     f"over depth, {n_members} members)", fontsize=9)
+    axes[-1, 0].set_xlabel("x [m]")
+    fig.suptitle(title, fontsize=10)
     fig.text(0.01, 0.005, "Screening estimate: depends on the inputs; defer to local "
              "regulations and licensed professional practice.", fontsize=7)
     fig.tight_layout(rect=(0, 0.03, 1, 1))

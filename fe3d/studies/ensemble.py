@@ -28,14 +28,14 @@ import tempfile
 import time
 from collections.abc import Callable, Iterator
 from concurrent.futures import Future, as_completed
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from fe3d import __version__
-from fe3d._typing import FloatArray
+from fe3d._typing import BoolArray, FloatArray
 from fe3d.case.schema import Case, cross_checks
 from fe3d.case.uncertain import UncertainInputs, parse_target, with_field
 from fe3d.errors import CaseError, CaseErrors, Fe3dError
@@ -43,6 +43,7 @@ from fe3d.mesh.io import mesh_inputs_hash
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.pipeline import mesh_case, run_case
 from fe3d.post.files import write_atomic, write_text_atomic
+from fe3d.post.series_read import read_concentration_series
 from fe3d.studies.executors import SerialExecutor, StudyExecutor
 from fe3d.studies.run_folder import read_histories
 from fe3d.studies.sampling import Sample, draw_sample
@@ -50,9 +51,11 @@ from fe3d.studies.sampling import Sample, draw_sample
 __all__ = [
     "Ensemble",
     "MemberFailure",
+    "MemberFields",
     "MemberResult",
     "case_fingerprint",
     "member_case",
+    "member_fields",
     "plan_ensemble",
     "run_ensemble",
 ]
@@ -61,6 +64,16 @@ logger = logging.getLogger(__name__)
 
 MANIFEST = "ensemble.json"
 DRAWS = "ensemble_draws.csv"
+
+
+@dataclass(frozen=True)
+class MemberFields:
+    """Where one member's concentration was above the limit: ``output_times`` [s] shape
+    ``(n_outputs,)``; ``above`` species → boolean ``(n_outputs, n_nodes)`` on the shared
+    mesh."""
+
+    output_times: FloatArray
+    above: dict[str, BoolArray]
 
 
 @dataclass(frozen=True)
@@ -73,7 +86,11 @@ class MemberResult:
     [s] is the member's whole time on its worker (run, reading back, removing its folder);
     ``own_mesh`` says whether it meshed on
     its own (a mesh input was uncertain) or ran on the shared mesh; ``peak_memory`` [B] is
-    the peak resident memory of the worker process so far (Linux ``ru_maxrss``).
+    the peak resident memory of the worker process so far (Linux ``ru_maxrss``);
+    ``cpu_time`` [s] the processor time the member used (independent of the machine's load
+    when its worker has a core to itself). ``fields`` (members on the shared mesh) travel
+    from the worker to the driver, which saves them and drops them (:func:`member_fields`
+    reads them back one member at a time).
     """
 
     index: int
@@ -84,6 +101,8 @@ class MemberResult:
     wall_time: float
     own_mesh: bool
     peak_memory: float = 0.0  # [B] the largest resident set of the process that ran it
+    cpu_time: float = 0.0  # [s] processor time of the member in its worker
+    fields: MemberFields | None = None  # on the way from the worker; kept on disk only
 
 
 @dataclass(frozen=True)
@@ -107,6 +126,7 @@ class Ensemble:
 
     case: Case
     sample: Sample
+    site: SiteMesh | None  # the shared mesh, when any member ran on it
     results: tuple[MemberResult, ...]
     failures: tuple[MemberFailure, ...]
     reused: int
@@ -152,11 +172,12 @@ def _run_member(index: int, case: Case, site: SiteMesh | None, base_dir: Path | 
                 keep: Path | None) -> MemberResult | MemberFailure:
     """Worker: run one member in a temporary folder (or ``keep``) and return its compact
     results; an :class:`Fe3dError` comes back as a failure with its one-line message."""
-    started = time.perf_counter()
+    started, cpu = time.perf_counter(), time.process_time()
     folder = keep if keep is not None else Path(tempfile.mkdtemp(prefix="fe3d-member-"))
     try:
         summary = run_case(case, folder, base_dir=base_dir, mesh_folders=[], site=site)
         times, history = read_histories(folder, case)
+        fields = None if site is None else _above_limit(folder, case)
     except Fe3dError as exc:
         return MemberFailure(index, f"{type(exc).__name__}: " + "; ".join(
             str(exc).splitlines()))
@@ -166,7 +187,16 @@ def _run_member(index: int, case: Case, site: SiteMesh | None, base_dir: Path | 
     return MemberResult(index, times, history,
                         {sp: float(p["largest_extent"]) for sp, p in summary.plume.items()},
                         summary.n_nodes, time.perf_counter() - started, site is None,
-                        _peak_memory())
+                        _peak_memory(), time.process_time() - cpu, fields)
+
+
+def _above_limit(folder: Path, case: Case) -> MemberFields:
+    """Where the run folder's concentration series is above each species' limit."""
+    out = case.output
+    times, series = read_concentration_series(folder, list(case.species),
+                                              time_unit=out.time_unit,
+                                              conc_unit=out.concentration_unit)
+    return MemberFields(times, {sp: series[sp] > case.species[sp].limit for sp in series})
 
 
 def _peak_memory() -> float:
@@ -183,15 +213,30 @@ def _member_file(folder: Path, index: int) -> Path:
 def _save_member(folder: Path, result: MemberResult) -> None:
     arrays: dict[str, Any] = {"times": result.times, "n_nodes": result.n_nodes,
                               "wall_time": result.wall_time, "own_mesh": result.own_mesh,
-                              "peak_memory": result.peak_memory}
+                              "peak_memory": result.peak_memory, "cpu_time": result.cpu_time}
     arrays |= {f"history/{sp}": h for sp, h in result.history.items()}
     arrays |= {f"largest_extent/{sp}": e for sp, e in result.largest_extent.items()}
+    if result.fields is not None:
+        arrays["output_times"] = result.fields.output_times
+        arrays |= {f"above/{sp}": np.packbits(a, axis=-1)
+                   for sp, a in result.fields.above.items()}
 
     def write(path: Path) -> None:
         with path.open("wb") as fh:
             np.savez(fh, **arrays)
 
     write_atomic(_member_file(folder, result.index), write)
+
+
+def member_fields(folder: Path, index: int, n_nodes: int) -> MemberFields | None:
+    """The saved above-limit fields of member ``index`` of the study in ``folder`` (``None``
+    when it ran on a mesh of its own)."""
+    with np.load(_member_file(folder, index)) as data:
+        if "output_times" not in data:
+            return None
+        return MemberFields(data["output_times"], {
+            k.split("/", 1)[1]: np.unpackbits(data[k], axis=-1, count=n_nodes).astype(bool)
+            for k in data if k.startswith("above/")})
 
 
 def _load_member(folder: Path, index: int) -> MemberResult | None:
@@ -206,7 +251,7 @@ def _load_member(folder: Path, index: int) -> MemberResult | None:
             {k.split("/", 1)[1]: float(data[k]) for k in keys
              if k.startswith("largest_extent/")},
             int(data["n_nodes"]), float(data["wall_time"]), bool(data["own_mesh"]),
-            float(data["peak_memory"]))
+            float(data["peak_memory"]), float(data["cpu_time"]))
 
 
 # ----------------------------------------------------------------------------- study folder
@@ -358,9 +403,10 @@ def run_ensemble(case: Case, out_dir: Path, *, n_members: int, executor: StudyEx
     nominal_hash = mesh_inputs_hash(nominal)
     shared = {k for k, c in cases.items() if mesh_inputs_hash(c) == nominal_hash}
     driver = time.perf_counter() - started
-    site_handle = None
-    if shared:
+    site = site_handle = None
+    if shared or any(not r.own_mesh for r in finished.values()):
         site, _reused, _files = mesh_case(nominal, out_dir / "mesh", base_dir=base_dir)
+    if shared:
         site_handle = executor.share(site)
     jobs = {k: (k, c, site_handle if k in shared else None, base_dir,
                 out_dir / "runs" / f"member_{k:04d}" if keep_runs else None)
@@ -371,14 +417,14 @@ def run_ensemble(case: Case, out_dir: Path, *, n_members: int, executor: StudyEx
         driver += submit_time
         if isinstance(outcome, MemberResult):
             _save_member(out_dir, outcome)
-            finished[k] = outcome
+            finished[k] = replace(outcome, fields=None)  # on disk; read back one at a time
         else:
             failures[k] = outcome
         done += 1
         driver += time.perf_counter() - tick
         if on_member is not None:
             on_member(done, n_members, outcome)
-    return Ensemble(nominal, sample, tuple(finished[k] for k in sorted(finished)),
+    return Ensemble(nominal, sample, site, tuple(finished[k] for k in sorted(finished)),
                     tuple(failures[k] for k in sorted(failures)),
                     len(finished) - len([k for k in cases if k in finished]), out_dir,
                     executor.where, driver, time.perf_counter() - started)

@@ -33,19 +33,22 @@ import numpy as np
 from scipy import stats
 
 from fe3d._typing import FloatArray
-from fe3d.post.ensemble_figures import plot_exceedance
+from fe3d.post.ensemble_figures import plot_exceedance, plot_probability_plan
 from fe3d.post.files import write_text_atomic
 from fe3d.post.probes import breakthrough
 from fe3d.post.report import CAUTION
-from fe3d.studies.ensemble import Ensemble, MemberResult
+from fe3d.post.vtk import write_field
+from fe3d.studies.ensemble import Ensemble, MemberResult, member_fields
 from fe3d.units import from_si
 
 __all__ = [
     "CONFIDENCE",
     "EnsembleStatistics",
+    "ProbabilityFields",
     "ReceptorQuantity",
     "ReceptorSeries",
     "clopper_pearson",
+    "probability_fields",
     "summarise_ensemble",
     "write_ensemble_tables",
 ]
@@ -54,6 +57,42 @@ CONFIDENCE = 0.95
 """Confidence level of the exceedance band (common practice, no source)."""
 PERCENTILES = (5.0, 50.0, 95.0)
 GRID_POINTS = 201
+
+
+@dataclass(frozen=True)
+class ProbabilityFields:
+    """Per node of the shared mesh, the fraction of finished members above each species'
+    limit: ``at_times`` species → ``(n_outputs, n_nodes)`` at ``output_times`` [s];
+    ``during_run`` species → ``(n_nodes,)`` above at one output time at least."""
+
+    output_times: FloatArray
+    at_times: dict[str, FloatArray]
+    during_run: dict[str, FloatArray]
+    n_members: int
+
+
+def probability_fields(ensemble: Ensemble) -> ProbabilityFields | None:
+    """The probability fields of an ensemble whose members all ran on the shared mesh with
+    the same output times (``None`` otherwise: a member with a mesh of its own, or an
+    uncertain end time). Reads each member's saved fields in turn."""
+    site, results = ensemble.site, ensemble.results
+    if site is None or not results or any(r.own_mesh for r in results):
+        return None
+    times: FloatArray | None = None
+    at: dict[str, FloatArray] = {}
+    ever: dict[str, FloatArray] = {}
+    for r in results:
+        f = member_fields(ensemble.folder, r.index, site.n_nodes)
+        if f is None or (times is not None and not np.array_equal(times, f.output_times)):
+            return None
+        times = f.output_times
+        for sp, above in f.above.items():
+            at[sp] = at.get(sp, 0.0) + above
+            ever[sp] = ever.get(sp, 0.0) + above.any(axis=0)
+    assert times is not None
+    n = len(results)
+    return ProbabilityFields(times, {sp: a / n for sp, a in at.items()},
+                             {sp: e / n for sp, e in ever.items()}, n)
 
 
 def clopper_pearson(k: FloatArray, n: int, *, confidence: float = CONFIDENCE
@@ -194,7 +233,8 @@ def _csv(rows: list[list[str]]) -> str:
 def write_ensemble_tables(ensemble: Ensemble, st: EnsembleStatistics) -> list[str]:
     """``ensemble_exceedance.csv`` and ``.png``, ``ensemble_percentiles.csv``,
     ``ensemble_sensitivity.csv``, ``ensemble_failures.csv`` and ``ensemble.md`` in the
-    study folder; returns their names."""
+    study folder, and ``ensemble_probability.vtu`` with its plan map when every member ran
+    on the shared mesh (:func:`probability_fields`); returns their names."""
     out, case = ensemble.folder, ensemble.case
     tu, cu = case.output.time_unit, case.output.concentration_unit
     head = [f"time [{tu}]"]
@@ -235,8 +275,39 @@ def write_ensemble_tables(ensemble: Ensemble, st: EnsembleStatistics) -> list[st
                     [(f"{s.point} {s.species}", s.probability, s.lower, s.upper)
                      for s in st.exceedance], time_unit=tu, confidence=CONFIDENCE,
                     n_members=st.n_finished, title=case.title)
-    return ["ensemble_exceedance.png", "ensemble_exceedance.csv", "ensemble_percentiles.csv",
-            "ensemble_sensitivity.csv", "ensemble_failures.csv", "ensemble.md"]
+    files = ["ensemble_exceedance.png", "ensemble_exceedance.csv", "ensemble_percentiles.csv",
+             "ensemble_sensitivity.csv", "ensemble_failures.csv", "ensemble.md"]
+    fields = probability_fields(ensemble)
+    if fields is not None:
+        files += _write_probability(ensemble, fields)
+    return files
+
+
+def _write_probability(ensemble: Ensemble, fields: ProbabilityFields) -> list[str]:
+    """``ensemble_probability.vtu`` (every output time and the whole run) and the plan map
+    ``ensemble_probability_plan.png`` (the whole run, largest over depth)."""
+    site, case, out = ensemble.site, ensemble.case, ensemble.folder
+    assert site is not None
+    tu = case.output.time_unit
+    data: dict[str, FloatArray] = {}
+    for sp, at in fields.at_times.items():
+        for t, p in zip(fields.output_times, at, strict=True):
+            data[f"P({sp} above limit) at {from_si(t, tu):.6g} {tu} [-]"] = p
+        data[f"P({sp} above limit) during the run [-]"] = fields.during_run[sp]
+    write_field(site, out / "ensemble_probability.vtu", point_data=data)
+    # plan positions: the nodes of one vertical column share x and y (extruded mesh)
+    plan, column = np.unique(np.round(site.points[:2].T, 6), axis=0, return_inverse=True)
+    column = column.ravel()
+    largest = {}
+    for sp, p in fields.during_run.items():
+        best = np.zeros(len(plan))
+        np.maximum.at(best, column, p)
+        largest[sp] = best
+    plot_probability_plan(out / "ensemble_probability_plan.png", plan.T,
+                          column[site.faces["top"]], largest,
+                          markers={o.name: (o.x, o.y) for o in case.observation_points},
+                          n_members=fields.n_members, title=case.title)
+    return ["ensemble_probability.vtu", "ensemble_probability_plan.png"]
 
 
 def _ranking(q: ReceptorQuantity) -> list[int]:

@@ -41,8 +41,9 @@ from fe3d.case.builder import (
 )
 from fe3d.case.schema import Case
 from fe3d.pipeline import run_case
+from fe3d.post.series_read import read_concentration_series
 from fe3d.studies.ensemble import run_ensemble
-from fe3d.studies.ensemble_results import summarise_ensemble
+from fe3d.studies.ensemble_results import probability_fields, summarise_ensemble
 from fe3d.studies.executors import SerialExecutor, StudyExecutor
 from fe3d.studies.run_folder import read_histories
 
@@ -107,7 +108,8 @@ def test_reference_solution_satisfies_the_equation_and_grows_with_velocity():
 def test_zero_variance_ensemble_equals_the_deterministic_run(tmp_path: Path):
     """Every member of an ensemble whose spreads are all zero has histories equal, value for
     value, to ``fe3d run`` of the case as written (both read from histories.csv, 8
-    significant digits): the ensemble machinery adds nothing."""
+    significant digits), and the probability field is that run's above-limit indicator at
+    every node and output time: the ensemble machinery adds nothing."""
     zero = {"values": [
         {"name": "materials.sand.horizontal_conductivity", "distribution": "lognormal",
          "median": K_MEDIAN, "ln_std_dev": 0.0, "unit": "m/d"},
@@ -123,6 +125,14 @@ def test_zero_variance_ensemble_equals_the_deterministic_run(tmp_path: Path):
         assert np.array_equal(member.history["tracer"], history["tracer"])
     above = float(history["tracer"][-1, 0] > LIMIT)
     assert summarise_ensemble(ens).exceedance[0].probability[-1] == above
+    # the probability field: at every node and output time, 1 where the run is above
+    fields = probability_fields(ens)
+    assert fields is not None and fields.n_members == 3
+    out_times, series = read_concentration_series(
+        tmp_path / "run", ["tracer"], time_unit="d", conc_unit="mg/L")
+    assert np.array_equal(fields.output_times, out_times)
+    assert np.array_equal(fields.at_times["tracer"], (series["tracer"] > LIMIT) * 1.0)
+    assert fields.during_run["tracer"].max() == 1.0  # the inlet face is above the limit
 
 
 @pytest.mark.slow
