@@ -147,6 +147,12 @@ def _check(case_path: Path) -> int:
     con.print(f"period {from_si(case.time.end, tu):g} {tu}, {steps}, "
               f"{len(case.output_schedule())} outputs")
     con.print(f"estimated mesh: ~{nn:,} nodes, ~{nc:,} tetrahedra")
+    if case.uncertain is not None:
+        u = case.uncertain
+        con.print(f"uncertain values for fe3d ensemble (seed {u.seed}): "
+                  + ", ".join(f"{v.name} ({v.distribution})" for v in u.values)
+                  + f"; {len(u.correlations)} rank correlation(s)", markup=False,
+                  highlight=False)
     con.print("[green]case is valid[/green]")
     con.print(CAUTION)
     return 0
@@ -337,7 +343,7 @@ def _ensemble(case_path: Path, out: Path | None, *, members: int, scheduler: str
                      TextColumn("left"), TimeRemainingColumn(), disable=quiet,
                      console=con) as bar:
         con.print(f"ensemble of {case_path}: {members} members on {ex.where}",
-                  highlight=False)
+                  markup=False, highlight=False)
         task = bar.add_task("members", total=members, info="")
 
         def tell(done: int, total: int, outcome: MemberResult | MemberFailure) -> None:
@@ -352,14 +358,15 @@ def _ensemble(case_path: Path, out: Path | None, *, members: int, scheduler: str
         except KeyboardInterrupt:
             bar.stop()
             con.print(f"interrupted: the finished members are kept in {folder}/members; the "
-                      "same command again runs only the others", highlight=False)
+                      "same command again runs only the others", markup=False,
+                      highlight=False)
             return EXIT_INTERRUPTED
     stats = summarise_ensemble(ensemble)
     files = write_ensemble_tables(ensemble, stats)
     tu, cu = case.output.time_unit, case.output.concentration_unit
     con.print(f"{len(ensemble.results)} members finished ({ensemble.reused} reused from an "
               f"earlier start), {len(ensemble.failures)} failed; {ensemble.wall_time:.1f} s",
-              highlight=False)
+              markup=False, highlight=False)
     for f in ensemble.failures:
         drawn = ", ".join(f"{n} = {x:.4g}{' ' + u if u else ''}" for n, u, x in zip(
             ensemble.sample.names, ensemble.sample.units, ensemble.sample.values[f.index],
@@ -377,7 +384,7 @@ def _ensemble(case_path: Path, out: Path | None, *, members: int, scheduler: str
                   f"peak P5/P50/P95 {'/'.join(show(v, cu) for v in pk)} {cu}; first above "
                   f"the limit P5/P50/P95 {'/'.join(show(v, tu) for v in first)} {tu}",
                   markup=False, highlight=False)
-    con.print(f"results in {folder}/: {', '.join(files)}", highlight=False)
+    con.print(f"results in {folder}/: {', '.join(files)}", markup=False, highlight=False)
     con.print(CAUTION)
     return 0
 

@@ -336,7 +336,9 @@ def report_lines(ensemble: Ensemble, st: EnsembleStatistics) -> list[str]:
               f"Fraction of the {fin} finished members above the species' limit; the "
               f"interval is the exact {100 * CONFIDENCE:g} % binomial (Clopper–Pearson) "
               "interval for that many members. Over time: `ensemble_exceedance.csv` and "
-              "`ensemble_exceedance.png`.", "",
+              "`ensemble_exceedance.png`; per node, when every member ran on the shared mesh: "
+              "`ensemble_probability.vtu` (each output time and during the run) and its plan "
+              "map `ensemble_probability_plan.png`.", "",
               "| receptor | species | limit | during the run | interval | at the end | "
               "interval |", "|---|---|---|---|---|---|---|"]
     for s in st.exceedance:
