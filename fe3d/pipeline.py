@@ -157,7 +157,8 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     if site is None:
         site, _reused = obtain_mesh(case, [out_dir, *(mesh_folders or [])], save_to=out_dir,
                                     corridor=plume_corridor(case, base_dir=base_dir))
-    files = [p.name for p in write_mesh(site, out_dir)]
+    files = [p.name for p in write_mesh(
+        site, out_dir, formats=("msh", "vtu") if case.output.vtu_series else ())]
     tell("flow", 0, 1)
     flow = solve_flow(site, FlowInputs.of(case), base_dir=base_dir)
     porosity = cell_values(unit_materials(Ground.of(case), site)[0], site, "porosity")
@@ -165,9 +166,13 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     paths = travel_paths(site, flow, TravelInputs.of(case))
     files += write_flow_outputs(out_dir, case, site, flow, porosity, paths)
     writer = SeriesWriter(out_dir, case, site, porosity, flow=flow)
-    for snap in run_transport(site, flow, TransportInputs.of(case), base_dir=base_dir,
-                              on_step=lambda t, end: tell("transport", t, end)):
-        writer.add(snap)
+    try:
+        for snap in run_transport(site, flow, TransportInputs.of(case), base_dir=base_dir,
+                                  on_step=lambda t, end: tell("transport", t, end)):
+            writer.add(snap)
+    except BaseException:
+        writer.close()  # the output times written so far stay readable
+        raise
     return writer.finish(flow, paths, files, started)
 
 

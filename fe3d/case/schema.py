@@ -417,6 +417,10 @@ class OutputControl(Section):
     folder: str | None = None
     concentration_unit: Annotated[str, AfterValidator(_concentration_unit)] = "mg/L"
     time_unit: Annotated[str, AfterValidator(_time_unit)] = "d"
+    vtu_series: bool = False
+    """Besides ``results.vtkhdf`` (the mesh once, every output time appended), also write
+    ``mesh.msh``, ``mesh.vtu``, ``flow.vtu`` and one ``.vtu`` per output time with a
+    ``.pvd`` index, for viewers that cannot open VTKHDF."""
 
 
 class Case(Section):

@@ -51,6 +51,8 @@ from fe3d.post.receptors import (
 )
 from fe3d.post.report import ObservationResult, RunSummary, write_report, write_summary_json
 from fe3d.post.run_fields import RunWideField
+from fe3d.post.run_figures import PlumeFigures, write_head_figure
+from fe3d.post.series import SeriesFile
 from fe3d.post.tables import (
     write_flow_budget,
     write_histories,
@@ -63,22 +65,30 @@ from fe3d.transport.budget import MassBudget
 from fe3d.transport.run import Snapshot
 from fe3d.units import from_si, to_seconds
 
-__all__ = ["RUN_FIELDS", "PlumeRow", "SeriesWriter", "method_words", "write_flow_outputs"]
+__all__ = ["RUN_FIELDS", "SERIES_FILE", "PlumeRow", "SeriesWriter", "flow_cell_data",
+           "method_words", "write_flow_outputs"]
 
 #: The file of the fields over the whole run (theory.md O4).
 RUN_FIELDS = "over_the_run.vtu"
 
+#: The run's fields in one VTKHDF file: the mesh and flow once, every output time appended
+#: (docs/outputs.md).
+SERIES_FILE = "results.vtkhdf"
+
 
 def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField,
                        porosity: FloatArray, paths: TravelPaths) -> list[str]:
-    """``flow.vtu`` (head, Darcy flux, seepage velocity, conductivity in m/d),
-    ``flow_budget.csv``, the forward and backward pathlines and the head map; returns the
-    names of the files written. ``porosity`` is per cell."""
-    per_day = to_seconds("d")
-    write_field(site, out_dir / "flow.vtu", point_data={"head [m]": flow.head},
-                cell_data={"darcy_flux [m/d]": (flow.darcy_flux * per_day).T,
-                           "seepage_velocity [m/d]": (flow.darcy_flux / porosity * per_day).T,
-                           "conductivity [m/d]": (flow.conductivity * per_day).T})
+    """``flow_budget.csv``, the forward and backward pathlines, the head on the top face
+    (``heads_plan.png``) and the head map with capture zones (``head_map.png``), and with
+    ``output.vtu_series`` ``flow.vtu`` (head, Darcy flux, seepage velocity, conductivity in
+    m/d; else they are in the series file); returns the names of the files written.
+    ``porosity`` is per cell."""
+    names = ["flow_budget.csv", "pathlines_forward.vtp", "pathlines_backward.vtp",
+             "heads_plan.png"]
+    if case.output.vtu_series:
+        write_field(site, out_dir / "flow.vtu", point_data={"head [m]": flow.head},
+                    cell_data=flow_cell_data(flow, porosity))
+        names.insert(0, "flow.vtu")
     write_flow_budget(out_dir / "flow_budget.csv", flow)
     tu = case.output.time_unit
     tsec = to_seconds(tu)
@@ -95,11 +105,20 @@ def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowFiel
                (centres, flow.darcy_flux[:2, under_top]),
                markers={**{o.name: (o.x, o.y) for o in case.observation_points},
                         **{w.name: (w.x, w.y) for w in case.wells}},
-               pathlines=[p.points for p in forward] + [p.points for p in backward],
-               title=f"{case.title}: head on the top face",
+               pathlines=[p.points for p in forward],
+               backward_pathlines=[p.points for p in backward],
+               title=f"{case.site or case.title}: head on the top face",
                corridor=None if site.report is None else site.report.corridor)
-    return ["flow.vtu", "flow_budget.csv", "pathlines_forward.vtp", "pathlines_backward.vtp",
-            "heads_plan.png"]
+    return names + write_head_figure(out_dir, case, site, flow, paths, head_unit="m")
+
+
+def flow_cell_data(flow: FlowField, porosity: FloatArray) -> dict[str, FloatArray]:
+    """The flow's cell arrays in m/d, shape ``(n_cells, 3)``: Darcy flux, seepage velocity
+    (``porosity`` per cell) and principal conductivities."""
+    per_day = to_seconds("d")
+    return {"darcy_flux [m/d]": (flow.darcy_flux * per_day).T,
+            "seepage_velocity [m/d]": (flow.darcy_flux / porosity * per_day).T,
+            "conductivity [m/d]": (flow.conductivity * per_day).T}
 
 
 @dataclass(frozen=True)
@@ -113,7 +132,9 @@ class PlumeRow:
 
 
 class SeriesWriter:
-    """Writes a run's transport outputs as the snapshots arrive, then the summary.
+    """Writes a run's transport outputs as the snapshots arrive, then the summary: the
+    fields into one VTKHDF file (``results.vtkhdf``, with ``output.vtu_series`` also one
+    ``.vtu`` per output time), the plume surfaces, tables and figures.
 
     ``porosity`` is per cell. The plume measures and the receptors need the flow (the mean
     flow direction, the water leaving each item): pass ``flow`` to measure each snapshot as
@@ -138,6 +159,14 @@ class SeriesWriter:
         self.budgets: list[MassBudget] = []
         self.last: Snapshot | None = None
         self.over_run = {sp: RunWideField.start(site.n_nodes) for sp in case.species}
+        self.series_file = SeriesFile(
+            out_dir / SERIES_FILE, site.points, site.cells,
+            static_point_data=None if flow is None else {"head [m]": flow.head},
+            static_cell_data={"unit_id": site.cell_layer.astype(np.int32),
+                              **({} if flow is None else flow_cell_data(flow, porosity))},
+            time_unit=case.output.time_unit)
+        self.figures = None if flow is None else PlumeFigures(out_dir, case, site, flow,
+                                                              every_output_time=False)
         # limit checks: first output time above the limit at each boundary node, and the
         # output times between which each species' lowest and highest values were reached
         self.boundary_nodes = np.unique(np.concatenate(
@@ -161,10 +190,13 @@ class SeriesWriter:
         scale = from_si(1.0, cu)
         k = len(self.series)
         name = f"concentration_{k:04d}.vtu"
-        write_field(self.site, out / name, point_data={
-            f"{sp} [{cu}]": c * scale for sp, c in snap.concentration.items()})
+        fields = {f"{sp} [{cu}]": c * scale for sp, c in snap.concentration.items()}
+        self.series_file.add(from_si(snap.time, tu), fields)
+        if case.output.vtu_series:
+            write_field(self.site, out / name, point_data=fields)
+            write_pvd(out / "concentration.pvd", [*self.series, (from_si(snap.time, tu), name)],
+                      time_unit=tu)
         self.series.append((from_si(snap.time, tu), name))
-        write_pvd(out / "concentration.pvd", self.series, time_unit=tu)
         for sp, c in snap.concentration.items():
             lim = case.species[sp].limit
             write_isosurface(out / f"plume_{sp}_{k:04d}.vtp", self.site.points,
@@ -181,7 +213,16 @@ class SeriesWriter:
             self._measure(snap)
         else:
             self._waiting.append(snap)
+        if self.figures is not None:
+            self.figures.add(k, snap.time, snap.concentration, {
+                r.species: (r.measures.volume, r.measures.dissolved_mass)
+                for r in self.plume_rows if r.time == snap.time})
         self.last = snap
+
+    def close(self) -> None:
+        """Close the series file with the output times added so far (a run that stops
+        early keeps them readable)."""
+        self.series_file.close()
 
     def _measure(self, snap: Snapshot) -> None:
         """The plume measures and the receptors at one output time, and their tables."""
@@ -240,12 +281,21 @@ class SeriesWriter:
         limits = {sp: s.limit for sp, s in case.species.items()}
         files = list(files)
         if names:
+            activity = {sp: [(s.start, case.time.end if s.stop is None else s.stop)
+                             for s in case.sources if s.species == sp] for sp in case.species}
             plot_breakthrough(out / "breakthrough.png", last.history_times, last.history,
-                              names, limits, time_unit=tu, conc_unit=cu, title=case.title)
+                              names, limits, time_unit=tu, conc_unit=cu,
+                              title=case.site or case.title, source_activity=activity)
             files.append("breakthrough.png")
+        if self.figures is not None:
+            files += self.figures.finish()
         files += [f"plume_{sp}_{k:04d}.vtp" for k in range(len(self.series))
                   for sp in case.species]
-        files += ["concentration.pvd", *[f for _, f in self.series], RUN_FIELDS,
+        self.series_file.close()
+        files.append(SERIES_FILE)
+        if case.output.vtu_series:
+            files += ["concentration.pvd", *[f for _, f in self.series]]
+        files += [RUN_FIELDS,
                   "mass_budget.csv", "histories.csv", "plume.csv",
                   *(["receptors.csv"] if self.receptors else []), "summary.json", "report.md",
                   "solver.log"]
@@ -265,6 +315,7 @@ class SeriesWriter:
             data[f"{sp} time of largest [{tu}]"] = f.time_of_largest * per_unit
             data[f"{sp} first above limit [{tu}]"] = f.first_above * per_unit
         write_field(self.site, self.out_dir / RUN_FIELDS, point_data=data)
+        self.series_file.add_static(point_data=data)
 
     def _receptor_results(self) -> list[ReceptorResult]:
         """Peak, crossing times, time above the limit and mass out of every receptor and

@@ -203,9 +203,11 @@ def tiny_run(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str]:
     return out, res.stdout
 
 
-EXPECTED_FILES = ["mesh.msh", "mesh.vtu", "flow.vtu", "concentration.pvd", "histories.csv",
-                  "mass_budget.csv", "summary.json", "report.md", "breakthrough.png",
+EXPECTED_FILES = ["results.vtkhdf", "over_the_run.vtu", "histories.csv", "mass_budget.csv",
+                  "summary.json", "report.md", "breakthrough.png", "head_map.png",
                   "solver.log"]
+PER_FILE_SERIES = ["mesh.msh", "mesh.vtu", "flow.vtu", "concentration.pvd"]
+"""Written only with ``output.vtu_series = true``."""
 
 
 @pytest.mark.slow
@@ -214,7 +216,9 @@ def test_run_writes_every_output(tiny_run: tuple[Path, str]) -> None:
     for name in EXPECTED_FILES:
         assert (out / name).is_file(), name
         assert (out / name).stat().st_size > 0, name
-    assert len(list(out.glob("concentration_*.vtu"))) >= 2
+    for name in PER_FILE_SERIES:
+        assert not (out / name).exists(), name
+    assert not list(out.glob("concentration_*.vtu"))
     assert (out / "breakthrough.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert flat(CAUTION) in flat(stdout)
     log = (out / "solver.log").read_text(encoding="utf-8")
@@ -244,14 +248,19 @@ def test_a_run_that_fails_in_transport_keeps_its_earlier_outputs(tmp_path: Path)
     lines = [ln for ln in res.stderr.strip().splitlines() if ln.strip()]
     assert len(lines) == 1 and "failed after 0 step cuts" in lines[0], res.stderr
     assert "Traceback" not in res.stderr
-    import meshio
     import numpy as np
+    from vtkmodules.util.numpy_support import vtk_to_numpy
+    from vtkmodules.vtkIOHDF import vtkHDFReader
 
-    written = sorted(out.glob("concentration_*.vtu"))
-    assert written, "the outputs before the failure must be kept"
-    for f in written:
-        data = meshio.read(f).point_data
-        assert all(np.all(np.isfinite(v)) for v in data.values()), f
+    reader = vtkHDFReader()
+    reader.SetFileName(str(out / "results.vtkhdf"))
+    reader.UpdateInformation()
+    assert reader.GetNumberOfSteps() >= 1, "the outputs before the failure must be kept"
+    for k in range(reader.GetNumberOfSteps()):
+        reader.SetStep(k)
+        reader.Update()
+        values = vtk_to_numpy(reader.GetOutput().GetPointData().GetArray("tracer [mg per L]"))
+        assert np.all(np.isfinite(values)), k
     assert "step 1: t = " in (out / "solver.log").read_text(encoding="utf-8")
 
 
@@ -290,13 +299,50 @@ def test_run_summary_mass_balance(tiny_run: tuple[Path, str]) -> None:
     assert {o["name"] for o in summary["observations"]} == {"BH-A", "fence_well"}
 
 
+# tiny case: initial state, then every 0.5 yr to 2 yr, shown in days (1 yr = 365.25 d)
+TINY_OUTPUT_DAYS = [0.0, 182.625, 365.25, 547.875, 730.5]
+
+
 @pytest.mark.slow
-def test_run_pvd_lists_the_times_written(tiny_run: tuple[Path, str]) -> None:
+def test_run_series_file_holds_every_output_time(tiny_run: tuple[Path, str]) -> None:
+    """``results.vtkhdf`` read by VTK's own reader (what ParaView and pyvista use): the
+    output times, the mesh, the flow arrays once and the concentration at every time."""
+    from vtkmodules.vtkIOHDF import vtkHDFReader
+
     out, _ = tiny_run
+    reader = vtkHDFReader()
+    reader.SetFileName(str(out / "results.vtkhdf"))
+    reader.UpdateInformation()
+    assert reader.GetNumberOfSteps() == len(TINY_OUTPUT_DAYS)
+    times = []
+    for k in range(reader.GetNumberOfSteps()):
+        reader.SetStep(k)
+        reader.Update()
+        grid = reader.GetOutput()
+        times.append(float(grid.GetFieldData().GetArray("Time").GetValue(0)))
+        assert grid.GetPointData().GetArray("tracer [mg per L]") is not None
+        assert grid.GetPointData().GetArray("head [m]") is not None
+        assert grid.GetCellData().GetArray("darcy_flux [m per d]") is not None
+    assert times == pytest.approx(TINY_OUTPUT_DAYS, rel=1e-6)  # stored as float32 at most
+
+
+@pytest.mark.slow
+def test_run_vtu_series_on_request(tmp_path: Path) -> None:
+    """``output.vtu_series = true``: the mesh files, flow.vtu and one .vtu per output time
+    with a .pvd index listing the times written."""
+    case = tmp_path / "case.toml"
+    text = TINY.read_text(encoding="utf-8")
+    assert text.count("[output]\n") == 1
+    case.write_text(text.replace("[output]\n", "[output]\nvtu_series = true\n"),
+                    encoding="utf-8")
+    out = tmp_path / "run"
+    res = fe3d("run", case, "--out", out, "--quiet", cwd=tmp_path)
+    assert res.returncode == 0, res.stderr
+    for name in PER_FILE_SERIES:
+        assert (out / name).is_file(), name
     datasets = ET.parse(out / "concentration.pvd").getroot().findall("./Collection/DataSet")
     times = [float(d.get("timestep", "nan")) for d in datasets]
-    # tiny case: initial state, then every 0.5 yr to 2 yr, shown in days (1 yr = 365.25 d)
-    assert times == pytest.approx([0.0, 182.625, 365.25, 547.875, 730.5], rel=1e-9)
+    assert times == pytest.approx(TINY_OUTPUT_DAYS, rel=1e-9)
     files = [d.get("file", "") for d in datasets]
     assert len(set(files)) == len(files)
     for name in files:

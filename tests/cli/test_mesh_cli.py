@@ -121,7 +121,7 @@ def test_run_reuses_the_mesh_of_fe3d_mesh(tmp_path: Path) -> None:
     assert marked(run)  # copied from meshes/pellet
     assert (run / "mesh.npz").read_bytes() == \
         (tmp_path / "meshes" / "pellet" / "mesh.npz").read_bytes()
-    assert {"mesh.msh", "mesh.vtu", "flow.vtu", "summary.json"} <= {p.name for p in run.iterdir()}
+    assert {"mesh.npz", "results.vtkhdf", "summary.json"} <= {p.name for p in run.iterdir()}
     # a changed mesh input: neither cached mesh matches, the run builds its own
     finer = tiny_copy(tmp_path, TINY_TEXT.replace('cell_size = "8 m"', 'cell_size = "7 m"'))
     rebuilt = tmp_path / "runs" / "finer"

@@ -28,7 +28,8 @@ PUMP = {"name": "fence_pump", "x": "40 m", "y": "10 m", "screens": [["4 m", "2 m
 def run_folder(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """The tiny case with a pumping well, run once into a fresh folder."""
     out = tmp_path_factory.mktemp("tiny_run")
-    run_case(with_changes(load_case(TINY), wells=[PUMP]), out, base_dir=TINY.parent)
+    run_case(with_changes(load_case(TINY), wells=[PUMP], output={"vtu_series": True}), out,
+             base_dir=TINY.parent)
     return out
 
 
