@@ -52,7 +52,7 @@ from fe3d.post.receptors import (
 from fe3d.post.report import ObservationResult, RunSummary, write_report, write_summary_json
 from fe3d.post.run_fields import RunWideField
 from fe3d.post.run_figures import PlumeFigures, write_head_figure
-from fe3d.post.series import SeriesFile
+from fe3d.post.series import SERIES_FILE, SeriesFile
 from fe3d.post.tables import (
     write_flow_budget,
     write_histories,
@@ -70,10 +70,6 @@ __all__ = ["RUN_FIELDS", "SERIES_FILE", "PlumeRow", "SeriesWriter", "flow_cell_d
 
 #: The file of the fields over the whole run (theory.md O4).
 RUN_FIELDS = "over_the_run.vtu"
-
-#: The run's fields in one VTKHDF file: the mesh and flow once, every output time appended
-#: (docs/outputs.md).
-SERIES_FILE = "results.vtkhdf"
 
 
 def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField,

@@ -22,7 +22,11 @@ import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
 
-__all__ = ["VTK_TETRA", "SeriesFile", "array_name"]
+__all__ = ["SERIES_FILE", "VTK_TETRA", "SeriesFile", "array_name", "read_series"]
+
+#: The file a run writes its fields into: the mesh and flow once, every output time
+#: appended (docs/outputs.md).
+SERIES_FILE = "results.vtkhdf"
 
 VTK_TETRA = 10  # VTK's cell type number of a linear tetrahedron
 
@@ -214,3 +218,22 @@ def _append(data: Any, value: float | int | list[int]) -> None:
     n = data.shape[0]
     data.resize(n + 1, axis=0)
     data[n] = value
+
+
+def read_series(path: Path, names: list[str]) -> tuple[FloatArray, dict[str, FloatArray]]:
+    """The output times (in the file's time unit) and, for each name (as given to
+    :meth:`SeriesFile.add`), the values at every output time, shape ``(n_times, n_nodes)``,
+    of a file :class:`SeriesFile` wrote."""
+    import h5py
+
+    with h5py.File(path, "r") as f:
+        root = f["VTKHDF"]
+        n = int(root["NumberOfPoints"][0])
+        times = np.array(root["Steps/Values"], dtype=float) if "Steps" in root else np.zeros(0)
+        out = {}
+        for name in names:
+            key = array_name(name)
+            data, offsets = root["PointData"][key], root["Steps/PointDataOffsets"][key]
+            out[name] = np.stack([np.asarray(data[int(o):int(o) + n], dtype=float)
+                                  for o in np.asarray(offsets).ravel()])
+    return times, out

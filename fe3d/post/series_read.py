@@ -1,5 +1,6 @@
-"""Reading back the concentration series a run wrote (concentration.pvd and its .vtu files),
-for studies that combine the fields of several runs on one mesh."""
+"""Reading back the concentration series a run wrote (``results.vtkhdf``, or with
+``output.vtu_series`` concentration.pvd and its .vtu files), for studies that combine the
+fields of several runs on one mesh."""
 
 from __future__ import annotations
 
@@ -9,6 +10,7 @@ from pathlib import Path
 import numpy as np
 
 from fe3d._typing import FloatArray
+from fe3d.post.series import SERIES_FILE, read_series
 from fe3d.units import from_si
 
 __all__ = ["read_concentration_series"]
@@ -19,11 +21,16 @@ def read_concentration_series(folder: Path, species: list[str], *, time_unit: st
     """Output times [s] ``(n_times,)`` and nodal concentrations [kg/m³] ``(n_times,
     n_nodes)`` per species, from the series fe3d.post.outputs.SeriesWriter wrote in
     ``folder`` (display units ``time_unit`` and ``conc_unit`` as written there)."""
+    t_scale, c_scale = from_si(1.0, time_unit), from_si(1.0, conc_unit)
+    series = folder / SERIES_FILE
+    if series.is_file():  # the default: one VTKHDF file
+        names = [f"{sp} [{conc_unit}]" for sp in species]
+        times, values = read_series(series, names)
+        return times / t_scale, {sp: values[f"{sp} [{conc_unit}]"] / c_scale for sp in species}
     import meshio
 
     root = ET.parse(folder / "concentration.pvd").getroot()
     entries = [(float(d.attrib["timestep"]), d.attrib["file"]) for d in root.iter("DataSet")]
-    t_scale, c_scale = from_si(1.0, time_unit), from_si(1.0, conc_unit)
     fields: dict[str, list[FloatArray]] = {sp: [] for sp in species}
     for _t, name in entries:
         data = meshio.read(folder / name).point_data
