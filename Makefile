@@ -32,6 +32,11 @@ bench: $(STAMP)
 	$(BIN)/python benchmarks/run.py
 	$(BIN)/python benchmarks/mesh_bench.py
 	$(BIN)/python benchmarks/flow_bench.py
+	$(BIN)/python benchmarks/step_cost.py
+	$(BIN)/python benchmarks/tracking_bench.py
+	$(BIN)/python benchmarks/post_bench.py
+	$(BIN)/python benchmarks/figures_bench.py
+	$(BIN)/python benchmarks/ensemble_bench.py
 
 clean:
 	rm -rf runs .pytest_cache .ruff_cache
