@@ -25,7 +25,11 @@ from fe3d.case.builder import (
 from fe3d.case.schema import Case
 from fe3d.errors import CaseError
 from fe3d.studies.ensemble import MemberFailure, run_ensemble
-from fe3d.studies.ensemble_results import summarise_ensemble, write_ensemble_tables
+from fe3d.studies.ensemble_results import (
+    probability_fields,
+    summarise_ensemble,
+    write_ensemble_tables,
+)
 from fe3d.studies.executors import SerialExecutor, StudyExecutor, study_executor
 
 N = 8
@@ -117,3 +121,23 @@ def test_failed_members_are_reported_with_their_values(tmp_path: Path):
     assert len(failures) == 1 + len(bad)
     assert f"{ens.sample.values[bad[0], 1]:.10g}" in failures[1]
     assert f"member {bad[0]}" in (tmp_path / "study" / "ensemble.md").read_text()
+
+
+def test_uncertain_mesh_input_meshes_each_member_and_keeps_runs(tmp_path: Path):
+    """A member whose drawn value changes a mesh input (here the plan cell size) meshes on
+    its own; the per-node probability field, which needs one mesh, is then left out while
+    the receptor results are given; ``keep_runs`` keeps each member's full run folder."""
+    base = _case()
+    assert base.uncertain is not None
+    cell = {"name": "mesh.cell_size", "distribution": "uniform", "low": 0.9, "high": 1.1,
+            "unit": "m"}
+    case = with_changes(base, uncertain={"values": [base.uncertain.values[0].model_dump(
+        exclude_none=True), cell]})
+    ens = run_ensemble(case, tmp_path / "study", n_members=2, executor=_serial(),
+                       keep_runs=True)
+    assert len(ens.results) == 2 and all(r.own_mesh for r in ens.results)
+    assert ens.site is None
+    assert probability_fields(ens) is None
+    assert summarise_ensemble(ens).exceedance[0].probability.shape == (201,)
+    assert (tmp_path / "study" / "runs" / "member_0001" / "summary.json").is_file()
+    assert len({r.n_nodes for r in ens.results}) == 2  # two different meshes
