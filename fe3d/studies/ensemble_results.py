@@ -328,7 +328,7 @@ def report_lines(ensemble: Ensemble, st: EnsembleStatistics) -> list[str]:
              f"failed ({ensemble.reused} reused from an earlier start); ran on "
              f"{ensemble.where}. The drawn values of every member are in "
              "`ensemble_draws.csv`.", "", "## Uncertain values", "",
-             "| value | unit | 5 % | median | 95 % of the drawn values |", "|---|---|---|---|---|"]
+             "| value | unit | drawn: 5 % | median | 95 % |", "|---|---|---|---|---|"]
     for k, (name, unit) in enumerate(zip(sample.names, sample.units, strict=True)):
         p = np.percentile(sample.values[:, k], PERCENTILES)
         lines.append(f"| {name} | {unit or '-'} | {p[0]:.4g} | {p[1]:.4g} | {p[2]:.4g} |")

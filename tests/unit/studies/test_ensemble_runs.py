@@ -59,6 +59,9 @@ class _DriverStopped(Exception):
 
 
 @pytest.mark.slow
+# dask warns when a worker's scratch folder is slow to create on a busy disk: a note about
+# the machine, not about the ensemble
+@pytest.mark.filterwarnings("ignore:Creating scratch directories:UserWarning")
 def test_local_cluster_resumes_only_missing_members_with_identical_results(tmp_path: Path):
     """2 workers run 8 members; the driver stops after 3 results are saved; started again on
     the same folder it runs only the 5 missing members (the saved files are not rewritten),
