@@ -8,13 +8,12 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
 
-from fe3d.case.parts import FlowInputs, Ground, TransportInputs, TravelInputs
+from fe3d.case.parts import FlowInputs, TransportInputs, TravelInputs
 from fe3d.case.schema import Case
 from fe3d.flow.paths import travel_paths
 from fe3d.flow.solve import FlowField, solve_flow
 from fe3d.mesh.build import build_mesh, obtain_mesh
 from fe3d.mesh.corridor import Corridor, site_corridor
-from fe3d.mesh.materials import cell_values, unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.post.outputs import SeriesWriter, write_flow_outputs
 from fe3d.post.report import RunSummary
@@ -161,11 +160,10 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
         site, out_dir, formats=("msh", "vtu") if case.output.vtu_series else ())]
     tell("flow", 0, 1)
     flow = solve_flow(site, FlowInputs.of(case), base_dir=base_dir)
-    porosity = cell_values(unit_materials(Ground.of(case), site)[0], site, "porosity")
     tell("travel paths", 0, 1)
     paths = travel_paths(site, flow, TravelInputs.of(case))
-    files += write_flow_outputs(out_dir, case, site, flow, porosity, paths)
-    writer = SeriesWriter(out_dir, case, site, porosity, flow=flow)
+    files += write_flow_outputs(out_dir, case, site, flow, paths)
+    writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow)
     try:
         for snap in run_transport(site, flow, TransportInputs.of(case), base_dir=base_dir,
                                   on_step=lambda t, end: tell("transport", t, end)):

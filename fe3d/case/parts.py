@@ -74,13 +74,12 @@ class FlowInputs:
 
 @dataclass(frozen=True)
 class TravelInputs:
-    """What the advective particle tracking reads: the ground (for the porosity), the
-    sources it starts from, the wells and observation points it arrives at, the plan outline
-    (counter-clockwise vertices [m] and one name per edge) and elevation range [m] that
-    bound a source given by open ranges, the capture distance ``reach`` [m] (twice the
-    smallest target cell size) and the end time [s] of backward tracking."""
+    """What the advective particle tracking reads: the sources it starts from, the wells
+    and observation points it arrives at, the plan outline (counter-clockwise vertices [m]
+    and one name per edge) and elevation range [m] that bound a source given by open
+    ranges, the capture distance ``reach`` [m] (twice the smallest target cell size) and the
+    end time [s] of backward tracking. The porosity comes with the flow field."""
 
-    ground: Ground
     sources: tuple[Source, ...]
     wells: tuple[Well, ...]
     observation_points: tuple[ObservationPoint, ...]
@@ -93,7 +92,7 @@ class TravelInputs:
     @classmethod
     def of(cls, case: Case) -> TravelInputs:
         vertices, names = case.outline()
-        return cls(ground=Ground.of(case), sources=tuple(case.sources),
+        return cls(sources=tuple(case.sources),
                    wells=tuple(case.wells), observation_points=tuple(case.observation_points),
                    outline=tuple(vertices), edge_names=tuple(names),
                    elevation_range=(case.z_bottom_min, case.z_top),

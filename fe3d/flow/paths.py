@@ -14,7 +14,6 @@ from fe3d.case.parts import TravelInputs
 from fe3d.case.schema import Source
 from fe3d.flow.solve import FlowField
 from fe3d.flow.tracking import Pathline, Tracker
-from fe3d.mesh.materials import cell_values, unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
 
 __all__ = ["ReceptorArrival", "TravelPaths", "travel_paths"]
@@ -94,9 +93,7 @@ def _receptors(inputs: TravelInputs) -> list[tuple[str, float, float, float, flo
 
 def travel_paths(site: SiteMesh, flow: FlowField, inputs: TravelInputs) -> TravelPaths:
     """Track water particles for a quick check of arrival times (theory.md F8)."""
-    mats, _ = unit_materials(inputs.ground, site)
-    theta = cell_values(mats, site, "porosity")
-    tracker = Tracker(site.points, site.cells, flow.darcy_flux / theta)
+    tracker = Tracker(site.points, site.cells, flow.seepage_velocity)
     reach = inputs.reach
     # forward particles end in a cell near an extraction well's screen (it takes their water)
     centres = site.points[:, site.cells].mean(axis=1)

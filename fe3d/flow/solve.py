@@ -25,7 +25,7 @@ from fe3d.flow.site_rules import (
 )
 from fe3d.linalg import FLOW_TOLERANCE, solve_spd
 from fe3d.mesh.locate import sample_operator, screen_points
-from fe3d.mesh.materials import unit_materials
+from fe3d.mesh.materials import cell_values, unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import gradients, split_rows
 from fe3d.sgs import plus_diagonal
@@ -62,6 +62,10 @@ class FlowField:
         Darcy flux q = −K∇h per cell [m/s], shape ``(3, n_cells)``.
     conductivity
         Principal conductivities (K_h, K_h, K_v) per cell [m/s], shape ``(3, n_cells)``.
+    porosity
+        Porosity of each cell's material [-], shape ``(n_cells,)``: carried with the flow so
+        that the seepage velocity, the tracking, the transport and the outputs share one
+        array.
     budget
         Inflow and outflow per budget item (fixed-head face, flux face, recharge zone,
         head-dependent zone, well).
@@ -82,12 +86,18 @@ class FlowField:
     head: FloatArray
     darcy_flux: FloatArray
     conductivity: FloatArray
+    porosity: FloatArray
     budget: tuple[BoundaryFlow, ...]
     fixed_head_nodes: dict[str, IndexArray]
     well_heads: dict[str, float] = field(default_factory=dict)
     exchange: dict[str, FloatArray] = field(default_factory=dict)
     solver_iterations: int = 0
     timings: dict[str, float] = field(default_factory=dict)
+
+    @property
+    def seepage_velocity(self) -> FloatArray:
+        """Seepage velocity v = q/θ per cell [m/s], shape ``(3, n_cells)`` (F8)."""
+        return self.darcy_flux / self.porosity
 
     @property
     def total_inflow(self) -> float:
@@ -232,7 +242,8 @@ def solve_flow(
               for name, nodes in owner.items()]
     budget += [BoundaryFlow(name, kind, *_split(f)) for name, kind, f in items]
     well_heads = {name: float((op @ head)[0]) for name, op in well_ops.items()}
-    result = FlowField(head=head, darcy_flux=q, conductivity=principal, budget=tuple(budget),
+    result = FlowField(head=head, darcy_flux=q, conductivity=principal,
+                       porosity=cell_values(mats, site, "porosity"), budget=tuple(budget),
                        fixed_head_nodes=owner, well_heads=well_heads,
                        exchange={name: f for name, _, f in items},
                        solver_iterations=iterations, timings=dict(stats))

@@ -73,17 +73,16 @@ RUN_FIELDS = "over_the_run.vtu"
 
 
 def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField,
-                       porosity: FloatArray, paths: TravelPaths) -> list[str]:
+                       paths: TravelPaths) -> list[str]:
     """``flow_budget.csv``, the forward and backward pathlines, the head on the top face
     (``heads_plan.png``) and the head map with capture zones (``head_map.png``), and with
     ``output.vtu_series`` ``flow.vtu`` (head, Darcy flux, seepage velocity, conductivity in
-    m/d; else they are in the series file); returns the names of the files written.
-    ``porosity`` is per cell."""
+    m/d; else they are in the series file); returns the names of the files written."""
     names = ["flow_budget.csv", "pathlines_forward.vtp", "pathlines_backward.vtp",
              "heads_plan.png"]
     if case.output.vtu_series:
         write_field(site, out_dir / "flow.vtu", point_data={"head [m]": flow.head},
-                    cell_data=flow_cell_data(flow, porosity))
+                    cell_data=flow_cell_data(flow))
         names.insert(0, "flow.vtu")
     write_flow_budget(out_dir / "flow_budget.csv", flow)
     tu = case.output.time_unit
@@ -108,12 +107,12 @@ def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowFiel
     return names + write_head_figure(out_dir, case, site, flow, paths, head_unit="m")
 
 
-def flow_cell_data(flow: FlowField, porosity: FloatArray) -> dict[str, FloatArray]:
+def flow_cell_data(flow: FlowField) -> dict[str, FloatArray]:
     """The flow's cell arrays in m/d, shape ``(n_cells, 3)``: Darcy flux, seepage velocity
-    (``porosity`` per cell) and principal conductivities."""
+    and principal conductivities."""
     per_day = to_seconds("d")
     return {"darcy_flux [m/d]": (flow.darcy_flux * per_day).T,
-            "seepage_velocity [m/d]": (flow.darcy_flux / porosity * per_day).T,
+            "seepage_velocity [m/d]": (flow.seepage_velocity * per_day).T,
             "conductivity [m/d]": (flow.conductivity * per_day).T}
 
 
@@ -159,7 +158,7 @@ class SeriesWriter:
             out_dir / SERIES_FILE, site.points, site.cells,
             static_point_data=None if flow is None else {"head [m]": flow.head},
             static_cell_data={"unit_id": site.cell_layer.astype(np.int32),
-                              **({} if flow is None else flow_cell_data(flow, porosity))},
+                              **({} if flow is None else flow_cell_data(flow))},
             time_unit=case.output.time_unit)
         self.figures = None if flow is None else PlumeFigures(out_dir, case, site, flow,
                                                               every_output_time=False)

@@ -63,9 +63,9 @@ def build_medium(site: SiteMesh, flow: FlowField, ground: Ground) -> MediumField
     """Porosity, bulk density, θD and the outflow terms per cell and node (T3b, T4)."""
     n = site.n_nodes
     mats, mat_names = unit_materials(ground, site)
-    theta = cell_values(mats, site, "porosity")
+    theta = flow.porosity
     q = flow.darcy_flux
-    v = q / theta
+    v = flow.seepage_velocity
     D = dispersion_tensor(
         v,
         alpha_l=cell_values(mats, site, "longitudinal_dispersivity"),
