@@ -51,6 +51,34 @@ def measure(workers: int, members: int, folder: Path) -> dict[str, Any]:
             "cpu_median": float(np.median(cpu))}
 
 
+def _noop(k: int) -> int:
+    return k
+
+
+def scheduler_cost(n_tasks: int = 400) -> tuple[float, float]:
+    """Round trip per task [s] of trivial tasks through the local cluster's executor (submit,
+    schedule, run, result), and the time [s] to send the shared mesh to both workers."""
+    from concurrent.futures import wait
+
+    from fe3d.case.load import load_case
+    from fe3d.pipeline import mesh_case
+    from fe3d.studies.executors import study_executor
+
+    case = load_case(CASE).model_copy(update={"uncertain": None})
+    with tempfile.TemporaryDirectory() as tmp:
+        site, _, _ = mesh_case(case, Path(tmp), base_dir=CASE.parent)
+    with study_executor(n_runs=2, workers=2) as ex:
+        wait([ex.executor.submit(_noop, k) for k in range(20)])  # workers up and warm
+        tick = time.perf_counter()
+        wait([ex.executor.submit(_noop, k) for k in range(n_tasks)])
+        per_task = (time.perf_counter() - tick) / n_tasks
+        tick = time.perf_counter()
+        handle = ex.share(site)
+        wait([ex.executor.submit(_noop, handle) for _ in range(2)])
+        share = time.perf_counter() - tick
+    return per_task, share
+
+
 def mesh_bytes() -> int:
     """Pickled size of the shared mesh (what one scatter sends to each worker)."""
     from fe3d.case.load import load_case
@@ -75,6 +103,7 @@ def main() -> int:
         print(r, flush=True)
     load = os.getloadavg()
     size = mesh_bytes()
+    per_task, share = scheduler_cost()
     one, two = rows
     lines = ["## Ensembles (benchmarks/ensemble_bench.py)", "",
              f"`fe3d ensemble` on the tiny ensemble case (cases/tiny/ensemble.toml, invented: "
@@ -110,15 +139,22 @@ def main() -> int:
               "a worker's includes its dask threads). The driver's share per member is the "
               "load-independent figure of the table (target ≤ 2 %). The peak memory with 1 "
               "worker is the whole process (driver included). The shared mesh is sent once "
-              f"to each worker: {size / 2**20:.2f} MiB pickled here. Run it on a quiet "
-              "machine to measure the speed-up.", "",
+              f"to each worker: {size / 2**20:.2f} MiB pickled here, {1000 * share:.0f} ms "
+              "to both workers with a task using it (most of it the workers' first import of "
+              "fe3d's mesh module to unpickle it). Through the same executor a trivial "
+              f"task costs {1000 * per_task:.1f} ms from submission to result (400 tasks on "
+              "the 2 local workers). Run it on a quiet machine to measure the speed-up.", "",
               "On a cluster of N machines the members are independent, so the steady "
               "throughput grows with the number of worker processes until one of three "
-              "limits: the scheduler (a few hundred microseconds to a few milliseconds per "
-              "task, far below a member's seconds to hours), the driver (its share per member "
-              "is in the table: sampling, member cases, writing each member's compact file), "
-              "and the one-time transfer of the shared mesh to every worker (its size times "
-              "the workers, over the network at start). Each worker's first member also pays "
+              "limits: the scheduler (the round trip per task above, far below a member's "
+              "seconds to hours: one scheduler keeps thousands of workers busy with members "
+              "of a second or more), the driver (its share per member is in the table: "
+              "sampling, member cases, writing each member's compact file; it grows with the "
+              "receptors and output times, not with the workers), and the one-time transfer "
+              "of the shared mesh to every worker (its size times the workers, over the "
+              f"network at start; {size / one['nodes']:.0f} B per node here, so about "
+              f"{size / one['nodes'] * 1e6 / 2**20:.0f} MiB per worker for a million-node "
+              "mesh). Each worker's first member also pays "
               "the imports and the loading of the compiled kernels, a fixed start-up per "
               "worker. Memory: a worker holds one member at a time (its peak is in the "
               "table), so a machine takes as many workers as it has cores and memory for.",
