@@ -207,14 +207,18 @@ def mesh_inputs_hash(case: Case) -> str:
 
 
 def save_cached(site: SiteMesh, folder: Path, digest: str) -> Path:
-    """Write ``mesh.npz`` (exact arrays, the plan layout included) and ``mesh.json`` (hash,
-    units, faces and the rest of the mesh report) in ``folder``."""
+    """Write ``mesh.npz`` (exact arrays, the plan layout included, and the hash of the mesh
+    inputs) and ``mesh.json`` (the same hash, units, faces and the rest of the mesh report)
+    in ``folder``, each atomically. Both files carry the hash, so a crash between the two
+    writes leaves a pair that :func:`load_cached` refuses rather than a mesh under the wrong
+    hash."""
     report = site.report
     if report is None:
         msg = "a mesh without a mesher report (assembled from bare arrays) is not cached"
         raise MeshError(msg)
     folder.mkdir(parents=True, exist_ok=True)
-    arrays = {"points": site.points, "cells": site.cells, "cell_layer": site.cell_layer}
+    arrays = {"points": site.points, "cells": site.cells, "cell_layer": site.cell_layer,
+              "mesh_inputs_sha256": np.array(digest)}
     arrays |= {f"face:{k}": v for k, v in site.faces.items()}
     plan = report.plan
     if plan is not None:
@@ -240,7 +244,8 @@ def save_cached(site: SiteMesh, folder: Path, digest: str) -> Path:
 
 
 def load_cached(folder: Path, digest: str) -> SiteMesh | None:
-    """The cached mesh in ``folder`` if its stored hash equals ``digest``, else ``None``.
+    """The cached mesh in ``folder`` if the hash stored in both ``mesh.json`` and
+    ``mesh.npz`` equals ``digest``, else ``None``.
 
     Its report equals the one of the mesh when it was built, but for ``origin`` (``"cached"``)
     and ``origin_path`` (this folder).
@@ -253,6 +258,8 @@ def load_cached(folder: Path, digest: str) -> SiteMesh | None:
         if meta.get("mesh_inputs_sha256") != digest:
             return None
         with np.load(npz) as z:
+            if "mesh_inputs_sha256" not in z.files or str(z["mesh_inputs_sha256"]) != digest:
+                return None
             faces = {name: z[f"face:{name}"] for name in meta["faces"]}
             nodes = meta["plan_nodes"]
             plan = None if nodes is None else PlanLayout(

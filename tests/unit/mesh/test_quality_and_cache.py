@@ -76,6 +76,25 @@ def test_source_strength_and_well_rate_do_not_change_the_mesh_hash():
     assert mesh_inputs_hash(moved) != mesh_inputs_hash(base)
 
 
+def test_a_crash_between_the_two_cache_files_never_reuses_the_wrong_mesh(tmp_path):
+    """Issue 15: mesh.npz of case B written, then a crash before mesh.json: the folder holds
+    B's arrays beside A's metadata. Neither case may reuse that pair (behaviour requirement,
+    no outside reference)."""
+    from fe3d.mesh.io import load_cached
+
+    case_a = load_case(TINY)
+    case_b = with_changes(case_a, mesh={"cell_size": "6 m"})
+    a_folder, b_folder = tmp_path / "a", tmp_path / "b"
+    obtain_mesh(case_a, [a_folder], save_to=a_folder)
+    obtain_mesh(case_b, [b_folder], save_to=b_folder)
+    (a_folder / "mesh.npz").write_bytes((b_folder / "mesh.npz").read_bytes())  # the crash
+    assert load_cached(a_folder, mesh_inputs_hash(case_a)) is None
+    assert load_cached(a_folder, mesh_inputs_hash(case_b)) is None
+    assert load_cached(b_folder, mesh_inputs_hash(case_b)) is not None
+    _, reused = obtain_mesh(case_a, [a_folder], save_to=a_folder)
+    assert not reused
+
+
 def test_a_cached_mesh_carries_the_same_report_as_a_fresh_one(tmp_path):
     """The mesher's report is a frozen record set at construction; loading the mesh from the
     cache gives equal fields (only origin and origin_path say where it came from)."""
