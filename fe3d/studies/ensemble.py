@@ -396,8 +396,9 @@ def run_ensemble(case: Case, out_dir: Path, *, n_members: int, executor: StudyEx
             cases[k] = member_case(nominal, inputs, sample.values[k])
         except CaseErrors as exc:
             failures[k] = MemberFailure(k, "; ".join(e.line() for e in exc.errors))
-    done = len(finished)
-    for outcome in [*finished.values(), *failures.values()]:
+    done = 0
+    for outcome in [*finished.values(), *failures.values()]:  # known before any run
+        done += 1
         if on_member is not None:
             on_member(done, n_members, outcome)
     nominal_hash = mesh_inputs_hash(nominal)
@@ -411,7 +412,6 @@ def run_ensemble(case: Case, out_dir: Path, *, n_members: int, executor: StudyEx
     jobs = {k: (k, c, site_handle if k in shared else None, base_dir,
                 out_dir / "runs" / f"member_{k:04d}" if keep_runs else None)
             for k, c in cases.items()}
-    done += len(failures)
     for k, outcome, submit_time in _outcomes(executor, jobs):
         tick = time.perf_counter()
         driver += submit_time

@@ -81,7 +81,10 @@ def test_local_cluster_resumes_only_missing_members_with_identical_results(tmp_p
             run_ensemble(case, folder, n_members=N, executor=ex, on_member=stop_after_three)
         saved = {p: p.stat().st_mtime_ns for p in (folder / "members").glob("member_*.npz")}
         assert len(saved) == 3
-        resumed = run_ensemble(case, folder, n_members=N, executor=ex)
+        counts: list[int] = []
+        resumed = run_ensemble(case, folder, n_members=N, executor=ex,
+                               on_member=lambda done, total, _o: counts.append(done))
+    assert counts == list(range(1, N + 1))  # the progress counts reused members first
     assert resumed.reused == 3
     assert [r.index for r in resumed.results] == list(range(N)) and not resumed.failures
     assert {p: p.stat().st_mtime_ns for p in saved} == saved  # not recomputed
