@@ -337,6 +337,11 @@ class ObservationPoint(Section):
     kind: Literal["monitoring", "receptor"] = "monitoring"
 
 
+MAX_OUTPUT_TIMES = 10_000
+"""Most output times a run writes (each is a field of every node and species, a plume
+surface and table rows; more is a mistake, not a result; common practice, no source)."""
+
+
 class TimeControl(Section):
     """Simulated period, step and output times.
 
@@ -729,6 +734,10 @@ def cross_checks(case: Case) -> list[CaseError]:
     if t.step is not None and t.step > t.end:
         errs.append(CaseError("time.step", _time_text(t.step, tu),
                               f"must not exceed time.end ({_time_text(t.end, tu)})"))
+    if t.output_interval is not None and t.end / t.output_interval > MAX_OUTPUT_TIMES:
+        errs.append(CaseError("time.output_interval", _time_text(t.output_interval, tu),
+                              f"gives {t.end / t.output_interval:.3g} output times over "
+                              f"time.end; at most {MAX_OUTPUT_TIMES:,} are written"))
     for v in t.output_times or []:
         if v > t.end * (1 + 1e-12):
             errs.append(CaseError("time.output_times", _time_text(v, tu),
