@@ -249,7 +249,7 @@ def write_ensemble_tables(ensemble: Ensemble, st: EnsembleStatistics) -> list[st
     write_text_atomic(out / "ensemble_exceedance.csv", _csv(rows))
 
     rows = [["point", "species", "quantity", "unit",
-             *[f"P{p:g}" for p in PERCENTILES], "members"]]
+             *[f"{p:g}th percentile" for p in PERCENTILES], "members"]]
     for q in st.quantities:
         unit = cu if q.kind == "concentration" else tu
         rows.append([q.point, q.species, q.measure, unit,
