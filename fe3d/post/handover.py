@@ -22,7 +22,6 @@ import numpy as np
 
 from fe3d.post.files import write_text_atomic
 from fe3d.post.probes import breakthrough
-from fe3d.post.receptors import receptor_result
 from fe3d.post.report import CAUTION
 from fe3d.post.run_folder import RunResult, read_run
 from fe3d.units import from_si
@@ -99,19 +98,15 @@ def receptor_table(run: RunResult) -> Table:
     reached"; "still above" at the end), total time above it, mass carried out [kg] and its
     share of all the mass that left the model through receptors [%]."""
     tu, cu = run.time_unit, run.concentration_unit
-    total = {sp: sum(float(r.mass_out[-1]) for r in run.receptors if r.species == sp)
-             for sp in run.species}
     rows = []
-    for r in run.receptors:
-        res = receptor_result(r.rows(), run.limit(r.species))
+    for r, res in zip(run.receptors, run.receptor_results(), strict=True):
         last = ("still above at the end" if res.last_above_limit is not None
                 and res.last_above_limit >= r.times[-1] else _time(res.last_above_limit, tu))
-        share = 100.0 * res.mass_out / total[r.species] if total[r.species] > 0 else 0.0
         rows.append((r.name, r.kind, r.species, _q(res.water_rate * 86400.0),
                      _q(from_si(res.peak, cu)), _time(res.peak_time, tu),
                      _time(res.first_above_limit, tu), last,
                      _q(from_si(res.time_above_limit, tu)), _q(res.mass_out),
-                     f"{share:.3g}"))
+                     f"{100.0 * run.mass_out_share(res):.3g}"))
     return Table(("receptor", "kind", "species", "water out [m³/d]", f"peak [{cu}]",
                   f"time of peak [{tu}]", f"first above limit [{tu}]",
                   f"last above limit [{tu}]", f"time above limit [{tu}]", "mass out [kg]",

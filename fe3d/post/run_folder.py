@@ -22,7 +22,7 @@ import numpy as np
 
 from fe3d._typing import FloatArray
 from fe3d.errors import CaseError
-from fe3d.post.receptors import ReceptorRow
+from fe3d.post.receptors import ReceptorResult, ReceptorRow, receptor_result
 from fe3d.units import from_si
 
 __all__ = [
@@ -163,6 +163,18 @@ class RunResult:
                 return p.limit
         msg = f"{self.folder / 'plume.csv'}"
         raise CaseError(msg, species, f"species in the run: {', '.join(self.species)}")
+
+    def receptor_results(self) -> tuple[ReceptorResult, ...]:
+        """Peak, crossing times, time above the limit and mass out of every receptor and
+        species, recomputed from ``receptors.csv`` (SI units)."""
+        return tuple(receptor_result(r.rows(), self.limit(r.species)) for r in self.receptors)
+
+    def mass_out_share(self, result: ReceptorResult) -> float:
+        """The receptor's share of the mass of its species that left the model through
+        all the receptors by the end [-] (0 when none left)."""
+        total = sum(float(r.mass_out[-1]) for r in self.receptors
+                    if r.species == result.species)
+        return result.mass_out / total if total > 0 else 0.0
 
     def history(self, point: str, species: str) -> PointHistory:
         """The history at ``point`` of ``species``."""
