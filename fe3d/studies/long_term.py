@@ -1,0 +1,72 @@
+"""The long-term plume of a case: how far its plume can ever reach (theory.md T17).
+
+:func:`long_term_plume` meshes the site and solves its flow (:func:`fe3d.pipeline.mesh_and_flow`),
+solves the steady transport for the sources that never stop
+(:func:`fe3d.transport.steady.solve_steady_transport`), measures each species above its limit
+and writes ``steady_plume.vtu`` and ``steady_plume.csv`` (:mod:`fe3d.post.steady_outputs`).
+The results are screening estimates that depend on the inputs (``fe3d.post.report.CAUTION``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+from fe3d.case.parts import TransportInputs
+from fe3d.case.schema import Case
+from fe3d.pipeline import mesh_and_flow
+from fe3d.post.steady_outputs import measure_steady_plume, write_steady_plume
+from fe3d.transport.steady import solve_steady_transport
+
+__all__ = ["LongTermExtent", "LongTermPlume", "long_term_plume"]
+
+
+@dataclass(frozen=True)
+class LongTermExtent:
+    """One species' long-term plume above its limit (SI units): ``extent`` [m] the farthest
+    plan distance from its source (from the face for a face source), ``downstream`` [m]
+    along the mean flow, ``volume`` [m³] of aquifer above the limit, ``peak`` [kg/m³] the
+    largest steady value, ``limit`` [kg/m³]; ``counted_sources`` are the sources that never
+    stop (an empty tuple: no long-term plume)."""
+
+    species: str
+    limit: float
+    extent: float
+    downstream: float
+    volume: float
+    peak: float
+    counted_sources: tuple[str, ...]
+
+    @property
+    def above_limit(self) -> bool:
+        """Some of the aquifer stays above the limit for ever."""
+        return self.volume > 0.0
+
+
+@dataclass(frozen=True)
+class LongTermPlume:
+    """Every species' long-term plume, the spatial operator it was solved with
+    (``"low_order"``: bounded, more diffusive; ``"supg"`` / ``"galerkin"``: sharper, may
+    undershoot; theory.md T17) and the files written."""
+
+    species: tuple[LongTermExtent, ...]
+    operator: str
+    files: tuple[Path, ...]
+
+
+def long_term_plume(case: Case, out_dir: Path, *, base_dir: Path | None = None) -> LongTermPlume:
+    """Solve and write the long-term plume of ``case`` into ``out_dir``.
+
+    ``base_dir`` is the case file's folder (relative data files, user code). Raises
+    :class:`~fe3d.errors.CaseError` for what the steady solve refuses (species coupled by a
+    user reaction law; a continuous source with nothing to remove its mass)."""
+    site, flow = mesh_and_flow(case, base_dir=base_dir)
+    steady = solve_steady_transport(site, flow, TransportInputs.of(case), base_dir=base_dir)
+    rows = measure_steady_plume(case, site, flow, steady)
+    files = write_steady_plume(out_dir, case, site, rows, operator=steady.operator)
+    return LongTermPlume(
+        species=tuple(LongTermExtent(
+            species=r.steady.name, limit=r.limit, extent=r.measures.extent,
+            downstream=r.measures.downstream, volume=r.measures.volume, peak=r.peak,
+            counted_sources=r.steady.counted_sources) for r in rows),
+        operator=steady.operator, files=files)
