@@ -106,7 +106,7 @@ def receptor_table(run: RunResult) -> Table:
                      _q(from_si(res.peak, cu)), _time(res.peak_time, tu),
                      _time(res.first_above_limit, tu), last,
                      _q(from_si(res.time_above_limit, tu)), _q(res.mass_out),
-                     f"{100.0 * run.mass_out_share(res):.3g}"))
+                     _q(100.0 * run.mass_out_share(res))))
     return Table(("receptor", "kind", "species", "water out [m³/d]", f"peak [{cu}]",
                   f"time of peak [{tu}]", f"first above limit [{tu}]",
                   f"last above limit [{tu}]", f"time above limit [{tu}]", "mass out [kg]",
