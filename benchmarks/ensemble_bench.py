@@ -26,15 +26,18 @@ ROOT = Path(__file__).resolve().parents[1]
 CASE = ROOT / "cases" / "tiny" / "ensemble.toml"
 
 
-def measure(workers: int, members: int, folder: Path) -> dict[str, Any]:
-    """One ensemble on ``workers`` (1: in this process) from an empty folder."""
+def measure(workers: int, members: int, folder: Path, *, in_process: bool
+            ) -> dict[str, Any]:
+    """One ensemble on ``workers`` (in this process, or a local cluster) from an empty
+    folder."""
     from fe3d.case.load import load_case
     from fe3d.studies.ensemble import run_ensemble
     from fe3d.studies.executors import study_executor
 
     case = load_case(CASE)
     started = time.perf_counter()
-    with study_executor(n_runs=members, workers=workers) as ex:
+    with study_executor(n_runs=members, workers=workers,
+                        single_in_process=in_process) as ex:
         opened = time.perf_counter() - started
         ens = run_ensemble(case, folder, n_members=members, executor=ex,
                            base_dir=CASE.parent)
@@ -42,7 +45,8 @@ def measure(workers: int, members: int, folder: Path) -> dict[str, Any]:
     assert len(ens.results) == members, ens.failures
     runs = np.array([r.wall_time for r in ens.results])
     cpu = np.array([r.cpu_time for r in ens.results])
-    return {"workers": workers, "members": members, "open": opened, "total": total,
+    return {"workers": workers, "where": "this process" if in_process else "local cluster",
+            "members": members, "open": opened, "total": total,
             "per_hour": members / total * 3600.0, "member_mean": float(runs.mean()),
             "member_median": float(np.median(runs)), "member_max": float(runs.max()),
             "driver": ens.driver_time, "nodes": ens.results[0].n_nodes,
@@ -96,33 +100,35 @@ def main() -> int:
     ap.add_argument("--write", action="store_true")
     args = ap.parse_args()
     rows = []
-    for workers in (1, 2):
+    for workers, in_process in ((1, True), (1, False), (2, False)):
         with tempfile.TemporaryDirectory() as tmp:
-            r = measure(workers, args.members, Path(tmp) / "study")
+            r = measure(workers, args.members, Path(tmp) / "study", in_process=in_process)
         rows.append(r)
         print(r, flush=True)
     load = os.getloadavg()
     size = mesh_bytes()
     per_task, share = scheduler_cost()
-    one, two = rows
+    _alone, one, two = rows
     lines = ["## Ensembles (benchmarks/ensemble_bench.py)", "",
              f"`fe3d ensemble` on the tiny ensemble case (cases/tiny/ensemble.toml, invented: "
              f"four uncertain values, one rank correlation; {one['nodes']:,} nodes, 37 steps "
              f"of 20 d) with {args.members} members, from an empty study folder: in this "
-             "process (1 worker) and on a dask LocalCluster of 2 single-threaded worker "
-             "processes. Each member is a whole `run_case` (flow, transport and every file "
-             "of a run folder, written to a temporary folder and removed) on the one shared "
-             "mesh. 'steady' divides the workers by the median member time, leaving out the "
-             "cluster's start and each worker's first member (imports, compiled kernels "
+             "process, and on a dask LocalCluster of 1 and of 2 single-threaded worker "
+             "processes (the speed-up compares the two clusters). Each member is a whole "
+             "`run_case` (flow, transport and every file of a run folder, written to a "
+             "temporary folder and removed) on the one shared mesh. 'steady' divides the "
+             "workers by the median member time, leaving out the cluster's start and each "
+             "worker's first member (imports, compiled kernels "
              f"loaded from the cache). Load average while measured: {load[0]:.1f} "
              f"{load[1]:.1f} {load[2]:.1f} on 2 cores (times scale with it).", "",
-             "| workers | members | cluster start [s] | total [s] | members per hour | "
+             "| where | workers | members | cluster start [s] | total [s] | members per hour | "
              "steady members per hour | member median / max [s] | driver per member [ms] "
              "| driver / member time | member CPU median [s] | peak memory per worker [MiB] |",
-             "|---|---|---|---|---|---|---|---|---|---|---|"]
+             "|---|---|---|---|---|---|---|---|---|---|---|---|"]
     for r in rows:
         lines.append(
-            f"| {r['workers']} | {r['members']} | {r['open']:.1f} | {r['total']:.1f} | "
+            f"| {r['where']} | {r['workers']} | {r['members']} | {r['open']:.1f} | "
+            f"{r['total']:.1f} | "
             f"{r['per_hour']:.0f} | {r['steady_per_hour']:.0f} | {r['member_median']:.2f} / "
             f"{r['member_max']:.1f} | {1000 * r['driver'] / r['members']:.1f} | "
             f"{100 * r['driver'] / r['members'] / r['member_mean']:.2f} % | "
@@ -133,12 +139,14 @@ def main() -> int:
               + (", met" if two["per_hour"] >= 1.8 * one["per_hour"] else
                  ", not met here: with the load above, the 2 cores were already busy, so a "
                  "second worker mostly took turns with the first and with the other work") +
-              f"). A member's processor time was {one['cpu_median']:.2f} s in this process "
-              f"and {two['cpu_median']:.2f} s per worker on the cluster (processor time also "
-              "grows when processes compete for the cores' caches and memory bandwidth, and "
-              "a worker's includes its dask threads). The driver's share per member is the "
-              "load-independent figure of the table (target ≤ 2 %). The peak memory with 1 "
-              "worker is the whole process (driver included). The shared mesh is sent once "
+              f"). A member's processor time, the load-independent count, was "
+              f"{one['cpu_median']:.2f} s on 1 worker and {two['cpu_median']:.2f} s on 2 "
+              f"({_alone['cpu_median']:.2f} s in this process, without dask's worker "
+              "threads): the two workers do not slow each other down, so on free cores the "
+              "speed-up approaches 2 less each worker's first member. The driver's share per "
+              "member is the other load-independent figure of the table (target ≤ 2 %). The "
+              "peak memory in this "
+              "process is the whole process (driver included). The shared mesh is sent once "
               f"to each worker: {size / 2**20:.2f} MiB pickled here, {1000 * share:.0f} ms "
               "to both workers with a task using it (most of it the workers' first import of "
               "fe3d's mesh module to unpickle it). Through the same executor a trivial "

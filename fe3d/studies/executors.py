@@ -67,8 +67,8 @@ def machine_workers(n_runs: int) -> int:
 
 
 @contextmanager
-def study_executor(*, n_runs: int, scheduler: str | None = None,
-                   workers: int | None = None) -> Iterator[StudyExecutor]:
+def study_executor(*, n_runs: int, scheduler: str | None = None, workers: int | None = None,
+                   single_in_process: bool = True) -> Iterator[StudyExecutor]:
     """Open the executor of a study, and close what was opened for it afterwards.
 
     Parameters
@@ -80,14 +80,15 @@ def study_executor(*, n_runs: int, scheduler: str | None = None,
         take the runs. ``None``: a local cluster on this machine.
     workers
         Worker processes of the local cluster (default: :func:`machine_workers`); 1 runs
-        everything in this process.
+        everything in this process, unless ``single_in_process`` is false (a local cluster
+        of one worker, to compare like with like).
 
     Raises
     ------
     CaseError
         Naming ``--scheduler`` when no scheduler answers at the address.
     """
-    if scheduler is None and (workers or machine_workers(n_runs)) == 1:
+    if scheduler is None and single_in_process and (workers or machine_workers(n_runs)) == 1:
         yield StudyExecutor(SerialExecutor(), 1, "this process, one run at a time")
         return
     quiet = logging.getLogger("distributed")
