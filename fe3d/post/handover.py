@@ -325,11 +325,13 @@ def handover_sections(run: RunResult) -> tuple[Section, ...]:
                  "above 1 in the plume and grid Péclet numbers above 2."),
             Text("Warnings:"), Items(tuple(s.get("warnings") or ["none"])))),
         Section("Method", (
-            Text("Steady groundwater flow and the transport of each dissolved species "
-                 "(advection, dispersion, sorption, decay) solved by finite elements on "
-                 "tetrahedra with linear shape functions, over "
-                 f"{from_si(s['end_time'], tu):.4g} {tu} in {s['n_steps']} steps. "
-                 f"Transport: {s.get('method') or 'see solver.log'}."),
+            Text("Steady groundwater flow, then the transport of each dissolved species "
+                 "(advection, dispersion, sorption, decay), solved by finite elements on "
+                 "tetrahedra with linear shape functions."),
+            Items((f"simulated period: {from_si(s['end_time'], tu):.4g} {tu} in "
+                   f"{s['n_steps']} steps of {_time(s['step_range'][0], tu)} to "
+                   f"{_time(s['step_range'][1], tu)} {tu}",
+                   f"transport method: {s.get('method') or 'see solver.log'}")),
             _travel_table(run),
             Text("Water travel times come from particle tracking and ignore sorption: a "
                  "sorbing solute's front moves about R times slower."))),
