@@ -20,6 +20,9 @@ from typing import Any
 
 import numpy as np
 
+from fe3d.case.schema import Case
+from fe3d.errors import CaseError
+from fe3d.post.case_tables import write_inputs
 from fe3d.post.files import write_text_atomic
 from fe3d.post.probes import breakthrough
 from fe3d.post.report import CAUTION
@@ -418,15 +421,22 @@ def standalone_html(run: RunResult, sections: tuple[Section, ...]) -> str:
     return "\n".join(out)
 
 
-def write_handover(folder: Path) -> tuple[Path, Path]:
+def write_handover(folder: Path, *, case: Case | None = None) -> tuple[Path, Path]:
     """Write ``report.md`` and ``report.html`` into the run folder ``folder`` from its own
-    files; returns their paths.
+    files; returns their paths. With ``case`` (the case the run was made from), its inputs
+    are first written to the folder's ``inputs.json``
+    (:func:`fe3d.post.case_tables.write_inputs`), for a run written without one.
 
     Raises
     ------
     CaseError
         When the folder is not a finished run (a file is missing or unreadable).
     """
+    if case is not None:
+        if not Path(folder).is_dir():
+            key = "RUN_DIR"
+            raise CaseError(key, str(folder), "a folder written by `fe3d run`")
+        write_inputs(Path(folder), case)
     run = read_run(Path(folder))
     sections = handover_sections(run)
     md, page = run.folder / "report.md", run.folder / "report.html"

@@ -9,6 +9,7 @@ import base64
 import csv
 import json
 import re
+import shutil
 from html.parser import HTMLParser
 from pathlib import Path
 
@@ -247,3 +248,19 @@ def test_read_run_names_the_missing_file(tmp_path):
     assert "\n" not in line
     with pytest.raises(CaseError, match="RUN_DIR"):
         read_run(tmp_path / "nowhere")
+
+
+@pytest.mark.slow
+def test_a_run_without_inputs_says_so_or_takes_the_case(pumped, tmp_path):
+    """A run folder without inputs.json (runs before it existed): the report says where the
+    inputs are instead of inventing them; given the case, the inputs are written and
+    shown."""
+    old = tmp_path / "old_run"
+    shutil.copytree(pumped, old)
+    (old / "inputs.json").unlink()
+    md, _ = write_handover(old)
+    assert "has no `inputs.json`" in md.read_text(encoding="utf-8")
+    md, _ = write_handover(old, case=with_changes(load_case(TINY), wells=[PUMP]))
+    text = md.read_text(encoding="utf-8")
+    assert "## Inputs (display units)" in text
+    assert "| fence_pump | extraction | 40 | 10 | 4 to 2 | 3 |" in text
