@@ -173,7 +173,8 @@ def _run_member(index: int, case: Case, site: SiteMesh | None, base_dir: Path | 
     """Worker: run one member in a temporary folder (or ``keep``) and return its compact
     results; an :class:`Fe3dError` comes back as a failure with its one-line message."""
     started, cpu = time.perf_counter(), time.process_time()
-    folder = keep if keep is not None else Path(tempfile.mkdtemp(prefix="fe3d-member-"))
+    scratch = None if keep is not None else Path(tempfile.mkdtemp(prefix="fe3d-member-"))
+    folder = keep if scratch is None else scratch / "run"  # a run folder not yet made
     try:
         summary = run_case(case, folder, base_dir=base_dir, mesh_folders=[], site=site)
         times, history = read_histories(folder, case)
@@ -182,8 +183,8 @@ def _run_member(index: int, case: Case, site: SiteMesh | None, base_dir: Path | 
         return MemberFailure(index, f"{type(exc).__name__}: " + "; ".join(
             str(exc).splitlines()))
     finally:
-        if keep is None:
-            shutil.rmtree(folder, ignore_errors=True)
+        if scratch is not None:
+            shutil.rmtree(scratch, ignore_errors=True)
     return MemberResult(index, times, history,
                         {sp: float(p["largest_extent"]) for sp, p in summary.plume.items()},
                         summary.n_nodes, time.perf_counter() - started, site is None,
