@@ -20,6 +20,7 @@ from typing import Any
 
 import numpy as np
 
+from fe3d._typing import FloatArray
 from fe3d.case.schema import Case
 from fe3d.errors import CaseError
 from fe3d.post.case_tables import write_inputs
@@ -95,6 +96,13 @@ def _time(t: float | None, unit: str) -> str:
     return "not reached" if t is None else f"{from_si(t, unit):.4g}"
 
 
+def _last(t: float | None, times: FloatArray, unit: str) -> str:
+    """The last time above the limit, or "still above at the end" when it is the last
+    stored time."""
+    return ("still above at the end" if t is not None and t >= times[-1] else
+            _time(t, unit))
+
+
 def receptor_table(run: RunResult) -> Table:
     """Per receptor and species, recomputed from ``receptors.csv``: water out [m³/d], peak
     flux-averaged concentration and its time, first and last time above the limit ("not
@@ -103,11 +111,10 @@ def receptor_table(run: RunResult) -> Table:
     tu, cu = run.time_unit, run.concentration_unit
     rows = []
     for r, res in zip(run.receptors, run.receptor_results(), strict=True):
-        last = ("still above at the end" if res.last_above_limit is not None
-                and res.last_above_limit >= r.times[-1] else _time(res.last_above_limit, tu))
         rows.append((r.name, r.kind, r.species, _q(res.water_rate * 86400.0),
                      _q(from_si(res.peak, cu)), _time(res.peak_time, tu),
-                     _time(res.first_above_limit, tu), last,
+                     _time(res.first_above_limit, tu),
+                     _last(res.last_above_limit, r.times, tu),
                      _q(from_si(res.time_above_limit, tu)), _q(res.mass_out),
                      _q(100.0 * run.mass_out_share(res))))
     return Table(("receptor", "kind", "species", "water out [m³/d]", f"peak [{cu}]",
@@ -122,7 +129,7 @@ def _observation_table(run: RunResult) -> Table:
     for h in run.histories:
         b = breakthrough(h.times, h.concentration, run.limit(h.species))
         rows.append((h.point, h.species, _q(from_si(b.peak, cu)), _time(b.peak_time, tu),
-                     _time(b.first_above_limit, tu), _time(b.last_above_limit, tu)))
+                     _time(b.first_above_limit, tu), _last(b.last_above_limit, h.times, tu)))
     return Table(("point", "species", f"peak [{cu}]", f"time of peak [{tu}]",
                   f"first above limit [{tu}]", f"last above limit [{tu}]"), tuple(rows))
 
