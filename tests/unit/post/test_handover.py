@@ -48,7 +48,7 @@ def _run(case_changes: dict, out: Path) -> Path:
 @pytest.fixture(scope="module")
 def pumped(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """The tiny case with a pumping well, run once, with its handover report."""
-    return _run({"wells": [PUMP]}, tmp_path_factory.mktemp("handover_pumped"))
+    return _run({"wells": [PUMP]}, tmp_path_factory.mktemp("handover") / "pumped")
 
 
 class _Page(HTMLParser):
