@@ -67,20 +67,20 @@ def measure_steady_plume(case: Case, site: SiteMesh, flow: FlowField,
 
 
 def write_steady_plume(folder: Path, case: Case, site: SiteMesh,
-                       rows: tuple[SteadyPlumeRow, ...], *, operator: str) -> tuple[Path, Path]:
+                       rows: tuple[SteadyPlumeRow, ...]) -> tuple[Path, Path]:
     """Write ``steady_plume.vtu`` and ``steady_plume.csv`` into ``folder`` (created when
-    missing); returns their paths. ``operator`` names the spatial operator of the solve."""
+    missing); returns their paths."""
     folder.mkdir(parents=True, exist_ok=True)
     unit = case.output.concentration_unit
     scale = from_si(1.0, unit)
     vtu = write_field(site, folder / STEADY_VTU, point_data={
         f"{r.steady.name} [{unit}]": r.steady.concentration * scale for r in rows})
     table = folder / STEADY_CSV
-    write_text_atomic(table, _table(rows, unit, operator))
+    write_text_atomic(table, _table(rows, unit))
     return vtu, table
 
 
-def _table(rows: tuple[SteadyPlumeRow, ...], unit: str, operator: str) -> str:
+def _table(rows: tuple[SteadyPlumeRow, ...], unit: str) -> str:
     """The CSV text: one row per species; blank cells where nothing exceeds the limit."""
     scale = from_si(1.0, unit)
     header = ["species", f"limit [{unit}]", f"largest concentration [{unit}]",
@@ -100,7 +100,7 @@ def _table(rows: tuple[SteadyPlumeRow, ...], unit: str, operator: str) -> str:
                     *_pair(m.across), *_pair(m.elevation), _g(b.source_input * DAY),
                     _g(sum(b.outflow.values()) * DAY), _g(b.decayed * DAY),
                     f"{b.relative_error:.3e}", " ".join(r.steady.counted_sources),
-                    " ".join(r.steady.left_out_sources), operator])
+                    " ".join(r.steady.left_out_sources), r.steady.operator])
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(header)

@@ -27,7 +27,9 @@ class LongTermExtent:
     plan distance from its source (from the face for a face source), ``downstream`` [m]
     along the mean flow, ``volume`` [m³] of aquifer above the limit, ``peak`` [kg/m³] the
     largest steady value, ``limit`` [kg/m³]; ``counted_sources`` are the sources that never
-    stop (an empty tuple: no long-term plume)."""
+    stop (an empty tuple: no long-term plume); ``operator`` the spatial operator of the solve
+    (``"flux_corrected"``, the default, and ``"low_order"`` are bounded, the latter more
+    diffusive; ``"supg"`` and ``"galerkin"`` are sharper and may undershoot; theory.md T17)."""
 
     species: str
     limit: float
@@ -36,6 +38,7 @@ class LongTermExtent:
     volume: float
     peak: float
     counted_sources: tuple[str, ...]
+    operator: str
 
     @property
     def above_limit(self) -> bool:
@@ -45,12 +48,9 @@ class LongTermExtent:
 
 @dataclass(frozen=True)
 class LongTermPlume:
-    """Every species' long-term plume, the spatial operator it was solved with
-    (``"low_order"``: bounded, more diffusive; ``"supg"`` / ``"galerkin"``: sharper, may
-    undershoot; theory.md T17) and the files written."""
+    """Every species' long-term plume and the files written."""
 
     species: tuple[LongTermExtent, ...]
-    operator: str
     files: tuple[Path, ...]
 
 
@@ -63,10 +63,10 @@ def long_term_plume(case: Case, out_dir: Path, *, base_dir: Path | None = None) 
     site, flow = mesh_and_flow(case, base_dir=base_dir)
     steady = solve_steady_transport(site, flow, TransportInputs.of(case), base_dir=base_dir)
     rows = measure_steady_plume(case, site, flow, steady)
-    files = write_steady_plume(out_dir, case, site, rows, operator=steady.operator)
+    files = write_steady_plume(out_dir, case, site, rows)
     return LongTermPlume(
         species=tuple(LongTermExtent(
             species=r.steady.name, limit=r.limit, extent=r.measures.extent,
             downstream=r.measures.downstream, volume=r.measures.volume, peak=r.peak,
-            counted_sources=r.steady.counted_sources) for r in rows),
-        operator=steady.operator, files=files)
+            counted_sources=r.steady.counted_sources, operator=r.steady.operator)
+        for r in rows), files=files)

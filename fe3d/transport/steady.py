@@ -1,12 +1,15 @@
 """The long-term plume: steady-state transport for the sources that never stop (theory.md T17).
 
 With ∂/∂t = 0 the transport equation of T0 loses its storage term, so each species needs one
-linear solve, K c = b, or one Newton solve when a nonlinear reaction or the decay of a
-nonlinearly sorbed phase acts (T10, T11). K is the spatial operator the case's scheme steps
-with: the low-order operator of discrete upwinding (T16, an M-matrix: bounded, more diffusive)
-under the default ``solver.monotone``, else the Galerkin operator with SUPG built for an
-unbounded step (T6, T8). Species are solved parents first, each daughter loaded by its
-parent's steady decay (T12). Only continuous sources count (:func:`continuous_sources`).
+linear solve K c = b, or one Newton solve when a nonlinear reaction or the decay of a
+nonlinearly sorbed phase acts (T10, T11). K is the spatial operator of the case's scheme.
+Under the default (``solver.monotone`` with ``flux_limiting``) the solve starts from the
+low-order operator of discrete upwinding (T16, an M-matrix: bounded, but more diffusive) and is
+corrected towards the Galerkin solve as far as local bounds allow
+(:mod:`~fe3d.transport.steady_correction`); without ``flux_limiting`` it stays low order; with
+``monotone = false`` it is the Galerkin operator with SUPG built for an unbounded step (T6, T8),
+sharper but not bounded. Species are solved parents first, each daughter loaded by its parent's
+steady decay (T12). Only continuous sources count (:func:`continuous_sources`).
 """
 
 from __future__ import annotations
@@ -30,6 +33,7 @@ from fe3d.p1 import split_rows
 from fe3d.transport.model import SpeciesModel
 from fe3d.transport.run import step_context
 from fe3d.transport.sources import SourceGeometry
+from fe3d.transport.steady_correction import steady_correction
 from fe3d.transport.step import StepContext, nonlinear_step
 from fe3d.transport.systems import StepSystem
 from fe3d.transport.timeschemes import StepCoefficients
@@ -72,23 +76,24 @@ class SteadyBalance:
 class SteadySpecies:
     """The long-term field of one species: nodal concentration [kg/m³] ``(n_nodes,)``, the
     sources it counts and those it leaves out (they stop, deplete, or only start a plume),
-    its steady balance and the Newton iterations (0 when linear)."""
+    its steady balance, the operator it was solved with (``"flux_corrected"``, bounded, the
+    default; ``"low_order"``, bounded and more diffusive; ``"supg"`` or ``"galerkin"``, which
+    may undershoot; T17) and the Newton or correction iterations (0: one linear solve)."""
 
     name: str
     concentration: FloatArray
     counted_sources: tuple[str, ...]
     left_out_sources: tuple[str, ...]
     balance: SteadyBalance
-    newton_iterations: int
+    operator: str
+    iterations: int
 
 
 @dataclass(frozen=True)
 class SteadyTransport:
-    """Every species' long-term field, parents first, and the operator they were solved
-    with: ``"low_order"`` (T16, bounded) or ``"supg"`` / ``"galerkin"`` (T6; may undershoot)."""
+    """Every species' long-term field, parents first."""
 
     species: tuple[SteadySpecies, ...]
-    operator: str
 
 
 def continuous_sources(sources: tuple[Source, ...]) -> tuple[tuple[Source, ...],
@@ -141,18 +146,15 @@ def solve_steady_transport(site: SiteMesh, flow: FlowField, inputs: TransportInp
             load = load + s.spec.yield_from_parent * decay_loss[s.spec.parent]
         held = geometry.held(s.name, t_late, t_late)
         fixed = _held_nodes(geometry, held.active, site.n_nodes)
-        c, balance, its = _solve_species(ctx, s, load, fixed, held.end)
+        solved = _solve_species(ctx, s, load, fixed, held.end)
+        c = solved.concentration
         if s.name in ctx.decay_matrix:
             decay_loss[s.name] = ctx.decay_matrix[s.name] @ c + (
                 float(s.sorbed_decay) * s.sorbed(c)[0] if s.isotherms else 0.0)
-        out.append(SteadySpecies(
-            name=s.name, concentration=c,
-            counted_sources=tuple(x.name for x in kept if x.species == s.name),
-            left_out_sources=tuple(x.name for x in left_out if x.species == s.name),
-            balance=balance, newton_iterations=its))
-    scheme = ctx.systems.scheme
-    operator = "low_order" if scheme.monotone else ("supg" if scheme.supg else "galerkin")
-    return SteadyTransport(species=tuple(out), operator=operator)
+        out.append(replace(
+            solved, counted_sources=tuple(x.name for x in kept if x.species == s.name),
+            left_out_sources=tuple(x.name for x in left_out if x.species == s.name)))
+    return SteadyTransport(species=tuple(out))
 
 
 def _held_nodes(geometry: SourceGeometry, active: tuple[str, ...], n: int) -> IndexArray:
@@ -164,12 +166,16 @@ def _held_nodes(geometry: SourceGeometry, active: tuple[str, ...], n: int) -> In
 
 
 def _solve_species(ctx: StepContext, s: SpeciesModel, load: FloatArray, fixed: IndexArray,
-                   held_values: FloatArray) -> tuple[FloatArray, SteadyBalance, int]:
-    """K c = load on the free nodes with c = held_values on ``fixed``, by one linear solve
-    or by Newton (nonlinear species); the field, its balance and the Newton iterations."""
+                   held_values: FloatArray) -> SteadySpecies:
+    """K c = load on the free nodes with c = held_values on ``fixed``: one linear solve,
+    corrected towards the Galerkin solve when the species is limited, or Newton when it is
+    nonlinear (T17); the field, its balance, operator and iterations (name and sources are
+    filled in by the caller)."""
     n = ctx.site.n_nodes
+    operator = _operator(ctx, s)
     if fixed.size == 0 and not np.any(load > 0.0):  # no source of this species acts for ever
-        return np.zeros(n), SteadyBalance(0.0, dict.fromkeys(s.outflow_weights, 0.0), 0.0), 0
+        return SteadySpecies(s.name, np.zeros(n), (), (), SteadyBalance(
+            0.0, dict.fromkeys(s.outflow_weights, 0.0), 0.0), operator, 0)
     _check_removal(s, ctx)
     K = ctx.systems.operators(s, STEADY_TAU_STEP)[1]
     free = np.setdiff1d(np.arange(n), fixed, assume_unique=True)
@@ -177,22 +183,43 @@ def _solve_species(ctx: StepContext, s: SpeciesModel, load: FloatArray, fixed: I
     solver = LinearSolver(K_ff, method=ctx.solver.linear_solver, tol=ctx.solver.tolerance)
     c = np.zeros(n)
     c[fixed] = held_values[fixed]
-    c[free] = solver.solve(load[free] - K_fD @ c[fixed])
+
+    def solve(rhs: FloatArray, start: FloatArray) -> FloatArray:
+        out = c.copy()
+        out[free] = solver.solve(rhs[free] - K_fD @ c[fixed], x0=start[free])
+        return out
+
+    c = solve(load, c)
     other_loss, its = 0.0, 0
     r = K @ c - load  # the residual: on the held nodes' rows, what they take in (T9)
+    ops = ctx.systems.limiter(s)
     if s.nonlinear:  # Newton from the field without the nonlinear losses (T10, T11)
         system = StepSystem(S=K, explicit_part=None, M=sp.csr_matrix(K.shape), lumped=None,
                             solver=solver, free=free, fixed=fixed, S_fD=K_fD)
         c, r, other_loss, its = nonlinear_step(
             s, system, load, c, None, c, 1.0, STEADY, tol=ctx.solver.tolerance,
             max_iter=ctx.solver.newton_max_iterations)
+    elif ops is not None:  # flux correction towards the Galerkin solve
+        fix = steady_correction(ops, solve, c, load, fixed, ctx.sources.upper_bound[s.name])
+        c, its = fix.field, fix.iterations
+        r = K @ c - load - fix.fluxes
+        operator = operator if fix.converged else "low_order"
     balance = SteadyBalance(
         source_input=float(r[fixed].sum()) + float(load.sum()),
         outflow={f: float(w @ c) for f, w in s.outflow_weights.items()},
         decayed=float(s.decay_weight @ c) + other_loss)
     logger.info("%s: steady balance in %.4g kg/s, relative error %.2e", s.name,
                 balance.source_input, balance.relative_error)
-    return c, balance, its
+    return SteadySpecies(s.name, c, (), (), balance, operator, its)
+
+
+def _operator(ctx: StepContext, s: SpeciesModel) -> str:
+    """The operator a species is solved with: the scheme's (T16, T16b, T6), except that a
+    nonlinear species is not flux corrected (as in the transient run)."""
+    scheme = ctx.systems.scheme
+    if scheme.monotone:
+        return "flux_corrected" if ctx.systems.limited(s) else "low_order"
+    return "supg" if scheme.supg else "galerkin"
 
 
 def _check_removal(s: SpeciesModel, ctx: StepContext) -> None:

@@ -36,8 +36,8 @@ def _case():
 
 def test_long_term_plume_writes_what_it_reports(tmp_path):
     result = long_term_plume(_case(), tmp_path)
-    assert result.operator == "supg"
     (tracer,) = result.species
+    assert tracer.operator == "supg"
     assert tracer.counted_sources == ("inlet",)
     assert tracer.above_limit
     assert 0.0 < tracer.downstream < 20.0
@@ -52,6 +52,7 @@ def test_long_term_plume_writes_what_it_reports(tmp_path):
     assert float(row["volume above limit [m3]"]) == pytest.approx(tracer.volume, rel=WRITTEN)
     assert row["sources counted"] == "inlet"
     assert row["sources left out"] == "spill"
+    assert row["operator"] == "supg"
     balance = float(row["input [kg/d]"]) - float(row["outflow [kg/d]"]) - float(
         row["decayed [kg/d]"])
     assert abs(balance) <= 1e-6 * float(row["input [kg/d]"])  # 3 numbers at 8 digits
