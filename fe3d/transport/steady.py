@@ -106,7 +106,7 @@ def continuous_sources(sources: tuple[Source, ...]) -> tuple[tuple[Source, ...],
     return kept, tuple(s for s in sources if s not in kept)
 
 
-def late_time(sources: tuple[Source, ...]) -> float:
+def _late_time(sources: tuple[Source, ...]) -> float:
     """A time [s] after every start and every row of a release series: the sources'
     strengths are constant from then on (T3c: a series holds its last value)."""
     times = [0.0] + [s.start for s in sources] + [
@@ -137,7 +137,7 @@ def solve_steady_transport(site: SiteMesh, flow: FlowField, inputs: TransportInp
     kept, left_out = continuous_sources(inputs.sources)
     ctx = step_context(site, flow, inputs, base_dir)
     geometry = replace(ctx.sources, sources=kept)
-    t_late = late_time(kept)
+    t_late = _late_time(kept)
     decay_loss: dict[str, FloatArray] = {}
     out = []
     for s in ctx.species:
