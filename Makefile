@@ -15,7 +15,7 @@ $(STAMP): pyproject.toml | $(BIN)/python
 	touch $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/fe3d run cases/demo/case.toml --out runs/demo
+	$(BIN)/fe3d run cases/demo/case.toml --out runs/demo --overwrite
 
 lint: $(STAMP)
 	$(BIN)/ruff check fe3d tests benchmarks

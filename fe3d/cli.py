@@ -1,8 +1,10 @@
-"""Command line: ``fe3d check``, ``fe3d mesh``, ``fe3d run``, ``fe3d refine`` and
-``fe3d ensemble`` (each CASE).
+"""Command line: ``fe3d check``, ``fe3d mesh``, ``fe3d run``, ``fe3d refine``,
+``fe3d ensemble`` and ``fe3d long-term`` (each CASE), ``fe3d report`` (a run folder) and
+``fe3d compare`` (run folders).
 
 Only this module prints or exits. Every :class:`~fe3d.errors.Fe3dError` becomes one line per
-problem on standard error and exit code 2; no traceback is shown for bad input.
+problem on standard error and exit code 2; Ctrl-C one line and exit code 130; no traceback
+is shown.
 """
 
 from __future__ import annotations
@@ -42,14 +44,43 @@ def _parser() -> argparse.ArgumentParser:
     m.add_argument("--out", type=Path, default=None,
                    help="mesh folder (default: meshes/<case name>)")
     r = sub.add_parser("run", help="run a case: mesh, flow, transport, outputs",
-                       description="Run a case end to end and write the run folder: mesh and "
-                                   "flow (.vtu), concentration series (.pvd/.vtu), histories and "
-                                   "mass budget (CSV), breakthrough figure (PNG), summary "
-                                   "(JSON) and report (Markdown).")
+                       description="Run a case end to end and write the run folder: the fields "
+                                   "(results.vtkhdf), histories, receptors, plume measures and "
+                                   "mass budget (CSV), figures (PNG), summary (JSON), the "
+                                   "handover report (Markdown and HTML) and run.json (how the "
+                                   "run ended, every file with its checksum). The folder is "
+                                   "replaced as a whole when the run ends.")
     r.add_argument("case", type=Path, help="case file (TOML)")
     r.add_argument("--out", type=Path, default=None,
                    help="run folder (default: output.folder of the case, else runs/<case name>)")
     r.add_argument("--quiet", action="store_true", help="no progress bar")
+    r.add_argument("--overwrite", action="store_true",
+                   help="replace an earlier run in the run folder (as a whole)")
+    r.add_argument("--force", action="store_true",
+                   help="run even when the estimated memory or output does not fit this "
+                        "machine")
+    lt = sub.add_parser("long-term", help="the largest plume the continuous sources can make",
+                        description="Solve the steady transport of the sources that never "
+                                    "stop (theory.md T17) and write steady_plume.vtu and "
+                                    "steady_plume.csv: how far, how deep and how large the "
+                                    "part above each limit can ever get.")
+    lt.add_argument("case", type=Path, help="case file (TOML)")
+    lt.add_argument("--out", type=Path, default=None,
+                    help="folder (default: runs/<case name>_long_term)")
+    rp = sub.add_parser("report", help="write the handover report of a run folder",
+                        description="Write report.md and a self-contained report.html (figures "
+                                    "embedded) from the files of a run folder.")
+    rp.add_argument("run_dir", type=Path, metavar="RUN_DIR", help="run folder")
+    rp.add_argument("--case", type=Path, default=None,
+                    help="the case file the run was made from (for a folder without "
+                         "inputs.json)")
+    cp = sub.add_parser("compare", help="compare two or more run folders",
+                        description="Write a side-by-side table of receptors, plume measures "
+                                    "and observation points (comparison.csv, comparison.md) "
+                                    "and overlaid breakthrough curves of two or more runs.")
+    cp.add_argument("runs", type=Path, nargs="+", metavar="RUN_DIR", help="run folders")
+    cp.add_argument("--out", type=Path, default=None, help="folder (default: comparison)")
+    cp.add_argument("--labels", default=None, help="comma-separated names of the runs")
     f = sub.add_parser("refine", help="mesh-refinement study: levels, order, GCI, verdict",
                        description="Run the case on refinement levels (its own sizes, then every "
                                    "cell size and the time step divided by RATIO, RATIO², ...: "
@@ -107,8 +138,9 @@ def _check(case_path: Path) -> int:
     from rich.console import Console
     from rich.table import Table
 
-    from fe3d.pipeline import check_case, estimate_mesh_size
+    from fe3d.pipeline import check_case
     from fe3d.post.report import CAUTION
+    from fe3d.run_size import estimate_run
     from fe3d.units import from_si
 
     case = load_case(case_path)
@@ -141,12 +173,12 @@ def _check(case_path: Path) -> int:
     for name, sp in case.species.items():
         hl = "none" if sp.half_life is None else f"{from_si(sp.half_life, tu):.4g} {tu}"
         con.print(f"species {name}: limit {from_si(sp.limit, cu):.4g} {cu}, half-life {hl}")
-    nn, nc = estimate_mesh_size(case)
     steps = (f"steps following the plume (Courant ≤ {case.time.courant:g} in its cells)"
              if case.time.step is None else f"step ≤ {from_si(case.time.step, tu):.4g} {tu}")
     con.print(f"period {from_si(case.time.end, tu):g} {tu}, {steps}, "
               f"{len(case.output_schedule())} outputs")
-    con.print(f"estimated mesh: ~{nn:,} nodes, ~{nc:,} tetrahedra")
+    for line in estimate_run(case).lines():
+        con.print(line, markup=False, highlight=False)
     if case.uncertain is not None:
         u = case.uncertain
         con.print(f"uncertain values for fe3d ensemble (seed {u.seed}): "
@@ -158,7 +190,8 @@ def _check(case_path: Path) -> int:
     return 0
 
 
-def _run(case_path: Path, out: Path | None, *, quiet: bool) -> int:
+def _run(case_path: Path, out: Path | None, *, quiet: bool, overwrite: bool,
+         force: bool) -> int:
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
     from rich.table import Table
@@ -184,7 +217,8 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool) -> int:
 
         summary = run_case(case, folder, progress=progress,
                            base_dir=case_path.resolve().parent,
-                           mesh_folders=[_default_mesh_folder(case_path)])
+                           mesh_folders=[_default_mesh_folder(case_path)],
+                           overwrite=overwrite, force=force, inputs=[case_path])
     t = Table(title=f"breakthrough ({summary.n_nodes:,} nodes, {summary.n_cells:,} cells, "
                     f"{summary.wall_time:.1f} s)")
     for col in ("point", "species", f"peak [{cu}]", "peak time", "first above limit",
@@ -389,6 +423,45 @@ def _ensemble(case_path: Path, out: Path | None, *, members: int, scheduler: str
     return 0
 
 
+def _long_term(case_path: Path, out: Path | None) -> int:
+    from rich.console import Console
+
+    from fe3d.post.report import CAUTION
+    from fe3d.studies.long_term import long_term_plume
+
+    case = load_case(case_path)
+    folder = out or Path(f"runs/{case_path.stem}_long_term")
+    result = long_term_plume(case, folder, base_dir=case_path.resolve().parent)
+    con = Console()
+    for line in result.lines(case):
+        con.print(line, markup=False, highlight=False)
+    con.print(f"results in {folder}/", markup=False, highlight=False)
+    con.print(CAUTION)
+    return 0
+
+
+def _report(run_dir: Path, case_path: Path | None) -> int:
+    from fe3d.post.handover import write_handover
+    from fe3d.post.report import CAUTION
+
+    case = None if case_path is None else load_case(case_path)
+    md, page = write_handover(run_dir, case=case)
+    print(f"wrote {md} and {page}")  # noqa: T201
+    print(CAUTION)  # noqa: T201
+    return 0
+
+
+def _compare(runs: list[Path], out: Path | None, labels: str | None) -> int:
+    from fe3d.post.compare import write_comparison
+    from fe3d.post.report import CAUTION
+
+    written = write_comparison(runs, out or Path("comparison"),
+                               labels=labels.split(",") if labels else None)
+    print("wrote " + ", ".join(str(p) for p in written))  # noqa: T201
+    print(CAUTION)  # noqa: T201
+    return 0
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``fe3d`` command; returns the exit code."""
     args = _parser().parse_args(argv)
@@ -408,7 +481,18 @@ def main(argv: list[str] | None = None) -> int:
             return _ensemble(args.case, args.out, members=args.members,
                              scheduler=args.scheduler, workers=args.workers,
                              keep_runs=args.keep_runs, quiet=args.quiet)
-        return _run(args.case, args.out, quiet=args.quiet)
+        if args.command == "long-term":
+            return _long_term(args.case, args.out)
+        if args.command == "report":
+            return _report(args.run_dir, args.case)
+        if args.command == "compare":
+            return _compare(args.runs, args.out, args.labels)
+        return _run(args.case, args.out, quiet=args.quiet, overwrite=args.overwrite,
+                    force=args.force)
+    except KeyboardInterrupt:
+        print("interrupted: a run folder stopped this way holds the outputs written so far "  # noqa: T201
+              "and says so in run.json", file=sys.stderr)
+        return EXIT_INTERRUPTED
     except CaseErrors as exc:
         for e in exc.errors:
             print(f"error: {e.line()}", file=sys.stderr)  # noqa: T201

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import logging
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
 
@@ -15,10 +15,19 @@ from fe3d.flow.solve import FlowField, solve_flow
 from fe3d.mesh.build import build_mesh, obtain_mesh
 from fe3d.mesh.corridor import Corridor, site_corridor
 from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.post.handover import write_handover
 from fe3d.post.outputs import SeriesWriter, write_flow_outputs
 from fe3d.post.report import RunSummary
+from fe3d.post.run_place import (
+    RunState,
+    check_target,
+    move_into_place,
+    work_folder,
+    write_manifest,
+)
 from fe3d.post.vtk import write_mesh
 from fe3d.reactions.kinetics import user_kinetics
+from fe3d.run_size import check_fits, estimate_mesh_size, estimate_run
 from fe3d.transport.run import run_transport
 
 __all__ = ["check_case", "estimate_mesh_size", "mesh_and_flow", "mesh_case", "plume_corridor",
@@ -73,27 +82,6 @@ def check_case(case: Case, base_dir: Path | None, mesh_folders: list[Path]) -> N
         check_mesh_rules(case, mesh_folders, corridor=corridor)
 
 
-def estimate_mesh_size(case: Case) -> tuple[int, int]:
-    """Rough node and cell counts from the target sizes (plan triangles × sublayers × 3)."""
-    import math
-
-    from fe3d.case.geology import polygon_area
-
-    area = abs(polygon_area(case.outline()[0]))
-    h = case.mesh.cell_size
-    n_tri = 2.3 * area / h**2
-    fine = case.mesh.fine_cell_size
-    if fine is not None:
-        from fe3d.mesh.build import feature_points
-
-        r = case.mesh.fine_zone_radius + 2 * h
-        n_tri += len(feature_points(case)) * 2.3 * math.pi * r**2 / fine**2 / 4
-    thick = case.z_top - case.z_bottom_min
-    n_lay = max(len(case.layers), math.ceil(thick / case.mesh.layer_cell_thickness))
-    return int(n_tri / 2 * (n_lay + 1)), int(3 * n_tri * n_lay)
-
-
-
 def check_user_code(case: Case, base_dir: Path | None = None) -> None:
     """Import and probe the user's reaction function named in the case, if any, so that a
     module that cannot be imported is reported before any work (raises CaseError)."""
@@ -125,16 +113,43 @@ def solver_log(path: Path) -> Iterator[None]:
 
 def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
              base_dir: Path | None = None, mesh_folders: list[Path] | None = None,
-             site: SiteMesh | None = None) -> RunSummary:
-    """Run every stage and write the run folder (with ``solver.log``); returns the summary.
+             site: SiteMesh | None = None, overwrite: bool = False,
+             inputs: Sequence[Path] = (), force: bool = False) -> RunSummary:
+    """Run every stage and write the run folder (with ``solver.log`` and the manifest
+    ``run.json``); returns the summary.
 
-    See :func:`_run_case` for the arguments.
+    The run works in a fresh folder beside ``out_dir`` and replaces ``out_dir`` with it as a
+    whole when it ends, finished, failed or interrupted (the manifest says which). An
+    ``out_dir`` holding an earlier run is replaced only with ``overwrite``; one holding
+    anything else, or one of the ``inputs`` (the case file), is refused with a
+    :class:`~fe3d.errors.CaseError` before any work (:mod:`fe3d.post.run_place`). A mesh
+    cached in ``out_dir`` by an earlier run is reused. Without ``force``, a run whose
+    estimated memory or output does not fit this machine is refused before any work
+    (:func:`fe3d.run_size.check_fits`). See :func:`_run_case` for the other arguments.
     """
+    check_target(out_dir, overwrite=overwrite, inputs=inputs)
+    if not force:
+        check_fits(estimate_run(case), out_dir)
     check_user_code(case, base_dir)  # before anything is written
-    out_dir.mkdir(parents=True, exist_ok=True)
-    with solver_log(out_dir / "solver.log"):
-        return _run_case(case, out_dir, progress=progress, base_dir=base_dir,
-                         mesh_folders=mesh_folders, site=site)
+    work = work_folder(out_dir)
+    state: RunState = "failed"
+    detail = ""
+    try:
+        with solver_log(work / "solver.log"):
+            summary = _run_case(case, work, progress=progress, base_dir=base_dir,
+                                mesh_folders=[out_dir, *(mesh_folders or [])], site=site)
+        write_handover(work, case=case)  # report.md and report.html from the run's files
+        state = "finished"
+    except KeyboardInterrupt:
+        state, detail = "interrupted", "interrupted by the user (Ctrl-C or a signal)"
+        raise
+    except Exception as exc:
+        detail = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise
+    finally:
+        write_manifest(work, state, detail=detail)
+        move_into_place(work, out_dir)
+    return summary
 
 
 def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,

@@ -289,11 +289,10 @@ class SeriesWriter:
         self.series_file.close()
         files.append(SERIES_FILE)
         if case.output.vtu_series:
-            files += ["concentration.pvd", *[f for _, f in self.series]]
-        files += [RUN_FIELDS,
-                  "mass_budget.csv", "histories.csv", "plume.csv",
+            files += ["concentration.pvd", *[f for _, f in self.series], RUN_FIELDS]
+        files += ["mass_budget.csv", "histories.csv", "plume.csv",
                   *(["receptors.csv"] if self.receptors else []), "summary.json", "report.md",
-                  "solver.log"]
+                  "report.html", "inputs.json", "solver.log", "run.json"]
         summary = self._summary(last, flow, paths, files, started)
         write_summary_json(out / "summary.json", summary)
         write_report(out / "report.md", summary)
@@ -309,8 +308,9 @@ class SeriesWriter:
             data[f"{sp} largest [{cu}]"] = f.largest * scale
             data[f"{sp} time of largest [{tu}]"] = f.time_of_largest * per_unit
             data[f"{sp} first above limit [{tu}]"] = f.first_above * per_unit
-        write_field(self.site, self.out_dir / RUN_FIELDS, point_data=data)
         self.series_file.add_static(point_data=data)
+        if self.case.output.vtu_series:
+            write_field(self.site, self.out_dir / RUN_FIELDS, point_data=data)
 
     def _receptor_results(self) -> list[ReceptorResult]:
         """Peak, crossing times, time above the limit and mass out of every receptor and

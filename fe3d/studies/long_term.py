@@ -17,6 +17,7 @@ from fe3d.case.schema import Case
 from fe3d.pipeline import mesh_and_flow
 from fe3d.post.steady_outputs import measure_steady_plume, write_steady_plume
 from fe3d.transport.steady import solve_steady_transport
+from fe3d.units import from_si
 
 __all__ = ["LongTermExtent", "LongTermPlume", "long_term_plume"]
 
@@ -52,6 +53,25 @@ class LongTermPlume:
 
     species: tuple[LongTermExtent, ...]
     files: tuple[Path, ...]
+
+    def lines(self, case: Case) -> list[str]:
+        """One line per species in the case's display units."""
+        cu = case.output.concentration_unit
+        out = []
+        for s in self.species:
+            if not s.counted_sources:
+                out.append(f"{s.species}: no long-term plume (no source of it runs for ever)")
+            elif not s.above_limit:
+                out.append(f"{s.species}: nowhere above the limit "
+                           f"{from_si(s.limit, cu):.4g} {cu} in the long term (largest "
+                           f"{from_si(s.peak, cu):.4g} {cu}; {s.operator} operator)")
+            else:
+                out.append(f"{s.species}: above the limit {from_si(s.limit, cu):.4g} {cu} "
+                           f"up to {s.extent:.4g} m from its source ({s.downstream:.4g} m "
+                           f"downstream), {s.volume:.4g} m³ of aquifer, largest "
+                           f"{from_si(s.peak, cu):.4g} {cu} ({s.operator} operator; sources "
+                           f"{', '.join(s.counted_sources)})")
+        return out
 
 
 def long_term_plume(case: Case, out_dir: Path, *, base_dir: Path | None = None) -> LongTermPlume:

@@ -256,7 +256,7 @@ class LevelResult:
 def _run_level(case: Case, folder: Path, base_dir: Path | None) -> RunSummary | str:
     """Worker: run one level; an :class:`Fe3dError` comes back as its one-line message."""
     try:
-        return run_case(case, folder, base_dir=base_dir, mesh_folders=[])
+        return run_case(case, folder, base_dir=base_dir, mesh_folders=[], overwrite=True)
     except Fe3dError as exc:
         return f"{type(exc).__name__}: " + "; ".join(str(exc).splitlines())
 

@@ -203,10 +203,10 @@ def tiny_run(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str]:
     return out, res.stdout
 
 
-EXPECTED_FILES = ["results.vtkhdf", "over_the_run.vtu", "histories.csv", "mass_budget.csv",
-                  "summary.json", "report.md", "breakthrough.png", "head_map.png",
-                  "solver.log"]
-PER_FILE_SERIES = ["mesh.msh", "mesh.vtu", "flow.vtu", "concentration.pvd"]
+EXPECTED_FILES = ["results.vtkhdf", "histories.csv", "mass_budget.csv", "summary.json",
+                  "report.md", "report.html", "inputs.json", "breakthrough.png",
+                  "head_map.png", "solver.log", "run.json"]
+PER_FILE_SERIES = ["mesh.msh", "mesh.vtu", "flow.vtu", "concentration.pvd", "over_the_run.vtu"]
 """Written only with ``output.vtu_series = true``."""
 
 

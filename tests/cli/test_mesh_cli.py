@@ -112,7 +112,7 @@ def test_run_reuses_the_mesh_of_fe3d_mesh(tmp_path: Path) -> None:
     assert fe3d("mesh", case, cwd=tmp_path).returncode == 0
     mark(tmp_path / "same")
     mark(tmp_path / "meshes" / "pellet")
-    res = fe3d("run", case, "--out", tmp_path / "same", "--quiet", cwd=tmp_path)
+    res = fe3d("run", case, "--out", tmp_path / "same", "--quiet", "--overwrite", cwd=tmp_path)
     assert res.returncode == 0, res.stderr
     assert marked(tmp_path / "same")
     run = tmp_path / "runs" / "separate"
