@@ -208,12 +208,27 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
                               total)
         if used > 1 and moved <= PASS_TOLERANCE * scale:
             break
-    x = c_low - (theta * np.asarray(c_high, dtype=float) + (1.0 - theta) * c_old)
-    share = _sink_share(indptr, cols, c, np.asarray(c_old, dtype=float),
-                        dt * ops.sink * x / ops.lumped, free & ~blocked, cap)
-    c[free] += share[free] * dt * ops.sink[free] * x[free] / ops.lumped[free]
-    return Correction(fluxes=total, corrected=c, sink_state=c_low - share * x,
+    change, a = _sink_change(ops, c, c_low, np.asarray(c_old, dtype=float), dt, theta)
+    share = _sink_share(indptr, cols, c, np.asarray(c_old, dtype=float), change,
+                        free & ~blocked, cap)
+    c[free] += share[free] * change[free]
+    # the sinks acted on c_L − (m/Δt)(c − c*)/s = c_L − (c − c*)/a
+    acted = c_low - np.divide(share * change, a, out=np.zeros(n), where=a > 0.0)
+    return Correction(fluxes=total, corrected=c, sink_state=acted,
                       blocked=int(blocked.sum()), passes=used)
+
+
+def _sink_change(ops: TargetFluxes, c_star: FloatArray, c_low: FloatArray,
+                 c_old: FloatArray, dt: float, theta: float) -> tuple[FloatArray, FloatArray]:
+    """The sinks' remainder at each node after the flux passes (``c_star``), taken at the
+    node's own corrected value (theory.md T16b): m(c − c*)/Δt = s(c_L − θc − (1 − θ)cⁿ),
+    so c = [c* + a(c_L − (1 − θ)cⁿ)]/(1 + θa) with a = Δt s/m. Implicit in c, it stays
+    between c* and c_L for backward Euler whatever a (a stiff decay, λΔt ≫ 1, no longer
+    drives the node to zero), and with every flux used it gives the target exactly.
+    Returns the change c − c* and a [-]."""
+    a = dt * ops.sink / ops.lumped
+    target = (c_star + a * (c_low - (1.0 - theta) * c_old)) / (1.0 + theta * a)
+    return target - c_star, a
 
 
 @numba.njit(cache=True, nogil=True)

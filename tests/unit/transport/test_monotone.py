@@ -150,3 +150,44 @@ def test_limiting_stops_where_the_step_is_long() -> None:
     assert n_blocked == int(np.sum(ratio > reach))
     assert np.all(g[ratio > reach] == 0.0)
     assert np.any(g[ratio <= reach] != 0.0)
+
+
+def test_a_stiff_sink_does_not_empty_a_steady_node() -> None:
+    """Decay with λΔt = 20 around a constant point load, starting from the low-order step's
+    own steady state (so c_L = cⁿ): the sinks' remainder is taken at each node's corrected
+    value (implicit, theory.md T16b), so every free node stays within the local range of
+    that state. Taken explicitly, λΔt(c_L − ĉ) emptied the load's node (0 against c_L =
+    0.05 kg/m³; found by the long-term-plume check). Tolerance: round-off of the dense
+    solves (1e-12 of the largest value). Bound by construction, no outside reference."""
+    mesh = MeshTet.init_tensor(np.linspace(0, 50, 11), np.linspace(0, 30, 7),
+                               np.linspace(0, 2, 3))
+    points, cells = np.asarray(mesh.p, dtype=float), np.asarray(mesh.t, dtype=np.int64)
+    e = cells.shape[1]
+    theta = np.full(e, 0.3)
+    q = np.tile(np.array([[1.0], [0.4], [0.05]]) * 1e-6, (1, e))
+    D = dispersion_tensor(q / theta, alpha_l=np.full(e, 5.0), alpha_th=np.full(e, 0.5),
+                          alpha_tv=np.full(e, 0.05), d_eff=np.full(e, 1e-9))
+    m_coef, lam, dt = theta * 1.5, 1e-6, 2e7  # λΔt = 20
+    M, K = transport_operators(points, cells, m=m_coef, k=lam * m_coef, q=q, a=q / m_coef,
+                               tau=np.zeros(e), theta_d=theta * D, n=points.shape[1],
+                               parts="galerkin")
+    ML, KD = monotone_operators(M, K)
+    ops = TargetFluxes.of(M, K, KD)
+    n = K.shape[0]
+    load = np.zeros(n)
+    source = int(np.argmin(np.hypot(points[0] - 10, points[1] - 15) + abs(points[2] - 1)))
+    load[source] = 1e-6  # [kg/s]
+    Md, Kd, MLd, KDd = M.toarray(), K.toarray(), ML.toarray(), KD.toarray()
+    c_old = np.linalg.solve(KDd, load)  # the low-order steady state
+    c_low = np.linalg.solve(MLd / dt + KDd, MLd @ c_old / dt + load)
+    c_high = np.linalg.solve(Md / dt + 0.5 * Kd, Md @ c_old / dt - 0.5 * Kd @ c_old + load)
+    upper = np.zeros(n)
+    upper[source] = np.inf  # a mass load has no upper bound (sources.upper_bound)
+    fix = limited_target_fluxes(ops, c_low, c_high, c_old, dt, 0.5,
+                                np.array([], dtype=np.int64), upper=upper)
+    tol = 1e-12 * c_old.max()
+    adj = _neighbourhood(ops)
+    for i in range(n):
+        nb = c_old[adj.indices[adj.indptr[i]:adj.indptr[i + 1]]]
+        assert nb.min() - tol <= fix.corrected[i], (i, fix.corrected[i], nb.min())
+    assert fix.corrected[source] >= 0.5 * c_low[source]
