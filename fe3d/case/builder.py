@@ -47,6 +47,7 @@ __all__ = [
     "Species",
     "Time",
     "box_case",
+    "box_case_text",
     "build_case",
     "case_data",
     "with_changes",
@@ -276,6 +277,7 @@ class Mesh(_Block):
     fine_cell_size: Quantity | None = None
     fine_zone_radius: Quantity | None = None
     import_file: str | None = None
+    options: Mapping[str, Any] = field(default_factory=dict)
 
     _UNITS: ClassVar[dict[str, str]] = {"cell_size": "m", "layer_cell_thickness": "m",
                                         "fine_cell_size": "m", "fine_zone_radius": "m"}
@@ -427,13 +429,29 @@ def box_case(
     Case
         Validated, every value in SI.
     """
+    base_dir = kwargs.pop("base_dir", None)
+    text = box_case_text(length=length, width=width, layers=layers, cell=cell, dz=dz,
+                         fine_cell=fine_cell, fine_radius=fine_radius, heads=heads, top=top,
+                         title=title, **kwargs)
+    return parse_case(text, source="<built case>", base_dir=base_dir)
+
+
+def box_case_text(
+    *, length: Quantity, width: Quantity, layers: Sequence[Layer], cell: Quantity,
+    dz: Quantity, fine_cell: Quantity | None = None, fine_radius: Quantity | None = None,
+    heads: Mapping[str, Quantity] | None = None, top: Quantity = 0.0,
+    title: str = "box case", mesh_options: Mapping[str, Any] | None = None, **kwargs: Any,
+) -> str:
+    """The case file text of :func:`box_case` (same arguments, but ``base_dir``), for tests
+    of what reads case files: the loader and the command line. ``mesh_options``: further
+    ``[mesh]`` keys as a case file writes them (``{"corridor": False}``). Not validated."""
     box = {"x": [_quantity(0, "m"), _quantity(length, "m")],
            "y": [_quantity(0, "m"), _quantity(width, "m")], "top": _quantity(top, "m")}
     sections = {"box": box, **kwargs.pop("sections", {})}
     mesh = Mesh(cell_size=cell, layer_cell_thickness=dz, fine_cell_size=fine_cell,
-                fine_zone_radius=fine_radius)
-    return build_case(layers=layers, heads=heads, mesh=mesh, title=title, sections=sections,
-                      **kwargs)
+                fine_zone_radius=fine_radius, options=dict(mesh_options or {}))
+    return _toml(case_data(layers=layers, heads=heads, mesh=mesh, title=title,
+                           sections=sections, **kwargs))
 
 
 def with_changes(case: Case, *, base_dir: Path | None = None,

@@ -16,52 +16,26 @@ from pathlib import Path
 
 import pytest
 
+from fe3d.case.builder import (
+    Layer,
+    Material,
+    ObservationPoint,
+    Source,
+    Species,
+    Time,
+    box_case_text,
+)
 from fe3d.cli import main
 from fe3d.post.report import CAUTION
 
-CASE = """
-title = "Ensemble column (invented)"
-[box]
-x = ["0 m", "20 m"]
-y = ["0 m", "1 m"]
-top = "0 m"
-[materials.sand]
-horizontal_conductivity = "10 m/d"
-porosity = 0.25
-bulk_density = "1600 kg/m^3"
-longitudinal_dispersivity = "1 m"
-transverse_dispersivity = "0.1 m"
-[[layers]]
-name = "sand"
-material = "sand"
-bottom = "-1 m"
-[[fixed_heads]]
-face = "west"
-head = "0.5 m"
-[[fixed_heads]]
-face = "east"
-head = "0 m"
-[species.tracer]
-limit = "100 mg/L"
-[[sources]]
-name = "inlet"
-species = "tracer"
-shape = "face_patch"
-face = "west"
-concentration = "1000 mg/L"
-[[observation_points]]
-name = "P"
-x = "5 m"
-y = "0.5 m"
-z = "-0.5 m"
-[time]
-end = "6 d"
-step = "0.5 d"
-[mesh]
-cell_size = "1 m"
-layer_cell_thickness = "1 m"
-corridor = false
-
+BASE = box_case_text(
+    title="Ensemble column (invented)", length=20.0, width=1.0, cell=1.0, dz=1.0,
+    heads={"west": 0.5, "east": 0.0}, mesh_options={"corridor": False},
+    layers=[Layer("sand", -1.0, Material(10.0))],
+    species=[Species(limit="100 mg/L")],
+    sources=[Source("inlet", shape="face_patch", face="west", concentration="1000 mg/L")],
+    observation_points=[ObservationPoint("P", 5.0, 0.5, z=-0.5)], time=Time(6.0, 0.5))
+CASE = BASE + """
 [uncertain]
 seed = 9
 

@@ -19,6 +19,7 @@ from fe3d.case.builder import (
     Species,
     Time,
     box_case,
+    box_case_text,
 )
 from fe3d.case.load import parse_case
 from fe3d.case.schema import Case
@@ -110,36 +111,10 @@ def test_contradicting_correlations_are_refused():
     assert "positive-definite" in info.value.errors[0].allowed
 
 
-CASE_TEXT = """
-title = "column"
-[box]
-x = ["0 m", "40 m"]
-y = ["0 m", "2 m"]
-top = "0 m"
-[materials.sand]
-horizontal_conductivity = "10 m/d"
-porosity = 0.25
-bulk_density = "1600 kg/m^3"
-longitudinal_dispersivity = "1 m"
-transverse_dispersivity = "0.1 m"
-[[layers]]
-name = "sand"
-material = "sand"
-bottom = "-2 m"
-[[fixed_heads]]
-face = "west"
-head = "1 m"
-[[fixed_heads]]
-face = "east"
-head = "0 m"
-[species.tracer]
-limit = "0.1 mg/L"
-[time]
-end = "10 d"
-[mesh]
-cell_size = "2 m"
-layer_cell_thickness = "2 m"
-
+CASE_TEXT = box_case_text(
+    title="column", length=40.0, width=2.0, cell=2.0, dz=2.0, heads={"west": 1.0, "east": 0.0},
+    layers=[Layer("sand", -2.0, Material(10.0))], species=[Species(limit="0.1 mg/L")],
+    time=Time(10.0, None)) + """
 [uncertain]
 seed = 5
 
