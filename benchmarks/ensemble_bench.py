@@ -169,14 +169,9 @@ def main() -> int:
               ""]
     print("\n".join(lines))
     if args.write:
-        path = ROOT / "docs" / "performance.md"
-        text = path.read_text(encoding="utf-8")
-        head = "\n## Ensembles (benchmarks/ensemble_bench.py)\n"
-        if head in text:
-            start = text.index(head)
-            end = text.find("\n## ", start + len(head))
-            text = text[:start].rstrip("\n") + "\n" + ("" if end < 0 else text[end:])
-        path.write_text(text.rstrip("\n") + "\n\n" + "\n".join(lines), encoding="utf-8")
+        from perf_doc import replace_section
+
+        replace_section("## Ensembles (benchmarks/ensemble_bench.py)", lines)
     return 0
 
 

@@ -128,14 +128,9 @@ def main() -> int:
                      f"({fine['nodes'] / r['nodes']:.1f}×) the CG iterations grew "
                      f"{fine['cg_iterations'] / r['cg_iterations']:.2f}× (to {FLOW_TOL:g}) and "
                      f"{fine['V_iterations'] / r['V_iterations']:.2f}× (to 1e-12).")
-    perf = ROOT / "docs" / "performance.md"
-    text = perf.read_text(encoding="utf-8") if perf.exists() else "# Performance\n"
-    marker = "\n## Flow (benchmarks/flow_bench.py)"
-    if marker in text:
-        head, _, rest = text.partition(marker)
-        nxt = rest.find("\n## ")
-        text = head + ("" if nxt < 0 else rest[nxt:])
-    perf.write_text(text.rstrip("\n") + "\n" + "\n".join(lines) + "\n", encoding="utf-8")
+    from perf_doc import replace_section
+
+    replace_section("## Flow (benchmarks/flow_bench.py)", lines)
     return 0
 
 

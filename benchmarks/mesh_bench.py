@@ -107,11 +107,9 @@ def main() -> int:
     lines += ["", "Target: about 1 M tetrahedra in ≤ 60 s on the 2-core machine. The small "
               "dihedral angles are those of flat cells (plan size ≫ sublayer thickness), "
               "normal for layered aquifer meshes; they are reported, not hidden.", ""]
-    path = ROOT / "docs" / "performance.md"
-    text = path.read_text(encoding="utf-8") if path.exists() else "# Performance\n"
-    if "\n## Mesh\n" in text:
-        text = text[:text.index("\n## Mesh\n")].rstrip("\n") + "\n"
-    path.write_text(text.rstrip("\n") + "\n\n" + "\n".join(lines), encoding="utf-8")
+    from perf_doc import replace_section
+
+    replace_section("## Mesh", lines)
     return 0
 
 

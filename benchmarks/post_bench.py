@@ -98,14 +98,9 @@ def main() -> int:
     ]
     print("\n".join(lines))
     if "--write" in sys.argv:
-        perf = ROOT / "docs" / "performance.md"
-        text = perf.read_text(encoding="utf-8")
-        marker = "\n## Post-processing (benchmarks/post_bench.py)"
-        if marker in text:
-            head, _, rest = text.partition(marker)
-            nxt = rest.find("\n## ")
-            text = head + ("" if nxt < 0 else rest[nxt:])
-        perf.write_text(text.rstrip("\n") + "\n" + "\n".join(lines) + "\n", encoding="utf-8")
+        from perf_doc import replace_section
+
+        replace_section("## Post-processing (benchmarks/post_bench.py)", lines)
     return 0
 
 

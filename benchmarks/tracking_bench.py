@@ -182,8 +182,9 @@ def write_section(rows: list[dict[str, Any]]) -> None:
               f"| {r['crossings_per_path']:.0f} | {r['travel_paths_first_s']:.2f} / "
               f"{r['travel_paths_s']:.2f} | {r['travel_paths_particles']}, "
               f"{r['travel_paths_crossings']:,} | {r['load']:.1f} |" for r in rows]
-    with (ROOT / "docs" / "performance.md").open("a") as f:
-        f.write("\n".join(lines) + "\n")
+    from perf_doc import replace_section
+
+    replace_section("## Particle tracking (benchmarks/tracking_bench.py)", lines[1:])
 
 
 def main() -> int:
