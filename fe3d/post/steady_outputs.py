@@ -9,8 +9,6 @@ the limit (theory.md T17, O1, O2).
 
 from __future__ import annotations
 
-import csv
-import io
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -21,6 +19,7 @@ from fe3d.mesh.materials import cell_values, unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.post.files import write_text_atomic
 from fe3d.post.plume import PlumeMeasures, SorbedPhase, measure_plume, measuring_frames
+from fe3d.post.tables import csv_text
 from fe3d.post.vtk import write_field
 from fe3d.transport.steady import SteadySpecies, SteadyTransport
 from fe3d.units import from_si
@@ -101,11 +100,7 @@ def _table(rows: tuple[SteadyPlumeRow, ...], unit: str) -> str:
                     _g(sum(b.outflow.values()) * DAY), _g(b.decayed * DAY),
                     f"{b.relative_error:.3e}", " ".join(r.steady.counted_sources),
                     " ".join(r.steady.left_out_sources), r.steady.operator])
-    buf = io.StringIO()
-    writer = csv.writer(buf, lineterminator="\n")
-    writer.writerow(header)
-    writer.writerows(out)
-    return buf.getvalue()
+    return csv_text(header, out)
 
 
 def _g(x: float) -> str:

@@ -15,11 +15,12 @@ from fe3d.post.receptors import ReceptorRow
 from fe3d.transport.budget import MassBudget
 from fe3d.units import from_si
 
-__all__ = ["write_flow_budget", "write_histories", "write_mass_budget", "write_plume_table",
-           "write_receptor_table"]
+__all__ = ["csv_text", "write_flow_budget", "write_histories", "write_mass_budget",
+           "write_plume_table", "write_receptor_table"]
 
 
-def _csv(header: list[str], rows: list[list[object]]) -> str:
+def csv_text(header: list[str], rows: list[list[object]]) -> str:
+    """CSV text of a header and rows (newline line ends)."""
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(header)
@@ -40,7 +41,7 @@ def write_histories(path: Path, times: FloatArray, history: dict[str, FloatArray
     rows = [[_g(from_si(t, time_unit))] + [_g(history[sp][i, j] * scale) for sp in history
                                            for j in range(len(names))]
             for i, t in enumerate(times)]
-    write_text_atomic(path, _csv(header, rows))
+    write_text_atomic(path, csv_text(header, rows))
     return path
 
 
@@ -55,7 +56,7 @@ def write_mass_budget(path: Path, budgets: list[MassBudget], *, time_unit: str) 
              _g(b.stored), _g(b.initial), _g(b.source_input),
              *[_g(b.outflow.get(f, 0.0)) for f in faces], _g(b.decayed), _g(b.imbalance),
              f"{b.relative_error:.3e}"] for b in budgets]
-    write_text_atomic(path, _csv(header, rows))
+    write_text_atomic(path, csv_text(header, rows))
     return path
 
 
@@ -70,7 +71,7 @@ def write_flow_budget(path: Path, flow: FlowField) -> Path:
     rows.append(["relative discrepancy [-]", "", f"{flow.discrepancy:.3e}", "", ""])
     for name, h in flow.well_heads.items():
         rows.append([f"head in well {name} [m]", "well", _g(h), "", ""])
-    write_text_atomic(path, _csv(["item", "kind", "inflow [m3/d]", "outflow [m3/d]",
+    write_text_atomic(path, csv_text(["item", "kind", "inflow [m3/d]", "outflow [m3/d]",
                                   "net [m3/d]"], rows))
     return path
 
@@ -100,7 +101,7 @@ def write_plume_table(path: Path, rows: list[tuple[str, float, float, PlumeMeasu
               "downstream of source [m]", "upstream of source [m]",
               "across flow min [m]", "across flow max [m]", "lowest elevation [m]",
               "highest elevation [m]", "centroid x [m]", "centroid y [m]", "centroid z [m]"]
-    write_text_atomic(path, _csv(header, out))
+    write_text_atomic(path, csv_text(header, out))
     return path
 
 
@@ -116,5 +117,5 @@ def write_receptor_table(path: Path, rows: list[ReceptorRow], *, time_unit: str,
     header = ["receptor", "kind", "species", f"time [{time_unit}]", "water out [m3/d]",
               f"flux-averaged concentration [{conc_unit}]", "mass flux [kg/d]",
               "mass out since start [kg]"]
-    write_text_atomic(path, _csv(header, out))
+    write_text_atomic(path, csv_text(header, out))
     return path
