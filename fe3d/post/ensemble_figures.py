@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 
 from fe3d._typing import FloatArray
-from fe3d.post.files import write_atomic
+from fe3d.post.figures import pyplot, save_figure
 from fe3d.units import from_si
 
 __all__ = ["plot_exceedance", "plot_probability_plan"]
@@ -21,11 +21,7 @@ def plot_exceedance(path: Path, times: FloatArray,
                     time_unit: str, confidence: float, n_members: int, title: str) -> Path:
     """One line per receptor and species: probability [-] over ``times`` [s], shape
     ``(n_times,)``, with its band; ``curves`` holds (label, probability, lower, upper)."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
+    plt = pyplot()
     t = np.array([from_si(x, time_unit) for x in times])
     fig, ax = plt.subplots(figsize=(8, 4.5))
     for label, p, lo, hi in curves:
@@ -39,12 +35,8 @@ def plot_exceedance(path: Path, times: FloatArray,
                  "binomial interval", fontsize=10)
     ax.grid(visible=True, alpha=0.3)
     ax.legend(fontsize=8, loc="upper left")
-    fig.text(0.01, 0.005, "Screening estimate: depends on the inputs; defer to local "
-             "regulations and licensed professional practice.", fontsize=7)
     fig.tight_layout(rect=(0, 0.03, 1, 1))
-    write_atomic(path, lambda p: fig.savefig(p, dpi=130, format="png"))
-    plt.close(fig)
-    return path
+    return save_figure(fig, path)
 
 
 def plot_probability_plan(path: Path, plan_xy: FloatArray, triangles: FloatArray,
@@ -55,11 +47,9 @@ def plot_probability_plan(path: Path, plan_xy: FloatArray, triangles: FloatArray
     limit during the run, the largest over depth: ``plan_xy`` [m] shape ``(2, n_plan)``,
     ``triangles`` ``(3, n_triangles)`` indices into it, ``probability`` species →
     ``(n_plan,)``; ``markers`` label → plan position [m]."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
     from matplotlib.tri import Triangulation
+
+    plt = pyplot()
 
     tri = Triangulation(plan_xy[0], plan_xy[1], np.asarray(triangles).T)
     n = len(probability)
@@ -78,9 +68,5 @@ def plot_probability_plan(path: Path, plan_xy: FloatArray, triangles: FloatArray
                      f"over depth, {n_members} members)", fontsize=9)
     axes[-1, 0].set_xlabel("x [m]")
     fig.suptitle(title, fontsize=10)
-    fig.text(0.01, 0.005, "Screening estimate: depends on the inputs; defer to local "
-             "regulations and licensed professional practice.", fontsize=7)
     fig.tight_layout(rect=(0, 0.03, 1, 1))
-    write_atomic(path, lambda p: fig.savefig(p, dpi=130, format="png"))
-    plt.close(fig)
-    return path
+    return save_figure(fig, path)

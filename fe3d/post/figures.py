@@ -282,14 +282,9 @@ def _limit_line(ax: Any, lim: float, peak: float, conc_unit: str, *,
 
 
 def _save_with_caution(fig: Any, path: Path) -> None:
-    """The screening caution in the corner, PNG written atomically, figure closed."""
-    import matplotlib.pyplot as plt
-
-    fig.text(0.01, 0.005, "Screening estimate: depends on the inputs; not a substitute "
-             "for local regulations or licensed professional judgement.", fontsize=7)
+    """Laid out above the caution line, then :func:`save_figure`."""
     fig.tight_layout(rect=(0, 0.03, 1, 1))
-    write_atomic(path, lambda p: fig.savefig(p, dpi=110, format="png"))
-    plt.close(fig)
+    save_figure(fig, path, dpi=110)
 
 
 def plot_plume_over_time(path: Path, plumes: dict[str, tuple[FloatArray, FloatArray,
