@@ -49,7 +49,7 @@ from fe3d.post.receptors import (
     receptor_result,
     receptors_of,
 )
-from fe3d.post.report import ObservationResult, RunSummary, write_report, write_summary_json
+from fe3d.post.report import ObservationResult, RunSummary, write_summary_json
 from fe3d.post.run_fields import RunWideField
 from fe3d.post.run_figures import PlumeFigures, write_head_figure
 from fe3d.post.series import SERIES_FILE, SeriesFile
@@ -294,8 +294,7 @@ class SeriesWriter:
                   *(["receptors.csv"] if self.receptors else []), "summary.json", "report.md",
                   "report.html", "inputs.json", "solver.log", "run.json"]
         summary = self._summary(last, flow, paths, files, started)
-        write_summary_json(out / "summary.json", summary)
-        write_report(out / "report.md", summary)
+        write_summary_json(out / "summary.json", summary)  # report.md: post.handover
         return summary
 
     def _write_run_fields(self) -> None:

@@ -18,10 +18,8 @@ __all__ = [
     "SIGNIFICANT_DIGITS",
     "ObservationResult",
     "RunSummary",
-    "file_groups",
     "quality_warnings",
     "rounded",
-    "write_report",
     "write_summary_json",
 ]
 
@@ -131,11 +129,6 @@ def _between(window: tuple[float, float] | None, unit: str) -> str:
                                       f"{from_si(window[1], unit):.3g} {unit}")
 
 
-def _span(window: tuple[float, float] | None, unit: str) -> str:
-    return "–" if window is None else (f"{from_si(window[0], unit):.3g}–"
-                                       f"{from_si(window[1], unit):.3g} {unit}")
-
-
 def _limit_warnings(x: SpeciesExtremes, s: RunSummary) -> list[str]:
     """Negative values and overshoots beyond 1 % of the limit (limit_checks), in words.
 
@@ -181,29 +174,6 @@ _KINDS = {"msh": "mesh and fields", "vtu": "mesh and fields", "pvd": "mesh and f
           "md": "summary and report", "log": "log"}
 
 
-def file_groups(files: list[str]) -> list[str]:
-    """The files of a run as a few lines: numbered series counted (``16 concentration
-    fields `concentration_0000–0015.vtu```), the rest grouped by kind, in order of first
-    appearance."""
-    series: dict[tuple[str, str], list[str]] = {}
-    kinds: dict[str, list[str]] = {}
-    for f in files:
-        m = _NUMBERED.match(f)
-        if m:
-            series.setdefault((m["stem"], m["ext"]), []).append(m["index"])
-        else:
-            kinds.setdefault(_KINDS.get(f.rsplit(".", 1)[-1], "other"), []).append(f)
-    lines = []
-    for (stem, ext), idx in series.items():
-        label = ("concentration fields" if stem == "concentration" else
-                 f"surfaces at the limit of {stem[6:]}" if stem.startswith("plume_") else
-                 "files")
-        span = idx[0] if len(idx) == 1 else f"{min(idx)}–{max(idx)}"
-        lines.append(f"{len(idx)} {label} `{stem}_{span}.{ext}`")
-    lines += [f"{kind}: " + ", ".join(f"`{f}`" for f in names) for kind, names in kinds.items()]
-    return lines
-
-
 def write_summary_json(path: Path, s: RunSummary) -> Path:
     """Everything in :class:`RunSummary`, SI units, numbers to :data:`SIGNIFICANT_DIGITS`
     significant digits; README.md ("summary.json") describes every key."""
@@ -219,124 +189,3 @@ def write_summary_json(path: Path, s: RunSummary) -> Path:
 def _t(x: float | None, unit: str) -> str:
     return "not reached" if x is None else f"{from_si(x, unit):.3g} {unit}"
 
-
-def _limit_section(s: RunSummary) -> list[str]:
-    """The lowest and highest value of each species over the run against its limit."""
-    if not s.extremes:
-        return []
-    tu, cu = s.time_unit, s.concentration_unit
-    sc = from_si(1.0, cu)
-    lines = ["### Concentrations against the limit (over every time step)", "",
-             f"| species | limit [{cu}] | most negative [{cu}] | × limit | reached | "
-             f"largest [{cu}] | upper bound [{cu}] | overshoot × limit | reached |",
-             "|---|---|---|---|---|---|---|---|---|"]
-    for sp, x in s.extremes.items():
-        bound, over = (("none (daughter or mass loading)", "–") if x.upper_bound is None else
-                       (f"{x.upper_bound * sc:.4g}", f"{x.overshoot_in_limits:.3g}"))
-        lines.append(f"| {sp} | {x.limit * sc:.3g} | {min(x.lowest, 0.0) * sc:.3g} | "
-                     f"{x.below_zero_in_limits:.3g} | {_span(x.lowest_between, tu)} "
-                     f"| {x.highest * sc:.4g} | {bound} | {over} | "
-                     f"{_span(x.highest_between, tu)} |")
-    lines += ["", "\"Reached\" gives the output times between which the value was "
-              "reached. The upper bound is the largest source, initial or injected "
-              "concentration: without decay chains or mass loadings, transport creates no "
-              "new maximum. A daughter's bound depends on how much parent mass (dissolved "
-              "and sorbed) decays near it, so only its largest value is given. Warnings "
-              "follow when a value lies more than 1 % of the limit below zero or above the "
-              "bound (common practice, no source).", ""]
-    if s.boundary_contacts:
-        lines += ["Faces where the part above the limit touches nodes that let no water out "
-                  "(the model may be too small):", "",
-                  *[f"- {b.species}: {b.face} face, first at {_t(b.first_time, tu)}"
-                    for b in s.boundary_contacts], ""]
-    return lines
-
-
-def _receptor_section(s: RunSummary) -> list[str]:
-    """The table of extraction wells and boundaries where water leaves (theory.md O3)."""
-    if not s.receptors:
-        return []
-    tu, cu = s.time_unit, s.concentration_unit
-    sc = from_si(1.0, cu)
-    lines = ["## What leaves the model: extraction wells and outflow boundaries", "",
-             f"| receptor | kind | species | water out [m³/d] | peak [{cu}] | peak time | "
-             "first above limit | last above limit | time above limit | mass out [kg] |",
-             "|---|---|---|---|---|---|---|---|---|---|"]
-    for r in s.receptors:
-        last = ("still above at the end" if r.last_above_limit is not None
-                and r.last_above_limit >= s.end_time else _t(r.last_above_limit, tu))
-        lines.append(f"| {r.name} | {r.kind} | {r.species} | {r.water_rate * 86400:.4g} | "
-                     f"{r.peak * sc:.4g} | {_t(r.peak_time, tu)} | "
-                     f"{_t(r.first_above_limit, tu)} | {last} | "
-                     f"{from_si(r.time_above_limit, tu):.3g} {tu} | {r.mass_out:.4g} |")
-    lines += ["", "The concentration is that of the water leaving, weighted by the flow at each "
-              "node (for a well, what it pumps; for a face or stream, the flux-averaged "
-              f"value). It is taken at the output times (every {_t(s.output_step, tu)} at "
-              "most): a peak between them is missed and crossing times are interpolated. The "
-              "mass out is the transport's own balance, over every step. `receptors.csv` "
-              "has every output time.", ""]
-    return lines
-
-
-def write_report(path: Path, s: RunSummary) -> Path:
-    """A short Markdown report for a reviewer."""
-    tu, cu = s.time_unit, s.concentration_unit
-    lines = [
-        f"# {s.title}", "", f"Site: {s.site}", "", f"> {CAUTION}", "",
-        "## Model", "",
-        f"- mesh: {s.n_nodes} nodes, {s.n_cells} tetrahedra",
-        f"- simulated period: {from_si(s.end_time, tu):.4g} {tu} in {s.n_steps} steps of "
-        f"{_t(s.step_range[0], tu)} to {_t(s.step_range[1], tu)} ({s.step_cuts} step cuts "
-        f"after a failed solve, {s.rejected_steps} steps rejected by the error control)",
-        *([f"- transport method: {s.method}"] if s.method else []),
-        f"- groundwater through the model: {s.flow_inflow * 86400:.4g} m³/d, "
-        f"budget discrepancy {s.flow_discrepancy:.1e}",
-        "", "## Extent of the plume above the limit (at output times)", "",
-        "| species | largest extent from the source [m] | at | farthest downstream [m] | "
-        "largest volume above the limit [m³] | largest mass above the limit [kg] | "
-        "extent at the end [m] |", "|---|---|---|---|---|---|---|",
-        *[f"| {sp} | {p['largest_extent']:.4g} | {_t(p['time_of_largest_extent'], tu)} | "
-          f"{p.get('largest_downstream', 0.0):.4g} | {p['largest_volume']:.4g} | "
-          f"{p.get('largest_mass', 0.0):.4g} | {p['final_extent']:.4g} |"
-          for sp, p in s.plume.items()],
-        "", "Measured exactly on the computed (piecewise-linear) field, each tetrahedron cut "
-        "where the field crosses the limit: the extent is the farthest plan distance from the "
-        "species' first source (for a source on a face, the distance downstream of the face), "
-        "\"downstream\" is measured along the mean flow, the mass is dissolved plus sorbed. "
-        "`plume.csv` has every output time, with the extents across the flow and in "
-        "elevation and the centroid; `plume_*.vtp` the surfaces at the limit.", "",
-        *_receptor_section(s),
-        "## Advective travel times of water (particle tracking)", "",
-        "| from source | to receptor | travel time | closest approach [m] |",
-        "|---|---|---|---|",
-        *[f"| {a['source']} | {a['receptor']} | {_t(a['time'], tu)} | "  # type: ignore[arg-type]
-          f"{a['closest']:.3g} |" for a in s.travel_times],
-        "", "Water travel times ignore sorption: a sorbing solute's front moves about R times "
-        "slower.", "",
-        "## Breakthrough at observation points", "",
-        f"| point | kind | species | peak [{cu}] | peak time | first above limit | limit [{cu}] |",
-        "|---|---|---|---|---|---|---|",
-    ]
-    sc = from_si(1.0, cu)
-    for o in s.observations:
-        lines.append(f"| {o.name} | {o.kind} | {o.species} | {o.peak * sc:.4g} | "
-                     f"{_t(o.peak_time, tu)} | {_t(o.first_above_limit, tu)} | "
-                     f"{o.limit * sc:.4g} |")
-    lines += ["", "## Numerical quality", "",
-              "| species | mass-balance error [-] | max grid Péclet [-] | max Courant, "
-              "plume [-] | max Courant, all cells [-] |",
-              "|---|---|---|---|---|"]
-    for sp, err in s.mass_balance_error.items():
-        lines.append(f"| {sp} | {err:.2e} | {s.max_grid_peclet[sp]:.3g} | "
-                     f"{s.max_plume_courant.get(sp, 0.0):.3g} | {s.max_courant[sp]:.3g} |")
-    warnings = quality_warnings(s)
-    lines += ["", "With the default scheme (`solver.monotone` and `solver.flux_limiting`, "
-              "theory.md T16b) no value falls below zero or rises above the sources beyond the "
-              "solver tolerance; with SUPG (`solver.monotone = false`) negative values near "
-              "steep fronts are a discretisation artefact.", "", *_limit_section(s),
-              "### Warnings", "", *([f"- {w}" for w in warnings] or ["- none"]), "",
-              "## Files", "", *[f"- {g}" for g in file_groups(s.files)], "",
-              "`solver.log` is in SI units (times in seconds, concentrations in kg/m³ = 1000 "
-              "mg/L, lengths in m); every other file uses the case's display units.", ""]
-    write_text_atomic(path, "\n".join(lines))
-    return path

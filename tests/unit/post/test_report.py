@@ -12,10 +12,8 @@ from fe3d.post.limit_checks import BoundaryContact, species_extremes
 from fe3d.post.probes import breakthrough
 from fe3d.post.report import (
     RunSummary,
-    file_groups,
     quality_warnings,
     rounded,
-    write_report,
     write_summary_json,
 )
 
@@ -104,33 +102,6 @@ def test_summary_json_has_no_float_noise(tmp_path):
     assert d["end_time"] == 946728000.0
     assert d["min_concentration_at"] == {"x": None}
 
-
-_DEMO_FILES = ["mesh.msh", "mesh.vtu", "flow.vtu", "flow_budget.csv", "pathlines_forward.vtp",
-               "pathlines_backward.vtp", "heads_plan.png", "breakthrough.png",
-               *[f"plume_{sp}_{k:04d}.vtp" for k in range(16) for sp in ("solvent", "brine")],
-               "concentration.pvd", *[f"concentration_{k:04d}.vtu" for k in range(16)],
-               "mass_budget.csv", "histories.csv", "plume.csv", "summary.json", "report.md",
-               "solver.log"]
-
-
-def test_file_groups_count_each_series():
-    lines = file_groups(_DEMO_FILES)
-    assert "16 concentration fields `concentration_0000–0015.vtu`" in lines
-    assert "16 surfaces at the limit of brine `plume_brine_0000–0015.vtp`" in lines
-    assert "figures: `heads_plan.png`, `breakthrough.png`" in lines
-    assert len(lines) == 9
-    listed = " ".join(lines)
-    assert all(f in listed for f in _DEMO_FILES if "_00" not in f)
-
-
-def test_report_lists_files_compactly(tmp_path):
-    """The 66 files of a demo-like run take 9 lines of the report, not 66; the report says
-    that solver.log is in SI units."""
-    text = write_report(tmp_path / "report.md", _summary(files=_DEMO_FILES)).read_text()
-    files = text.split("## Files", 1)[1].strip().splitlines()
-    items = [ln for ln in files if ln.startswith("- ")]
-    assert len(items) == 9
-    assert "`solver.log` is in SI units" in text
 
 
 def test_breakthrough_interpolates_crossing_times():
