@@ -114,7 +114,8 @@ def solver_log(path: Path) -> Iterator[None]:
 def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
              base_dir: Path | None = None, mesh_folders: list[Path] | None = None,
              site: SiteMesh | None = None, overwrite: bool = False,
-             inputs: Sequence[Path] = (), force: bool = False) -> RunSummary:
+             inputs: Sequence[Path] = (), force: bool = False,
+             compact: bool = False) -> RunSummary:
     """Run every stage and write the run folder (with ``solver.log`` and the manifest
     ``run.json``); returns the summary.
 
@@ -125,7 +126,9 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     :class:`~fe3d.errors.CaseError` before any work (:mod:`fe3d.post.run_place`). A mesh
     cached in ``out_dir`` by an earlier run is reused. Without ``force``, a run whose
     estimated memory or output does not fit this machine is refused before any work
-    (:func:`fe3d.run_size.check_fits`). See :func:`_run_case` for the other arguments.
+    (:func:`fe3d.run_size.check_fits`). ``compact`` (for the members of a study): no
+    figures, plume surfaces or handover report, only the tables, ``summary.json`` and the
+    fields. See :func:`_run_case` for the other arguments.
     """
     check_target(out_dir, overwrite=overwrite, inputs=inputs)
     if not force:
@@ -137,8 +140,10 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     try:
         with solver_log(work / "solver.log"):
             summary = _run_case(case, work, progress=progress, base_dir=base_dir,
-                                mesh_folders=[out_dir, *(mesh_folders or [])], site=site)
-        write_handover(work, case=case)  # report.md and report.html from the run's files
+                                mesh_folders=[out_dir, *(mesh_folders or [])], site=site,
+                                compact=compact)
+        if not compact:
+            write_handover(work, case=case)  # report.md and report.html from the run's files
         state = "finished"
     except KeyboardInterrupt:
         state, detail = "interrupted", "interrupted by the user (Ctrl-C or a signal)"
@@ -154,7 +159,7 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
 
 def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
               base_dir: Path | None = None, mesh_folders: list[Path] | None = None,
-              site: SiteMesh | None = None) -> RunSummary:
+              site: SiteMesh | None = None, compact: bool = False) -> RunSummary:
     """Run every stage and write the run folder; returns the summary.
 
     ``progress(stage, done, total)`` is called as work advances (for a progress bar);
@@ -177,8 +182,8 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     flow = solve_flow(site, FlowInputs.of(case), base_dir=base_dir)
     tell("travel paths", 0, 1)
     paths = travel_paths(site, flow, TravelInputs.of(case))
-    files += write_flow_outputs(out_dir, case, site, flow, paths)
-    writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow)
+    files += write_flow_outputs(out_dir, case, site, flow, paths, figures=not compact)
+    writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow, figures=not compact)
     try:
         for snap in run_transport(site, flow, TransportInputs.of(case), base_dir=base_dir,
                                   on_step=lambda t, end: tell("transport", t, end)):

@@ -73,13 +73,13 @@ RUN_FIELDS = "over_the_run.vtu"
 
 
 def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField,
-                       paths: TravelPaths) -> list[str]:
+                       paths: TravelPaths, *, figures: bool = True) -> list[str]:
     """``flow_budget.csv``, the forward and backward pathlines, the head on the top face
-    (``heads_plan.png``) and the head map with capture zones (``head_map.png``), and with
-    ``output.vtu_series`` ``flow.vtu`` (head, Darcy flux, seepage velocity, conductivity in
-    m/d; else they are in the series file); returns the names of the files written."""
-    names = ["flow_budget.csv", "pathlines_forward.vtp", "pathlines_backward.vtp",
-             "heads_plan.png"]
+    (``heads_plan.png``) and the head map with capture zones (``head_map.png``; not without
+    ``figures``), and with ``output.vtu_series`` ``flow.vtu`` (head, Darcy flux, seepage
+    velocity, conductivity in m/d; else they are in the series file); returns the names of
+    the files written."""
+    names = ["flow_budget.csv", "pathlines_forward.vtp", "pathlines_backward.vtp"]
     if case.output.vtu_series:
         write_field(site, out_dir / "flow.vtu", point_data={"head [m]": flow.head},
                     cell_data=flow_cell_data(flow))
@@ -93,6 +93,8 @@ def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowFiel
                     time_unit_seconds=tsec, time_unit=tu)
     write_pathlines(out_dir / "pathlines_backward.vtp", [(p.points, p.times) for p in backward],
                     time_unit_seconds=tsec, time_unit=tu)
+    if not figures:
+        return names
     top = site.faces["top"]
     under_top = np.isin(site.cells, np.unique(top)).sum(axis=0) >= 3
     centres = site.points[:2, site.cells[:, under_top]].mean(axis=1)
@@ -104,7 +106,8 @@ def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowFiel
                backward_pathlines=[p.points for p in backward],
                title=f"{case.site or case.title}: head on the top face",
                corridor=None if site.report is None else site.report.corridor)
-    return names + write_head_figure(out_dir, case, site, flow, paths, head_unit="m")
+    return [*names, "heads_plan.png",
+            *write_head_figure(out_dir, case, site, flow, paths, head_unit="m")]
 
 
 def flow_cell_data(flow: FlowField) -> dict[str, FloatArray]:
@@ -136,7 +139,7 @@ class SeriesWriter:
     it arrives; without it the snapshots are kept and measured in :meth:`finish`."""
 
     def __init__(self, out_dir: Path, case: Case, site: SiteMesh, porosity: FloatArray, *,
-                 flow: FlowField | None = None) -> None:
+                 flow: FlowField | None = None, figures: bool = True) -> None:
         self.out_dir, self.case, self.site = out_dir, case, site
         self.porosity = porosity
         materials, names = unit_materials(Ground.of(case), site)
@@ -160,8 +163,9 @@ class SeriesWriter:
             static_cell_data={"unit_id": site.cell_layer.astype(np.int32),
                               **({} if flow is None else flow_cell_data(flow))},
             time_unit=case.output.time_unit)
-        self.figures = None if flow is None else PlumeFigures(out_dir, case, site, flow,
-                                                              every_output_time=False)
+        self.figures = None if flow is None or not figures else PlumeFigures(
+            out_dir, case, site, flow, every_output_time=False)
+        self.full_outputs = figures  # figures, plume surfaces and the report, or none
         # limit checks: first output time above the limit at each boundary node, and the
         # output times between which each species' lowest and highest values were reached
         self.boundary_nodes = np.unique(np.concatenate(
@@ -194,8 +198,9 @@ class SeriesWriter:
         self.series.append((from_si(snap.time, tu), name))
         for sp, c in snap.concentration.items():
             lim = case.species[sp].limit
-            write_isosurface(out / f"plume_{sp}_{k:04d}.vtp", self.site.points,
-                             self.site.cells, c * scale, lim * scale, name=f"{sp} [{cu}]")
+            if self.full_outputs:
+                write_isosurface(out / f"plume_{sp}_{k:04d}.vtp", self.site.points,
+                                 self.site.cells, c * scale, lim * scale, name=f"{sp} [{cu}]")
             self.first_above[sp] = first_times_above(
                 self.first_above[sp], c[self.boundary_nodes], lim, snap.time)
             self.over_run[sp] = self.over_run[sp].add(
@@ -275,7 +280,7 @@ class SeriesWriter:
                         time_unit=tu, conc_unit=cu)
         limits = {sp: s.limit for sp, s in case.species.items()}
         files = list(files)
-        if names:
+        if names and self.full_outputs:
             activity = {sp: [(s.start, case.time.end if s.stop is None else s.stop)
                              for s in case.sources if s.species == sp] for sp in case.species}
             plot_breakthrough(out / "breakthrough.png", last.history_times, last.history,
@@ -285,14 +290,15 @@ class SeriesWriter:
         if self.figures is not None:
             files += self.figures.finish()
         files += [f"plume_{sp}_{k:04d}.vtp" for k in range(len(self.series))
-                  for sp in case.species]
+                  for sp in case.species if self.full_outputs]
         self.series_file.close()
         files.append(SERIES_FILE)
         if case.output.vtu_series:
             files += ["concentration.pvd", *[f for _, f in self.series], RUN_FIELDS]
         files += ["mass_budget.csv", "histories.csv", "plume.csv",
-                  *(["receptors.csv"] if self.receptors else []), "summary.json", "report.md",
-                  "report.html", "inputs.json", "solver.log", "run.json"]
+                  *(["receptors.csv"] if self.receptors else []), "summary.json",
+                  *(["report.md", "report.html", "inputs.json"] if self.full_outputs else []),
+                  "solver.log", "run.json"]
         summary = self._summary(last, flow, paths, files, started)
         write_summary_json(out / "summary.json", summary)  # report.md: post.handover
         return summary

@@ -177,7 +177,8 @@ def _run_member(index: int, case: Case, site: SiteMesh | None, base_dir: Path | 
     folder = keep if scratch is None else scratch / "run"  # a run folder not yet made
     try:
         summary = run_case(case, folder, base_dir=base_dir, mesh_folders=[], site=site,
-                           overwrite=True)  # the study owns its members' folders
+                           overwrite=True,  # the study owns its members' folders
+                           compact=keep is None)  # figures and reports only when kept
         times, history = read_histories(folder, case)
         fields = None if site is None else _above_limit(folder, case)
     except Fe3dError as exc:

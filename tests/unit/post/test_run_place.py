@@ -81,3 +81,21 @@ def test_a_rerun_replaces_the_folder_as_a_whole_and_a_failure_says_so(tmp_path):
     assert not (out / "summary.json").exists()  # the earlier run's summary went with it
     assert (out / "solver.log").is_file()
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no work folder
+
+
+@pytest.mark.slow
+def test_a_compact_run_writes_the_tables_and_fields_only(tmp_path):
+    """``compact`` (a study's member, issue 14): no figure, plume surface or report; the
+    histories, receptors, summary and the series file are there, and the histories equal a
+    full run's to the bit (the same numbers, written the same way)."""
+    case = load_case(TINY)
+    full, small = tmp_path / "full", tmp_path / "compact"
+    run_case(case, full, base_dir=TINY.parent)
+    run_case(case, small, base_dir=TINY.parent, compact=True)
+    names = {p.name for p in small.iterdir()}
+    assert not [n for n in names if n.endswith((".png", ".html")) or n.startswith("plume_")]
+    assert "report.md" not in names
+    assert {"histories.csv", "summary.json", "results.vtkhdf", MANIFEST} <= names
+    assert (small / "histories.csv").read_bytes() == (full / "histories.csv").read_bytes()
+    listed = {f["name"] for f in _manifest(small)["files"]}
+    assert listed == names - {MANIFEST}
