@@ -155,10 +155,12 @@ def _production(run: RunResult, species: str, terms: dict[str, Any]) -> tuple[st
     it has one; for a daughter without a source of its own, its whole input is production;
     otherwise the two are lumped and said so."""
     source = float(terms["source input"][-1])
-    if "produced from parent" in terms:
-        return _q(source), _q(float(terms["produced from parent"][-1]))
     inputs = run.inputs or {}
-    if species not in inputs.get("parents", {}):
+    has_parent = species in inputs.get("parents", {})
+    if "produced from parent" in terms:
+        made = _q(float(terms["produced from parent"][-1]))
+        return _q(source), made if has_parent or run.inputs is None else "none"
+    if not has_parent:
         return _q(source), "none" if run.inputs is not None else "not known"
     if species not in inputs.get("species_with_sources", []):
         return "0", _q(source)

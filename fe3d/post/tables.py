@@ -49,11 +49,11 @@ def write_mass_budget(path: Path, budgets: list[MassBudget], *, time_unit: str) 
     """Cumulative mass balance per species and output time [kg]."""
     faces = sorted({f for b in budgets for f in b.outflow})
     header = ["species", f"time [{time_unit}]", "dissolved [kg]", "sorbed [kg]",
-              "stored [kg]", "initial [kg]", "source input [kg]",
+              "stored [kg]", "initial [kg]", "source input [kg]", "produced from parent [kg]",
               *[f"outflow {f} [kg]" for f in faces], "decayed [kg]", "imbalance [kg]",
               "relative error [-]"]
     rows = [[b.species, _g(from_si(b.time, time_unit)), _g(b.dissolved), _g(b.sorbed),
-             _g(b.stored), _g(b.initial), _g(b.source_input),
+             _g(b.stored), _g(b.initial), _g(b.source_input), _g(b.produced),
              *[_g(b.outflow.get(f, 0.0)) for f in faces], _g(b.decayed), _g(b.imbalance),
              f"{b.relative_error:.3e}"] for b in budgets]
     write_text_atomic(path, csv_text(header, rows))

@@ -63,6 +63,7 @@ class BudgetTotals:
         self.initial = {s.name: float(s.dissolved_volume @ fields[s.name])
                         + s.sorbed_mass(fields[s.name]) for s in species}
         self.source_input = dict.fromkeys(self.initial, 0.0)
+        self.produced = dict.fromkeys(self.initial, 0.0)
         self.decayed = dict.fromkeys(self.initial, 0.0)
         self.outflow = {s.name: dict.fromkeys(s.outflow_weights, 0.0) for s in species}
 
@@ -70,6 +71,7 @@ class BudgetTotals:
         """Fold one accepted step's terms in."""
         for name, b in budget.items():
             self.source_input[name] += b.source_input + b.switch_on
+            self.produced[name] += b.produced
             self.decayed[name] += b.decayed
             for f, x in b.outflow.items():
                 self.outflow[name][f] += x
@@ -80,7 +82,8 @@ class BudgetTotals:
         return {s.name: MassBudget(
             species=s.name, time=t, dissolved=float(s.dissolved_volume @ fields[s.name]),
             sorbed=s.sorbed_mass(fields[s.name]), initial=self.initial[s.name],
-            source_input=self.source_input[s.name], outflow=dict(self.outflow[s.name]),
+            source_input=self.source_input[s.name], produced=self.produced[s.name],
+            outflow=dict(self.outflow[s.name]),
             decayed=self.decayed[s.name]) for s in species}
 
 

@@ -12,8 +12,9 @@ class MassBudget:
     """Cumulative mass balance of one species from t = 0 to ``time`` [kg, s].
 
     ``stored`` = dissolved + sorbed. The balance reads
-    stored − initial = source_input − Σ outflow − decayed; ``relative_error`` is the left
-    minus the right side over the largest of stored, initial and cumulative input.
+    stored − initial = source_input + produced − Σ outflow − decayed (``produced``: made by
+    the decay of the species' parent, T12); ``relative_error`` is the left minus the right
+    side over the largest of stored, initial and cumulative input.
     """
 
     species: str
@@ -22,6 +23,7 @@ class MassBudget:
     sorbed: float
     initial: float
     source_input: float
+    produced: float = 0.0
     outflow: dict[str, float] = field(default_factory=dict)
     decayed: float = 0.0
 
@@ -38,11 +40,12 @@ class MassBudget:
     @property
     def imbalance(self) -> float:
         """Absolute closure error [kg]."""
-        return (self.stored - self.initial) - (self.source_input - self.total_outflow
-                                               - self.decayed)
+        return (self.stored - self.initial) - (self.source_input + self.produced
+                                               - self.total_outflow - self.decayed)
 
     @property
     def relative_error(self) -> float:
         """Closure error relative to the largest mass involved [-]."""
-        scale = max(abs(self.stored), abs(self.initial), abs(self.source_input), 1e-300)
+        scale = max(abs(self.stored), abs(self.initial),
+                    abs(self.source_input) + abs(self.produced), 1e-300)
         return abs(self.imbalance) / scale

@@ -119,10 +119,12 @@ class StepState:
 @dataclass(frozen=True)
 class StepBudget:
     """Mass [kg] one species gained or lost in one step: ``source_input`` (held nodes and
-    loads), ``decayed``, ``outflow`` per item, ``switch_on`` (mass placed at nodes of a
-    source that switched on), the nodes held and the starting field the step used."""
+    loads), ``produced`` (by the decay of its parent, T12), ``decayed``, ``outflow`` per
+    item, ``switch_on`` (mass placed at nodes of a source that switched on), the nodes held
+    and the starting field the step used."""
 
     source_input: float
+    produced: float
     decayed: float
     outflow: dict[str, float]
     switch_on: float
@@ -257,8 +259,11 @@ def _attempt(
     step_system = ctx.systems.system(s, dt, formula, held.active)
     fixed = step_system.fixed
     load = ctx.sources.load(s.name, t0, t1, ta, tb)
+    production = 0.0
     if s.spec.parent is not None:  # first-order decay of the parent feeds it (T12)
-        load = load + s.spec.yield_from_parent * decay_loss[s.spec.parent]
+        from_parent = s.spec.yield_from_parent * decay_loss[s.spec.parent]
+        load = load + from_parent
+        production = float(from_parent.sum())
     old = state.fields[s.name]
     switch_on = 0.0
     switched_on = fixed[~state.held_before[s.name][fixed]]
@@ -294,8 +299,8 @@ def _attempt(
         loss = ctx.decay_matrix[s.name] @ c_mid + (
             _sorbed_decay_rate(s, new, old, formula.theta) if s.isotherms else 0.0)
     now = StepBudget(
-        source_input=dt * (float(r[fixed].sum()) + float(load.sum())),
-        decayed=dt * float(s.decay_weight @ c_mid) + other_loss,
+        source_input=dt * (float(r[fixed].sum()) + float(load.sum()) - production),
+        produced=dt * production, decayed=dt * float(s.decay_weight @ c_mid) + other_loss,
         outflow={f: dt * float(w @ c_mid) for f, w in s.outflow_weights.items()},
         switch_on=switch_on, fixed=fixed, start=old)
     last = state.last_budget.get(s.name)
@@ -303,6 +308,7 @@ def _attempt(
         a0, a2 = formula.a0, formula.a2
         now = replace(
             now, source_input=(now.source_input + a2 * last.source_input) / a0,
+            produced=(now.produced + a2 * last.produced) / a0,
             decayed=(now.decayed + a2 * last.decayed) / a0,
             outflow={f: (x + a2 * last.outflow[f]) / a0 for f, x in now.outflow.items()})
     return new, now, its, loss, solve.blocked, step_system.solver.method

@@ -95,3 +95,10 @@ def test_three_member_chain_matches_the_analytical_solution():
         print(name, "max error / peak", err)
         assert err <= 0.02, (name, err)
         assert last.budgets[name].relative_error <= 1e-8
+    # production is its own budget term (T12): each member makes yield × what its parent
+    # lost to decay (the same decay rates summed, to round-off), none of it counted as
+    # source input through the clean inlets' tiny exchange
+    for i in (1, 2):
+        made = last.budgets[names[i]].produced
+        assert made == pytest.approx(Y[i - 1] * last.budgets[names[i - 1]].decayed, rel=1e-10)
+        assert made > 10 * abs(last.budgets[names[i]].source_input)
