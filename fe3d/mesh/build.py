@@ -208,7 +208,12 @@ def plan_mesh(
             low = field.add("Min")
             field.setNumbers(low, "FieldsList", thresholds)
             field.setAsBackgroundMesh(low)
-        gmsh.model.mesh.generate(2)
+        try:
+            gmsh.model.mesh.generate(2)
+        except Exception as exc:  # gmsh raises bare Exceptions: one line naming the cause
+            msg = (f"gmsh could not triangulate the plan view ({exc}); change mesh.cell_size "
+                   "or mesh.fine_cell_size slightly, or move a feature off a boundary")
+            raise MeshError(msg) from None
         gmsh.model.mesh.removeDuplicateNodes()
         tags, coords, _ = gmsh.model.mesh.getNodes()
         etypes, _, enodes = gmsh.model.mesh.getElements(2)
@@ -460,6 +465,7 @@ def build_mesh(case: Case, *, corridor: Corridor | None = None) -> SiteMesh:
     verts, names = case.outline()
     mc = case.mesh
     lens_polys = [[(float(x), float(y)) for x, y in lens.polygon] for lens in case.lenses]
+    boxes = _source_boxes(case)
     plan = plan_mesh(verts, names, cell_size=mc.cell_size, zones=_refine_zones(case, corridor),
                      points=_embedded_points(case), outlines=lens_polys)
     xy, tri = plan.xy, plan.tri
@@ -470,6 +476,9 @@ def build_mesh(case: Case, *, corridor: Corridor | None = None) -> SiteMesh:
     well_node = {k.split(" ", 1)[1]: v for k, v in plan.point_nodes.items()
                  if k.startswith("well ")}
     lens_in, lens_levels = _lens_nodes(case, xy, tri, surfaces)
+    box_levels = _box_levels(boxes, xy, surfaces)
+    for level in box_levels:
+        lens_levels.setdefault(level.unit, []).append(level.fraction)
     fractions = _sublayer_fractions(case, surfaces, well_node, lens_levels,
                                     {} if corridor is None else corridor.layer_thickness)
     z_rows, layer_unit, level_frac = [surfaces[0]], [], []
@@ -479,7 +488,7 @@ def build_mesh(case: Case, *, corridor: Corridor | None = None) -> SiteMesh:
             z_rows.append(bot.copy() if f == 1.0 else top + (bot - top) * f)
             layer_unit.append(k)
             level_frac.append((k, f))
-    z = np.array(z_rows)
+    z = _fit_boxes(np.array(z_rows), level_frac, box_levels)
     z, lens_notes = _fit_lenses(case, z, layer_unit, level_frac, surfaces, lens_in,
                                 node_area)
     for note in lens_notes:
@@ -653,6 +662,75 @@ def _classify_faces(points: FloatArray, cells: IndexArray, node_level: IndexArra
         msg = f"{int((~assigned).sum())} boundary triangles belong to no named face"
         raise MeshError(msg)
     return out
+
+
+def _source_boxes(case: Case) -> list[tuple[tuple[float, float], ...]]:
+    """The (x, y, z) ranges [m] of the source boxes that lie inside the plan outline: cell
+    levels go through their top and base (:func:`_box_levels`), so that a held box is as
+    thick as it is (theory.md M5). Their plan sides are not mesh edges (embedding them made
+    gmsh fail next to the refinement zones)."""
+    from fe3d.case.geology import point_in_polygon
+
+    verts = case.outline()[0]
+    out = []
+    for s in case.sources:
+        if s.shape != "box" or s.x is None or s.y is None or s.z is None:
+            continue
+        (x0, x1), (y0, y1) = s.x, s.y
+        e = 1e-3  # [m]: a box touching the outline is left as it is
+        corners = ((x0 - e, y0 - e), (x1 + e, y0 - e), (x1 + e, y1 + e), (x0 - e, y1 + e))
+        if x1 > x0 and y1 > y0 and all(point_in_polygon(x, y, verts, tol=0.0)
+                                       for x, y in corners):
+            out.append((s.x, s.y, s.z))
+    return out
+
+
+@dataclass(frozen=True)
+class BoxLevel:
+    """A cell level through a source box's top or base: the unit and level fraction it
+    takes (at the mean over the plan nodes ``inside`` the box), and the elevation [m] the
+    level is moved to at those nodes."""
+
+    unit: int
+    fraction: float
+    elevation: float
+    inside: np.ndarray
+
+
+def _box_levels(boxes: list[tuple[tuple[float, float], ...]], xy: FloatArray,
+                surfaces: list[FloatArray]) -> list[BoxLevel]:
+    """The cell levels through each box's top and base (:class:`BoxLevel`)."""
+    needs: list[BoxLevel] = []
+    for (x0, x1), (y0, y1), zs in boxes:
+        inside = (xy[0] >= x0 - 1e-9) & (xy[0] <= x1 + 1e-9) & (xy[1] >= y0 - 1e-9) & \
+            (xy[1] <= y1 + 1e-9)
+        if not inside.any():
+            continue
+        for ze in zs:
+            for k in range(len(surfaces) - 1):
+                t, b = surfaces[k][inside], surfaces[k + 1][inside]
+                live = t > b
+                if live.any() and np.all((b[live] - 1e-9 <= ze) & (ze <= t[live] + 1e-9)):
+                    f = float(np.mean((t[live] - ze) / (t[live] - b[live])))
+                    if 1e-6 < f < 1 - 1e-6:
+                        needs.append(BoxLevel(k, f, float(ze), inside))
+                    break
+    return needs
+
+
+def _fit_boxes(z: FloatArray, level_frac: list[tuple[int, float]],
+               levels: list[BoxLevel]) -> FloatArray:
+    """Move each box level to the box's own elevation at the plan nodes inside it, where
+    that keeps the levels above and below in order (row i + 1 of ``z`` is level i)."""
+    for lv in levels:
+        if (lv.unit, lv.fraction) not in level_frac:
+            continue
+        r = level_frac.index((lv.unit, lv.fraction)) + 1
+        ok = lv.inside & (z[r - 1] > lv.elevation)
+        if r + 1 < z.shape[0]:
+            ok &= z[r + 1] < lv.elevation
+        z[r, ok] = lv.elevation
+    return z
 
 
 def _lens_nodes(case: Case, xy: FloatArray, tri: IndexArray, surfaces: list[FloatArray],

@@ -23,9 +23,6 @@ TINY_TEXT = (ROOT / "cases" / "tiny" / "case.toml").read_text(encoding="utf-8")
 LOW_STREAM = ('[[head_dependent]]\nname = "brook"\nkind = "stream"\nstage = "3.5 m"\n'
               'leakance = "1 d^-1"\nzone = [["40 m", "0 m"], ["60 m", "0 m"], ["60 m", "20 m"],'
               ' ["40 m", "20 m"]]\n')
-THIN_SOURCE = ('[[sources]]\nname = "puddle"\nspecies = "tracer"\nshape = "box"\n'
-               'concentration = "1 mg/L"\nx = ["20 m", "24 m"]\ny = ["8 m", "12 m"]\n'
-               'z = ["3.2 m", "3.4 m"]\nstop = "10 d"\n')
 
 
 def _check(tmp_path: Path, text: str, capsys: pytest.CaptureFixture[str],
@@ -39,14 +36,13 @@ def _check(tmp_path: Path, text: str, capsys: pytest.CaptureFixture[str],
 
 
 def test_check_reports_every_mesh_rule_one_line_each(tmp_path, capsys, monkeypatch):
-    code, lines = _check(tmp_path, TINY_TEXT + LOW_STREAM + THIN_SOURCE, capsys, monkeypatch)
+    """(A thin source box was the second rule here; boxes now get cell levels through their
+    top and base, theory.md M5, so a thin box always holds nodes.)"""
+    code, lines = _check(tmp_path, TINY_TEXT + LOW_STREAM, capsys, monkeypatch)
     assert code == 2
     assert lines == [
         "error: head_dependent[brook].stage = '3.5 m': must not lie below the bottom of the "
-        "top cells under the zone (4 m)",
-        "error: sources[puddle] = 'box: x [20.0, 24.0] m, y [8.0, 12.0] m, z [3.2, 3.4] m': "
-        "must contain at least one mesh node; enlarge it or set a smaller "
-        "mesh.fine_cell_size / mesh.layer_cell_thickness"]
+        "top cells under the zone (4 m)"]
     assert [p.name for p in tmp_path.iterdir()] == ["pellet.toml"]  # check writes nothing
 
 
@@ -81,7 +77,9 @@ def test_check_applies_the_rules_to_the_corridor_mesh_a_run_builds(tmp_path, cap
     ending higher up), and the run would refuse the stage on that mesh. ``check`` must
     refuse it too, naming the corridor mesh's floor."""
     text = TINY_TEXT.replace('layer_cell_thickness = "1 m"', 'layer_cell_thickness = "2.5 m"')
-    assert text != TINY_TEXT
+    # the spill box through the whole sand: no cell level of its own (theory.md M5)
+    text = text.replace('z = ["2 m", "4 m"]', 'z = ["2 m", "5 m"]')
+    assert text.count('"2.5 m"') == 1 and 'z = ["2 m", "5 m"]' in text
     case = parse_case(text + LOW_STREAM)
     assert mesh_rule_problems(case, build_mesh(case)) == []  # the mesh as written passes
     code, lines = _check(tmp_path, text + LOW_STREAM, capsys, monkeypatch)
