@@ -196,7 +196,7 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool, overwrite: bool,
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
     from rich.table import Table
 
-    from fe3d.pipeline import run_case
+    from fe3d.pipeline import StageClock, run_case
     from fe3d.post.report import CAUTION, quality_warnings
     from fe3d.units import from_si
 
@@ -215,7 +215,8 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool, overwrite: bool,
             bar.update(task, description=stage, completed=done / total if total else 0,
                        info=info)
 
-        summary = run_case(case, folder, progress=progress,
+        clock = StageClock(progress)
+        summary = run_case(case, folder, progress=clock.tell,
                            base_dir=case_path.resolve().parent,
                            mesh_folders=[_default_mesh_folder(case_path)],
                            overwrite=overwrite, force=force, inputs=[case_path])
@@ -242,6 +243,7 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool, overwrite: bool,
                   "(advective, without sorption)")
     for name, h in summary.well_heads.items():
         con.print(f"head in well {name}: {h:.3f} m")
+    con.print(f"time per stage: {clock.words()}", markup=False, highlight=False)
     con.print(f"flow budget discrepancy {summary.flow_discrepancy:.1e}; results in {folder}/")
     for w in quality_warnings(summary):
         con.print(f"[yellow]warning:[/yellow] {w}", markup=True, highlight=False)

@@ -30,8 +30,8 @@ from fe3d.reactions.kinetics import user_kinetics
 from fe3d.run_size import check_fits, estimate_mesh_size, estimate_run
 from fe3d.transport.run import run_transport
 
-__all__ = ["check_case", "estimate_mesh_size", "mesh_and_flow", "mesh_case", "plume_corridor",
-           "run_case"]
+__all__ = ["StageClock", "check_case", "estimate_mesh_size", "mesh_and_flow", "mesh_case",
+           "plume_corridor", "run_case"]
 
 logger = logging.getLogger(__name__)
 
@@ -169,7 +169,8 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     is used as it is (no corridor pass, no cache): a mesh shared by the members of a study.
     """
     started = time.perf_counter()
-    tell = progress or (lambda _s, _d, _t: None)
+    clock = StageClock(progress)
+    tell = clock.tell
     out_dir.mkdir(parents=True, exist_ok=True)
     tell("mesh", 0, 1)
     # reuse a mesh cached (run folder first) when the mesh inputs and corridor are unchanged
@@ -191,7 +192,36 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     except BaseException:
         writer.close()  # the output times written so far stay readable
         raise
-    return writer.finish(flow, paths, files, started)
+    tell("outputs", 0, 1)
+    summary = writer.finish(flow, paths, files, started)
+    logger.info("time per stage: %s", clock.words())
+    return summary
+
+
+class StageClock:
+    """Passes progress on and times each stage [s] (wall clock) from its first report to
+    the next stage's."""
+
+    def __init__(self, progress: Progress | None) -> None:
+        self.progress = progress
+        self.spent: dict[str, float] = {}
+        self._stage: str | None = None
+        self._since = time.perf_counter()
+
+    def tell(self, stage: str, done: float, total: float) -> None:
+        if stage != self._stage:
+            now = time.perf_counter()
+            if self._stage is not None:
+                self.spent[self._stage] = self.spent.get(self._stage, 0.0) + now - self._since
+            self._stage, self._since = stage, now
+        if self.progress is not None:
+            self.progress(stage, done, total)
+
+    def words(self) -> str:
+        """The stages so far and their times, the running one included."""
+        running = {} if self._stage is None else {
+            self._stage: self.spent.get(self._stage, 0.0) + time.perf_counter() - self._since}
+        return ", ".join(f"{k} {v:.1f} s" for k, v in {**self.spent, **running}.items())
 
 
 def mesh_case(case: Case, out_dir: Path, *, base_dir: Path | None = None,

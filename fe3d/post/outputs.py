@@ -217,7 +217,15 @@ class SeriesWriter:
             self.figures.add(k, snap.time, snap.concentration, {
                 r.species: (r.measures.volume, r.measures.dissolved_mass)
                 for r in self.plume_rows if r.time == snap.time})
+        self._write_histories(snap)  # every step so far: a run that stops keeps them
         self.last = snap
+
+    def _write_histories(self, snap: Snapshot) -> None:
+        """``histories.csv`` with every step up to ``snap`` (rewritten atomically)."""
+        write_histories(self.out_dir / "histories.csv", snap.history_times, snap.history,
+                        [o.name for o in self.case.observation_points],
+                        time_unit=self.case.output.time_unit,
+                        conc_unit=self.case.output.concentration_unit)
 
     def close(self) -> None:
         """Close the series file with the output times added so far (a run that stops
@@ -275,9 +283,7 @@ class SeriesWriter:
             self._waiting = []
         tu, cu = case.output.time_unit, case.output.concentration_unit
         self._write_run_fields()
-        names = [o.name for o in case.observation_points]
-        write_histories(out / "histories.csv", last.history_times, last.history, names,
-                        time_unit=tu, conc_unit=cu)
+        names = [o.name for o in case.observation_points]  # histories.csv: written by add
         limits = {sp: s.limit for sp, s in case.species.items()}
         files = list(files)
         if names and self.full_outputs:

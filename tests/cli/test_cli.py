@@ -222,6 +222,10 @@ def test_run_writes_every_output(tiny_run: tuple[Path, str]) -> None:
     assert (out / "breakthrough.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert flat(CAUTION) in flat(stdout)
     log = (out / "solver.log").read_text(encoding="utf-8")
+    # where the time went (issue 16): printed and logged, every stage named
+    for text in (flat(stdout), log):
+        assert re.search(r"time per stage: mesh [\d.]+ s, flow [\d.]+ s, travel paths "
+                         r"[\d.]+ s, transport [\d.]+ s, outputs [\d.]+ s", text), text[-300:]
     # every step is logged with the most negative concentration and where it is
     assert "step 1: t = " in log
     assert "tracer min " in log and " at (" in log
@@ -262,6 +266,9 @@ def test_a_run_that_fails_in_transport_keeps_its_earlier_outputs(tmp_path: Path)
         values = vtk_to_numpy(reader.GetOutput().GetPointData().GetArray("tracer [mg per L]"))
         assert np.all(np.isfinite(values)), k
     assert "step 1: t = " in (out / "solver.log").read_text(encoding="utf-8")
+    # the histories up to the last output time before the failure were written as it ran
+    rows = (out / "histories.csv").read_text(encoding="utf-8").strip().splitlines()
+    assert len(rows) >= 2 and rows[0].startswith("time [")
 
 
 # columns that hold names, not quantities
