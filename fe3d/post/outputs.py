@@ -54,6 +54,7 @@ from fe3d.post.run_fields import RunWideField
 from fe3d.post.run_figures import PlumeFigures, write_head_figure
 from fe3d.post.series import SERIES_FILE, SeriesFile
 from fe3d.post.tables import (
+    append_histories,
     write_flow_budget,
     write_histories,
     write_mass_budget,
@@ -157,6 +158,7 @@ class SeriesWriter:
         self.budgets: list[MassBudget] = []
         self.last: Snapshot | None = None
         self.over_run = {sp: RunWideField.start(site.n_nodes) for sp in case.species}
+        self.history_rows = 0  # rows of histories.csv written so far
         self.series_file = SeriesFile(
             out_dir / SERIES_FILE, site.points, site.cells,
             static_point_data=None if flow is None else {"head [m]": flow.head},
@@ -221,11 +223,18 @@ class SeriesWriter:
         self.last = snap
 
     def _write_histories(self, snap: Snapshot) -> None:
-        """``histories.csv`` with every step up to ``snap`` (rewritten atomically)."""
-        write_histories(self.out_dir / "histories.csv", snap.history_times, snap.history,
-                        [o.name for o in self.case.observation_points],
-                        time_unit=self.case.output.time_unit,
-                        conc_unit=self.case.output.concentration_unit)
+        """``histories.csv`` up to ``snap``: begun at the first output time, then only the
+        new steps appended (no rewriting of what is there)."""
+        path, names = self.out_dir / "histories.csv", self.case.observation_points
+        units = {"time_unit": self.case.output.time_unit,
+                 "conc_unit": self.case.output.concentration_unit}
+        if self.history_rows == 0:
+            write_histories(path, snap.history_times, snap.history, [o.name for o in names],
+                            **units)
+        else:
+            append_histories(path, snap.history_times, snap.history, len(names),
+                             start=self.history_rows, **units)
+        self.history_rows = len(snap.history_times)
 
     def close(self) -> None:
         """Close the series file with the output times added so far (a run that stops

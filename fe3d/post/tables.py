@@ -15,8 +15,8 @@ from fe3d.post.receptors import ReceptorRow
 from fe3d.transport.budget import MassBudget
 from fe3d.units import from_si
 
-__all__ = ["csv_text", "write_flow_budget", "write_histories", "write_mass_budget",
-           "write_plume_table", "write_receptor_table"]
+__all__ = ["append_histories", "csv_text", "history_rows", "write_flow_budget",
+           "write_histories", "write_mass_budget", "write_plume_table", "write_receptor_table"]
 
 
 def csv_text(header: list[str], rows: list[list[object]]) -> str:
@@ -37,12 +37,30 @@ def write_histories(path: Path, times: FloatArray, history: dict[str, FloatArray
     """One row per time step; one column per observation point and species."""
     header = [f"time [{time_unit}]"] + [f"{o} {sp} [{conc_unit}]" for sp in history
                                         for o in names]
-    scale = from_si(1.0, conc_unit)
-    rows = [[_g(from_si(t, time_unit))] + [_g(history[sp][i, j] * scale) for sp in history
-                                           for j in range(len(names))]
-            for i, t in enumerate(times)]
+    rows = history_rows(times, history, len(names), time_unit=time_unit, conc_unit=conc_unit)
     write_text_atomic(path, csv_text(header, rows))
     return path
+
+
+def append_histories(path: Path, times: FloatArray, history: dict[str, FloatArray],
+                     n_points: int, *, start: int, time_unit: str, conc_unit: str) -> None:
+    """Append the rows from step ``start`` on to a ``histories.csv`` that
+    :func:`write_histories` began (the same columns and number format)."""
+    rows = history_rows(times, history, n_points, time_unit=time_unit, conc_unit=conc_unit,
+                        start=start)
+    text = csv_text([], rows)
+    with path.open("a", encoding="utf-8") as fh:
+        fh.write(text[text.index("\n") + 1:])  # csv_text's empty header line dropped
+        fh.flush()
+
+
+def history_rows(times: FloatArray, history: dict[str, FloatArray], n_points: int, *,
+                 time_unit: str, conc_unit: str, start: int = 0) -> list[list[object]]:
+    """The rows of ``histories.csv`` from step ``start`` on, in display units."""
+    scale = from_si(1.0, conc_unit)
+    return [[_g(from_si(t, time_unit))] + [_g(history[sp][i, j] * scale) for sp in history
+                                           for j in range(n_points)]
+            for i, t in enumerate(times) if i >= start]
 
 
 def write_mass_budget(path: Path, budgets: list[MassBudget], *, time_unit: str) -> Path:

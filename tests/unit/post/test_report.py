@@ -177,3 +177,22 @@ def test_summary_json_writes_an_infinite_number_as_null(tmp_path):
     path = write_summary_json(tmp_path / "summary.json", s)
     assert json.loads(path.read_text(encoding="utf-8"))["max_grid_peclet"] == {"x": None}
     assert any("Péclet" in w for w in quality_warnings(s))
+
+
+def test_histories_appended_step_by_step_equal_one_write(tmp_path):
+    """histories.csv begun at the first output time and appended later (a run that stops
+    keeps what it had) is the file one write of every step gives, byte for byte
+    (behaviour requirement of issue 15, no outside reference)."""
+    from fe3d.post.tables import append_histories, write_histories
+
+    rng = np.random.default_rng(3)
+    times = np.linspace(0.0, 9.0 * 86400.0, 10)
+    history = {"a": rng.random((10, 2)) * 1e-3, "b": rng.random((10, 2)) * 1e-3}
+    names, units = ["P", "Q"], {"time_unit": "d", "conc_unit": "mg/L"}
+    whole, parts = tmp_path / "whole.csv", tmp_path / "parts.csv"
+    write_histories(whole, times, history, names, **units)
+    write_histories(parts, times[:4], {k: v[:4] for k, v in history.items()}, names, **units)
+    append_histories(parts, times[:7], {k: v[:7] for k, v in history.items()}, 2, start=4,
+                     **units)
+    append_histories(parts, times, history, 2, start=7, **units)
+    assert parts.read_bytes() == whole.read_bytes()
