@@ -164,7 +164,8 @@ def comparison_markdown(c: Comparison, folders: Sequence[Path]) -> str:
                   + " | ".join(_text(v, _present(c, r, k)) for k, v in enumerate(r.values))
                   + " |" for r in mine]
         lines.append("")
-    lines += ["Receptor values are taken at the output times; observation points at every "
+    lines += ["Receptor values are taken at every time step, or at the output times in "
+              "runs that did not sample them at every step; observation points at every "
               "time step. \"share of the mass leaving the model\" is the receptor's part of "
               "all the mass of its species that left through wells and outflow boundaries "
               "by the end of the run.", ""]

@@ -40,8 +40,8 @@ LIMITS = (
     "The flow is steady: seasonal and pumping changes of the flow are not followed.",
     "Concentrations below the mesh and time resolution (thin layers, short pulses) are "
     "smoothed; the quality checks above say where this may matter.",
-    "Crossing times are interpolated between stored times; a peak between output times is "
-    "missed by the receptor table.",
+    "Crossing times are interpolated between stored times (every time step, or the output "
+    "times where a table says so, and then a peak between two output times is missed).",
     "Compare every value with the limits and procedures that apply at the site; local "
     "regulations and licensed professional practice decide.",
 )
@@ -316,8 +316,9 @@ def handover_sections(run: RunResult) -> tuple[Section, ...]:
         Section("What leaves the model: extraction wells and outflow boundaries", (
             receptor_table(run),
             Text("The concentration is that of the water leaving, weighted by the flow at "
-                 "each node: for a well, what it pumps. Values are taken at the output "
-                 "times, recomputed here from `receptors.csv`."))),
+                 "each node: for a well, what it pumps. Values are taken at "
+                 + ("every time step" if run.receptors_every_step else "the output times")
+                 + ", recomputed here from `receptors.csv`."))),
         Section("Observation points", (
             _observation_table(run),
             Text("Every time step, recomputed here from `histories.csv`."))),

@@ -15,6 +15,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from scipy.sparse import csr_matrix
 
 from fe3d._typing import FloatArray
 from fe3d.case.parts import Ground
@@ -46,6 +47,7 @@ from fe3d.post.receptors import (
     Receptor,
     ReceptorResult,
     ReceptorRow,
+    receptor_operator,
     receptor_result,
     receptors_of,
 )
@@ -67,22 +69,24 @@ from fe3d.transport.run import Snapshot
 from fe3d.units import from_si, to_seconds
 
 __all__ = ["RUN_FIELDS", "SERIES_FILE", "PlumeRow", "SeriesWriter", "flow_cell_data",
-           "method_words", "write_flow_outputs"]
+           "flow_point_data", "method_words", "write_flow_outputs"]
 
 #: The file of the fields over the whole run (theory.md O4).
 RUN_FIELDS = "over_the_run.vtu"
 
 
 def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField,
-                       paths: TravelPaths, *, figures: bool = True) -> list[str]:
+                       paths: TravelPaths, *, figures: bool = True,
+                       drawdown: FloatArray | None = None) -> list[str]:
     """``flow_budget.csv``, the forward and backward pathlines, the head on the top face
-    (``heads_plan.png``) and the head map with capture zones (``head_map.png``; not without
-    ``figures``), and with ``output.vtu_series`` ``flow.vtu`` (head, Darcy flux, seepage
+    (``heads_plan.png``) and the head map with capture zones and the contours of
+    ``drawdown`` [m] per node when given (``head_map.png``; not without ``figures``), and
+    with ``output.vtu_series`` ``flow.vtu`` (head and drawdown in m, Darcy flux, seepage
     velocity, conductivity in m/d; else they are in the series file); returns the names of
     the files written."""
     names = ["flow_budget.csv", "pathlines_forward.vtp", "pathlines_backward.vtp"]
     if case.output.vtu_series:
-        write_field(site, out_dir / "flow.vtu", point_data={"head [m]": flow.head},
+        write_field(site, out_dir / "flow.vtu", point_data=flow_point_data(flow, drawdown),
                     cell_data=flow_cell_data(flow))
         names.insert(0, "flow.vtu")
     write_flow_budget(out_dir / "flow_budget.csv", flow)
@@ -108,7 +112,13 @@ def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowFiel
                title=f"{case.site or case.title}: head on the top face",
                corridor=None if site.report is None else site.report.corridor)
     return [*names, "heads_plan.png",
-            *write_head_figure(out_dir, case, site, flow, paths, head_unit="m")]
+            *write_head_figure(out_dir, case, site, flow, paths, head_unit="m",
+                               drawdown=drawdown)]
+
+
+def flow_point_data(flow: FlowField, drawdown: FloatArray | None) -> dict[str, FloatArray]:
+    """The flow's nodal arrays [m]: the head, and the drawdown of the wells when given."""
+    return {"head [m]": flow.head, **({} if drawdown is None else {"drawdown [m]": drawdown})}
 
 
 def flow_cell_data(flow: FlowField) -> dict[str, FloatArray]:
@@ -137,11 +147,27 @@ class SeriesWriter:
 
     ``porosity`` is per cell. The plume measures and the receptors need the flow (the mean
     flow direction, the water leaving each item): pass ``flow`` to measure each snapshot as
-    it arrives; without it the snapshots are kept and measured in :meth:`finish`."""
+    it arrives; without it the snapshots are kept and measured in :meth:`finish`.
+    ``drawdown`` [m] per node (:func:`fe3d.flow.drawdown.well_drawdown`) is stored with the
+    head in the series file.
+
+    With ``receptors_every_step`` (needs ``flow``) the transport samples the receptors at
+    every time step: it was given :attr:`receptor_probe` under its observation rows, so
+    each history has one column per observation point, then one per receptor (its
+    flux-averaged concentration). ``receptors.csv`` and the receptor results then hold
+    every step, not only the output times."""
 
     def __init__(self, out_dir: Path, case: Case, site: SiteMesh, porosity: FloatArray, *,
-                 flow: FlowField | None = None, figures: bool = True) -> None:
+                 flow: FlowField | None = None, figures: bool = True,
+                 drawdown: FloatArray | None = None, receptors_every_step: bool = False,
+                 ) -> None:
+        if receptors_every_step and flow is None:
+            msg = "receptors_every_step needs the flow (the receptors come from it)"
+            raise ValueError(msg)
         self.out_dir, self.case, self.site = out_dir, case, site
+        self.receptors_every_step = receptors_every_step
+        self.receptor_steps = 0  # history rows already turned into receptor rows
+        self.receptor_rows_written = 0  # rows of receptors.csv written so far
         self.porosity = porosity
         materials, names = unit_materials(Ground.of(case), site)
         bulk_density = cell_values(materials, site, "bulk_density")
@@ -161,7 +187,7 @@ class SeriesWriter:
         self.history_rows = 0  # rows of histories.csv written so far
         self.series_file = SeriesFile(
             out_dir / SERIES_FILE, site.points, site.cells,
-            static_point_data=None if flow is None else {"head [m]": flow.head},
+            static_point_data=None if flow is None else flow_point_data(flow, drawdown),
             static_cell_data={"unit_id": site.cell_layer.astype(np.int32),
                               **({} if flow is None else flow_cell_data(flow))},
             time_unit=case.output.time_unit)
@@ -183,6 +209,12 @@ class SeriesWriter:
         self.frames = measuring_frames(self.case, self.site, flow)
         self.receptors = receptors_of(self.site, flow)
         self._flow_known = True
+
+    @property
+    def receptor_probe(self) -> csr_matrix:
+        """Rows that sample each receptor's flux-averaged concentration from a nodal
+        field, shape ``(n_receptors, n_nodes)``, in the order of the receptor columns."""
+        return receptor_operator(self.receptors, self.site.n_nodes)
 
     def add(self, snap: Snapshot) -> None:
         """Write one output time: the fields, the plume surfaces and the running tables."""
@@ -249,19 +281,40 @@ class SeriesWriter:
             self.plume_rows.append(PlumeRow(sp, snap.time, lim, measure_plume(
                 site.points, site.cells, site.cell_volumes(), self.porosity, self.sorbed[sp],
                 c, lim, self.frames[sp])))
-            for r in self.receptors:
-                self.receptor_rows.append(ReceptorRow(
-                    receptor=r.name, kind=r.kind, species=sp, time=snap.time,
-                    water_rate=r.water_rate, concentration=r.flux_averaged(c),
-                    mass_flux=r.mass_flux(c),
-                    mass_out=snap.budgets[sp].outflow.get(r.name, float("nan"))))
+        new = self._receptor_rows(snap)
+        self.receptor_rows += new
         tu, cu = case.output.time_unit, case.output.concentration_unit
         write_plume_table(self.out_dir / "plume.csv",
                           [(r.species, r.time, r.limit, r.measures) for r in self.plume_rows],
                           time_unit=tu, conc_unit=cu)
-        if self.receptors:
-            write_receptor_table(self.out_dir / "receptors.csv", self.receptor_rows,
-                                 time_unit=tu, conc_unit=cu)
+        if self.receptors:  # begun at the first output time, then only new rows appended
+            write_receptor_table(self.out_dir / "receptors.csv", new, time_unit=tu,
+                                 conc_unit=cu, append=self.receptor_rows_written > 0)
+            self.receptor_rows_written += len(new)
+
+    def _receptor_rows(self, snap: Snapshot) -> list[ReceptorRow]:
+        """The receptors' rows that ``snap`` adds: every time step since the last snapshot
+        (from the receptor columns of the histories) or, without them, the output time; the
+        mass out since the start is the budget's, at the output time only (NaN between)."""
+        n_obs = len(self.case.observation_points)
+        start = self.receptor_steps if self.receptors_every_step else 0
+        times = snap.history_times[start:] if self.receptors_every_step else \
+            np.array([snap.time])
+        self.receptor_steps = len(snap.history_times)
+        rows = []
+        for species, c in snap.concentration.items():
+            outflow = snap.budgets[species].outflow
+            for k, r in enumerate(self.receptors):
+                values = snap.history[species][start:, n_obs + k] \
+                    if self.receptors_every_step else [r.flux_averaged(c)]
+                last = len(times) - 1
+                rows += [ReceptorRow(
+                    receptor=r.name, kind=r.kind, species=species, time=float(t),
+                    water_rate=r.water_rate, concentration=float(v),
+                    mass_flux=r.water_rate * float(v),
+                    mass_out=outflow.get(r.name, np.nan) if i == last else np.nan)
+                    for i, (t, v) in enumerate(zip(times, values, strict=True))]
+        return rows
 
     def _follow_extremes(self, snap: Snapshot) -> None:
         """Note between which output times each running extreme was last reached."""

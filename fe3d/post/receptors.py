@@ -12,10 +12,10 @@ integral ∫(q·n)⁺ c dS of the P1 field) and its flux-averaged concentration 
 
 from __future__ import annotations
 
-import itertools
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.sparse as sp
 
 from fe3d._typing import FloatArray
 from fe3d.flow.solve import FlowField
@@ -23,8 +23,8 @@ from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import BoundaryFacets
 from fe3d.post.probes import breakthrough
 
-__all__ = ["Receptor", "ReceptorResult", "ReceptorRow", "receptor_result", "receptors_of",
-           "time_above"]
+__all__ = ["Receptor", "ReceptorResult", "ReceptorRow", "receptor_operator", "receptor_result",
+           "receptors_of", "time_above"]
 
 
 @dataclass(frozen=True)
@@ -67,11 +67,22 @@ def receptors_of(site: SiteMesh, flow: FlowField) -> tuple[Receptor, ...]:
     return tuple(r for r in out if r.water_rate > 0.0)
 
 
+def receptor_operator(receptors: tuple[Receptor, ...], n_nodes: int) -> sp.csr_matrix:
+    """Rows that give each receptor's flux-averaged concentration [kg/m³] from a nodal
+    concentration: row k is ``water_out / water_rate`` of receptor k, shape
+    ``(len(receptors), n_nodes)``. Stacked under the observation rows of the transport, it
+    samples every receptor at every time step (theory.md O3)."""
+    if not receptors:
+        return sp.csr_matrix((0, n_nodes))
+    return sp.csr_matrix(np.vstack([r.water_out / r.water_rate for r in receptors]))
+
+
 @dataclass(frozen=True)
 class ReceptorRow:
-    """One receptor and species at one output time (SI units): water leaving [m³/s], its
+    """One receptor and species at one time (SI units): water leaving [m³/s], its
     flux-averaged concentration [kg/m³], the mass flux [kg/s] and the mass carried out since
-    the start [kg] (the transport's own cumulative outflow term, T9)."""
+    the start [kg] (the transport's own cumulative outflow term, T9; NaN at a time step
+    between output times, where the budget is not taken)."""
 
     receptor: str
     kind: str
@@ -89,7 +100,8 @@ class ReceptorResult:
 
     ``peak`` [kg/m³] and ``peak_time`` [s] of the flux-averaged concentration; the first and
     last times above the ``limit`` [s] (None: not reached) and the total time above it [s],
-    crossing times interpolated linearly between output times; ``water_rate`` [m³/s];
+    crossing times interpolated linearly between the stored times (every time step when the
+    transport sampled the receptors, else the output times); ``water_rate`` [m³/s];
     ``mass_out`` [kg] carried out by the end; ``peak_mass_flux`` [kg/s]."""
 
     name: str
@@ -110,20 +122,19 @@ def time_above(times: FloatArray, values: FloatArray, limit: float) -> float:
     """Total time [s] the piecewise-linear series ``values`` (at ``times``) spends above
     ``limit``: every interval counted in full, in part (from or to the interpolated
     crossing) or not at all."""
-    total = 0.0
-    for (t0, t1), (c0, c1) in zip(itertools.pairwise(times), itertools.pairwise(values),
-                                  strict=True):
-        if c0 > limit and c1 > limit:
-            total += t1 - t0
-        elif c0 > limit or c1 > limit:
-            share = (max(c0, c1) - limit) / abs(c1 - c0)
-            total += share * (t1 - t0)
+    t, c = np.asarray(times, dtype=float), np.asarray(values, dtype=float)
+    dt, c0, c1 = np.diff(t), c[:-1], c[1:]
+    above0, above1 = c0 > limit, c1 > limit
+    crossing = above0 != above1
+    share = np.where(crossing, (np.maximum(c0, c1) - limit)
+                     / np.where(crossing, np.abs(c1 - c0), 1.0), 0.0)
+    total = np.sum(dt * (above0 & above1)) + np.sum(dt * share)
     return float(total)
 
 
 def receptor_result(rows: list[ReceptorRow], limit: float) -> ReceptorResult:
-    """Peak, crossing times, time above ``limit`` and mass out from one receptor's rows
-    for one species, in time order."""
+    """Peak, crossing times, time above ``limit`` and mass out (the last row's) from one
+    receptor's rows for one species, in time order."""
     times = np.array([r.time for r in rows])
     conc = np.array([r.concentration for r in rows])
     b = breakthrough(times, conc, limit)

@@ -49,17 +49,18 @@ def head_map_elevation(case: Case, site: SiteMesh) -> float:
 
 def write_head_figure(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField,
                       paths: TravelPaths, *, head_unit: str = "m",
-                      head_without_pumping: FloatArray | None = None) -> list[str]:
+                      drawdown: FloatArray | None = None) -> list[str]:
     """``head_map.png``: the head at :func:`head_map_elevation` in ``head_unit``, forward
     and backward pathlines, each extraction well's capture zone within the run's end time,
-    and the drawdown when ``head_without_pumping`` [m] (per node) is given. Returns the
-    names of the files written."""
+    and the contours of ``drawdown`` [m] (per node, ``(n_nodes,)``, from
+    :func:`fe3d.flow.drawdown.well_drawdown`) when it is given and a well pumps. Returns
+    the names of the files written."""
     elevation = head_map_elevation(case, site)
     plan = horizontal_section(site.points, site.cells, flow.head, elevation)
-    drawdown = None
-    if head_without_pumping is not None:
-        drawdown = horizontal_section(site.points, site.cells,
-                                      head_without_pumping - flow.head, elevation)
+    pumping = any(w.kind != "observation" and w.rate > 0 for w in case.wells)
+    drawn = None
+    if drawdown is not None and pumping:
+        drawn = horizontal_section(site.points, site.cells, drawdown, elevation)
     tu = case.output.time_unit
     plot_head_map(out_dir / "head_map.png", plan, features=site_features(case),
                   elevation=elevation, head_unit=head_unit,
@@ -67,8 +68,7 @@ def write_head_figure(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField
                   backward={w: [p.points for p in lines] for w, lines in paths.backward.items()},
                   wells={w.name: (w.x, w.y) for w in case.wells},
                   capture_time=_quantity(case.time.end, tu),
-                  drawdown=drawdown,
-                  pumping=any(w.kind == "extraction" and w.rate > 0 for w in case.wells))
+                  drawdown=drawn, pumping=pumping)
     return ["head_map.png"]
 
 

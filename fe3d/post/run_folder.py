@@ -57,9 +57,10 @@ class PointHistory:
 @dataclass(frozen=True)
 class ReceptorHistory:
     """A place where water leaves (extraction well, outflow face, stream) and one species at
-    the output times ``times`` [s]: water leaving [m³/s], its flux-averaged concentration
+    the times ``times`` [s] (every time step, or the output times in runs that did not
+    sample receptors at every step): water leaving [m³/s], its flux-averaged concentration
     [kg/m³] (for a well, that of the water pumped), mass flux [kg/s] and mass carried out
-    since the start [kg], each ``(n_t,)``."""
+    since the start [kg] (NaN between output times), each ``(n_t,)``."""
 
     name: str
     kind: str
@@ -168,6 +169,13 @@ class RunResult:
         """Peak, crossing times, time above the limit and mass out of every receptor and
         species, recomputed from ``receptors.csv`` (SI units)."""
         return tuple(receptor_result(r.rows(), self.limit(r.species)) for r in self.receptors)
+
+    @property
+    def receptors_every_step(self) -> bool:
+        """Whether ``receptors.csv`` holds every time step (more times than the output
+        times of ``plume.csv``), not only the output times."""
+        outputs = max((p.times.size for p in self.plume), default=0)
+        return any(r.times.size > outputs for r in self.receptors)
 
     def mass_out_share(self, result: ReceptorResult) -> float:
         """The receptor's share of the mass of its species that left the model through

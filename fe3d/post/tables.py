@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import csv
 import io
+import math
 from pathlib import Path
 
 from fe3d._typing import FloatArray
@@ -46,8 +47,12 @@ def append_histories(path: Path, times: FloatArray, history: dict[str, FloatArra
                      n_points: int, *, start: int, time_unit: str, conc_unit: str) -> None:
     """Append the rows from step ``start`` on to a ``histories.csv`` that
     :func:`write_histories` began (the same columns and number format)."""
-    rows = history_rows(times, history, n_points, time_unit=time_unit, conc_unit=conc_unit,
-                        start=start)
+    _append_rows(path, history_rows(times, history, n_points, time_unit=time_unit,
+                                    conc_unit=conc_unit, start=start))
+
+
+def _append_rows(path: Path, rows: list[list[object]]) -> None:
+    """Append CSV ``rows`` to the end of ``path`` (one write, then flushed)."""
     text = csv_text([], rows)
     with path.open("a", encoding="utf-8") as fh:
         fh.write(text[text.index("\n") + 1:])  # csv_text's empty header line dropped
@@ -124,16 +129,21 @@ def write_plume_table(path: Path, rows: list[tuple[str, float, float, PlumeMeasu
 
 
 def write_receptor_table(path: Path, rows: list[ReceptorRow], *, time_unit: str,
-                         conc_unit: str) -> Path:
-    """Per receptor (well or boundary where water leaves), species and output time: the
-    water leaving [m³/d], its flux-averaged concentration, the mass flux [kg/d] and the mass
-    carried out since the start [kg] (theory.md O3)."""
+                         conc_unit: str, append: bool = False) -> Path:
+    """Per receptor (well or boundary where water leaves), species and time: the water
+    leaving [m³/d], its flux-averaged concentration, the mass flux [kg/d] and the mass
+    carried out since the start [kg] (theory.md O3; blank where not taken). With
+    ``append``, ``rows`` are added at the end of a table this function began (no header,
+    nothing rewritten)."""
     scale, day = from_si(1.0, conc_unit), 86400.0
     out = [[r.receptor, r.kind, r.species, _g(from_si(r.time, time_unit)),
             _g(r.water_rate * day), _g(r.concentration * scale), _g(r.mass_flux * day),
-            _g(r.mass_out)] for r in rows]
+            "" if math.isnan(r.mass_out) else _g(r.mass_out)] for r in rows]
     header = ["receptor", "kind", "species", f"time [{time_unit}]", "water out [m3/d]",
               f"flux-averaged concentration [{conc_unit}]", "mass flux [kg/d]",
               "mass out since start [kg]"]
-    write_text_atomic(path, csv_text(header, out))
+    if append:
+        _append_rows(path, out)
+    else:
+        write_text_atomic(path, csv_text(header, out))
     return path

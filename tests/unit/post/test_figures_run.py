@@ -18,6 +18,7 @@ from PIL import Image
 
 from fe3d.case.load import parse_case
 from fe3d.case.parts import FlowInputs, TravelInputs
+from fe3d.flow.drawdown import well_drawdown
 from fe3d.flow.paths import travel_paths
 from fe3d.flow.solve import solve_flow
 from fe3d.mesh.build import build_mesh
@@ -53,7 +54,10 @@ def _png(path: Path) -> None:
 def test_run_figures_of_a_pumped_case(pumped, tmp_path):
     case, site, flow, paths = pumped
     assert head_map_elevation(case, site) == pytest.approx(1.5)  # mid-screen
-    files = write_head_figure(tmp_path, case, site, flow, paths, head_unit="ft")
+    drawdown = well_drawdown(site, FlowInputs.of(case), flow)
+    assert drawdown.max() > 0.0  # the pump lowers the head
+    files = write_head_figure(tmp_path, case, site, flow, paths, head_unit="ft",
+                              drawdown=drawdown)
     figures = PlumeFigures(tmp_path, case, site, flow)
     limit = case.species["tracer"].limit
     for k, t in enumerate((0.5, 1.0)):
