@@ -32,6 +32,12 @@ from scipy.sparse.csgraph import reverse_cuthill_mckee
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
 from fe3d.mesh.corridor import FINE_SIZE_MARGIN, Corridor, corridor_zones, project_to_edges
+from fe3d.mesh.prisms import (
+    boundary_triangles,
+    order_by_lowest_node,
+    orient_positive,
+    split_prisms,
+)
 from fe3d.mesh.quality import quality_report
 from fe3d.mesh.report import LensFit, MeshReport, PlanLayout
 from fe3d.mesh.site_mesh import SiteMesh
@@ -302,6 +308,15 @@ def extrude(
         Nodes ``(3, n)``; tetrahedra ``(4, m)``; unit, upper level and plan triangle of every
         cell; the (topmost) level of every node.
     """
+    points, cells, cell_unit, cell_level, cell_tri, node_level, _plan = _extrude(
+        xy, tri, z, layer_unit)
+    return points, cells, cell_unit, cell_level, cell_tri, node_level
+
+
+def _extrude(xy: FloatArray, tri: IndexArray, z: FloatArray, layer_unit: IndexArray,
+             ) -> tuple[FloatArray, IndexArray, IndexArray, IndexArray, IndexArray, IndexArray,
+                        IndexArray]:
+    """:func:`extrude`, and the plan node of every node ``(n,)``."""
     n2 = xy.shape[1]
     n_levels = z.shape[0]
     own = np.arange(n_levels * n2, dtype=np.int64).reshape(n_levels, n2)
@@ -309,56 +324,17 @@ def extrude(
     for lv in range(1, n_levels):
         same = z[lv] == z[lv - 1]
         canon[lv] = np.where(same, canon[lv - 1], own[lv])
-    t = np.sort(tri, axis=0)  # the split rule needs v0 < v1 < v2 (global plan order)
-    m2 = t.shape[1]
-    cells, unit, level, ptri = [], [], [], []
-    tri_id = np.arange(m2, dtype=np.int64)
-    for lv in range(n_levels - 1):
-        # even cell layers: bottom-of-lower-index to top-of-higher-index on every side quad;
-        # odd cell layers use the mirror image (the order reversed), so two consecutive cell
-        # layers are symmetric about their common level (see the module docstring)
-        v0, v1, v2 = t if lv % 2 == 0 else t[::-1]
-        b, u = canon[lv + 1], canon[lv]  # bottom and upper node ids of this cell layer
-        for c in (np.stack([b[v0], b[v1], b[v2], u[v2]]),
-                  np.stack([b[v0], b[v1], u[v1], u[v2]]),
-                  np.stack([b[v0], u[v0], u[v1], u[v2]])):
-            s = np.sort(c, axis=0)
-            keep = np.all(s[1:] != s[:-1], axis=0)  # drop the tetrahedra that collapsed
-            cells.append(c[:, keep])
-            ptri.append(tri_id[keep])
-            unit.append(np.full(int(keep.sum()), layer_unit[lv], dtype=np.int64))
-            level.append(np.full(int(keep.sum()), lv, dtype=np.int64))
-    cells_arr = np.hstack(cells)
-    used = np.unique(cells_arr)
+    # the split rule needs v0 < v1 < v2 (global plan order); compiled (fe3d/mesh/prisms.py)
+    cells, unit, level, plan_tri = split_prisms(np.sort(tri, axis=0), canon, layer_unit)
+    is_used = np.zeros(n_levels * n2, dtype=bool)
+    is_used[cells.ravel()] = True
+    used = np.flatnonzero(is_used)
+    del is_used
     remap = np.full(n_levels * n2, -1, dtype=np.int64)
     remap[used] = np.arange(used.size)
     lv_of, plan_of = np.divmod(used, n2)
     points = np.vstack([xy[:, plan_of], z[lv_of, plan_of][None]])
-    return (points, remap[cells_arr], np.concatenate(unit), np.concatenate(level),
-            np.concatenate(ptri), lv_of.astype(np.int64))
-
-
-def _orient(points: FloatArray, cells: IndexArray) -> IndexArray:
-    a, b, c, d = (points[:, cells[i]] for i in range(4))
-    vol = np.einsum("ij,ij->j", b - a, np.cross(c - a, d - a, axis=0))
-    cells = cells.copy()
-    neg = vol < 0
-    cells[[1, 2]] = np.where(neg, cells[[2, 1]], cells[[1, 2]])
-    return cells
-
-
-def _boundary_triangles(cells: IndexArray) -> IndexArray:
-    faces = np.hstack([cells[[0, 1, 2]], cells[[0, 1, 3]], cells[[0, 2, 3]], cells[[1, 2, 3]]])
-    key = np.sort(faces, axis=0)
-    n = np.int64(cells.max() + 1)
-    code = (key[0] * n + key[1]) * n + key[2]
-    order = np.argsort(code, kind="stable")
-    sc = code[order]
-    single = np.ones(sc.size, dtype=bool)
-    dup = sc[1:] == sc[:-1]
-    single[1:] &= ~dup
-    single[:-1] &= ~dup
-    return key[:, order[single]]
+    return points, remap[cells], unit, level, plan_tri, lv_of.astype(np.int64), plan_of
 
 
 def _node_areas(xy: FloatArray, tri: IndexArray) -> FloatArray:
@@ -493,25 +469,28 @@ def build_mesh(case: Case, *, corridor: Corridor | None = None) -> SiteMesh:
                                 node_area)
     for note in lens_notes:
         logger.warning("%s", note.line)
-    points, cells, cell_unit, cell_level, cell_tri, node_level = extrude(
+    points, cells, cell_unit, cell_level, cell_tri, node_level, plan_of = _extrude(
         xy, tri, z, np.array(layer_unit, dtype=np.int64))
     cell_unit = _tag_lenses(case, xy, tri, z, layer_unit, level_frac, cell_unit, cell_level,
                             cell_tri, surfaces, lens_in)
+    del cell_level, cell_tri
     # renumber nodes by reverse Cuthill-McKee: 2-4x faster sparse products (SOLVER-NOTES)
     n = points.shape[1]
     perm = reverse_cuthill_mckee(node_graph(cells, n), symmetric_mode=True)
     inv = np.empty_like(perm)
     inv[perm] = np.arange(n)
-    points, cells, node_level = points[:, perm], inv[cells], node_level[perm]
+    points, node_level, plan_of = points[:, perm], node_level[perm], plan_of[perm]
+    cells = inv[cells]
+    del inv, perm
     # cells in the order of their lowest node: an assembly pass over the cells then writes
     # near where it last wrote (at 5.9 M cells in extrusion order the random writes made
     # assembly several times slower, docs/performance.md)
-    corder = np.argsort(cells.min(axis=0), kind="stable")
-    cells, cell_unit = np.ascontiguousarray(cells[:, corder]), cell_unit[corder]
-    cells = _orient(points, cells)
+    corder = order_by_lowest_node(cells, n)
+    cells, cell_unit = orient_positive(points, cells, corder), cell_unit[corder]
+    del corder
     base_z = surfaces[-1]
     unit_names = tuple([ly.name for ly in case.layers] + [ls.name for ls in case.lenses])
-    faces = _classify_faces(points, cells, node_level, xy, base_z, plan.edges)
+    faces = _classify_faces(points, cells, node_level, plan_of, base_z, plan.edges)
     bare = SiteMesh(points=points, cells=cells, cell_layer=cell_unit, layer_names=unit_names,
                     faces=faces)
     check_volumes(bare)
@@ -630,22 +609,19 @@ def check_volumes(site: SiteMesh) -> None:
 
 
 def _classify_faces(points: FloatArray, cells: IndexArray, node_level: IndexArray,
-                    xy: FloatArray, base_z: FloatArray, edges: dict[str, IndexArray],
+                    plan_of: IndexArray, base_z: FloatArray, edges: dict[str, IndexArray],
                     ) -> dict[str, IndexArray]:
     """Boundary triangles by face: vertical ones by the named plan edge under them, the rest
-    top (every node on the ground) or bottom (every node on the model base)."""
-    tri = _boundary_triangles(cells)
-    tree_xy = points[:2]
-    from scipy.spatial import cKDTree
-
-    plan_of = cKDTree(xy.T).query(tree_xy.T)[1]  # plan node of every mesh node
+    top (every node on the ground) or bottom (every node on the model base). ``plan_of`` is
+    the plan node of every mesh node."""
+    tri = boundary_triangles(cells, points.shape[1])
     pn = plan_of[tri]
     s = np.sort(pn, axis=0)
     vertical = (s[0] == s[1]) | (s[1] == s[2])
     on_top = np.all(node_level[tri] == 0, axis=0) & ~vertical
     on_base = np.all(points[2, tri] == base_z[pn], axis=0) & ~vertical & ~on_top
     out: dict[str, IndexArray] = {}
-    n2 = np.int64(xy.shape[1])
+    n2 = np.int64(base_z.size)
     # plan edge of each vertical triangle: its two distinct plan nodes
     lo = s[0]
     hi = np.where(s[2] != s[0], s[2], s[1])

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING
 
+import numba
 import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
@@ -25,46 +26,72 @@ if TYPE_CHECKING:
 __all__ = ["aspect_ratios", "dihedral_angles", "quality_report", "report_lines"]
 
 _FACES = ((1, 2, 3), (0, 2, 3), (0, 1, 3), (0, 1, 2))  # face i is opposite vertex i
+_PAIRS = ((0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3))  # the faces of each dihedral angle
 
 
-def _face_normals(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, FloatArray]:
-    """Outward area vectors of the four faces, shape ``(4, 3, m)``, and volumes ``(m,)``."""
-    p = points[:, cells]  # (3, 4, m)
-    normals = np.empty((4, 3, cells.shape[1]))
-    for i, (a, b, c) in enumerate(_FACES):
-        n = 0.5 * np.cross(p[:, b] - p[:, a], p[:, c] - p[:, a], axis=0)
-        # outward: pointing away from the opposite vertex
-        sign = np.sign(np.einsum("ij,ij->j", n, p[:, a] - p[:, i]))
-        normals[i] = n * np.where(sign == 0, 1.0, sign)
-    vol = np.einsum("ij,ij->j", p[:, 1] - p[:, 0],
-                    np.cross(p[:, 2] - p[:, 0], p[:, 3] - p[:, 0], axis=0)) / 6.0
-    return normals, vol
+@numba.njit(cache=True, nogil=True)
+def _quality_kernel(points: FloatArray, cells: IndexArray, angles: FloatArray,
+                    aspect: FloatArray) -> None:
+    """Six dihedral angles [degrees] into ``angles`` ``(6, m)`` and the aspect ratio into
+    ``aspect`` ``(m,)`` of every cell, one cell at a time (no ``(4, 3, m)`` temporaries)."""
+    p = np.empty((4, 3))
+    unit = np.empty((4, 3))
+    faces = np.array(_FACES)
+    pairs = np.array(_PAIRS)
+    for e in range(cells.shape[1]):
+        for i in range(4):
+            for k in range(3):
+                p[i, k] = points[k, cells[i, e]]
+        area = 0.0
+        for i in range(4):
+            a, b, c = faces[i, 0], faces[i, 1], faces[i, 2]
+            ux, uy, uz = p[b, 0] - p[a, 0], p[b, 1] - p[a, 1], p[b, 2] - p[a, 2]
+            vx, vy, vz = p[c, 0] - p[a, 0], p[c, 1] - p[a, 1], p[c, 2] - p[a, 2]
+            nx, ny, nz = 0.5 * (uy * vz - uz * vy), 0.5 * (uz * vx - ux * vz), \
+                0.5 * (ux * vy - uy * vx)
+            # outward: pointing away from the opposite vertex
+            side = nx * (p[a, 0] - p[i, 0]) + ny * (p[a, 1] - p[i, 1]) + nz * (p[a, 2] - p[i, 2])
+            sign = -1.0 if side < 0.0 else 1.0
+            size = np.sqrt(nx * nx + ny * ny + nz * nz)
+            area += size
+            scale = sign / max(size, 1e-300)
+            unit[i, 0], unit[i, 1], unit[i, 2] = nx * scale, ny * scale, nz * scale
+        for k in range(6):
+            i, j = pairs[k, 0], pairs[k, 1]
+            cos = unit[i, 0] * unit[j, 0] + unit[i, 1] * unit[j, 1] + unit[i, 2] * unit[j, 2]
+            angles[k, e] = 180.0 - np.degrees(np.arccos(min(1.0, max(-1.0, cos))))
+        bx, by, bz = p[1, 0] - p[0, 0], p[1, 1] - p[0, 1], p[1, 2] - p[0, 2]
+        cx, cy, cz = p[2, 0] - p[0, 0], p[2, 1] - p[0, 1], p[2, 2] - p[0, 2]
+        dx, dy, dz = p[3, 0] - p[0, 0], p[3, 1] - p[0, 1], p[3, 2] - p[0, 2]
+        vol = (bx * (cy * dz - cz * dy) + by * (cz * dx - cx * dz)
+               + bz * (cx * dy - cy * dx)) / 6.0
+        longest = 0.0
+        for i in range(4):
+            for j in range(i + 1, 4):
+                longest = max(longest, np.sqrt((p[i, 0] - p[j, 0]) ** 2
+                                               + (p[i, 1] - p[j, 1]) ** 2
+                                               + (p[i, 2] - p[j, 2]) ** 2))
+        r_in = 3.0 * abs(vol) / max(area, 1e-300)
+        aspect[e] = longest / (2.0 * np.sqrt(6.0) * r_in) if r_in > 0.0 else np.inf
+
+
+def _measure(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, FloatArray]:
+    angles = np.empty((6, cells.shape[1]))
+    aspect = np.empty(cells.shape[1])
+    _quality_kernel(np.ascontiguousarray(points, dtype=float),
+                    np.ascontiguousarray(cells, dtype=np.int64), angles, aspect)
+    return angles, aspect
 
 
 def dihedral_angles(points: FloatArray, cells: IndexArray) -> FloatArray:
-    """The six dihedral angles [degrees] of every tetrahedron, shape ``(6, m)``."""
-    normals, _ = _face_normals(points, cells)
-    unit = normals / np.maximum(np.linalg.norm(normals, axis=1, keepdims=True), 1e-300)
-    out = []
-    for i in range(4):
-        for j in range(i + 1, 4):
-            cos = np.clip(np.einsum("ij,ij->j", unit[i], unit[j]), -1.0, 1.0)
-            out.append(180.0 - np.degrees(np.arccos(cos)))
-    return np.array(out)
+    """The six dihedral angles [degrees] of every tetrahedron, shape ``(6, m)``, between the
+    face pairs (0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3) (face i opposite vertex i)."""
+    return _measure(points, cells)[0]
 
 
 def aspect_ratios(points: FloatArray, cells: IndexArray) -> FloatArray:
     """Longest edge / (2√6 · inradius) of every tetrahedron (1 when regular), ``(m,)``."""
-    normals, vol = _face_normals(points, cells)
-    area = np.linalg.norm(normals, axis=1).sum(axis=0)
-    r_in = 3.0 * np.abs(vol) / np.maximum(area, 1e-300)
-    p = points[:, cells]
-    longest = np.zeros(cells.shape[1])
-    for i in range(4):
-        for j in range(i + 1, 4):
-            longest = np.maximum(longest, np.linalg.norm(p[:, i] - p[:, j], axis=0))
-    with np.errstate(divide="ignore"):
-        return longest / (2.0 * np.sqrt(6.0) * r_in)
+    return _measure(points, cells)[1]
 
 
 def quality_report(site: SiteMesh, *, chunk: int = 500_000) -> MeshQuality:
@@ -75,10 +102,8 @@ def quality_report(site: SiteMesh, *, chunk: int = 500_000) -> MeshQuality:
     maxs = np.empty(m)
     ar = np.empty(m)
     for s in range(0, m, chunk):
-        c = site.cells[:, s:s + chunk]
-        d = dihedral_angles(site.points, c)
+        d, ar[s:s + chunk] = _measure(site.points, site.cells[:, s:s + chunk])
         mins[s:s + chunk], maxs[s:s + chunk] = d.min(axis=0), d.max(axis=0)
-        ar[s:s + chunk] = aspect_ratios(site.points, c)
     vol = site.cell_volumes()
     worst = int(np.argmax(ar))
     x, y, z = (float(v) for v in site.points[:, site.cells[:, worst]].mean(axis=1))
