@@ -14,8 +14,9 @@ Along a pathline of arc length s from its source, in the unit crossed at s (disp
   at most the target Pe* (M1);
 * half-width r(s) = w₀ + m σ_T(s), σ_T(s)² = ∫₀ˢ 2 α_T ds′ (M2): w₀ covers the source's own
   extent, and m = :data:`SPREAD` standard deviations reach the compliance limit (below);
-* length: to where the pathline leaves the model, or to where the water is at the end time
-  plus m σ_L of longitudinal spread ahead of it, σ_L² = ∫ 2 α_L ds (M3);
+* length: to where the pathline leaves the model, or to where the fastest species the source
+  makes is at the end time (the water's travel × its retardation) plus m σ_L of longitudinal
+  spread ahead of it, σ_L² = ∫ 2 α_L ds (M3);
 * cell-layer thickness of each unit crossed: σ_V(L/2) / :data:`CELLS_PER_SPREAD` × Pe*/2
   with σ_V² = ∫ 2 α_TV ds, taken at half the corridor length L (M4; at the default target
   2 layers per σ_V, more with a finer target, so refinement studies refine layers too).
@@ -81,7 +82,8 @@ class PathSample:
     points
         Positions [m], shape ``(3, k)``, from the source.
     times
-        Travel time of the water [s], shape ``(k,)``.
+        Travel time [s] of the fastest species the source makes (the water's time × its
+        retardation in each unit crossed), shape ``(k,)``.
     alpha_l, alpha_t, alpha_tv
         Longitudinal, horizontal-transverse and vertical-transverse dispersivity [m] of the
         unit at each point (used for the segment that starts there), shape ``(k,)``.
@@ -465,19 +467,42 @@ def _source_half_widths(case: Case, seeds: FloatArray, name: str) -> float:
     return float(d.min(axis=1).max())
 
 
+def _fastest_retardation(case: Case, source: str, mats: Sequence[Any],
+                         keys: Sequence[str]) -> FloatArray:
+    """Smallest linear retardation R = 1 + ρ_b K_d/θ per unit [-] over the species a source
+    releases and every species its decay makes (M3): the corridor reaches as far as the
+    fastest of them can travel. A nonlinear isotherm or a user reaction law counts as R = 1
+    (no retardation assumed: the corridor is then as long as the water's travel)."""
+    src = next((s for s in case.sources if s.name == source), None)
+    names = set() if src is None else {src.species}
+    while True:  # the decay chain below the source's species
+        more = {n for n, sp in case.species.items() if sp.parent in names} - names
+        if not more:
+            break
+        names |= more
+    r = np.ones(len(mats))
+    if src is None or case.user_reactions is not None:
+        return r
+    for k, (mat, key) in enumerate(zip(mats, keys, strict=True)):
+        r[k] = min((1.0 + mat.bulk_density * case.species[n].kd_of(key) / mat.porosity
+                    if case.species[n].sorption == "linear" else 1.0) for n in names)
+    return r
+
+
 def site_corridor(case: Case, site: SiteMesh,
                   pathlines: dict[str, list[tuple[FloatArray, FloatArray]]],
                   ) -> Corridor | None:
     """The corridor of ``case`` from forward pathlines tracked on ``site`` (the first mesh).
 
-    ``pathlines`` maps a source name to its pathlines as (points ``(3, k)`` [m], times
-    ``(k,)`` [s]). Reads the unit at each point, the source extents and the ``[mesh]``
-    settings; returns ``None`` when nothing needs refining.
+    ``pathlines`` maps a source name to its pathlines as (points ``(3, k)`` [m], the water's
+    travel times ``(k,)`` [s]). Reads the unit at each point, the source extents, the
+    retardation of the fastest species the source makes (:func:`_fastest_retardation`) and
+    the ``[mesh]`` settings; returns ``None`` when nothing needs refining.
     """
     from fe3d.mesh.locate import CellFinder
     from fe3d.mesh.materials import unit_materials
 
-    mats, _ = unit_materials(Ground.of(case), site)
+    mats, keys = unit_materials(Ground.of(case), site)
     alpha = np.array([[m.longitudinal_dispersivity, m.transverse_dispersivity,
                        m.alpha_vertical] for m in mats])
     finder = CellFinder(site.points, site.cells)
@@ -485,12 +510,15 @@ def site_corridor(case: Case, site: SiteMesh,
     for name, lines in pathlines.items():
         seeds = np.array([p[:, 0] for p, _ in lines]).T if lines else np.zeros((3, 0))
         half = _source_half_widths(case, seeds, name) if lines else 0.0
-        for points, times in lines:
+        retardation = _fastest_retardation(case, name, mats, keys)
+        for points, water_times in lines:
             cell, _ = finder.find(points, tol=1e-6)
             # a point on the outer boundary found in no cell takes its predecessor's cell
             found = np.maximum.accumulate(np.where(cell >= 0, np.arange(cell.size), 0))
             unit = site.cell_layer[np.maximum(cell[found], 0)]
             a = alpha[unit]
+            times = np.concatenate([[0.0], np.cumsum(retardation[unit[:-1]]
+                                                     * np.diff(water_times))])
             samples.append(PathSample(points=points, times=times, alpha_l=a[:, 0],
                                       alpha_t=a[:, 1], alpha_tv=a[:, 2], unit=unit,
                                       half_width=half))
