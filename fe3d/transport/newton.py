@@ -3,7 +3,9 @@
 theory.md R14. The caller supplies the residual R(x) and a function that solves the
 Jacobian system J(x) δ = r (it may factorise J once per call, reuse a factorisation, or run
 a preconditioned Krylov method). The iterate is updated as x ← x − α δ with α = 1, ½, ¼, …
-until the residual norm decreases enough (R15).
+until the residual norm decreases enough (R15). With :class:`Forcing` the solve is asked
+only for the relative accuracy η_k of Eisenstat & Walker's second choice (R14b), so early
+iterations do not over-solve; convergence is still judged on the true residual R(x).
 """
 
 from __future__ import annotations
@@ -16,7 +18,7 @@ import numpy as np
 from fe3d._typing import FloatArray
 from fe3d.errors import NewtonError
 
-__all__ = ["NewtonResult", "newton"]
+__all__ = ["Forcing", "NewtonResult", "forcing_term", "newton"]
 
 SUFFICIENT_DECREASE = 1e-4
 """c₁ in ‖R(x − αδ)‖ ≤ (1 − c₁α)‖R(x)‖ (Kelley 1995, ch. 8, from memory)."""
@@ -28,17 +30,58 @@ residual is then at its floating-point floor and cannot be reduced further."""
 
 
 @dataclass(frozen=True)
+class Forcing:
+    """Eisenstat & Walker's second choice of forcing terms (R14b; Eisenstat & Walker 1996,
+    "Choosing the forcing terms in an inexact Newton method", SIAM J. Sci. Comput. 17(1)):
+    η_k = γ (‖R_k‖/‖R_{k−1}‖)^α. ``gamma`` = 0.9 and ``alpha`` = 2 are the values the paper
+    recommends; ``first`` (η_0 = 0.5) and ``largest`` (η_max = 0.9) are the paper's
+    experimental settings (from memory)."""
+
+    gamma: float = 0.9
+    alpha: float = 2.0
+    first: float = 0.5
+    largest: float = 0.9
+
+
+def forcing_term(forcing: Forcing, previous: float | None, r_norm: float,
+                 r_previous: float | None, target: float) -> float:
+    """The relative accuracy η_k asked of the k-th linear solve (R14b).
+
+    η_0 = ``forcing.first`` (``previous`` is None); then η_k = γ(‖R_k‖/‖R_{k−1}‖)^α, raised
+    to γ η_{k−1}^α when that exceeds 0.1 (the paper's safeguard against η falling too fast
+    when the residual ratio is briefly small), and at most η_max. Last, η_k is at least
+    0.5 τ/‖R_k‖ with τ the Newton target (Kelley 1995, "Iterative methods for linear and
+    nonlinear equations", SIAM, §6.3, from memory): the final solve is not asked for more
+    than the target needs.
+    """
+    if previous is None or r_previous is None:
+        eta = forcing.first
+    else:
+        eta = forcing.gamma * (r_norm / r_previous) ** forcing.alpha
+        guard = forcing.gamma * previous ** forcing.alpha
+        if guard > 0.1:
+            eta = max(eta, guard)
+    if r_norm > 0:
+        eta = max(eta, 0.5 * target / r_norm)
+    return min(eta, forcing.largest)
+
+
+@dataclass(frozen=True)
 class NewtonResult:
     """The converged iterate and the solver log.
 
     ``residual_norms[0]`` is ‖R(x0)‖ and ``residual_norms[k]`` is ‖R‖ after iteration k;
-    ``step_lengths[k-1]`` is the α accepted in iteration k.
+    ``step_lengths[k-1]`` is the α accepted in iteration k; ``forcing_terms[k-1]`` the
+    relative accuracy asked of its linear solve (empty without :class:`Forcing`);
+    ``target`` the ‖R‖ the iteration had to reach.
     """
 
     x: FloatArray
     iterations: int
     residual_norms: list[float] = field(default_factory=list)
     step_lengths: list[float] = field(default_factory=list)
+    forcing_terms: list[float] = field(default_factory=list)
+    target: float = 0.0
 
     def log_lines(self) -> list[str]:
         """One line per iterate, for the solver log."""
@@ -55,7 +98,7 @@ def _l2(r: FloatArray) -> float:
 
 def newton(
     residual: Callable[[FloatArray], FloatArray],
-    jacobian_solve: Callable[[FloatArray, FloatArray], FloatArray],
+    jacobian_solve: Callable[..., FloatArray],
     x0: FloatArray,
     *,
     rtol: float = 1e-10,
@@ -64,6 +107,8 @@ def newton(
     line_search: bool = True,
     max_halvings: int = 10,
     norm: Callable[[FloatArray], float] = _l2,
+    reference_norm: float | None = None,
+    forcing: Forcing | None = None,
 ) -> NewtonResult:
     """Solve R(x) = 0 from ``x0``.
 
@@ -72,10 +117,18 @@ def newton(
     residual
         x ↦ R(x), same shape as x.
     jacobian_solve
-        (x, r) ↦ δ with J(x) δ = r, J = ∂R/∂x at x.
+        (x, r) ↦ δ with J(x) δ = r, J = ∂R/∂x at x; with ``forcing``, (x, r, η) ↦ δ with
+        ‖r − J δ‖ ≤ η ‖r‖ (the solve's own measure of it).
     rtol, atol
-        Converged when ‖R(x_k)‖ ≤ max(atol, rtol ‖R(x_0)‖), or when the correction is at
+        Converged when ‖R(x_k)‖ ≤ max(atol, rtol ‖R_ref‖), or when the correction is at
         round-off level (max|δ| ≤ 4ε max|x|, see ``ROUND_OFF``), whichever comes first.
+    reference_norm
+        ‖R_ref‖ [units of R]; default ‖R(x_0)‖. A caller with a better start than its
+        natural one passes the norm at the natural one, so that the better start saves
+        iterations instead of tightening the target.
+    forcing
+        Inexact Newton with Eisenstat & Walker's forcing terms (R14b); None: the solve is
+        called as (x, r) and trusted to be accurate.
     max_iter
         Largest number of Newton iterations.
     line_search
@@ -99,11 +152,17 @@ def newton(
     if not np.isfinite(r_norm):
         msg = "Newton: the residual is not finite at the starting point"
         raise NewtonError(msg, norms)
-    target = max(atol, rtol * r_norm)
+    target = max(atol, rtol * (r_norm if reference_norm is None else reference_norm))
+    etas: list[float] = []
     for _ in range(max_iter):
         if r_norm <= target:
             break
-        delta = jacobian_solve(x, r)
+        if forcing is None:
+            delta = jacobian_solve(x, r)
+        else:
+            etas.append(forcing_term(forcing, etas[-1] if etas else None, r_norm,
+                                     norms[-2] if len(norms) > 1 else None, target))
+            delta = jacobian_solve(x, r, etas[-1])
         if not np.all(np.isfinite(delta)):
             msg = (f"Newton: non-finite correction at iteration {len(steps) + 1} "
                    f"(|R| = {r_norm:.3e}); the Jacobian may be singular")
@@ -116,7 +175,7 @@ def newton(
             norms.append(r_norm)
             steps.append(1.0)
             return NewtonResult(x=x, iterations=len(steps), residual_norms=norms,
-                                step_lengths=steps)
+                                step_lengths=steps, forcing_terms=etas, target=target)
         alpha = 1.0
         for _ in range(max_halvings + 1):
             x_try = x - alpha * delta
@@ -138,4 +197,5 @@ def newton(
         msg = (f"Newton: not converged in {max_iter} iterations: |R| {norms[0]:.3e} -> "
                f"{r_norm:.3e}, target {target:.3e}")
         raise NewtonError(msg, norms)
-    return NewtonResult(x=x, iterations=len(steps), residual_norms=norms, step_lengths=steps)
+    return NewtonResult(x=x, iterations=len(steps), residual_norms=norms, step_lengths=steps,
+                        forcing_terms=etas, target=target)
