@@ -24,7 +24,8 @@ from fe3d.krylov import SolutionWindow, bicgstab
 from fe3d.sgs import SymmetricGaussSeidel
 
 __all__ = ["DIRECT_LIMIT", "FLOW_TOLERANCE", "PROBE_ITERATIONS", "RELAXATION", "START_WINDOW",
-           "TRANSPORT_METHODS", "LinearSolver", "solve_spd", "solve_with_preconditioner"]
+           "TRANSPORT_METHODS", "LinearSolver", "SpdPreconditioner", "solve_spd",
+           "solve_with_preconditioner"]
 
 logger = logging.getLogger(__name__)
 
@@ -54,15 +55,66 @@ below the target (docs/performance.md). The flow stage (fe3d/flow/solve.py) pass
 :func:`solve_spd` keeps 1e-12 as its own default."""
 
 
+class SpdPreconditioner:
+    """One AMG hierarchy (:func:`solve_spd`'s) kept for later solves with matrices of the
+    same size: the drain passes of one flow solve, or ensemble members that share a mesh
+    and its fixed-head nodes (pass one object to every ``fe3d.flow.solve_flow`` call).
+
+    The hierarchy is built from the first matrix it is asked for and reused for any later
+    matrix of the same shape. One V-cycle of a fixed hierarchy is a fixed symmetric positive
+    definite operator, so CG still converges on a changed matrix and the true residual is
+    still checked; only the iteration count can grow as the matrix moves away from the one
+    it was built from (measured in docs/performance.md, Flow). ``builds`` and ``uses``
+    count what happened.
+    """
+
+    def __init__(self) -> None:
+        self._ml: Any = None
+        self._shape: tuple[int, int] | None = None
+        self.builds = 0
+        self.uses = 0
+        self.levels = 0
+        self.operator_complexity = 0.0
+
+    def hierarchy(self, A: sp.csr_matrix) -> Any:
+        """The kept hierarchy when it was built for a matrix of ``A``'s shape, else a new
+        one built from ``A`` (and kept)."""
+        if self._ml is None or self._shape != A.shape:
+            self._ml = _amg_hierarchy(A)
+            self._shape = A.shape
+            self.builds += 1
+            self.levels = len(self._ml.levels)
+            self.operator_complexity = float(self._ml.operator_complexity())
+        self.uses += 1
+        return self._ml
+
+
+def _amg_hierarchy(A: sp.csr_matrix) -> Any:
+    """Classical Ruge–Stüben AMG (see :func:`solve_spd`): strength 0.5 on the negative
+    off-diagonals, second splitting pass, exact solve at ≤ 500 unknowns, a forward
+    Gauss–Seidel sweep before and a backward one after the coarse correction (the V-cycle
+    stays symmetric, as CG needs)."""
+    import pyamg
+
+    return pyamg.ruge_stuben_solver(A.tocsr(),
+                                    strength=("classical", {"theta": 0.5, "norm": "min"}),
+                                    CF=("RS", {"second_pass": True}), max_coarse=500,
+                                    coarse_solver="pinv",
+                                    presmoother=("gauss_seidel", {"sweep": "forward"}),
+                                    postsmoother=("gauss_seidel", {"sweep": "backward"}))
+
+
 def solve_spd(A: sp.csr_matrix, b: FloatArray, *, tol: float = 1e-12,
               method: str = "auto", stats: dict[str, float] | None = None,
-              cycle: str = "V") -> FloatArray:
+              cycle: str = "V", preconditioner: SpdPreconditioner | None = None,
+              ) -> FloatArray:
     """Solve a symmetric positive definite system (direct when small, AMG-CG otherwise).
 
     The iterative branch (``method="iterative"``, or ``"auto"`` above :data:`DIRECT_LIMIT`
     unknowns) is conjugate gradients preconditioned by one cycle of classical Ruge–Stüben AMG:
     strength threshold θ = 0.5 measured on the negative off-diagonals only (``norm="min"``),
-    second pass of the C/F splitting, symmetric Gauss–Seidel smoothing and an exact solve
+    second pass of the C/F splitting, one forward Gauss–Seidel sweep before and one backward
+    sweep after the coarse correction, and an exact solve
     (dense pseudo-inverse, which also survives a singular matrix and leaves the verdict to the
     residual check) once a level has at most 500 unknowns. The flat P1 tetrahedra give the flow
     matrix positive off-diagonal entries (28 % of them, up to 0.2 of a row's diagonal); with
@@ -72,15 +124,19 @@ def solve_spd(A: sp.csr_matrix, b: FloatArray, *, tol: float = 1e-12,
     4–6 reduced the error by only 0.8–0.9 per cycle (0.3–0.4 with ``norm="min"``). CG
     iterations on the flow benchmark matrices (134 k → 918 k unknowns, to 1e-10 / 1e-12):
     ``norm="abs"`` 11 → 19 / 14 → 22 (1.73× / 1.57×); ``norm="min"`` 11 → 14 / 13 → 16 (1.27× /
-    1.23×); with the exact solve at ≤ 500 unknowns, the choice here, 11 → 13 / 13 → 16 (1.18× /
+    1.23×); with the exact solve at ≤ 500 unknowns 11 → 13 / 13 → 16 (1.18× /
     1.23×), operator complexity 2.56 / 3.38, AMG set-up about 5 s and CG about 10 s at 918 k
     unknowns on a loaded 2-core machine (``norm="abs"``: 5 s and 15 s). Earlier measurements
     (``norm="abs"``, 174 k → 1.2 M unknowns): θ = 0.25, 30 → 63 (to 1e-12); θ = 0.5, 26 → 59;
     smoothed aggregation 97 at 174 k. ``cycle="W"`` (θ = 0.5, one pass) took 12 → 18 iterations
-    but each costs several V-cycles.
+    but each costs several V-cycles. Smoothing: pyamg's default symmetric sweep before and
+    after (four sweeps per level and cycle) took 11 / 13 CG iterations to 1e-10 at 134 k /
+    918 k unknowns; one forward sweep before and one backward after, 12 / 14 iterations at
+    0.62× the CG time (3.9 against 6.2 s of CPU at 918 k, docs/performance.md).
 
-    ``stats``, when given, receives ``iterations`` (0 for a direct solve), ``setup_s`` and
-    ``solve_s`` [s].
+    ``preconditioner``, when given, supplies the AMG hierarchy (built from ``A`` on first use,
+    reused afterwards; :class:`SpdPreconditioner`). ``stats``, when given, receives
+    ``iterations`` (0 for a direct solve), ``setup_s`` and ``solve_s`` [s].
     """
     import time
 
@@ -91,12 +147,7 @@ def solve_spd(A: sp.csr_matrix, b: FloatArray, *, tol: float = 1e-12,
     if method == "direct" or (method == "auto" and n <= DIRECT_LIMIT):
         x = spla.spsolve(A.tocsc(), b)
     elif method in ("auto", "iterative"):
-        import pyamg
-
-        ml = pyamg.ruge_stuben_solver(A.tocsr(),
-                                      strength=("classical", {"theta": 0.5, "norm": "min"}),
-                                      CF=("RS", {"second_pass": True}), max_coarse=500,
-                                      coarse_solver="pinv")
+        ml = (preconditioner or SpdPreconditioner()).hierarchy(A)
         setup = time.perf_counter() - t0
         with np.errstate(divide="ignore", invalid="ignore"):  # breakdown → NaN → _check
             x, info = spla.cg(A, b, rtol=tol, atol=0.0, maxiter=2000,

@@ -98,41 +98,48 @@ def conductivity_tensors(
         The tensors and (K_h, K_h, K_v) per cell, shape ``(3, n_cells)``.
     """
     n = cells.shape[1]
-    kh = np.empty(n)
-    kv = np.empty(n)
-    normals = np.empty((3, n))
+    # per-unit values gathered by the cells' unit index (no mask per unit over every cell)
+    kh = np.array([m.horizontal_conductivity for m in unit_materials])[cell_unit]
+    ratio = np.array([m.k_vertical / m.horizontal_conductivity for m in unit_materials])
+    normals = np.array([bedding_normal(m.conductivity_strike, m.conductivity_dip)
+                        for m in unit_materials]).T[:, cell_unit]
     centres = None
     for u, mat in enumerate(unit_materials):
+        if mat.conductivity_file is None:
+            continue
         sel = cell_unit == u
         if not np.any(sel):
             continue
-        ratio = mat.k_vertical / mat.horizontal_conductivity
-        if mat.conductivity_file is not None:
-            if centres is None:
-                centres = points[:, cells].mean(axis=1).T
-            path = Path(mat.conductivity_file)
-            if not path.is_absolute() and base_dir is not None:
-                path = base_dir / path
-            key = f"{unit_keys[u]}.conductivity_file"
-            if path.suffix.lower() in (".vtu", ".vtk"):
-                pts, unit, raw = read_vtk_cell_field(path, key, prefix="conductivity")
-                try:
-                    vals = raw * to_si(f"1 {unit}", "velocity")
-                except ValueError as exc:
-                    raise CaseError(key, str(path), f"cell array unit: {exc}") from None
-                if np.any(vals <= 0) or not np.all(np.isfinite(vals)):
-                    raise CaseError(key, str(path), "conductivities must be finite and > 0")
-                # cell centres of the same mesh coincide: take the nearest centre's value
-                from scipy.spatial import cKDTree
+        if centres is None:
+            centres = points[:, cells].mean(axis=1).T
+        path = Path(mat.conductivity_file)
+        if not path.is_absolute() and base_dir is not None:
+            path = base_dir / path
+        key = f"{unit_keys[u]}.conductivity_file"
+        if path.suffix.lower() in (".vtu", ".vtk"):
+            pts, unit, raw = read_vtk_cell_field(path, key, prefix="conductivity")
+            try:
+                vals = raw * to_si(f"1 {unit}", "velocity")
+            except ValueError as exc:
+                raise CaseError(key, str(path), f"cell array unit: {exc}") from None
+            if np.any(vals <= 0) or not np.all(np.isfinite(vals)):
+                raise CaseError(key, str(path), "conductivities must be finite and > 0")
+            # cell centres of the same mesh coincide: take the nearest centre's value
+            from scipy.spatial import cKDTree
 
-                _, nearest = cKDTree(pts).query(centres[sel])
-                kh[sel] = vals[nearest]
-            else:
-                pts, vals = read_point_field(path, key)
-                kh[sel] = _interpolate_log(pts, vals, centres[sel])
+            _, nearest = cKDTree(pts).query(centres[sel])
+            kh[sel] = vals[nearest]
         else:
-            kh[sel] = mat.horizontal_conductivity
-        kv[sel] = ratio * kh[sel]
-        normals[:, sel] = bedding_normal(mat.conductivity_strike, mat.conductivity_dip)[:, None]
-    tensors = kh * np.eye(3)[:, :, None] + (kv - kh) * normals[:, None, :] * normals[None, :, :]
+            pts, vals = read_point_field(path, key)
+            kh[sel] = _interpolate_log(pts, vals, centres[sel])
+    kv = ratio[cell_unit] * kh
+    # K = K_h I + (K_v − K_h) n nᵀ, entry by entry (one (3, 3, n) array, no temporaries of
+    # that size; rounded as the broadcast expression rounds it)
+    tensors = np.empty((3, 3, n))
+    step = kv - kh
+    for i in range(3):
+        scaled = step * normals[i]
+        for j in range(3):
+            np.multiply(scaled, normals[j], out=tensors[i, j])
+        tensors[i, i] += kh
     return tensors, np.vstack([kh, kh, kv])

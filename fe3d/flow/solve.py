@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+import scipy.sparse as sp
 
 from fe3d._threads import limit_blas_threads
 from fe3d._typing import FloatArray, IndexArray
@@ -23,7 +24,7 @@ from fe3d.flow.site_rules import (
     screened_unit_problems,
     zone_mask,
 )
-from fe3d.linalg import FLOW_TOLERANCE, solve_spd
+from fe3d.linalg import FLOW_TOLERANCE, SpdPreconditioner, solve_spd
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.materials import cell_values, unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
@@ -123,6 +124,7 @@ def _split(f: FloatArray) -> tuple[float, float]:
 def solve_flow(
     site: SiteMesh, inputs: FlowInputs, *, base_dir: Path | None = None,
     extra_fixed: dict[str, tuple[IndexArray, FloatArray]] | None = None,
+    preconditioner: SpdPreconditioner | None = None,
 ) -> FlowField:
     """Solve ∇·(K∇h) + sources = 0 (theory.md F1–F7).
 
@@ -138,6 +140,11 @@ def solve_flow(
     extra_fixed
         For scripting and verification: name → (node ids, heads [m]) fixed in addition to
         the case's fixed heads, and taking precedence over them where both apply.
+    preconditioner
+        An AMG hierarchy to build once and reuse (:class:`fe3d.linalg.SpdPreconditioner`):
+        ensemble members on one mesh with the same fixed-head faces pass the same object to
+        every call and pay the AMG set-up once. Without it each call (and each drain pass)
+        builds its own.
 
     Raises
     ------
@@ -212,13 +219,8 @@ def solve_flow(
         for (hd, la), act in zip(robin, active, strict=True):
             diag += la * act
             rhs += la * act * hd.stage
-        M = plus_diagonal(A, diag)
-        if fixed.size:
-            M_ff, M_fD = split_rows(M, free, fixed)
-            b_f = rhs[free] - M_fD @ head[fixed]
-            head[free] = solve_spd(M_ff, b_f, tol=FLOW_TOLERANCE, stats=stats)
-        else:
-            head = solve_spd(M, rhs, tol=FLOW_TOLERANCE, stats=stats)
+        head = _solve_heads(plus_diagonal(A, diag) if robin else A, rhs, head, free, fixed,
+                            stats=stats, preconditioner=preconditioner)
         iterations += int(stats.get("iterations", 0))
         new_active = [np.ones(n, dtype=bool) if hd.kind == "stream" else head > hd.stage
                       for hd, _ in robin]
@@ -231,10 +233,8 @@ def solve_flow(
 
     for (hd, la), act in zip(robin, active, strict=True):
         items.append((hd.name, hd.kind, la * act * (hd.stage - head)))
-    grads, _ = gradients(p, site.cells)  # not kept: (cells × 4 × 3) is large
-    grad_h = np.einsum("eik,ie->ke", grads, head[site.cells])
-    del grads
-    q = -np.einsum("ije,je->ie", tensors, grad_h)
+    q = _darcy_flux(p, site.cells, tensors, head)
+    del tensors
     # consistent fixed-head flux: what the fixed rows need beyond every other term (F4)
     other = sum((f for _, _, f in items), np.zeros(n))
     reaction = A @ head - other
@@ -250,6 +250,34 @@ def solve_flow(
     logger.info("flow: in %.4e m3/s, out %.4e m3/s, discrepancy %.2e",
                 result.total_inflow, result.total_outflow, result.discrepancy)
     return result
+
+
+def _solve_heads(M: sp.csr_matrix, rhs: FloatArray, head: FloatArray, free: IndexArray,
+                 fixed: IndexArray, *, stats: dict[str, float],
+                 preconditioner: SpdPreconditioner | None) -> FloatArray:
+    """The heads of one pass: ``head`` at the ``fixed`` nodes, M h = rhs solved on the
+    ``free`` ones (the reduced blocks are dropped on return)."""
+    if not fixed.size:
+        return solve_spd(M, rhs, tol=FLOW_TOLERANCE, stats=stats, preconditioner=preconditioner)
+    M_ff, M_fD = split_rows(M, free, fixed)
+    out = head.copy()
+    out[free] = solve_spd(M_ff, rhs[free] - M_fD @ head[fixed], tol=FLOW_TOLERANCE, stats=stats,
+                          preconditioner=preconditioner)
+    return out
+
+
+def _darcy_flux(points: FloatArray, cells: IndexArray, tensors: FloatArray, head: FloatArray,
+                *, chunk: int = 500_000) -> FloatArray:
+    """q = −K∇h per cell [m/s], shape ``(3, n_cells)`` (theory.md F8), a chunk of cells at a
+    time: the basis gradients of all cells, ``(n_cells, 4, 3)``, would be 96 bytes per cell
+    (0.5 GB at 5.3 M cells) held at once."""
+    q = np.empty((3, cells.shape[1]))
+    for s in range(0, cells.shape[1], chunk):
+        c = cells[:, s:s + chunk]
+        grads, _ = gradients(points, c)
+        grad_h = np.einsum("eik,ie->ke", grads, head[c])
+        q[:, s:s + chunk] = -np.einsum("ije,je->ie", tensors[:, :, s:s + chunk], grad_h)
+    return q
 
 
 def _raise_first(problems: list[CaseError]) -> None:
