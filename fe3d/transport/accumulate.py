@@ -13,7 +13,11 @@ from fe3d.transport.budget import MassBudget
 from fe3d.transport.model import SpeciesModel
 from fe3d.transport.step import StepBudget, StepResult
 
-__all__ = ["BudgetTotals", "RunStatistics", "TransportDiagnostics", "grid_peclet"]
+__all__ = ["BudgetTotals", "RunStatistics", "StatisticsState", "TotalsState",
+           "TransportDiagnostics", "grid_peclet"]
+
+Extreme = tuple[float, tuple[float, ...] | None]
+"""A value [kg/m³] and where it was reached (x, y, z) [m], None before any step."""
 
 
 @dataclass(frozen=True)
@@ -56,6 +60,41 @@ def grid_peclet(s: SpeciesModel, seepage_velocity: FloatArray, porosity: FloatAr
                                   out=np.full_like(d_l, np.inf), where=d_l > 0)))
 
 
+@dataclass(frozen=True)
+class TotalsState:
+    """The running budget totals of every species [kg] (for a checkpoint): the initial
+    stored mass, and the mass that entered, was produced by a parent, decayed and flowed out
+    through each item so far."""
+
+    initial: dict[str, float]
+    source_input: dict[str, float]
+    produced: dict[str, float]
+    decayed: dict[str, float]
+    outflow: dict[str, dict[str, float]]
+
+
+@dataclass(frozen=True)
+class StatisticsState:
+    """The running diagnostics (for a checkpoint): per species the grid Péclet number, the
+    largest Courant numbers (all cells, plume), the lowest and highest values [kg/m³] and
+    where, the largest share of nodes left at low order; for the run the steps taken, the
+    smallest and largest step [s], the most Newton iterations and coupling sweeps in a
+    step and the last solver kind."""
+
+    peclet: dict[str, float]
+    courant: dict[str, float]
+    plume_courant: dict[str, float]
+    lowest: dict[str, Extreme]
+    highest: dict[str, Extreme]
+    blocked: dict[str, float]
+    n_steps: int
+    dt_min: float
+    dt_max: float
+    newton: int
+    sweeps: int
+    solver: str
+
+
 class BudgetTotals:
     """Mass that entered, decayed and flowed out of each species so far [kg] (T9)."""
 
@@ -66,6 +105,18 @@ class BudgetTotals:
         self.produced = dict.fromkeys(self.initial, 0.0)
         self.decayed = dict.fromkeys(self.initial, 0.0)
         self.outflow = {s.name: dict.fromkeys(s.outflow_weights, 0.0) for s in species}
+
+    def state(self) -> TotalsState:
+        """The totals so far (copies)."""
+        return TotalsState(initial=dict(self.initial), source_input=dict(self.source_input),
+                           produced=dict(self.produced), decayed=dict(self.decayed),
+                           outflow={k: dict(v) for k, v in self.outflow.items()})
+
+    def resume_from(self, saved: TotalsState) -> None:
+        """Continue from totals saved by :meth:`state`."""
+        self.initial, self.source_input = dict(saved.initial), dict(saved.source_input)
+        self.produced, self.decayed = dict(saved.produced), dict(saved.decayed)
+        self.outflow = {k: dict(v) for k, v in saved.outflow.items()}
 
     def add(self, budget: dict[str, StepBudget]) -> None:
         """Fold one accepted step's terms in."""
@@ -94,15 +145,31 @@ class RunStatistics:
         self.peclet = peclet
         self.courant = dict.fromkeys(peclet, 0.0)
         self.plume_courant = dict.fromkeys(peclet, 0.0)
-        self.lowest: dict[str, tuple[float, tuple[float, ...] | None]] = dict.fromkeys(
-            peclet, (0.0, None))
-        self.highest: dict[str, tuple[float, tuple[float, ...] | None]] = dict.fromkeys(
-            peclet, (-np.inf, None))
+        self.lowest: dict[str, Extreme] = dict.fromkeys(peclet, (0.0, None))
+        self.highest: dict[str, Extreme] = dict.fromkeys(peclet, (-np.inf, None))
         self.blocked: dict[str, float] = {}
         self.n_steps = 0
         self.dt_min, self.dt_max = math.inf, 0.0
         self.newton = self.sweeps = 0
         self.solver = "none"
+
+    def state(self) -> StatisticsState:
+        """The diagnostics so far (copies)."""
+        return StatisticsState(
+            peclet=dict(self.peclet), courant=dict(self.courant),
+            plume_courant=dict(self.plume_courant), lowest=dict(self.lowest),
+            highest=dict(self.highest), blocked=dict(self.blocked), n_steps=self.n_steps,
+            dt_min=self.dt_min, dt_max=self.dt_max, newton=self.newton, sweeps=self.sweeps,
+            solver=self.solver)
+
+    def resume_from(self, saved: StatisticsState) -> None:
+        """Continue from diagnostics saved by :meth:`state`."""
+        self.peclet, self.courant = dict(saved.peclet), dict(saved.courant)
+        self.plume_courant = dict(saved.plume_courant)
+        self.lowest, self.highest = dict(saved.lowest), dict(saved.highest)
+        self.blocked, self.n_steps = dict(saved.blocked), saved.n_steps
+        self.dt_min, self.dt_max = saved.dt_min, saved.dt_max
+        self.newton, self.sweeps, self.solver = saved.newton, saved.sweeps, saved.solver
 
     def add(self, result: StepResult, dt: float, species: tuple[SpeciesModel, ...],
             points: FloatArray, plume_rates: dict[str, float]) -> list[str]:

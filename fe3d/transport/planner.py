@@ -20,7 +20,7 @@ from fe3d.case.schema import TimeControl
 from fe3d.errors import SolverError
 from fe3d.transport.timeschemes import ORDER, StepControl, fit_to_next_time, next_step
 
-__all__ = ["PlannedStep", "StepPlanner", "time_steps"]
+__all__ = ["PlannedStep", "PlannerState", "StepPlanner", "time_steps"]
 
 logger = logging.getLogger(__name__)
 
@@ -57,6 +57,21 @@ class PlannedStep:
     dt: float
 
 
+@dataclass(frozen=True)
+class PlannerState:
+    """Where a :class:`StepPlanner` stands between two steps: the time reached ``t`` [s],
+    the step it wants next ``dt_want`` [s], the failures at this time ``cuts_here``, the
+    step cuts and rejections so far, and the fixed steps still queued as (t1, dt) [s]
+    (next step last). Enough to continue the plan bit for bit (a checkpoint)."""
+
+    t: float
+    dt_want: float
+    cuts_here: int
+    step_cuts: int
+    rejected: int
+    queue: tuple[tuple[float, float], ...]
+
+
 def _at(t: float, x: float) -> bool:
     return abs(t - x) <= 1e-9 * max(1.0, x)
 
@@ -84,6 +99,18 @@ class StepPlanner:
         self._cuts_here = 0
         self.step_cuts = 0
         self.rejected = 0
+
+    def state(self) -> PlannerState:
+        """Where the planner stands (for a checkpoint)."""
+        return PlannerState(t=self.t, dt_want=self._dt_want, cuts_here=self._cuts_here,
+                            step_cuts=self.step_cuts, rejected=self.rejected,
+                            queue=tuple(self._queue))
+
+    def resume_from(self, saved: PlannerState) -> None:
+        """Stand where ``saved`` stood (a run continued from a checkpoint)."""
+        self.t, self._dt_want, self._cuts_here = saved.t, saved.dt_want, saved.cuts_here
+        self.step_cuts, self.rejected = saved.step_cuts, saved.rejected
+        self._queue = list(saved.queue)
 
     @property
     def finished(self) -> bool:

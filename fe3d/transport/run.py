@@ -27,7 +27,7 @@ from fe3d._threads import limit_blas_threads
 from fe3d._typing import FloatArray
 from fe3d.case.parts import TransportInputs
 from fe3d.case.schema import TimeControl
-from fe3d.errors import SolverError
+from fe3d.errors import CaseError, SolverError
 from fe3d.flow.solve import FlowField
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
@@ -40,10 +40,11 @@ from fe3d.transport.accumulate import (
     grid_peclet,
 )
 from fe3d.transport.assembly import P1_MASS
-from fe3d.transport.budget import MassBudget
+from fe3d.transport.checkpoint import Checkpoint, Checkpointer, fingerprint
 from fe3d.transport.courant import PlumeCourant
 from fe3d.transport.model import SpeciesModel, build_medium, build_species, lumped
-from fe3d.transport.planner import StepPlanner, time_steps
+from fe3d.transport.planner import PlannedStep, StepPlanner, time_steps
+from fe3d.transport.snapshot import Snapshot
 from fe3d.transport.sources import build_source_geometry, initial_fields
 from fe3d.transport.step import StepContext, StepResult, StepState, UserLaw, take_step
 from fe3d.transport.systems import Scheme, StepSystems
@@ -54,26 +55,14 @@ __all__ = ["Snapshot", "TransportDiagnostics", "next_state", "run_transport", "s
 
 logger = logging.getLogger(__name__)
 
-
-@dataclass(frozen=True)
-class Snapshot:
-    """State at one output time.
-
-    ``concentration`` maps species → nodal concentration [kg/m³]; ``history_times`` [s] and
-    ``history`` (species → array ``(n_times, n_observations)`` [kg/m³]) hold every step so far.
-    """
-
-    time: float
-    concentration: dict[str, FloatArray]
-    budgets: dict[str, MassBudget]
-    history_times: FloatArray
-    history: dict[str, FloatArray]
-    diagnostics: TransportDiagnostics
+RESUME_KEY = "--resume"
+"""What a refused resume is named by: the command-line option that asks for it."""
 
 
 def run_transport(
     site: SiteMesh, flow: FlowField, inputs: TransportInputs, *,
     on_step: Callable[[float, float], None] | None = None, base_dir: Path | None = None,
+    resume_from: Checkpoint | None = None, checkpoints: Checkpointer | None = None,
 ) -> Iterator[Snapshot]:
     """Step every species from 0 to ``inputs.time.end``; yield a :class:`Snapshot` at t = 0 and
     at every output time.
@@ -86,16 +75,34 @@ def run_transport(
         Materials, species, sources, observation points, time and solver controls
         (:meth:`TransportInputs.of <fe3d.case.parts.TransportInputs.of>` a case).
     on_step
-        Called after every step with (time reached, end time) [s], for progress display.
+        Called after every step with (time reached, end time) [s], for progress display. A
+        KeyboardInterrupt it raises is passed on after a checkpoint is saved.
     base_dir
         Folder searched first for the module of ``user_reactions.function`` (the case
         file's folder).
+    resume_from
+        Continue from this checkpoint (of the same mesh and flow) instead of from t = 0:
+        the snapshots yielded before it are not yielded again, and every later one is the
+        one an uninterrupted run yields, bit for bit.
+    checkpoints
+        Offered the state after every accepted step (saves it when due, stops the run when
+        asked to).
 
     Raises
     ------
     NewtonError, SolverError
         A step still fails after ``solver.max_step_cuts`` halvings; every snapshot yielded
         before stays valid.
+    CaseError
+        ``resume_from`` belongs to another mesh or flow field.
+
+    Notes
+    -----
+    A resumed run repeats the uninterrupted run bit for bit when its step systems are solved
+    directly (``solver.linear_solver = "direct"``, or ``"auto"`` up to 5,000 unknowns). The
+    iterative solvers start each solve from a window of their earlier solutions
+    (fe3d/krylov.py), which a checkpoint does not hold: there the continued steps agree
+    with the uninterrupted ones within ``solver.tolerance``.
     """
     limit_blas_threads()
     ctx = step_context(site, flow, inputs, base_dir)
@@ -107,58 +114,151 @@ def run_transport(
     out_set = set(schedule)
     planner = StepPlanner(tc, sorted({*schedule, *switches, tc.end}), switches,
                           inputs.solver.max_step_cuts)
-    start = initial_fields(inputs, site, ctx.sources)
-    state = StepState(fields={s.name: start[s.name] for s in species},
-                      held_before={s.name: np.zeros(site.n_nodes, dtype=bool) for s in species},
-                      older=None, last_budget={})
-    totals = BudgetTotals(species, state.fields)
-    stats = RunStatistics({s.name: grid_peclet(s, ctx.systems.medium.seepage_velocity,
-                                               ctx.systems.medium.porosity) for s in species})
-    history_times, history = [0.0], {s.name: [probe @ state.fields[s.name]] for s in species}
-    accepted = [(0.0, state.fields)]  # recent levels for the local error estimate
-    dt_prev: float | None = None
-
-    def snapshot(t: float) -> Snapshot:
-        return Snapshot(time=t, concentration={k: c.copy() for k, c in state.fields.items()},
-                        budgets=totals.at(t, species, state.fields),
-                        history_times=np.array(history_times),
-                        history={k: np.array(v) for k, v in history.items()},
-                        diagnostics=stats.diagnostics(planner.step_cuts, planner.rejected))
-
+    run = _RunningState.started(site, flow, inputs, ctx, planner, probe) \
+        if resume_from is None else _RunningState.resumed(site, flow, ctx, planner, probe,
+                                                          resume_from)
     courant = PlumeCourant(site, species, ctx.sources)
-    yield snapshot(0.0)
+    if run.outputs < _yields_until(planner.t, out_set):  # t = 0, or an output not yet given
+        run.outputs += 1
+        yield run.snapshot(planner.t)
     while not planner.finished:
-        rates = courant.rates(state.fields, planner.t)
+        rates = courant.rates(run.state.fields, planner.t)
         step = planner.next(PlumeCourant.step(rates, tc.courant, tc.end))
-        formula = step_coefficients(tc.scheme, step.dt, dt_prev)
+        formula = step_coefficients(tc.scheme, step.dt, run.dt_prev)
         try:
-            result = take_step(ctx, state if formula.a2 else _without_older(state),
+            result = take_step(ctx, run.state if formula.a2 else _without_older(run.state),
                                step.t0, step.t1, step.dt, formula)
         except SolverError as exc:  # NewtonError included
             planner.failed(step, exc)
             continue
-        error = _local_error(tc, species, result, step.t1, accepted) \
+        error = _local_error(tc, species, result, step.t1, run.accepted) \
             if planner.adaptive else None
         if not planner.judge(step, result.newton_iterations, error):
             continue
-        totals.add(result.budget)
-        lows = stats.add(result, step.dt, species, site.points, rates)
+        run.commit(step, result, rates)
+        try:
+            if on_step is not None:
+                on_step(step.t1, tc.end)
+        except KeyboardInterrupt:
+            if checkpoints is not None:
+                checkpoints.save(run.checkpoint())
+            raise
+        if any(abs(step.t1 - x) <= 1e-9 * max(1.0, x) for x in out_set):
+            run.outputs += 1
+            yield run.snapshot(step.t1)
+        if checkpoints is not None and not planner.finished:
+            checkpoints.offer(run.checkpoint)
+
+
+def _yields_until(t: float, out_set: set[float]) -> int:
+    """Snapshots a run yields up to time ``t`` [s]: t = 0 and the output times reached."""
+    return 1 + sum(1 for x in out_set if 0 < x <= t * (1.0 + 1e-12))
+
+
+@dataclass
+class _RunningState:
+    """What the loop of :func:`run_transport` carries from step to step (a
+    :class:`~fe3d.transport.checkpoint.Checkpoint` is its frozen copy)."""
+
+    site: SiteMesh
+    species: tuple[SpeciesModel, ...]
+    probe: sp.csr_matrix
+    planner: StepPlanner
+    state: StepState
+    totals: BudgetTotals
+    stats: RunStatistics
+    history_times: list[float]
+    history: dict[str, list[FloatArray]]
+    accepted: list[tuple[float, dict[str, FloatArray]]]  # levels for the local error
+    dt_prev: float | None
+    outputs: int  # snapshots yielded
+    fingerprints: tuple[str, str]  # mesh, flow
+
+    @classmethod
+    def started(cls, site: SiteMesh, flow: FlowField, inputs: TransportInputs,
+                ctx: StepContext, planner: StepPlanner, probe: sp.csr_matrix,
+                ) -> _RunningState:
+        """The state at t = 0."""
+        species, n = ctx.species, site.n_nodes
+        start = initial_fields(inputs, site, ctx.sources)
+        fields = {s.name: start[s.name] for s in species}
+        medium = ctx.systems.medium
+        return cls(site=site, species=species, probe=probe, planner=planner,
+                   state=StepState(fields=fields,
+                                   held_before={s.name: np.zeros(n, dtype=bool)
+                                                for s in species},
+                                   older=None, last_budget={}),
+                   totals=BudgetTotals(species, fields),
+                   stats=RunStatistics({s.name: grid_peclet(s, medium.seepage_velocity,
+                                                            medium.porosity)
+                                        for s in species}),
+                   history_times=[0.0],
+                   history={s.name: [probe @ fields[s.name]] for s in species},
+                   accepted=[(0.0, fields)], dt_prev=None, outputs=0,
+                   fingerprints=_fingerprints(site, flow))
+
+    @classmethod
+    def resumed(cls, site: SiteMesh, flow: FlowField, ctx: StepContext, planner: StepPlanner,
+                probe: sp.csr_matrix, saved: Checkpoint) -> _RunningState:
+        """The state saved in ``saved``, which must belong to this mesh and flow."""
+        prints = _fingerprints(site, flow)
+        if prints != (saved.mesh, saved.flow):
+            what = "mesh" if prints[0] != saved.mesh else "flow field"
+            allowed = f"was saved with another {what}: run again from the start"
+            raise CaseError(RESUME_KEY, f"checkpoint at t = {saved.time:.6g} s", allowed)
+        planner.resume_from(saved.planner)
+        totals = BudgetTotals(ctx.species, saved.state.fields)
+        totals.resume_from(saved.totals)
+        stats = RunStatistics(dict(saved.statistics.peclet))
+        stats.resume_from(saved.statistics)
+        return cls(site=site, species=ctx.species, probe=probe, planner=planner,
+                   state=saved.state, totals=totals, stats=stats,
+                   history_times=[float(t) for t in saved.history_times],
+                   history={k: list(v) for k, v in saved.history.items()},
+                   accepted=list(saved.accepted), dt_prev=saved.dt_prev,
+                   outputs=saved.outputs, fingerprints=prints)
+
+    def commit(self, step: PlannedStep, result: StepResult, rates: dict[str, float]) -> None:
+        """Fold an accepted step in: totals, diagnostics, fields, levels and histories."""
+        self.totals.add(result.budget)
+        lows = self.stats.add(result, step.dt, self.species, self.site.points, rates)
         if logger.isEnabledFor(logging.INFO):
-            logger.info("step %d: t = %.6g s, Δt = %.4g s, %s%s", stats.n_steps, step.t1,
+            logger.info("step %d: t = %.6g s, Δt = %.4g s, %s%s", self.stats.n_steps, step.t1,
                         step.dt, "; ".join(lows), f"; Newton {result.newton_iterations} "
                         "iterations" if result.solver_kind == "newton" else "")
-        restart = planner.advance(step)
-        state = next_state(result, site.n_nodes, restart)
-        dt_prev = None if restart else step.dt  # a source switched: multistep schemes restart
-        accepted = [(step.t1, state.fields)] if restart else [
-            *accepted[-2:], (step.t1, state.fields)]
-        history_times.append(step.t1)
-        for s in species:
-            history[s.name].append(probe @ state.fields[s.name])
-        if on_step is not None:
-            on_step(step.t1, tc.end)
-        if any(abs(step.t1 - x) <= 1e-9 * max(1.0, x) for x in out_set):
-            yield snapshot(step.t1)
+        restart = self.planner.advance(step)
+        self.state = next_state(result, self.site.n_nodes, restart)
+        self.dt_prev = None if restart else step.dt  # a source switched: multistep restart
+        self.accepted = [(step.t1, self.state.fields)] if restart else [
+            *self.accepted[-2:], (step.t1, self.state.fields)]
+        self.history_times.append(step.t1)
+        for s in self.species:
+            self.history[s.name].append(self.probe @ self.state.fields[s.name])
+
+    def snapshot(self, t: float) -> Snapshot:
+        """The snapshot at time ``t`` [s] (copies)."""
+        fields = self.state.fields
+        return Snapshot(time=t, concentration={k: c.copy() for k, c in fields.items()},
+                        budgets=self.totals.at(t, self.species, fields),
+                        history_times=np.array(self.history_times),
+                        history={k: np.array(v) for k, v in self.history.items()},
+                        diagnostics=self.stats.diagnostics(self.planner.step_cuts,
+                                                           self.planner.rejected))
+
+    def checkpoint(self) -> Checkpoint:
+        """A frozen copy of the state (arrays shared: the loop never changes them)."""
+        n_obs = self.probe.shape[0]
+        return Checkpoint(
+            state=self.state, planner=self.planner.state(), totals=self.totals.state(),
+            statistics=self.stats.state(), history_times=np.array(self.history_times),
+            history={k: np.array(v).reshape(len(v), n_obs) for k, v in self.history.items()},
+            accepted=tuple(self.accepted), dt_prev=self.dt_prev, outputs=self.outputs,
+            mesh=self.fingerprints[0], flow=self.fingerprints[1])
+
+
+def _fingerprints(site: SiteMesh, flow: FlowField) -> tuple[str, str]:
+    """Fingerprints of the mesh (points, cells) and of the flow (head, Darcy flux)."""
+    return fingerprint(site.points, site.cells), fingerprint(flow.head, flow.darcy_flux)
 
 
 def _without_older(state: StepState) -> StepState:
