@@ -21,7 +21,7 @@ from fe3d._typing import FloatArray
 from fe3d.flow.solve import FlowField
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import BoundaryFacets
-from fe3d.post.probes import breakthrough
+from fe3d.post.probes import breakthrough, crossing_time
 
 __all__ = ["Receptor", "ReceptorResult", "ReceptorRow", "receptor_operator", "receptor_result",
            "receptors_of", "time_above"]
@@ -119,17 +119,17 @@ class ReceptorResult:
 
 
 def time_above(times: FloatArray, values: FloatArray, limit: float) -> float:
-    """Total time [s] the piecewise-linear series ``values`` (at ``times``) spends above
-    ``limit``: every interval counted in full, in part (from or to the interpolated
-    crossing) or not at all."""
+    """Total time [s] the series ``values`` (at ``times``) spends above ``limit``: every
+    interval counted in full, in part (from or to the crossing, interpolated as
+    :func:`~fe3d.post.probes.crossing_time` does, so a single excursion lasts exactly from
+    the first to the last time above the limit) or not at all."""
     t, c = np.asarray(times, dtype=float), np.asarray(values, dtype=float)
-    dt, c0, c1 = np.diff(t), c[:-1], c[1:]
-    above0, above1 = c0 > limit, c1 > limit
-    crossing = above0 != above1
-    share = np.where(crossing, (np.maximum(c0, c1) - limit)
-                     / np.where(crossing, np.abs(c1 - c0), 1.0), 0.0)
-    total = np.sum(dt * (above0 & above1)) + np.sum(dt * share)
-    return float(total)
+    above = c > limit
+    total = float(np.sum(np.diff(t) * (above[:-1] & above[1:])))
+    for i in np.nonzero(above[:-1] != above[1:])[0]:
+        cross = crossing_time(t, c, int(i), limit)
+        total += (t[i + 1] - cross) if above[i + 1] else (cross - t[i])
+    return total
 
 
 def receptor_result(rows: list[ReceptorRow], limit: float) -> ReceptorResult:

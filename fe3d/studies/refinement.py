@@ -142,7 +142,8 @@ class QuantityVerdict:
     """The verdict on one quantity over the levels (values coarse → fine, SI).
 
     ``verdict`` is one word: ``converged``, ``converging``, ``oscillatory``, ``diverging``,
-    ``unchanged``, ``missing`` (a value is absent on some level: ``missing_levels``) or
+    ``unchanged`` (equal to round-off, or a limit not reached on any of three or more
+    levels), ``missing`` (a value is absent on some level only: ``missing_levels``) or
     ``incomplete`` (fewer than three levels ran: values without an order). ``amplitude`` is
     (max − min)/|fine| of the last three values for ``oscillatory`` (absolute when the fine
     value is 0); ``growth`` is |ε21/ε32| for ``diverging``.
@@ -182,6 +183,8 @@ def judge(values: Sequence[float | None], factors: Sequence[float], *,
     """
     vals = tuple(values)
     missing = tuple(k for k, v in enumerate(vals) if v is None)
+    if missing and len(missing) == len(vals) >= 3:  # never reached on any level: one answer
+        return QuantityVerdict(vals, "unchanged")
     if missing:
         return QuantityVerdict(vals, "missing", missing_levels=missing)
     if len(vals) < 3:
@@ -454,7 +457,8 @@ def _write_reports(case: Case, study: RefinementStudy, out_dir: Path) -> None:
              "= monotone, GCI above that; oscillatory = the differences change sign "
              "(amplitude: max − min of the three finest values over the fine value); "
              "diverging = monotone with differences growing with refinement; unchanged = "
-             "equal to round-off; missing = a limit not reached on some level. Order, "
+             "equal to round-off, or a limit not reached on any level; missing = a limit "
+             "not reached on some levels only. Order, "
              "extrapolated value and GCI: Celik et al. (2008), safety factor 1.25.", "",
              f"| quantity | unit | {' | '.join(f'level {lv.index}' for lv in ran)} | order | "
              "extrapolated | GCI (fine) | verdict |",

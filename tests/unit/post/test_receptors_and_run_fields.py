@@ -14,9 +14,11 @@ VALUES = np.array([0.0, 1.0, 3.0, 1.0, 0.0])
 
 
 def test_time_above_counts_the_interpolated_crossings():
-    """Above 2 between the linear crossings at 1.5 and 2.5: 1.0 in all (the series'
-    own piecewise-linear geometry, exact to round-off)."""
-    assert time_above(TIMES, VALUES, 2.0) == pytest.approx(1.0, abs=1e-12)
+    """Above 2 between the crossings on the parabola in log c, 2 ∓ √(1 − ln 2/ln 3) (by
+    hand, see below); above 0.5 from 0.5 to 3.5 (the crossings next to the zeros are linear:
+    no log there); never above 5, always above −1."""
+    half = np.sqrt(1.0 - np.log(2.0) / np.log(3.0))
+    assert time_above(TIMES, VALUES, 2.0) == pytest.approx(2.0 * half, abs=1e-12)
     assert time_above(TIMES, VALUES, 5.0) == 0.0
     assert time_above(TIMES, VALUES, -1.0) == pytest.approx(4.0, abs=1e-12)
     assert time_above(TIMES, VALUES, 0.5) == pytest.approx(3.0, abs=1e-12)  # 0.5 to 3.5
@@ -30,9 +32,12 @@ def _rows(values: np.ndarray) -> list[ReceptorRow]:
 def test_receptor_result_states_peak_crossings_and_mass():
     r = receptor_result(_rows(VALUES), 2.0)
     assert (r.peak, r.peak_time, r.peak_mass_flux) == (3.0, 2.0, 6.0)
-    assert r.first_above_limit == pytest.approx(1.5, abs=1e-12)
-    assert r.last_above_limit == pytest.approx(2.5, abs=1e-12)
-    assert r.time_above_limit == pytest.approx(1.0, abs=1e-12)
+    # crossings on the parabola in log c through (1, 1), (2, 3), (3, 1) (fe3d.post.probes):
+    # ln c = ln 3 (1 − (t − 2)²) is ln 2 at t = 2 ∓ √(1 − ln 2/ln 3), by hand
+    half = np.sqrt(1.0 - np.log(2.0) / np.log(3.0))
+    assert r.first_above_limit == pytest.approx(2.0 - half, abs=1e-12)
+    assert r.last_above_limit == pytest.approx(2.0 + half, abs=1e-12)
+    assert r.time_above_limit == pytest.approx(2.0 * half, abs=1e-12)
     assert r.mass_out == 40.0  # the last row's cumulative mass
     never = receptor_result(_rows(VALUES), 5.0)
     assert never.first_above_limit is None and never.last_above_limit is None

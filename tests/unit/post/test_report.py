@@ -105,13 +105,18 @@ def test_summary_json_has_no_float_noise(tmp_path):
 
 
 def test_breakthrough_interpolates_crossing_times():
+    """Crossings on the parabola in log c through the three positive samples around them
+    (fe3d.post.probes): ln c = ln 3 (1 − (t − 2)²) through (1, 1), (2, 3), (3, 1) is 2 at
+    t = 2 ∓ √(1 − ln 2/ln 3), by hand. The top 1, 3, 1 is a kink between straight flanks
+    (0, 1 and 1, 0), not a smooth peak: the stored value stays."""
     t = np.array([0.0, 1.0, 2.0, 3.0, 4.0])
     c = np.array([0.0, 1.0, 3.0, 1.0, 0.0])
     b = breakthrough(t, c, 2.0)
     assert b.peak == 3.0
     assert b.peak_time == 2.0
-    assert b.first_above_limit == pytest.approx(1.5, abs=1e-12)
-    assert b.last_above_limit == pytest.approx(2.5, abs=1e-12)
+    half = np.sqrt(1.0 - np.log(2.0) / np.log(3.0))
+    assert b.first_above_limit == pytest.approx(2.0 - half, abs=1e-12)
+    assert b.last_above_limit == pytest.approx(2.0 + half, abs=1e-12)
     assert breakthrough(t, c, 5.0).first_above_limit is None
 
 

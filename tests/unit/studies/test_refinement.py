@@ -160,6 +160,8 @@ def test_missing_and_incomplete():
     assert v.verdict == "missing"
     assert v.missing_levels == (0,)
     assert judge([3.0, 2.9], [1.0, 1.5]).verdict == "incomplete"
+    # a limit never reached on any of three levels is one answer, not a gap
+    assert judge([None, None, None], [1.0, 1.5, 2.25]).verdict == "unchanged"
 
 
 def test_refine_case_divides_sizes_and_step():
