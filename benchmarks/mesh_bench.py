@@ -1,4 +1,5 @@
-"""Mesh benchmark (``make bench``, second line): a layered site of about 1 M tetrahedra.
+"""Mesh benchmark (``make bench``, second line): a layered site of about 1 M tetrahedra and
+one of about 1 M nodes (issue 16: ≤ 15 s).
 
 An invented polygon site with 12 boreholes, four units (one pinching out), a lens, a
 refinement line along the stream edge and a pumping well, meshed from scratch. Reports wall
@@ -8,7 +9,9 @@ section of docs/performance.md (the rest of the file is kept).
 
 from __future__ import annotations
 
+import json
 import resource
+import subprocess
 import sys
 import tempfile
 import time
@@ -71,41 +74,52 @@ def run(cell: float, fine: float) -> dict[str, float]:
         folder = Path(tmp)
         (folder / "boreholes.csv").write_text(_boreholes(), encoding="utf-8")
         case = site_case(folder, cell, fine)
-        t = time.perf_counter()
+        build_mesh(site_case(folder, 60.0, 20.0))  # compiled kernels loaded, not timed
+        t, cpu = time.perf_counter(), time.process_time()
         site = build_mesh(case)
-        wall = time.perf_counter() - t
+        wall, cpu = time.perf_counter() - t, time.process_time() - cpu
     q = site.report.quality.as_dict()
     return {"cells": site.n_cells, "nodes": site.n_nodes, "plan_triangles":
-            site.report.plan.tri.shape[1], "mesh_s": wall,
+            site.report.plan.tri.shape[1], "mesh_s": wall, "cpu_s": cpu,
             "min_dihedral": q["min_dihedral_deg"], "p01_dihedral": q["p01_dihedral_deg"],
             "worst_aspect": q["worst_aspect_ratio"],
             "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0}
 
 
 def main() -> int:
-    sizes = [(9.0, 3.0)] if "--quick" not in sys.argv else [(30.0, 10.0)]
+    if len(sys.argv) == 4 and sys.argv[1] == "--one":
+        print(json.dumps(run(float(sys.argv[2]), float(sys.argv[3]))))
+        return 0
+    sizes = [(9.0, 3.0), (3.9, 1.3)] if "--quick" not in sys.argv else [(30.0, 10.0)]
     rows = []
     for cell, fine in sizes:
-        r = run(cell, fine)
+        out = subprocess.run([sys.executable, __file__, "--one", str(cell), str(fine)],
+                             capture_output=True, text=True, check=True)
+        r = json.loads(out.stdout.strip().splitlines()[-1])
         rows.append((cell, fine, r))
         print({k: round(v, 3) if isinstance(v, float) else v for k, v in r.items()})
     if "--quick" in sys.argv:
         return 0
+    load = Path("/proc/loadavg").read_text().split()[:3]
     lines = ["## Mesh", "",
              "Measured by `make bench` (benchmarks/mesh_bench.py): an invented polygon site with "
              "12 boreholes, four units (one pinching out), a lens, a refined stream edge and a "
              "pumping well, 17 sublayers, built from scratch (gmsh plan mesh, surfaces, "
-             "extrusion, renumbering, quality report) in one process.", "",
+             "extrusion, renumbering, quality report), each size in its own process after a "
+             "small mesh has loaded the compiled kernels. CPU = the process's own CPU time. "
+             f"Load average when written: {' '.join(load)}.", "",
              "| plan cell / fine [m] | plan triangles | tetrahedra | nodes | mesh [s] | "
-             "min / 1st-pct dihedral [°] | worst aspect ratio | peak RSS [MiB] |",
-             "|---|---|---|---|---|---|---|---|"]
+             "CPU [s] | tetrahedra per CPU second | min / 1st-pct dihedral [°] | "
+             "worst aspect ratio | peak RSS [MiB] |",
+             "|---|---|---|---|---|---|---|---|---|---|"]
     for cell, fine, r in rows:
         lines.append(f"| {cell:g} / {fine:g} | {r['plan_triangles']:,} | {r['cells']:,} | "
-                     f"{r['nodes']:,} | {r['mesh_s']:.1f} | {r['min_dihedral']:.1f} / "
+                     f"{r['nodes']:,} | {r['mesh_s']:.1f} | {r['cpu_s']:.1f} | "
+                     f"{r['cells'] / r['cpu_s']:,.0f} | {r['min_dihedral']:.1f} / "
                      f"{r['p01_dihedral']:.1f} | {r['worst_aspect']:.1f} | "
                      f"{r['peak_mib']:.0f} |")
-    lines += ["", "Target: about 1 M tetrahedra in ≤ 60 s on the 2-core machine. The small "
-              "dihedral angles are those of flat cells (plan size ≫ sublayer thickness), "
+    lines += ["", "Targets: about 1 M tetrahedra in ≤ 60 s; 1 M nodes in ≤ 15 s (issue 16). The "
+              "small dihedral angles are those of flat cells (plan size ≫ sublayer thickness), "
               "normal for layered aquifer meshes; they are reported, not hidden.", ""]
     from perf_doc import replace_section
 
