@@ -107,7 +107,6 @@ def newton(
     line_search: bool = True,
     max_halvings: int = 10,
     norm: Callable[[FloatArray], float] = _l2,
-    reference_norm: float | None = None,
     forcing: Forcing | None = None,
 ) -> NewtonResult:
     """Solve R(x) = 0 from ``x0``.
@@ -120,12 +119,8 @@ def newton(
         (x, r) ↦ δ with J(x) δ = r, J = ∂R/∂x at x; with ``forcing``, (x, r, η) ↦ δ with
         ‖r − J δ‖ ≤ η ‖r‖ (the solve's own measure of it).
     rtol, atol
-        Converged when ‖R(x_k)‖ ≤ max(atol, rtol ‖R_ref‖), or when the correction is at
+        Converged when ‖R(x_k)‖ ≤ max(atol, rtol ‖R(x_0)‖), or when the correction is at
         round-off level (max|δ| ≤ 4ε max|x|, see ``ROUND_OFF``), whichever comes first.
-    reference_norm
-        ‖R_ref‖ [units of R]; default ‖R(x_0)‖. A caller with a better start than its
-        natural one passes the norm at the natural one, so that the better start saves
-        iterations instead of tightening the target.
     forcing
         Inexact Newton with Eisenstat & Walker's forcing terms (R14b); None: the solve is
         called as (x, r) and trusted to be accurate.
@@ -152,7 +147,7 @@ def newton(
     if not np.isfinite(r_norm):
         msg = "Newton: the residual is not finite at the starting point"
         raise NewtonError(msg, norms)
-    target = max(atol, rtol * (r_norm if reference_norm is None else reference_norm))
+    target = max(atol, rtol * r_norm)
     etas: list[float] = []
     for _ in range(max_iter):
         if r_norm <= target:

@@ -25,7 +25,6 @@ from fe3d.transport.limiter import limited_target_fluxes
 from fe3d.transport.model import RateLaw, SpeciesModel
 from fe3d.transport.newton import Forcing, newton
 from fe3d.transport.newton_correction import CorrectionSolver
-from fe3d.transport.newton_guess import along_extrapolation, extrapolated
 from fe3d.transport.shock import isotropic_stiffness, shock_diffusivity
 from fe3d.transport.sources import SourceGeometry
 from fe3d.transport.systems import NearbySolver, StepSystem, StepSystems
@@ -471,7 +470,8 @@ def nonlinear_step(
         last["x"] = x
         return out
 
-    def jacobian_solve(x: FloatArray, r: FloatArray, eta: float) -> FloatArray:
+    def jacobian_diagonal(x: FloatArray) -> FloatArray:
+        """J − S_ff on the free nodes at x (T10, T11)."""
         c, dloss = last["c"], last["dloss"]
         if last.get("x") is not x:
             c = new.copy()
@@ -480,21 +480,19 @@ def nonlinear_step(
         extra = th * dloss[free]
         if nonlin_sorption:
             extra += storage_weight * s.sorbed(c)[1][free]
-        return corrections.solve(extra, r, eta)
+        return extra
+
+    def jacobian_solve(x: FloatArray, r: FloatArray, eta: float) -> FloatArray:
+        return corrections.solve(jacobian_diagonal(x), r, eta)
 
     # an absolute floor at the round-off of evaluating R: near a steady state the first
     # residual is already tiny and tol times it would lie below what floating point reaches
     scale = max(float(np.linalg.norm(rhs[free])), float(np.linalg.norm(S_ff @ old[free])))
-    # a multistep step starts extrapolated from the levels before (R14c); the tolerance
-    # stays relative to ‖R(cⁿ)‖, so a better start saves iterations, not tightens the target
-    x0, reference = old[free].copy(), None
-    if prev is not None and formula.a2 != 0.0:  # BDF2: a1 = −(1 + ω), ω = Δt_n/Δt_{n−1}
-        ahead = extrapolated(old, prev, -formula.a1 - 1.0,
-                             _guess_ceiling(old, new, step_system.fixed))
-        x0, reference = along_extrapolation(residual, old[free], ahead[free])
+    # Newton starts from cⁿ: its first iterate is the linearised step's solution (R14c)
+    x0 = old[free].copy()
     result = newton(residual, jacobian_solve, x0, rtol=tol,
                     atol=ROUND_OFF_FACTOR * np.finfo(float).eps * scale, max_iter=max_iter,
-                    reference_norm=reference, forcing=Forcing())
+                    forcing=Forcing())
     logger.info("%s: Newton %d iterations, residual norms %s, Krylov iterations %s",
                 s.name, result.iterations, ", ".join(f"{r:.2e}" for r in result.residual_norms),
                 corrections.iterations, extra={"krylov_iterations": corrections.iterations})
@@ -506,11 +504,6 @@ def nonlinear_step(
         if nonlin_sorption else 0.0
     decayed = dt * (sorbed_loss + float((th * loss_new + (1 - th) * loss_old).sum()))
     return c, r_full, decayed, result.iterations
-
-
-def _guess_ceiling(old: FloatArray, held: FloatArray, fixed: IndexArray) -> float:
-    """Largest physical value of a step's start [kg/m³]: its old or held values (R14c)."""
-    return max(float(old.max(initial=0.0)), float(held[fixed].max(initial=0.0)))
 
 
 def _sorbed_decay_rate(s: SpeciesModel, new: FloatArray, old: FloatArray,

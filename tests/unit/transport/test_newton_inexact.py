@@ -1,4 +1,4 @@
-"""Inexact Newton (theory.md R14b, R14c): the forcing terms against Eisenstat & Walker's
+"""Inexact Newton (theory.md R14b): the forcing terms against Eisenstat & Walker's
 formula, and a step whose corrections are solved only to those terms still meeting the run's
 Newton tolerance."""
 
@@ -16,7 +16,6 @@ from fe3d.linalg import LinearSolver
 from fe3d.transport.model import Coefficients, SpeciesModel
 from fe3d.transport.newton import Forcing, forcing_term, newton
 from fe3d.transport.newton_correction import CorrectionSolver
-from fe3d.transport.newton_guess import along_extrapolation, extrapolated
 from fe3d.transport.step import ROUND_OFF_FACTOR, nonlinear_step
 from fe3d.transport.systems import StepSystem
 from fe3d.transport.timeschemes import StepCoefficients
@@ -155,17 +154,4 @@ def test_nonlinear_step_with_iterative_corrections_meets_the_newton_tolerance(ca
     bound = np.sqrt(np.linalg.norm(J_inv, 1) * np.linalg.norm(J_inv, np.inf)) * r_end
     assert np.linalg.norm(c[free] - x) <= 1.01 * bound + 16 * EPS * np.linalg.norm(x)
     assert c[0] == 2.0
-
-
-def test_start_along_the_extrapolation_never_raises_the_secant_residual():
-    """R(x) = x − 1 (linear, so the secant model is exact): from xⁿ = 0 towards x_e = 3
-    the best point is β = 1/3, x₀ = 1; towards x_e = −1 it is β = 0 (the extrapolation
-    only raises the residual); exact to round-off."""
-    res = lambda x: x - 1.0  # noqa: E731
-    x0, r0 = along_extrapolation(res, np.zeros(4), np.full(4, 3.0))
-    assert np.allclose(x0, 1.0, rtol=0, atol=4 * EPS) and r0 == pytest.approx(2.0)
-    x0, _ = along_extrapolation(res, np.zeros(4), np.full(4, -1.0))
-    assert np.all(x0 == 0.0)
-    assert np.all(extrapolated(np.array([1.0, 0.5]), np.array([0.2, 1.0]), 1.0, 1.5)
-                  == np.array([1.5, 0.0]))  # 1.8 and 0 clipped to [0, 1.5]
 
