@@ -13,6 +13,7 @@ import numpy as np
 from fe3d._typing import BoolArray, FloatArray, IndexArray
 from fe3d.case.schema import Case
 from fe3d.flow.boundaries import in_polygon
+from fe3d.post.cut_grid import crossing_grid
 
 __all__ = [
     "PlanField",
@@ -22,6 +23,7 @@ __all__ = [
     "SiteFeatures",
     "horizontal_section",
     "mean_flow_direction",
+    "plan_columns",
     "plan_maximum",
     "section_marks",
     "section_through",
@@ -125,10 +127,7 @@ def plan_maximum(points: FloatArray, values: FloatArray, outline: FloatArray) ->
     """
     from scipy.spatial import Delaunay
 
-    size = float(np.ptp(points[:2], axis=1).max()) or 1.0
-    keys = np.round(points[:2] / (1e-9 * size)).astype(np.int64)
-    _, first, column = np.unique(keys, axis=1, return_index=True, return_inverse=True)
-    column = column.ravel()
+    first, column = plan_columns(points)
     top = np.full(first.size, -np.inf)
     np.maximum.at(top, column, values)
     x, y = points[0, first], points[1, first]
@@ -136,6 +135,18 @@ def plan_maximum(points: FloatArray, values: FloatArray, outline: FloatArray) ->
     cx, cy = x[tri].mean(axis=0), y[tri].mean(axis=0)
     inside = in_polygon(cx, cy, [tuple(p) for p in outline.T])
     return PlanField(x, y, np.ascontiguousarray(tri[:, inside]), top)
+
+
+def plan_columns(points: FloatArray) -> tuple[IndexArray, IndexArray]:
+    """The vertical columns of the nodes ``(3, n)`` [m]: the first node of each distinct
+    plan position ``(k,)`` and each node's column ``(n,)``, positions grouped to 1e-9 of
+    the site's size (one integer key per position: x key × (y range + 1) + y key)."""
+    lo = points[:2].min(axis=1, keepdims=True)
+    size = float(np.ptp(points[:2], axis=1).max()) or 1.0
+    keys = np.round((points[:2] - lo) / (1e-9 * size)).astype(np.int64)
+    key = keys[0] * (int(keys[1].max()) + 1) + keys[1]  # < 1e18: fits int64
+    _, first, column = np.unique(key, return_index=True, return_inverse=True)
+    return first, column.ravel()
 
 
 def mean_flow_direction(darcy_flux: FloatArray, cell_volumes: FloatArray) -> FloatArray:
@@ -185,16 +196,13 @@ def vertical_section(points: FloatArray, cells: IndexArray, values: FloatArray,
     """Cut the tetrahedra by the vertical plane through the plan segment ``start``–``end``
     [m] and keep the part between them. The values at the cut's vertices are interpolated
     linearly along the cut edges, which is the P1 field itself."""
-    import pyvista as pv
-
-    grid = pv.UnstructuredGrid({pv.CellType.TETRA: np.ascontiguousarray(cells.T)},
-                               np.ascontiguousarray(points.T))
-    grid.point_data["v"] = values
     d = (end - start) / float(np.hypot(*(end - start)))
     normal = (float(-d[1]), float(d[0]), 0.0)
-    cut = grid.slice(normal=normal, origin=(float(start[0]), float(start[1]), 0.0),
-                     generate_triangles=True)
-    if cut.n_points == 0:
+    grid = crossing_grid(points, cells, (points[0] - start[0]) * normal[0]
+                         + (points[1] - start[1]) * normal[1], {"v": values})
+    cut = None if grid is None else grid.slice(
+        normal=normal, origin=(float(start[0]), float(start[1]), 0.0), generate_triangles=True)
+    if cut is None or cut.n_points == 0:
         msg = "the section plane misses the mesh"
         raise ValueError(msg)
     xyz = np.asarray(cut.points).T
@@ -232,14 +240,10 @@ def horizontal_section(points: FloatArray, cells: IndexArray, values: FloatArray
                        elevation: float) -> PlanField:
     """The P1 field on the horizontal plane z = ``elevation`` [m] (cut as in
     :func:`vertical_section`): plan positions, triangles and values of the cut."""
-    import pyvista as pv
-
-    grid = pv.UnstructuredGrid({pv.CellType.TETRA: np.ascontiguousarray(cells.T)},
-                               np.ascontiguousarray(points.T))
-    grid.point_data["v"] = values
-    cut = grid.slice(normal=(0.0, 0.0, 1.0), origin=(0.0, 0.0, float(elevation)),
-                     generate_triangles=True)
-    if cut.n_points == 0:
+    grid = crossing_grid(points, cells, points[2] - elevation, {"v": values})
+    cut = None if grid is None else grid.slice(
+        normal=(0.0, 0.0, 1.0), origin=(0.0, 0.0, float(elevation)), generate_triangles=True)
+    if cut is None or cut.n_points == 0:
         msg = f"the plane z = {elevation:g} m misses the mesh"
         raise ValueError(msg)
     xyz = np.asarray(cut.points).T

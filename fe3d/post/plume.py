@@ -18,6 +18,7 @@ from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import Case
 from fe3d.flow.solve import FlowField
 from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.post.cut_grid import crossing_grid
 from fe3d.post.files import write_atomic
 from fe3d.post.iso_volume import region_above
 from fe3d.transport.model import ISOTHERMS
@@ -150,21 +151,12 @@ def write_isosurface(path: Path, points: FloatArray, cells: IndexArray, conc: Fl
     """Contour surface c = level of a P1 field as .vtp (an empty file when nothing exceeds).
 
     Only the cells the level reaches (some node at or above it, some at or below) are handed
-    to VTK's contour filter: the surface lies in them alone, and the filter then reads a few
-    per cent of the mesh."""
+    to VTK's contour filter (:func:`~fe3d.post.cut_grid.crossing_grid`): the surface lies
+    in them alone, and the filter then reads a few per cent of the mesh."""
     import pyvista as pv
 
-    touches = (conc >= level)[cells].any(axis=0) & (conc <= level)[cells].any(axis=0)
-    cut = cells[:, touches]
-    if cut.size:
-        nodes, local = np.unique(cut, return_inverse=True)
-        grid = pv.UnstructuredGrid(
-            {pv.CellType.TETRA: np.ascontiguousarray(local.reshape(cut.shape).T)},
-            np.ascontiguousarray(points[:, nodes].T))
-        grid.point_data[name] = conc[nodes]
-        surf = grid.contour([level], scalars=name)
-    else:
-        surf = pv.PolyData()
+    grid = crossing_grid(points, cells, conc - level, {name: conc})
+    surf = pv.PolyData() if grid is None else grid.contour([level], scalars=name)
     write_atomic(path, lambda p: surf.save(str(p)))
     return path
 

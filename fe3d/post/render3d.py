@@ -10,6 +10,7 @@ from pathlib import Path
 import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.post.cut_grid import crossing_grid
 from fe3d.post.files import write_atomic
 from fe3d.post.maps import SiteFeatures
 
@@ -34,10 +35,8 @@ def render_limit_surface(path: Path, points: FloatArray, cells: IndexArray,
     if not float(values.max()) > limit:
         logger.info("no 3D view: nothing above the limit (%s)", label)
         return None
-    grid = pv.UnstructuredGrid({pv.CellType.TETRA: np.ascontiguousarray(cells.T)},
-                               np.ascontiguousarray(points.T))
-    grid.point_data["c"] = values
-    surface = grid.contour([limit], scalars="c")
+    grid = crossing_grid(points, cells, values - limit, {"c": values})
+    surface = grid.contour([limit], scalars="c")  # not None: some value is above the limit
     stretch = (1.0, 1.0, vertical_scale)
     top = float(points[2].max())
     ring = np.vstack([features.outline.xy, np.full(features.outline.xy.shape[1], top)]).T
@@ -45,7 +44,8 @@ def render_limit_surface(path: Path, points: FloatArray, cells: IndexArray,
     try:
         with pv.vtk_verbosity("off"):  # VTK's note that it found no X display, then uses EGL
             plotter = pv.Plotter(off_screen=True, window_size=list(window))
-            plotter.add_mesh(grid.outline(), color="gray", line_width=1)
+            plotter.add_mesh(pv.Box(bounds=_bounds(points)).outline(), color="gray",
+                             line_width=1)
             plotter.add_mesh(outline, color="black", line_width=3)
             plotter.add_mesh(surface, color="firebrick", smooth_shading=True, opacity=0.85)
             for m in features.marks:
@@ -71,3 +71,10 @@ def render_limit_surface(path: Path, points: FloatArray, cells: IndexArray,
 
     write_atomic(path, lambda p: Image.fromarray(image).save(p, format="PNG"))
     return path
+
+
+def _bounds(points: FloatArray) -> tuple[float, float, float, float, float, float]:
+    """(x_min, x_max, y_min, y_max, z_min, z_max) [m] of ``points`` ``(3, n)``."""
+    lo, hi = points.min(axis=1), points.max(axis=1)
+    return (float(lo[0]), float(hi[0]), float(lo[1]), float(hi[1]), float(lo[2]),
+            float(hi[2]))

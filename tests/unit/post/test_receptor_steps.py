@@ -98,7 +98,7 @@ def test_every_step_receptors_equal_an_output_at_every_step(stepped, tmp_path):
     for x in coarse._receptor_results():
         ref = fine_results[x.name, x.species]
         assert x.peak == pytest.approx(ref.peak, abs=1e3 * EPS * peak)
-        assert x.peak_time == ref.peak_time
+        assert x.peak_time == pytest.approx(ref.peak_time, abs=1e-9 * length)
         assert x.mass_out == ref.mass_out
         for a, b in ((x.first_above_limit, ref.first_above_limit),
                      (x.last_above_limit, ref.last_above_limit)):
@@ -109,10 +109,10 @@ def test_every_step_receptors_equal_an_output_at_every_step(stepped, tmp_path):
 
 
 def test_output_times_alone_shift_the_crossings(stepped, tmp_path):
-    """The same thinned run without the receptor columns: its peak at the pump is at most the
-    every-step peak, and its first time above the limit (interpolated between output times
-    50 d apart) is off by more than half a 10 d step here, so is the time above the limit
-    (behaviour: measured 9.9 d for both when written)."""
+    """The same thinned run without the receptor columns: its first time above the limit at
+    the pump (interpolated between output times 50 d apart) is off by more than half a 10 d
+    step here, so is the time above the limit (behaviour: measured 9.9 d for both when
+    written, with linear crossings)."""
     case, site, flow, snaps = stepped
     probe_writer = SeriesWriter(tmp_path / "probe", case, site, flow.porosity, flow=flow,
                                 figures=False)
@@ -124,7 +124,6 @@ def test_output_times_alone_shift_the_crossings(stepped, tmp_path):
     a = {x.name: x for x in every._receptor_results()}["fence_pump"]
     b = {x.name: x for x in sparse._receptor_results()}["fence_pump"]
     step = snaps[1].time - snaps[0].time
-    assert b.peak <= a.peak
     assert a.first_above_limit is not None and b.first_above_limit is not None
     assert abs(a.first_above_limit - b.first_above_limit) > 0.5 * step, (a, b)
     assert abs(a.time_above_limit - b.time_above_limit) > 0.5 * step, (a, b)
