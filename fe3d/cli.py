@@ -3,8 +3,9 @@
 ``fe3d compare`` (run folders).
 
 Only this module prints or exits. Every :class:`~fe3d.errors.Fe3dError` becomes one line per
-problem on standard error and exit code 2; Ctrl-C one line and exit code 130; no traceback
-is shown.
+problem on standard error and exit code 2; Ctrl-C one line and exit code 130; a file that
+cannot be written (disk full, read-only) one line and 74; code that calls ``sys.exit`` one
+line and 70; no traceback is shown.
 """
 
 from __future__ import annotations
@@ -22,6 +23,8 @@ __all__ = ["main"]
 
 EXIT_BAD_INPUT = 2
 EXIT_INTERRUPTED = 130  # the shell's code for a run stopped by Ctrl-C
+EXIT_CANNOT_WRITE = 74  # a file could not be read or written: disk full, read-only (sysexits)
+EXIT_CODE_STOPPED = 70  # code fe3d runs (a user module, a library) called sys.exit (sysexits)
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -33,8 +36,14 @@ def _parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
     c = sub.add_parser("check", help="validate a case file and summarise the model",
                        description="Validate a case file and print a summary of the model "
-                                   "(units, materials, estimated cell count). Writes nothing.")
+                                   "(units, materials, estimated cell count) and the inputs "
+                                   "outside their usual range. Writes nothing. A "
+                                   "[user_reactions] module is Python code that runs when it "
+                                   "is imported: check imports and tries it only with "
+                                   "--run-user-code (fe3d run always runs it).")
     c.add_argument("case", type=Path, help="case file (TOML)")
+    c.add_argument("--run-user-code", action="store_true",
+                   help="import and try the case's user_reactions module (this runs its code)")
     m = sub.add_parser("mesh", help="build the mesh of a case and report its quality",
                        description="Build (or reuse, if the mesh inputs are unchanged) the mesh "
                                    "of a case, report its quality and where the surface rules "
@@ -134,8 +143,9 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
-def _check(case_path: Path) -> int:
+def _check(case_path: Path, *, run_user_code: bool = False) -> int:
     from rich.console import Console
+    from rich.markup import escape
     from rich.table import Table
 
     from fe3d.pipeline import check_case
@@ -144,11 +154,18 @@ def _check(case_path: Path) -> int:
     from fe3d.units import from_si
 
     case = load_case(case_path)
-    check_case(case, case_path.resolve().parent,  # builds or reuses the mesh; writes nothing
+    user = case.user_reactions
+    checked = case if run_user_code else case.model_copy(update={"user_reactions": None})
+    check_case(checked, case_path.resolve().parent,  # builds or reuses the mesh; writes nothing
                [_default_mesh_folder(case_path),
                 Path(case.output.folder or f"runs/{case_path.stem}")])
     con = Console()
-    con.print(f"[bold]{case.title}[/bold]  ({case_path})")
+    con.print(f"[bold]{escape(case.title)}[/bold]  ({escape(str(case_path))})")
+    if user is not None:
+        how = "imported and tried" if run_user_code else \
+            "NOT imported (it is code that runs; give --run-user-code to try it)"
+        con.print(f"user_reactions module {user.function}: {how}; fe3d run imports and runs "
+                  "it", markup=False, highlight=False)
     verts = case.outline()[0]
     con.print(f"plan: x {min(v[0] for v in verts):g}–{max(v[0] for v in verts):g} m, y "
               f"{min(v[1] for v in verts):g}–{max(v[1] for v in verts):g} m "
@@ -472,7 +489,7 @@ def main(argv: list[str] | None = None) -> int:
         handler.setLevel(logging.WARNING)
     try:
         if args.command == "check":
-            return _check(args.case)
+            return _check(args.case, run_user_code=args.run_user_code)
         if args.command == "mesh":
             return _mesh(args.case, args.out)
         if args.command == "refine":
@@ -496,12 +513,21 @@ def main(argv: list[str] | None = None) -> int:
               "and says so in run.json", file=sys.stderr)
         return EXIT_INTERRUPTED
     except CaseErrors as exc:
-        for e in exc.errors:
-            print(f"error: {e.line()}", file=sys.stderr)  # noqa: T201
+        for line in exc.lines():  # the first MAX_ERROR_LINES, then a count of the rest
+            print(f"error: {line}", file=sys.stderr)  # noqa: T201
         return EXIT_BAD_INPUT
     except Fe3dError as exc:
         print(f"error: {exc}", file=sys.stderr)  # noqa: T201
         return EXIT_BAD_INPUT
+    except OSError as exc:  # disk full, a read-only folder, a file that vanished
+        where = f" {exc.filename}" if exc.filename else ""
+        print(f"error: cannot write or read{where}: {exc.strerror or exc}; a run folder left "  # noqa: T201
+              "behind says in run.json how far it got", file=sys.stderr)
+        return EXIT_CANNOT_WRITE
+    except SystemExit as exc:  # argparse exits before this block; here it is other code
+        print(f"error: code run by fe3d called sys.exit({exc.code!r}) (a user_reactions "  # noqa: T201
+              "module?); the run did not finish", file=sys.stderr)
+        return EXIT_CODE_STOPPED
 
 
 if __name__ == "__main__":

@@ -2,7 +2,25 @@
 
 from __future__ import annotations
 
-__all__ = ["CaseError", "CaseErrors", "Fe3dError", "MeshError", "NewtonError", "SolverError"]
+__all__ = ["MAX_ERROR_LINES", "CaseError", "CaseErrors", "Fe3dError", "MeshError",
+           "NewtonError", "SolverError"]
+
+MAX_ERROR_LINES = 20
+"""Most problems shown one line each; the rest are counted in one closing line (a case
+with 200,000 bad materials must not print 800,000 lines)."""
+
+MAX_SHOWN_VALUE = 300
+"""Most characters of a value shown in an error line (a 2 MB title is not echoed; a long
+file path still is)."""
+
+
+def _shown(value: object) -> str:
+    """``value`` as an error line shows it: strings quoted with control characters escaped
+    (``repr``), at most :data:`MAX_SHOWN_VALUE` characters."""
+    text = repr(value) if isinstance(value, str) else str(value)
+    if len(text) > MAX_SHOWN_VALUE:
+        text = f"{text[:MAX_SHOWN_VALUE - 1]}… ({len(text):,} characters)"
+    return text
 
 
 class Fe3dError(Exception):
@@ -20,8 +38,7 @@ class CaseError(Fe3dError):
 
     def line(self) -> str:
         """The one-line message shown to the user."""
-        shown = repr(self.value) if isinstance(self.value, str) else str(self.value)
-        return f"{self.key_path} = {shown}: {self.allowed}"
+        return f"{self.key_path} = {_shown(self.value)}: {self.allowed}"
 
 
 class CaseErrors(Fe3dError):
@@ -29,7 +46,14 @@ class CaseErrors(Fe3dError):
 
     def __init__(self, errors: list[CaseError]) -> None:
         self.errors = errors
-        super().__init__("\n".join(e.line() for e in errors))
+        super().__init__("\n".join(self.lines()))
+
+    def lines(self, limit: int = MAX_ERROR_LINES) -> list[str]:
+        """One line per problem, the first ``limit`` only, then ``… and K more errors``."""
+        shown = [e.line() for e in self.errors[:limit]]
+        if len(self.errors) > limit:
+            shown.append(f"… and {len(self.errors) - limit:,} more errors")
+        return shown
 
 
 class MeshError(Fe3dError):

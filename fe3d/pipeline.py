@@ -84,11 +84,22 @@ def check_case(case: Case, base_dir: Path | None, mesh_folders: list[Path]) -> N
 
 def check_user_code(case: Case, base_dir: Path | None = None) -> None:
     """Import and probe the user's reaction function named in the case, if any, so that a
-    module that cannot be imported is reported before any work (raises CaseError)."""
+    module that cannot be imported is reported before any work (raises CaseError).
+
+    This runs the user's code. A module that calls ``sys.exit`` while it is imported or
+    probed is reported like one that raises: one CaseError naming the key."""
+    from fe3d.errors import CaseError
+
     user = case.user_reactions
     if user is not None:
-        user_kinetics(user.function, n_species=len(user.species),
-                      key_path="user_reactions.function", search_dirs=[base_dir or Path()])
+        try:
+            user_kinetics(user.function, n_species=len(user.species),
+                          key_path="user_reactions.function", search_dirs=[base_dir or Path()])
+        except SystemExit as exc:
+            allowed = (f"the module called sys.exit({exc.code!r}) when imported or tried; a "
+                       "reaction module must only define functions")
+            key = "user_reactions.function"
+            raise CaseError(key, user.function, allowed) from None
 
 
 @contextmanager

@@ -9,6 +9,7 @@ polygon area) and the readers of the borehole and surface-point CSV files. Value
 from __future__ import annotations
 
 import csv
+import io
 import itertools
 import math
 import statistics
@@ -17,6 +18,8 @@ from typing import Annotated, Literal
 
 from pydantic import Field, model_validator
 
+from fe3d.case.data_files import read_text, shown_cell
+from fe3d.case.plausible import MAX_COORDINATE_M
 from fe3d.case.schema_types import (
     Length,
     Name,
@@ -250,29 +253,30 @@ def _number(text: str, key: str, where: str) -> float:
     try:
         v = float(text)
     except ValueError:
-        raise CaseError(key, text, f"must be a number in metres ({where})") from None
-    if not math.isfinite(v):
-        raise CaseError(key, text, f"must be a finite number in metres ({where})")
+        raise CaseError(key, shown_cell(text), f"must be a number in metres ({where})") \
+            from None
+    if not math.isfinite(v) or abs(v) > MAX_COORDINATE_M:
+        raise CaseError(key, shown_cell(text), f"must be a finite number in metres, at most "
+                        f"{MAX_COORDINATE_M:g} in size ({where})")
     return v
 
 
 def _rows(path: Path, key: str) -> tuple[list[str], list[list[str]], list[int]]:
     """Header cells, data rows (cells stripped) and the file line number of every row
-    (header first); blank lines and lines starting with ``#`` are skipped."""
+    (header first); blank lines and lines starting with ``#`` are skipped. The file must be
+    a regular UTF-8 text file of bounded size (:func:`fe3d.case.data_files.read_text`)."""
     rows, nums = [], []
+    reader = csv.reader(io.StringIO(read_text(path, key=key), newline=""))
     try:
-        with path.open(encoding="utf-8", newline="") as fh:
-            reader = csv.reader(fh)
-            for r in reader:
-                if r and any(c.strip() for c in r) and not r[0].lstrip().startswith("#"):
-                    rows.append(r)
-                    nums.append(reader.line_num)
-    except OSError as exc:
-        raise CaseError(key, str(path), f"cannot be read ({exc.strerror})") from None
-    except UnicodeDecodeError:
-        raise CaseError(key, str(path), "is not UTF-8 text") from None
+        for r in reader:
+            if r and any(c.strip() for c in r) and not r[0].lstrip().startswith("#"):
+                rows.append(r)
+                nums.append(reader.line_num)
+    except csv.Error as exc:  # e.g. a field longer than csv's limit, a quote left open
+        raise CaseError(key, path.name, f"is not a readable CSV (line {reader.line_num}: "
+                        f"{exc})") from None
     if not rows:
-        raise CaseError(key, str(path), "has no header row")
+        raise CaseError(key, path.name, "has no header row")
     header = [c.strip() for c in rows[0]]
     return header, [[c.strip() for c in r] for r in rows[1:]], nums
 
@@ -286,8 +290,9 @@ def read_borehole_file(path: Path, *, key: str = "stratigraphy.borehole_file",
     header, rows, nums = _rows(path, key)
     lower = [h.lower() for h in header]
     if lower[:4] != ["borehole", "x", "y", "ground"]:
-        raise CaseError(key, str(path), "must start with the header columns borehole, x, y, "
-                                        f"ground (found {', '.join(header[:4])})")
+        found = ", ".join(shown_cell(h) for h in header[:4])
+        raise CaseError(key, path.name, "must start with the header columns borehole, x, y, "
+                                        f"ground (found {found})")
     units = header[4:]
     out: list[Borehole] = []
     seen: set[str] = set()
@@ -296,15 +301,17 @@ def read_borehole_file(path: Path, *, key: str = "stratigraphy.borehole_file",
         where = f"{path.name} line {k}"
         if not name:
             raise CaseError(f"{key}[line {k}].borehole", name, "must name the borehole")
+        # a name or unit that is not a plain word is not echoed: the line number is
+        shown = name if shown_cell(name) == name else f"line {k}"
         if name in seen:
-            raise CaseError(f"{key}[{name}]", name, "borehole names must be unique")
+            raise CaseError(f"{key}[{shown}]", shown, "borehole names must be unique")
         seen.add(name)
         if len(r) > len(header):
-            raise CaseError(f"{key}[{name}]", f"{len(r)} columns",
+            raise CaseError(f"{key}[{shown}]", f"{len(r)} columns",
                             f"must have at most the {len(header)} header columns ({where})")
         r = r + [""] * (len(header) - len(r))
-        x, y, g = (_number(r[i], f"{key}[{name}].{header[i]}", where) for i in (1, 2, 3))
-        bases = {u: (_number(v, f"{key}[{name}].{u}", where) if v else None)
+        x, y, g = (_number(r[i], f"{key}[{shown}].{lower[i]}", where) for i in (1, 2, 3))
+        bases = {u: (_number(v, f"{key}[{shown}].{shown_cell(u)}", where) if v else None)
                  for u, v in zip(units, r[4:], strict=True)}
         # values are already numbers in metres: build without the unit-text validators
         out.append(Borehole.model_construct(name=name, x=x, y=y, ground=g, bases=bases))
@@ -315,12 +322,12 @@ def read_surface_file(path: Path, *, key: str) -> list[tuple[float, float, float
     """Read surface points: a header ``x, y, z`` then one point per row [m]."""
     header, rows, nums = _rows(path, key)
     if [h.lower() for h in header[:3]] != ["x", "y", "z"]:
-        raise CaseError(key, str(path), "must have the header x, y, z")
+        raise CaseError(key, path.name, "must have the header x, y, z")
     pts = []
     for k, r in zip(nums[1:], rows, strict=True):
         where = f"{path.name} line {k}"
         if len(r) < 3:
-            raise CaseError(f"{key}[line {k}]", ",".join(r), f"needs x, y and z ({where})")
+            raise CaseError(f"{key}[line {k}]", f"{len(r)} columns", f"needs x, y and z ({where})")
         pts.append(tuple(_number(r[i], f"{key}[line {k}]", where) for i in range(3)))
     return pts  # type: ignore[return-value]
 
@@ -333,7 +340,7 @@ def read_grid_file(path: Path, *, key: str) -> SurfaceGrid:
     """
     header, rows, nums = _rows(path, key)
     if len(header) < 3:
-        raise CaseError(key, str(path), "the header row must hold a label, then at least two "
+        raise CaseError(key, path.name, "the header row must hold a label, then at least two "
                                         "x coordinates in metres")
     xs = [_number(h, f"{key}[line {nums[0]}]", f"{path.name} line {nums[0]}")
           for h in header[1:]]
@@ -348,11 +355,11 @@ def read_grid_file(path: Path, *, key: str) -> SurfaceGrid:
         ys.append(_number(r[0], f"{key}[line {k}]", where))
         zs.append([_number(c, f"{key}[line {k}]", where) for c in r[1:]])
     if len(ys) < 2:
-        raise CaseError(key, str(path), "needs at least two rows of elevations (y values)")
+        raise CaseError(key, path.name, "needs at least two rows of elevations (y values)")
     for what, v in (("x", xs), ("y", ys)):
         d = [b - a for a, b in itertools.pairwise(v)]
         if not (all(x > 0 for x in d) or all(x < 0 for x in d)):
-            raise CaseError(key, str(path), f"the {what} coordinates must be strictly "
+            raise CaseError(key, path.name, f"the {what} coordinates must be strictly "
                                             "increasing or strictly decreasing")
     if xs[0] > xs[-1]:
         xs, zs = xs[::-1], [row[::-1] for row in zs]
@@ -490,18 +497,20 @@ def _stratigraphy_checks(case: object, errs: list[CaseError]) -> None:
     if strat is not None:
         seen: set[str] = set()
         for b in strat.boreholes:
-            key = f"stratigraphy.boreholes[{b.name}]"
+            key = f"stratigraphy.boreholes[{shown_cell(b.name)}]"
             if b.name in seen:
-                errs.append(CaseError(f"{key}.name", b.name, "borehole names must be unique"))
+                errs.append(CaseError(f"{key}.name", shown_cell(b.name),
+                                      "borehole names must be unique"))
             seen.add(b.name)
             if not _inside(case, b.x, b.y):
                 errs.append(CaseError(key, f"x = {b.x:g} m, y = {b.y:g} m",
                                       "the borehole lies outside the model boundary"))
             for u, z in b.bases.items():
                 if u not in units:
-                    errs.append(CaseError(f"{key}.{u}", u, f"must name a unit: {units}"))
+                    errs.append(CaseError(f"{key}.{shown_cell(u)}", shown_cell(u),
+                                          f"must name a unit: {units}"))
                 elif z is not None and z > b.ground + 1e-9:
-                    errs.append(CaseError(f"{key}.{u}", f"{z:g} m",
+                    errs.append(CaseError(f"{key}.{shown_cell(u)}", f"{z:g} m",
                                           f"a unit base must not lie above the ground "
                                           f"({b.ground:g} m)"))
             picked |= {u for u, z in b.bases.items() if z is not None}

@@ -1,21 +1,38 @@
 """TOML text → validated :class:`Case`. Reads the case file and the data files it names
-(borehole picks, surface points, grids, release histories, plume points); never evaluates
-text."""
+(borehole picks, surface points, grids, release histories, plume points) under the rules of
+:mod:`fe3d.case.data_files`; never evaluates text. Inputs outside their usual range are
+logged as warnings (:mod:`fe3d.case.plausible`)."""
 
 from __future__ import annotations
 
+import logging
+import math
 import tomllib
 from pathlib import Path
 from typing import Any
 
 from pydantic import ValidationError
 
+from fe3d.case.data_files import (
+    MAX_CASE_FILE_BYTES,
+    MAX_DATA_FILE_BYTES,
+    MAX_MESH_FILE_BYTES,
+    checked_file,
+    located,
+    read_text,
+)
 from fe3d.case.geology import read_borehole_file, read_grid_file, read_surface_file
+from fe3d.case.plausible import plausibility_warnings
 from fe3d.case.schema import Case, cross_checks
 from fe3d.case.series import read_concentration_points, read_release_file
 from fe3d.errors import CaseError, CaseErrors
 
-__all__ = ["completed_case", "load_case", "parse_case"]
+__all__ = ["MAX_NESTING", "completed_case", "load_case", "parse_case"]
+
+logger = logging.getLogger(__name__)
+
+MAX_NESTING = 12
+"""Deepest nesting of tables and arrays in a case file (the schema needs 6)."""
 
 _ALLOWED_HINTS = {
     "missing": "is required",
@@ -122,6 +139,26 @@ def _errors_from(exc: ValidationError, raw: dict[str, Any]) -> list[CaseError]:
     return out
 
 
+def _raw_problems(raw: dict[str, Any]) -> list[CaseError]:
+    """Non-finite numbers (``nan``, ``inf``) anywhere in the TOML, and nesting deeper than
+    :data:`MAX_NESTING`, one line each with the key path."""
+    out: list[CaseError] = []
+    stack: list[tuple[tuple[Any, ...], Any]] = [((), raw)]
+    while stack:
+        loc, node = stack.pop()
+        if len(loc) > MAX_NESTING:
+            out.append(CaseError(_key_path(loc, raw), _Shown("[…]"),
+                                 f"nests tables or arrays more than {MAX_NESTING} deep"))
+            continue
+        if isinstance(node, dict):
+            stack += [((*loc, k), v) for k, v in reversed(node.items())]
+        elif isinstance(node, list):
+            stack += [((*loc, i), v) for i, v in reversed(list(enumerate(node)))]
+        elif isinstance(node, float) and not math.isfinite(node):
+            out.append(CaseError(_key_path(loc, raw), node, "must be a finite number"))
+    return out
+
+
 def parse_case(text: str, *, source: str = "<case>", base_dir: Path | None = None) -> Case:
     """Validate TOML ``text`` and return the :class:`Case`.
 
@@ -138,6 +175,12 @@ def parse_case(text: str, *, source: str = "<case>", base_dir: Path | None = Non
     except tomllib.TOMLDecodeError as exc:
         raise CaseErrors([CaseError(source, _Shown("(TOML text)"),
                                     f"is not valid TOML: {exc}")]) from None
+    except RecursionError:
+        raise CaseErrors([CaseError(source, _Shown("(TOML text)"), "nests arrays or tables "
+                                    f"too deeply (at most {MAX_NESTING} levels)")]) from None
+    problems = _raw_problems(raw)
+    if problems:
+        raise CaseErrors(problems)
     try:
         case = Case.model_validate(raw)
     except ValidationError as exc:
@@ -164,22 +207,37 @@ def load_case(path: str | Path) -> Case:
     """Read and validate a case file; relative output folders stay relative to the caller."""
     p = Path(path)
     try:
-        text = p.read_text(encoding="utf-8")
-    except OSError as exc:
-        problem = f"cannot be read ({exc.strerror})"
-        raise CaseErrors([CaseError("case file", str(p), problem)]) from None
-    except UnicodeDecodeError as exc:
-        problem = f"is not UTF-8 text (byte {exc.start})"
-        raise CaseErrors([CaseError("case file", str(p), problem)]) from None
-    return parse_case(text, source=str(p), base_dir=p.parent)
+        text = read_text(p, key="case file", shown=str(p), limit=MAX_CASE_FILE_BYTES)
+    except CaseError as exc:
+        raise CaseErrors([exc]) from None
+    case = parse_case(text, source=str(p), base_dir=p.parent)
+    for line in plausibility_warnings(case):
+        logger.warning("%s", line)
+    return case
 
 
 def with_geology_files(case: Case, base_dir: Path) -> Case:
     """The case with its borehole and surface-point files read into ``stratigraphy``."""
+    outside = case.input.allow_outside_files
+
+    def place(name: str, key: str) -> Path:
+        return located(base_dir, name, key=key, allow_outside=outside)
+
     if case.mesh.import_file is not None:
-        path = str(base_dir / case.mesh.import_file)
+        name = case.mesh.import_file
+        path = place(name, "mesh.import_file")
+        checked_file(path, key="mesh.import_file", shown=name, limit=MAX_MESH_FILE_BYTES)
         case = case.model_copy(update={"mesh": case.mesh.model_copy(
-            update={"import_file": path})})
+            update={"import_file": str(path)})})
+    for mat_name, mat in case.materials.items():
+        if mat.conductivity_file is not None:
+            key = f"materials.{mat_name}.conductivity_file"
+            path = place(mat.conductivity_file, key)
+            if path.suffix.lower() in (".vtu", ".vtk"):
+                checked_file(path, key=key, shown=mat.conductivity_file,
+                             limit=MAX_MESH_FILE_BYTES)
+            else:  # a CSV of points, read by the flow stage: text of bounded size
+                read_text(path, key=key, shown=mat.conductivity_file, limit=MAX_DATA_FILE_BYTES)
     strat = case.stratigraphy
     if strat is None or (strat.borehole_file is None and not strat.surface_files
                          and not strat.grid_files):
@@ -187,16 +245,17 @@ def with_geology_files(case: Case, base_dir: Path) -> Case:
     update: dict[str, Any] = {}
     if strat.borehole_file is not None:
         update["boreholes"] = [*strat.boreholes, *read_borehole_file(
-            base_dir / strat.borehole_file)]
+            place(strat.borehole_file, "stratigraphy.borehole_file"))]
     if strat.surface_files:
         pts = dict(strat.surface_points)
         for unit, name in strat.surface_files.items():
-            pts[unit] = [*pts.get(unit, []), *read_surface_file(
-                base_dir / name, key=f"stratigraphy.surface_files.{unit}")]
+            key = f"stratigraphy.surface_files.{unit}"
+            pts[unit] = [*pts.get(unit, []), *read_surface_file(place(name, key), key=key)]
         update["surface_points"] = pts
     if strat.grid_files:
         update["grids"] = {**strat.grids, **{
-            name: read_grid_file(base_dir / file, key=f"stratigraphy.grid_files.{name}")
+            name: read_grid_file(place(file, f"stratigraphy.grid_files.{name}"),
+                                 key=f"stratigraphy.grid_files.{name}")
             for name, file in strat.grid_files.items()}}
     return case.model_copy(update={"stratigraphy": strat.model_copy(update=update)})
 
@@ -207,14 +266,17 @@ def with_release_files(case: Case, base_dir: Path) -> Case:
     if not any(s.release_file or s.concentration_file for s in case.sources):
         return case
     sources = []
+    outside = case.input.allow_outside_files
     for s in case.sources:
         if s.release_file is not None and s.kind != "initial_plume":
-            series = read_release_file(base_dir / s.release_file, kind=s.kind,
-                                       key=f"sources[{s.name}].release_file")
+            key = f"sources[{s.name}].release_file"
+            path = located(base_dir, s.release_file, key=key, allow_outside=outside)
+            series = read_release_file(path, kind=s.kind, key=key)
             s = s.model_copy(update={"release_series": series})
         if s.concentration_file is not None and s.kind == "initial_plume":
-            pts = read_concentration_points(base_dir / s.concentration_file,
-                                            key=f"sources[{s.name}].concentration_file")
+            key = f"sources[{s.name}].concentration_file"
+            path = located(base_dir, s.concentration_file, key=key, allow_outside=outside)
+            pts = read_concentration_points(path, key=key)
             s = s.model_copy(update={"concentration_points": pts})
         sources.append(s)
     return case.model_copy(update={"sources": sources})

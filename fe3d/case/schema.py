@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from pathlib import PurePosixPath, PureWindowsPath
 from typing import Annotated, Any, Literal
 
 from pydantic import AfterValidator, Field
@@ -59,6 +60,7 @@ from fe3d.units import from_si
 __all__ = [
     "Case",
     "FixedHead",
+    "InputControl",
     "Layer",
     "Material",
     "MeshControl",
@@ -73,6 +75,10 @@ __all__ = [
     "cross_checks",
 ]
 
+
+
+Gradient = Annotated[float, Field(ge=-10.0, le=10.0, allow_inf_nan=False)]
+"""A slope [m/m]: at most 10 (84°) either way (common practice, no source)."""
 
 
 class ModelBox(Section):
@@ -129,7 +135,7 @@ class Layer(Section):
     name: Name
     material: Name
     bottom: Length | None = None  # None: the base comes from stratigraphy (borehole picks)
-    bottom_gradient: tuple[float, float] = (0.0, 0.0)
+    bottom_gradient: tuple[Gradient, Gradient] = (0.0, 0.0)
     sublayers: Annotated[int, Field(ge=1, le=200)] | None = None
     cell_thickness: PositiveLength | None = None
 
@@ -151,7 +157,7 @@ class FixedHead(Section):
 
     face: Name
     head: Length | None = None
-    head_gradient: tuple[float, float, float] = (0.0, 0.0, 0.0)
+    head_gradient: tuple[Gradient, Gradient, Gradient] = (0.0, 0.0, 0.0)
     reference_point: tuple[Length, Length, Length] = (0.0, 0.0, 0.0)
     head_by_elevation: list[tuple[Length, Length]] | None = None
 
@@ -416,10 +422,28 @@ class SolverControl(Section):
     newton_max_iterations: Annotated[int, Field(ge=1, le=200)] = 30
 
 
+MAX_TITLE_CHARACTERS = 200
+"""Longest title or site name [characters]: it heads the report and every figure."""
+
+
+def _folder_below_here(folder: str) -> str:
+    """A run folder named in a case file stays below the folder fe3d is started from: a
+    relative path without ``..``, ``~`` or a drive (``--out`` on the command line, the
+    user's own choice, may name any folder)."""
+    parts = PurePosixPath(folder.replace("\\", "/")).parts
+    if not folder.strip() or PurePosixPath(folder).is_absolute() or PureWindowsPath(folder).drive \
+            or folder.startswith(("/", "\\", "~")) or ".." in parts or "\0" in folder:
+        msg = ("must be a relative folder below the current one, without '..' or '~' (give "
+               "--out on the command line to write elsewhere)")
+        raise ValueError(msg)
+    return folder
+
+
 class OutputControl(Section):
     """Where results go and in which units they are shown."""
 
-    folder: str | None = None
+    folder: Annotated[str, AfterValidator(_folder_below_here),
+                      Field(max_length=MAX_TITLE_CHARACTERS)] | None = None
     concentration_unit: Annotated[str, AfterValidator(_concentration_unit)] = "mg/L"
     time_unit: Annotated[str, AfterValidator(_time_unit)] = "d"
     vtu_series: bool = False
@@ -428,11 +452,22 @@ class OutputControl(Section):
     ``.pvd`` index, for viewers that cannot open VTKHDF."""
 
 
+class InputControl(Section):
+    """Where the data files the case names may come from.
+
+    By default every data file must lie inside the case folder and not be reached through
+    a symbolic link (:mod:`fe3d.case.data_files`); ``allow_outside_files = true`` lifts both
+    rules, for a case that reads shared files elsewhere."""
+
+    allow_outside_files: bool = False
+
+
 class Case(Section):
     """A whole validated case, every number in SI units."""
 
-    title: str
-    site: str = ""
+    title: Annotated[str, Field(min_length=1, max_length=MAX_TITLE_CHARACTERS)]
+    site: Annotated[str, Field(max_length=MAX_TITLE_CHARACTERS)] = ""
+    input: InputControl = InputControl()
     box: ModelBox | None = None
     boundary: Boundary | None = None
     stratigraphy: Stratigraphy | None = None

@@ -8,11 +8,23 @@ from typing import Annotated
 
 from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field
 
+from fe3d.case.plausible import BOUNDS, CONDUCTIVITY_RANGE_M_PER_DAY, MIN_POROSITY
 from fe3d.units import to_si, unit_is
 
 
-def _quantity(dimension: str) -> BeforeValidator:
-    return BeforeValidator(lambda v: to_si(v, dimension))
+def _bounded(x: float, dimension: str | None) -> float:
+    bound = BOUNDS.get(dimension) if dimension is not None else None
+    problem = None if bound is None else bound.problem(x)
+    if problem is not None:
+        raise ValueError(problem)
+    return x
+
+
+def _quantity(dimension: str, *, bounded: bool = True) -> BeforeValidator:
+    """Text with a unit → SI value, refused outside the dimension's bound
+    (:data:`fe3d.case.plausible.BOUNDS`) when ``bounded``."""
+    return BeforeValidator(lambda v: _bounded(to_si(v, dimension),
+                                              dimension if bounded else None))
 
 
 def _positive(x: float) -> float:
@@ -34,17 +46,6 @@ def _fraction(x: float) -> float:
         msg = "must be in (0, 1]"
         raise ValueError(msg)
     return x
-
-
-CONDUCTIVITY_RANGE_M_PER_DAY = (1e-12, 1e5)
-"""Accepted hydraulic conductivity [m/d]. Natural materials span about 1e-9 m/d (unfractured
-igneous rock) to about 1e5 m/d (clean gravel, ~1 m/s): Freeze & Cherry 1979, Groundwater,
-Table 2.2, recalled from memory; the lower bound leaves three decades of margin. A value
-outside is taken as a unit slip (m/s written for m/d, cm/s for m/s)."""
-
-MIN_POROSITY = 1e-4
-"""Smallest accepted porosity [-] (common practice, no source: the effective porosity of
-fractured rock is rarely set lower, and below it the pore velocity q/θ grows without bound)."""
 
 
 def _conductivity_range(x: float) -> float:
@@ -97,7 +98,7 @@ Partition = Annotated[float, _quantity("specific_volume"), AfterValidator(_non_n
 Diffusivity = Annotated[float, _quantity("diffusivity"), AfterValidator(_non_negative)]
 Fraction = Annotated[float, AfterValidator(_fraction)]
 Porosity = Annotated[float, AfterValidator(_fraction), AfterValidator(_usable_porosity)]
-Conductivity = Annotated[float, _quantity("velocity"), AfterValidator(_positive),
+Conductivity = Annotated[float, _quantity("velocity", bounded=False), AfterValidator(_positive),
                          AfterValidator(_conductivity_range)]
 Name = Annotated[str, Field(pattern=r"^[A-Za-z][A-Za-z0-9_\-]*$", max_length=64)]
 Range = tuple[Length, Length]

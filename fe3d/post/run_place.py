@@ -7,6 +7,17 @@ manifest) says which state the run ended in and lists every file with its size a
 A target that holds anything but an earlier run of fe3d is refused; an earlier run is
 replaced only when asked (``overwrite``); a folder that holds the case's input files is
 never a target.
+
+Where a run may write: ``--out`` (the user's own choice on the command line) may name any
+folder; a run folder named in the case file (``output.folder``) must be a relative path
+below the folder fe3d is started from, without ``..`` or ``~`` (checked when the case is
+read, :mod:`fe3d.case.schema`), since a case file may come from someone else. Every file a
+run writes lies inside its run folder.
+
+When a file cannot be written (disk full, a read-only folder), the run fails with one line:
+either its folder is moved into place with ``run.json`` saying ``failed``, or, when not even
+the manifest can be written, the target keeps what it held and the hidden work folder stays
+beside it until the next run of that target removes it.
 """
 
 from __future__ import annotations
@@ -24,8 +35,8 @@ from fe3d import __version__
 from fe3d.errors import CaseError
 from fe3d.post.files import write_text_atomic
 
-__all__ = ["MANIFEST", "RunState", "check_target", "move_into_place", "work_folder",
-           "write_manifest"]
+__all__ = ["MANIFEST", "RunState", "check_target", "move_into_place", "remove_stale_folders",
+           "work_folder", "write_manifest"]
 
 MANIFEST = "run.json"
 
@@ -71,10 +82,37 @@ def check_target(out_dir: Path, *, overwrite: bool, inputs: Sequence[Path] = ())
                         "whole")
 
 
+def _process_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # another user's process
+        return True
+    return True
+
+
+def remove_stale_folders(out_dir: Path) -> list[Path]:
+    """Remove the hidden folders a run of ``out_dir`` leaves beside it when it cannot finish
+    (``.NAME.running-PID`` when even its manifest could not be written, e.g. on a full
+    disk; ``.NAME.replaced-PID`` when the earlier run could not be removed) whose process
+    has ended; returns them. A folder of a process still running is left alone."""
+    removed = []
+    for kind in ("running", "replaced"):
+        for path in out_dir.parent.glob(f".{out_dir.name}.{kind}-*"):
+            pid = path.name.rsplit("-", 1)[-1]
+            if pid.isdigit() and int(pid) != os.getpid() and not _process_alive(int(pid)):
+                shutil.rmtree(path, ignore_errors=True)
+                removed.append(path)
+    return removed
+
+
 def work_folder(out_dir: Path) -> Path:
     """A fresh hidden folder beside ``out_dir`` (same file system, so that the move into
-    place is a rename)."""
+    place is a rename); the hidden folders of earlier runs that could not finish are removed
+    first (:func:`remove_stale_folders`)."""
     out_dir.parent.mkdir(parents=True, exist_ok=True)
+    remove_stale_folders(out_dir)
     work = out_dir.parent / f".{out_dir.name}.running-{os.getpid()}"
     if work.exists():
         shutil.rmtree(work)

@@ -68,7 +68,7 @@ BAD_INPUTS = [
     ("porosity_zero", "porosity = 0.35", "porosity = 0",
      "materials.silt.porosity", "0", "must be in (0, 1]"),
     ("porosity_nan", "porosity = 0.3\n", "porosity = nan\n",
-     "materials.sand.porosity", "nan", "must be in (0, 1]"),
+     "materials.sand.porosity", "nan", "must be a finite number"),
     ("negative_conductivity", 'horizontal_conductivity = "10 m/d"',
      'horizontal_conductivity = "-10 m/d"',
      "materials.sand.horizontal_conductivity", "'-10 m/d'", "must be greater than zero"),
