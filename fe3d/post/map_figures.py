@@ -201,11 +201,7 @@ def plot_head_map(path: Path, plan: PlanField, *, features: SiteFeatures, elevat
             first = False
     _capture_zones(ax, plan, backward, wells, capture_time)
     if drawdown is not None:
-        dd = ax.tricontour(Triangulation(drawdown.x, drawdown.y, drawdown.triangles.T),
-                           drawdown.values * from_si(1.0, head_unit), levels=6,
-                           cmap=DRAWDOWN_COLOURS, linewidths=1.0)
-        ax.clabel(dd, fmt="%.2f", fontsize=6)
-        ax.plot([], [], color="indigo", label="drawdown")
+        _drawdown_contours(ax, drawdown, head_unit)
     elif pumping:
         fig.text(0.99, 0.005, "drawdown not drawn: no head without pumping was computed",
                  ha="right", fontsize=6.5, color="0.25")
@@ -215,6 +211,28 @@ def plot_head_map(path: Path, plan: PlanField, *, features: SiteFeatures, elevat
     fig.tight_layout(rect=(0, 0.03, 1, 1))
     place_labels(ax, labels)
     return save_figure(fig, path)
+
+
+def _drawdown_contours(ax: Any, drawdown: PlanField, head_unit: str) -> None:
+    """Contours of the drawdown (``drawdown.values`` [m]) in ``head_unit`` at 1, 2, 5 per
+    decade from a twentieth of the largest up to it (the rise by injection wells dashed),
+    labelled; the legend names the unit."""
+    from matplotlib.tri import Triangulation
+
+    values = drawdown.values * from_si(1.0, head_unit)
+    tri = Triangulation(drawdown.x, drawdown.y, drawdown.triangles.T)
+    cmap = pyplot().get_cmap(DRAWDOWN_COLOURS)
+    for sign, style, words in ((1.0, "solid", "drawdown"), (-1.0, "dashed", "rise")):
+        largest = float((sign * values).max())
+        if not largest > 0:
+            continue
+        levels = concentration_levels(largest, largest)
+        levels = levels[levels >= largest / 20.0]  # a decade and more: a readable map
+        lines = ax.tricontour(tri, sign * values, levels=levels, colors=[cmap(0.85)],
+                              linewidths=0.9, linestyles=style)
+        ax.clabel(lines, fmt=lambda v, s=sign: f"{s * v:.3g}", fontsize=6)
+        ax.plot([], [], color=cmap(0.85), linestyle=style,
+                label=f"{words} by the wells [{head_unit}]")
 
 
 def _capture_zones(ax: Any, plan: PlanField, backward: dict[str, list[FloatArray]],

@@ -56,6 +56,9 @@ def test_run_figures_of_a_pumped_case(pumped, tmp_path):
     assert head_map_elevation(case, site) == pytest.approx(1.5)  # mid-screen
     drawdown = well_drawdown(site, FlowInputs.of(case), flow)
     assert drawdown.max() > 0.0  # the pump lowers the head
+    (tmp_path / "rise").mkdir()
+    _png(tmp_path / "rise" / write_head_figure(tmp_path / "rise", case, site, flow, paths,
+                                               drawdown=-drawdown)[0])  # an injection's rise
     files = write_head_figure(tmp_path, case, site, flow, paths, head_unit="ft",
                               drawdown=drawdown)
     figures = PlumeFigures(tmp_path, case, site, flow)
