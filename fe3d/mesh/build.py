@@ -32,6 +32,7 @@ from scipy.sparse.csgraph import reverse_cuthill_mckee
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
 from fe3d.mesh.corridor import FINE_SIZE_MARGIN, Corridor, corridor_zones, project_to_edges
+from fe3d.mesh.geometry import points_in_polygon
 from fe3d.mesh.prisms import (
     boundary_triangles,
     order_by_lowest_node,
@@ -713,14 +714,13 @@ def _lens_nodes(case: Case, xy: FloatArray, tri: IndexArray, surfaces: list[Floa
                 ) -> tuple[list[np.ndarray], dict[int, list[float]]]:
     """Plan nodes inside (or on) each lens outline and the host-unit level fractions its top
     and bottom need (taken at the mean over those nodes)."""
-    from fe3d.case.geology import point_in_polygon
 
     units = [ly.name for ly in case.layers]
     masks, needs = [], {}
     for lens in case.lenses:
         poly = [(float(x), float(y)) for x, y in lens.polygon]
         tol = 1e-7 * max(1.0, float(np.ptp(xy, axis=1).max()))
-        m = np.array([point_in_polygon(x, y, poly, tol=tol) for x, y in xy.T])
+        m = points_in_polygon(xy, poly, tol=tol)
         if not m.any():
             msg = f"lenses[{lens.name}].polygon contains no plan mesh node"
             raise MeshError(msg)
@@ -838,7 +838,6 @@ def _tag_lenses(case: Case, xy: FloatArray, tri: IndexArray, z: FloatArray,
                 cell_unit: IndexArray, cell_level: IndexArray, cell_tri: IndexArray,
                 surfaces: list[FloatArray], lens_in: list[np.ndarray]) -> IndexArray:
     """Give the lens's unit index to host cells inside its outline and between its levels."""
-    from fe3d.case.geology import point_in_polygon
 
     out = cell_unit.copy()
     n_layers = len(case.layers)
@@ -846,7 +845,7 @@ def _tag_lenses(case: Case, xy: FloatArray, tri: IndexArray, z: FloatArray,
     for li, mask in enumerate(lens_in):
         lens = case.lenses[li]
         poly = [(float(x), float(y)) for x, y in lens.polygon]
-        inside = np.array([point_in_polygon(x, y, poly, tol=0.0) for x, y in centre.T])
+        inside = points_in_polygon(centre, poly, tol=0.0)
         k, _r0, _r1, rt, rb, _ = _lens_rows(case, li, z, layer_unit, level_frac, surfaces,
                                            mask)
         sel = (cell_unit == k) & inside[cell_tri] & (cell_level >= rt) & (cell_level < rb)

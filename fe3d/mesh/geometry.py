@@ -1,5 +1,5 @@
-"""P1 tetrahedron geometry: volumes and barycentric gradients (constant per cell), and the
-nodal lumping of cell values."""
+"""P1 tetrahedron geometry: volumes and barycentric gradients (constant per cell), the nodal
+lumping of cell values, and which plan points lie in a polygon."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import numpy as np
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.p1 import gradients
 
-__all__ = ["lump_to_nodes", "p1_gradients"]
+__all__ = ["lump_to_nodes", "p1_gradients", "points_in_polygon"]
 
 
 def p1_gradients(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, FloatArray]:
@@ -57,3 +57,43 @@ def lump_to_nodes(cells: IndexArray, volumes: FloatArray, per_cell: FloatArray,
     out = np.vstack([np.bincount(flat, weights=np.tile(row * size / 4.0, 4),
                                  minlength=n_nodes) for row in rows])
     return out[0] if v.ndim == 1 else out
+
+
+def points_in_polygon(xy: FloatArray, vertices: list[tuple[float, float]], *,
+                      tol: float) -> np.ndarray:
+    """Which points lie inside the polygon or within ``tol`` [m] of its edges.
+
+    The test of :func:`fe3d.case.geology.point_in_polygon` (even-odd crossings of a ray
+    towards +x, then the distance to each edge), one edge at a time over all points
+    instead of one point at a time over the edges: the same operations on each point.
+
+    Parameters
+    ----------
+    xy
+        Plan points [m], shape ``(2, k)``.
+    vertices
+        Polygon vertices [m], in order (closed implicitly).
+    tol
+        Distance to an edge within which a point counts as inside [m].
+
+    Returns
+    -------
+    Boolean mask, shape ``(k,)``.
+    """
+    x, y = xy[0], xy[1]
+    inside = np.zeros(x.shape, dtype=bool)
+    near = np.zeros(x.shape, dtype=bool)
+    n = len(vertices)
+    for i in range(n):
+        x0, y0 = vertices[i]
+        x1, y1 = vertices[(i + 1) % n]
+        dx, dy = x1 - x0, y1 - y0
+        length2 = dx * dx + dy * dy
+        t = (np.zeros(x.shape) if length2 == 0
+             else np.clip(((x - x0) * dx + (y - y0) * dy) / length2, 0.0, 1.0))
+        near |= np.hypot(x - x0 - t * dx, y - y0 - t * dy) <= tol
+        spans = (y0 > y) != (y1 > y)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            crossing = x0 + (y - y0) * (x1 - x0) / (y1 - y0)
+        inside ^= spans & (crossing > x)
+    return inside | near
