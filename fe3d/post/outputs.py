@@ -10,6 +10,7 @@ recomputes physics: it reads the records of the earlier stages.
 from __future__ import annotations
 
 import itertools
+import logging
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -70,6 +71,8 @@ from fe3d.units import from_si, to_seconds
 
 __all__ = ["RUN_FIELDS", "SERIES_FILE", "PlumeRow", "SeriesWriter", "flow_cell_data",
            "flow_point_data", "method_words", "write_flow_outputs"]
+
+logger = logging.getLogger(__name__)
 
 #: The file of the fields over the whole run (theory.md O4).
 RUN_FIELDS = "over_the_run.vtu"
@@ -297,16 +300,16 @@ class SeriesWriter:
         (from the receptor columns of the histories) or, without them, the output time; the
         mass out since the start is the budget's, at the output time only (NaN between)."""
         n_obs = len(self.case.observation_points)
-        start = self.receptor_steps if self.receptors_every_step else 0
-        times = snap.history_times[start:] if self.receptors_every_step else \
-            np.array([snap.time])
+        every = self.receptors_every_step and self._has_receptor_columns(snap, n_obs)
+        start = self.receptor_steps if every else 0
+        times = snap.history_times[start:] if every else np.array([snap.time])
         self.receptor_steps = len(snap.history_times)
         rows = []
         for species, c in snap.concentration.items():
             outflow = snap.budgets[species].outflow
             for k, r in enumerate(self.receptors):
                 values = snap.history[species][start:, n_obs + k] \
-                    if self.receptors_every_step else [r.flux_averaged(c)]
+                    if every else [r.flux_averaged(c)]
                 last = len(times) - 1
                 rows += [ReceptorRow(
                     receptor=r.name, kind=r.kind, species=species, time=float(t),
@@ -315,6 +318,18 @@ class SeriesWriter:
                     mass_out=outflow.get(r.name, np.nan) if i == last else np.nan)
                     for i, (t, v) in enumerate(zip(times, values, strict=True))]
         return rows
+
+    def _has_receptor_columns(self, snap: Snapshot, n_obs: int) -> bool:
+        """Whether the histories of ``snap`` carry one column per receptor after the
+        observation points; when not (a transport not handed :attr:`receptor_probe`), the
+        output time is used and this is logged."""
+        width = {h.shape[1] for h in snap.history.values()}
+        if width == {n_obs + len(self.receptors)} or not self.receptors:
+            return True
+        logger.warning("receptors at output times only: the histories have %s columns, "
+                       "not %d observation points + %d receptors", sorted(width), n_obs,
+                       len(self.receptors))
+        return False
 
     def _follow_extremes(self, snap: Snapshot) -> None:
         """Note between which output times each running extreme was last reached."""

@@ -163,3 +163,15 @@ def test_finish_reports_every_step_results(stepped, tmp_path):
     summary = writer.finish(flow, travel_paths(site, flow, TravelInputs.of(case)), [], 0.0)
     assert {(r.name, r.peak) for r in summary.receptors} == {
         (r.name, r.peak) for r in writer._receptor_results()}
+
+
+def test_without_the_receptor_columns_the_output_times_are_used(stepped, tmp_path, caplog):
+    """A transport not handed the probe: the writer says so once per output time in the log
+    and keeps the output-time rows, as a writer without ``receptors_every_step`` does."""
+    case, site, flow, snaps = stepped
+    thinned = snaps[::EVERY]
+    plain = _write(tmp_path / "plain", case, site, flow, thinned, every_step=False)
+    with caplog.at_level("WARNING", logger="fe3d.post.outputs"):
+        asked = _write(tmp_path / "asked", case, site, flow, thinned, every_step=True)
+    assert "receptors at output times only" in caplog.text
+    assert asked.receptor_rows == plain.receptor_rows
