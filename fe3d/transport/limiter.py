@@ -122,6 +122,7 @@ class TargetFluxes:
     low_order_transposed: FloatArray
     lumped: FloatArray
     sink: FloatArray
+    exchange: FloatArray  # the diagonal of D [m³/s]: a node's exchange with its neighbours
 
     @classmethod
     def of(cls, mass: sp.csr_matrix, galerkin: sp.csr_matrix,
@@ -139,7 +140,8 @@ class TargetFluxes:
         return cls(mass=mass, diffusion=diffusion, low_order=low_order,
                    low_order_transposed=np.ascontiguousarray(lt.data),
                    lumped=np.asarray(mass.sum(axis=1)).ravel(),
-                   sink=np.asarray(low_order.sum(axis=0)).ravel())
+                   sink=np.asarray(low_order.sum(axis=0)).ravel(),
+                   exchange=diffusion.diagonal())
 
 
 @dataclass(frozen=True)
@@ -193,7 +195,7 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
     n = ops.lumped.size
     held = np.zeros(n, dtype=np.bool_)
     held[fixed] = True
-    blocked = ~held & (dt * ops.diffusion.diagonal() > reach * ops.lumped)
+    blocked = ~held & (dt * ops.exchange > reach * ops.lumped)
     c_low = np.ascontiguousarray(c_low, dtype=float)
     indptr, cols = ops.mass.indptr, ops.mass.indices
     f = _raw_fluxes(ops, c_low, c_high, c_old, dt, theta)

@@ -121,3 +121,34 @@ def test_corridor_record_round_trip() -> None:
     c = corridor([straight_path(half_width=2.0)])
     assert Corridor.from_dict(c.as_dict()) == c
     assert len(c.lines()) == 2
+
+
+def test_corridor_follows_the_fastest_species_of_a_source() -> None:
+    """M3: the corridor ends where the fastest species a source makes can be, so it reads
+    the smallest linear retardation R = 1 + ρ_b K_d/θ over the source's species and its
+    decay chain (by hand: ρ_b = 1600 kg/m³, θ = 0.25, K_d = 0.25 L/kg → R = 2.6; the
+    daughter's K_d = 0.0625 L/kg → R = 1.4); a nonlinear isotherm counts as R = 1."""
+    from fe3d.case.builder import Layer, Material, Source, Species, Time, box_case, with_changes
+    from fe3d.case.parts import Ground
+    from fe3d.mesh.build import build_mesh
+    from fe3d.mesh.corridor import _fastest_retardation
+    from fe3d.mesh.materials import unit_materials
+
+    sand = Material(10.0, 10.0, porosity=0.25, bulk_density=1600.0)
+    case = box_case(length=40.0, width=20.0, cell=10.0, dz=2.0, heads={"west": 0.1, "east": 0.0},
+                    layers=[Layer("sand", -4.0, sand)],
+                    species=[Species("parent_sp", kd=0.25, half_life=100.0),
+                             Species("daughter_sp", kd=0.0625, parent="parent_sp")],
+                    sources=[Source("spill", species="parent_sp", concentration=1.0,
+                                    x=(5.0, 15.0), y=(5.0, 15.0), z=(-3.0, -1.0))],
+                    time=Time("10 d", "1 d"))
+    site = build_mesh(case)
+    mats, keys = unit_materials(Ground.of(case), site)
+    r = _fastest_retardation(case, "spill", mats, keys)
+    assert r == pytest.approx([1.0 + 1600.0 * 0.0625e-3 / 0.25], rel=1e-12)
+    alone = with_changes(case, species={"daughter_sp": {"parent": None}})
+    assert _fastest_retardation(alone, "spill", mats, keys) == pytest.approx(
+        [1.0 + 1600.0 * 0.25e-3 / 0.25], rel=1e-12)
+    curved = with_changes(alone, species={"parent_sp": {"sorption": "freundlich",
+                                                        "freundlich_kf": "0.25 L/kg"}})
+    assert _fastest_retardation(curved, "spill", mats, keys) == pytest.approx([1.0])
