@@ -13,16 +13,16 @@ and outputs not). Two species laws, both with Kd = 0.1 L/kg:
 - ``second_order``: r = −k c², k = 0.5 m³/(kg d) (the concentration halves in 20 d at the
   source's 100 mg/L, as the linear one does).
 
-Each step's time is divided by the time of one SpMV of a matrix on the mesh's CSR pattern
-measured right beside it (the unit survives a shared, loaded machine). Newton iterations
-come from the step result; Krylov iterations per correction from the step module's log
-(``fe3d.transport.step``), or, for code that solves its corrections with
+Each step's processor time is divided by the processor time of one SpMV of a matrix on the
+mesh's CSR pattern measured right beside it (the unit survives a shared, loaded machine).
+Newton iterations come from the step result; Krylov iterations per correction from the step
+module's log (``fe3d.transport.step``), or, for code that solves its corrections with
 ``fe3d.linalg.solve_with_preconditioner``, from that function's statistics.
 
 Usage: ``python benchmarks/newton_bench.py [--quick] [--scheme supg|bounded]
-[--label NAME] [--json FILE]``; ``--quick``: the ~25 k-node mesh only. Prints one JSON line
-per size and a Markdown table. ``python benchmarks/newton_bench.py --doc BEFORE.json
-AFTER.json`` writes the section "Newton steps" of docs/performance.md from two such files.
+[--label NAME] [--json FILE]``; ``--quick``: the ~19 k-node mesh only; ``--json``: append
+each size's JSON line to FILE. Prints one JSON line per size and Markdown table rows;
+docs/performance.md ("Newton steps") quotes them, before and after a change.
 """
 
 from __future__ import annotations
@@ -39,7 +39,6 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "benchmarks"))
 
-from perf_doc import replace_section  # noqa: E402
 from run import C0, SOURCE_BOX, site_case  # noqa: E402
 
 import fe3d.transport.step as step_module  # noqa: E402
@@ -68,9 +67,7 @@ SCHEMES = {
 """Solver settings and time scheme (``None``: the case default) of each variant."""
 
 SIZES = [(6.0, 2.0), (2.6, 0.8)]
-"""(plan cell size, layer cell thickness) [m]: about 25 k and 200 k nodes."""
-
-HEADING = "## Newton steps (benchmarks/newton_bench.py)"
+"""(plan cell size, layer cell thickness) [m]: about 19 k and 223 k nodes."""
 
 
 KRYLOV: list[int] = []
@@ -201,16 +198,6 @@ def _arg(name: str, default: str) -> str:
 
 
 def main() -> int:
-    if "--doc" in sys.argv:
-        i = sys.argv.index("--doc")
-        rows = []
-        for path in sys.argv[i + 1:i + 3]:
-            for line in Path(path).read_text(encoding="utf-8").splitlines():
-                data = json.loads(line)
-                rows.extend(table([data], data.get("label", Path(path).stem)))
-        intro = Path(ROOT / "benchmarks" / "newton_bench.md").read_text(encoding="utf-8")
-        replace_section(HEADING, [HEADING, "", intro.strip(), "", *HEADER, *rows])
-        return 0
     sizes = SIZES[:1] if "--quick" in sys.argv else SIZES
     scheme, label = _arg("--scheme", "supg"), _arg("--label", "now")
     rows = []

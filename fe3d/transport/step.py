@@ -450,9 +450,9 @@ def nonlinear_step(
     # the step matrix's splitting or preconditioner serves every Newton iteration of the
     # step: J differs from S_ff by a diagonal (T10, T11, R14b)
     corrections = CorrectionSolver(step_system.solver)
-    # the law's derivative at the last point R was evaluated at: Newton asks for J where
-    # it has just evaluated R
-    last: dict[str, FloatArray] = {}
+    # the law at the last point R was evaluated at: Newton asks for J where it has just
+    # evaluated R, and the budget needs the loss at the result
+    last: list[_LawAt] = []
 
     def full_residual(c: FloatArray) -> FloatArray:
         loss, dloss = s.reaction_loss(c, rate_now)
@@ -460,20 +460,20 @@ def nonlinear_step(
         out += th * loss
         if nonlin_sorption:
             out += storage_weight * s.sorbed(c)[0]
-        last.update(c=c, loss=loss, dloss=dloss)
+        last[:] = [_LawAt(None, c, loss, dloss)]
         return out
 
     def residual(x: FloatArray) -> FloatArray:
         c = new.copy()
         c[free] = x
         out = full_residual(c)[free]
-        last["x"] = x
+        last[0] = replace(last[0], x=x)
         return out
 
     def jacobian_diagonal(x: FloatArray) -> FloatArray:
         """J − S_ff on the free nodes at x (T10, T11)."""
-        c, dloss = last["c"], last["dloss"]
-        if last.get("x") is not x:
+        c, dloss = last[0].c, last[0].dloss
+        if last[0].x is not x:
             c = new.copy()
             c[free] = x
             dloss = s.reaction_loss(c, rate_now)[1]
@@ -499,11 +499,22 @@ def nonlinear_step(
     c = new.copy()
     c[free] = result.x
     r_full = full_residual(c)
-    loss_new = last["loss"]
+    loss_new = last[0].loss
     sorbed_loss = lam_s * float(np.sum(th * s.sorbed(c)[0] + (1 - th) * sig_old)) \
         if nonlin_sorption else 0.0
     decayed = dt * (sorbed_loss + float((th * loss_new + (1 - th) * loss_old).sum()))
     return c, r_full, decayed, result.iterations
+
+
+@dataclass(frozen=True)
+class _LawAt:
+    """The reaction law at one Newton iterate: its free values (None until known), the whole
+    field [kg/m³], the nodal loss [kg/s] and its derivative [m³/s] (T11)."""
+
+    x: FloatArray | None
+    c: FloatArray
+    loss: FloatArray
+    dloss: FloatArray
 
 
 def _sorbed_decay_rate(s: SpeciesModel, new: FloatArray, old: FloatArray,
