@@ -526,7 +526,8 @@ def main(argv: list[str] | None = None) -> int:
         return EXIT_CANNOT_WRITE
     except SystemExit as exc:  # argparse exits before this block; here it is other code
         print(f"error: code run by fe3d called sys.exit({exc.code!r}) (a user_reactions "  # noqa: T201
-              "module?); the run did not finish", file=sys.stderr)
+              "module, or a library that could not read a data file); the command did not "
+              "finish", file=sys.stderr)
         return EXIT_CODE_STOPPED
 
 

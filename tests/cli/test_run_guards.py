@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pytest
 
-from fe3d.cli import EXIT_BAD_INPUT, EXIT_CANNOT_WRITE, main
+from fe3d.cli import EXIT_BAD_INPUT, EXIT_CANNOT_WRITE, EXIT_CODE_STOPPED, main
 from fe3d.post.run_place import MANIFEST, remove_stale_folders
 
 ROOT = Path(__file__).parents[2]
@@ -155,6 +155,24 @@ def test_a_disk_too_full_for_the_manifest_keeps_the_earlier_run(tmp_path, monkey
     left.rename(stale)
     assert remove_stale_folders(earlier) == [stale]
     assert not stale.exists()
+
+
+def test_code_that_calls_sys_exit_during_a_run_is_one_line_and_exit_70(tmp_path, monkeypatch):
+    """A library that calls sys.exit (meshio does on a file it cannot read) must not end fe3d
+    silently with that code: one line, exit 70, and run.json says failed."""
+    monkeypatch.chdir(tmp_path)
+    case = _tiny(tmp_path)
+
+    def exits(*_: object) -> None:
+        raise SystemExit(0)
+
+    monkeypatch.setattr("fe3d.post.vtk.write_atomic", exits)
+    code, _, err = _cli("run", case, "--out", tmp_path / "run", "--quiet")
+    assert code == EXIT_CODE_STOPPED
+    (line,) = err.splitlines()
+    assert line.startswith("error: code run by fe3d called sys.exit(0)")
+    manifest = json.loads((tmp_path / "run" / MANIFEST).read_text(encoding="utf-8"))
+    assert manifest["state"] == "failed"
 
 
 FSIZE_RUN = """
