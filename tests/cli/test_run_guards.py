@@ -76,6 +76,22 @@ def test_a_user_module_that_exits_or_raises_is_one_line_and_exit_2(tmp_path, mon
     assert allowed in line, line
 
 
+def test_check_prints_a_warning_line_and_still_passes(tmp_path):
+    """An unusual value warns on standard error (one line: key, value, usual range, source)
+    and the case is still valid."""
+    path = tmp_path / "case.toml"
+    path.write_text(TINY_TEXT.replace("porosity = 0.3\n", "porosity = 0.85\n", 1),
+                    encoding="utf-8")
+    res = subprocess.run([sys.executable, "-m", "fe3d.cli", "check", str(path)], cwd=tmp_path,
+                         capture_output=True, text=True, timeout=600, check=False)
+    assert res.returncode == 0, res.stderr[-2000:]
+    warnings = [ln for ln in res.stderr.splitlines() if "materials.sand.porosity" in ln]
+    assert len(warnings) == 1, res.stderr
+    assert warnings[0].startswith("WARNING fe3d.case.load: materials.sand.porosity = 0.85: "
+                                  "outside the usual range 0.01–0.7 (Freeze & Cherry 1979")
+    assert "case is valid" in res.stdout
+
+
 def _tiny(tmp_path: Path) -> Path:
     path = tmp_path / "case" / "case.toml"
     path.parent.mkdir()

@@ -15,7 +15,7 @@ from pathlib import Path
 
 import pytest
 
-from fe3d.case.data_files import MAX_DATA_FILE_BYTES
+from fe3d.case.data_files import MAX_CASE_FILE_BYTES, MAX_DATA_FILE_BYTES
 from fe3d.case.load import load_case, parse_case
 from fe3d.case.plausible import plausibility_warnings
 from fe3d.errors import MAX_ERROR_LINES, CaseError, CaseErrors
@@ -94,6 +94,17 @@ def test_load_case_logs_the_warnings(tmp_path, caplog):
         load_case(path)
     assert any(r.getMessage().startswith("wells[w].rate = 1e+05 m^3/d: outside the usual range")
                for r in caplog.records), caplog.text
+
+
+def test_a_case_file_larger_than_its_bound_is_refused_before_reading(tmp_path):
+    path = tmp_path / "case.toml"
+    with path.open("wb") as fh:
+        fh.truncate(MAX_CASE_FILE_BYTES + 1)  # sparse: nothing is written
+    with pytest.raises(CaseErrors) as info:
+        load_case(path)
+    (err,) = info.value.errors
+    assert err.line() == (f"case file = '{path}': holds {MAX_CASE_FILE_BYTES + 1:,} bytes; at "
+                          "most 16 MiB is read")
 
 
 def test_deep_nesting_is_one_line():
