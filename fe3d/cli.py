@@ -3,9 +3,10 @@
 ``fe3d compare`` (run folders).
 
 Only this module prints or exits. Every :class:`~fe3d.errors.Fe3dError` becomes one line per
-problem on standard error and exit code 2; Ctrl-C one line and exit code 130; a file that
-cannot be written (disk full, read-only) one line and 74; code that calls ``sys.exit`` one
-line and 70; no traceback is shown.
+problem on standard error and exit code 2; Ctrl-C one line and exit code 130 (SIGTERM: 143;
+a run says how to continue with ``--resume``); a file that cannot be written (disk full,
+read-only) one line and 74; code that calls ``sys.exit`` one line and 70; no traceback is
+shown.
 """
 
 from __future__ import annotations
@@ -68,6 +69,13 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--force", action="store_true",
                    help="run even when the estimated memory or output does not fit this "
                         "machine")
+    r.add_argument("--resume", action="store_true",
+                   help="continue the stopped run of the run folder from its last checkpoint "
+                        "(refused when the case, mesh or flow changed)")
+    r.add_argument("--checkpoint-every", default="10 min", metavar="INTERVAL",
+                   help="save a checkpoint this often: a wall-clock time ('10 min', the "
+                        "default), a number of steps ('500 steps') or 'off'; Ctrl-C and "
+                        "SIGTERM always save one")
     lt = sub.add_parser("long-term", help="the largest plume the continuous sources can make",
                         description="Solve the steady transport of the sources that never "
                                     "stop (theory.md T17) and write steady_plume.vtu and "
@@ -207,16 +215,36 @@ def _check(case_path: Path, *, run_user_code: bool = False) -> int:
     return 0
 
 
+def _stopped(exc: BaseException, case_path: Path, out: Path | None, folder: Path) -> int:
+    """One line for a run stopped by a signal; exit 130 (SIGINT) or 143 (SIGTERM)."""
+    import signal
+
+    from fe3d.transport.checkpoint import CHECKPOINT_FOLDER, RunInterrupted
+
+    number = getattr(exc, "signal_number", signal.SIGINT)
+    name = signal.Signals(number).name
+    how = f"fe3d run {case_path}{f' --out {out}' if out else ''} --resume"
+    if isinstance(exc, RunInterrupted) and exc.folder is not None:
+        print(f"interrupted ({name}): checkpoint saved in {folder / CHECKPOINT_FOLDER}; "  # noqa: T201
+              f"continue with: {how}", file=sys.stderr)
+    else:
+        print(f"interrupted ({name}) before a checkpoint of this run: {folder} holds the "  # noqa: T201
+              "outputs written so far (run.json says interrupted)", file=sys.stderr)
+    return 128 + int(number)  # the shell's code for a process stopped by that signal
+
+
 def _run(case_path: Path, out: Path | None, *, quiet: bool, overwrite: bool,
-         force: bool) -> int:
+         force: bool, resume: bool = False, checkpoint_every: str = "10 min") -> int:
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
     from rich.table import Table
 
     from fe3d.pipeline import StageClock, run_case
     from fe3d.post.report import CAUTION, quality_warnings
+    from fe3d.resume import checkpoint_interval
     from fe3d.units import from_si
 
+    interval = checkpoint_interval(checkpoint_every)
     case = load_case(case_path)
     folder = out or Path(case.output.folder or f"runs/{case_path.stem}")
     con = Console(stderr=False)
@@ -233,10 +261,15 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool, overwrite: bool,
                        info=info)
 
         clock = StageClock(progress)
-        summary = run_case(case, folder, progress=clock.tell,
-                           base_dir=case_path.resolve().parent,
-                           mesh_folders=[_default_mesh_folder(case_path)],
-                           overwrite=overwrite, force=force, inputs=[case_path])
+        try:
+            summary = run_case(case, folder, progress=clock.tell,
+                               base_dir=case_path.resolve().parent,
+                               mesh_folders=[_default_mesh_folder(case_path)],
+                               overwrite=overwrite, force=force, inputs=[case_path],
+                               resume=resume, checkpoint_every=interval)
+        except KeyboardInterrupt as exc:
+            bar.stop()
+            return _stopped(exc, case_path, out, folder)
     t = Table(title=f"breakthrough ({summary.n_nodes:,} nodes, {summary.n_cells:,} cells, "
                     f"{summary.wall_time:.1f} s)")
     for col in ("point", "species", f"peak [{cu}]", "peak time", "first above limit",
@@ -507,7 +540,8 @@ def main(argv: list[str] | None = None) -> int:
         if args.command == "compare":
             return _compare(args.runs, args.out, args.labels)
         return _run(args.case, args.out, quiet=args.quiet, overwrite=args.overwrite,
-                    force=args.force)
+                    force=args.force, resume=args.resume,
+                    checkpoint_every=args.checkpoint_every)
     except KeyboardInterrupt:
         print("interrupted: a run folder stopped this way holds the outputs written so far "  # noqa: T201
               "and says so in run.json", file=sys.stderr)

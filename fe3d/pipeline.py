@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+import shutil
 import time
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
@@ -10,6 +11,7 @@ from pathlib import Path
 
 from fe3d.case.parts import FlowInputs, TransportInputs, TravelInputs
 from fe3d.case.schema import Case
+from fe3d.errors import CaseError
 from fe3d.flow.paths import travel_paths
 from fe3d.flow.solve import FlowField, solve_flow
 from fe3d.mesh.build import build_mesh, obtain_mesh
@@ -27,7 +29,23 @@ from fe3d.post.run_place import (
 )
 from fe3d.post.vtk import write_mesh
 from fe3d.reactions.kinetics import user_kinetics
+from fe3d.resume import (
+    DEFAULT_INTERVAL,
+    CheckpointInterval,
+    SavedRun,
+    case_fingerprint,
+    claim_saved_run,
+    stop_on_signals,
+)
 from fe3d.run_size import check_fits, estimate_mesh_size, estimate_run
+from fe3d.transport.checkpoint import (
+    CHECKPOINT_FOLDER,
+    RESUME_KEY,
+    Checkpointer,
+    RunInterrupted,
+    check_resumable,
+    read_outputs,
+)
 from fe3d.transport.run import run_transport
 
 __all__ = ["StageClock", "check_case", "estimate_mesh_size", "mesh_and_flow", "mesh_case",
@@ -126,7 +144,8 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
              base_dir: Path | None = None, mesh_folders: list[Path] | None = None,
              site: SiteMesh | None = None, overwrite: bool = False,
              inputs: Sequence[Path] = (), force: bool = False,
-             compact: bool = False) -> RunSummary:
+             compact: bool = False, resume: bool = False,
+             checkpoint_every: CheckpointInterval = DEFAULT_INTERVAL) -> RunSummary:
     """Run every stage and write the run folder (with ``solver.log`` and the manifest
     ``run.json``); returns the summary.
 
@@ -140,44 +159,73 @@ def run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     (:func:`fe3d.run_size.check_fits`). ``compact`` (for the members of a study): no
     figures, plume surfaces or handover report, only the tables, ``summary.json`` and the
     fields. See :func:`_run_case` for the other arguments.
+
+    The transport saves a checkpoint (``checkpoint/`` in the run folder) as often as
+    ``checkpoint_every`` says and when SIGINT or SIGTERM stops it
+    (:class:`~fe3d.transport.checkpoint.RunInterrupted`); a finished run keeps none.
+    ``resume``: continue the stopped run of ``out_dir`` from its newest checkpoint
+    (:func:`fe3d.resume.claim_saved_run`; refused with one line naming ``--resume`` when
+    there is none or the case, mesh or flow changed, and then ``out_dir`` is left as it
+    was): the outputs written before the checkpoint are written again from it and the run
+    goes on, so that the folder ends as an uninterrupted run's would.
     """
-    check_target(out_dir, overwrite=overwrite, inputs=inputs)
+    saved = claim_saved_run(case, out_dir) if resume else None
+    check_target(out_dir, overwrite=overwrite or resume, inputs=inputs)
     if not force:
         check_fits(estimate_run(case), out_dir)
     check_user_code(case, base_dir)  # before anything is written
     work = work_folder(out_dir)
+    keeper = Checkpointer(work / CHECKPOINT_FOLDER, case=case_fingerprint(case),
+                          every_steps=checkpoint_every.steps,
+                          every_seconds=checkpoint_every.seconds)
+    if saved is not None:
+        shutil.copytree(saved.checkpoint_folder, keeper.folder)
     state: RunState = "failed"
     detail = ""
+    refused = False
     try:
-        with solver_log(work / "solver.log"):
+        with solver_log(work / "solver.log"), stop_on_signals(keeper):
             summary = _run_case(case, work, progress=progress, base_dir=base_dir,
-                                mesh_folders=[out_dir, *(mesh_folders or [])], site=site,
-                                compact=compact)
+                                mesh_folders=[out_dir, *([saved.folder] if saved else []),
+                                              *(mesh_folders or [])],
+                                site=site, compact=compact, keeper=keeper, saved=saved)
         if not compact:
             write_handover(work, case=case)  # report.md and report.html from the run's files
         state = "finished"
+        shutil.rmtree(keeper.folder, ignore_errors=True)  # a finished run keeps none
     except KeyboardInterrupt:
         state, detail = "interrupted", "interrupted by the user (Ctrl-C or a signal)"
+        raise
+    except CaseError as exc:
+        refused = exc.key_path == RESUME_KEY  # the mesh or flow changed: leave out_dir be
+        detail = str(exc).splitlines()[0]
         raise
     except Exception as exc:
         detail = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         raise
     finally:
-        write_manifest(work, state, detail=detail)
-        move_into_place(work, out_dir)
+        if refused:
+            shutil.rmtree(work, ignore_errors=True)
+        else:
+            write_manifest(work, state, detail=detail)
+            move_into_place(work, out_dir)
+            if saved is not None and saved.taken_over:
+                shutil.rmtree(saved.folder, ignore_errors=True)
     return summary
 
 
 def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
               base_dir: Path | None = None, mesh_folders: list[Path] | None = None,
-              site: SiteMesh | None = None, compact: bool = False) -> RunSummary:
+              site: SiteMesh | None = None, compact: bool = False,
+              keeper: Checkpointer, saved: SavedRun | None = None) -> RunSummary:
     """Run every stage and write the run folder; returns the summary.
 
     ``progress(stage, done, total)`` is called as work advances (for a progress bar);
     ``base_dir`` resolves relative file names in the case (usually the case file's folder);
     ``mesh_folders`` are further folders (after the run folder) where a mesh cached with the
     same mesh inputs is reused from, and copied into the run folder; ``site``, when given,
-    is used as it is (no corridor pass, no cache): a mesh shared by the members of a study.
+    is used as it is (no corridor pass, no cache): a mesh shared by the members of a study;
+    ``keeper`` saves the transport's checkpoints; ``saved``: the stopped run to continue.
     """
     started = time.perf_counter()
     clock = StageClock(progress)
@@ -192,21 +240,49 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
         site, out_dir, formats=("msh", "vtu") if case.output.vtu_series else ())]
     tell("flow", 0, 1)
     flow = solve_flow(site, FlowInputs.of(case), base_dir=base_dir)
+    if saved is not None:
+        check_resumable(saved.checkpoint, site, flow)
     tell("travel paths", 0, 1)
     paths = travel_paths(site, flow, TravelInputs.of(case))
     files += write_flow_outputs(out_dir, case, site, flow, paths, figures=not compact)
     writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow, figures=not compact)
-    try:
-        for snap in run_transport(site, flow, TransportInputs.of(case), base_dir=base_dir,
-                                  on_step=lambda t, end: tell("transport", t, end)):
-            writer.add(snap)
-    except BaseException:
-        writer.close()  # the output times written so far stay readable
-        raise
+    _transport(case, site, flow, writer, keeper=keeper, saved=saved, base_dir=base_dir,
+               on_step=lambda t, end: tell("transport", t, end))
     tell("outputs", 0, 1)
     summary = writer.finish(flow, paths, files, started)
     logger.info("time per stage: %s", clock.words())
     return summary
+
+
+def _transport(case: Case, site: SiteMesh, flow: FlowField, writer: SeriesWriter, *,
+               keeper: Checkpointer, saved: SavedRun | None, base_dir: Path | None,
+               on_step: Callable[[float, float], None]) -> None:
+    """The transport stage: every snapshot to ``writer`` (first those kept by ``saved``'s
+    checkpoint, written again) and to ``keeper``'s checkpoint folder. Signals wait for the
+    end of a step (:func:`fe3d.resume.stop_on_signals`, set again here: the mesher may have
+    put its own handlers in place)."""
+    resume_from = None if saved is None else saved.checkpoint
+    index = 0
+    if resume_from is not None:
+        for snap in read_outputs(keeper.folder, resume_from):
+            writer.add(snap)
+        index = resume_from.outputs
+    keeper.listening = True
+    try:
+        with stop_on_signals(keeper):
+            for snap in run_transport(site, flow, TransportInputs.of(case), base_dir=base_dir,
+                                      on_step=on_step, resume_from=resume_from,
+                                      checkpoints=keeper):
+                writer.add(snap)
+                keeper.add_output(index, snap)
+                index += 1
+        if keeper.stop_signal is not None:  # asked for at the last step
+            raise RunInterrupted(keeper.stop_signal, case.time.end, None)
+    except BaseException:
+        writer.close()  # the output times written so far stay readable
+        raise
+    finally:
+        keeper.listening = False
 
 
 class StageClock:

@@ -25,21 +25,39 @@ from typing import Any
 import numpy as np
 
 from fe3d._typing import FloatArray
+from fe3d.errors import CaseError
+from fe3d.flow.solve import FlowField
+from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.transport.accumulate import StatisticsState, TotalsState, TransportDiagnostics
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.planner import PlannerState
 from fe3d.transport.snapshot import Snapshot
 from fe3d.transport.step import StepBudget, StepState
 
-__all__ = ["CHECKPOINT_FOLDER", "FORMAT", "Checkpoint", "Checkpointer", "RunInterrupted",
-           "fingerprint", "read_checkpoint", "read_outputs", "write_checkpoint",
-           "write_output"]
+__all__ = [
+    "CHECKPOINT_FOLDER",
+    "FORMAT",
+    "RESUME_KEY",
+    "Checkpoint",
+    "Checkpointer",
+    "RunInterrupted",
+    "check_resumable",
+    "fingerprint",
+    "read_checkpoint",
+    "read_outputs",
+    "run_fingerprints",
+    "write_checkpoint",
+    "write_output",
+]
 
 CHECKPOINT_FOLDER = "checkpoint"
 """The checkpoint folder's name inside a run folder."""
 
 FORMAT = 1
 """Version of the checkpoint layout; a checkpoint of another version is not read."""
+
+RESUME_KEY = "--resume"
+"""What a refused resume is named by: the command-line option that asks for it."""
 
 _STATE = "state.npz"
 
@@ -95,6 +113,21 @@ def fingerprint(*arrays: FloatArray) -> str:
     return digest.hexdigest()
 
 
+def run_fingerprints(site: SiteMesh, flow: FlowField) -> tuple[str, str]:
+    """Fingerprints of the mesh (points, cells) and of the flow (head, Darcy flux)."""
+    return fingerprint(site.points, site.cells), fingerprint(flow.head, flow.darcy_flux)
+
+
+def check_resumable(ckpt: Checkpoint, site: SiteMesh, flow: FlowField) -> None:
+    """Raise CaseError naming ``--resume`` when ``ckpt`` was saved with another mesh or
+    flow field."""
+    mesh, water = run_fingerprints(site, flow)
+    if (mesh, water) != (ckpt.mesh, ckpt.flow):
+        what = "mesh" if mesh != ckpt.mesh else "flow field"
+        allowed = f"was saved with another {what}: run again from the start (--overwrite)"
+        raise CaseError(RESUME_KEY, f"checkpoint at t = {ckpt.time:.6g} s", allowed)
+
+
 def _plain(x: Any) -> Any:
     """JSON-ready copy: tuples as lists, non-finite floats as the strings 'inf', '-inf',
     'nan' (read back with float())."""
@@ -111,7 +144,12 @@ def _save(path: Path, header: dict[str, Any], arrays: dict[str, np.ndarray]) -> 
     """One ``.npz`` with the JSON ``header``, written to a temporary file in the same folder
     and renamed into place."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    text = json.dumps(_plain({"format": FORMAT, **header}), allow_nan=False)
+    first: dict[int, str] = {}  # an array held twice (fields, levels) is written once
+    same_as = {k: first.setdefault(id(a), k) for k, a in arrays.items()}
+    arrays = {k: a for k, a in arrays.items() if same_as[k] == k}
+    same_as = {k: v for k, v in same_as.items() if k != v}
+    text = json.dumps(_plain({"format": FORMAT, **header, "same_as": same_as}),
+                      allow_nan=False)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
     try:
         with os.fdopen(fd, "wb") as fh:
@@ -131,6 +169,8 @@ def _load(path: Path) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
     if header.get("format") != FORMAT:
         msg = f"{path}: checkpoint format {header.get('format')}, this fe3d reads {FORMAT}"
         raise ValueError(msg)
+    for key, kept in header.pop("same_as").items():
+        arrays[key] = arrays[kept]
     return header, arrays
 
 
@@ -258,8 +298,9 @@ def read_outputs(folder: Path, ckpt: Checkpoint) -> list[Snapshot]:
 class Checkpointer:
     """Saves the run loop's state into ``folder`` every ``every_steps`` accepted steps
     and/or every ``every_seconds`` of wall time (whichever comes first), and at once when a
-    stop was asked for (``stop_signal``, set by a signal handler), after which the run stops
-    with :class:`RunInterrupted`. ``case`` is the fingerprint of the case."""
+    stop was asked for (``stop_signal``, set by a signal handler while ``listening``), after
+    which the run stops with :class:`RunInterrupted`. ``case`` is the fingerprint of the
+    case."""
 
     def __init__(self, folder: Path, *, case: str, every_steps: int | None = None,
                  every_seconds: float | None = None,
@@ -267,6 +308,7 @@ class Checkpointer:
         self.folder, self.case = folder, case
         self.every_steps, self.every_seconds, self.clock = every_steps, every_seconds, clock
         self.stop_signal: int | None = None
+        self.listening = False  # the transport is running: a signal waits for the step's end
         self.saved = 0  # checkpoints written
         self.write_seconds = 0.0  # wall time spent writing them [s]
         self._since_steps = 0

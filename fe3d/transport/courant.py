@@ -24,18 +24,23 @@ is already inside)."""
 
 
 class PlumeCourant:
-    """Courant rate [1/s] of the plume of every species, from the current fields."""
+    """Courant rate [1/s] of the plume of every species, from the current fields, and the
+    largest grid Péclet number |v| h / D_L of the cells the plume has reached so far
+    (``largest_peclet``, updated by :meth:`rates`)."""
 
     def __init__(self, site: SiteMesh, species: tuple[SpeciesModel, ...],
                  sources: SourceGeometry) -> None:
-        self.node_rate = {}
+        self.node_rate, self.node_peclet = {}, {}
         for s in species:
             c = s.coefficients
-            cell_rate = np.sqrt(np.sum(c.velocity * c.velocity, axis=0)) / c.element_length
-            rate = np.zeros(site.n_nodes)
-            for k in range(site.cells.shape[0]):
-                np.maximum.at(rate, site.cells[k], cell_rate)
-            self.node_rate[s.name] = rate
+            speed = np.sqrt(np.sum(c.velocity * c.velocity, axis=0))
+            self.node_rate[s.name] = _largest_around(site, speed / c.element_length)
+            # grid Péclet |v| h / D_L of each cell (the retardation cancels: a = v/R, D/R)
+            d_l = c.along_flow_diffusivity
+            self.node_peclet[s.name] = _largest_around(site, np.divide(
+                speed * c.element_length, d_l, out=np.where(speed > 0, np.inf, 0.0),
+                where=d_l > 0))
+        self.largest_peclet = {s.name: 0.0 for s in species}
         self.limits = {s.name: s.spec.limit for s in species}
         self.sources = sources
         self._source_nodes = {src.name: self._nodes_of(src.name, site.n_nodes)
@@ -65,6 +70,9 @@ class PlumeCourant:
             inside |= self.sources.injection[name] > 0.0
             rate = self.node_rate[name][inside]
             out[name] = float(rate.max()) if rate.size else 0.0
+            if rate.size:
+                self.largest_peclet[name] = max(self.largest_peclet[name],
+                                                float(self.node_peclet[name][inside].max()))
         return out
 
     @staticmethod
@@ -76,3 +84,11 @@ class PlumeCourant:
             return longest
         k = max(0, int(np.ceil(np.log2(longest * rate / target) - 1e-12)))
         return longest / 2.0**k
+
+
+def _largest_around(site: SiteMesh, cell_value: FloatArray) -> FloatArray:
+    """At every node, the largest value of the cells around it."""
+    out = np.zeros(site.n_nodes)
+    for k in range(site.cells.shape[0]):
+        np.maximum.at(out, site.cells[k], cell_value)
+    return out

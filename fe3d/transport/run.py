@@ -27,7 +27,7 @@ from fe3d._threads import limit_blas_threads
 from fe3d._typing import FloatArray
 from fe3d.case.parts import TransportInputs
 from fe3d.case.schema import TimeControl
-from fe3d.errors import CaseError, SolverError
+from fe3d.errors import SolverError
 from fe3d.flow.solve import FlowField
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.site_mesh import SiteMesh
@@ -40,7 +40,12 @@ from fe3d.transport.accumulate import (
     grid_peclet,
 )
 from fe3d.transport.assembly import P1_MASS
-from fe3d.transport.checkpoint import Checkpoint, Checkpointer, fingerprint
+from fe3d.transport.checkpoint import (
+    Checkpoint,
+    Checkpointer,
+    check_resumable,
+    run_fingerprints,
+)
 from fe3d.transport.courant import PlumeCourant
 from fe3d.transport.model import SpeciesModel, build_medium, build_species, lumped
 from fe3d.transport.planner import PlannedStep, StepPlanner, time_steps
@@ -54,10 +59,6 @@ __all__ = ["Snapshot", "TransportDiagnostics", "next_state", "run_transport", "s
            "time_steps"]
 
 logger = logging.getLogger(__name__)
-
-RESUME_KEY = "--resume"
-"""What a refused resume is named by: the command-line option that asks for it."""
-
 
 def run_transport(
     site: SiteMesh, flow: FlowField, inputs: TransportInputs, *,
@@ -195,17 +196,13 @@ class _RunningState:
                    history_times=[0.0],
                    history={s.name: [probe @ fields[s.name]] for s in species},
                    accepted=[(0.0, fields)], dt_prev=None, outputs=0,
-                   fingerprints=_fingerprints(site, flow))
+                   fingerprints=run_fingerprints(site, flow))
 
     @classmethod
     def resumed(cls, site: SiteMesh, flow: FlowField, ctx: StepContext, planner: StepPlanner,
                 probe: sp.csr_matrix, saved: Checkpoint) -> _RunningState:
         """The state saved in ``saved``, which must belong to this mesh and flow."""
-        prints = _fingerprints(site, flow)
-        if prints != (saved.mesh, saved.flow):
-            what = "mesh" if prints[0] != saved.mesh else "flow field"
-            allowed = f"was saved with another {what}: run again from the start"
-            raise CaseError(RESUME_KEY, f"checkpoint at t = {saved.time:.6g} s", allowed)
+        check_resumable(saved, site, flow)
         planner.resume_from(saved.planner)
         totals = BudgetTotals(ctx.species, saved.state.fields)
         totals.resume_from(saved.totals)
@@ -216,7 +213,7 @@ class _RunningState:
                    history_times=[float(t) for t in saved.history_times],
                    history={k: list(v) for k, v in saved.history.items()},
                    accepted=list(saved.accepted), dt_prev=saved.dt_prev,
-                   outputs=saved.outputs, fingerprints=prints)
+                   outputs=saved.outputs, fingerprints=run_fingerprints(site, flow))
 
     def commit(self, step: PlannedStep, result: StepResult, rates: dict[str, float]) -> None:
         """Fold an accepted step in: totals, diagnostics, fields, levels and histories."""
@@ -254,11 +251,6 @@ class _RunningState:
             history={k: np.array(v).reshape(len(v), n_obs) for k, v in self.history.items()},
             accepted=tuple(self.accepted), dt_prev=self.dt_prev, outputs=self.outputs,
             mesh=self.fingerprints[0], flow=self.fingerprints[1])
-
-
-def _fingerprints(site: SiteMesh, flow: FlowField) -> tuple[str, str]:
-    """Fingerprints of the mesh (points, cells) and of the flow (head, Darcy flux)."""
-    return fingerprint(site.points, site.cells), fingerprint(flow.head, flow.darcy_flux)
 
 
 def _without_older(state: StepState) -> StepState:
