@@ -25,6 +25,7 @@ from fe3d.transport.limiter import limited_target_fluxes
 from fe3d.transport.model import RateLaw, SpeciesModel
 from fe3d.transport.newton import Forcing, newton
 from fe3d.transport.newton_correction import CorrectionSolver
+from fe3d.transport.newton_residual import StepResidual
 from fe3d.transport.shock import isotropic_stiffness, shock_diffusivity
 from fe3d.transport.sources import SourceGeometry
 from fe3d.transport.systems import NearbySolver, StepSystem, StepSystems
@@ -429,92 +430,35 @@ def nonlinear_step(
     ``user_rates``: the user law's rate of the species with the others at their newest
     values and at the step's start (T11b). Returns the new field, the full residual (for
     the budget), the mass lost in the step [kg] by sorbed-phase decay and reactions, and
-    the Newton iteration count.
+    the Newton iteration count. Each correction is solved only to Eisenstat & Walker's
+    forcing term (R14b); convergence is judged on R itself.
     """
-    # with linear sorption (K_d) the sorbed storage and its decay are already in S (m and k
-    # of T1, T5); only nonlinear isotherms add them here (T10)
-    nonlin_sorption = bool(s.isotherms)
-    lam_s = float(s.sorbed_decay) if nonlin_sorption else 0.0
     rate_now, rate_start = (None, None) if user_rates is None else user_rates
-    th = formula.theta
     free = step_system.free
-    sig_old = s.sorbed(old)[0] if nonlin_sorption else 0.0
-    sig_hist = formula.a1 * sig_old + (
-        0.0 if prev is None or not nonlin_sorption else formula.a2 * s.sorbed(prev)[0])
     loss_old, _ = s.reaction_loss(old, rate_start)
-    # everything R holds that does not change with c, gathered once:
-    # R(c) = S c − known + (a0/Δt + θλ_s) Σ(c) + θ L(c)
-    known = rhs - sig_hist / dt - lam_s * (1 - th) * sig_old - (1 - th) * loss_old
-    storage_weight = formula.a0 / dt + th * lam_s
+    res = StepResidual(s, step_system, rhs, old, prev, new, dt, formula, rate_now, loss_old)
     S_ff = step_system.solver.A  # S on the free nodes, as the solver holds it
     # the step matrix's splitting or preconditioner serves every Newton iteration of the
-    # step: J differs from S_ff by a diagonal (T10, T11, R14b)
+    # step: J differs from S_ff by a diagonal (T10, T11); each correction is solved only to
+    # the forcing term (R14b)
     corrections = CorrectionSolver(step_system.solver)
-    # the law at the last point R was evaluated at: Newton asks for J where it has just
-    # evaluated R, and the budget needs the loss at the result
-    last: list[_LawAt] = []
-
-    def full_residual(c: FloatArray) -> FloatArray:
-        loss, dloss = s.reaction_loss(c, rate_now)
-        out = step_system.S @ c - known
-        out += th * loss
-        if nonlin_sorption:
-            out += storage_weight * s.sorbed(c)[0]
-        last[:] = [_LawAt(None, c, loss, dloss)]
-        return out
-
-    def residual(x: FloatArray) -> FloatArray:
-        c = new.copy()
-        c[free] = x
-        out = full_residual(c)[free]
-        last[0] = replace(last[0], x=x)
-        return out
-
-    def jacobian_diagonal(x: FloatArray) -> FloatArray:
-        """J − S_ff on the free nodes at x (T10, T11)."""
-        c, dloss = last[0].c, last[0].dloss
-        if last[0].x is not x:
-            c = new.copy()
-            c[free] = x
-            dloss = s.reaction_loss(c, rate_now)[1]
-        extra = th * dloss[free]
-        if nonlin_sorption:
-            extra += storage_weight * s.sorbed(c)[1][free]
-        return extra
 
     def jacobian_solve(x: FloatArray, r: FloatArray, eta: float) -> FloatArray:
-        return corrections.solve(jacobian_diagonal(x), r, eta)
+        return corrections.solve(res.jacobian_diagonal(x), r, eta)
 
     # an absolute floor at the round-off of evaluating R: near a steady state the first
     # residual is already tiny and tol times it would lie below what floating point reaches
     scale = max(float(np.linalg.norm(rhs[free])), float(np.linalg.norm(S_ff @ old[free])))
     # Newton starts from cⁿ: its first iterate is the linearised step's solution (R14c)
-    x0 = old[free].copy()
-    result = newton(residual, jacobian_solve, x0, rtol=tol,
+    result = newton(res.free_rows, jacobian_solve, old[free].copy(), rtol=tol,
                     atol=ROUND_OFF_FACTOR * np.finfo(float).eps * scale, max_iter=max_iter,
                     forcing=Forcing())
     logger.info("%s: Newton %d iterations, residual norms %s, Krylov iterations %s",
                 s.name, result.iterations, ", ".join(f"{r:.2e}" for r in result.residual_norms),
                 corrections.iterations, extra={"krylov_iterations": corrections.iterations})
-    c = new.copy()
-    c[free] = result.x
-    r_full = full_residual(c)
-    loss_new = last[0].loss
-    sorbed_loss = lam_s * float(np.sum(th * s.sorbed(c)[0] + (1 - th) * sig_old)) \
-        if nonlin_sorption else 0.0
-    decayed = dt * (sorbed_loss + float((th * loss_new + (1 - th) * loss_old).sum()))
-    return c, r_full, decayed, result.iterations
-
-
-@dataclass(frozen=True)
-class _LawAt:
-    """The reaction law at one Newton iterate: its free values (None until known), the whole
-    field [kg/m³], the nodal loss [kg/s] and its derivative [m³/s] (T11)."""
-
-    x: FloatArray | None
-    c: FloatArray
-    loss: FloatArray
-    dloss: FloatArray
+    c = res.field(result.x)
+    r_full = res.full(c)
+    return c, r_full, res.decayed(c, loss_old, dt), result.iterations
 
 
 def _sorbed_decay_rate(s: SpeciesModel, new: FloatArray, old: FloatArray,
