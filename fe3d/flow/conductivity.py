@@ -15,7 +15,8 @@ from fe3d.errors import CaseError
 from fe3d.mesh.fields import read_vtk_cell_field
 from fe3d.units import to_si
 
-__all__ = ["bedding_normal", "conductivity_tensors", "read_point_field"]
+__all__ = ["bedding_normal", "conductivity_tensors", "read_point_field", "tensor_entries",
+           "unit_normals"]
 
 
 def bedding_normal(strike: float, dip: float) -> FloatArray:
@@ -80,6 +81,27 @@ def _interpolate_log(points: FloatArray, values: FloatArray, at: FloatArray) -> 
     return np.exp(out)
 
 
+def unit_normals(unit_materials: list[Material]) -> FloatArray:
+    """Bedding normal of every unit's material, shape ``(3, n_units)``."""
+    return np.array([bedding_normal(m.conductivity_strike, m.conductivity_dip)
+                     for m in unit_materials]).T
+
+
+def tensor_entries(kh: FloatArray, kv: FloatArray, normals: FloatArray) -> FloatArray:
+    """K = K_h I + (K_v − K_h) n nᵀ [m/s] of each cell (theory.md F1), shape ``(3, 3, k)``,
+    from K_h and K_v ``(k,)`` [m/s] and the unit normals ``(3, k)``: entry by entry, with no
+    temporaries of the result's size. The same numbers for a cell whichever cells are
+    formed with it, so that a caller can form them a chunk at a time."""
+    tensors = np.empty((3, 3, kh.size))
+    step = kv - kh
+    for i in range(3):
+        scaled = step * normals[i]
+        for j in range(3):
+            np.multiply(scaled, normals[j], out=tensors[i, j])
+        tensors[i, i] += kh
+    return tensors
+
+
 def conductivity_tensors(
     points: FloatArray, cells: IndexArray, cell_unit: IndexArray, unit_materials: list[Material],
     *, unit_keys: list[str], base_dir: Path | None = None,
@@ -97,12 +119,9 @@ def conductivity_tensors(
     tensors, principal
         The tensors and (K_h, K_h, K_v) per cell, shape ``(3, n_cells)``.
     """
-    n = cells.shape[1]
     # per-unit values gathered by the cells' unit index (no mask per unit over every cell)
     kh = np.array([m.horizontal_conductivity for m in unit_materials])[cell_unit]
     ratio = np.array([m.k_vertical / m.horizontal_conductivity for m in unit_materials])
-    normals = np.array([bedding_normal(m.conductivity_strike, m.conductivity_dip)
-                        for m in unit_materials]).T[:, cell_unit]
     centres = None
     for u, mat in enumerate(unit_materials):
         if mat.conductivity_file is None:
@@ -133,13 +152,5 @@ def conductivity_tensors(
             pts, vals = read_point_field(path, key)
             kh[sel] = _interpolate_log(pts, vals, centres[sel])
     kv = ratio[cell_unit] * kh
-    # K = K_h I + (K_v − K_h) n nᵀ, entry by entry (one (3, 3, n) array, no temporaries of
-    # that size; rounded as the broadcast expression rounds it)
-    tensors = np.empty((3, 3, n))
-    step = kv - kh
-    for i in range(3):
-        scaled = step * normals[i]
-        for j in range(3):
-            np.multiply(scaled, normals[j], out=tensors[i, j])
-        tensors[i, i] += kh
+    tensors = tensor_entries(kh, kv, unit_normals(unit_materials)[:, cell_unit])
     return tensors, np.vstack([kh, kh, kv])

@@ -16,7 +16,7 @@ from fe3d.case.parts import FlowInputs
 from fe3d.errors import CaseError, SolverError
 from fe3d.flow.assembly import conductance_matrix
 from fe3d.flow.boundaries import lumped_face_weights
-from fe3d.flow.conductivity import conductivity_tensors
+from fe3d.flow.conductivity import conductivity_tensors, tensor_entries, unit_normals
 from fe3d.flow.site_rules import (
     head_dependent_problems,
     recharge_mask,
@@ -163,6 +163,7 @@ def solve_flow(
                                               unit_keys=[f"materials.{m}" for m in mat_names],
                                               base_dir=base_dir)
     A = conductance_matrix(p, site.cells, tensors, pattern=site.pattern)
+    del tensors  # 72 bytes per cell, not held through the solve: rebuilt by chunks for q
 
     # Dirichlet: fixed heads; a node on two fixed-head faces takes the first listed
     head = np.zeros(n)
@@ -233,8 +234,7 @@ def solve_flow(
 
     for (hd, la), act in zip(robin, active, strict=True):
         items.append((hd.name, hd.kind, la * act * (hd.stage - head)))
-    q = _darcy_flux(p, site.cells, tensors, head)
-    del tensors
+    q = _darcy_flux(p, site.cells, head, principal, unit_normals(mats), site.cell_layer)
     # consistent fixed-head flux: what the fixed rows need beyond every other term (F4)
     other = sum((f for _, _, f in items), np.zeros(n))
     reaction = A @ head - other
@@ -266,17 +266,22 @@ def _solve_heads(M: sp.csr_matrix, rhs: FloatArray, head: FloatArray, free: Inde
     return out
 
 
-def _darcy_flux(points: FloatArray, cells: IndexArray, tensors: FloatArray, head: FloatArray,
-                *, chunk: int = 500_000) -> FloatArray:
+def _darcy_flux(points: FloatArray, cells: IndexArray, head: FloatArray,
+                principal: FloatArray, normals: FloatArray, cell_unit: IndexArray, *,
+                chunk: int = 500_000) -> FloatArray:
     """q = −K∇h per cell [m/s], shape ``(3, n_cells)`` (theory.md F8), a chunk of cells at a
-    time: the basis gradients of all cells, ``(n_cells, 4, 3)``, would be 96 bytes per cell
-    (0.5 GB at 5.3 M cells) held at once."""
+    time: K from (K_h, K_h, K_v) per cell ``principal`` and the units' bedding ``normals``
+    ``(3, n_units)`` (:func:`~fe3d.flow.conductivity.tensor_entries`, the tensors of the
+    assembly entry for entry), and the basis gradients of the chunk only (all at once they
+    would be 96 bytes per cell, 0.5 GB at 5.3 M cells)."""
     q = np.empty((3, cells.shape[1]))
     for s in range(0, cells.shape[1], chunk):
-        c = cells[:, s:s + chunk]
+        part = slice(s, s + chunk)
+        c = cells[:, part]
         grads, _ = gradients(points, c)
         grad_h = np.einsum("eik,ie->ke", grads, head[c])
-        q[:, s:s + chunk] = -np.einsum("ije,je->ie", tensors[:, :, s:s + chunk], grad_h)
+        K = tensor_entries(principal[0, part], principal[2, part], normals[:, cell_unit[part]])
+        q[:, part] = -np.einsum("ije,je->ie", K, grad_h)
     return q
 
 
