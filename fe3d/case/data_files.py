@@ -19,7 +19,7 @@ from pathlib import Path
 from fe3d.errors import CaseError
 
 __all__ = ["MAX_CASE_FILE_BYTES", "MAX_DATA_FILE_BYTES", "MAX_MESH_FILE_BYTES",
-           "checked_file", "located", "read_text", "shown_cell"]
+           "checked_file", "checked_mesh_file", "located", "read_text", "shown_cell"]
 
 MiB = 1024 * 1024
 
@@ -82,6 +82,31 @@ def checked_file(path: Path, *, key: str, shown: str, limit: int = MAX_DATA_FILE
         raise CaseError(key, shown, f"holds {info.st_size:,} bytes; at most {limit // MiB:,} "
                         "MiB is read")
     return info
+
+
+_MESH_SIGNATURES = {".vtu": ((b"<?xml", b"<VTKFile"), "a VTK XML file (<?xml or <VTKFile)"),
+                    ".vtk": ((b"# vtk DataFile",), "a legacy VTK file (# vtk DataFile)"),
+                    ".msh": ((b"$MeshFormat", b"$NOD"), "a gmsh file ($MeshFormat)")}
+"""How the mesh formats fe3d names begin (after any white space, and a UTF-8 byte-order
+mark for XML): a file that begins otherwise is not read."""
+
+
+def checked_mesh_file(path: Path, *, key: str, shown: str) -> None:
+    """:func:`checked_file` with the mesh bound, and a .vtu, .vtk or .msh file must begin as
+    its format does (so that garbage is one line here, not a failure inside a reader)."""
+    checked_file(path, key=key, shown=shown, limit=MAX_MESH_FILE_BYTES)
+    known = _MESH_SIGNATURES.get(path.suffix.lower())
+    if known is None:
+        return
+    try:
+        with path.open("rb") as fh:
+            head = fh.read(256).lstrip().removeprefix(b"\xef\xbb\xbf")
+    except OSError as exc:
+        raise CaseError(key, shown, f"cannot be read ({exc.strerror})") from None
+    starts, what = known
+    if not head.startswith(starts):
+        raise CaseError(key, shown, f"is not {what}: its first bytes are not those of the "
+                        "format its name ends with")
 
 
 def read_text(path: Path, *, key: str, shown: str | None = None,

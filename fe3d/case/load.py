@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import logging
 import math
+import os
 import tomllib
 from pathlib import Path
 from typing import Any
@@ -16,8 +17,7 @@ from pydantic import ValidationError
 from fe3d.case.data_files import (
     MAX_CASE_FILE_BYTES,
     MAX_DATA_FILE_BYTES,
-    MAX_MESH_FILE_BYTES,
-    checked_file,
+    checked_mesh_file,
     located,
     read_text,
 )
@@ -226,16 +226,17 @@ def with_geology_files(case: Case, base_dir: Path) -> Case:
     if case.mesh.import_file is not None:
         name = case.mesh.import_file
         path = place(name, "mesh.import_file")
-        checked_file(path, key="mesh.import_file", shown=name, limit=MAX_MESH_FILE_BYTES)
+        checked_mesh_file(path, key="mesh.import_file", shown=name)
         case = case.model_copy(update={"mesh": case.mesh.model_copy(
             update={"import_file": str(path)})})
     for mat_name, mat in case.materials.items():
         if mat.conductivity_file is not None:
             key = f"materials.{mat_name}.conductivity_file"
             path = place(mat.conductivity_file, key)
+            if not os.path.lexists(path):
+                continue  # the flow stage reads it (from its own base folder) and says so
             if path.suffix.lower() in (".vtu", ".vtk"):
-                checked_file(path, key=key, shown=mat.conductivity_file,
-                             limit=MAX_MESH_FILE_BYTES)
+                checked_mesh_file(path, key=key, shown=mat.conductivity_file)
             else:  # a CSV of points, read by the flow stage: text of bounded size
                 read_text(path, key=key, shown=mat.conductivity_file, limit=MAX_DATA_FILE_BYTES)
     strat = case.stratigraphy

@@ -216,3 +216,17 @@ def test_content_of_a_data_file_is_not_quoted(demo):
     line = _file_line(demo)
     assert line.startswith("stratigraphy.borehole_file = 'boreholes.csv': must start with")
     assert "root" not in line and "/bin" not in line, line
+
+
+@pytest.mark.parametrize(("name", "content", "what"), [
+    ("k.vtu", b"\x00\x01garbage", "is not a VTK XML file"),
+    ("k.vtk", b"<VTKFile>", "is not a legacy VTK file"),
+])
+def test_a_cell_field_file_that_is_not_its_format_is_one_line(tmp_path, name, content, what):
+    """meshio exits the process (SystemExit 1) on some files it cannot read; the load refuses
+    them first by their first bytes."""
+    (tmp_path / name).write_bytes(content)
+    text = _edit('transverse_dispersivity = "0.2 m"',
+                 f'transverse_dispersivity = "0.2 m"\nconductivity_file = "{name}"')
+    (line,) = _lines(text, base_dir=tmp_path)
+    assert line.startswith(f"materials.sand.conductivity_file = '{name}': {what}"), line
