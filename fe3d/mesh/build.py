@@ -481,14 +481,13 @@ def build_mesh(case: Case, *, corridor: Corridor | None = None) -> SiteMesh:
     inv = np.empty_like(perm)
     inv[perm] = np.arange(n)
     points, node_level, plan_of = points[:, perm], node_level[perm], plan_of[perm]
-    cells = inv[cells]
-    del inv, perm
-    # cells in the order of their lowest node: an assembly pass over the cells then writes
-    # near where it last wrote (at 5.9 M cells in extrusion order the random writes made
-    # assembly several times slower, docs/performance.md)
-    corder = order_by_lowest_node(cells, n)
-    cells, cell_unit = orient_positive(points, cells, corder), cell_unit[corder]
-    del corder
+    del perm
+    # cells renumbered and in the order of their lowest node: an assembly pass over the
+    # cells then writes near where it last wrote (at 5.9 M cells in extrusion order the
+    # random writes made assembly several times slower, docs/performance.md)
+    corder = order_by_lowest_node(cells, n, inv)
+    cells, cell_unit = orient_positive(points, cells, corder, inv), cell_unit[corder]
+    del corder, inv
     base_z = surfaces[-1]
     unit_names = tuple([ly.name for ly in case.layers] + [ls.name for ls in case.lenses])
     faces = _classify_faces(points, cells, node_level, plan_of, base_z, plan.edges)

@@ -90,11 +90,13 @@ def split_prisms(tri: IndexArray, canon: IndexArray, layer_unit: IndexArray,
 
 
 @_jit
-def _order_kernel(cells: IndexArray, n: int) -> IndexArray:
+def _order_kernel(cells: IndexArray, new_id: IndexArray) -> IndexArray:
+    n = new_id.size
     start = np.zeros(n + 1, np.int64)
     lowest = np.empty(cells.shape[1], np.int64)
     for e in range(cells.shape[1]):
-        lowest[e] = min(min(cells[0, e], cells[1, e]), min(cells[2, e], cells[3, e]))
+        lowest[e] = min(min(new_id[cells[0, e]], new_id[cells[1, e]]),
+                        min(new_id[cells[2, e]], new_id[cells[3, e]]))
         start[lowest[e] + 1] += 1
     for i in range(n):
         start[i + 1] += start[i]
@@ -105,10 +107,18 @@ def _order_kernel(cells: IndexArray, n: int) -> IndexArray:
     return order
 
 
-def order_by_lowest_node(cells: IndexArray, n: int) -> IndexArray:
+def _ids(new_id: IndexArray | None, n: int) -> IndexArray:
+    return np.arange(n, dtype=np.int64) if new_id is None else \
+        np.ascontiguousarray(new_id, dtype=np.int64)
+
+
+def order_by_lowest_node(cells: IndexArray, n: int, new_id: IndexArray | None = None,
+                         ) -> IndexArray:
     """The cell order by lowest node id, ties in their given order (the same as
-    ``np.argsort(cells.min(axis=0), kind="stable")``, in linear time), shape ``(m,)``."""
-    return _order_kernel(np.ascontiguousarray(cells, dtype=np.int64), n)
+    ``np.argsort(new_id[cells].min(axis=0), kind="stable")``, in linear time and without
+    the renumbered copy), shape ``(m,)``. ``new_id`` ``(n,)``: a renumbering of the nodes
+    (none when not given)."""
+    return _order_kernel(np.ascontiguousarray(cells, dtype=np.int64), _ids(new_id, n))
 
 
 @numba.njit(inline="always")
@@ -148,17 +158,21 @@ def signed_volumes(points: np.ndarray, cells: IndexArray) -> np.ndarray:
 
 
 @_jit
-def _take_columns(cells: IndexArray, order: IndexArray, out: IndexArray) -> None:
+def _take_columns(cells: IndexArray, order: IndexArray, new_id: IndexArray,
+                  out: IndexArray) -> None:
     for e in range(order.size):
         for i in range(4):
-            out[i, e] = cells[i, order[e]]
+            out[i, e] = new_id[cells[i, order[e]]]
 
 
-def orient_positive(points: np.ndarray, cells: IndexArray, order: IndexArray) -> IndexArray:
-    """``cells[:, order]`` ``(4, m)`` with nodes 1 and 2 swapped where the signed volume is
-    negative, so that every cell of nonzero volume is positively oriented (a new array)."""
+def orient_positive(points: np.ndarray, cells: IndexArray, order: IndexArray,
+                    new_id: IndexArray | None = None) -> IndexArray:
+    """``new_id[cells[:, order]]`` ``(4, m)`` (``cells[:, order]`` without ``new_id``) with
+    nodes 1 and 2 swapped where the signed volume is negative, so that every cell of nonzero
+    volume is positively oriented (a new array; ``points`` are those of the new ids)."""
     out = np.empty((4, order.size), np.int64)
-    _take_columns(np.ascontiguousarray(cells, dtype=np.int64), order, out)
+    _take_columns(np.ascontiguousarray(cells, dtype=np.int64), order,
+                  _ids(new_id, points.shape[1]), out)
     _orient_kernel(np.ascontiguousarray(points, dtype=float), out)
     return out
 

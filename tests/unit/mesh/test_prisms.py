@@ -95,6 +95,10 @@ def test_boundary_order_and_orientation_match_numpy() -> None:
     np.testing.assert_array_equal(order, np.argsort(cells.min(axis=0), kind="stable"))
     oriented = orient_positive(points, cells, order)
     assert np.all(signed_volumes(points, oriented) > 0)
+    # renumbering inside the kernels equals renumbering first (inverse of the permutation)
+    original = perm[cells]  # the cells in the node ids before the permutation
+    np.testing.assert_array_equal(order_by_lowest_node(original, n, inv), order)
+    np.testing.assert_array_equal(orient_positive(points, original, order, inv), oriented)
     swapped = oriented[[0, 2, 1, 3]]  # the mirror image of every cell
     np.testing.assert_array_equal(orient_positive(points, swapped, np.arange(order.size)),
                                   oriented)
