@@ -225,10 +225,10 @@ def _stopped(exc: BaseException, case_path: Path, out: Path | None, folder: Path
     name = signal.Signals(number).name
     how = f"fe3d run {case_path}{f' --out {out}' if out else ''} --resume"
     if isinstance(exc, RunInterrupted) and exc.folder is not None:
-        print(f"interrupted ({name}): checkpoint saved in {folder / CHECKPOINT_FOLDER}; "  # noqa: T201
+        print(f"interrupted: {name}; checkpoint saved in {folder / CHECKPOINT_FOLDER}; "  # noqa: T201
               f"continue with: {how}", file=sys.stderr)
     else:
-        print(f"interrupted ({name}) before a checkpoint of this run: {folder} holds the "  # noqa: T201
+        print(f"interrupted: {name} before a checkpoint of this run; {folder} holds the "  # noqa: T201
               "outputs written so far (run.json says interrupted)", file=sys.stderr)
     return 128 + int(number)  # the shell's code for a process stopped by that signal
 

@@ -106,7 +106,9 @@ def claim_saved_run(case: Case, out_dir: Path) -> SavedRun:
     case changed since the checkpoint was saved."""
     shown = str(out_dir)
     candidates = [out_dir] if (out_dir / CHECKPOINT_FOLDER / "state.npz").is_file() else []
-    for path in out_dir.parent.glob(f".{out_dir.name}.running-*"):
+    hidden = [*out_dir.parent.glob(f".{out_dir.name}.running-*"),
+              *out_dir.parent.glob(f".{out_dir.name}.resume-*")]  # a resume that stopped early
+    for path in hidden:
         pid = path.name.rsplit("-", 1)[-1]
         if not (path / CHECKPOINT_FOLDER / "state.npz").is_file() or not pid.isdigit():
             continue
@@ -119,8 +121,8 @@ def claim_saved_run(case: Case, out_dir: Path) -> SavedRun:
                         "run keeps none): run without --resume")
     newest = max(candidates, key=lambda p: (p / CHECKPOINT_FOLDER / "state.npz").stat().st_mtime)
     taken_over = newest != out_dir
-    if taken_over:
-        claimed = out_dir.parent / f".{out_dir.name}.resume-{os.getpid()}"
+    claimed = out_dir.parent / f".{out_dir.name}.resume-{os.getpid()}"
+    if taken_over and newest != claimed:
         if claimed.exists():
             shutil.rmtree(claimed)
         newest = newest.rename(claimed)

@@ -10,7 +10,9 @@ loop ties together parts with one job each: what each species needs
 (:mod:`~fe3d.transport.model`), where the sources act (:mod:`~fe3d.transport.sources`),
 the step systems (:mod:`~fe3d.transport.systems`), one step of every species
 (:mod:`~fe3d.transport.step`), the step planner (:mod:`~fe3d.transport.planner`) and the
-running budget and diagnostics (:mod:`~fe3d.transport.accumulate`).
+running budget and diagnostics (:mod:`~fe3d.transport.accumulate`). What the loop carries
+from step to step is one record; a :class:`~fe3d.transport.checkpoint.Checkpoint` is its
+frozen copy, from which a stopped run continues.
 """
 
 from __future__ import annotations
@@ -59,6 +61,7 @@ __all__ = ["Snapshot", "TransportDiagnostics", "next_state", "run_transport", "s
            "time_steps"]
 
 logger = logging.getLogger(__name__)
+
 
 def run_transport(
     site: SiteMesh, flow: FlowField, inputs: TransportInputs, *,
@@ -153,7 +156,7 @@ def run_transport(
 
 def _yields_until(t: float, out_set: set[float]) -> int:
     """Snapshots a run yields up to time ``t`` [s]: t = 0 and the output times reached."""
-    return 1 + sum(1 for x in out_set if 0 < x <= t * (1.0 + 1e-12))
+    return 1 + sum(1 for x in out_set if 0 < x <= t + 1e-9 * max(1.0, x))
 
 
 @dataclass

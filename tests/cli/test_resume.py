@@ -174,3 +174,15 @@ def test_resume_refused_without_checkpoint_or_after_a_change(reference, tmp_path
     assert main(["run", str(changed), "--out", str(run), "--resume", "--quiet"]) == 2
     assert {p.name: p.read_bytes() for p in run.rglob("*") if p.is_file()} == before
     assert not list(tmp_path.glob(".run.*"))
+
+
+@pytest.mark.parametrize("text", ["0 steps", "-5 min", "5 m", "often"])
+def test_checkpoint_interval_refused_with_one_line(reference, tmp_path, capsys, text):
+    """A bad --checkpoint-every gives one line naming it and exit 2, before any work."""
+    case_file, _ = reference
+    code = main(["run", str(case_file), "--out", str(tmp_path / "run"), "--quiet",
+                 "--checkpoint-every", text])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert err.count("\n") == 1 and err.startswith("error: --checkpoint-every"), err
+    assert not (tmp_path / "run").exists()
