@@ -172,3 +172,39 @@ def test_checkpoint_of_another_mesh_is_refused(prepared, tmp_path):
     other = dataclasses.replace(flow, head=flow.head + 1e-9)
     with pytest.raises(CaseError, match=r"--resume.*another flow field"):
         next(run_transport(site, other, inputs, resume_from=ckpt))
+
+
+def test_checkpoint_saving_does_not_change_the_run(prepared, tmp_path):
+    """A checkpoint after every step leaves every snapshot of the run exactly as it is
+    without checkpoints (the state is copied out, never changed)."""
+    site, flow, inputs, whole = prepared
+    keeper = Checkpointer(tmp_path, case="case", every_steps=1)
+    snaps = []
+    for k, snap in enumerate(run_transport(site, flow, inputs, checkpoints=keeper)):
+        keeper.add_output(k, snap)
+        snaps.append(snap)
+    assert keeper.saved == whole[-1].diagnostics.n_steps - 1  # none after the last step
+    for got, want in zip(snaps, whole, strict=True):
+        _assert_same(got, want)
+
+
+def test_checkpoint_write_that_fails_keeps_the_previous_one(prepared, tmp_path, monkeypatch):
+    """A write that fails half way (disk full) leaves the previous checkpoint whole and no
+    temporary file behind (temp file in the same folder, renamed only when complete)."""
+    site, flow, inputs, _ = prepared
+    keeper = Checkpointer(tmp_path, case="case", every_steps=2)
+    run = run_transport(site, flow, inputs, checkpoints=keeper,
+                        on_step=_stop_after(5, KeyboardInterrupt()))
+    with pytest.raises(KeyboardInterrupt):
+        list(run)
+    before = (tmp_path / "state.npz").read_bytes()
+
+    def full_disk(fh, **_arrays):
+        fh.write(b"PK\x03\x04 partial")
+        raise OSError(28, "No space left on device")
+    monkeypatch.setattr(np, "savez", full_disk)
+    ckpt, _ = read_checkpoint(tmp_path)
+    with pytest.raises(OSError, match="No space"):
+        keeper.save(ckpt)
+    assert (tmp_path / "state.npz").read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["state.npz"]
