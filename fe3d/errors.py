@@ -38,7 +38,10 @@ class CaseError(Fe3dError):
 
     def line(self) -> str:
         """The one-line message shown to the user."""
-        return f"{self.key_path} = {_shown(self.value)}: {self.allowed}"
+        key = self.key_path
+        if len(key) > MAX_SHOWN_VALUE:  # a key path holds names from the file
+            key = f"{key[:MAX_SHOWN_VALUE - 1]}…"
+        return f"{key} = {_shown(self.value)}: {self.allowed}"
 
 
 class CaseErrors(Fe3dError):

@@ -31,6 +31,8 @@ __all__ = ["MAX_NESTING", "completed_case", "load_case", "parse_case"]
 
 logger = logging.getLogger(__name__)
 
+_MAX_NAME_SHOWN = 64  # longest name of a list item shown in a key path [characters]
+
 MAX_NESTING = 12
 """Deepest nesting of tables and arrays in a case file (the schema needs 6)."""
 
@@ -65,7 +67,8 @@ def _key_path(loc: tuple[Any, ...], raw: Any) -> str:
             name = None
             if isinstance(node, list) and 0 <= item < len(node) and isinstance(node[item], dict):
                 name = node[item].get("name")
-            parts[-1] = f"{parts[-1]}[{name if isinstance(name, str) else item}]"
+            plain = isinstance(name, str) and len(name) <= _MAX_NAME_SHOWN and name.isprintable()
+            parts[-1] = f"{parts[-1]}[{name if plain else item}]"
             node = node[item] if isinstance(node, list) and 0 <= item < len(node) else None
         else:
             key = str(item)

@@ -129,6 +129,13 @@ def test_a_long_value_is_not_echoed_in_full():
     assert "(2,000,002 characters)" in line
 
 
+def test_a_long_name_is_not_put_in_the_key_path():
+    """Found by the fuzzer: a 200,000-character layer name was shown whole in
+    ``layers[<name>]``; a name that is not a plain short word gives its index instead."""
+    (line,) = _lines(_edit('name = "top_sand"', f'name = "{"x" * 100_000}"'))
+    assert line.startswith("layers[0].name = 'xxx") and len(line) < 500, line[:500]
+
+
 @pytest.mark.parametrize("folder", ["../elsewhere", "/tmp/run", "~/run", "a/../../b", ""])
 def test_a_run_folder_named_in_the_case_stays_below_the_current_folder(folder):
     (line,) = _lines(_edit("[output]", f'[output]\nfolder = "{folder}"'))
