@@ -37,6 +37,10 @@ bench: $(STAMP)
 	$(BIN)/python benchmarks/post_bench.py
 	$(BIN)/python benchmarks/figures_bench.py
 	$(BIN)/python benchmarks/ensemble_bench.py
+	$(BIN)/python benchmarks/newton_bench.py
+	$(BIN)/python benchmarks/checkpoint_bench.py
+	$(BIN)/python benchmarks/memory_bench.py
+	$(BIN)/python benchmarks/corridor_vs_uniform.py --length 1000 --half-width 400
 
 clean:
 	rm -rf runs .pytest_cache .ruff_cache

@@ -12,6 +12,7 @@ from pathlib import Path
 from fe3d.case.parts import FlowInputs, TransportInputs, TravelInputs
 from fe3d.case.schema import Case
 from fe3d.errors import CaseError
+from fe3d.flow.drawdown import well_drawdown
 from fe3d.flow.paths import travel_paths
 from fe3d.flow.solve import FlowField, solve_flow
 from fe3d.mesh.build import build_mesh, obtain_mesh
@@ -239,13 +240,18 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     files = [p.name for p in write_mesh(
         site, out_dir, formats=("msh", "vtu") if case.output.vtu_series else ())]
     tell("flow", 0, 1)
-    flow = solve_flow(site, FlowInputs.of(case), base_dir=base_dir)
+    flow_inputs = FlowInputs.of(case)
+    flow = solve_flow(site, flow_inputs, base_dir=base_dir)
     if saved is not None:
         check_resumable(saved.checkpoint, site, flow)
+    # the drawdown of the wells: one more flow solve, skipped by compact runs (ensembles)
+    drawdown = None if compact else well_drawdown(site, flow_inputs, flow, base_dir=base_dir)
     tell("travel paths", 0, 1)
     paths = travel_paths(site, flow, TravelInputs.of(case))
-    files += write_flow_outputs(out_dir, case, site, flow, paths, figures=not compact)
-    writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow, figures=not compact)
+    files += write_flow_outputs(out_dir, case, site, flow, paths, figures=not compact,
+                                drawdown=drawdown)
+    writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow, figures=not compact,
+                          drawdown=drawdown)
     _transport(case, site, flow, writer, keeper=keeper, saved=saved, base_dir=base_dir,
                on_step=lambda t, end: tell("transport", t, end))
     tell("outputs", 0, 1)

@@ -102,8 +102,9 @@ def quality_warnings(s: RunSummary) -> list[str]:
                        "time.step (or leave it out: the steps then follow the plume) and "
                        "compare")
         if s.max_grid_peclet[sp] > 2.0:
-            out.append(f"{sp}: largest grid Péclet number {s.max_grid_peclet[sp]:.2g} > 2; "
-                       "the mesh is coarse against the dispersivities: refine and compare")
+            out.append(f"{sp}: largest grid Péclet number in the plume "
+                       f"{s.max_grid_peclet[sp]:.2g} > 2; the mesh is coarse against the "
+                       "dispersivities where the plume went: refine and compare")
         if s.limiting_blocked.get(sp, 0.0) >= 0.005:
             out.append(f"{sp}: flux limiting left up to {s.limiting_blocked[sp]:.0%} of the "
                        "nodes at the low-order value in a step (the step is long against "

@@ -24,8 +24,9 @@ Extreme = tuple[float, tuple[float, ...] | None]
 class TransportDiagnostics:
     """Numbers that tell whether the discretisation was adequate.
 
-    Per species: the largest grid Péclet and Courant numbers (over all cells, and over the
-    cells of the plume, T14b), the most negative value
+    Per species: the largest grid Péclet number over the cells the plume has reached (T14b),
+    the largest Courant number (over all cells, and over the cells of the plume), the most
+    negative value
     [kg/m³] and where [m] (None before any value fell below zero), the largest value over
     the run [kg/m³] and where (None at t = 0), and the largest share of
     free nodes flux limiting left at low order in a step (T16b). For the run: steps taken,
@@ -200,6 +201,13 @@ class RunStatistics:
             self.plume_courant[s.name] = max(self.plume_courant[s.name],
                                              dt * plume_rates[s.name])
         return lows
+
+    def note_plume_peclet(self, largest: dict[str, float]) -> None:
+        """Keep the largest grid Péclet number of the cells each plume has reached so far
+        (:class:`~fe3d.transport.courant.PlumeCourant`); cells it never reaches do not
+        count."""
+        for name, value in largest.items():
+            self.peclet[name] = max(self.peclet.get(name, 0.0), value)
 
     def diagnostics(self, step_cuts: int, rejected: int) -> TransportDiagnostics:
         """The diagnostics so far."""

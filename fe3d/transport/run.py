@@ -39,7 +39,6 @@ from fe3d.transport.accumulate import (
     BudgetTotals,
     RunStatistics,
     TransportDiagnostics,
-    grid_peclet,
 )
 from fe3d.transport.assembly import P1_MASS
 from fe3d.transport.checkpoint import (
@@ -140,6 +139,7 @@ def run_transport(
         if not planner.judge(step, result.newton_iterations, error):
             continue
         run.commit(step, result, rates)
+        run.stats.note_plume_peclet(courant.largest_peclet)
         try:
             if on_step is not None:
                 on_step(step.t1, tc.end)
@@ -186,16 +186,13 @@ class _RunningState:
         species, n = ctx.species, site.n_nodes
         start = initial_fields(inputs, site, ctx.sources)
         fields = {s.name: start[s.name] for s in species}
-        medium = ctx.systems.medium
         return cls(site=site, species=species, probe=probe, planner=planner,
                    state=StepState(fields=fields,
                                    held_before={s.name: np.zeros(n, dtype=bool)
                                                 for s in species},
                                    older=None, last_budget={}),
                    totals=BudgetTotals(species, fields),
-                   stats=RunStatistics({s.name: grid_peclet(s, medium.seepage_velocity,
-                                                            medium.porosity)
-                                        for s in species}),
+                   stats=RunStatistics(dict.fromkeys((s.name for s in species), 0.0)),
                    history_times=[0.0],
                    history={s.name: [probe @ fields[s.name]] for s in species},
                    accepted=[(0.0, fields)], dt_prev=None, outputs=0,
