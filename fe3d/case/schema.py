@@ -245,7 +245,7 @@ class Source(Section):
     depleting with ``depletion_half_life`` from ``start``; zero holds them clean);
     ``inflow_concentration`` gives the water entering through a face patch this
     concentration (a flux-type, third-type condition); ``mass_loading`` injects ``mass_rate``
-    spread over the box's nodes in proportion to their volume;
+    spread evenly over the box's volume (its Galerkin nodal shares);
     ``initial_plume`` sets ``concentration`` in the region at t = 0.
     """
 

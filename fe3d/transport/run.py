@@ -48,7 +48,7 @@ from fe3d.transport.checkpoint import (
     run_fingerprints,
 )
 from fe3d.transport.courant import PlumeCourant
-from fe3d.transport.model import SpeciesModel, build_medium, build_species, lumped
+from fe3d.transport.model import SpeciesModel, build_medium, build_species
 from fe3d.transport.planner import PlannedStep, StepPlanner, time_steps
 from fe3d.transport.snapshot import Snapshot
 from fe3d.transport.sources import build_source_geometry, initial_fields
@@ -291,9 +291,7 @@ def step_context(site: SiteMesh, flow: FlowField, inputs: TransportInputs,
     """Everything the steps share, built once."""
     medium = build_medium(site, flow, inputs.ground)
     species = tuple(build_species(site, flow, inputs, medium))
-    node_volume = lumped(site, np.abs(medium.cell_volume))
-    geometry = build_source_geometry(site, flow, inputs, node_volume=node_volume,
-                                     spacing=inputs.sample_spacing)
+    geometry = build_source_geometry(site, flow, inputs, spacing=inputs.sample_spacing)
     systems = StepSystems(site, medium, flow.darcy_flux, Scheme.of(inputs.solver), inputs.time,
                           inputs.solver, geometry.held_nodes)
     parents = {spec.parent for spec in inputs.species.values() if spec.parent is not None}

@@ -59,7 +59,7 @@ class SourceGeometry:
     (0, 1]; 1 for a box);
     ``inflow_weights``: inflow patch → nodal (−q·n)⁺ weights [m³/s] (T3b);
     ``loading_weights``: mass loading → nodal weights summing to 1 (T3f);
-    ``injection``: species → nodal load of injection wells [kg/s] (T3d);
+    ``injection``: species → nodal load of injection wells [kg/s] (theory.md T3, mass_loading);
     ``upper_bound``: species → the largest concentration [kg/m³] its sources can bring to
     each node (T16b): the injected and inflowing water's concentration, +inf where mass is
     loaded without water (a point load has no concentration of its own), 0 elsewhere."""
@@ -106,9 +106,9 @@ def _on(src: Source, t: float) -> bool:
 
 
 def build_source_geometry(site: SiteMesh, flow: FlowField, inputs: TransportInputs, *,
-                          node_volume: FloatArray, spacing: float) -> SourceGeometry:
-    """Nodes and weights of every source of ``inputs`` on ``site`` (``node_volume`` [m³]:
-    lumped nodal volumes; ``spacing`` [m]: sampling step along a line source)."""
+                          spacing: float) -> SourceGeometry:
+    """Nodes and weights of every source of ``inputs`` on ``site`` (``spacing`` [m]:
+    sampling step along a line source)."""
     n = site.n_nodes
     q = flow.darcy_flux
     held, shares = {}, {}
@@ -306,14 +306,14 @@ MAX_BOX_SAMPLES = 400_000
 
 
 def box_load_weights(site: SiteMesh, src: Source) -> FloatArray:
-    """Nodal weights (summing to 1) of a mass rate spread evenly over a box (T3d): the
-    Galerkin load ∫_box φ_j dV / V, by the midpoint rule on a regular grid of the box, at
-    :data:`BOX_SAMPLES_PER_CELL` points per length of the cells the box touches (and at
-    least 4 per side). The midpoint rule integrates each φ_j exactly where φ_j is linear
-    over a sample's volume, so the weights sum to 1 and their first moment is the box's
-    centroid (P1 reproduces x, y, z) to round-off; the parts of the box outside the model
-    (above the ground, beyond the site) carry no load. The weights vary smoothly with the
-    mesh, unlike a share of the nodes that happen to lie inside the box."""
+    """Nodal weights (summing to 1) of a mass rate spread evenly over a box (theory.md T3,
+    ``mass_loading``): the Galerkin load ∫_box φ_j dV / V, by the midpoint rule on a regular
+    grid of the box, at :data:`BOX_SAMPLES_PER_CELL` points per length of the cells the box
+    touches (and at least 4 per side). The midpoint rule integrates each φ_j exactly where φ_j
+    is linear over a sample's volume, so the weights sum to 1 and their first moment is the
+    box's centroid (P1 reproduces x, y, z) to round-off; the parts of the box outside the model
+    (above the ground, beyond the site) carry no load. The weights vary smoothly with the mesh,
+    unlike a share of the nodes that happen to lie inside the box."""
     lo, hi = _ranges(src)
     lo = np.maximum(lo, site.points.min(axis=1))
     hi = np.minimum(hi, site.points.max(axis=1))

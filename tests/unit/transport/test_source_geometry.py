@@ -204,10 +204,11 @@ def _loaded_box_site(box_x: tuple[float, float]) -> tuple[object, Case]:
 
 
 def test_a_box_load_sums_to_one_and_is_centred_on_the_box() -> None:
-    """The Galerkin load of a uniform box source (T3d): Σ_j w_j = 1 (partition of unity)
-    and Σ_j w_j x_j = the box's centroid, because P1 reproduces linear functions and the
-    midpoint rule integrates them exactly over the box; both to round-off (1e-12 relative,
-    1e-9 m). The nodes that hold load reach beyond the box by at most one cell."""
+    """The Galerkin load of a uniform box source (theory.md T3, mass_loading): Σ_j w_j = 1
+    (partition of unity) and Σ_j w_j x_j = the box's centroid, because P1 reproduces linear
+    functions and the midpoint rule integrates them exactly over the box; both to round-off
+    (1e-12 relative, 1e-9 m). The nodes that hold load reach beyond the box by at most one
+    cell."""
     site, case = _loaded_box_site((7.1, 11.9))
     w = box_load_weights(site, case.sources[0])
     assert np.all(w >= 0.0)
