@@ -23,7 +23,7 @@ from fe3d._typing import FloatArray, IndexArray
 from fe3d.sgs import split_csr
 
 __all__ = ["MASS_FRACTION", "BoundaryFacets", "CsrPattern", "gradients", "length_along",
-           "node_graph", "split_rows", "volumes"]
+           "node_graph", "split_rows", "tensor_gradient", "volumes"]
 
 MASS_FRACTION = (np.ones((4, 4)) + np.eye(4)) / 20.0
 """∫φ_iφ_j dV / V on a tetrahedron (exact for P1)."""
@@ -85,6 +85,25 @@ def _length_kernel(points: FloatArray, cells: IndexArray, a: FloatArray,
             out[e] = 2.0 / gmax
 
 
+@_jit
+def _tensor_gradient_kernel(points: FloatArray, cells: IndexArray, field: FloatArray,
+                            tensors: FloatArray, tensor_of: IndexArray, scale: FloatArray,
+                            out: FloatArray) -> None:
+    g = np.empty((4, 3))
+    for e in range(cells.shape[1]):
+        _cell_gradients(points, cells, e, g)
+        gx = gy = gz = 0.0
+        for i in range(4):
+            u = field[cells[i, e]]
+            gx += g[i, 0] * u
+            gy += g[i, 1] * u
+            gz += g[i, 2] * u
+        t = tensor_of[e]
+        for a in range(3):
+            out[a, e] = scale[e] * (tensors[a, 0, t] * gx + tensors[a, 1, t] * gy
+                                    + tensors[a, 2, t] * gz)
+
+
 def _pc(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, IndexArray]:
     return (np.ascontiguousarray(points, dtype=float),
             np.ascontiguousarray(cells, dtype=np.int64))
@@ -96,6 +115,20 @@ def gradients(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, FloatA
     vol = np.empty(cells.shape[1])
     _gradients_kernel(*_pc(points, cells), grads, vol)
     return grads, vol
+
+
+def tensor_gradient(points: FloatArray, cells: IndexArray, field: FloatArray,
+                    tensors: FloatArray, tensor_of: IndexArray, scale: FloatArray) -> FloatArray:
+    """``scale[e] * tensors[:, :, tensor_of[e]] @ ∇u`` on every cell e, shape ``(3, n_cells)``,
+    for the P1 nodal field u = ``field`` ``(n,)`` (constant on each cell); ``tensors``
+    ``(3, 3, k)``, ``tensor_of`` and ``scale`` ``(n_cells,)``. Gradients are formed cell by
+    cell, never stored."""
+    out = np.empty((3, cells.shape[1]))
+    _tensor_gradient_kernel(*_pc(points, cells), np.ascontiguousarray(field, dtype=float),
+                            np.asarray(tensors, dtype=float),
+                            np.ascontiguousarray(tensor_of, dtype=np.int64),
+                            np.ascontiguousarray(scale, dtype=float), out)
+    return out
 
 
 def volumes(points: FloatArray, cells: IndexArray) -> FloatArray:
@@ -155,30 +188,63 @@ def _neighbours(r: int, start: IndexArray, incident: IndexArray, cells: IndexArr
     return count
 
 
+@numba.njit(inline="always")
+def _insertion_sort(row: IndexArray, count: int) -> None:
+    """Sort ``row[:count]`` in place (rows of a tetrahedral mesh hold about 15 entries)."""
+    for k in range(1, count):
+        v = row[k]
+        i = k - 1
+        while i >= 0 and row[i] > v:
+            row[i + 1] = row[i]
+            i -= 1
+        row[i + 1] = v
+
+
 @_jit
-def _pattern_kernel(cells: IndexArray, n: int) -> tuple[IndexArray, IndexArray]:
+def _pattern_kernel(cells: IndexArray, n: int,
+                    slots: IndexArray) -> tuple[IndexArray, IndexArray]:
+    """Row pointers and sorted columns of the node pairs sharing a cell, in one pass over
+    the rows (the column array grows by doubling); when ``slots`` has a row per cell, each
+    cell's 16 entry positions are written in the same pass, read from the row's column →
+    position map instead of searched for."""
     start, incident = _incident_cells(cells, n, np.ones(n, np.bool_))
     widest = 0
     for r in range(n):
         widest = max(widest, start[r + 1] - start[r])
     row = np.empty(4 * widest, np.int64)
     mark = np.full(n, -1, np.int64)
+    where = np.empty(n, np.int64)  # column → position, valid for the current row's columns
+    with_slots = slots.shape[0] == cells.shape[1]
     indptr = np.zeros(n + 1, np.int64)
-    for r in range(n):  # first pass: row lengths
-        indptr[r + 1] = indptr[r] + _neighbours(r, start, incident, cells, mark, row)
-    indices = np.empty(indptr[n], np.int32)
-    mark[:] = -1
-    for r in range(n):  # second pass: each row's columns, sorted
+    indices = np.empty(max(16 * n, 16), np.int32)
+    for r in range(n):
         count = _neighbours(r, start, incident, cells, mark, row)
-        indices[indptr[r]:indptr[r + 1]] = np.sort(row[:count])
-    return indptr, indices
+        _insertion_sort(row, count)
+        first = indptr[r]
+        if first + count > indices.size:
+            grown = np.empty(2 * indices.size + count, np.int32)
+            grown[:first] = indices[:first]
+            indices = grown
+        for k in range(count):
+            indices[first + k] = row[k]
+            where[row[k]] = first + k
+        indptr[r + 1] = first + count
+        if with_slots:
+            for p in range(start[r], start[r + 1]):
+                e = incident[p]
+                for a in range(4):
+                    if cells[a, e] == r:
+                        for j in range(4):
+                            slots[e, 4 * a + j] = where[cells[j, e]]
+    return indptr, indices[:indptr[n]].copy()
 
 
 def node_graph(cells: IndexArray, n: int) -> sp.csr_matrix:
     """The node adjacency of tetrahedra ``cells`` ``(4, m)`` as an ``(n, n)`` CSR matrix of
     ones (node pairs sharing a cell, the diagonal included), without the (16 m)-entry COO
     temporaries."""
-    indptr, indices = _pattern_kernel(np.ascontiguousarray(cells, dtype=np.int64), n)
+    indptr, indices = _pattern_kernel(np.ascontiguousarray(cells, dtype=np.int64), n,
+                                      np.empty((0, 16), np.int32))
     return sp.csr_matrix((np.ones(indices.size, dtype=np.int8), indices, indptr),
                          shape=(n, n))
 
@@ -288,16 +354,6 @@ def _slot(indptr: IndexArray, indices: IndexArray, row: int, col: int) -> int:
 
 
 @_jit
-def _slots_kernel(indptr: IndexArray, indices: IndexArray, cells: IndexArray,
-                  slots: IndexArray) -> None:
-    for e in range(cells.shape[1]):
-        for i in range(4):
-            r = cells[i, e]
-            for j in range(4):
-                slots[e, 4 * i + j] = _slot(indptr, indices, r, cells[j, e])
-
-
-@_jit
 def _absorb_kernel(indptr: IndexArray, indices: IndexArray, a_indptr: IndexArray,
                    a_indices: IndexArray, a_data: FloatArray, data: FloatArray) -> int:
     for r in range(a_indptr.size - 1):
@@ -322,16 +378,19 @@ def _local_kernel(slots: IndexArray, cell_ids: IndexArray, local: FloatArray,
 
 @_jit
 def _stiffness_kernel(slots: IndexArray, cell_ids: IndexArray, points: FloatArray,
-                      cells: IndexArray, tensors: FloatArray, data: FloatArray) -> None:
+                      cells: IndexArray, tensors: FloatArray, tensor_of: IndexArray,
+                      scale: FloatArray, data: FloatArray) -> None:
+    """Σ over cells ``cell_ids[p]`` of scale[p] · T[tensor_of[p]] stiffness entries."""
     g = np.empty((4, 3))
     tg = np.empty((4, 3))
     for p in range(cell_ids.size):
         e = cell_ids[p]
-        v = abs(_cell_gradients(points, cells, e, g))
+        t = tensor_of[p]
+        v = abs(_cell_gradients(points, cells, e, g)) * scale[p]
         for j in range(4):
             for a in range(3):
-                tg[j, a] = (tensors[a, 0, p] * g[j, 0] + tensors[a, 1, p] * g[j, 1]
-                            + tensors[a, 2, p] * g[j, 2])
+                tg[j, a] = (tensors[a, 0, t] * g[j, 0] + tensors[a, 1, t] * g[j, 1]
+                            + tensors[a, 2, t] * g[j, 2])
         for i in range(4):
             for j in range(4):
                 data[slots[e, 4 * i + j]] += v * (g[i, 0] * tg[j, 0] + g[i, 1] * tg[j, 1]
@@ -390,13 +449,12 @@ class CsrPattern:
     def of_cells(cls, cells: IndexArray, n: int) -> CsrPattern:
         """The pattern of tetrahedra ``cells`` ``(4, m)`` on ``n`` nodes."""
         c = np.ascontiguousarray(cells, dtype=np.int64)
-        indptr, indices = _pattern_kernel(c, n)
+        slots = np.empty((c.shape[1], 16), np.int32)  # positions < 2**31, checked below
+        indptr, indices = _pattern_kernel(c, n, slots)
         if indptr[-1] >= 2**31:
             msg = f"{int(indptr[-1])} matrix entries: more than 32-bit indices can hold"
             raise ValueError(msg)
         indptr = indptr.astype(np.int32)
-        slots = np.empty((c.shape[1], 16), np.int32)
-        _slots_kernel(indptr, indices, c, slots)
         return cls(indptr=indptr, indices=indices, slots=slots, n=n)
 
     @property
@@ -439,13 +497,25 @@ class CsrPattern:
         return self.matrix(data)
 
     def stiffness(self, points: FloatArray, cells: IndexArray, tensors: FloatArray,
-                  cell_ids: IndexArray | None = None) -> sp.csr_matrix:
+                  cell_ids: IndexArray | None = None, *, tensor_of: IndexArray | None = None,
+                  scale: FloatArray | None = None) -> sp.csr_matrix:
         """∫ ∇φ_i · T ∇φ_j dV = |V| ∇φ_i·T∇φ_j summed over the cells ``cell_ids`` (all when
-        None) of the mesh ``points``, ``cells``; ``tensors`` ``(3, 3, len(cell_ids))``.
-        Gradients are formed cell by cell, never stored."""
+        None) of the mesh ``points``, ``cells``. Gradients are formed cell by cell, never
+        stored.
+
+        Without ``tensor_of``, ``tensors`` ``(3, 3, len(cell_ids))`` holds each cell's T.
+        With it, the p-th cell's T is ``scale[p] * tensors[:, :, tensor_of[p]]`` (a few
+        shared tensors, e.g. one per material, times a value per cell; ``scale`` 1 when
+        None), so that no (3, 3, n_cells) array is formed.
+        """
+        ids = self._ids(cell_ids)
+        if tensor_of is None:
+            tensor_of = np.arange(ids.size)
         data = np.zeros(self.nnz)
-        _stiffness_kernel(self.slots, self._ids(cell_ids), *_pc(points, cells),
-                          np.asarray(tensors, dtype=float), data)
+        _stiffness_kernel(self.slots, ids, *_pc(points, cells), np.asarray(tensors, dtype=float),
+                          np.ascontiguousarray(tensor_of, dtype=np.int64),
+                          np.ones(ids.size) if scale is None else np.asarray(scale, dtype=float),
+                          data)
         return self.matrix(data)
 
     def transport(self, points: FloatArray, cells: IndexArray, *, m: FloatArray,

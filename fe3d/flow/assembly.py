@@ -12,12 +12,14 @@ from __future__ import annotations
 import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.flow.conductivity import CellConductivity
 from fe3d.p1 import CsrPattern
 
 __all__ = ["conductance_matrix"]
 
 
-def conductance_matrix(points: FloatArray, cells: IndexArray, tensors: FloatArray, *,
+def conductance_matrix(points: FloatArray, cells: IndexArray,
+                       conductivity: FloatArray | CellConductivity, *,
                        pattern: CsrPattern | None = None) -> sp.csr_matrix:
     """Assemble ∫ K∇u·∇v over P1 tetrahedra.
 
@@ -27,8 +29,10 @@ def conductance_matrix(points: FloatArray, cells: IndexArray, tensors: FloatArra
         Nodes [m], shape ``(3, n)``.
     cells
         Tetrahedra, shape ``(4, m)``.
-    tensors
-        Conductivity per cell [m/s], shape ``(3, 3, m)``.
+    conductivity
+        Conductivity per cell [m/s]: full tensors, shape ``(3, 3, m)``, or a
+        :class:`~fe3d.flow.conductivity.CellConductivity` (K_h per cell times a shape tensor
+        per unit, passed to the kernel as they are: no (3, 3, m) array is formed).
     pattern
         The mesh's :class:`fe3d.p1.CsrPattern` (built here when not given).
 
@@ -39,4 +43,8 @@ def conductance_matrix(points: FloatArray, cells: IndexArray, tensors: FloatArra
     """
     if pattern is None:
         pattern = CsrPattern.of_cells(cells, points.shape[1])
-    return pattern.stiffness(points, cells, tensors)
+    if isinstance(conductivity, CellConductivity):
+        return pattern.stiffness(points, cells, conductivity.unit_shape,
+                                 tensor_of=conductivity.cell_unit,
+                                 scale=conductivity.horizontal)
+    return pattern.stiffness(points, cells, conductivity)

@@ -1,10 +1,11 @@
-"""Hydraulic conductivity tensor per cell: anisotropic units, dipping bedding, file fields."""
+"""Hydraulic conductivity per cell: anisotropic units, dipping bedding, file fields."""
 
 from __future__ import annotations
 
 import csv
 import math
 import re
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -15,8 +16,8 @@ from fe3d.errors import CaseError
 from fe3d.mesh.fields import read_vtk_cell_field
 from fe3d.units import to_si
 
-__all__ = ["bedding_normal", "conductivity_tensors", "read_point_field", "tensor_entries",
-           "unit_normals"]
+__all__ = ["CellConductivity", "bedding_normal", "cell_conductivity", "conductivity_tensors",
+           "read_point_field", "tensor_entries", "unit_normals"]
 
 
 def bedding_normal(strike: float, dip: float) -> FloatArray:
@@ -102,22 +103,59 @@ def tensor_entries(kh: FloatArray, kv: FloatArray, normals: FloatArray) -> Float
     return tensors
 
 
-def conductivity_tensors(
+@dataclass(frozen=True)
+class CellConductivity:
+    """Hydraulic conductivity of every cell, K_e = K_h,e S_u(e) (theory.md F1), held as a
+    value per cell and a shape tensor per unit instead of a (3, 3, n_cells) array.
+
+    With r_u = K_v/K_h of unit u and n_u its bedding normal, S_u = I + (r_u − 1) n_u n_uᵀ,
+    so that K_h S_u = K_h I + (K_v − K_h) n nᵀ, the tensor of F1 (a conductivity file
+    changes K_h per cell and keeps the unit's ratio).
+
+    Attributes
+    ----------
+    horizontal
+        K_h of each cell [m/s], shape ``(n_cells,)``.
+    cell_unit
+        Unit index of each cell, shape ``(n_cells,)``.
+    ratio
+        K_v/K_h of each unit [-], shape ``(n_units,)``.
+    normals
+        Bedding normal of each unit, shape ``(3, n_units)``.
+    """
+
+    horizontal: FloatArray
+    cell_unit: IndexArray
+    ratio: FloatArray
+    normals: FloatArray
+
+    @property
+    def vertical(self) -> FloatArray:
+        """K_v of each cell [m/s], shape ``(n_cells,)``."""
+        return self.ratio[self.cell_unit] * self.horizontal
+
+    @property
+    def principal(self) -> FloatArray:
+        """(K_h, K_h, K_v) of each cell [m/s], shape ``(3, n_cells)``."""
+        return np.vstack([self.horizontal, self.horizontal, self.vertical])
+
+    @property
+    def unit_shape(self) -> FloatArray:
+        """S_u of each unit [-], shape ``(3, 3, n_units)``."""
+        return tensor_entries(np.ones(self.ratio.size), self.ratio, self.normals)
+
+
+def cell_conductivity(
     points: FloatArray, cells: IndexArray, cell_unit: IndexArray, unit_materials: list[Material],
     *, unit_keys: list[str], base_dir: Path | None = None,
-) -> tuple[FloatArray, FloatArray]:
-    """Full conductivity tensor of every cell [m/s], shape ``(3, 3, n_cells)``.
+) -> CellConductivity:
+    """Conductivity of every cell from the units' materials (theory.md F1).
 
-    K = K_h I + (K_v − K_h) n nᵀ with n the bedding normal (theory.md F1). Where a unit's
-    material names a ``conductivity_file``, K_h of each cell comes from it and K_v keeps the
-    material's K_v/K_h ratio: a CSV of points is interpolated in log K at the cell centre; a
-    .vtu/.vtk file gives a cell array ``conductivity [unit]`` whose nearest cell centre is
-    taken (exact when the file holds this mesh, e.g. a field written on ``mesh.vtu``).
-
-    Returns
-    -------
-    tensors, principal
-        The tensors and (K_h, K_h, K_v) per cell, shape ``(3, n_cells)``.
+    Where a unit's material names a ``conductivity_file``, K_h of each cell comes from it
+    and K_v keeps the material's K_v/K_h ratio: a CSV of points is interpolated in log K at
+    the cell centre; a .vtu/.vtk file gives a cell array ``conductivity [unit]`` whose
+    nearest cell centre is taken (exact when the file holds this mesh, e.g. a field written
+    on ``mesh.vtu``).
     """
     # per-unit values gathered by the cells' unit index (no mask per unit over every cell)
     kh = np.array([m.horizontal_conductivity for m in unit_materials])[cell_unit]
@@ -151,6 +189,23 @@ def conductivity_tensors(
         else:
             pts, vals = read_point_field(path, key)
             kh[sel] = _interpolate_log(pts, vals, centres[sel])
-    kv = ratio[cell_unit] * kh
-    tensors = tensor_entries(kh, kv, unit_normals(unit_materials)[:, cell_unit])
-    return tensors, np.vstack([kh, kh, kv])
+    return CellConductivity(horizontal=kh, cell_unit=np.asarray(cell_unit), ratio=ratio,
+                            normals=unit_normals(unit_materials))
+
+
+def conductivity_tensors(
+    points: FloatArray, cells: IndexArray, cell_unit: IndexArray, unit_materials: list[Material],
+    *, unit_keys: list[str], base_dir: Path | None = None,
+) -> tuple[FloatArray, FloatArray]:
+    """Full conductivity tensor of every cell [m/s], shape ``(3, 3, n_cells)``, formed whole
+    from :func:`cell_conductivity` (for scripts and tests; the flow stage never forms it).
+
+    Returns
+    -------
+    tensors, principal
+        The tensors and (K_h, K_h, K_v) per cell, shape ``(3, n_cells)``.
+    """
+    k = cell_conductivity(points, cells, cell_unit, unit_materials, unit_keys=unit_keys,
+                          base_dir=base_dir)
+    tensors = tensor_entries(k.horizontal, k.vertical, k.normals[:, k.cell_unit])
+    return tensors, k.principal

@@ -17,6 +17,7 @@ import numpy as np
 from fe3d._typing import FloatArray
 from fe3d.case.parts import FlowInputs
 from fe3d.flow.solve import FlowField, solve_flow
+from fe3d.linalg import SpdPreconditioner
 from fe3d.mesh.site_mesh import SiteMesh
 
 __all__ = ["moves_water", "well_drawdown", "without_pumping"]
@@ -36,7 +37,8 @@ def without_pumping(inputs: FlowInputs) -> FlowInputs:
 
 
 def well_drawdown(site: SiteMesh, inputs: FlowInputs, pumped: FlowField, *,
-                  base_dir: Path | None = None) -> FloatArray:
+                  base_dir: Path | None = None,
+                  preconditioner: SpdPreconditioner | None = None) -> FloatArray:
     r"""Drawdown :math:`s = h_0 - h` [m] at the nodes, shape ``(n_nodes,)``.
 
     Parameters
@@ -50,6 +52,11 @@ def well_drawdown(site: SiteMesh, inputs: FlowInputs, pumped: FlowField, *,
     base_dir
         Folder against which relative file names in the case resolve (as for
         :func:`~fe3d.flow.solve.solve_flow`).
+    preconditioner
+        The AMG hierarchy ``pumped`` was solved with (the object passed to its
+        :func:`~fe3d.flow.solve.solve_flow` call): the wells change only the right-hand
+        side, not the matrix, so the second solve reuses it and costs CG iterations only.
+        Without it the second solve builds its own.
 
     Returns
     -------
@@ -64,7 +71,8 @@ def well_drawdown(site: SiteMesh, inputs: FlowInputs, pumped: FlowField, *,
     """
     if not moves_water(inputs):
         return np.zeros(site.n_nodes)
-    natural = solve_flow(site, without_pumping(inputs), base_dir=base_dir)
+    natural = solve_flow(site, without_pumping(inputs), base_dir=base_dir,
+                         preconditioner=preconditioner)
     drawdown = natural.head - pumped.head
     logger.info("drawdown: largest %.4g m, smallest %.4g m (%d CG iterations)",
                 float(drawdown.max()), float(drawdown.min()), natural.solver_iterations)

@@ -16,7 +16,7 @@ from fe3d.case.parts import FlowInputs
 from fe3d.errors import CaseError, SolverError
 from fe3d.flow.assembly import conductance_matrix
 from fe3d.flow.boundaries import lumped_face_weights
-from fe3d.flow.conductivity import conductivity_tensors, tensor_entries, unit_normals
+from fe3d.flow.conductivity import cell_conductivity
 from fe3d.flow.site_rules import (
     head_dependent_problems,
     recharge_mask,
@@ -28,7 +28,7 @@ from fe3d.linalg import FLOW_TOLERANCE, SpdPreconditioner, solve_spd
 from fe3d.mesh.locate import sample_operator, screen_points
 from fe3d.mesh.materials import cell_values, unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
-from fe3d.p1 import gradients, split_rows
+from fe3d.p1 import split_rows, tensor_gradient
 from fe3d.sgs import plus_diagonal
 
 __all__ = ["BoundaryFlow", "FlowField", "solve_flow"]
@@ -159,11 +159,10 @@ def solve_flow(
     n = site.n_nodes
     p = site.points
     mats, mat_names = unit_materials(inputs.ground, site)
-    tensors, principal = conductivity_tensors(p, site.cells, site.cell_layer, mats,
-                                              unit_keys=[f"materials.{m}" for m in mat_names],
-                                              base_dir=base_dir)
-    A = conductance_matrix(p, site.cells, tensors, pattern=site.pattern)
-    del tensors  # 72 bytes per cell, not held through the solve: rebuilt by chunks for q
+    conductivity = cell_conductivity(p, site.cells, site.cell_layer, mats,
+                                     unit_keys=[f"materials.{m}" for m in mat_names],
+                                     base_dir=base_dir)
+    A = conductance_matrix(p, site.cells, conductivity, pattern=site.pattern)
 
     # Dirichlet: fixed heads; a node on two fixed-head faces takes the first listed
     head = np.zeros(n)
@@ -194,7 +193,8 @@ def solve_flow(
     for well in inputs.wells:
         pts = np.hstack([screen_points(well.x, well.y, t, b, spacing=inputs.sample_spacing)
                          for t, b in well.screens])
-        op, in_cells = sample_operator(p, site.cells, pts, weights_per_cell=principal[0])
+        op, in_cells = sample_operator(p, site.cells, pts,
+                                       weights_per_cell=conductivity.horizontal)
         _raise_first(screened_unit_problems(site, well, in_cells))
         well_ops[well.name] = op
         sign = {"extraction": -1.0, "injection": 1.0, "observation": 0.0}[well.kind]
@@ -234,7 +234,9 @@ def solve_flow(
 
     for (hd, la), act in zip(robin, active, strict=True):
         items.append((hd.name, hd.kind, la * act * (hd.stage - head)))
-    q = _darcy_flux(p, site.cells, head, principal, unit_normals(mats), site.cell_layer)
+    # q = −K∇h per cell (F8): K_h per cell times the unit's shape tensor, as assembled
+    q = -tensor_gradient(p, site.cells, head, conductivity.unit_shape, conductivity.cell_unit,
+                         conductivity.horizontal)
     # consistent fixed-head flux: what the fixed rows need beyond every other term (F4)
     other = sum((f for _, _, f in items), np.zeros(n))
     reaction = A @ head - other
@@ -242,7 +244,7 @@ def solve_flow(
               for name, nodes in owner.items()]
     budget += [BoundaryFlow(name, kind, *_split(f)) for name, kind, f in items]
     well_heads = {name: float((op @ head)[0]) for name, op in well_ops.items()}
-    result = FlowField(head=head, darcy_flux=q, conductivity=principal,
+    result = FlowField(head=head, darcy_flux=q, conductivity=conductivity.principal,
                        porosity=cell_values(mats, site, "porosity"), budget=tuple(budget),
                        fixed_head_nodes=owner, well_heads=well_heads,
                        exchange={name: f for name, _, f in items},
@@ -264,25 +266,6 @@ def _solve_heads(M: sp.csr_matrix, rhs: FloatArray, head: FloatArray, free: Inde
     out[free] = solve_spd(M_ff, rhs[free] - M_fD @ head[fixed], tol=FLOW_TOLERANCE, stats=stats,
                           preconditioner=preconditioner)
     return out
-
-
-def _darcy_flux(points: FloatArray, cells: IndexArray, head: FloatArray,
-                principal: FloatArray, normals: FloatArray, cell_unit: IndexArray, *,
-                chunk: int = 500_000) -> FloatArray:
-    """q = −K∇h per cell [m/s], shape ``(3, n_cells)`` (theory.md F8), a chunk of cells at a
-    time: K from (K_h, K_h, K_v) per cell ``principal`` and the units' bedding ``normals``
-    ``(3, n_units)`` (:func:`~fe3d.flow.conductivity.tensor_entries`, the tensors of the
-    assembly entry for entry), and the basis gradients of the chunk only (all at once they
-    would be 96 bytes per cell, 0.5 GB at 5.3 M cells)."""
-    q = np.empty((3, cells.shape[1]))
-    for s in range(0, cells.shape[1], chunk):
-        part = slice(s, s + chunk)
-        c = cells[:, part]
-        grads, _ = gradients(points, c)
-        grad_h = np.einsum("eik,ie->ke", grads, head[c])
-        K = tensor_entries(principal[0, part], principal[2, part], normals[:, cell_unit[part]])
-        q[:, part] = -np.einsum("ije,je->ie", K, grad_h)
-    return q
 
 
 def _raise_first(problems: list[CaseError]) -> None:
