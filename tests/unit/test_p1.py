@@ -10,7 +10,15 @@ import pytest
 import scipy.sparse as sp
 from skfem import MeshTet
 
-from fe3d.p1 import CsrPattern, gradients, length_along, split_rows, volumes
+from fe3d.p1 import (
+    CsrPattern,
+    gradients,
+    length_along,
+    node_graph,
+    split_rows,
+    tensor_gradient,
+    volumes,
+)
 
 
 def _scipy_sum(cells: np.ndarray, local: np.ndarray, n: int) -> sp.csr_matrix:
@@ -112,3 +120,56 @@ def test_length_along_and_volumes_match_the_numpy_reference(mesh: MeshTet) -> No
     one = np.array([[0], [1], [2], [3]])
     assert np.isclose(length_along(corner, one, np.array([[1.0], [0.0], [0.0]]))[0], 1.0,
                       rtol=1e-14)
+
+
+def test_shared_tensors_times_a_value_per_cell_equal_the_full_tensors(mesh: MeshTet) -> None:
+    """Stiffness and tensor gradient with one tensor per group of cells times a value per
+    cell against the same tensors formed whole per cell (stiffness: the scipy reference of
+    the test above; gradient: numpy einsum of the basis gradients). The exact gradient of a
+    linear field u = 2x − y + 3z is (2, −1, 3) on every cell (P1 reproduces linear fields).
+    Tolerance: round-off of a different summation order (1e-13 relative)."""
+    n, e = mesh.p.shape[1], mesh.t.shape[1]
+    rng = np.random.default_rng(11)
+    shared = rng.standard_normal((3, 3, 3))
+    shared = shared + shared.transpose(1, 0, 2)
+    group = rng.integers(0, 3, e)
+    scale = rng.uniform(0.5, 2.0, e)
+    whole = shared[:, :, group] * scale
+    pat = CsrPattern.of_cells(mesh.t, n)
+    ref = pat.stiffness(mesh.p, mesh.t, whole)
+    got = pat.stiffness(mesh.p, mesh.t, shared, tensor_of=group, scale=scale)
+    assert abs(got - ref).max() <= 1e-13 * abs(ref).max()
+    u = 2 * mesh.p[0] - mesh.p[1] + 3 * mesh.p[2]
+    grad_u = np.array([2.0, -1.0, 3.0])
+    ref_g = np.einsum("ije,j->ie", whole, grad_u)
+    got_g = tensor_gradient(mesh.p, mesh.t, u, shared, group, scale)
+    assert np.allclose(got_g, ref_g, rtol=1e-13, atol=1e-13 * abs(ref_g).max())
+    field = rng.standard_normal(n)
+    grads, _ = gradients(mesh.p, mesh.t)
+    ref_f = np.einsum("ije,ej->ie", whole, np.einsum("eik,ie->ek", grads, field[mesh.t]))
+    got_f = tensor_gradient(mesh.p, mesh.t, field, shared, group, scale)
+    assert np.allclose(got_f, ref_f, rtol=1e-13, atol=1e-13 * abs(ref_f).max())
+
+
+def test_node_graph_is_the_pattern_without_entry_positions(mesh: MeshTet) -> None:
+    """node_graph and CsrPattern share one kernel; cells joining every pair of 20 nodes
+    (400 entries, more than the first guess of 16 columns per node) make the column array
+    grow and still come out whole. Reference: scipy's COO → CSR of the element blocks."""
+    from itertools import combinations
+
+    n = mesh.p.shape[1]
+    g = node_graph(mesh.t, n)
+    pat = CsrPattern.of_cells(mesh.t, n)
+    assert np.array_equal(g.indptr, pat.indptr) and np.array_equal(g.indices, pat.indices)
+    dense = np.array(list(combinations(range(20), 4))).T
+    dense_pat = CsrPattern.of_cells(dense, 20)
+    ref = _scipy_sum(dense, np.ones((dense.shape[1], 4, 4)), 20)
+    assert dense_pat.nnz == 400 > 16 * 20
+    assert np.array_equal(dense_pat.indptr, ref.indptr)
+    assert np.array_equal(dense_pat.indices, ref.indices)
+    rows = np.repeat(np.arange(20), 20)
+    for i in range(4):
+        for j in range(4):
+            s = dense_pat.slots[:, 4 * i + j]
+            assert np.array_equal(rows[s], dense[i])
+            assert np.array_equal(dense_pat.indices[s], dense[j])
