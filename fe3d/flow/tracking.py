@@ -24,7 +24,7 @@ import numba
 import numpy as np
 
 from fe3d._typing import BoolArray, FloatArray, IndexArray
-from fe3d.mesh.geometry import p1_gradients
+from fe3d.p1 import _cell_gradients
 
 __all__ = ["Pathline", "Tracker", "cell_neighbours", "thin_pathline"]
 
@@ -55,57 +55,63 @@ class Pathline:
 # ----------------------------------------------------------------------------- adjacency
 
 
+@numba.njit(inline="always")
+def _face_of(cells: IndexArray, k: int, e: int) -> tuple[int, int, int]:
+    """Smallest, middle and largest node of the face of cell e opposite its vertex k."""
+    lo, hi, total = np.int64(2**62), np.int64(-1), np.int64(0)
+    for j in range(4):
+        if j != k:
+            node = np.int64(cells[j, e])
+            lo = min(lo, node)
+            hi = max(hi, node)
+            total += node
+    return lo, total - lo - hi, hi
+
+
 @_jit
-def _face_buckets(cells: IndexArray, n_nodes: int) -> tuple[IndexArray, IndexArray,
-                                                              IndexArray]:
-    """Every face (flat id k·m + e, opposite local vertex k of cell e) in buckets by its
-    smallest node, with the key b·n + c of its two other nodes (b < c)."""
+def _face_buckets(cells: IndexArray, n_nodes: int, face: IndexArray) -> IndexArray:
+    """Every face (flat id k·m + e, opposite local vertex k of cell e) into ``face``, in
+    buckets by its smallest node; returns where each bucket starts ``(n_nodes + 1,)``."""
     m = cells.shape[1]
     start = np.zeros(n_nodes + 1, dtype=np.int64)
     for e in range(m):
         for k in range(4):
-            a = n_nodes
-            for j in range(4):
-                if j != k:
-                    a = min(a, cells[j, e])
-            start[a + 1] += 1
+            start[_face_of(cells, k, e)[0] + 1] += 1
     for v in range(n_nodes):
         start[v + 1] += start[v]
     fill = start[:-1].copy()
-    face = np.empty(4 * m, dtype=np.int64)
-    key = np.empty(4 * m, dtype=np.int64)
     for e in range(m):
         for k in range(4):
-            lo, hi, total = n_nodes, -1, 0
-            for j in range(4):
-                if j != k:
-                    lo = min(lo, cells[j, e])
-                    hi = max(hi, cells[j, e])
-                    total += cells[j, e]
-            i = fill[lo]
+            lo = _face_of(cells, k, e)[0]
+            face[fill[lo]] = k * m + e
             fill[lo] += 1
-            face[i] = k * m + e
-            key[i] = (total - lo - hi) * n_nodes + hi
-    return start, face, key
+    return start
 
 
 @_jit
-def _pair_faces(start: IndexArray, face: IndexArray, key: IndexArray,
-                m: int) -> IndexArray:
-    """Match the faces with equal keys inside each bucket; unmatched faces keep −1."""
-    nb = np.full(face.size, -1, dtype=np.int64)
-    paired = np.zeros(face.size, dtype=np.bool_)
+def _pair_faces(cells: IndexArray, start: IndexArray, face: IndexArray,
+                nb: IndexArray) -> None:
+    """Match the faces with equal middle and largest nodes inside each bucket: the cell
+    across each into ``nb`` (flat, by face id; unmatched faces keep −1)."""
+    m = cells.shape[1]
+    widest = 0
     for v in range(start.size - 1):
-        for i in range(start[v], start[v + 1]):
-            if paired[i]:
+        widest = max(widest, start[v + 1] - start[v])
+    mid = np.empty(widest, dtype=np.int64)  # the keys of one bucket
+    top = np.empty(widest, dtype=np.int64)
+    for v in range(start.size - 1):
+        a, b = start[v], start[v + 1]
+        for i in range(a, b):
+            f = face[i]
+            _, mid[i - a], top[i - a] = _face_of(cells, f // m, f % m)
+        for i in range(a, b):
+            if nb[face[i]] >= 0:
                 continue
-            for j in range(i + 1, start[v + 1]):
-                if not paired[j] and key[j] == key[i]:
-                    paired[i] = paired[j] = True
+            for j in range(i + 1, b):
+                if nb[face[j]] < 0 and mid[j - a] == mid[i - a] and top[j - a] == top[i - a]:
                     nb[face[i]] = face[j] % m
                     nb[face[j]] = face[i] % m
                     break
-    return nb
 
 
 def cell_neighbours(cells: IndexArray, n_nodes: int | None = None) -> IndexArray:
@@ -113,7 +119,9 @@ def cell_neighbours(cells: IndexArray, n_nodes: int | None = None) -> IndexArray
 
     Faces are put in buckets by their smallest node (a counting sort) and matched inside a
     bucket by their two other nodes: linear in the number of cells for a mesh of bounded
-    node degree, compiled, no sort of all faces.
+    node degree, compiled, no sort of all faces. Lean: besides the result it holds one face
+    id per face (int32) and one bucket start per node, and reads the face nodes from
+    ``cells`` (no copy of it in int32 or int64 alike).
 
     Parameters
     ----------
@@ -126,44 +134,58 @@ def cell_neighbours(cells: IndexArray, n_nodes: int | None = None) -> IndexArray
     -------
     IndexArray
         ``neighbour[k, e]``: the cell across the face of cell e opposite its local vertex k,
-        −1 on the boundary; shape ``(4, n_cells)``.
+        −1 on the boundary; shape ``(4, n_cells)``, int32 (int64 beyond 2³¹ faces).
     """
-    cells = np.ascontiguousarray(cells, dtype=np.int64)
+    cells = _index_array(cells)
     n = int(cells.max()) + 1 if n_nodes is None else int(n_nodes)
     m = cells.shape[1]
-    start, face, key = _face_buckets(cells, n)
-    return _pair_faces(start, face, key, m).reshape(4, m)
+    index = np.int32 if 4 * m < 2**31 else np.int64
+    face = np.empty(4 * m, dtype=index)
+    start = _face_buckets(cells, n, face)
+    nb = np.full(4 * m, -1, dtype=index)
+    _pair_faces(cells, start, face, nb)
+    return nb.reshape(4, m)
+
+
+def _index_array(cells: IndexArray) -> IndexArray:
+    """``cells`` as a C-contiguous int32 or int64 array: itself when it already is one."""
+    kind = cells.dtype if cells.dtype in (np.int32, np.int64) else np.int64
+    return np.ascontiguousarray(cells, dtype=kind)
 
 
 # ------------------------------------------------------------------ cell geometry, location
 
 
 @numba.njit(inline="always")
-def _barycentric(points: FloatArray, cells: IndexArray, grads: FloatArray, e: int,
-                 x: FloatArray, lam: FloatArray) -> float:
-    """Barycentric coordinates of x in cell e into ``lam`` ``(4,)``; returns their minimum."""
+def _barycentric(points: FloatArray, cells: IndexArray, e: int, x: FloatArray,
+                 lam: FloatArray, g: FloatArray) -> float:
+    """Barycentric coordinates of x in cell e into ``lam`` ``(4,)`` and the cell's basis
+    gradients into ``g`` ``(4, 3)`` (formed here, not stored per cell); returns the least
+    coordinate."""
+    _cell_gradients(points, cells, e, g)
     i0 = cells[0, e]
     dx, dy, dz = x[0] - points[0, i0], x[1] - points[1, i0], x[2] - points[2, i0]
     s = 0.0
     for i in range(1, 4):
-        lam[i] = grads[e, i, 0] * dx + grads[e, i, 1] * dy + grads[e, i, 2] * dz
+        lam[i] = g[i, 0] * dx + g[i, 1] * dy + g[i, 2] * dz
         s += lam[i]
     lam[0] = 1.0 - s
     return min(min(lam[0], lam[1]), min(lam[2], lam[3]))
 
 
 @_jit
-def _locate(points: FloatArray, cells: IndexArray, grads: FloatArray, nb: IndexArray,
-            x: FloatArray, start: int, scan: bool) -> int:
+def _locate(points: FloatArray, cells: IndexArray, nb: IndexArray, x: FloatArray,
+            start: int, scan: bool) -> int:
     """Cell containing x, or −1: a walk from ``start`` towards x across the face of the most
     negative barycentric coordinate; where the walk meets the boundary or runs long (a
     non-convex outline), a scan of every cell if ``scan`` (else −1: for the short steps of
     a particle, where meeting the boundary means leaving the mesh)."""
     lam = np.empty(4)
+    g = np.empty((4, 3))
     m = cells.shape[1]
     e = max(start, 0)
     for _ in range(16 * int(m ** (1.0 / 3.0)) + 64):
-        if _barycentric(points, cells, grads, e, x, lam) >= -_INSIDE:
+        if _barycentric(points, cells, e, x, lam, g) >= -_INSIDE:
             return e
         k = int(np.argmin(lam))
         if nb[k, e] < 0:
@@ -172,24 +194,35 @@ def _locate(points: FloatArray, cells: IndexArray, grads: FloatArray, nb: IndexA
     if not scan:
         return -1
     for e in range(m):
-        if _barycentric(points, cells, grads, e, x, lam) >= -_INSIDE:
+        if _barycentric(points, cells, e, x, lam, g) >= -_INSIDE:
             return e
     return -1
 
 
+@numba.njit(inline="always")
+def _cell_velocity(velocity: FloatArray, porosity: FloatArray, d: int, e: int) -> float:
+    """Component d of the seepage velocity of cell e [m/s]: ``velocity`` itself, or the
+    Darcy flux over the porosity where a porosity per cell is given."""
+    if porosity.size > 0:
+        return velocity[d, e] / porosity[e]
+    return velocity[d, e]
+
+
 @_jit
-def _nodal_velocity(cells: IndexArray, volumes: FloatArray, velocity: FloatArray,
-                    n_nodes: int) -> FloatArray:
+def _nodal_velocity(points: FloatArray, cells: IndexArray, velocity: FloatArray,
+                    porosity: FloatArray) -> FloatArray:
     """Volume-weighted mean of the cell velocities at each node [m/s], ``(3, n_nodes)``."""
+    n_nodes = points.shape[1]
     out = np.zeros((3, n_nodes))
     weight = np.zeros(n_nodes)
+    g = np.empty((4, 3))
     for e in range(cells.shape[1]):
-        w = abs(volumes[e])
+        w = abs(_cell_gradients(points, cells, e, g))
         for i in range(4):
             node = cells[i, e]
             weight[node] += w
             for d in range(3):
-                out[d, node] += w * velocity[d, e]
+                out[d, node] += w * _cell_velocity(velocity, porosity, d, e)
     for node in range(n_nodes):
         if weight[node] > 0.0:
             for d in range(3):
@@ -213,17 +246,17 @@ def _nodal_at(nodal: FloatArray, cells: IndexArray, e: int, lam: FloatArray, sig
 
 
 @numba.njit(inline="always")
-def _along(grads: FloatArray, e: int, v: FloatArray, speed: float) -> float:
-    """Length of cell e along v [m]: 2|v| / Σ|∇φ_i·v|."""
+def _along(g: FloatArray, v: FloatArray, speed: float) -> float:
+    """Length along v [m] of the cell of basis gradients ``g`` ``(4, 3)``: 2|v| / Σ|∇φ_i·v|."""
     s = 0.0
     for i in range(4):
-        s += abs(grads[e, i, 0] * v[0] + grads[e, i, 1] * v[1] + grads[e, i, 2] * v[2])
+        s += abs(g[i, 0] * v[0] + g[i, 1] * v[1] + g[i, 2] * v[2])
     return 2.0 * speed / s
 
 
 @_jit
-def _track(points: FloatArray, cells: IndexArray, grads: FloatArray, nb: IndexArray,
-           velocity: FloatArray, nodal: FloatArray, capture: BoolArray, x0: FloatArray,
+def _track(points: FloatArray, cells: IndexArray, nb: IndexArray, velocity: FloatArray,
+           porosity: FloatArray, nodal: FloatArray, capture: BoolArray, x0: FloatArray,
            e0: int, sign: float, max_time: float, step_fraction: float,
            out_x: FloatArray, out_t: FloatArray) -> tuple[int, int, int]:
     """Follow one particle from x0 in cell e0; positions and times go to ``out_x`` ``(3, s)``
@@ -239,6 +272,7 @@ def _track(points: FloatArray, cells: IndexArray, grads: FloatArray, nb: IndexAr
     came_from = -1
     idle = 0
     lam = np.empty(4)
+    g = np.empty((4, 3))  # basis gradients of the cell at hand
     v = np.empty(3)
     vm = np.empty(3)
     xs = np.empty(3)
@@ -248,22 +282,22 @@ def _track(points: FloatArray, cells: IndexArray, grads: FloatArray, nb: IndexAr
             return n, _CAPTURED, crossed
         speed = 0.0
         for d in range(3):
-            v[d] = sign * velocity[d, e]
+            v[d] = sign * _cell_velocity(velocity, porosity, d, e)
             speed += v[d] * v[d]
         speed = np.sqrt(speed)
         stalled = False
         if speed > 1e-30:
-            _barycentric(points, cells, grads, e, x, lam)
+            _barycentric(points, cells, e, x, lam, g)
             tau, k = np.inf, -1
             for i in range(4):
-                rate = grads[e, i, 0] * v[0] + grads[e, i, 1] * v[1] + grads[e, i, 2] * v[2]
+                rate = g[i, 0] * v[0] + g[i, 1] * v[1] + g[i, 2] * v[2]
                 if rate < 0.0:
                     ti = max(lam[i], 0.0) / -rate
                     if ti < tau:
                         tau, k = ti, i
             if k < 0:
                 return n, _STAGNANT, crossed
-            if tau * speed <= _NO_LENGTH * _along(grads, e, v, speed):
+            if tau * speed <= _NO_LENGTH * _along(g, v, speed):
                 f = nb[k, e]
                 if f >= 0 and f != came_from and idle < _IDLE_LIMIT:
                     came_from, e, idle = e, f, idle + 1  # round an edge or a vertex
@@ -289,23 +323,23 @@ def _track(points: FloatArray, cells: IndexArray, grads: FloatArray, nb: IndexAr
                 came_from, e, idle = e, f, 0
                 continue
         # no exact move possible: one midpoint step on the node-averaged velocity
-        _barycentric(points, cells, grads, e, x, lam)
+        _barycentric(points, cells, e, x, lam, g)
         s1 = _nodal_at(nodal, cells, e, lam, sign, v)
         if s1 <= 1e-30:
             return n, _STAGNANT, crossed
-        dt = step_fraction * _along(grads, e, v, s1) / s1
+        dt = step_fraction * _along(g, v, s1) / s1
         if t + dt > max_time:
             dt = max_time - t
         for d in range(3):
             xs[d] = x[d] + 0.5 * dt * v[d]
-        em = _locate(points, cells, grads, nb, xs, e, False)
+        em = _locate(points, cells, nb, xs, e, False)
         en = -1
         if em >= 0:
-            _barycentric(points, cells, grads, em, xs, lam)
+            _barycentric(points, cells, em, xs, lam, g)
             _nodal_at(nodal, cells, em, lam, sign, vm)
             for d in range(3):
                 xs[d] = x[d] + dt * vm[d]
-            en = _locate(points, cells, grads, nb, xs, em, False)
+            en = _locate(points, cells, nb, xs, em, False)
         if en < 0:
             # leaves the mesh: bisect an Euler step to end on the boundary
             lo, hi = 0.0, 1.0
@@ -313,7 +347,7 @@ def _track(points: FloatArray, cells: IndexArray, grads: FloatArray, nb: IndexAr
                 mid = 0.5 * (lo + hi)
                 for d in range(3):
                     xs[d] = x[d] + mid * dt * v[d]
-                if _locate(points, cells, grads, nb, xs, e, False) >= 0:
+                if _locate(points, cells, nb, xs, e, False) >= 0:
                     lo = mid
                 else:
                     hi = mid
@@ -339,28 +373,41 @@ def _track(points: FloatArray, cells: IndexArray, grads: FloatArray, nb: IndexAr
 class Tracker:
     """Track particles through a tetrahedral mesh with a velocity per cell.
 
+    Lean by design (issue 16): it keeps references to ``points``, ``cells`` and ``velocity``
+    (no copies when they are already C-contiguous float64 / int32 or int64), the cell
+    adjacency (int32, 16 bytes per cell) and the node-averaged velocity (24 bytes per node);
+    each cell's basis gradients are formed when a particle or a search visits it. Drop the
+    tracker when the pathlines are traced: nothing else it holds is needed afterwards.
+
     Parameters
     ----------
     points, cells
         Mesh nodes [m] ``(3, n)`` and tetrahedra ``(4, m)``.
     velocity
-        Seepage velocity per cell [m/s], shape ``(3, m)``.
+        Seepage velocity per cell [m/s], shape ``(3, m)``; or, with ``porosity``, the Darcy
+        flux per cell [m/s], divided by the porosity cell by cell as it is read (no
+        ``(3, m)`` seepage-velocity array).
+    porosity
+        Porosity per cell [-], shape ``(m,)``, or None (``velocity`` is the seepage
+        velocity).
     """
 
-    def __init__(self, points: FloatArray, cells: IndexArray, velocity: FloatArray) -> None:
+    def __init__(self, points: FloatArray, cells: IndexArray, velocity: FloatArray, *,
+                 porosity: FloatArray | None = None) -> None:
         self.points = np.ascontiguousarray(points, dtype=float)
-        self.cells = np.ascontiguousarray(cells, dtype=np.int64)
+        self.cells = _index_array(cells)
         self.velocity = np.ascontiguousarray(velocity, dtype=float)
-        self.grads, vol = p1_gradients(self.points, self.cells)
+        self.porosity = (np.zeros(0) if porosity is None
+                         else np.ascontiguousarray(porosity, dtype=float))
         self.neighbour = cell_neighbours(self.cells, self.points.shape[1])
-        self._nodal = _nodal_velocity(self.cells, vol, self.velocity, self.points.shape[1])
+        self._nodal = _nodal_velocity(self.points, self.cells, self.velocity, self.porosity)
         self._last = 0  # where the next walk of locate starts
 
     def locate(self, x: FloatArray) -> int:
         """Index of the cell containing point x [m] (barycentric tolerance 1e-9), or −1
         outside the mesh."""
-        e = int(_locate(self.points, self.cells, self.grads, self.neighbour,
-                        np.asarray(x, dtype=float), self._last, True))
+        e = int(_locate(self.points, self.cells, self.neighbour, np.asarray(x, dtype=float),
+                        self._last, True))
         if e >= 0:
             self._last = e
         return e
@@ -392,8 +439,8 @@ class Tracker:
             capture[np.fromiter(capture_cells, dtype=np.int64)] = True
         out_x = np.empty((3, max_steps + 1))
         out_t = np.empty(max_steps + 1)
-        n, end, crossed = _track(self.points, self.cells, self.grads, self.neighbour,
-                                 self.velocity, self._nodal, capture, x, e,
+        n, end, crossed = _track(self.points, self.cells, self.neighbour, self.velocity,
+                                 self.porosity, self._nodal, capture, x, e,
                                  -1.0 if backward else 1.0, float(max_time),
                                  float(step_fraction), out_x, out_t)
         return Pathline(out_x[:, :n].copy(), out_t[:n].copy(), _ENDS[end], int(crossed))
