@@ -37,7 +37,7 @@ from fe3d.post.plume import (  # noqa: E402
     measure_plume,
     write_isosurface,
 )
-from fe3d.post.run_fields import RunWideField  # noqa: E402
+from fe3d.transport.run_wide import RunWideField  # noqa: E402
 
 HEADING = "## Post-processing (benchmarks/post_bench.py)"
 ONCE = ("start-up, once per process", "series: mesh once")

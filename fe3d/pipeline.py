@@ -251,7 +251,7 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     files += write_flow_outputs(out_dir, case, site, flow, paths, figures=not compact,
                                 drawdown=drawdown)
     writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow, figures=not compact,
-                          drawdown=drawdown)
+                          drawdown=drawdown, receptors_every_step=True)
     _transport(case, site, flow, writer, keeper=keeper, saved=saved, base_dir=base_dir,
                on_step=lambda t, end: tell("transport", t, end))
     tell("outputs", 0, 1)
@@ -264,7 +264,8 @@ def _transport(case: Case, site: SiteMesh, flow: FlowField, writer: SeriesWriter
                keeper: Checkpointer, saved: SavedRun | None, base_dir: Path | None,
                on_step: Callable[[float, float], None]) -> None:
     """The transport stage: every snapshot to ``writer`` (first those kept by ``saved``'s
-    checkpoint, written again) and to ``keeper``'s checkpoint folder. Signals wait for the
+    checkpoint, written again) and to ``keeper``'s checkpoint folder; the receptors are
+    sampled at every step (``writer.receptor_probe``). Signals wait for the
     end of a step (:func:`fe3d.resume.stop_on_signals`, set again here: the mesher may have
     put its own handlers in place)."""
     resume_from = None if saved is None else saved.checkpoint
@@ -278,7 +279,7 @@ def _transport(case: Case, site: SiteMesh, flow: FlowField, writer: SeriesWriter
         with stop_on_signals(keeper):
             for snap in run_transport(site, flow, TransportInputs.of(case), base_dir=base_dir,
                                       on_step=on_step, resume_from=resume_from,
-                                      checkpoints=keeper):
+                                      checkpoints=keeper, extra_probe=writer.receptor_probe):
                 writer.add(snap)
                 keeper.add_output(index, snap)
                 index += 1

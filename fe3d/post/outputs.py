@@ -53,7 +53,6 @@ from fe3d.post.receptors import (
     receptors_of,
 )
 from fe3d.post.report import ObservationResult, RunSummary, write_summary_json
-from fe3d.post.run_fields import RunWideField
 from fe3d.post.run_figures import PlumeFigures, write_head_figure
 from fe3d.post.series import SERIES_FILE, SeriesFile
 from fe3d.post.tables import (
@@ -67,6 +66,7 @@ from fe3d.post.tables import (
 from fe3d.post.vtk import write_field, write_pathlines, write_pvd
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.run import Snapshot
+from fe3d.transport.run_wide import RunWideField
 from fe3d.units import from_si, to_seconds
 
 __all__ = ["RUN_FIELDS", "SERIES_FILE", "PlumeRow", "SeriesWriter", "flow_cell_data",
@@ -240,9 +240,7 @@ class SeriesWriter:
                                  self.site.cells, c * scale, lim * scale, name=f"{sp} [{cu}]")
             self.first_above[sp] = first_times_above(
                 self.first_above[sp], c[self.boundary_nodes], lim, snap.time)
-            self.over_run[sp] = self.over_run[sp].add(
-                c, snap.time, lim, None if self.last is None else
-                (self.last.concentration[sp], self.last.time))
+        self.over_run = snap.over_run  # folded in at every step by the transport
         self._follow_extremes(snap)
         self.budgets += list(snap.budgets.values())
         write_mass_budget(out / "mass_budget.csv", self.budgets, time_unit=tu)
@@ -366,7 +364,8 @@ class SeriesWriter:
         if names and self.full_outputs:
             activity = {sp: [(s.start, case.time.end if s.stop is None else s.stop)
                              for s in case.sources if s.species == sp] for sp in case.species}
-            plot_breakthrough(out / "breakthrough.png", last.history_times, last.history,
+            plot_breakthrough(out / "breakthrough.png", last.history_times,
+                              {sp: h[:, :len(names)] for sp, h in last.history.items()},
                               names, limits, time_unit=tu, conc_unit=cu,
                               title=case.site or case.title, source_activity=activity)
             files.append("breakthrough.png")
@@ -388,7 +387,7 @@ class SeriesWriter:
 
     def _write_run_fields(self) -> None:
         """The largest value, when it was reached and the first time above the limit at
-        every node over the output times, one file (theory.md O4)."""
+        every node over every step, one file (theory.md O4)."""
         tu, cu = self.case.output.time_unit, self.case.output.concentration_unit
         scale, per_unit = from_si(1.0, cu), from_si(1.0, tu)
         data = {}

@@ -13,7 +13,7 @@ from fe3d._typing import FloatArray
 from fe3d.post.series import SERIES_FILE, read_series
 from fe3d.units import from_si
 
-__all__ = ["read_concentration_series"]
+__all__ = ["read_concentration_series", "read_largest_over_run"]
 
 
 def read_concentration_series(folder: Path, species: list[str], *, time_unit: str,
@@ -38,3 +38,14 @@ def read_concentration_series(folder: Path, species: list[str], *, time_unit: st
             fields[sp].append(np.asarray(data[f"{sp} [{conc_unit}]"], dtype=float) / c_scale)
     times = np.array([t for t, _ in entries]) / t_scale
     return times, {sp: np.stack(v) for sp, v in fields.items()}
+
+
+def read_largest_over_run(folder: Path, species: list[str], *, conc_unit: str,
+                          ) -> dict[str, FloatArray]:
+    """Each species' largest concentration over every time step at every node [kg/m³]
+    ``(n_nodes,)`` (theory.md O4), from the series file of ``folder`` (written there in the
+    display unit ``conc_unit``)."""
+    names = [f"{sp} largest [{conc_unit}]" for sp in species]
+    _, values = read_series(folder / SERIES_FILE, names)
+    c_scale = from_si(1.0, conc_unit)
+    return {sp: values[name][0] / c_scale for sp, name in zip(species, names, strict=True)}

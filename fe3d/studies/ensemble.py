@@ -43,7 +43,7 @@ from fe3d.mesh.io import mesh_inputs_hash
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.pipeline import mesh_case, run_case
 from fe3d.post.files import write_atomic, write_text_atomic
-from fe3d.post.series_read import read_concentration_series
+from fe3d.post.series_read import read_concentration_series, read_largest_over_run
 from fe3d.studies.executors import SerialExecutor, StudyExecutor
 from fe3d.studies.run_folder import read_histories
 from fe3d.studies.sampling import Sample, draw_sample
@@ -70,10 +70,12 @@ DRAWS = "ensemble_draws.csv"
 class MemberFields:
     """Where one member's concentration was above the limit: ``output_times`` [s] shape
     ``(n_outputs,)``; ``above`` species → boolean ``(n_outputs, n_nodes)`` on the shared
-    mesh."""
+    mesh; ``ever_above`` species → boolean ``(n_nodes,)``, above at one time step at least
+    (the largest value over the run, theory.md O4)."""
 
     output_times: FloatArray
     above: dict[str, BoolArray]
+    ever_above: dict[str, BoolArray]
 
 
 @dataclass(frozen=True)
@@ -194,12 +196,17 @@ def _run_member(index: int, case: Case, site: SiteMesh | None, base_dir: Path | 
 
 
 def _above_limit(folder: Path, case: Case) -> MemberFields:
-    """Where the run folder's concentration series is above each species' limit."""
+    """Where the run folder's concentration series is above each species' limit, at the
+    output times and at one step at least."""
     out = case.output
     times, series = read_concentration_series(folder, list(case.species),
                                               time_unit=out.time_unit,
                                               conc_unit=out.concentration_unit)
-    return MemberFields(times, {sp: series[sp] > case.species[sp].limit for sp in series})
+    largest = read_largest_over_run(folder, list(case.species),
+                                    conc_unit=out.concentration_unit)
+    limit = {sp: case.species[sp].limit for sp in series}
+    return MemberFields(times, {sp: series[sp] > limit[sp] for sp in series},
+                        {sp: largest[sp] > limit[sp] for sp in series})
 
 
 def _peak_memory() -> float:
@@ -223,6 +230,8 @@ def _save_member(folder: Path, result: MemberResult) -> None:
         arrays["output_times"] = result.fields.output_times
         arrays |= {f"above/{sp}": np.packbits(a, axis=-1)
                    for sp, a in result.fields.above.items()}
+        arrays |= {f"ever_above/{sp}": np.packbits(a)
+                   for sp, a in result.fields.ever_above.items()}
 
     def write(path: Path) -> None:
         with path.open("wb") as fh:
@@ -237,9 +246,10 @@ def member_fields(folder: Path, index: int, n_nodes: int) -> MemberFields | None
     with np.load(_member_file(folder, index)) as data:
         if "output_times" not in data:
             return None
-        return MemberFields(data["output_times"], {
-            k.split("/", 1)[1]: np.unpackbits(data[k], axis=-1, count=n_nodes).astype(bool)
-            for k in data if k.startswith("above/")})
+        def bits(prefix: str) -> dict[str, BoolArray]:
+            return {k.split("/", 1)[1]: np.unpackbits(data[k], axis=-1, count=n_nodes)
+                    .astype(bool) for k in data if k.startswith(prefix)}
+        return MemberFields(data["output_times"], bits("above/"), bits("ever_above/"))
 
 
 def _load_member(folder: Path, index: int) -> MemberResult | None:

@@ -63,7 +63,7 @@ GRID_POINTS = 201
 class ProbabilityFields:
     """Per node of the shared mesh, the fraction of finished members above each species'
     limit: ``at_times`` species → ``(n_outputs, n_nodes)`` at ``output_times`` [s];
-    ``during_run`` species → ``(n_nodes,)`` above at one output time at least."""
+    ``during_run`` species → ``(n_nodes,)`` above at one time step at least."""
 
     output_times: FloatArray
     at_times: dict[str, FloatArray]
@@ -88,7 +88,7 @@ def probability_fields(ensemble: Ensemble) -> ProbabilityFields | None:
         times = f.output_times
         for sp, above in f.above.items():
             at[sp] = at.get(sp, 0.0) + above
-            ever[sp] = ever.get(sp, 0.0) + above.any(axis=0)
+            ever[sp] = ever.get(sp, 0.0) + f.ever_above[sp]
     assert times is not None
     n = len(results)
     return ProbabilityFields(times, {sp: a / n for sp, a in at.items()},

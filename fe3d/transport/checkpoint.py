@@ -31,6 +31,7 @@ from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.transport.accumulate import StatisticsState, TotalsState, TransportDiagnostics
 from fe3d.transport.budget import MassBudget
 from fe3d.transport.planner import PlannerState
+from fe3d.transport.run_wide import RunWideField
 from fe3d.transport.snapshot import Snapshot
 from fe3d.transport.step import StepBudget, StepState
 
@@ -53,7 +54,7 @@ __all__ = [
 CHECKPOINT_FOLDER = "checkpoint"
 """The checkpoint folder's name inside a run folder."""
 
-FORMAT = 1
+FORMAT = 2
 """Version of the checkpoint layout; a checkpoint of another version is not read."""
 
 RESUME_KEY = "--resume"
@@ -78,7 +79,8 @@ class Checkpoint:
     ``state``: the fields [kg/m³], held masks, the older level and last budget of every
     species; ``planner``, ``totals``, ``statistics``: the step planner, the budget totals
     and the diagnostics; ``history_times`` [s] and ``history`` (species → ``(n_times,
-    n_observations)`` [kg/m³]): every step so far; ``accepted``: the levels (t [s], fields)
+    n_rows)`` [kg/m³]): every step so far; ``over_run``: the fields over the run so far;
+    ``accepted``: the levels (t [s], fields)
     of the local error estimate; ``dt_prev`` [s]: the last step (None after a restart);
     ``outputs``: snapshots yielded so far; ``mesh`` and ``flow``: fingerprints of the mesh
     and flow field the state belongs to. Nothing else carries from step to step: Newton's
@@ -91,6 +93,7 @@ class Checkpoint:
     statistics: StatisticsState
     history_times: FloatArray
     history: dict[str, FloatArray]
+    over_run: dict[str, RunWideField]
     accepted: tuple[tuple[float, dict[str, FloatArray]], ...]
     dt_prev: float | None
     outputs: int
@@ -118,12 +121,16 @@ def run_fingerprints(site: SiteMesh, flow: FlowField) -> tuple[str, str]:
     return fingerprint(site.points, site.cells), fingerprint(flow.head, flow.darcy_flux)
 
 
-def check_resumable(ckpt: Checkpoint, site: SiteMesh, flow: FlowField) -> None:
+def check_resumable(ckpt: Checkpoint, site: SiteMesh, flow: FlowField,
+                    rows: int | None = None) -> None:
     """Raise CaseError naming ``--resume`` when ``ckpt`` was saved with another mesh or
-    flow field."""
+    flow field or, when ``rows`` is given, with histories of other than ``rows`` columns
+    (the rows the run samples at every step)."""
     mesh, water = run_fingerprints(site, flow)
-    if (mesh, water) != (ckpt.mesh, ckpt.flow):
-        what = "mesh" if mesh != ckpt.mesh else "flow field"
+    widths = {h.shape[1] for h in ckpt.history.values()}
+    what = "mesh" if mesh != ckpt.mesh else "flow field" if water != ckpt.flow else \
+        "set of sampled rows" if rows is not None and widths - {rows} else None
+    if what is not None:
         allowed = f"was saved with another {what}: run again from the start (--overwrite)"
         raise CaseError(RESUME_KEY, f"checkpoint at t = {ckpt.time:.6g} s", allowed)
 
@@ -193,6 +200,7 @@ def write_checkpoint(folder: Path, ckpt: Checkpoint, *, case: str) -> Path:
         arrays[f"field_{k}"] = ckpt.state.fields[name]
         arrays[f"held_{k}"] = ckpt.state.held_before[name]
         arrays[f"history_{k}"] = ckpt.history[name]
+        arrays.update(_run_wide_arrays(k, ckpt.over_run[name]))
         if ckpt.state.older is not None:
             arrays[f"older_{k}"] = ckpt.state.older[name]
         for j, (_, fields) in enumerate(ckpt.accepted):
@@ -250,6 +258,7 @@ def read_checkpoint(folder: Path) -> tuple[Checkpoint, str] | None:
     ckpt = Checkpoint(state=state, planner=planner, totals=totals, statistics=stats,
                       history_times=a["history_times"],
                       history={n: a[f"history_{k}"] for k, n in enumerate(names)},
+                      over_run={n: _run_wide_of(k, a) for k, n in enumerate(names)},
                       accepted=accepted,
                       dt_prev=None if h["dt_prev"] is None else float(h["dt_prev"]),
                       outputs=h["outputs"], mesh=h["mesh"], flow=h["flow"])
@@ -264,8 +273,23 @@ def write_output(folder: Path, index: int, snap: Snapshot) -> Path:
               "budgets": {n: asdict(b) for n, b in snap.budgets.items()},
               "diagnostics": asdict(snap.diagnostics)}
     path = folder / f"output_{index:04d}.npz"
-    _save(path, header, {f"field_{k}": snap.concentration[n] for k, n in enumerate(names)})
+    arrays = {f"field_{k}": snap.concentration[n] for k, n in enumerate(names)}
+    for k, n in enumerate(names):
+        arrays.update(_run_wide_arrays(k, snap.over_run[n]))
+    _save(path, header, arrays)
     return path
+
+
+def _run_wide_arrays(k: int, f: RunWideField) -> dict[str, np.ndarray]:
+    """The arrays of the ``k``-th species' fields over the run, by their saved names."""
+    return {f"largest_{k}": f.largest, f"time_of_largest_{k}": f.time_of_largest,
+            f"first_above_{k}": f.first_above}
+
+
+def _run_wide_of(k: int, a: dict[str, np.ndarray]) -> RunWideField:
+    """The ``k``-th species' fields over the run, from the saved arrays ``a``."""
+    return RunWideField(largest=a[f"largest_{k}"], time_of_largest=a[f"time_of_largest_{k}"],
+                        first_above=a[f"first_above_{k}"])
 
 
 def read_outputs(folder: Path, ckpt: Checkpoint) -> list[Snapshot]:
@@ -291,7 +315,8 @@ def read_outputs(folder: Path, ckpt: Checkpoint) -> list[Snapshot]:
             concentration={n: a[f"field_{k}"] for k, n in enumerate(h["species"])},
             budgets=budgets, history_times=ckpt.history_times[:rows].copy(),
             history={n: v[:rows].copy() for n, v in ckpt.history.items()},
-            diagnostics=diagnostics))
+            diagnostics=diagnostics,
+            over_run={n: _run_wide_of(k, a) for k, n in enumerate(h["species"])}))
     return out
 
 

@@ -50,6 +50,7 @@ from fe3d.transport.checkpoint import (
 from fe3d.transport.courant import PlumeCourant
 from fe3d.transport.model import SpeciesModel, build_medium, build_species
 from fe3d.transport.planner import PlannedStep, StepPlanner, time_steps
+from fe3d.transport.run_wide import RunWideField
 from fe3d.transport.snapshot import Snapshot
 from fe3d.transport.sources import build_source_geometry, initial_fields
 from fe3d.transport.step import StepContext, StepResult, StepState, UserLaw, take_step
@@ -66,6 +67,7 @@ def run_transport(
     site: SiteMesh, flow: FlowField, inputs: TransportInputs, *,
     on_step: Callable[[float, float], None] | None = None, base_dir: Path | None = None,
     resume_from: Checkpoint | None = None, checkpoints: Checkpointer | None = None,
+    extra_probe: sp.csr_matrix | None = None,
 ) -> Iterator[Snapshot]:
     """Step every species from 0 to ``inputs.time.end``; yield a :class:`Snapshot` at t = 0 and
     at every output time.
@@ -90,6 +92,10 @@ def run_transport(
     checkpoints
         Offered the state after every accepted step (saves it when due, stops the run when
         asked to).
+    extra_probe
+        More rows sampled at every step, shape ``(n_rows, n_nodes)``, after the observation
+        points (e.g. the receptors' flux-averaged concentration): each history then has one
+        column per observation point, then one per row. A run resumed must be given the same.
 
     Raises
     ------
@@ -111,6 +117,8 @@ def run_transport(
     ctx = step_context(site, flow, inputs, base_dir)
     species, tc = ctx.species, inputs.time
     probe = _observation_operator(site, flow, inputs)
+    if extra_probe is not None:
+        probe = sp.vstack([probe, extra_probe]).tocsr()
     schedule = inputs.output_schedule()
     switches = {t for src in inputs.sources for t in (src.start, src.stop)
                 if t is not None and 0 < t < tc.end}
@@ -173,6 +181,7 @@ class _RunningState:
     stats: RunStatistics
     history_times: list[float]
     history: dict[str, list[FloatArray]]
+    over_run: dict[str, RunWideField]
     accepted: list[tuple[float, dict[str, FloatArray]]]  # levels for the local error
     dt_prev: float | None
     outputs: int  # snapshots yielded
@@ -195,6 +204,9 @@ class _RunningState:
                    stats=RunStatistics(dict.fromkeys((s.name for s in species), 0.0)),
                    history_times=[0.0],
                    history={s.name: [probe @ fields[s.name]] for s in species},
+                   over_run={s.name: RunWideField.start(n).add(fields[s.name], 0.0,
+                                                              s.spec.limit, None)
+                             for s in species},
                    accepted=[(0.0, fields)], dt_prev=None, outputs=0,
                    fingerprints=run_fingerprints(site, flow))
 
@@ -202,7 +214,7 @@ class _RunningState:
     def resumed(cls, site: SiteMesh, flow: FlowField, ctx: StepContext, planner: StepPlanner,
                 probe: sp.csr_matrix, saved: Checkpoint) -> _RunningState:
         """The state saved in ``saved``, which must belong to this mesh and flow."""
-        check_resumable(saved, site, flow)
+        check_resumable(saved, site, flow, probe.shape[0])
         planner.resume_from(saved.planner)
         totals = BudgetTotals(ctx.species, saved.state.fields)
         totals.resume_from(saved.totals)
@@ -212,11 +224,13 @@ class _RunningState:
                    state=saved.state, totals=totals, stats=stats,
                    history_times=[float(t) for t in saved.history_times],
                    history={k: list(v) for k, v in saved.history.items()},
-                   accepted=list(saved.accepted), dt_prev=saved.dt_prev,
+                   over_run=dict(saved.over_run), accepted=list(saved.accepted),
+                   dt_prev=saved.dt_prev,
                    outputs=saved.outputs, fingerprints=run_fingerprints(site, flow))
 
     def commit(self, step: PlannedStep, result: StepResult, rates: dict[str, float]) -> None:
-        """Fold an accepted step in: totals, diagnostics, fields, levels and histories."""
+        """Fold an accepted step in: totals, diagnostics, fields, the fields over the run, levels
+        and histories."""
         self.totals.add(result.budget)
         lows = self.stats.add(result, step.dt, self.species, self.site.points, rates)
         if logger.isEnabledFor(logging.INFO):
@@ -224,7 +238,12 @@ class _RunningState:
                         step.dt, "; ".join(lows), f"; Newton {result.newton_iterations} "
                         "iterations" if result.solver_kind == "newton" else "")
         restart = self.planner.advance(step)
+        before = self.state.fields
         self.state = next_state(result, self.site.n_nodes, restart)
+        for s in self.species:
+            self.over_run[s.name] = self.over_run[s.name].add(
+                self.state.fields[s.name], step.t1, s.spec.limit,
+                (before[s.name], self.history_times[-1]))
         self.dt_prev = None if restart else step.dt  # a source switched: multistep restart
         self.accepted = [(step.t1, self.state.fields)] if restart else [
             *self.accepted[-2:], (step.t1, self.state.fields)]
@@ -240,7 +259,8 @@ class _RunningState:
                         history_times=np.array(self.history_times),
                         history={k: np.array(v) for k, v in self.history.items()},
                         diagnostics=self.stats.diagnostics(self.planner.step_cuts,
-                                                           self.planner.rejected))
+                                                           self.planner.rejected),
+                        over_run=dict(self.over_run))
 
     def checkpoint(self) -> Checkpoint:
         """A frozen copy of the state (arrays shared: the loop never changes them)."""
@@ -249,7 +269,8 @@ class _RunningState:
             state=self.state, planner=self.planner.state(), totals=self.totals.state(),
             statistics=self.stats.state(), history_times=np.array(self.history_times),
             history={k: np.array(v).reshape(len(v), n_obs) for k, v in self.history.items()},
-            accepted=tuple(self.accepted), dt_prev=self.dt_prev, outputs=self.outputs,
+            over_run=dict(self.over_run), accepted=tuple(self.accepted),
+            dt_prev=self.dt_prev, outputs=self.outputs,
             mesh=self.fingerprints[0], flow=self.fingerprints[1])
 
 

@@ -1,5 +1,5 @@
 """Fields over the whole run: the largest concentration and the first time above the limit
-at every node (theory.md O4), folded over the output times."""
+at every node (theory.md O4), folded in after every time step by the transport loop."""
 
 from __future__ import annotations
 
@@ -14,12 +14,12 @@ __all__ = ["RunWideField"]
 
 @dataclass(frozen=True)
 class RunWideField:
-    """One species over the output times so far, at every node, shape ``(n_nodes,)``.
+    """One species over the time steps so far, at every node, shape ``(n_nodes,)``.
 
-    ``largest`` [kg/m³] the largest value and ``time_of_largest`` [s] the output time it was
-    reached; ``first_above`` [s] the first time above the limit, interpolated linearly
-    between the two output times around the crossing (NaN: never above; 0: above at the
-    start)."""
+    ``largest`` [kg/m³] the largest value and ``time_of_largest`` [s] the end of the step it
+    was reached at; ``first_above`` [s] the first time above the limit, interpolated
+    linearly between the two step ends around the crossing (NaN: never above; 0: above at
+    the start)."""
 
     largest: FloatArray
     time_of_largest: FloatArray
@@ -27,14 +27,14 @@ class RunWideField:
 
     @classmethod
     def start(cls, n_nodes: int) -> RunWideField:
-        """Before the first output time."""
+        """Before the start."""
         return cls(np.full(n_nodes, -np.inf), np.full(n_nodes, np.nan),
                    np.full(n_nodes, np.nan))
 
     def add(self, conc: FloatArray, time: float, limit: float,
             previous: tuple[FloatArray, float] | None) -> RunWideField:
         """Fold in the field ``conc`` [kg/m³] at ``time`` [s]; ``previous`` is the field and
-        time of the output before (None at the first). Returns a new record."""
+        time of the step before (None at the start). Returns a new record."""
         higher = conc > self.largest
         crossing = np.isnan(self.first_above) & (conc > limit)
         first = self.first_above.copy()

@@ -41,7 +41,7 @@ from fe3d.case.builder import (
 )
 from fe3d.case.schema import Case
 from fe3d.pipeline import run_case
-from fe3d.post.series_read import read_concentration_series
+from fe3d.post.series_read import read_concentration_series, read_largest_over_run
 from fe3d.studies.ensemble import run_ensemble
 from fe3d.studies.ensemble_results import probability_fields, summarise_ensemble
 from fe3d.studies.executors import SerialExecutor, StudyExecutor
@@ -133,6 +133,10 @@ def test_zero_variance_ensemble_equals_the_deterministic_run(tmp_path: Path):
     assert np.array_equal(fields.output_times, out_times)
     assert np.array_equal(fields.at_times["tracer"], (series["tracer"] > LIMIT) * 1.0)
     assert fields.during_run["tracer"].max() == 1.0  # the inlet face is above the limit
+    # during the run: 1 where the run's largest value over every step is above the limit
+    largest = read_largest_over_run(tmp_path / "run", ["tracer"], conc_unit="mg/L")
+    assert np.array_equal(fields.during_run["tracer"], (largest["tracer"] > LIMIT) * 1.0)
+    assert np.all(fields.during_run["tracer"] >= fields.at_times["tracer"].max(axis=0))
 
 
 @pytest.mark.slow

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from fe3d.post.receptors import ReceptorRow, receptor_result, time_above
-from fe3d.post.run_fields import RunWideField
+from fe3d.transport.run_wide import RunWideField
 
 TIMES = np.array([0.0, 1.0, 2.0, 3.0, 4.0])
 VALUES = np.array([0.0, 1.0, 3.0, 1.0, 0.0])

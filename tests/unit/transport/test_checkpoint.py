@@ -14,6 +14,7 @@ import dataclasses
 
 import numpy as np
 import pytest
+import scipy.sparse as sp
 
 from fe3d.case.builder import (
     Layer,
@@ -89,6 +90,9 @@ def _assert_same(got, want) -> None:
     for name, c in want.concentration.items():
         np.testing.assert_array_equal(got.concentration[name], c, strict=True)
         np.testing.assert_array_equal(got.history[name], want.history[name], strict=True)
+        for part in ("largest", "time_of_largest", "first_above"):
+            np.testing.assert_array_equal(getattr(got.over_run[name], part),
+                                          getattr(want.over_run[name], part), strict=True)
     np.testing.assert_array_equal(got.history_times, want.history_times, strict=True)
     assert got.budgets == want.budgets
     assert got.diagnostics == want.diagnostics
@@ -107,7 +111,7 @@ def _continue(site, flow, inputs, folder):
 def test_checkpoint_interrupted_run_continues_bit_for_bit(prepared, tmp_path, stop_at):
     """Ctrl-C (a KeyboardInterrupt from the step callback) after ``stop_at`` steps saves a
     checkpoint; the outputs kept plus the continued run equal the uninterrupted run's
-    snapshots exactly (fields, histories, budgets, diagnostics)."""
+    snapshots exactly (fields, histories, budgets, diagnostics, fields over the run)."""
     site, flow, inputs, whole = prepared
     keeper = Checkpointer(tmp_path, case="case")
     with pytest.raises(KeyboardInterrupt):
@@ -161,17 +165,33 @@ def test_checkpoint_stop_request_saves_and_stops(prepared, tmp_path):
     assert ckpt.time == info.value.time >= 2.0 * DAY
 
 
-def test_checkpoint_of_another_mesh_is_refused(prepared, tmp_path):
-    """A checkpoint resumed on another flow field is refused with one line naming --resume."""
-    site, flow, inputs, _ = prepared
-    keeper = Checkpointer(tmp_path, case="case")
+def _saved_after_three_steps(site, flow, inputs, folder):
+    """The checkpoint a run stopped by Ctrl-C after three steps leaves in ``folder``."""
+    keeper = Checkpointer(folder, case="case")
     with pytest.raises(KeyboardInterrupt):
         list(run_transport(site, flow, inputs, checkpoints=keeper,
                            on_step=_stop_after(3, KeyboardInterrupt())))
-    ckpt, _ = read_checkpoint(tmp_path)
+    ckpt, _ = read_checkpoint(folder)
+    return ckpt
+
+
+def test_checkpoint_of_another_mesh_is_refused(prepared, tmp_path):
+    """A checkpoint resumed on another flow field is refused with one line naming --resume."""
+    site, flow, inputs, _ = prepared
+    ckpt = _saved_after_three_steps(site, flow, inputs, tmp_path)
     other = dataclasses.replace(flow, head=flow.head + 1e-9)
     with pytest.raises(CaseError, match=r"--resume.*another flow field"):
         next(run_transport(site, other, inputs, resume_from=ckpt))
+
+
+def test_checkpoint_with_other_sampled_rows_is_refused(prepared, tmp_path):
+    """A checkpoint saved with the observation points only, resumed with one more sampled
+    row (a receptor), is refused with one line naming --resume."""
+    site, flow, inputs, _ = prepared
+    ckpt = _saved_after_three_steps(site, flow, inputs, tmp_path)
+    extra = sp.csr_matrix(np.full((1, site.n_nodes), 1.0 / site.n_nodes))
+    with pytest.raises(CaseError, match=r"--resume.*another set of sampled rows"):
+        next(run_transport(site, flow, inputs, resume_from=ckpt, extra_probe=extra))
 
 
 def test_checkpoint_saving_does_not_change_the_run(prepared, tmp_path):
