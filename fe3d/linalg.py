@@ -2,7 +2,8 @@
 
 Choices follow measurements on fe3d's own matrices (docs/performance.md, "Linear solvers"):
 SuperLU only for small 3D systems; for symmetric positive definite (flow) systems conjugate
-gradients with one classical Ruge–Stüben AMG cycle (strength 0.5, second splitting pass);
+gradients with one classical Ruge–Stüben AMG cycle (strength 0.9 on the finest level and 0.5
+below, second splitting pass);
 for transport steps BiCGSTAB with a symmetric Gauss–Seidel preconditioner, or GMRES with an
 unsmoothed-aggregation AMG V-cycle when a probe solve shows the step is too stiff for it.
 Every iterative result is checked against the true residual ‖b − Ax‖/‖b‖, never only the
@@ -23,9 +24,9 @@ from fe3d.errors import SolverError
 from fe3d.krylov import SolutionWindow, bicgstab
 from fe3d.sgs import SymmetricGaussSeidel
 
-__all__ = ["DIRECT_LIMIT", "FLOW_TOLERANCE", "PROBE_ITERATIONS", "RELAXATION", "START_WINDOW",
-           "TRANSPORT_METHODS", "LinearSolver", "SpdPreconditioner", "solve_spd",
-           "solve_with_preconditioner"]
+__all__ = ["COARSEST", "DIRECT_LIMIT", "FIRST_STRENGTH", "FLOW_TOLERANCE", "PROBE_ITERATIONS",
+           "RELAXATION", "START_WINDOW", "STRENGTH", "TRANSPORT_METHODS", "LinearSolver",
+           "SpdPreconditioner", "solve_spd", "solve_with_preconditioner"]
 
 logger = logging.getLogger(__name__)
 
@@ -89,19 +90,56 @@ class SpdPreconditioner:
         return self._ml
 
 
-def _amg_hierarchy(A: sp.csr_matrix) -> Any:
-    """Classical Ruge–Stüben AMG (see :func:`solve_spd`): strength 0.5 on the negative
-    off-diagonals, second splitting pass, exact solve at ≤ 500 unknowns, a forward
-    Gauss–Seidel sweep before and a backward one after the coarse correction (the V-cycle
-    stays symmetric, as CG needs)."""
-    import pyamg
+FIRST_STRENGTH = 0.9
+"""Strength threshold θ of the classical AMG's finest level (the coarser levels take
+:data:`STRENGTH`). Measured on the 918 k-unknown flow benchmark matrix (CG to 1e-10,
+docs/performance.md, Flow): θ on the first level only 0.5 / 0.8 / 0.9 / 0.95 took 14 CG
+iterations each with operator complexity 3.38 / 3.03 / 2.99 / 2.99, set-up + CG 7.1 / 7.0 /
+5.8 / 5.2 s of CPU at load 6 (set-up times vary by ±1 s with the load; the complexity and
+the iterations do not). θ = 0.8 on every level: complexity 2.48 but 23 iterations; on the
+first two levels 2.66 and 16; θ = 0.7 throughout 2.82 and 20 (coarse levels with fewer
+strong connections interpolate worse)."""
 
-    return pyamg.ruge_stuben_solver(A.tocsr(),
-                                    strength=("classical", {"theta": 0.5, "norm": "min"}),
-                                    CF=("RS", {"second_pass": True}), max_coarse=500,
-                                    coarse_solver="pinv",
-                                    presmoother=("gauss_seidel", {"sweep": "forward"}),
-                                    postsmoother=("gauss_seidel", {"sweep": "backward"}))
+STRENGTH = 0.5
+"""Strength threshold θ of the classical AMG's coarser levels (see :func:`solve_spd`)."""
+
+COARSEST = 500
+"""Largest level the classical AMG solves exactly (dense pseudo-inverse)."""
+
+
+def _amg_hierarchy(A: sp.csr_matrix) -> Any:
+    """Classical Ruge–Stüben AMG (see :func:`solve_spd`): strength :data:`FIRST_STRENGTH`
+    on the finest level and :data:`STRENGTH` below, on the negative off-diagonals; second
+    splitting pass; classical interpolation; Galerkin coarse operators R A P; exact solve
+    at ≤ :data:`COARSEST` unknowns; a forward Gauss–Seidel sweep before and a backward one
+    after the coarse correction (the V-cycle stays symmetric, as CG needs).
+    The level loop is pyamg's ``ruge_stuben_solver`` with a threshold per level (a fused
+    one-pass R A P in numba was tried: 0.64 s against scipy's 0.31 s on the finest level of
+    the 918 k-unknown flow matrix)."""
+    from pyamg.classical.interpolate import classical_interpolation
+    from pyamg.classical.split import RS
+    from pyamg.multilevel import MultilevelSolver
+    from pyamg.relaxation.smoothing import change_smoothers
+    from pyamg.strength import classical_strength_of_connection
+
+    levels = [MultilevelSolver.Level()]
+    levels[0].A = sp.csr_matrix(A)
+    while levels[-1].A.shape[0] > COARSEST and len(levels) < 30:
+        level = levels[-1]
+        theta = FIRST_STRENGTH if len(levels) == 1 else STRENGTH
+        strong = classical_strength_of_connection(level.A, theta=theta, norm="min")
+        splitting = RS(strong, second_pass=True)
+        if splitting.sum() in (0, splitting.size):  # all coarse or all fine: stop here
+            break
+        level.P = sp.csr_matrix(classical_interpolation(level.A, strong, splitting))
+        level.R = level.P.T.tocsr()
+        level.splitting = splitting.astype(bool)
+        levels.append(MultilevelSolver.Level())
+        levels[-1].A = (level.R @ level.A @ level.P).tocsr()
+    ml = MultilevelSolver(levels, coarse_solver="pinv")
+    change_smoothers(ml, ("gauss_seidel", {"sweep": "forward"}),
+                     ("gauss_seidel", {"sweep": "backward"}))
+    return ml
 
 
 def solve_spd(A: sp.csr_matrix, b: FloatArray, *, tol: float = 1e-12,
@@ -112,7 +150,9 @@ def solve_spd(A: sp.csr_matrix, b: FloatArray, *, tol: float = 1e-12,
 
     The iterative branch (``method="iterative"``, or ``"auto"`` above :data:`DIRECT_LIMIT`
     unknowns) is conjugate gradients preconditioned by one cycle of classical Ruge–Stüben AMG:
-    strength threshold θ = 0.5 measured on the negative off-diagonals only (``norm="min"``),
+    strength threshold θ = 0.5 (:data:`FIRST_STRENGTH` = 0.9 on the finest level, which cuts
+    the operator complexity from 3.38 to 2.99 at the same iterations on the 918 k-unknown
+    benchmark) measured on the negative off-diagonals only (``norm="min"``),
     second pass of the C/F splitting, one forward Gauss–Seidel sweep before and one backward
     sweep after the coarse correction, and an exact solve
     (dense pseudo-inverse, which also survives a singular matrix and leaves the verdict to the
