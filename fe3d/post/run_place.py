@@ -122,16 +122,20 @@ def work_folder(out_dir: Path) -> Path:
 
 def write_manifest(folder: Path, state: RunState, *, detail: str = "") -> Path:
     """``run.json`` in ``folder``: the state, fe3d's version, the time [UTC], ``detail`` (the
-    one-line reason of a failure) and every other file with its size [bytes] and SHA-256."""
+    one-line reason of a failure) and every other file with its size [bytes] and SHA-256,
+    those in subfolders (an interrupted run's ``checkpoint/``) by their path from
+    ``folder`` with forward slashes; hidden files and folders (temporary files) are left
+    out."""
     files = []
-    for path in sorted(p for p in folder.iterdir() if p.is_file() and p.name != MANIFEST
-                       and not p.name.startswith(".")):
+    for path in sorted(p for p in folder.rglob("*") if p.is_file() and p != folder / MANIFEST
+                       and not any(part.startswith(".")
+                                   for part in p.relative_to(folder).parts)):
         digest = hashlib.sha256()
         with path.open("rb") as fh:
             for block in iter(lambda fh=fh: fh.read(1 << 20), b""):
                 digest.update(block)
-        files.append({"name": path.name, "bytes": path.stat().st_size,
-                      "sha256": digest.hexdigest()})
+        files.append({"name": path.relative_to(folder).as_posix(),
+                      "bytes": path.stat().st_size, "sha256": digest.hexdigest()})
     data = {"fe3d": __version__, "state": state, "detail": detail,
             "written": datetime.datetime.now(datetime.UTC).isoformat(timespec="seconds"),
             "files": files}

@@ -10,6 +10,7 @@ writes the outputs before the checkpoint again from the values it saved.
 from __future__ import annotations
 
 import csv
+import hashlib
 import json
 import os
 import signal
@@ -110,8 +111,14 @@ def test_resume_after_ctrl_c_ends_like_an_uninterrupted_run(reference, tmp_path,
     run = tmp_path / "run"
     with pytest.raises(KeyboardInterrupt):
         run_case(load_case(case_file), run, progress=_stop_at_step(stop_at))
-    assert json.loads((run / "run.json").read_text(encoding="utf-8"))["state"] == "interrupted"
+    manifest = json.loads((run / "run.json").read_text(encoding="utf-8"))
+    assert manifest["state"] == "interrupted"
     assert (run / "checkpoint" / "state.npz").is_file()
+    listed = {f["name"]: f["sha256"] for f in manifest["files"]}  # the checkpoint too
+    saved = {p.relative_to(run).as_posix() for p in (run / "checkpoint").iterdir()}
+    assert saved and saved <= set(listed)
+    for name in saved:
+        assert hashlib.sha256((run / name).read_bytes()).hexdigest() == listed[name]
     assert main(["run", str(case_file), "--out", str(run), "--resume", "--quiet"]) == 0
     _assert_like_reference(run, ref)
 
