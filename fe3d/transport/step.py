@@ -21,7 +21,12 @@ from fe3d.errors import SolverError
 from fe3d.linalg import LinearSolver
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import split_rows
-from fe3d.transport.limiter import limited_target_fluxes
+from fe3d.transport.limiter import (
+    Correction,
+    TargetFluxes,
+    limited_target_fluxes,
+    linearised_correction,
+)
 from fe3d.transport.model import RateLaw, SpeciesModel
 from fe3d.transport.newton import Forcing, newton
 from fe3d.transport.newton_correction import CorrectionSolver
@@ -278,7 +283,8 @@ def _attempt(
     guess = old.copy()
     guess[fixed] = held.end[fixed]
     aim = None if target is None else Target(
-        target, ctx.systems.target_system(s, dt, target, held.active), load,
+        target, None if ctx.systems.scheme.target == "linearised" else
+        ctx.systems.target_system(s, dt, target, held.active), load,
         None if state.older is None else state.older[s.name])
     solve = _Solve(ctx, s, old, prev, dt, formula, user_rates, aim)
     new, r, other_loss, its = solve(step_system, rhs, guess)
@@ -313,11 +319,12 @@ def _attempt(
 
 @dataclass(frozen=True)
 class Target:
-    """The step flux correction aims at (T16b): its scheme's coefficients, its system, the
-    step's load [kg/s per node] and the level before (multistep schemes)."""
+    """The step flux correction aims at (T16b): its scheme's coefficients, its system (None
+    when the target is linearised at the low-order step), the step's load [kg/s per node]
+    and the level before (multistep schemes)."""
 
     scheme: StepCoefficients
-    system: StepSystem
+    system: StepSystem | None
     load: FloatArray
     older: FloatArray | None
 
@@ -349,20 +356,35 @@ class _Solve:
         # budget from the consistent residual of the full (unreduced) system (T9)
         r = sy.S @ out - rhs
         ops = self.ctx.systems.limiter(s)
+        counts = {"target_iterations": 0, "limiter_passes": 0, "limiter_row_sweeps": 0.0}
         if ops is not None and self.target is not None:  # T16b: the limited fluxes, explicit
-            high = self._target_step(guess, out)
-            fix = limited_target_fluxes(ops, out, high, old, dt, self.target.scheme.theta,
-                                        sy.fixed, reach=LIMITING_REACH,
-                                        upper=self.ctx.sources.upper_bound[s.name])
+            fix, its = self._correct(ops, self.target, sy, guess, out)
             self.blocked = max(self.blocked or 0.0, fix.blocked / max(sy.free.size, 1))
+            counts = {"target_iterations": its, "limiter_passes": fix.passes,
+                      "limiter_row_sweeps": fix.row_sweeps}
             self.limited_state = fix.sink_state  # the state decay and outflow acted on
             out = fix.corrected
             r -= fix.fluxes
+        logger.debug("%s: linear step, counts %s", s.name, counts,
+                     extra={"step_iterations": _last_iterations(sy.solver), **counts})
         return out, r, 0.0, 1
+
+    def _correct(self, ops: TargetFluxes, target: Target, sy: StepSystem, guess: FloatArray,
+                 low: FloatArray) -> tuple[Correction, int]:
+        """The low-order step ``low`` corrected towards the target (T16b), linearised at it
+        or solved, and the target solve's Krylov iterations (0 when linearised)."""
+        theta, upper = target.scheme.theta, self.ctx.sources.upper_bound[self.s.name]
+        if target.system is None:  # linearised at c_L: no second solve
+            return linearised_correction(ops, low, self.old, self.dt, theta, sy.fixed,
+                                         reach=LIMITING_REACH, upper=upper), 0
+        high = self._target_step(guess, low)
+        return limited_target_fluxes(ops, low, high, self.old, self.dt, theta, sy.fixed,
+                                     reach=LIMITING_REACH, upper=upper), \
+            _last_iterations(target.system.solver)
 
     def _target_step(self, guess: FloatArray, low: FloatArray) -> FloatArray:
         """The Galerkin step of the target scheme (T16b), started from the low-order one."""
-        assert self.target is not None
+        assert self.target is not None and self.target.system is not None
         formula, sy, load, prev = (self.target.scheme, self.target.system, self.target.load,
                               self.target.older)
         hist = formula.a1 * self.old + (0.0 if prev is None else formula.a2 * prev)
@@ -371,6 +393,12 @@ class _Solve:
         high[sy.free] = sy.solver.solve(rhs[sy.free] - sy.S_fD @ guess[sy.fixed],
                                         x0=low[sy.free])
         return high
+
+
+def _last_iterations(solver: LinearSolver | NearbySolver | None) -> int:
+    """Krylov iterations of the solver's last solve (0 for a direct solve or none)."""
+    its = getattr(solver, "iterations", None)
+    return int(its[-1]) if its else 0
 
 
 def _with_shock_capturing(
