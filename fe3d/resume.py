@@ -25,7 +25,7 @@ from pathlib import Path
 
 from fe3d.case.schema import Case
 from fe3d.errors import CaseError
-from fe3d.post.run_place import _process_alive  # one liveness test for run folders
+from fe3d.post.run_place import process_alive  # one liveness test for run folders
 from fe3d.transport.checkpoint import (
     CHECKPOINT_FOLDER,
     RESUME_KEY,
@@ -112,7 +112,7 @@ def claim_saved_run(case: Case, out_dir: Path) -> SavedRun:
         pid = path.name.rsplit("-", 1)[-1]
         if not (path / CHECKPOINT_FOLDER / "state.npz").is_file() or not pid.isdigit():
             continue
-        if int(pid) != os.getpid() and _process_alive(int(pid)):
+        if int(pid) != os.getpid() and process_alive(int(pid)):
             raise CaseError(RESUME_KEY, shown, f"a run of this folder is still going "
                             f"(process {pid}): stop it first")
         candidates.append(path)

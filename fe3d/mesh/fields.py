@@ -23,7 +23,7 @@ def read_vtk_cell_field(
 
     try:
         m = meshio.read(path)
-    except Exception as exc:  # meshio raises many types for unreadable files
+    except (Exception, SystemExit) as exc:  # meshio raises many types; some readers exit
         raise CaseError(key, str(path), f"cannot be read as a mesh ({type(exc).__name__})") \
             from None
     for name, blocks in m.cell_data.items():

@@ -35,8 +35,8 @@ from fe3d import __version__
 from fe3d.errors import CaseError
 from fe3d.post.files import write_text_atomic
 
-__all__ = ["MANIFEST", "RunState", "check_target", "move_into_place", "remove_stale_folders",
-           "work_folder", "write_manifest"]
+__all__ = ["MANIFEST", "RunState", "check_target", "move_into_place", "process_alive",
+           "remove_stale_folders", "work_folder", "write_manifest"]
 
 MANIFEST = "run.json"
 
@@ -82,7 +82,8 @@ def check_target(out_dir: Path, *, overwrite: bool, inputs: Sequence[Path] = ())
                         "whole")
 
 
-def _process_alive(pid: int) -> bool:
+def process_alive(pid: int) -> bool:
+    """Whether a process ``pid`` runs on this machine (the owner of a work folder)."""
     try:
         os.kill(pid, 0)
     except ProcessLookupError:
@@ -101,7 +102,7 @@ def remove_stale_folders(out_dir: Path) -> list[Path]:
     for kind in ("running", "replaced"):
         for path in out_dir.parent.glob(f".{out_dir.name}.{kind}-*"):
             pid = path.name.rsplit("-", 1)[-1]
-            if pid.isdigit() and int(pid) != os.getpid() and not _process_alive(int(pid)):
+            if pid.isdigit() and int(pid) != os.getpid() and not process_alive(int(pid)):
                 shutil.rmtree(path, ignore_errors=True)
                 removed.append(path)
     return removed
