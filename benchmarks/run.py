@@ -267,9 +267,10 @@ def one(h: float, dz: float, tol: float, folder: Path) -> dict[str, Any]:
     return out
 
 
-TARGET_TOLERANCES = (1e-6, 1e-8)
-"""Looser tolerances of the target (Crank–Nicolson) solve tried beside the default one, on
-the same states (prototype: what the limiter's own departure from the target allows)."""
+TARGET_TOLERANCES = (1e-3, 1e-6)
+"""Tolerances of the target (Crank–Nicolson) solve tried beside the default one
+(fe3d.transport.systems.TARGET_TOLERANCE), on the same states: what the limiter's own
+departure from the target allows."""
 
 
 def bounded_steps(site: Any, pattern: Any, *, m: Any, k: Any, q: Any, a: Any, theta_d: Any,
@@ -277,7 +278,8 @@ def bounded_steps(site: Any, pattern: Any, *, m: Any, k: Any, q: Any, a: Any, th
     """The default bounded step of a linear species (fe3d.transport.step._Solve), with
     fe3d's operators and in its order: the low-order backward Euler solve (lumped storage,
     discrete upwinding; systems.StepSystems.system with BACKWARD_EULER), the Galerkin
-    Crank–Nicolson target solve started from it (systems.StepSystems.target_system), then
+    Crank–Nicolson target solve started from it to TARGET_TOLERANCE
+    (systems.StepSystems.target_system), then
     limited_target_fluxes (up to LIMITER_PASSES passes and the sink share). Each part is
     timed and divided by the SpMV of the low-order step matrix on the free nodes measured
     beside it: the same CSR pattern and free rows as the SUPG step matrix S_ff, so the same
@@ -293,6 +295,7 @@ def bounded_steps(site: Any, pattern: Any, *, m: Any, k: Any, q: Any, a: Any, th
     from fe3d.transport.assembly import monotone_operators, transport_operators
     from fe3d.transport.limiter import LIMITER_PASSES, TargetFluxes, limited_target_fluxes
     from fe3d.transport.step import LIMITING_REACH
+    from fe3d.transport.systems import TARGET_TOLERANCE
 
     n = site.n_nodes
     t = time.perf_counter()  # once per species in fe3d (systems.StepSystems.operators)
@@ -321,11 +324,11 @@ def bounded_steps(site: Any, pattern: Any, *, m: Any, k: Any, q: Any, a: Any, th
         unit = spmv_unit()
         t = time.perf_counter()
         low_solver = LinearSolver(SL_ff, method="auto", tol=tol)
-        high_solver = LinearSolver(SH_ff, method="auto", tol=tol)
+        high_solver = LinearSolver(SH_ff, method="auto", tol=max(tol, TARGET_TOLERANCE))
         setup_spmv = (time.perf_counter() - t) / (0.5 * (unit + spmv_unit()))
         loose = {f"{x:g}": LinearSolver(SH_ff, method="auto", tol=x)
                  for x in TARGET_TOLERANCES}
-        no_window = LinearSolver(SH_ff, method="auto", tol=tol, window=0)
+        no_window = LinearSolver(SH_ff, method="auto", tol=max(tol, TARGET_TOLERANCE), window=0)
         # one Eisenstat product (two per BiCGSTAB iteration) in SpMV, same process
         g = low_solver._sgs()
         v = np.ones(SL_ff.shape[0])
@@ -545,11 +548,14 @@ BOUNDED_TARGET = 1.5
 def bounded_lines(rows: list[dict[str, Any]]) -> list[str]:
     """The bounded-step tables of the section (see :func:`bounded_steps`)."""
     from fe3d.transport.limiter import PASS_TOLERANCE
+    from fe3d.transport.systems import TARGET_TOLERANCE
 
+    names = [f"{x:g}" for x in TARGET_TOLERANCES]
     lines = ["", "### Bounded step (the default) against the SUPG step", "",
              "The default step of a linear species (fe3d/transport/step.py, `_Solve`): a "
              "low-order backward Euler solve (lumped storage, discrete upwinding), a Galerkin "
-             "Crank–Nicolson target solve started from it, then the flux limiter "
+             f"Crank–Nicolson target solve started from it (to {TARGET_TOLERANCE:g}), then "
+             "the flux limiter "
              f"(limited_target_fluxes: up to {rows[0]['bounded']['passes_max']} Zalesak passes, "
              f"stopping once every unused flux is below {PASS_TOLERANCE:g} of the largest, "
              "then the nodal sink share), with fe3d's operators and in step.py's order, the "
@@ -619,9 +625,10 @@ def bounded_lines(rows: list[dict[str, Any]]) -> list[str]:
               "itself keeps the result from the target). The start residual is "
               "‖b − A c_L‖/‖b‖ of the target system at the low-order field.", "",
               "| nodes | Courant | departure [C0] | target start residual at c_L | target its "
-              "at 1e-10 / 1e-8 / 1e-6 / 1e-10 no window | target solve [SpMV] at the same | "
-              "change at 1e-8 / 1e-6 [C0] | limiter [SpMV], 4 / 2 / 1 passes | change with "
-              "2 / 1 passes [C0] |", "|---|---|---|---|---|---|---|---|---|"]
+              f"at {TARGET_TOLERANCE:g} (default) / {' / '.join(names)} / default, no window | "
+              "target solve [SpMV] at the same | "
+              f"change at {' / '.join(names)} [C0] | limiter [SpMV], 4 / 2 / 1 passes | "
+              "change with 2 / 1 passes [C0] |", "|---|---|---|---|---|---|---|---|---|"]
     for r in rows:
         for c, b in r["bounded"].items():
             if not isinstance(b, dict):
@@ -629,13 +636,14 @@ def bounded_lines(rows: list[dict[str, Any]]) -> list[str]:
             la, half = b["last"], LINEAR_STEPS // 2
             its = [float(np.median(b["high_its"][half:]))] + [
                 float(np.median(b["its"][f"high_{k}_its"][half:]))
-                for k in ("1e-08", "1e-06", "no_window")]
+                for k in (*names, "no_window")]
+            solves = [la["high"]] + [la[f"high_{k}"] for k in (*names, "no_window")]
             lines.append(
                 f"| {r['nodes']:,} | {c} | {la['limiter_departure']:.2g} | "
                 f"{la['start_low_rel']:.1e} | {' / '.join(f'{x:g}' for x in its)} | "
-                f"{la['high']:.1f} / {la['high_1e-08']:.1f} / {la['high_1e-06']:.1f} / "
-                f"{la['high_no_window']:.1f} | {la['change_1e-08']:.1e} / "
-                f"{la['change_1e-06']:.1e} | {la['limiter']:.1f} / {la['limiter_2']:.1f} / "
+                f"{' / '.join(f'{x:.1f}' for x in solves)} | "
+                f"{' / '.join(format(la[f'change_{k}'], '.1e') for k in names)} | "
+                f"{la['limiter']:.1f} / {la['limiter_2']:.1f} / "
                 f"{la['limiter_1']:.1f} | {la['change_passes_2']:.1e} / "
                 f"{la['change_passes_1']:.1e} |")
     return lines

@@ -438,11 +438,13 @@ def _sink_share(indptr: IndexArray, cols: IndexArray, c: FloatArray, c_old: Floa
     for i in range(c.size):
         if not free[i] or change[i] == 0.0:
             continue
+        if change[i] < 0.0:  # lowering (decay, outflow): no neighbour is read
+            beta[i] = min(1.0, -max(c[i], 0.0) / change[i])
+            continue
         hi = max(c[i], cap[i])
         for p in range(indptr[i], indptr[i + 1]):
             hi = max(hi, c[cols[p]], c_old[cols[p]])
-        room = (hi - c[i]) if change[i] > 0.0 else -max(c[i], 0.0)
-        beta[i] = min(1.0, room / change[i])  # room = +inf: the whole change
+        beta[i] = min(1.0, (hi - c[i]) / change[i])  # hi = +inf: the whole change
     return beta
 
 
