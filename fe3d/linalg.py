@@ -58,8 +58,9 @@ below the target (docs/performance.md). The flow stage (fe3d/flow/solve.py) pass
 
 class SpdPreconditioner:
     """One AMG hierarchy (:func:`solve_spd`'s) kept for later solves with matrices of the
-    same size: the drain passes of one flow solve, or ensemble members that share a mesh
-    and its fixed-head nodes (pass one object to every ``fe3d.flow.solve_flow`` call).
+    same size: the drain passes of one flow solve, the drawdown's solve without the wells,
+    or ensemble members that share a mesh and its fixed-head nodes (pass one object to every
+    ``fe3d.flow.solve_flow`` call).
 
     The hierarchy is built from the first matrix it is asked for and reused for any later
     matrix of the same shape. One V-cycle of a fixed hierarchy is a fixed symmetric positive

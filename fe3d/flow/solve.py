@@ -143,8 +143,9 @@ def solve_flow(
     preconditioner
         An AMG hierarchy to build once and reuse (:class:`fe3d.linalg.SpdPreconditioner`):
         ensemble members on one mesh with the same fixed-head faces pass the same object to
-        every call and pay the AMG set-up once. Without it each call (and each drain pass)
-        builds its own.
+        every call and pay the AMG set-up once, and so does the drawdown's second solve
+        (:func:`fe3d.flow.drawdown.well_drawdown`). Without it each call (and each drain
+        pass) builds its own.
 
     Raises
     ------

@@ -55,3 +55,31 @@ def test_a_new_shape_builds_a_new_hierarchy() -> None:
         A = _laplacian(m)
         solve_spd(A, np.ones(A.shape[0]), tol=TOL, preconditioner=kept)
     assert kept.builds == 2
+
+
+def test_level_by_level_hierarchy_is_pyamgs_with_one_threshold(monkeypatch) -> None:
+    """With the finest level's threshold set to the others', the hierarchy built level by
+    level (fe3d.linalg._amg_hierarchy) is pyamg's own ``ruge_stuben_solver`` with the same
+    options (reference library: pyamg; Bell, Olson & Schroder 2022, PyAMG: Algebraic
+    Multigrid Solvers in Python, JOSS 7(72); citation from memory). Same operations in the same order, so the level matrices agree to
+    round-off (1e-14 relative). With the default threshold the finest level keeps fewer
+    strong connections, so its first coarse level is no larger."""
+    import pyamg
+
+    import fe3d.linalg as linalg
+
+    A = _laplacian(20) + sp.diags(np.linspace(0.0, 1.0, 20**3))  # no two rows alike
+    A = A.tocsr()
+    ref = pyamg.ruge_stuben_solver(A, strength=("classical", {"theta": linalg.STRENGTH,
+                                                              "norm": "min"}),
+                                   CF=("RS", {"second_pass": True}),
+                                   max_coarse=linalg.COARSEST, coarse_solver="pinv")
+    monkeypatch.setattr(linalg, "FIRST_STRENGTH", linalg.STRENGTH)
+    mine = linalg._amg_hierarchy(A)
+    assert len(mine.levels) == len(ref.levels) > 2
+    for ours, theirs in zip(mine.levels, ref.levels, strict=True):
+        assert ours.A.shape == theirs.A.shape
+        assert abs(ours.A - theirs.A).max() <= 1e-14 * abs(theirs.A).max()
+    monkeypatch.undo()
+    default = linalg._amg_hierarchy(A)
+    assert default.levels[1].A.shape[0] <= mine.levels[1].A.shape[0]
