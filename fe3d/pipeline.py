@@ -15,6 +15,7 @@ from fe3d.errors import CaseError
 from fe3d.flow.drawdown import well_drawdown
 from fe3d.flow.paths import travel_paths
 from fe3d.flow.solve import FlowField, solve_flow
+from fe3d.linalg import SpdPreconditioner
 from fe3d.mesh.build import build_mesh, obtain_mesh
 from fe3d.mesh.corridor import Corridor, site_corridor
 from fe3d.mesh.site_mesh import SiteMesh
@@ -241,11 +242,15 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
         site, out_dir, formats=("msh", "vtu") if case.output.vtu_series else ())]
     tell("flow", 0, 1)
     flow_inputs = FlowInputs.of(case)
-    flow = solve_flow(site, flow_inputs, base_dir=base_dir)
+    kept = SpdPreconditioner()  # the flow's AMG hierarchy, for the drawdown's solve
+    flow = solve_flow(site, flow_inputs, base_dir=base_dir, preconditioner=kept)
     if saved is not None:
         check_resumable(saved.checkpoint, site, flow)
-    # the drawdown of the wells: one more flow solve, skipped by compact runs (ensembles)
-    drawdown = None if compact else well_drawdown(site, flow_inputs, flow, base_dir=base_dir)
+    # the drawdown of the wells: one more flow solve (the same matrix, so the same
+    # hierarchy), skipped by compact runs (ensembles)
+    drawdown = None if compact else well_drawdown(site, flow_inputs, flow, base_dir=base_dir,
+                                                  preconditioner=kept)
+    del kept  # the hierarchy is not held through the transport
     tell("travel paths", 0, 1)
     paths = travel_paths(site, flow, TravelInputs.of(case))
     files += write_flow_outputs(out_dir, case, site, flow, paths, figures=not compact,
