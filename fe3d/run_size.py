@@ -4,8 +4,9 @@ Estimates, not promises: the mesh size from the target cell sizes (the plume cor
 to it), the steps from ``time.step`` and the breakpoints (without ``time.step`` the flow
 sets them), the memory from the whole-run peak measured on this machine (docs/performance.md:
 about 350 MiB plus 4.1 KiB per node for one species) and the written output from the sizes
-of the files a run writes. :func:`check_fits` refuses, with the numbers, a run whose memory
-exceeds the machine's or whose output exceeds the free disk.
+of the files a run writes, with the checkpoint it keeps on disk while it runs.
+:func:`check_fits` refuses, with the numbers, a run whose memory exceeds the machine's or
+whose output exceeds the free disk.
 """
 
 from __future__ import annotations
@@ -38,6 +39,15 @@ step systems (an estimate from the arrays held per species, not measured separat
 BYTES_PER_STEP = 120
 """Memory per planned fixed step [bytes]: the step queue entry and one history row per
 observation point and species (8 bytes each) come on top of this."""
+
+CHECKPOINT_ARRAYS = 10
+"""Nodal float64 arrays per species in a checkpoint's state (fields, held nodes, older level,
+up to three levels of the error estimate, the last budget's two, the three fields over the
+run; fe3d.transport.checkpoint): on disk while the run goes, removed when it ends."""
+
+OUTPUT_ARRAYS = 4
+"""Nodal float64 arrays per species in each output time a checkpoint keeps (the field and
+the three fields over the run)."""
 
 FORCE_KEY = "--force"
 """What a refused run is named by: the command-line option that runs it anyway."""
@@ -111,6 +121,7 @@ def estimate_run(case: Case) -> RunSize:
               + (steps or 0) * per_step)
     mesh_once = nodes * 24 + cells * (16 + 3 * 3 * 4)  # points, tetrahedra, flow arrays
     output = mesh_once + outputs * nodes * n_species * (4 + 8)  # series, run-wide fields
+    output += nodes * n_species * 8 * (CHECKPOINT_ARRAYS + OUTPUT_ARRAYS * outputs)
     return RunSize(nodes=nodes, cells=cells, steps=steps, output_times=outputs,
                    memory=memory, output=output)
 

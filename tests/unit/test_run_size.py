@@ -51,3 +51,35 @@ def test_a_run_that_cannot_fit_is_refused_with_its_numbers(tmp_path):
     assert err.key_path == "--force"
     assert f"{size.steps:,} steps" in err.allowed and "24,576 MiB" in err.allowed
     check_fits(estimate_run(load_case(TINY)), tmp_path, memory=24 * 1024 * MiB)  # fits
+
+
+def test_the_checkpoint_estimate_covers_a_real_checkpoint(tmp_path):
+    """A tiny-case run stopped after 12 steps (past its first output time) leaves a
+    checkpoint whose files are no larger than the estimate's share for them at the real node
+    count: CHECKPOINT_ARRAYS plus OUTPUT_ARRAYS per output time kept, float64 per node and
+    species (the ``.npz`` headers are a few kB: the budget below allows 16 kB)."""
+    from fe3d.case.parts import TransportInputs
+    from fe3d.pipeline import mesh_and_flow
+    from fe3d.run_size import CHECKPOINT_ARRAYS, OUTPUT_ARRAYS
+    from fe3d.transport.checkpoint import Checkpointer
+    from fe3d.transport.run import run_transport
+
+    case = load_case(TINY)
+    site, flow = mesh_and_flow(case)
+    keeper = Checkpointer(tmp_path, case="tiny")
+    count = [0]
+
+    def stop(_t: float, _end: float) -> None:
+        count[0] += 1
+        if count[0] == 12:
+            raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        for k, snap in enumerate(run_transport(site, flow, TransportInputs.of(case),
+                                               checkpoints=keeper, on_step=stop)):
+            keeper.add_output(k, snap)
+    kept = len(list(tmp_path.glob("output_*.npz")))
+    assert kept >= 2  # t = 0 and the first output time
+    written = sum(p.stat().st_size for p in tmp_path.iterdir())
+    budget = site.n_nodes * len(case.species) * 8 * (CHECKPOINT_ARRAYS + OUTPUT_ARRAYS * kept)
+    assert written <= budget + 16_000, (written, budget)
