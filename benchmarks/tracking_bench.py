@@ -12,6 +12,9 @@ load-independent counts (cells, particles, cell crossings, recorded points):
 - building the tracker;
 - tracking forward particles from the source (particles per second, cell crossings each);
 - ``travel_paths`` as a run calls it (sources forward, the well backward).
+- memory (issue 16 part 5): the bytes per cell of the arrays the tracker holds of its own
+  (not views of the mesh or velocity), and the rise of the resident set size during one
+  ``travel_paths`` call (read every 3 ms; load-independent).
 
 Target (issue 16): travel paths ≤ 10 % of the transport time (about 6.4 s for 100 linear
 steps at 223 k nodes). Each size runs in its own process. ``--write`` appends the table to
@@ -124,7 +127,14 @@ def one(h: float, dz: float) -> dict[str, Any]:
     row["crossings_per_path"] = float(np.mean([getattr(p, "cells_crossed", -1) for p in lines]))
     row["ends"] = sorted({p.end for p in lines})
     row["mean_time_d"] = float(np.mean([p.times[-1] for p in lines])) / 86400.0
+    own = [a for a in vars(tracker).values() if isinstance(a, np.ndarray)
+           and not any(np.shares_memory(a, b) for b in (site.points, site.cells, velocity))]
+    row["tracker_bytes_per_cell"] = sum(a.nbytes for a in own) / site.n_cells
+    del tracker, lines
     inputs = TravelInputs.of(case)
+    sampler = _PeakSampler()
+    travel_paths(site, flow, inputs)
+    row["travel_paths_peak_mib"] = sampler.stop()
     clock = []
     for _ in range(3):  # the first call here (mesh_and_flow's corridor pass made one before),
         t = time.perf_counter()  # then the least of three: the load only ever adds time
@@ -136,6 +146,34 @@ def one(h: float, dz: float) -> dict[str, Any]:
     row["travel_paths_crossings"] = sum(getattr(p, "cells_crossed", 0) for p in every)
     row["travel_paths_points"] = sum(p.times.size for p in every)
     return row
+
+
+class _PeakSampler:
+    """Largest rise of the resident set size [MiB] over its value at the start, read every
+    3 ms by a thread until :meth:`stop`."""
+
+    def __init__(self) -> None:
+        import threading
+
+        self._start = self._rss()
+        self._peak = self._start
+        self._done = threading.Event()
+        self._thread = threading.Thread(target=self._loop, daemon=True)
+        self._thread.start()
+
+    @staticmethod
+    def _rss() -> int:
+        return int(Path("/proc/self/statm").read_text().split()[1]) * 4096
+
+    def _loop(self) -> None:
+        while not self._done.is_set():
+            self._peak = max(self._peak, self._rss())
+            time.sleep(0.003)
+
+    def stop(self) -> float:
+        self._done.set()
+        self._thread.join()
+        return (max(self._peak, self._rss()) - self._start) / 2**20
 
 
 def kuhn_box(n: int) -> tuple[Any, Any]:
@@ -175,13 +213,16 @@ def write_section(rows: list[dict[str, Any]]) -> None:
     lines = ["", "## Particle tracking (benchmarks/tracking_bench.py)", "",
              "| nodes | cells | adjacency [s] | np.unique adjacency [s] | tracker build [s] "
              "| 8 particles [s] | crossings / particle | travel_paths first / least [s] "
-             "| its particles, crossings | load |",
-             "|---|---|---|---|---|---|---|---|---|---|"]
+             "| its particles, crossings | load | tracker bytes / cell "
+             "| travel_paths rise [MiB] |",
+             "|---|---|---|---|---|---|---|---|---|---|---|---|"]
     lines += [f"| {r['nodes']:,} | {r['cells']:,} | {r['adjacency_s']:.3f} "
               f"| {r['adjacency_unique_s']:.1f} | {r['build_s']:.2f} | {r['track_s']:.4f} "
               f"| {r['crossings_per_path']:.0f} | {r['travel_paths_first_s']:.2f} / "
               f"{r['travel_paths_s']:.2f} | {r['travel_paths_particles']}, "
-              f"{r['travel_paths_crossings']:,} | {r['load']:.1f} |" for r in rows]
+              f"{r['travel_paths_crossings']:,} | {r['load']:.1f} "
+              f"| {r['tracker_bytes_per_cell']:.1f} | {r['travel_paths_peak_mib']:.0f} |"
+              for r in rows]
     from perf_doc import replace_section
 
     replace_section("## Particle tracking (benchmarks/tracking_bench.py)", lines[1:])
