@@ -25,7 +25,7 @@ all from memory. Compiled (numba) on the CSR arrays.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numba
 import numpy as np
@@ -180,7 +180,7 @@ def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
            low: FloatArray, low_t: FloatArray, c_low: FloatArray, rate: FloatArray,
            c_mean: FloatArray, cap: FloatArray, lumped: FloatArray, dt: float,
            held: np.ndarray, blocked: np.ndarray, passes: int, stop: float, floor: float,
-           c: FloatArray, total: FloatArray) -> tuple[int, int]:
+           c: FloatArray, total: FloatArray, work: FloatArray) -> tuple[int, int]:
     """Up to ``passes`` passes of Zalesak's limiter over the raw fluxes towards the target,
     each over the part of every flux not yet used and against the corrected field ``c``
     (updated in place, starting as c_L), the net limited flux per node added to ``total``.
@@ -190,9 +190,9 @@ def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
     sweep. After each pass the rows whose unused fluxes could move them by no more than
     ``floor`` are closed (:func:`_still_open`), so later passes sweep only the rows with
     work left. Returns the passes used and the rows swept over all passes."""
-    n = lumped.size
-    f = np.empty(cols.size)
-    r, sums, ranges = np.empty(2 * n), np.empty(2 * n), np.empty(2 * n)
+    n, nnz = lumped.size, cols.size
+    f = work[:nnz]
+    r, sums, ranges = work[nnz:nnz + 2 * n], work[nnz + 2 * n:nnz + 4 * n], work[nnz + 4 * n:]
     _first_sweep(indptr, cols, m, d, low, low_t, c_low, rate, c_mean, cap, f, sums, ranges)
     rows = np.arange(n).astype(indptr.dtype)
     used, swept = 1, n
@@ -222,6 +222,16 @@ class TargetFluxes:
     lumped: FloatArray
     sink: FloatArray
     exchange: FloatArray  # the diagonal of D [m³/s]: a node's exchange with its neighbours
+    work: FloatArray = field(repr=False, compare=False, default_factory=lambda: np.empty(0))
+    """Scratch space of the passes (one value per CSR entry, then 3 × 2 per node), reused
+    by every call so that no step allocates (and first touches) a flux array; its contents
+    mean nothing between calls."""
+
+    def scratch(self) -> FloatArray:
+        """The passes' scratch space (:attr:`work`), allocated here when the record was
+        built without it."""
+        need = self.mass.indices.size + 6 * self.lumped.size
+        return self.work if self.work.size == need else np.empty(need)
 
     @classmethod
     def of(cls, mass: sp.csr_matrix, galerkin: sp.csr_matrix,
@@ -240,7 +250,8 @@ class TargetFluxes:
                    low_order_transposed=np.ascontiguousarray(lt.data),
                    lumped=np.asarray(mass.sum(axis=1)).ravel(),
                    sink=np.asarray(low_order.sum(axis=0)).ravel(),
-                   exchange=diffusion.diagonal())
+                   exchange=diffusion.diagonal(),
+                   work=np.empty(low_order.indices.size + 6 * low_order.shape[0]))
 
 
 @dataclass(frozen=True)
@@ -403,7 +414,8 @@ def _correct(ops: TargetFluxes, c_low: FloatArray, target: TargetStep, c_old: Fl
     used, swept = _limit(indptr, cols, ops.mass.data, ops.diffusion.data,
                          ops.low_order.data, ops.low_order_transposed, c_low, rate, c_mean,
                          cap, ops.lumped, float(dt), held, blocked, passes,
-                         PASS_TOLERANCE * scale, CLOSE_TOLERANCE * scale, c, total)
+                         PASS_TOLERANCE * scale, CLOSE_TOLERANCE * scale, c, total,
+                         ops.scratch())
     change, a = _sink_change(ops, c, c_low, c_old, dt, theta)
     share = _sink_share(indptr, cols, c, c_old, change,
                         free & ~blocked, cap)
