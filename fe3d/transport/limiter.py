@@ -33,9 +33,9 @@ import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
 
-__all__ = ["LIMITER_PASSES", "MASS_SWEEPS", "PASS_TOLERANCE", "Correction", "TargetFluxes",
-           "TargetStep", "limited_target_fluxes", "linearised_correction", "linearised_target",
-           "raw_flux_sums"]
+__all__ = ["CLOSE_TOLERANCE", "LIMITER_PASSES", "MASS_SWEEPS", "PASS_TOLERANCE", "Correction",
+           "TargetFluxes", "TargetStep", "limited_target_fluxes", "linearised_correction",
+           "linearised_target", "raw_flux_sums"]
 
 LIMITER_PASSES = 4
 """Passes of Zalesak's limiter over the fluxes not yet used (iterative flux correction)."""
