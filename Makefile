@@ -40,6 +40,7 @@ bench: $(STAMP)
 	$(BIN)/python benchmarks/newton_bench.py
 	$(BIN)/python benchmarks/checkpoint_bench.py
 	$(BIN)/python benchmarks/memory_bench.py
+	$(BIN)/python benchmarks/script_vs_run.py
 	$(BIN)/python benchmarks/corridor_vs_uniform.py --length 1000 --half-width 400
 
 clean:
