@@ -36,10 +36,10 @@ TARGET_TOLERANCE = 1e-4
 budget closes on the low-order step's residual and the antisymmetric fluxes whatever the
 target's accuracy, and the limiter resolves no finer than its pass rule (PASS_TOLERANCE,
 1e-3 of the fields' scale) and already keeps the result 0.0025–1.2 C0 from the target.
-Measured at 1 M nodes, the limited field changed by at most 2e-6 C0 between 1e-10 and 1e-6,
-about linearly in the tolerance (so about 2e-4 C0 at 1e-4, below the pass rule); at 223 k
-nodes 1e-4 saves one of two iterations at Courant 1 and two of five at Courant 10
-(docs/performance.md)."""
+Measured through the engine at 223 k nodes (benchmarks/step_cost.py's box, 12 steps carried
+on): the fields at 1e-4 and 1e-6 differ by at most 1.1e-4 C0 at Courant 1 and 5.1e-4 C0 at
+Courant 10, below the pass rule, and 1e-4 saves one of two target iterations at Courant 1
+and two of five at Courant 10 (docs/performance.md)."""
 
 MAX_CACHED = 3
 """Step systems (matrix + factor or preconditioner) kept per species: a few step lengths."""
