@@ -29,6 +29,7 @@ and a Markdown table; docs/performance.md quotes the table by hand.
 from __future__ import annotations
 
 import json
+import logging
 import os
 import sys
 import tempfile
@@ -55,6 +56,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "benchmarks"))
 
 from run import C0, DAY, SOURCE_BOX, site_case  # noqa: E402
+from step_cost import _Counts  # noqa: E402
 
 from fe3d.case.builder import ObservationPoint, Source, with_changes  # noqa: E402
 from fe3d.case.parts import FlowInputs, TransportInputs, TravelInputs  # noqa: E402
@@ -299,13 +301,25 @@ def whole_run(case: Any) -> tuple[dict[str, Any], Any]:
 
 
 def fe3d_transport(case: Any, site: Any, flow: Any) -> dict[str, Any]:
-    """fe3d's transport alone (no writer): wall and CPU, observation histories, final field."""
-    wall, cpu = time.perf_counter(), time.process_time()
-    snaps = list(run_transport(site, flow, TransportInputs.of(case)))
-    wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+    """fe3d's transport alone (no writer): wall and CPU, Krylov iterations per step (step
+    solve + target solve, from the step's debug record), observation histories, final
+    field."""
+    counts = _Counts()
+    step_log = logging.getLogger("fe3d.transport.step")
+    step_log.addHandler(counts)
+    level = step_log.level
+    step_log.setLevel(logging.DEBUG)
+    try:
+        wall, cpu = time.perf_counter(), time.process_time()
+        snaps = list(run_transport(site, flow, TransportInputs.of(case)))
+        wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+    finally:
+        step_log.removeHandler(counts)
+        step_log.setLevel(level)
     last = snaps[-1]
-    return {"wall_s": wall, "cpu_s": cpu, "history": last.history["solvent"],
-            "final": last.concentration["solvent"]}
+    its = [int(r["step_iterations"] + r["target_iterations"]) for r in counts.records]
+    return {"wall_s": wall, "cpu_s": cpu, "krylov_iterations": its,
+            "history": last.history["solvent"], "final": last.concentration["solvent"]}
 
 
 def _travel_paths_alone(case: Any, site: Any, flow: Any) -> dict[str, float]:
@@ -343,8 +357,9 @@ def measure(h: float, dz: float, step_days: float) -> dict[str, Any]:
         "nodes": site.n_nodes, "cells": site.n_cells,
         "steps": STEPS, "step_d": step_days, "largest_courant": script.largest_courant,
         "held_nodes": script.held_nodes, "run": run, "travel_paths_alone": paths,
-        "transport_alone": {k: bounded[k] for k in ("wall_s", "cpu_s")},
-        "supg_transport_alone": {k: fe3d_supg[k] for k in ("wall_s", "cpu_s")},
+        "transport_alone": {k: bounded[k] for k in ("wall_s", "cpu_s", "krylov_iterations")},
+        "supg_transport_alone": {k: fe3d_supg[k] for k in ("wall_s", "cpu_s",
+                                                          "krylov_iterations")},
         "script": {"wall_s": script.wall_s, "cpu_s": script.cpu_s,
                    "assembly_s": script.assembly_s, "assembly_cpu_s": script.assembly_cpu_s,
                    "bicgstab_iterations": script.iterations},
@@ -401,7 +416,10 @@ def table(r: dict[str, Any]) -> list[str]:
         *[f"| {name} | {w:.2f} | {c:.2f} |" for name, w, c in ratio], "",
         f"Script: BiCGSTAB iterations per step {its.min()}–{its.max()} (median "
         f"{np.median(its):.0f}; each 2 SpMV and 2 diagonal scalings), relative tolerance "
-        f"{r['tolerance']:g} (the case's solver.tolerance).",
+        f"{r['tolerance']:g} (the case's solver.tolerance). fe3d alone, Krylov iterations "
+        f"per step (step + target solve; each 2 products with the preconditioned operator), "
+        f"median: default {np.median(alone['krylov_iterations']):.0f}, SUPG "
+        f"{np.median(r['supg_transport_alone']['krylov_iterations']):.0f}.",
         f"Match, largest |difference| / C0: script vs fe3d SUPG {ms['points_over_c0']:.1e} at "
         f"the observation points over every step, {ms['nodes_over_c0']:.1e} over every node "
         f"at the end; script vs fe3d default (bounded) {mb['points_over_c0']:.1e} and "
