@@ -9,11 +9,11 @@ observation points down the flow and a linear species (Kd sorption, first-order 
 1. ``fe3d.pipeline.run_case`` as ``fe3d run`` runs it (default settings but what the case
    sets; mesh refined along the plume corridor, flow, travel paths, transport, output files,
    figures and report), wall and CPU time per stage read from its progress callback;
-2. the same mesh and steady flow again (``fe3d.pipeline.mesh_and_flow``, same node count
-   checked) and, on them, fe3d's travel paths alone and fe3d's transport alone
-   (``run_transport``, no writer) with the default bounded scheme and with the SUPG option
-   (``solver.monotone = false``, backward Euler), so the stages can be split from the output
-   work the run interleaves with them;
+2. the run's own mesh, read back from the ``mesh.npz`` it wrote (two processes meshing the
+   quick case here gave 42,560 and 42,581 nodes), its steady flow solved again, and on them fe3d's travel
+   paths alone and fe3d's transport alone (``run_transport``, no writer) with the default
+   bounded scheme and with the SUPG option (``solver.monotone = false``, backward Euler), so
+   the stages can be split from the output work the run interleaves with them;
 3. the straightforward script (:func:`script_transport`): what a competent modeller writes
    with scikit-fem and scipy on that mesh and flow, timed from the first form assembled to
    the last step solved, no outputs.
@@ -22,7 +22,8 @@ The script's answers are checked against fe3d's SUPG run (the same equations, th
 T0-T8): at the observation points over every step and over every node at the end.
 
 Usage: ``python benchmarks/script_vs_run.py [--quick | --size h,dz]`` (``--quick``: plan
-cell 6 m, layer cell 2 m, about 20 k nodes; default about 223 k nodes). Prints one JSON line
+cell 6 m, layer cell 2 m, about 43 k nodes; default about 223 k nodes; the run folder goes
+in ``$SCRIPT_VS_RUN_TMP`` when set). Prints one JSON line
 and a Markdown table; docs/performance.md quotes the table by hand.
 """
 
