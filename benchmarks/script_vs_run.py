@@ -10,10 +10,11 @@ observation points down the flow and a linear species (Kd sorption, first-order 
    sets; mesh refined along the plume corridor, flow, travel paths, transport, output files,
    figures and report), wall and CPU time per stage read from its progress callback;
 2. the run's own mesh, read back from the ``mesh.npz`` it wrote (two processes meshing the
-   quick case here gave 42,560 and 42,581 nodes), its steady flow solved again, and on them fe3d's travel
-   paths alone and fe3d's transport alone (``run_transport``, no writer) with the default
-   bounded scheme and with the SUPG option (``solver.monotone = false``, backward Euler), so
-   the stages can be split from the output work the run interleaves with them;
+   quick case here gave 42,560 and 42,581 nodes), its steady flow solved again, and on them
+   fe3d's travel paths alone and fe3d's transport alone (``run_transport``, no writer) with
+   the default bounded scheme and with the SUPG option (``solver.monotone = false``,
+   backward Euler), so the stages can be split from the output work the run interleaves
+   with them;
 3. the straightforward script (:func:`script_transport`): what a competent modeller writes
    with scikit-fem and scipy on that mesh and flow, timed from the first form assembled to
    the last step solved, no outputs.
@@ -23,8 +24,8 @@ T0-T8): at the observation points over every step and over every node at the end
 
 Usage: ``python benchmarks/script_vs_run.py [--quick | --size h,dz]`` (``--quick``: plan
 cell 6 m, layer cell 2 m, about 43 k nodes; default about 223 k nodes; the run folder goes
-in ``$SCRIPT_VS_RUN_TMP`` when set). Prints one JSON line
-and a Markdown table; docs/performance.md quotes the table by hand.
+in ``$SCRIPT_VS_RUN_TMP`` when set). Prints one JSON line and a Markdown table;
+docs/performance.md quotes the table by hand.
 """
 
 from __future__ import annotations
