@@ -17,6 +17,8 @@ import shutil
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
+
 from fe3d.case.schema import Case
 from fe3d.errors import CaseError
 
@@ -68,6 +70,11 @@ def estimate_mesh_size(case: Case) -> tuple[int, int]:
     if fine is not None:
         r = case.mesh.fine_zone_radius + 2 * h
         n_tri += len(feature_points(case)) * 2.3 * math.pi * r**2 / fine**2 / 4
+    for src in case.sources:  # the cells across each source box (theory.md M6)
+        if src.shape == "box" and src.x is not None and src.y is not None:
+            sides = (src.x[1] - src.x[0], src.y[1] - src.y[0])
+            n_tri += _zone_triangles(math.hypot(*sides) / 2,
+                                     min(sides) / case.mesh.cells_across_source, h)
     thick = case.z_top - case.z_bottom_min
     n_lay = max(len(case.layers), math.ceil(thick / case.mesh.layer_cell_thickness))
     return int(n_tri / 2 * (n_lay + 1)), int(3 * n_tri * n_lay)
@@ -124,6 +131,19 @@ def estimate_run(case: Case) -> RunSize:
     output += nodes * n_species * 8 * (CHECKPOINT_ARRAYS + OUTPUT_ARRAYS * outputs)
     return RunSize(nodes=nodes, cells=cells, steps=steps, output_times=outputs,
                    memory=memory, output=output)
+
+
+def _zone_triangles(radius: float, size: float, background: float) -> float:
+    """Plan triangles of a refinement zone: cells of ``size`` [m] within ``radius`` [m],
+    growing linearly to ``background`` over four background sizes (fe3d.mesh.build's
+    RefineZone), counted as 2.3 triangles per size² (an equilateral mesh's density)."""
+    if size >= background:
+        return 0.0
+    inner = 2.3 * math.pi * radius**2 / size**2
+    rho = np.linspace(0.0, 4.0 * background, 201)
+    local = size + rho * (background - size) / (4.0 * background)
+    ring = 2.3 * 2.0 * math.pi * (radius + rho) * (1.0 / local**2 - 1.0 / background**2)
+    return inner + float(np.sum((ring[1:] + ring[:-1]) / 2.0 * np.diff(rho)))
 
 
 def machine_memory() -> int:

@@ -381,7 +381,8 @@ class TimeControl(Section):
 
 class MeshControl(Section):
     """Target cell sizes [m]: plan size away from features, near features, and layer thickness;
-    the plume corridor (on by default): its grid Péclet target and the node budget."""
+    the plume corridor (on by default): its grid Péclet target and the node budget; the plan
+    cells across a source box."""
 
     cell_size: PositiveLength
     fine_cell_size: PositiveLength | None = None
@@ -391,6 +392,8 @@ class MeshControl(Section):
     corridor: bool = True  # refine along the sources' pathlines (docs/theory.md M1-M4)
     corridor_peclet: Annotated[float, Field(gt=0, le=100)] = 2.0  # grid Péclet h/α_L target
     max_nodes: Annotated[int, Field(ge=1000)] = 1_500_000  # node budget of the corridor
+    # plan cells across the shorter plan side of a source box (docs/theory.md M6)
+    cells_across_source: Annotated[float, Field(gt=0, le=50)] = 4.0
 
     @property
     def sample_spacing(self) -> float:

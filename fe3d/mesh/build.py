@@ -354,6 +354,7 @@ def _refine_zones(case: Case, corridor: Corridor | None) -> list[RefineZone]:
     if mc.fine_cell_size is not None and feats:
         zones.append(RefineZone(points=feats, size=mc.fine_cell_size,
                                 radius=mc.fine_zone_radius))
+    zones += _source_box_zones(case)
     for line in case.refinement_lines:
         zones.append(RefineZone(points=_sample_polyline(
             [(float(x), float(y)) for x, y in line.points], 0.5 * line.cell_size),
@@ -361,6 +362,23 @@ def _refine_zones(case: Case, corridor: Corridor | None) -> list[RefineZone]:
     if corridor is not None:  # gmsh takes the smallest size: hand-set sizes stay where finer
         zones += [RefineZone(points=_sample_polyline(points, 0.5 * size), size=size,
                              radius=radius) for points, size, radius in corridor_zones(corridor)]
+    return zones
+
+
+def _source_box_zones(case: Case) -> list[RefineZone]:
+    """One zone per source box (theory.md M6): plan cells of its shorter plan side divided
+    by ``mesh.cells_across_source`` along its outline and over its inside, so that a box's
+    load or held value reaches at most a cell beyond the box and that cell is a fraction
+    of the box."""
+    zones = []
+    for src in case.sources:
+        if src.shape != "box" or src.x is None or src.y is None:
+            continue
+        (x0, x1), (y0, y1) = src.x, src.y
+        size = min(x1 - x0, y1 - y0) / case.mesh.cells_across_source
+        outline = [(x0, y0), (x1, y0), (x1, y1), (x0, y1), (x0, y0)]
+        zones.append(RefineZone(points=_sample_polyline(outline, 0.5 * size), size=size,
+                                radius=0.5 * min(x1 - x0, y1 - y0)))
     return zones
 
 

@@ -27,7 +27,7 @@ if TYPE_CHECKING:
 __all__ = ["faces_from_outline", "load_cached", "mesh_inputs_hash", "read_site_mesh",
            "save_cached"]
 
-MESH_FORMAT = 5  # bump when the mesher's output for the same inputs changes
+MESH_FORMAT = 6  # bump when the mesher's output for the same inputs changes
 
 
 def read_site_mesh(path: Path, *, unit_tag: str | None = None, key: str = "mesh file",
@@ -217,18 +217,23 @@ def save_cached(site: SiteMesh, folder: Path, digest: str) -> Path:
         msg = "a mesh without a mesher report (assembled from bare arrays) is not cached"
         raise MeshError(msg)
     folder.mkdir(parents=True, exist_ok=True)
-    arrays = {"points": site.points, "cells": site.cells, "cell_layer": site.cell_layer,
-              "mesh_inputs_sha256": np.array(digest)}
-    arrays |= {f"face:{k}": v for k, v in site.faces.items()}
+    arrays = {"points": site.points, "cells": _narrow(site.cells),
+              "cell_layer": _narrow(site.cell_layer), "mesh_inputs_sha256": np.array(digest)}
+    arrays |= {f"face:{k}": _narrow(v) for k, v in site.faces.items()}
     plan = report.plan
     if plan is not None:
-        arrays |= {"plan:xy": plan.xy, "plan:tri": plan.tri, "plan:surfaces": plan.surfaces}
+        arrays |= {"plan:xy": plan.xy, "plan:tri": _narrow(plan.tri),
+                   "plan:surfaces": plan.surfaces}
     tmp = folder / "mesh.npz.part"
     with tmp.open("wb") as fh:
         np.savez(fh, **arrays)
     tmp.replace(folder / "mesh.npz")
     meta = {"mesh_inputs_sha256": digest, "units": list(site.layer_names),
             "faces": list(site.faces),
+            "index_types": {"cells": str(site.cells.dtype),
+                            "cell_layer": str(site.cell_layer.dtype),
+                            "faces": {k: str(v.dtype) for k, v in site.faces.items()},
+                            "plan_tri": None if plan is None else str(plan.tri.dtype)},
             "quality": report.quality.as_dict(),
             "surface_rules": [r.as_dict() for r in report.surface_rules],
             "lens_fit": [n.as_dict() for n in report.lens_fits],
@@ -241,6 +246,25 @@ def save_cached(site: SiteMesh, folder: Path, digest: str) -> Path:
     tmp_json.write_text(json.dumps(meta, indent=2), encoding="utf-8")
     tmp_json.replace(folder / "mesh.json")
     return folder / "mesh.npz"
+
+
+def _narrow(a: np.ndarray) -> np.ndarray:
+    """An index array in the smallest of int16 and int32 that holds its values (the file is
+    then about half as large), or as it is; :func:`load_cached` gives it back its own type
+    (``mesh.json``'s ``index_types``), so a cached mesh equals the built one bit for bit."""
+    if a.size == 0 or not np.issubdtype(a.dtype, np.integer):
+        return a
+    low, high = int(a.min()), int(a.max())
+    for kind in (np.int16, np.int32):
+        info = np.iinfo(kind)
+        if info.min <= low and high <= info.max:
+            return a.astype(kind)
+    return a
+
+
+def _wide(a: np.ndarray, kind: str) -> np.ndarray:
+    """``a`` back in the index type ``kind`` it had when it was saved."""
+    return a.astype(kind) if a.dtype != np.dtype(kind) else a
 
 
 def load_cached(folder: Path, digest: str) -> SiteMesh | None:
@@ -260,10 +284,13 @@ def load_cached(folder: Path, digest: str) -> SiteMesh | None:
         with np.load(npz) as z:
             if "mesh_inputs_sha256" not in z.files or str(z["mesh_inputs_sha256"]) != digest:
                 return None
-            faces = {name: z[f"face:{name}"] for name in meta["faces"]}
+            kinds = meta["index_types"]
+            faces = {name: _wide(z[f"face:{name}"], kinds["faces"][name])
+                     for name in meta["faces"]}
             nodes = meta["plan_nodes"]
             plan = None if nodes is None else PlanLayout(
-                xy=z["plan:xy"], tri=z["plan:tri"], surfaces=z["plan:surfaces"],
+                xy=z["plan:xy"], tri=_wide(z["plan:tri"], kinds["plan_tri"]),
+                surfaces=z["plan:surfaces"],
                 borehole_nodes=dict(nodes["boreholes"]), well_nodes=dict(nodes["wells"]))
             report = MeshReport(
                 quality=MeshQuality.from_dict(meta["quality"]), origin="cached",
@@ -272,7 +299,8 @@ def load_cached(folder: Path, digest: str) -> SiteMesh | None:
                 lens_fits=tuple(LensFit.from_dict(n) for n in meta["lens_fit"]), plan=plan,
                 corridor=None if meta.get("corridor") is None else Corridor.from_dict(
                     meta["corridor"]))
-            site = SiteMesh(points=z["points"], cells=z["cells"], cell_layer=z["cell_layer"],
+            site = SiteMesh(points=z["points"], cells=_wide(z["cells"], kinds["cells"]),
+                            cell_layer=_wide(z["cell_layer"], kinds["cell_layer"]),
                             layer_names=tuple(meta["units"]), faces=faces, report=report)
     except (OSError, ValueError, KeyError, TypeError):
         return None

@@ -232,6 +232,7 @@ def refine_case(case: Case, factor: float) -> Case:
         "layer_cell_thickness": m.layer_cell_thickness / factor,
         # the plume corridor's cells and layers shrink with its Péclet target (theory.md M4)
         "corridor_peclet": m.corridor_peclet / factor,
+        "cells_across_source": m.cells_across_source * factor,  # theory.md M6
         "max_nodes": int(m.max_nodes * factor**3),
     })
     t = case.time

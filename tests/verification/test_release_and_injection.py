@@ -130,24 +130,35 @@ WELL = {"name": "recharge_well", "x": "20 m", "y": "10 m", "screens": [["4 m", "
 
 def test_injection_well_fills_its_surroundings_with_its_concentration(tmp_path):
     """Equal fixed heads (no ambient flow): the well's water spreads radially, so the water
-    at the screen is injected water and its nodes reach c_inj (within 1 % after 0.5 yr;
-    measured 0.997–0.9995 when written — a conservative scheme holds a uniform c_inj
-    exactly where only injected water flows, see theory.md T3d). The spill box is
-    switched to clean water (0 mg/L): its residual input is ≤ 0, so the total input stays
-    ≤ Q c_inj t; budget ≤ 1e-8."""
+    at the screen is injected water and its nodes reach c_inj — a conservative scheme holds
+    a uniform c_inj exactly where only injected water flows, see theory.md T3d. The nodes
+    inside the screen are within 1 % of c_inj from the first output (0.5 yr); the nodes at
+    the screen's ends, whose control volumes reach past the screen, still exchange by
+    dispersion with the water above and below until that fills, and are within 1 % at the
+    end (measured 0.982 at 0.5 yr and 0.994 at the end on the mesh with four cells across
+    the spill box, 0.995 and 0.999 before it). Nodes the screen's sampling gives a share of
+    less than 1e-6 of the largest are not injecting nodes. The spill box is switched to
+    clean water (0 mg/L): its residual input is ≤ 0, so the total input stays ≤ Q c_inj t;
+    budget ≤ 1e-8."""
     case = _tiny(tmp_path, _spill(concentration="0 mg/L"), wells=[WELL],
                  fixed_heads=[FixedHead("west", "4.6 m"), FixedHead("east", "4.6 m")])
     site, flow = mesh_and_flow(case)
     snaps = list(run_transport(site, flow, TransportInputs.of(case)))
     q, c_inj = 5.0 / DAY, 2e-3
-    screen = np.nonzero(flow.exchange["recharge_well"] > 0)[0]
-    assert screen.size >= 2
+    rate = flow.exchange["recharge_well"]
+    screen = np.nonzero(rate > 1e-6 * rate.max())[0]
+    assert screen.size >= 3
+    z = site.points[2, screen]
+    inside = screen[(z < z.max()) & (z > z.min())]
+    assert inside.size >= 1
     for snap in snaps[1:]:
         b = snap.budgets["tracer"]
         assert b.relative_error <= 1e-8
         assert b.source_input <= q * c_inj * snap.time * (1 + 1e-10)
-        c = snap.concentration["tracer"][screen]
+        c = snap.concentration["tracer"][inside]
         assert np.all(np.abs(c - c_inj) <= 0.01 * c_inj), c / c_inj
+    c = snaps[-1].concentration["tracer"][screen]
+    assert np.all(np.abs(c - c_inj) <= 0.01 * c_inj), c / c_inj
 
 
 def test_injection_well_input_is_exact_without_other_sources(tmp_path):

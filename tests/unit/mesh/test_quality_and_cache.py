@@ -97,7 +97,8 @@ def test_a_crash_between_the_two_cache_files_never_reuses_the_wrong_mesh(tmp_pat
 
 def test_a_cached_mesh_carries_the_same_report_as_a_fresh_one(tmp_path):
     """The mesher's report is a frozen record set at construction; loading the mesh from the
-    cache gives equal fields (only origin and origin_path say where it came from)."""
+    cache gives equal fields (only origin and origin_path say where it came from) and equal
+    arrays."""
     case = load_case(TINY)
     fresh, _ = obtain_mesh(case, [tmp_path], save_to=tmp_path)
     cached, reused = obtain_mesh(case, [tmp_path], save_to=tmp_path)
@@ -108,9 +109,20 @@ def test_a_cached_mesh_carries_the_same_report_as_a_fresh_one(tmp_path):
     assert (b.sublayers, b.surface_rules, b.lens_fits) == \
         (a.sublayers, a.surface_rules, a.lens_fits)
     for name in ("xy", "tri", "surfaces"):
-        np.testing.assert_array_equal(getattr(b.plan, name), getattr(a.plan, name))
+        np.testing.assert_array_equal(getattr(b.plan, name), getattr(a.plan, name),
+                                      strict=True)
     assert (b.plan.borehole_nodes, b.plan.well_nodes) == \
         (a.plan.borehole_nodes, a.plan.well_nodes)
+    # the arrays too, bit for bit and in their own types (the file stores index arrays in
+    # int16 or int32 where their values fit, and the cache gives back the built types)
+    for name in ("points", "cells", "cell_layer"):
+        np.testing.assert_array_equal(getattr(cached, name), getattr(fresh, name),
+                                      strict=True)
+    for face, tri in fresh.faces.items():
+        np.testing.assert_array_equal(cached.faces[face], tri, strict=True)
+    with np.load(tmp_path / "mesh.npz") as stored:
+        assert stored["cells"].dtype == np.int16  # a few thousand nodes fit
+        assert stored["cell_layer"].dtype == np.int16
 
 
 def test_lumping_gives_each_node_a_quarter_of_its_cells():

@@ -1,0 +1,78 @@
+"""Plan cells at a source box (theory.md M6): the box's shorter plan side divided by
+``mesh.cells_across_source``, so that what the box loads or holds reaches at most one cell
+beyond it and that cell is a fraction of the box.
+
+References: the mesher's own rule (common practice, no source for the count of four) and
+the size-field overshoot gmsh shows (up to about 20 %: fe3d.mesh.corridor.FINE_SIZE_MARGIN,
+measured in fe3d.mesh.build). The load's spread is checked against the P1 hat's support:
+exact geometry, no tolerance beyond that overshoot.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from fe3d.case.builder import Layer, Material, Source, Species, Time, box_case, with_changes
+from fe3d.case.parts import TransportInputs
+from fe3d.mesh.build import build_mesh
+from fe3d.studies.refinement import refine_case
+from fe3d.transport.sources import box_load_weights
+
+OVERSHOOT = 1.25  # gmsh's edges exceed its size field by up to ~20 % (fe3d.mesh.build)
+BOX = ((40.0, 52.0), (20.0, 30.0), (-4.0, -1.0))  # 12 m × 10 m × 3 m
+
+
+def _case(**mesh: object) -> object:
+    case = box_case(
+        length=120.0, width=50.0, cell=15.0, dz=1.0, heads={"west": 1.0, "east": 0.0},
+        layers=[Layer("sand", -6.0, Material(10.0, 1.0, porosity=0.3,
+                                              longitudinal_dispersivity=2.0,
+                                              transverse_dispersivity=0.2))],
+        species=[Species("tracer")],
+        sources=[Source("spill", kind="mass_loading", mass_rate=100.0, x=BOX[0], y=BOX[1],
+                        z=BOX[2], stop=100.0)],
+        time=Time(200.0, 20.0))
+    return with_changes(case, mesh={"corridor": False, **mesh})
+
+
+def _plan_edges_inside_box(case: object) -> np.ndarray:
+    site = build_mesh(case)
+    (x0, x1), (y0, y1), _ = BOX
+    p = site.points
+    centre = p[:, site.cells].mean(axis=1)
+    inside = ((centre[0] > x0) & (centre[0] < x1) & (centre[1] > y0) & (centre[1] < y1))
+    cells = site.cells[:, inside]
+    lengths = [np.hypot(*(p[:2, cells[a]] - p[:2, cells[b]]))
+               for a in range(4) for b in range(a + 1, 4)]
+    return np.max(lengths, axis=0)
+
+
+def test_cells_inside_a_source_box_are_a_quarter_of_its_shorter_side():
+    """Default four cells across the 10 m side: every cell whose centre is inside the box
+    has plan edges of at most 2.5 m × the overshoot; the background is 15 m."""
+    edges = _plan_edges_inside_box(_case())
+    assert edges.size > 0
+    assert edges.max() <= 10.0 / 4.0 * OVERSHOOT, edges.max()
+
+
+def test_more_cells_across_a_source_box_when_asked_and_on_refinement():
+    """``cells_across_source = 8``: plan edges at most 1.25 m × the overshoot inside the box;
+    a refinement study's level at ratio 1.5 asks 6 across (the count grows with the ratio,
+    like every other size shrinks)."""
+    edges = _plan_edges_inside_box(_case(cells_across_source=8))
+    assert edges.max() <= 10.0 / 8.0 * OVERSHOOT, edges.max()
+    assert refine_case(_case(), 1.5).mesh.cells_across_source == 6.0
+
+
+def test_a_box_load_reaches_at_most_one_small_cell_beyond_the_box():
+    """The Galerkin load weights of the box (∫_box φ_i dV) sit on nodes at most one cell
+    edge outside the box in plan: with four cells across, within 2.5 m × the overshoot."""
+    case = _case()
+    site = build_mesh(case)
+    inputs = TransportInputs.of(case)
+    w = box_load_weights(site, inputs.sources[0])
+    (x0, x1), (y0, y1), _ = BOX
+    x, y = site.points[0, w > 0], site.points[1, w > 0]
+    beyond = np.maximum.reduce([x0 - x, x - x1, y0 - y, y - y1, np.zeros_like(x)])
+    assert beyond.max() <= 10.0 / 4.0 * OVERSHOOT, beyond.max()
+    assert abs(w.sum() - 1.0) <= 1e-12
