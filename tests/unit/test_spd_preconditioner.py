@@ -62,8 +62,9 @@ def test_level_by_level_hierarchy_is_pyamgs_with_one_threshold(monkeypatch) -> N
     level (fe3d.linalg._amg_hierarchy) is pyamg's own ``ruge_stuben_solver`` with the same
     options (reference library: pyamg; Bell, Olson & Schroder 2022, PyAMG: Algebraic
     Multigrid Solvers in Python, JOSS 7(72); citation from memory). Same operations in the
-    same order, so the level matrices agree to round-off (1e-14 relative). With the default threshold the finest level keeps fewer
-    strong connections, so its first coarse level is no larger."""
+    same order, so the level matrices agree to round-off (1e-14 relative). With the
+    default threshold the finest level keeps fewer strong connections, so its first coarse
+    level is no larger."""
     import pyamg
 
     import fe3d.linalg as linalg
