@@ -257,6 +257,7 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
                                 drawdown=drawdown)
     writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow, figures=not compact,
                           drawdown=drawdown, receptors_every_step=True)
+    tell("transport", 0.0, case.time.end)  # its set-up counts as transport, not paths
     _transport(case, site, flow, writer, keeper=keeper, saved=saved, base_dir=base_dir,
                on_step=lambda t, end: tell("transport", t, end))
     tell("outputs", 0, 1)
