@@ -6,7 +6,11 @@ correlation) run with ``--members N`` in this process (1 worker) and on a dask
 LocalCluster of 2 single-threaded worker processes. Writes the "Ensembles" section of
 docs/performance.md (the rest of the file is kept) with ``--write``.
 
-Usage: ``python benchmarks/ensemble_bench.py [--members 12] [--write]``.
+Usage: ``python benchmarks/ensemble_bench.py [--members 12] [--finer F] [--write]``;
+``--finer F`` divides the case's cell sizes and time step by F (fe3d.studies.refinement's
+``refine_case``), so that each member is nearer a site model's size: at F = 1 a member
+takes about half a second, and the fixed costs per member and per worker (imports, the
+first compiled call, dask's hand-offs) weigh more than they would on a real study.
 """
 
 from __future__ import annotations
@@ -26,15 +30,26 @@ ROOT = Path(__file__).resolve().parents[1]
 CASE = ROOT / "cases" / "tiny" / "ensemble.toml"
 
 
+FINER = 1.0  # set from --finer
+
+
+def ensemble_case() -> Any:
+    """The tiny ensemble case, its cell sizes and time step divided by FINER."""
+    from fe3d.case.load import load_case
+    from fe3d.studies.refinement import refine_case
+
+    case = load_case(CASE)
+    return case if FINER == 1.0 else refine_case(case, FINER)
+
+
 def measure(workers: int, members: int, folder: Path, *, in_process: bool
             ) -> dict[str, Any]:
     """One ensemble on ``workers`` (in this process, or a local cluster) from an empty
     folder."""
-    from fe3d.case.load import load_case
     from fe3d.studies.ensemble import run_ensemble
     from fe3d.studies.executors import study_executor
 
-    case = load_case(CASE)
+    case = ensemble_case()
     started = time.perf_counter()
     with study_executor(n_runs=members, workers=workers,
                         single_in_process=in_process) as ex:
@@ -64,11 +79,10 @@ def scheduler_cost(n_tasks: int = 400) -> tuple[float, float]:
     schedule, run, result), and the time [s] to send the shared mesh to both workers."""
     from concurrent.futures import wait
 
-    from fe3d.case.load import load_case
     from fe3d.pipeline import mesh_case
     from fe3d.studies.executors import study_executor
 
-    case = load_case(CASE).model_copy(update={"uncertain": None})
+    case = ensemble_case().model_copy(update={"uncertain": None})
     with tempfile.TemporaryDirectory() as tmp:
         site, _, _ = mesh_case(case, Path(tmp), base_dir=CASE.parent)
     with study_executor(n_runs=2, workers=2) as ex:
@@ -85,10 +99,9 @@ def scheduler_cost(n_tasks: int = 400) -> tuple[float, float]:
 
 def mesh_bytes() -> int:
     """Pickled size of the shared mesh (what one scatter sends to each worker)."""
-    from fe3d.case.load import load_case
     from fe3d.pipeline import mesh_case
 
-    case = load_case(CASE).model_copy(update={"uncertain": None})
+    case = ensemble_case().model_copy(update={"uncertain": None})
     with tempfile.TemporaryDirectory() as tmp:
         site, _, _ = mesh_case(case, Path(tmp), base_dir=CASE.parent)
     return len(pickle.dumps(site, protocol=pickle.HIGHEST_PROTOCOL))
@@ -97,8 +110,14 @@ def mesh_bytes() -> int:
 def main() -> int:
     ap = argparse.ArgumentParser()
     ap.add_argument("--members", type=int, default=12)
+    ap.add_argument("--finer", type=float, default=1.0)
     ap.add_argument("--write", action="store_true")
     args = ap.parse_args()
+    global FINER
+    FINER = args.finer
+    tc = ensemble_case().time
+    steps = round(tc.end / tc.step)
+    step_days = tc.step / 86400.0
     rows = []
     for workers, in_process in ((1, True), (1, False), (2, False)):
         with tempfile.TemporaryDirectory() as tmp:
@@ -110,13 +129,16 @@ def main() -> int:
     per_task, share = scheduler_cost()
     _alone, one, two = rows
     lines = ["## Ensembles (benchmarks/ensemble_bench.py)", "",
-             f"`fe3d ensemble` on the tiny ensemble case (cases/tiny/ensemble.toml, invented: "
-             f"four uncertain values, one rank correlation; {one['nodes']:,} nodes, 37 steps "
-             f"of 20 d) with {args.members} members, from an empty study folder: in this "
-             "process, and on a dask LocalCluster of 1 and of 2 single-threaded worker "
-             "processes (the speed-up compares the two clusters). Each member is a whole "
-             "`run_case` (flow, transport and every file of a run folder, written to a "
-             "temporary folder and removed) on the one shared mesh. 'steady' divides the "
+             "`fe3d ensemble` on the tiny ensemble case (cases/tiny/ensemble.toml, invented: "
+             "four uncertain values, one rank correlation"
+             + ("" if FINER == 1.0 else f"; cell sizes and time step divided by {FINER:g}")
+             + f"; {one['nodes']:,} nodes, {steps} steps "
+             f"of {step_days:.3g} d) with {args.members} members, from an empty study "
+             "folder: in this process, and on a dask LocalCluster of 1 and of 2 "
+             "single-threaded worker processes (the speed-up compares the two clusters). "
+             "Each member is a whole compact `run_case` (flow, transport, and the tables, "
+             "summary and fields a member keeps, written to a temporary folder and "
+             "removed) on the one shared mesh. 'steady' divides the "
              "workers by the median member time, leaving out the cluster's start and each "
              "worker's first member (imports, compiled kernels "
              f"loaded from the cache). Load average while measured: {load[0]:.1f} "

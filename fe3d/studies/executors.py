@@ -112,6 +112,7 @@ def _client(scheduler: str | None, workers: int | None, n_runs: int
             ) -> Iterator[tuple[Any, int, str]]:
     """A dask client of a new local cluster or of the scheduler at ``scheduler``, the
     number of runs it takes at once, and where that is in words."""
+    import dask
     from distributed import Client, LocalCluster
 
     cluster = None
@@ -120,9 +121,14 @@ def _client(scheduler: str | None, workers: int | None, n_runs: int
         # one thread per worker: fe3d's solvers hold one BLAS thread each (fe3d._threads)
         # no dashboard, and the scheduler's web port chosen free (8787 may be taken by
         # another study on the same machine)
-        cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                               dashboard_address=":0", scheduler_kwargs={"dashboard": False},
-                               silence_logs=logging.ERROR)
+        # and no statistical profiler in the workers: it samples every thread's stack
+        # every 10 ms, which cost a member about 10 % more processor time (measured,
+        # docs/performance.md, Ensembles)
+        with dask.config.set({"distributed.worker.profile.enabled": False}):
+            cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                                   dashboard_address=":0",
+                                   scheduler_kwargs={"dashboard": False},
+                                   silence_logs=logging.ERROR)
         client = Client(cluster)
         where = f"local cluster, {n} worker processes × 1 thread"
     else:
