@@ -22,8 +22,8 @@ import scipy.sparse as sp
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.sgs import split_csr
 
-__all__ = ["MASS_FRACTION", "BoundaryFacets", "CsrPattern", "gradients", "length_along",
-           "node_graph", "split_rows", "tensor_gradient", "volumes"]
+__all__ = ["MASS_FRACTION", "BoundaryFacets", "CsrPattern", "cell_gradients", "gradients",
+           "length_along", "node_graph", "split_rows", "tensor_gradient", "volumes"]
 
 MASS_FRACTION = (np.ones((4, 4)) + np.eye(4)) / 20.0
 """∫φ_iφ_j dV / V on a tetrahedron (exact for P1)."""
@@ -32,7 +32,7 @@ _jit = numba.njit(cache=True, nogil=True)
 
 
 @numba.njit(inline="always")
-def _cell_gradients(points: FloatArray, cells: IndexArray, e: int, g: FloatArray) -> float:
+def cell_gradients(points: FloatArray, cells: IndexArray, e: int, g: FloatArray) -> float:
     """Basis gradients of cell e into ``g`` ``(4, 3)``; returns the signed volume."""
     i0, i1, i2, i3 = cells[0, e], cells[1, e], cells[2, e], cells[3, e]
     ax, ay, az = points[0, i1] - points[0, i0], points[1, i1] - points[1, i0], \
@@ -58,14 +58,14 @@ def _cell_gradients(points: FloatArray, cells: IndexArray, e: int, g: FloatArray
 def _gradients_kernel(points: FloatArray, cells: IndexArray, grads: FloatArray,
                       vol: FloatArray) -> None:
     for e in range(cells.shape[1]):
-        vol[e] = _cell_gradients(points, cells, e, grads[e])
+        vol[e] = cell_gradients(points, cells, e, grads[e])
 
 
 @_jit
 def _volumes_kernel(points: FloatArray, cells: IndexArray, vol: FloatArray) -> None:
     g = np.empty((4, 3))
     for e in range(cells.shape[1]):
-        vol[e] = _cell_gradients(points, cells, e, g)
+        vol[e] = cell_gradients(points, cells, e, g)
 
 
 @_jit
@@ -73,7 +73,7 @@ def _length_kernel(points: FloatArray, cells: IndexArray, a: FloatArray,
                    out: FloatArray) -> None:
     g = np.empty((4, 3))
     for e in range(cells.shape[1]):
-        _cell_gradients(points, cells, e, g)
+        cell_gradients(points, cells, e, g)
         proj = 0.0
         gmax = 0.0
         for i in range(4):
@@ -91,7 +91,7 @@ def _tensor_gradient_kernel(points: FloatArray, cells: IndexArray, field: FloatA
                             out: FloatArray) -> None:
     g = np.empty((4, 3))
     for e in range(cells.shape[1]):
-        _cell_gradients(points, cells, e, g)
+        cell_gradients(points, cells, e, g)
         gx = gy = gz = 0.0
         for i in range(4):
             u = field[cells[i, e]]
@@ -386,7 +386,7 @@ def _stiffness_kernel(slots: IndexArray, cell_ids: IndexArray, points: FloatArra
     for p in range(cell_ids.size):
         e = cell_ids[p]
         t = tensor_of[p]
-        v = abs(_cell_gradients(points, cells, e, g)) * scale[p]
+        v = abs(cell_gradients(points, cells, e, g)) * scale[p]
         for j in range(4):
             for a in range(3):
                 tg[j, a] = (tensors[a, 0, t] * g[j, 0] + tensors[a, 1, t] * g[j, 1]
@@ -407,7 +407,7 @@ def _transport_kernel(slots: IndexArray, points: FloatArray, cells: IndexArray, 
     ag = np.empty(4)
     qg = np.empty(4)
     for e in range(cells.shape[1]):
-        v = abs(_cell_gradients(points, cells, e, g))
+        v = abs(cell_gradients(points, cells, e, g))
         for i in range(4):
             ag[i] = a[0, e] * g[i, 0] + a[1, e] * g[i, 1] + a[2, e] * g[i, 2]
             qg[i] = q[0, e] * g[i, 0] + q[1, e] * g[i, 1] + q[2, e] * g[i, 2]

@@ -24,7 +24,7 @@ import numba
 import numpy as np
 
 from fe3d._typing import BoolArray, FloatArray, IndexArray
-from fe3d.p1 import _cell_gradients
+from fe3d.p1 import cell_gradients
 
 __all__ = ["Pathline", "Tracker", "cell_neighbours", "thin_pathline"]
 
@@ -162,7 +162,7 @@ def _barycentric(points: FloatArray, cells: IndexArray, e: int, x: FloatArray,
     """Barycentric coordinates of x in cell e into ``lam`` ``(4,)`` and the cell's basis
     gradients into ``g`` ``(4, 3)`` (formed here, not stored per cell); returns the least
     coordinate."""
-    _cell_gradients(points, cells, e, g)
+    cell_gradients(points, cells, e, g)
     i0 = cells[0, e]
     dx, dy, dz = x[0] - points[0, i0], x[1] - points[1, i0], x[2] - points[2, i0]
     s = 0.0
@@ -217,7 +217,7 @@ def _nodal_velocity(points: FloatArray, cells: IndexArray, velocity: FloatArray,
     weight = np.zeros(n_nodes)
     g = np.empty((4, 3))
     for e in range(cells.shape[1]):
-        w = abs(_cell_gradients(points, cells, e, g))
+        w = abs(cell_gradients(points, cells, e, g))
         for i in range(4):
             node = cells[i, e]
             weight[node] += w
