@@ -370,7 +370,7 @@ def measure(h: float, dz: float, step_days: float) -> dict[str, Any]:
         "tolerance": case.solver.tolerance, "load_average": load}
 
 
-STAGES = ("mesh", "flow", "travel paths", "transport", "outputs")
+STAGES = ("mesh", "flow", "travel paths", "flow outputs", "transport", "outputs")
 """The stages ``run_case`` reports, in order."""
 
 

@@ -253,6 +253,7 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     del kept  # the hierarchy is not held through the transport
     tell("travel paths", 0, 1)
     paths = travel_paths(site, flow, TravelInputs.of(case))
+    tell("flow outputs", 0, 1)  # the flow's files and figures, timed apart from paths
     files += write_flow_outputs(out_dir, case, site, flow, paths, figures=not compact,
                                 drawdown=drawdown)
     writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow, figures=not compact,

@@ -225,7 +225,8 @@ def test_run_writes_every_output(tiny_run: tuple[Path, str]) -> None:
     # where the time went (issue 16): printed and logged, every stage named
     for text in (flat(stdout), log):
         assert re.search(r"time per stage: mesh [\d.]+ s, flow [\d.]+ s, travel paths "
-                         r"[\d.]+ s, transport [\d.]+ s, outputs [\d.]+ s", text), text[-300:]
+                         r"[\d.]+ s, flow outputs [\d.]+ s, transport [\d.]+ s, outputs "
+                         r"[\d.]+ s", text), text[-300:]
     # every step is logged with the most negative concentration and where it is
     assert "step 1: t = " in log
     assert "tracer min " in log and " at (" in log
