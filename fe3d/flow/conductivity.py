@@ -42,6 +42,11 @@ def read_point_field(path: Path, key: str) -> tuple[FloatArray, FloatArray]:
             rows = list(csv.reader(fh))
     except OSError as exc:
         raise CaseError(key, str(path), f"cannot be read ({exc.strerror})") from None
+    except UnicodeDecodeError as exc:  # binary content: say where, never echo it
+        raise CaseError(key, str(path), f"must be UTF-8 text (byte {exc.start} is not)") \
+            from None
+    except csv.Error as exc:  # e.g. a NUL byte in a line
+        raise CaseError(key, str(path), f"is not a readable CSV file ({exc})") from None
     if len(rows) < 2 or len(rows[0]) != 4:
         raise CaseError(key, str(path), "must be a CSV with header 'x [m], y [m], z [m], "
                         "conductivity [m/d]' and at least one row")

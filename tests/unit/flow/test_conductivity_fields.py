@@ -69,3 +69,18 @@ def test_bedding_normal_horizontal_and_east_dip():
     np.testing.assert_allclose(bedding_normal(0.0, 0.0), [0.0, 0.0, 1.0], atol=1e-15)
     n = bedding_normal(0.0, np.pi / 6)  # strike north, dips east by 30°
     np.testing.assert_allclose(n, [0.5, 0.0, np.sqrt(3) / 2], atol=1e-15)
+
+
+@pytest.mark.parametrize("content", [b"x [m],y [m]\n\xff\xfe\x00qzxq\n",
+                                     b"x [m],y [m],z [m],conductivity [m/d]\n0,0,\x00,1\n"],
+                         ids=["not-utf8", "nul-byte"])
+def test_binary_field_file_is_one_error_naming_the_key(tmp_path, content):
+    """A point-field file that is not UTF-8 text, or holds a NUL byte in a number, is one
+    CaseError naming the key, not a traceback, and does not echo the bytes
+    (issue 15's rule for data files; behaviour requirement, no outside reference)."""
+    (tmp_path / "k.csv").write_bytes(content)
+    case = _case("k.csv")
+    site = build_mesh(case)
+    with pytest.raises(CaseError, match=r"materials\.sand\.conductivity_file") as info:
+        _tensors(case, site, tmp_path)
+    assert "qzxq" not in str(info.value)
