@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import csv
 import io
+import json
 import math
 from collections.abc import Callable, Sequence
 from concurrent.futures import Executor, as_completed
@@ -215,7 +216,8 @@ def judge(values: Sequence[float | None], factors: Sequence[float], *,
 
 
 def refine_case(case: Case, factor: float) -> Case:
-    """The case with every target cell size and every time step divided by ``factor``.
+    """The case with every target cell size and every time step divided by ``factor`` (a
+    unit's ``sublayers`` multiplied by it, rounded up).
 
     Dividing the step with the cell sizes keeps the Courant number v·Δt/h of every cell the
     same on every level. Raises :class:`CaseError` for an imported mesh (fe3d cannot refine
@@ -243,7 +245,14 @@ def refine_case(case: Case, factor: float) -> Case:
     })
     lines = [ln.model_copy(update={"cell_size": ln.cell_size / factor})
              for ln in case.refinement_lines]
-    return case.model_copy(update={"mesh": mesh, "time": time, "refinement_lines": lines})
+    # a unit's own layer count or thickness refines too (a count rounded up, so it grows)
+    layers = [ly.model_copy(update={
+        "sublayers": None if ly.sublayers is None else min(
+            200, math.ceil(ly.sublayers * factor - 1e-9)),
+        "cell_thickness": None if ly.cell_thickness is None else ly.cell_thickness / factor})
+        for ly in case.layers]
+    return case.model_copy(update={"mesh": mesh, "time": time, "refinement_lines": lines,
+                                   "layers": layers})
 
 
 @dataclass(frozen=True)
@@ -316,6 +325,7 @@ class RefinementStudy:
     threshold: float
     time_unit: str
     concentration_unit: str
+    dissimilar_layers: tuple[str, ...] = ()  # units whose cell layers miss the ratio
 
     def unit(self, q: Quantity) -> str:
         """Display unit of a quantity."""
@@ -427,7 +437,45 @@ def _judge_levels(case: Case, levels: list[LevelResult], threshold: float
     verdicts = {q: judge([per_level[lv.index].get(q) for lv in ran], factors,
                          threshold=threshold) for q in keys}
     return RefinementStudy(levels, verdicts, threshold, case.output.time_unit,
-                           case.output.concentration_unit)
+                           case.output.concentration_unit, _dissimilar_layers(ran))
+
+
+def _dissimilar_layers(ran: list[LevelResult]) -> tuple[str, ...]:
+    """One line per unit whose cell-layer count does not grow with the levels' factors: the
+    count of two successive levels differs from the factors' ratio by more than half of
+    that ratio's step above 1 (at ratio 1.25: counts growing by under 12.5 % or over 37.5 %).
+    A unit's count is an integer (its thickness over the layer thickness, rounded up, plus
+    the levels put through source boxes, lenses and screens), so with a few layers a small
+    ratio cannot refine it in step with the plan cells; the levels are then not similar in
+    depth, which the grid convergence index assumes (Celik et al. 2008)."""
+    counts = [_cell_layers(lv.folder) for lv in ran]
+    if len(ran) < 2 or not all(counts):
+        return ()
+    out = []
+    for unit in counts[0]:
+        ns = [c.get(unit) for c in counts]
+        if any(n is None for n in ns):
+            continue
+        factors = [lv.factor for lv in ran]
+        pairs = zip(ns, ns[1:], factors, factors[1:], strict=False)  # successive levels
+        if any(abs(b / a - fb / fa) > 0.5 * (fb / fa - 1.0) for a, b, fa, fb in pairs):
+            steps = " → ".join(str(n) for n in ns)
+            out.append(f"{unit}: {steps} cell layers over levels whose sizes shrink by "
+                       f"{ran[1].factor / ran[0].factor:.4g} each: not similar in depth, so "
+                       "the verdicts of quantities set by the vertical spread (peaks near a "
+                       "source) are less reliable; a larger --ratio or thinner layers "
+                       "(mesh.layer_cell_thickness) make the levels similar")
+    return tuple(out)
+
+
+def _cell_layers(folder: Path) -> dict[str, int]:
+    """Each unit's cell-layer count on the mesh of the run in ``folder`` (its mesh.json), or
+    nothing when the file is missing."""
+    try:
+        meta = json.loads((folder / "mesh.json").read_text(encoding="utf-8"))
+        return {str(k): int(v) for k, v in meta["sublayers"].items()}
+    except (OSError, ValueError, KeyError, TypeError):
+        return {}
 
 
 def _write_reports(case: Case, study: RefinementStudy, out_dir: Path) -> None:
@@ -501,6 +549,8 @@ def _level_lines(study: RefinementStudy) -> list[str]:
     ran = sum(lv.summary is not None for lv in study.levels)
     if ran < 3:
         out += ["", f"Only {ran} level(s) ran: values are reported without an order."]
+    out += ["", *(f"- Cell layers of {line}" for line in study.dissimilar_layers)] \
+        if study.dissimilar_layers else []
     return out
 
 

@@ -164,6 +164,30 @@ def test_missing_and_incomplete():
     assert judge([None, None, None], [1.0, 1.5, 2.25]).verdict == "unchanged"
 
 
+@pytest.mark.parametrize(("counts", "flagged"), [((5, 6, 8), False), ((6, 6, 9), True),
+                                                 ((4, 5, 7), True)])
+def test_cell_layers_that_miss_the_ratio_are_named(tmp_path, counts, flagged):
+    """Levels at ratio 1.25 whose sand has ``counts`` cell layers: 5 → 6 → 8 grows by 1.2
+    and 1.33 (within half of the ratio's step above 1 of 1.25: similar enough); 6 → 6 → 9 (the
+    demo's sand, measured) and 4 → 5 → 7 (1.4) are named, with their counts; the gravel
+    (10 → 12 → 16) never is. The rule: Celik et al. (2008) assume similar levels; the half
+    step is common practice, no source."""
+    import json
+
+    levels = []
+    for k, n in enumerate(counts):
+        folder = tmp_path / f"level_{k}"
+        folder.mkdir()
+        gravel = (10, 12, 16)[k]
+        (folder / "mesh.json").write_text(json.dumps({"sublayers": {"sand": n,
+                                                                    "gravel": gravel}}))
+        levels.append(refinement.LevelResult(k, 1.25**k, folder, None))
+    lines = refinement._dissimilar_layers(levels)
+    assert len(lines) == int(flagged)
+    if flagged:
+        assert lines[0].startswith(f"sand: {counts[0]} → {counts[1]} → {counts[2]} cell layers")
+
+
 def test_refine_case_divides_sizes_and_step():
     """Cell sizes and the time step divide by the same factor: Courant number unchanged."""
     case = load_case(TINY)
@@ -174,6 +198,23 @@ def test_refine_case_divides_sizes_and_step():
     assert math.isclose(fine.mesh.fine_cell_size, case.mesh.fine_cell_size / 2)
     assert case.time.step / case.mesh.cell_size == pytest.approx(
         fine.time.step / fine.mesh.cell_size, rel=4 * EPS)
+
+
+def test_refine_case_refines_a_units_own_layers():
+    """A unit's own ``sublayers`` grows with the factor (rounded up: 2 × 1.25 → 3, 2 ×
+    1.5625 → 4) and its own ``cell_thickness`` divides by it; the demo's clay band (two
+    sublayers) used to keep 2 on every level."""
+    demo = load_case(Path(__file__).parents[3] / "cases" / "demo" / "case.toml")
+    (clay,) = [ly for ly in demo.layers if ly.sublayers is not None]
+    assert clay.sublayers == 2
+    for factor, expected in ((1.25, 3), (1.5625, 4)):
+        (fine,) = [ly for ly in refine_case(demo, factor).layers if ly.name == clay.name]
+        assert fine.sublayers == expected
+    tiny = load_case(TINY)
+    thick = tiny.model_copy(update={"layers": [ly.model_copy(update={"cell_thickness": 0.8})
+                                               for ly in tiny.layers]})
+    for ly in refine_case(thick, 2.0).layers:
+        assert ly.cell_thickness == pytest.approx(0.4, rel=4 * EPS)
 
 
 def test_refine_case_keeps_plume_following_steps():
