@@ -88,7 +88,8 @@ def probability_fields(ensemble: Ensemble) -> ProbabilityFields | None:
         times = f.output_times
         for sp, above in f.above.items():
             at[sp] = at.get(sp, 0.0) + above
-            ever[sp] = ever.get(sp, 0.0) + f.ever_above[sp]
+            # a member kept before the fields over every step: above at an output time
+            ever[sp] = ever.get(sp, 0.0) + f.ever_above.get(sp, above.any(axis=0))
     assert times is not None
     n = len(results)
     return ProbabilityFields(times, {sp: a / n for sp, a in at.items()},

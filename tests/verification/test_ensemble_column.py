@@ -137,6 +137,18 @@ def test_zero_variance_ensemble_equals_the_deterministic_run(tmp_path: Path):
     largest = read_largest_over_run(tmp_path / "run", ["tracer"], conc_unit="mg/L")
     assert np.array_equal(fields.during_run["tracer"], (largest["tracer"] > LIMIT) * 1.0)
     assert np.all(fields.during_run["tracer"] >= fields.at_times["tracer"].max(axis=0))
+    # members kept before the fields over every step (no ever_above arrays in their files)
+    # count as above during the run where they were above at an output time
+    members = sorted((tmp_path / "ensemble" / "members").glob("member_*.npz"))
+    assert len(members) == 3
+    for member in members:
+        with np.load(member) as z:
+            kept = {k: z[k] for k in z.files if not k.startswith("ever_above/")}
+        np.savez(member, **kept)
+    older = probability_fields(ens)
+    assert older is not None
+    assert np.array_equal(older.during_run["tracer"],
+                          (series["tracer"] > LIMIT).any(axis=0) * 1.0)
 
 
 @pytest.mark.slow
