@@ -44,16 +44,15 @@ def lumped(site: SiteMesh, per_cell_volume_weighted: FloatArray) -> FloatArray:
 @dataclass(frozen=True)
 class MediumFields:
     """Fields shared by every species: porosity θ [-], bulk density ρ_b [kg/m³], signed cell
-    volume [m³] per cell, θD [m²/s] shape ``(3, 3, n_cells)``, the seepage velocity [m/s]
-    shape ``(3, n_cells)``, and the outflow of water on the fixed-head faces and at the
-    budget items that take water out (T3b): nodal weights [m³/s] per item and their sum as a
-    diagonal-plus-face matrix."""
+    volume [m³] per cell, θD [m²/s] shape ``(3, 3, n_cells)``, and the outflow of water on the
+    fixed-head faces and at the budget items that take water out (T3b): nodal weights
+    [m³/s] per item and their sum as a diagonal-plus-face matrix. (The seepage velocity is
+    the flow field's, formed where it is needed: not held through the run.)"""
 
     porosity: FloatArray
     bulk_density: FloatArray
     cell_volume: FloatArray
     theta_dispersion: FloatArray
-    seepage_velocity: FloatArray
     material_names: list[str]
     outflow_weights: dict[str, FloatArray]
     outflow_matrix: sp.csr_matrix
@@ -65,9 +64,8 @@ def build_medium(site: SiteMesh, flow: FlowField, ground: Ground) -> MediumField
     mats, mat_names = unit_materials(ground, site)
     theta = flow.porosity
     q = flow.darcy_flux
-    v = flow.seepage_velocity
     D = dispersion_tensor(
-        v,
+        flow.seepage_velocity,
         alpha_l=cell_values(mats, site, "longitudinal_dispersivity"),
         alpha_th=cell_values(mats, site, "transverse_dispersivity"),
         alpha_tv=cell_values(mats, site, "alpha_vertical"),
@@ -87,7 +85,7 @@ def build_medium(site: SiteMesh, flow: FlowField, ground: Ground) -> MediumField
     return MediumFields(
         porosity=theta, bulk_density=cell_values(mats, site, "bulk_density"),
         cell_volume=volumes(site.points, site.cells), theta_dispersion=theta_d,
-        seepage_velocity=v, material_names=mat_names, outflow_weights=weights,
+        material_names=mat_names, outflow_weights=weights,
         outflow_matrix=sp.csr_matrix(matrix))
 
 

@@ -43,10 +43,10 @@ def test_plume_peclet_counts_the_cells_the_plume_reached() -> None:
     lower sand's (α_L = 0.5 m: 8× larger with the same cells); a plume everywhere reads the
     largest over every cell, which is what fe3d reported before (grid_peclet). Exact: the
     same per-cell numbers, maxima over sets of them."""
-    site, _, ctx = _two_sands()
+    site, flow, ctx = _two_sands()
     (s,) = ctx.species
     numbers = PlumeCourant(site, ctx.species, ctx.sources)
-    everywhere = grid_peclet(s, ctx.systems.medium.seepage_velocity, ctx.systems.medium.porosity)
+    everywhere = grid_peclet(s, flow.seepage_velocity, ctx.systems.medium.porosity)
     upper = site.points[2] > -2.9
     numbers.rates({"tracer": np.where(upper, 1.0, 0.0)}, t=86400.0)  # source stopped
     in_upper = numbers.largest_peclet["tracer"]

@@ -105,7 +105,7 @@ def _context(site: SiteMesh, q: np.ndarray, *, half_life_days: float | None, sch
     vol = site.cell_volumes()
     medium = MediumFields(
         porosity=np.full(e, theta), bulk_density=np.zeros(e), cell_volume=vol,
-        theta_dispersion=np.zeros((3, 3, e)), seepage_velocity=q / theta,
+        theta_dispersion=np.zeros((3, 3, e)),
         material_names=["m"], outflow_weights={}, outflow_matrix=_zeros(n))
     lam = 0.0 if half_life_days is None else math.log(2) / (half_life_days * DAY)
     spec = Species(limit="1 mg/L", half_life=None if half_life_days is None
