@@ -376,7 +376,7 @@ def _refine(case_path: Path, out: Path | None, *, ratio: float, levels: int,
     for q in study.verdicts:
         con.print(study.line(q), markup=False, highlight=False)
     for line in study.dissimilar_layers:
-        con.print(f"warning: cell layers of {line}", markup=False, highlight=False)
+        con.print(f"warning: {line}", markup=False, highlight=False)
     failed = [lv for lv in study.levels if lv.summary is None]
     for lv in failed:
         con.print(f"level {lv.index} failed: {lv.error}", markup=False, highlight=False)

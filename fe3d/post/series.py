@@ -22,7 +22,8 @@ import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
 
-__all__ = ["SERIES_FILE", "VTK_TETRA", "SeriesFile", "array_name", "read_series"]
+__all__ = ["SERIES_FILE", "VTK_TETRA", "SeriesFile", "array_name", "read_series",
+           "read_static"]
 
 #: The file a run writes its fields into: the mesh and flow once, every output time
 #: appended (docs/outputs.md).
@@ -237,3 +238,16 @@ def read_series(path: Path, names: list[str]) -> tuple[FloatArray, dict[str, Flo
             out[name] = np.stack([np.asarray(data[int(o):int(o) + n], dtype=float)
                                   for o in np.asarray(offsets).ravel()])
     return times, out
+
+
+def read_static(path: Path, names: list[str]) -> dict[str, FloatArray]:
+    """For each name (as given to :meth:`SeriesFile.add_static`), its point values, shape
+    ``(n_nodes,)``, of a file :class:`SeriesFile` wrote: stored once, read once (every
+    output time's offset points at the same values)."""
+    import h5py
+
+    with h5py.File(path, "r") as f:
+        root = f["VTKHDF"]
+        n = int(root["NumberOfPoints"][0])
+        return {name: np.asarray(root["PointData"][array_name(name)][:n], dtype=float)
+                for name in names}

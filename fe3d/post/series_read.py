@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 
 from fe3d._typing import FloatArray
-from fe3d.post.series import SERIES_FILE, read_series
+from fe3d.post.series import SERIES_FILE, read_series, read_static
 from fe3d.units import from_si
 
 __all__ = ["read_concentration_series", "read_largest_over_run"]
@@ -46,6 +46,6 @@ def read_largest_over_run(folder: Path, species: list[str], *, conc_unit: str,
     ``(n_nodes,)`` (theory.md O4), from the series file of ``folder`` (written there in the
     display unit ``conc_unit``)."""
     names = [f"{sp} largest [{conc_unit}]" for sp in species]
-    _, values = read_series(folder / SERIES_FILE, names)
+    values = read_static(folder / SERIES_FILE, names)
     c_scale = from_si(1.0, conc_unit)
-    return {sp: values[name][0] / c_scale for sp, name in zip(species, names, strict=True)}
+    return {sp: values[name] / c_scale for sp, name in zip(species, names, strict=True)}

@@ -460,7 +460,7 @@ def _dissimilar_layers(ran: list[LevelResult]) -> tuple[str, ...]:
         pairs = zip(ns, ns[1:], factors, factors[1:], strict=False)  # successive levels
         if any(abs(b / a - fb / fa) > 0.5 * (fb / fa - 1.0) for a, b, fa, fb in pairs):
             steps = " → ".join(str(n) for n in ns)
-            out.append(f"{unit}: {steps} cell layers over levels whose sizes shrink by "
+            out.append(f"{unit}: cell layers {steps} over levels whose sizes shrink by "
                        f"{ran[1].factor / ran[0].factor:.4g} each: not similar in depth, so "
                        "the verdicts of quantities set by the vertical spread (peaks near a "
                        "source) are less reliable; a larger --ratio or thinner layers "
@@ -549,7 +549,7 @@ def _level_lines(study: RefinementStudy) -> list[str]:
     ran = sum(lv.summary is not None for lv in study.levels)
     if ran < 3:
         out += ["", f"Only {ran} level(s) ran: values are reported without an order."]
-    out += ["", *(f"- Cell layers of {line}" for line in study.dissimilar_layers)] \
+    out += ["", *(f"- {line}" for line in study.dissimilar_layers)] \
         if study.dissimilar_layers else []
     return out
 

@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 import pyvista as pv
 
-from fe3d.post.series import SeriesFile, array_name
+from fe3d.post.series import SeriesFile, array_name, read_series, read_static
 
 F32_ROUNDOFF = 2.0**-24  # unit roundoff of float32 (IEEE 754 binary32)
 
@@ -91,6 +91,14 @@ def test_series_vtkhdf_gives_back_mesh_static_and_per_time_arrays(mesh, tmp_path
     with h5py.File(path) as h5:
         assert h5["fe3d"].attrs["time_unit"] == b"yr"
         assert h5["VTKHDF/Points"].shape == (points.shape[1], 3)  # the mesh once
+    # fe3d's own readers: a static array once, equal to what VTK's reader shows at each time
+    static = read_static(path, ["solvent largest [mg/L]"])["solvent largest [mg/L]"]
+    assert static.shape == (points.shape[1],)
+    np.testing.assert_array_equal(static, grids[0].point_data["solvent largest [mg per L]"])
+    _, per_time = read_series(path, ["solvent [mg/L]"])
+    for k, f in enumerate(fields):
+        np.testing.assert_allclose(per_time["solvent [mg/L]"][k], f["solvent [mg/L]"],
+                                   rtol=F32_ROUNDOFF, atol=0.0)
 
 
 def test_series_vtkhdf_grows_by_the_per_time_arrays_only(tmp_path):

@@ -185,7 +185,7 @@ def test_cell_layers_that_miss_the_ratio_are_named(tmp_path, counts, flagged):
     lines = refinement._dissimilar_layers(levels)
     assert len(lines) == int(flagged)
     if flagged:
-        assert lines[0].startswith(f"sand: {counts[0]} → {counts[1]} → {counts[2]} cell layers")
+        assert lines[0].startswith(f"sand: cell layers {counts[0]} → {counts[1]} → {counts[2]} ")
 
 
 def test_refine_case_divides_sizes_and_step():
