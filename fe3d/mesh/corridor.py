@@ -268,9 +268,45 @@ def _piece_sizes(pieces: Sequence[CorridorPiece], outline: FloatArray, spacing: 
     px, py = px[keep], py[keep]
     size = np.full(px.shape, np.inf)
     for pc in pieces:
-        d = _polyline_distance(pc.points, px, py)
+        d = _distance_near(pc.points, px, py, reach=pc.radius)
         size = np.where(d <= pc.radius, np.minimum(size, pc.cell_size), size)
     return size[np.isfinite(size)], spacing * spacing
+
+
+#: Segments per stretch of a polyline whose bounding box :func:`_distance_near` tests.
+SEGMENTS_PER_BOX = 8
+
+
+def _distance_near(points: Sequence[tuple[float, float]], px: FloatArray, py: FloatArray,
+                   *, reach: float) -> FloatArray:
+    """Plan distance [m] from points ``(px, py)`` (any shape) to a polyline, exact where it
+    is at most ``reach`` [m]; elsewhere some value above ``reach`` (``inf`` far off).
+
+    Only the points in a bounding box widened by ``reach`` are measured: the polyline's
+    box, then the boxes of its stretches of :data:`SEGMENTS_PER_BOX` segments. A point
+    within ``reach`` of a segment lies in its stretch's widened box, and the distance to
+    the polyline is the least over the segments, so the exact value is found there."""
+    xy = np.asarray(points, dtype=float).T
+    d = np.full(np.shape(px), np.inf)
+    near = _in_box(xy, px, py, reach)
+    qx, qy, dn = px[near], py[near], d[near]
+    for k in range(0, max(xy.shape[1] - 1, 1), SEGMENTS_PER_BOX):
+        stretch = xy[:, k:k + SEGMENTS_PER_BOX + 1]
+        inside = _in_box(stretch, qx, qy, reach)
+        dn[inside] = np.minimum(dn[inside], _polyline_distance(
+            [tuple(p) for p in stretch.T], qx[inside], qy[inside]))
+    d[near] = dn
+    return d
+
+
+def _in_box(xy: FloatArray, px: FloatArray, py: FloatArray, reach: float) -> np.ndarray:
+    """Which points ``(px, py)`` [m] lie in the bounding box of ``xy`` ``(2, k)`` [m]
+    widened by ``reach`` [m] and a further 1e-9 of its size (so that rounding cannot drop
+    a point at exactly ``reach``)."""
+    lo, hi = xy.min(axis=1), xy.max(axis=1)
+    pad = reach + 1e-9 * (float((hi - lo).max()) + reach)
+    return ((px >= lo[0] - pad) & (px <= hi[0] + pad)
+            & (py >= lo[1] - pad) & (py <= hi[1] + pad))
 
 
 def _polyline_distance(points: Sequence[tuple[float, float]], px: FloatArray,
@@ -285,13 +321,24 @@ def _polyline_distance(points: Sequence[tuple[float, float]], px: FloatArray,
     return d
 
 
-def corridor_gap(corridor: Corridor, px: FloatArray, py: FloatArray) -> FloatArray:
+def corridor_gap(corridor: Corridor, px: FloatArray, py: FloatArray, *,
+                 within: float = math.inf) -> FloatArray:
     """Signed plan distance [m] from points ``(px, py)`` (any shape) to the corridor's edge:
-    negative inside, positive outside (for drawing its outline)."""
-    gap = np.full(np.shape(px), np.inf)
+    negative inside, positive outside (for drawing its outline).
+
+    ``within`` [m]: the distance is exact where it lies within ±``within``; farther out it
+    is some value above ``within``, farther in some value below −``within`` (points known
+    to be that deep inside are not measured again, and only a strip along each piece is
+    measured). The outline, the zero level, is the same for any ``within`` of at least a
+    raster step times √2: the distance changes by at most the step between neighbouring
+    raster points, so the raster cells the outline crosses have exact corners."""
+    gap = np.full(np.size(px), np.inf)
+    fx, fy = np.ravel(px), np.ravel(py)
     for pc in corridor.pieces:
-        gap = np.minimum(gap, _polyline_distance(pc.points, px, py) - pc.radius)
-    return gap
+        open_ = np.flatnonzero(gap >= -within)  # not yet known to be deep inside
+        gap[open_] = np.minimum(gap[open_], _distance_near(
+            pc.points, fx[open_], fy[open_], reach=pc.radius + within) - pc.radius)
+    return gap.reshape(np.shape(px))
 
 
 def _node_estimate(sizes: FloatArray, cell_area: float, plan_nodes: int, background: float,

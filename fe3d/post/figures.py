@@ -215,7 +215,10 @@ def _draw_corridor(ax: Any, corridor: Corridor, points: FloatArray) -> None:
     step = max(float((hi - lo).max()) / 600.0, 0.25 * min(p.cell_size for p in corridor.pieces))
     gx, gy = (np.arange(lo[k], hi[k] + step, step) for k in (0, 1))
     px, py = np.meshgrid(gx, gy)
-    gap = corridor_gap(corridor, px, py)  # [m] beyond the corridor's edge
+    # [m] beyond the corridor's edge, exact within two raster steps of it (where the zero
+    # contour is traced); farther out only its sign matters, capped to stay finite
+    within = 2.0 * step
+    gap = np.minimum(corridor_gap(corridor, px, py, within=within), 2.0 * within)
     ax.contour(gx, gy, gap, levels=[0.0], colors="darkorange", linewidths=1.0,
                linestyles="--")
     ax.plot([], [], color="darkorange", linestyle="--", linewidth=1.0,

@@ -11,6 +11,7 @@ relative 5e-4.
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -20,8 +21,10 @@ from fe3d.mesh.corridor import (
     CELLS_PER_SPREAD,
     SPREAD,
     Corridor,
+    CorridorPiece,
     PathSample,
     UnitColumn,
+    corridor_gap,
     plan_corridor,
 )
 
@@ -152,3 +155,42 @@ def test_corridor_follows_the_fastest_species_of_a_source() -> None:
     curved = with_changes(alone, species={"parent_sp": {"sorption": "freundlich",
                                                         "freundlich_kf": "0.25 L/kg"}})
     assert _fastest_retardation(curved, "spill", mats, keys) == pytest.approx([1.0])
+
+
+def _segment_distance(px: np.ndarray, py: np.ndarray, a: tuple[float, float],
+                      b: tuple[float, float]) -> np.ndarray:
+    """Distance from points to the segment a–b (elementary geometry: the foot of the
+    perpendicular clamped to the segment's ends)."""
+    (ax, ay), (bx, by) = a, b
+    t = np.clip(((px - ax) * (bx - ax) + (py - ay) * (by - ay))
+                / ((bx - ax) ** 2 + (by - ay) ** 2), 0.0, 1.0)
+    return np.hypot(px - ax - t * (bx - ax), py - ay - t * (by - ay))
+
+
+def test_corridor_gap_near_the_edge_is_the_exact_distance() -> None:
+    """The outline drawn on the head figure is the zero level of ``corridor_gap`` on a
+    raster. Measured only near the pieces (``within``), the gap must equal the distance to
+    the union of discs swept along the pieces wherever it lies within ±``within`` (where
+    the zero contour is traced) and keep its sign elsewhere. Reference: the distance to a
+    segment, min over segments, minus the radius (elementary geometry). Tolerance: 1e-12 of
+    the 500 m box, round-off of a few operations on coordinates of that size."""
+    long_line = tuple((float(x), 50.0) for x in np.linspace(0.0, 400.0, 41))
+    pieces = (CorridorPiece(long_line, radius=6.0, cell_size=2.0),
+              CorridorPiece(((100.0, 20.0), (300.0, 80.0)), radius=3.0, cell_size=1.0))
+    c = Corridor(pieces=pieces, layer_thickness={}, peclet_target=2.0, peclet_reached=2.0,
+                 length=400.0, width_range=(6.0, 12.0), cell_size_range=(1.0, 2.0),
+                 expected_nodes=0)
+    rng = np.random.default_rng(0)
+    px, py = rng.uniform(-20.0, 520.0, 20_000), rng.uniform(0.0, 100.0, 20_000)
+    exact = np.minimum(
+        np.min([_segment_distance(px, py, a, b) for a, b in itertools.pairwise(long_line)],
+               axis=0)
+        - 6.0, _segment_distance(px, py, (100.0, 20.0), (300.0, 80.0)) - 3.0)
+    within = 1.5
+    gap = corridor_gap(c, px, py, within=within)
+    near = np.abs(exact) <= within
+    assert near.sum() > 1000  # the test samples the edge
+    assert np.abs(gap[near] - exact[near]).max() <= 1e-12 * 500.0
+    assert np.all(gap[exact > within] > within)
+    assert np.all(gap[exact < -within] < -within)
+    assert np.abs(corridor_gap(c, px, py) - exact).max() <= 1e-12 * 500.0  # measured all
