@@ -297,6 +297,9 @@ class LinearSolver:
 
     After construction ``method`` holds the resolved choice (``"direct"``,
     ``"gauss_seidel"``, ``"jacobi"`` or ``"amg"``, each valid as a ``method`` argument).
+    With ``"gauss_seidel"`` the attribute ``A`` is then the matrix as an operator on its
+    splitting's own arrays (:class:`fe3d.sgs.SplitMatrix`, products bit for bit those of
+    the CSR matrix): the CSR copy is not kept (one value and one column index per entry).
     ``iterations`` lists the Krylov iterations of every solve (0 for direct); ``stats`` sums
     them up. A BiCGSTAB solve that misses the tolerance (BiCGSTAB can stall, or report
     success above the true residual) switches the solver to AMG-GMRES for that solve,
@@ -331,6 +334,8 @@ class LinearSolver:
             self.method = self._probe()
         if self.method == "amg":
             self._build_amg()
+        if self.method == "gauss_seidel":  # A from its splitting: no second copy of A held
+            self.A = self._sgs().matrix()
         self._window = SolutionWindow(n, window if self.method == "gauss_seidel" else 0)
         self.setup_s = time.perf_counter() - t0
 
@@ -386,6 +391,8 @@ class LinearSolver:
     def _build_amg(self) -> None:
         import pyamg
 
+        if not sp.issparse(self.A):  # held as its Gauss–Seidel splitting until now
+            self.A = self.A.tocsr()
         if self._ml is None:
             self._ml = pyamg.smoothed_aggregation_solver(self.A, symmetry="nonsymmetric",
                                                          smooth=None)

@@ -13,6 +13,7 @@ element matrices put the test node i in the row and the trial node j in the colu
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numba
@@ -22,11 +23,15 @@ import scipy.sparse as sp
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.sgs import split_csr
 
-__all__ = ["MASS_FRACTION", "BoundaryFacets", "CsrPattern", "cell_gradients", "gradients",
-           "length_along", "node_graph", "split_rows", "tensor_gradient", "volumes"]
+__all__ = ["CELL_BLOCK", "MASS_FRACTION", "BoundaryFacets", "CsrPattern", "cell_gradients",
+           "gradients", "length_along", "node_graph", "split_rows", "tensor_gradient", "volumes"]
 
 MASS_FRACTION = (np.ones((4, 4)) + np.eye(4)) / 20.0
 """∫φ_iφ_j dV / V on a tetrahedron (exact for P1)."""
+
+CELL_BLOCK = 1 << 16
+"""Cells per block where a per-cell quantity is formed block by block instead of held for
+every cell (the dispersion tensor: 72 bytes per cell whole, 4.5 MiB per block)."""
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -400,20 +405,22 @@ def _stiffness_kernel(slots: IndexArray, cell_ids: IndexArray, points: FloatArra
 @_jit
 def _transport_kernel(slots: IndexArray, points: FloatArray, cells: IndexArray, m: FloatArray,
                       m_supg: FloatArray, k: FloatArray, q: FloatArray, a: FloatArray,
-                      tau: FloatArray, theta_d: FloatArray, galerkin: bool, supg: bool,
-                      mass: FloatArray, spatial: FloatArray) -> None:
+                      tau: FloatArray, theta_d: FloatArray, first: int, galerkin: bool,
+                      supg: bool, mass: FloatArray, spatial: FloatArray) -> None:
+    """Cells ``first`` to ``first + theta_d.shape[2]``; ``theta_d`` holds their tensors."""
     g = np.empty((4, 3))
     tg = np.empty((4, 3))
     ag = np.empty(4)
     qg = np.empty(4)
-    for e in range(cells.shape[1]):
+    for e in range(first, first + theta_d.shape[2]):
         v = abs(cell_gradients(points, cells, e, g))
+        t = e - first
         for i in range(4):
             ag[i] = a[0, e] * g[i, 0] + a[1, e] * g[i, 1] + a[2, e] * g[i, 2]
             qg[i] = q[0, e] * g[i, 0] + q[1, e] * g[i, 1] + q[2, e] * g[i, 2]
             for c in range(3):
-                tg[i, c] = (theta_d[c, 0, e] * g[i, 0] + theta_d[c, 1, e] * g[i, 1]
-                            + theta_d[c, 2, e] * g[i, 2])
+                tg[i, c] = (theta_d[c, 0, t] * g[i, 0] + theta_d[c, 1, t] * g[i, 1]
+                            + theta_d[c, 2, t] * g[i, 2])
         w = tau[e] * v
         for i in range(4):
             for j in range(4):
@@ -520,15 +527,24 @@ class CsrPattern:
 
     def transport(self, points: FloatArray, cells: IndexArray, *, m: FloatArray,
                   m_supg: FloatArray, k: FloatArray, q: FloatArray, a: FloatArray,
-                  tau: FloatArray, theta_d: FloatArray, galerkin: bool,
-                  supg: bool) -> tuple[sp.csr_matrix, sp.csr_matrix]:
+                  tau: FloatArray, theta_d: FloatArray | Callable[[int, int], FloatArray],
+                  galerkin: bool, supg: bool) -> tuple[sp.csr_matrix, sp.csr_matrix]:
         """Mass and spatial transport operators over all cells (theory.md T1, T2, T4–T6);
         :func:`fe3d.transport.assembly.transport_operators` documents the terms. Gradients
-        are formed cell by cell, never stored."""
+        are formed cell by cell, never stored. ``theta_d`` is the ``(3, 3, n_cells)`` tensor
+        per cell, or a function giving it for the cells ``start:stop``, called for blocks of
+        :data:`CELL_BLOCK` cells in order (the sums are the same, bit for bit, as with the
+        whole array: cells are added in the same order)."""
         mass, spatial = np.zeros(self.nnz), np.zeros(self.nnz)
         f = np.asarray
-        _transport_kernel(self.slots, *_pc(points, cells), f(m, dtype=float),
-                          f(m_supg, dtype=float), f(k, dtype=float), f(q, dtype=float),
-                          f(a, dtype=float), f(tau, dtype=float), f(theta_d, dtype=float),
-                          galerkin, supg, mass, spatial)
+        n_cells = cells.shape[1]
+        blocks = [(0, n_cells)] if not callable(theta_d) else [
+            (s, min(s + CELL_BLOCK, n_cells)) for s in range(0, n_cells, CELL_BLOCK)]
+        pc = _pc(points, cells)
+        coefficients = (f(m, dtype=float), f(m_supg, dtype=float), f(k, dtype=float),
+                        f(q, dtype=float), f(a, dtype=float), f(tau, dtype=float))
+        for start, stop in blocks:
+            tensors = theta_d(start, stop) if callable(theta_d) else theta_d
+            _transport_kernel(self.slots, *pc, *coefficients, f(tensors, dtype=float), start,
+                              galerkin, supg, mass, spatial)
         return self.matrix(mass), self.matrix(spatial)

@@ -27,7 +27,7 @@ import scipy.sparse.linalg as spla
 
 from fe3d._typing import FloatArray, IndexArray
 
-__all__ = ["SymmetricGaussSeidel", "plus_diagonal", "split_csr"]
+__all__ = ["SplitMatrix", "SymmetricGaussSeidel", "plus_diagonal", "split_csr"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -203,6 +203,77 @@ def _upper_product(up: IndexArray, ui: IndexArray, ud: FloatArray, d: FloatArray
         out[i] = s
 
 
+@_jit
+def _full_product(lp: IndexArray, li: IndexArray, ld: FloatArray, up: IndexArray,
+                  ui: IndexArray, ud: FloatArray, diagonal: FloatArray, v: FloatArray,
+                  out: FloatArray) -> None:
+    """out = (L + D + U) v, each row summed from zero in column order (lower part, the
+    diagonal, upper part): the order, and so the rounding, of scipy's CSR product of the
+    whole matrix with sorted columns."""
+    for i in range(v.size):
+        s = 0.0
+        for p in range(lp[i], lp[i + 1]):
+            s += ld[p] * v[li[p]]
+        s += diagonal[i] * v[i]
+        for p in range(up[i], up[i + 1]):
+            s += ud[p] * v[ui[p]]
+        out[i] = s
+
+
+@_jit
+def _joined(lp: IndexArray, li: IndexArray, ld: FloatArray, up: IndexArray, ui: IndexArray,
+            ud: FloatArray, diagonal: FloatArray) -> tuple[IndexArray, IndexArray, FloatArray]:
+    """The CSR arrays of L + D + U (sorted columns)."""
+    n = diagonal.size
+    indptr = np.empty(n + 1, np.int64)
+    indptr[0] = 0
+    for i in range(n):
+        indptr[i + 1] = indptr[i] + (lp[i + 1] - lp[i]) + 1 + (up[i + 1] - up[i])
+    indices = np.empty(indptr[n], np.int32)
+    data = np.empty(indptr[n])
+    for i in range(n):
+        k = indptr[i]
+        for p in range(lp[i], lp[i + 1]):
+            indices[k], data[k] = li[p], ld[p]
+            k += 1
+        indices[k], data[k] = i, diagonal[i]
+        k += 1
+        for p in range(up[i], up[i + 1]):
+            indices[k], data[k] = ui[p], ud[p]
+            k += 1
+    return indptr, indices, data
+
+
+class SplitMatrix(spla.LinearOperator):
+    """The matrix A = L + D + U that a :class:`SymmetricGaussSeidel` was built from, as an
+    operator on the splitting's own arrays (no copy of A kept). Its product has the
+    rounding of scipy's CSR product of A, bit for bit; :meth:`tocsr` rebuilds A (rare:
+    a method that needs the matrix itself, such as an AMG fallback)."""
+
+    def __init__(self, split: SymmetricGaussSeidel) -> None:
+        super().__init__(dtype=np.dtype(float), shape=(split.n, split.n))
+        self.split = split
+
+    def _matvec(self, x: FloatArray) -> FloatArray:
+        g = self.split
+        out = np.empty(g.n)
+        _full_product(*g.lower, *g.upper, g.diagonal,
+                      np.ascontiguousarray(x, dtype=float).ravel(), out)
+        return out
+
+    def diagonal(self) -> FloatArray:
+        """The diagonal of A."""
+        return self.split.diagonal.copy()
+
+    def tocsr(self) -> sp.csr_matrix:
+        """A as a new CSR matrix (sorted columns)."""
+        indptr, indices, data = _joined(*self.split.lower, *self.split.upper,
+                                        self.split.diagonal)
+        A = sp.csr_matrix((data, indices, indptr), shape=self.shape)
+        A.has_sorted_indices = True
+        return A
+
+
 def plus_diagonal(A: sp.csr_matrix, d: FloatArray) -> sp.csr_matrix:
     """A + diag(d) on A's own pattern when A stores its whole diagonal (index arrays shared,
     only the values new: a Newton Jacobian J = S + diag without scipy's merge); otherwise by
@@ -220,7 +291,9 @@ class SymmetricGaussSeidel:
     """SGS (``omega`` = 1) or SSOR (0 < ``omega`` < 2) splitting of a square CSR matrix
     with a nonzero diagonal (``ValueError`` otherwise); column indices are sorted on a copy
     when they are not. Holds the strictly lower and upper parts as two CSR arrays (about
-    the memory of A once more). ``d`` is the relaxed diagonal D/ω."""
+    the memory of A once more) and the diagonal D: together the whole of A, which
+    :meth:`matrix` gives as an operator so that the caller need not keep A. ``d`` is the
+    relaxed diagonal D/ω."""
 
     def __init__(self, A: sp.csr_matrix, omega: float = 1.0) -> None:
         A = A.tocsr()
@@ -236,14 +309,19 @@ class SymmetricGaussSeidel:
             msg = f"relaxation factor omega = {omega!r}: expected 0 < omega < 2"
             raise ValueError(msg)
         self.omega = float(omega)
-        self.d = data[dpos] / self.omega  # the relaxed diagonal D/ω
+        self.diagonal = data[dpos]  # D itself: with L and U the whole of A (SplitMatrix)
+        self.d = self.diagonal / self.omega  # the relaxed diagonal D/ω
         self.inv_d = 1.0 / self.d
-        self.e = 2.0 * self.d - data[dpos]
+        self.e = 2.0 * self.d - self.diagonal
         self.n = A.shape[0]
         all_rows = np.arange(self.n, dtype=np.int64)
         lp, li, ld, up, ui, ud = split_csr(A, all_rows, None, all_rows)
-        self._lower = (lp, li, ld)
-        self._upper = (up, ui, ud)
+        self.lower = (lp, li, ld)
+        self.upper = (up, ui, ud)
+
+    def matrix(self) -> SplitMatrix:
+        """A as an operator on the splitting's arrays, so that A need not be kept."""
+        return SplitMatrix(self)
 
     def preconditioner(self) -> spla.LinearOperator:
         """M⁻¹ = (D/ω + U)⁻¹ D/ω (D/ω + L)⁻¹ as an operator (one forward and one backward pass)."""
@@ -251,11 +329,11 @@ class SymmetricGaussSeidel:
 
         def apply(v: FloatArray) -> FloatArray:
             t = np.empty(n)
-            _lower_solve(*self._lower, self.inv_d,
+            _lower_solve(*self.lower, self.inv_d,
                          np.ascontiguousarray(v, dtype=float).ravel(), t)
             t *= self.d
             out = np.empty(n)
-            _upper_solve(*self._upper, self.inv_d, t, out)
+            _upper_solve(*self.upper, self.inv_d, t, out)
             return out
 
         return spla.LinearOperator((n, n), matvec=apply, dtype=float)
@@ -264,19 +342,19 @@ class SymmetricGaussSeidel:
         """Â v = M_L⁻¹ A M_R⁻¹ v by Eisenstat's product (module docstring): one backward and
         one forward pass; ``v`` contiguous float64."""
         out, w = np.empty(self.n), np.empty(self.n)
-        _split_product(*self._lower, *self._upper, self.d, self.inv_d, self.e, v, w, out)
+        _split_product(*self.lower, *self.upper, self.d, self.inv_d, self.e, v, w, out)
         return out
 
     def left(self, b: FloatArray) -> FloatArray:
         """M_L⁻¹ b = D/ω (D/ω + L)⁻¹ b."""
         out = np.empty(self.n)
-        _lower_solve(*self._lower, self.inv_d, np.ascontiguousarray(b, dtype=float), out)
+        _lower_solve(*self.lower, self.inv_d, np.ascontiguousarray(b, dtype=float), out)
         return out * self.d
 
     def left_pair(self, b: FloatArray, r: FloatArray) -> tuple[FloatArray, FloatArray]:
         """(M_L⁻¹ b, M_L⁻¹ r) in one pass over the lower triangle."""
         out1, out2 = np.empty(self.n), np.empty(self.n)
-        _lower_solve_pair(*self._lower, self.inv_d, np.ascontiguousarray(b, dtype=float),
+        _lower_solve_pair(*self.lower, self.inv_d, np.ascontiguousarray(b, dtype=float),
                           np.ascontiguousarray(r, dtype=float), out1, out2)
         out1 *= self.d
         out2 *= self.d
@@ -285,11 +363,11 @@ class SymmetricGaussSeidel:
     def right(self, x: FloatArray) -> FloatArray:
         """M_R x = (D/ω + U) x."""
         out = np.empty(self.n)
-        _upper_product(*self._upper, self.d, np.ascontiguousarray(x, dtype=float), out)
+        _upper_product(*self.upper, self.d, np.ascontiguousarray(x, dtype=float), out)
         return out
 
     def right_solve(self, y: FloatArray) -> FloatArray:
         """M_R⁻¹ y = (D/ω + U)⁻¹ y."""
         out = np.empty(self.n)
-        _upper_solve(*self._upper, self.inv_d, np.ascontiguousarray(y, dtype=float), out)
+        _upper_solve(*self.upper, self.inv_d, np.ascontiguousarray(y, dtype=float), out)
         return out

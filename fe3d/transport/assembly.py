@@ -15,6 +15,8 @@ round-off (tested), at a fraction of the time and memory: the compiled kernel of
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 import scipy.sparse as sp
 
@@ -28,7 +30,8 @@ P1_MASS = MASS_FRACTION  # ∫φ_iφ_j dV / V on a tetrahedron
 
 def transport_operators(
     points: FloatArray, cells: IndexArray, *, m: FloatArray, k: FloatArray,
-    q: FloatArray, a: FloatArray, tau: FloatArray, theta_d: FloatArray, n: int,
+    q: FloatArray, a: FloatArray, tau: FloatArray,
+    theta_d: FloatArray | Callable[[int, int], FloatArray], n: int,
     m_supg: FloatArray | None = None, parts: str = "all",
     pattern: CsrPattern | None = None,
 ) -> tuple[sp.csr_matrix, sp.csr_matrix]:
@@ -47,7 +50,9 @@ def transport_operators(
     tau
         SUPG parameter [s] per cell, ``(e,)``.
     theta_d
-        θD [m²/s] per cell, ``(3, 3, e)``.
+        θD [m²/s] per cell, ``(3, 3, e)``, or a function giving it for the cells
+        ``start:stop`` (called block by block, so that it is never held for every cell;
+        :class:`fe3d.transport.model.Dispersion`).
     m_supg
         Storage coefficient of the SUPG storage term when it differs from ``m`` (nonlinear
         sorption: the Galerkin storage holds θ, the sorbed part is added outside).

@@ -8,24 +8,24 @@ parents before daughters. Pure data and pointwise laws: no operators, no time st
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
 
-from fe3d._typing import FloatArray
+from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.parts import Ground, TransportInputs
-from fe3d.case.schema import Species
+from fe3d.case.schema import Material, Species
 from fe3d.flow.solve import FlowField
 from fe3d.mesh.materials import cell_values, unit_materials
 from fe3d.mesh.site_mesh import SiteMesh
-from fe3d.p1 import BoundaryFacets, length_along, volumes
+from fe3d.p1 import CELL_BLOCK, BoundaryFacets, length_along, volumes
 from fe3d.reactions import kinetics, sorption
 from fe3d.transport.dispersion import dispersion_tensor
 
-__all__ = ["Coefficients", "Isotherm", "MediumFields", "SpeciesModel", "build_medium",
-           "build_species", "lumped"]
+__all__ = ["Coefficients", "Dispersion", "Isotherm", "MediumFields", "SpeciesModel",
+           "build_medium", "build_species", "lumped"]
 
 RATE_LAWS = {"second_order": kinetics.second_order, "monod": kinetics.monod}
 ISOTHERMS = {"linear": sorption.linear, "freundlich": sorption.freundlich,
@@ -42,36 +42,89 @@ def lumped(site: SiteMesh, per_cell_volume_weighted: FloatArray) -> FloatArray:
 
 
 @dataclass(frozen=True)
+class Dispersion:
+    """What θD (T4) is formed from, block by block where it is needed and never held for
+    every cell (``(3, 3, n_cells)`` float64 is 72 bytes per cell, 407 MiB at 1 M nodes):
+    the Darcy flux q [m/s] ``(3, n_cells)`` and the porosity θ [-] per cell (the flow
+    field's own arrays, not copies), the unit of each cell, and per unit α_L, α_TH, α_TV
+    [m] and D* = D_m τ [m²/s]."""
+
+    darcy_flux: FloatArray
+    porosity: FloatArray
+    cell_unit: IndexArray
+    longitudinal: FloatArray
+    transverse_horizontal: FloatArray
+    transverse_vertical: FloatArray
+    effective_diffusion: FloatArray
+
+    @property
+    def n_cells(self) -> int:
+        """Number of cells."""
+        return int(self.porosity.size)
+
+    def of_cells(self, start: int, stop: int) -> FloatArray:
+        """θD [m²/s] of the cells ``start:stop``, shape ``(3, 3, stop − start)``: the same
+        values, bit for bit, as the tensor of the seepage velocity q/θ over every cell."""
+        u = self.cell_unit[start:stop]
+        theta = self.porosity[start:stop]
+        d = dispersion_tensor(self.darcy_flux[:, start:stop] / theta,
+                              alpha_l=self.longitudinal[u],
+                              alpha_th=self.transverse_horizontal[u],
+                              alpha_tv=self.transverse_vertical[u],
+                              d_eff=self.effective_diffusion[u])
+        return np.multiply(d, theta, out=d)
+
+    def blocks(self) -> Iterator[tuple[int, int]]:
+        """(start, stop) of consecutive blocks of at most :data:`fe3d.p1.CELL_BLOCK` cells."""
+        n = self.n_cells
+        for start in range(0, n, CELL_BLOCK):
+            yield start, min(start + CELL_BLOCK, n)
+
+    def along(self, a: FloatArray) -> FloatArray:
+        """aᵀ(θD)a [m⁴/s³] per cell for a velocity ``a`` ``(3, n_cells)``."""
+        out = np.empty(self.n_cells)
+        for start, stop in self.blocks():
+            part = np.ascontiguousarray(a[:, start:stop])
+            out[start:stop] = np.einsum("ie,ije,je->e", part, self.of_cells(start, stop),
+                                        part)
+        return out
+
+
+@dataclass(frozen=True)
 class MediumFields:
     """Fields shared by every species: porosity θ [-], bulk density ρ_b [kg/m³], signed cell
-    volume [m³] per cell, θD [m²/s] shape ``(3, 3, n_cells)``, and the outflow of water on the
-    fixed-head faces and at the budget items that take water out (T3b): nodal weights
-    [m³/s] per item and their sum as a diagonal-plus-face matrix. (The seepage velocity is
-    the flow field's, formed where it is needed: not held through the run.)"""
+    volume [m³] per cell, what θD [m²/s] is formed from (:class:`Dispersion`), and the
+    outflow of water on the fixed-head faces and at the budget items that take water out
+    (T3b): nodal weights [m³/s] per item and their sum as a diagonal-plus-face matrix.
+    (The seepage velocity is the flow field's, formed where it is needed: not held through
+    the run.)"""
 
     porosity: FloatArray
     bulk_density: FloatArray
     cell_volume: FloatArray
-    theta_dispersion: FloatArray
+    dispersion: Dispersion
     material_names: list[str]
     outflow_weights: dict[str, FloatArray]
     outflow_matrix: sp.csr_matrix
 
 
+def _unit_values(materials: list[Material], attribute: str) -> FloatArray:
+    """``attribute`` of each unit's material, shape ``(n_units,)``."""
+    return np.array([float(getattr(m, attribute)) for m in materials])
+
+
 def build_medium(site: SiteMesh, flow: FlowField, ground: Ground) -> MediumFields:
-    """Porosity, bulk density, θD and the outflow terms per cell and node (T3b, T4)."""
+    """Porosity, bulk density, θD's parts and the outflow terms per cell and node (T3b, T4)."""
     n = site.n_nodes
     mats, mat_names = unit_materials(ground, site)
     theta = flow.porosity
     q = flow.darcy_flux
-    D = dispersion_tensor(
-        flow.seepage_velocity,
-        alpha_l=cell_values(mats, site, "longitudinal_dispersivity"),
-        alpha_th=cell_values(mats, site, "transverse_dispersivity"),
-        alpha_tv=cell_values(mats, site, "alpha_vertical"),
-        d_eff=cell_values(mats, site, "effective_diffusion"),
-    )
-    theta_d = np.multiply(D, theta, out=D)  # θD in place: one (3, 3, cells) array less
+    dispersion = Dispersion(
+        darcy_flux=q, porosity=theta, cell_unit=site.cell_layer,
+        longitudinal=_unit_values(mats, "longitudinal_dispersivity"),
+        transverse_horizontal=_unit_values(mats, "transverse_dispersivity"),
+        transverse_vertical=_unit_values(mats, "alpha_vertical"),
+        effective_diffusion=_unit_values(mats, "effective_diffusion"))
     facets = {name: BoundaryFacets.of(site.points, site.cells, site.faces[name])
               for name in flow.fixed_head_nodes}
     qn_out = {name: np.clip(fb.normal_flux(q), 0.0, None) for name, fb in facets.items()}
@@ -84,7 +137,7 @@ def build_medium(site: SiteMesh, flow: FlowField, ground: Ground) -> MediumField
             matrix = matrix + sp.diags(out_rate)
     return MediumFields(
         porosity=theta, bulk_density=cell_values(mats, site, "bulk_density"),
-        cell_volume=volumes(site.points, site.cells), theta_dispersion=theta_d,
+        cell_volume=volumes(site.points, site.cells), dispersion=dispersion,
         material_names=mat_names, outflow_weights=weights,
         outflow_matrix=sp.csr_matrix(matrix))
 
@@ -224,7 +277,7 @@ def build_species(site: SiteMesh, flow: FlowField, inputs: TransportInputs,
         k = lam * (m if spec.decay_in_sorbed_phase and not isotherms else theta)
         a = q / m
         speed2 = np.sum(a * a, axis=0)
-        along = np.einsum("ie,ije,je->e", a, medium.theta_dispersion, a)
+        along = medium.dispersion.along(a)
         kappa = np.divide(along, speed2 * m, out=np.zeros_like(m), where=speed2 > 0)
         h = length_along(site.points, site.cells, a)
         out.append(SpeciesModel(

@@ -41,6 +41,7 @@ def _with_diagonal(split: SymmetricGaussSeidel, extra: FloatArray) -> SymmetricG
     if not np.all(diagonal != 0.0) or not np.all(np.isfinite(diagonal)):
         return None
     out = copy.copy(split)  # shares the triangular parts; d, inv_d, e are new arrays
+    out.diagonal = diagonal
     out.d = diagonal / split.omega
     out.inv_d = 1.0 / out.d
     out.e = 2.0 * out.d - diagonal

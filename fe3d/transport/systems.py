@@ -183,7 +183,7 @@ class StepSystems:
         c = s.coefficients
         nonlinear_sorption = bool(s.isotherms)
         return {"m": self.medium.porosity if nonlinear_sorption else c.storage, "k": c.decay,
-                "q": self.q, "a": c.velocity, "theta_d": self.medium.theta_dispersion,
+                "q": self.q, "a": c.velocity, "theta_d": self.medium.dispersion.of_cells,
                 "n": self.site.n_nodes, "m_supg": c.storage if nonlinear_sorption else None}
 
     def galerkin(self, s: SpeciesModel) -> tuple[sp.csr_matrix, sp.csr_matrix]:

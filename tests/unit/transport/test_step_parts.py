@@ -18,6 +18,7 @@ from fe3d.errors import SolverError
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.transport.model import (
     Coefficients,
+    Dispersion,
     MediumFields,
     SpeciesModel,
     lumped,
@@ -105,7 +106,11 @@ def _context(site: SiteMesh, q: np.ndarray, *, half_life_days: float | None, sch
     vol = site.cell_volumes()
     medium = MediumFields(
         porosity=np.full(e, theta), bulk_density=np.zeros(e), cell_volume=vol,
-        theta_dispersion=np.zeros((3, 3, e)),
+        dispersion=Dispersion(darcy_flux=q, porosity=np.full(e, theta),
+                              cell_unit=np.zeros(e, dtype=np.int64), longitudinal=np.zeros(1),
+                              transverse_horizontal=np.zeros(1),
+                              transverse_vertical=np.zeros(1),
+                              effective_diffusion=np.zeros(1)),
         material_names=["m"], outflow_weights={}, outflow_matrix=_zeros(n))
     lam = 0.0 if half_life_days is None else math.log(2) / (half_life_days * DAY)
     spec = Species(limit="1 mg/L", half_life=None if half_life_days is None
