@@ -78,14 +78,15 @@ def _ratios(rows: IndexArray, sums: FloatArray, ranges: FloatArray, lumped: Floa
 
 
 @numba.njit(cache=True, nogil=True)
-def _first_sweep(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
+def _first_sweep(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatArray,
                  low: FloatArray, low_t: FloatArray, c_low: FloatArray, rate: FloatArray,
                  c_mean: FloatArray, cap: FloatArray, f: FloatArray, sums: FloatArray,
                  ranges: FloatArray) -> None:
     """The raw fluxes f_ij towards the target (T16b) into ``f``, with the first pass's flux
     sums P_i^± and ranges Q_i^± of c_L (the upper end raised to ``cap``) into ``sums`` and
     ``ranges`` (2i, 2i + 1), in one sweep over the CSR arrays. No prelimiting: dropping the
-    fluxes that run down the gradient of c_L removed the target's own spreading (T16b)."""
+    fluxes that run down the gradient of c_L removed the target's own spreading (T16b).
+    The added diffusion d_ij = l_ij − k_ij is formed from L and the Galerkin K (``k``)."""
     for i in range(c_low.size):
         x_i = c_low[i] - c_mean[i]
         ci = c_low[i]
@@ -95,7 +96,7 @@ def _first_sweep(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatAr
             j = cols[p]
             fij = 0.0
             if j != i:
-                fij = (m[p] * (rate[i] - rate[j]) - d[p] * (c_mean[i] - c_mean[j])
+                fij = (m[p] * (rate[i] - rate[j]) - (low[p] - k[p]) * (c_mean[i] - c_mean[j])
                        + low[p] * (c_low[j] - c_mean[j]) - low_t[p] * x_i)
             f[p] = fij
             p_plus += max(fij, 0.0)
@@ -176,7 +177,7 @@ def _still_open(rows: IndexArray, sums: FloatArray, lumped: FloatArray, dt: floa
 
 
 @numba.njit(cache=True, nogil=True)
-def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
+def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatArray,
            low: FloatArray, low_t: FloatArray, c_low: FloatArray, rate: FloatArray,
            c_mean: FloatArray, cap: FloatArray, lumped: FloatArray, dt: float,
            held: np.ndarray, blocked: np.ndarray, passes: int, stop: float, floor: float,
@@ -193,7 +194,7 @@ def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
     n, nnz = lumped.size, cols.size
     f = work[:nnz]
     r, sums, ranges = work[nnz:nnz + 2 * n], work[nnz + 2 * n:nnz + 4 * n], work[nnz + 4 * n:]
-    _first_sweep(indptr, cols, m, d, low, low_t, c_low, rate, c_mean, cap, f, sums, ranges)
+    _first_sweep(indptr, cols, m, k, low, low_t, c_low, rate, c_mean, cap, f, sums, ranges)
     rows = np.arange(n).astype(indptr.dtype)
     used, swept = 1, n
     while True:
@@ -210,13 +211,14 @@ def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, d: FloatArray,
 @dataclass(frozen=True)
 class TargetFluxes:
     """The operators the correction towards a high-order target needs, on one CSR pattern:
-    the consistent mass M, the diffusion D that the low-order operator added (T16,
-    nonpositive off-diagonal entries), the low-order operator L = K + D and its transpose's
-    values on the same pattern, the lumped mass m_L (row sums of M) and L's column sums
-    [m³/s] (the nodal decay and outflow: the sinks)."""
+    the consistent mass M, the Galerkin spatial operator K, the low-order operator L = K + D
+    (D the diffusion it added, T16, nonpositive off-diagonal entries: formed as L − K where
+    it is read, not held) and its transpose's values on the same pattern, the lumped mass
+    m_L (row sums of M) and L's column sums [m³/s] (the nodal decay and outflow: the
+    sinks)."""
 
     mass: sp.csr_matrix
-    diffusion: sp.csr_matrix
+    galerkin: sp.csr_matrix
     low_order: sp.csr_matrix
     low_order_transposed: FloatArray
     lumped: FloatArray
@@ -233,6 +235,12 @@ class TargetFluxes:
         need = self.mass.indices.size + 6 * self.lumped.size
         return self.work if self.work.size == need else np.empty(need)
 
+    @property
+    def diffusion(self) -> sp.csr_matrix:
+        """D = L − K, a new matrix on the same pattern."""
+        return sp.csr_matrix((self.low_order.data - self.galerkin.data, self.low_order.indices,
+                              self.low_order.indptr), shape=self.low_order.shape)
+
     @classmethod
     def of(cls, mass: sp.csr_matrix, galerkin: sp.csr_matrix,
            low_order: sp.csr_matrix) -> TargetFluxes:
@@ -244,13 +252,11 @@ class TargetFluxes:
                 and np.array_equal(lt.indices, low_order.indices)):
             msg = "the operators must share one structurally symmetric CSR pattern"
             raise ValueError(msg)
-        diffusion = sp.csr_matrix((low_order.data - galerkin.data, low_order.indices,
-                                   low_order.indptr), shape=low_order.shape)
-        return cls(mass=mass, diffusion=diffusion, low_order=low_order,
+        return cls(mass=mass, galerkin=galerkin, low_order=low_order,
                    low_order_transposed=np.ascontiguousarray(lt.data),
                    lumped=np.asarray(mass.sum(axis=1)).ravel(),
                    sink=np.asarray(low_order.sum(axis=0)).ravel(),
-                   exchange=diffusion.diagonal(),
+                   exchange=low_order.diagonal() - galerkin.diagonal(),
                    work=np.empty(low_order.indices.size + 6 * low_order.shape[0]))
 
 
@@ -353,7 +359,7 @@ def linearised_target(ops: TargetFluxes, c_low: FloatArray, c_old: FloatArray, d
     mean = theta * c_low + (1.0 - theta) * c_old
     residual, rate = np.empty(n), np.empty(n)
     _galerkin_residual(ops.mass.indptr, ops.mass.indices, ops.low_order.data,
-                       ops.diffusion.data, c_low, mean, c_old, ops.lumped, float(dt), held,
+                       ops.galerkin.data, c_low, mean, c_old, ops.lumped, float(dt), held,
                        residual, rate)
     other = np.empty(n)
     for _ in range(sweeps):
@@ -364,18 +370,19 @@ def linearised_target(ops: TargetFluxes, c_low: FloatArray, c_old: FloatArray, d
 
 
 @numba.njit(cache=True, nogil=True)
-def _galerkin_residual(indptr: IndexArray, cols: IndexArray, low: FloatArray, d: FloatArray,
+def _galerkin_residual(indptr: IndexArray, cols: IndexArray, low: FloatArray, k: FloatArray,
                        c_low: FloatArray, mean: FloatArray, c_old: FloatArray,
                        lumped: FloatArray, dt: float, held: np.ndarray, residual: FloatArray,
                        rate: FloatArray) -> None:
     """b − K ĉ = M_L(c_L − cⁿ)/Δt + L(c_L − ĉ) + D ĉ per row into ``residual`` [kg/s] and
-    its lumped rate M_L⁻¹(b − K ĉ) into ``rate`` (at held nodes (c_L − cⁿ)/Δt)."""
+    its lumped rate M_L⁻¹(b − K ĉ) into ``rate`` (at held nodes (c_L − cⁿ)/Δt); D = L − K
+    from L (``low``) and K (``k``)."""
     for i in range(lumped.size):
         own = (c_low[i] - c_old[i]) / dt
         s = 0.0
         for p in range(indptr[i], indptr[i + 1]):
             j = cols[p]
-            s += low[p] * (c_low[j] - mean[j]) + d[p] * mean[j]
+            s += low[p] * (c_low[j] - mean[j]) + (low[p] - k[p]) * mean[j]
         residual[i] = lumped[i] * own + s
         rate[i] = own if held[i] else residual[i] / lumped[i]
 
@@ -411,7 +418,7 @@ def _correct(ops: TargetFluxes, c_low: FloatArray, target: TargetStep, c_old: Fl
     cap = np.full(n, -np.inf) if upper is None else np.asarray(upper, dtype=float)
     rate, c_mean = target.rate, target.mean
     scale = max(float(np.max(np.abs(c_low))), float(np.max(np.abs(c_old + dt * rate))))
-    used, swept = _limit(indptr, cols, ops.mass.data, ops.diffusion.data,
+    used, swept = _limit(indptr, cols, ops.mass.data, ops.galerkin.data,
                          ops.low_order.data, ops.low_order_transposed, c_low, rate, c_mean,
                          cap, ops.lumped, float(dt), held, blocked, passes,
                          PASS_TOLERANCE * scale, CLOSE_TOLERANCE * scale, c, total,
@@ -475,7 +482,7 @@ def raw_flux_sums(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray,
     rate, c_mean = _rate_and_mean(np.asarray(c_high, dtype=float),
                                   np.asarray(c_old, dtype=float), dt, theta)
     f, sums, ranges = np.empty(ops.mass.indices.size), np.empty(2 * n), np.empty(2 * n)
-    _first_sweep(ops.mass.indptr, ops.mass.indices, ops.mass.data, ops.diffusion.data,
+    _first_sweep(ops.mass.indptr, ops.mass.indices, ops.mass.data, ops.galerkin.data,
                  ops.low_order.data, ops.low_order_transposed, c_low, rate, c_mean,
                  np.full(n, -np.inf), f, sums, ranges)
     rows = np.repeat(np.arange(n), np.diff(ops.mass.indptr))

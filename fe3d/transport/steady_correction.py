@@ -122,8 +122,9 @@ def steady_correction(ops: TargetFluxes, solve: Callable[[FloatArray, FloatArray
     n = low.size
     held = np.zeros(n, dtype=np.bool_)
     held[fixed] = True
-    d = -ops.diffusion.data
-    indptr, cols = ops.diffusion.indptr, ops.diffusion.indices
+    diffusion = ops.diffusion
+    d = -diffusion.data
+    indptr, cols = diffusion.indptr, diffusion.indices
     free = ~held
     x = low.copy()
     history: list[tuple[FloatArray, FloatArray]] = []

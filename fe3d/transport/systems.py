@@ -20,6 +20,7 @@ from fe3d.case.schema import SolverControl, TimeControl
 from fe3d.linalg import LinearSolver, solve_with_preconditioner
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import split_rows
+from fe3d.sgs import ScaledMatrix
 from fe3d.transport.assembly import monotone_operators, transport_operators
 from fe3d.transport.limiter import TargetFluxes
 from fe3d.transport.model import MediumFields, SpeciesModel
@@ -64,11 +65,12 @@ class NearbySolver:
 class StepSystem:
     """The step matrix S = a0/Δt M + θK of one species, split by held/free nodes, with its
     solver (factor or preconditioner), the mass operator M (``lumped``: its diagonal when
-    M is lumped, T16, else None) and the explicit part ``explicit_part`` = (θ − 1)K (None
+    M is lumped, T16, else None) and the explicit part ``explicit_part`` = (θ − 1)K (an
+    operator on K's own arrays, :class:`fe3d.sgs.ScaledMatrix`; None
     for θ = 1)."""
 
     S: sp.csr_matrix
-    explicit_part: sp.csr_matrix | None
+    explicit_part: sp.csr_matrix | ScaledMatrix | None
     M: sp.csr_matrix
     lumped: FloatArray | None
     solver: LinearSolver | NearbySolver
@@ -127,6 +129,13 @@ class StepSystems:
         self.scheme, self.time, self.solver = scheme, time, solver
         self.held_nodes = held_nodes
         self._cache: dict[str, _SpeciesCache] = {}
+        self._diagonal: IndexArray | None = None
+
+    def _diagonal_positions(self) -> IndexArray:
+        """Positions of the diagonal in the mesh pattern's value array (built once)."""
+        if self._diagonal is None:
+            self._diagonal = self.site.pattern.diagonal_positions()
+        return self._diagonal
 
     def _of(self, s: SpeciesModel) -> _SpeciesCache:
         return self._cache.setdefault(s.name, _SpeciesCache())
@@ -149,7 +158,8 @@ class StepSystems:
 
     def operators(self, s: SpeciesModel, dt_tau: float) -> tuple[sp.csr_matrix, sp.csr_matrix]:
         """Mass and spatial operators (T1–T6, outflow included) with τ built for dt_tau, or
-        with ``solver.monotone`` the low-order ones of T16 (no τ).
+        with ``solver.monotone`` the low-order ones of T16 (no τ; the lumped mass as a
+        diagonal matrix of its own, not on the mesh pattern).
 
         The Galerkin part does not depend on the step length and is built once per species;
         a new step length rebuilds only the SUPG part (T6)."""
@@ -158,7 +168,9 @@ class StepSystems:
             if not cache.operators:
                 M0, K0 = self.galerkin(s)
                 ML, KD = monotone_operators(M0, K0)
-                cache.operators[0.0] = (ML, KD)
+                # the lumped mass as its diagonal alone: not a value per entry of the pattern
+                cache.operators[0.0] = (sp.diags(ML.diagonal(), format="csr"), KD)
+                del ML
                 if self.limited(s):  # the Galerkin operators are the target's (T16b)
                     cache.limiter = TargetFluxes.of(M0, K0, KD)
                 else:
@@ -215,9 +227,15 @@ class StepSystems:
                active: tuple[str, ...], tol: float | None = None,
                lumped: bool = False) -> StepSystem:
         """S = a0/Δt M + θK split by held and free nodes, with its solver (relative
-        tolerance ``tol``, default ``solver.tolerance``); ``lumped``: M is diagonal."""
+        tolerance ``tol``, default ``solver.tolerance``); ``lumped``: M is a diagonal
+        matrix (its own pattern), else M is on the mesh's pattern."""
         pattern, n = self.site.pattern, self.site.n_nodes
-        S = pattern.matrix((formula.a0 / dt) * M.data + formula.theta * K.data)
+        if lumped:  # M is a diagonal matrix of its own: added at K's diagonal positions
+            data = formula.theta * K.data
+            data[self._diagonal_positions()] += (formula.a0 / dt) * M.diagonal()
+            S = pattern.matrix(data)
+        else:
+            S = pattern.matrix((formula.a0 / dt) * M.data + formula.theta * K.data)
         is_fixed = np.zeros(n, dtype=bool)
         for name in active:
             is_fixed[self.held_nodes[name]] = True
@@ -226,7 +244,7 @@ class StepSystems:
         S_ff, S_fD = split_rows(S, free, fixed)
         solver = LinearSolver(S_ff, method=self.solver.linear_solver,
                               tol=self.solver.tolerance if tol is None else tol)
-        explicit = None if formula.theta == 1.0 else pattern.matrix((formula.theta - 1.0) * K.data)
+        explicit = None if formula.theta == 1.0 else ScaledMatrix(K, formula.theta - 1.0)
         return StepSystem(S=S, explicit_part=explicit, M=M,
                           lumped=M.diagonal() if lumped else None, solver=solver,
                           free=free, fixed=fixed, S_fD=S_fD)

@@ -98,7 +98,7 @@ def test_inexact_newton_forcing_terms_follow_the_formula_and_the_residual_meets_
 def _second_order_species(n: int, rate: float) -> SpeciesModel:
     """A species of second-order decay r = −k c|c| on n nodes of unit pore volume."""
     one = np.ones(n)
-    coefficients = Coefficients(storage=one, decay=0 * one, velocity=np.zeros((3, n)),
+    coefficients = Coefficients(storage=one, decay=0 * one, darcy_flux=np.zeros((3, n)),
                                 along_flow_diffusivity=0 * one, reaction_rate=0 * one,
                                 element_length=one, courant_rate=1.0)
     return SpeciesModel(name="s", spec=Species(limit="1 mg/L"), coefficients=coefficients,

@@ -121,7 +121,7 @@ def _context(site: SiteMesh, q: np.ndarray, *, half_life_days: float | None, sch
     model = SpeciesModel(
         name="s", spec=spec,
         coefficients=Coefficients(storage=np.full(e, theta), decay=np.full(e, lam * theta),
-                                  velocity=a, along_flow_diffusivity=np.zeros(e),
+                                  darcy_flux=q, along_flow_diffusivity=np.zeros(e),
                                   reaction_rate=np.full(e, lam), element_length=h,
                                   courant_rate=float(np.max(speed / h))),
         isotherms=(), reaction=None, in_user_law=False, sorbed_decay=lam,
