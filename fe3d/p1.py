@@ -372,14 +372,6 @@ def _absorb_kernel(indptr: IndexArray, indices: IndexArray, a_indptr: IndexArray
 
 
 @_jit
-def _diagonal_kernel(indptr: IndexArray, indices: IndexArray) -> IndexArray:
-    out = np.empty(indptr.size - 1, np.int64)
-    for r in range(indptr.size - 1):
-        out[r] = _slot(indptr, indices, r, r)
-    return out
-
-
-@_jit
 def _local_kernel(slots: IndexArray, cell_ids: IndexArray, local: FloatArray,
                   data: FloatArray) -> None:
     for p in range(cell_ids.size):
@@ -483,10 +475,6 @@ class CsrPattern:
                           copy=False)
         A.has_sorted_indices = True
         return A
-
-    def diagonal_positions(self) -> IndexArray:
-        """Position of each row's diagonal entry in the value array, ``(n,)``."""
-        return _diagonal_kernel(self.indptr, self.indices)
 
     def values_of(self, A: sp.spmatrix) -> FloatArray:
         """The value array, on this pattern, of a matrix whose entries all lie in it (a

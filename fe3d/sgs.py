@@ -27,7 +27,8 @@ import scipy.sparse.linalg as spla
 
 from fe3d._typing import FloatArray, IndexArray
 
-__all__ = ["ScaledMatrix", "SplitMatrix", "SymmetricGaussSeidel", "plus_diagonal", "split_csr"]
+__all__ = ["LinearCombination", "ScaledMatrix", "SplitMatrix", "SymmetricGaussSeidel",
+           "plus_diagonal", "split_csr"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -299,6 +300,73 @@ class ScaledMatrix(spla.LinearOperator):
         _scaled_product(self.A.indptr, self.A.indices, np.asarray(self.A.data, dtype=float),
                         self.factor, np.ascontiguousarray(x, dtype=float).ravel(), out)
         return out
+
+
+@_jit
+def _sum_product(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
+                 b: FloatArray, cb: float, v: FloatArray, out: FloatArray) -> None:
+    """out = (ca A + cb B) v for A, B on one pattern, each entry ca a + cb b formed first."""
+    for i in range(indptr.size - 1):
+        s = 0.0
+        for p in range(indptr[i], indptr[i + 1]):
+            s += (ca * a[p] + cb * b[p]) * v[indices[p]]
+        out[i] = s
+
+
+@_jit
+def _diagonal_sum_product(indptr: IndexArray, indices: IndexArray, b: FloatArray, cb: float,
+                          positions: IndexArray, d: FloatArray, cd: float, v: FloatArray,
+                          out: FloatArray) -> None:
+    """out = (cb B + cd diag(d)) v, the diagonal entry formed as cb b + cd d."""
+    for i in range(indptr.size - 1):
+        s = 0.0
+        for p in range(indptr[i], indptr[i + 1]):
+            x = cb * b[p]
+            if p == positions[i]:
+                x = x + cd * d[i]
+            s += x * v[indices[p]]
+        out[i] = s
+
+
+class LinearCombination(spla.LinearOperator):
+    """``cb`` B + ``ca`` A as an operator on the matrices' own arrays (no combined copy),
+    B a CSR matrix with its whole diagonal stored and A either a CSR matrix on B's pattern
+    or a diagonal matrix (its diagonal added at B's diagonal positions). Products are bit
+    for bit those of the CSR matrix of values ``ca * A.data + cb * B.data`` (A on B's
+    pattern) or ``cb * B.data`` with ``ca`` × A's diagonal added to its diagonal entries."""
+
+    def __init__(self, A: sp.csr_matrix, ca: float, B: sp.csr_matrix, cb: float) -> None:
+        super().__init__(dtype=np.dtype(float), shape=B.shape)
+        self.A, self.B = A.tocsr(), B.tocsr()
+        self.ca, self.cb = float(ca), float(cb)
+        same = self.A.indices is self.B.indices or (
+            np.array_equal(self.A.indptr, self.B.indptr)
+            and np.array_equal(self.A.indices, self.B.indices))
+        self._diagonal: FloatArray | None = None if same else self.A.diagonal()
+        self._positions = None if same else _diagonal_positions(self.B.indptr, self.B.indices)
+        if self._positions is not None and np.any(self._positions < 0):
+            msg = "B does not store its whole diagonal"
+            raise ValueError(msg)
+
+    def _matvec(self, x: FloatArray) -> FloatArray:
+        out = np.empty(self.shape[0])
+        v = np.ascontiguousarray(x, dtype=float).ravel()
+        B = self.B
+        if self._diagonal is None:
+            _sum_product(B.indptr, B.indices, self.A.data, self.ca, B.data, self.cb, v, out)
+        else:
+            _diagonal_sum_product(B.indptr, B.indices, B.data, self.cb, self._positions,
+                                  self._diagonal, self.ca, v, out)
+        return out
+
+    def tocsr(self) -> sp.csr_matrix:
+        """The combination as a new CSR matrix on B's pattern (the same values)."""
+        if self._diagonal is None:
+            data = self.ca * self.A.data + self.cb * self.B.data
+        else:
+            data = self.cb * self.B.data
+            data[self._positions] += self.ca * self._diagonal
+        return sp.csr_matrix((data, self.B.indices, self.B.indptr), shape=self.shape)
 
 
 def plus_diagonal(A: sp.csr_matrix, d: FloatArray) -> sp.csr_matrix:

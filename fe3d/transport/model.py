@@ -159,16 +159,21 @@ class Coefficients:
     ``storage`` m = θR [-], ``decay`` k [1/s] (λm, or λθ when only the dissolved phase
     decays), ``darcy_flux`` q [m/s] shape ``(3, n_cells)`` (the flow field's, not a copy;
     :attr:`velocity` a = q/m is formed from it where needed), ``along_flow_diffusivity``
-    κ = aᵀθDa/(|a|² m) [m²/s], ``reaction_rate`` σ = k/m [1/s] (τ, T8), ``element_length``
+    κ = aᵀθDa/(|a|² m) [m²/s], :attr:`reaction_rate` σ = k/m [1/s] (τ, T8, formed where
+    needed), ``element_length``
     h along a [m]; ``courant_rate`` max |a|/h [1/s] (Courant number per second of step)."""
 
     storage: FloatArray
     decay: FloatArray
     darcy_flux: FloatArray
     along_flow_diffusivity: FloatArray
-    reaction_rate: FloatArray
     element_length: FloatArray
     courant_rate: float
+
+    @property
+    def reaction_rate(self) -> FloatArray:
+        """σ = k/m [1/s] per cell: a new array (not held through the run)."""
+        return self.decay / self.storage
 
     @property
     def velocity(self) -> FloatArray:
@@ -290,7 +295,7 @@ def build_species(site: SiteMesh, flow: FlowField, inputs: TransportInputs,
             name=name, spec=spec,
             coefficients=Coefficients(
                 storage=m, decay=k, darcy_flux=q, along_flow_diffusivity=kappa,
-                reaction_rate=k / m, element_length=h,
+                element_length=h,
                 courant_rate=float(np.max(np.sqrt(speed2) / h))),
             isotherms=tuple(isotherms), reaction=spec.nonlinear_reaction,
             in_user_law=user is not None and name in user.species,

@@ -414,7 +414,7 @@ def _with_shock_capturing(
         h=c.element_length, along_dispersion=c.storage * c.along_flow_diffusivity,
         theta_t=formula.theta, time_weights=(formula.a0, formula.a1, formula.a2), c_older=prev)
     Kx = isotropic_stiffness(site.points, site.cells, nu, site.n_nodes, pattern=pattern)
-    S_x = pattern.matrix(step_system.S.data + formula.theta * Kx.data)
+    S_x = pattern.matrix(step_system.S.tocsr().data + formula.theta * Kx.data)
     S_x_ff, S_x_fD = split_rows(S_x, step_system.free, step_system.fixed)
     # small systems: a new factor; large ones: the step's preconditioner reused
     tol = ctx.solver.tolerance

@@ -20,7 +20,7 @@ from fe3d.case.schema import SolverControl, TimeControl
 from fe3d.linalg import LinearSolver, solve_with_preconditioner
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import split_rows
-from fe3d.sgs import ScaledMatrix
+from fe3d.sgs import LinearCombination, ScaledMatrix
 from fe3d.transport.assembly import monotone_operators, transport_operators
 from fe3d.transport.limiter import TargetFluxes
 from fe3d.transport.model import MediumFields, SpeciesModel
@@ -63,13 +63,14 @@ class NearbySolver:
 
 @dataclass(frozen=True)
 class StepSystem:
-    """The step matrix S = a0/Δt M + θK of one species, split by held/free nodes, with its
-    solver (factor or preconditioner), the mass operator M (``lumped``: its diagonal when
-    M is lumped, T16, else None) and the explicit part ``explicit_part`` = (θ − 1)K (an
-    operator on K's own arrays, :class:`fe3d.sgs.ScaledMatrix`; None
-    for θ = 1)."""
+    """The step matrix S = a0/Δt M + θK of one species (an operator on M's and K's own
+    arrays, :class:`fe3d.sgs.LinearCombination`, or a CSR matrix), split by held/free
+    nodes, with its solver (factor or preconditioner), the mass operator M (``lumped``: its
+    diagonal when M is lumped, T16, else None) and the explicit part ``explicit_part`` =
+    (θ − 1)K (an operator on K's own arrays, :class:`fe3d.sgs.ScaledMatrix`; None for
+    θ = 1)."""
 
-    S: sp.csr_matrix
+    S: sp.csr_matrix | LinearCombination
     explicit_part: sp.csr_matrix | ScaledMatrix | None
     M: sp.csr_matrix
     lumped: FloatArray | None
@@ -125,17 +126,14 @@ class StepSystems:
     def __init__(self, site: SiteMesh, medium: MediumFields, darcy_flux: FloatArray,
                  scheme: Scheme, time: TimeControl, solver: SolverControl,
                  held_nodes: dict[str, IndexArray]) -> None:
-        self.site, self.medium, self.q = site, medium, darcy_flux
+        self.site, self.q = site, darcy_flux
+        # what the operators read of the medium, not the record (its bulk density and cell
+        # volumes are set-up values: not held through the run)
+        self.porosity, self.dispersion = medium.porosity, medium.dispersion
+        self.outflow_matrix = medium.outflow_matrix
         self.scheme, self.time, self.solver = scheme, time, solver
         self.held_nodes = held_nodes
         self._cache: dict[str, _SpeciesCache] = {}
-        self._diagonal: IndexArray | None = None
-
-    def _diagonal_positions(self) -> IndexArray:
-        """Positions of the diagonal in the mesh pattern's value array (built once)."""
-        if self._diagonal is None:
-            self._diagonal = self.site.pattern.diagonal_positions()
-        return self._diagonal
 
     def _of(self, s: SpeciesModel) -> _SpeciesCache:
         return self._cache.setdefault(s.name, _SpeciesCache())
@@ -194,8 +192,8 @@ class StepSystems:
         """Coefficients of the species' operators (T1–T6) for transport_operators."""
         c = s.coefficients
         nonlinear_sorption = bool(s.isotherms)
-        return {"m": self.medium.porosity if nonlinear_sorption else c.storage, "k": c.decay,
-                "q": self.q, "a": c.velocity, "theta_d": self.medium.dispersion.of_cells,
+        return {"m": self.porosity if nonlinear_sorption else c.storage, "k": c.decay,
+                "q": self.q, "a": c.velocity, "theta_d": self.dispersion.of_cells,
                 "n": self.site.n_nodes, "m_supg": c.storage if nonlinear_sorption else None}
 
     def galerkin(self, s: SpeciesModel) -> tuple[sp.csr_matrix, sp.csr_matrix]:
@@ -205,7 +203,7 @@ class StepSystems:
             M0, K0 = transport_operators(self.site.points, self.site.cells,
                                          tau=np.zeros_like(s.coefficients.storage),
                                          parts="galerkin", pattern=pattern, **self._terms(s))
-            K0.data += pattern.values_of(self.medium.outflow_matrix)
+            K0.data += pattern.values_of(self.outflow_matrix)
             cache.galerkin = (M0, K0)
         return cache.galerkin
 
@@ -229,19 +227,15 @@ class StepSystems:
         """S = a0/Δt M + θK split by held and free nodes, with its solver (relative
         tolerance ``tol``, default ``solver.tolerance``); ``lumped``: M is a diagonal
         matrix (its own pattern), else M is on the mesh's pattern."""
-        pattern, n = self.site.pattern, self.site.n_nodes
-        if lumped:  # M is a diagonal matrix of its own: added at K's diagonal positions
-            data = formula.theta * K.data
-            data[self._diagonal_positions()] += (formula.a0 / dt) * M.diagonal()
-            S = pattern.matrix(data)
-        else:
-            S = pattern.matrix((formula.a0 / dt) * M.data + formula.theta * K.data)
+        n = self.site.n_nodes
+        # held as an operator on M's and K's arrays; its CSR copy only while it is split
+        S = LinearCombination(M, formula.a0 / dt, K, formula.theta)
         is_fixed = np.zeros(n, dtype=bool)
         for name in active:
             is_fixed[self.held_nodes[name]] = True
         free = np.nonzero(~is_fixed)[0]
         fixed = np.nonzero(is_fixed)[0]
-        S_ff, S_fD = split_rows(S, free, fixed)
+        S_ff, S_fD = split_rows(S.tocsr(), free, fixed)
         solver = LinearSolver(S_ff, method=self.solver.linear_solver,
                               tol=self.solver.tolerance if tol is None else tol)
         explicit = None if formula.theta == 1.0 else ScaledMatrix(K, formula.theta - 1.0)

@@ -155,3 +155,30 @@ def test_scaled_matrix_is_the_scaled_copy_bit_for_bit() -> None:
     v = np.random.default_rng(5).standard_normal(A.shape[0])
     copy = sp.csr_matrix((-0.5 * A.data, A.indices, A.indptr), shape=A.shape)
     assert np.array_equal(ScaledMatrix(A, -0.5) @ v, copy @ v)
+
+
+def test_linear_combination_is_the_combined_copy_bit_for_bit() -> None:
+    """a0/Δt M + θK as an operator on M's and K's arrays against scipy's CSR product of
+    the combined copy (the reference library), bit for bit: M on K's pattern, and M a
+    diagonal matrix of its own (lumped) added at K's diagonal entries."""
+    from fe3d.sgs import LinearCombination
+
+    K = _matrix()
+    K.sort_indices()
+    rng = np.random.default_rng(6)
+    M = sp.csr_matrix((rng.random(K.nnz), K.indices, K.indptr), shape=K.shape)
+    v = rng.standard_normal(K.shape[0])
+    on_pattern = sp.csr_matrix((2.5 * M.data + 0.5 * K.data, K.indices, K.indptr),
+                               shape=K.shape)
+    op = LinearCombination(M, 2.5, K, 0.5)
+    assert np.array_equal(op @ v, on_pattern @ v)
+    assert np.array_equal(op.tocsr().data, on_pattern.data)
+    lumped = sp.diags(rng.random(K.shape[0]), format="csr")
+    data = 0.5 * K.data
+    data[K.indptr[:-1] + np.array([np.searchsorted(K.indices[a:b], i) for i, (a, b) in
+                                   enumerate(zip(K.indptr[:-1], K.indptr[1:], strict=True))])
+         ] += 2.5 * lumped.diagonal()
+    combined = sp.csr_matrix((data, K.indices, K.indptr), shape=K.shape)
+    op = LinearCombination(lumped, 2.5, K, 0.5)
+    assert np.array_equal(op @ v, combined @ v)
+    assert np.array_equal(op.tocsr().data, combined.data)

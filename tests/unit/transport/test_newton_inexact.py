@@ -99,8 +99,8 @@ def _second_order_species(n: int, rate: float) -> SpeciesModel:
     """A species of second-order decay r = −k c|c| on n nodes of unit pore volume."""
     one = np.ones(n)
     coefficients = Coefficients(storage=one, decay=0 * one, darcy_flux=np.zeros((3, n)),
-                                along_flow_diffusivity=0 * one, reaction_rate=0 * one,
-                                element_length=one, courant_rate=1.0)
+                                along_flow_diffusivity=0 * one, element_length=one,
+                                courant_rate=1.0)
     return SpeciesModel(name="s", spec=Species(limit="1 mg/L"), coefficients=coefficients,
                         isotherms=(), reaction=("second_order", {"rate": rate}),
                         in_user_law=False, sorbed_decay=0.0, dissolved_volume=one,

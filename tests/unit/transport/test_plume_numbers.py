@@ -46,7 +46,7 @@ def test_plume_peclet_counts_the_cells_the_plume_reached() -> None:
     site, flow, ctx = _two_sands()
     (s,) = ctx.species
     numbers = PlumeCourant(site, ctx.species, ctx.sources)
-    everywhere = grid_peclet(s, flow.seepage_velocity, ctx.systems.medium.porosity)
+    everywhere = grid_peclet(s, flow.seepage_velocity, ctx.systems.porosity)
     upper = site.points[2] > -2.9
     numbers.rates({"tracer": np.where(upper, 1.0, 0.0)}, t=86400.0)  # source stopped
     in_upper = numbers.largest_peclet["tracer"]

@@ -122,7 +122,7 @@ def _context(site: SiteMesh, q: np.ndarray, *, half_life_days: float | None, sch
         name="s", spec=spec,
         coefficients=Coefficients(storage=np.full(e, theta), decay=np.full(e, lam * theta),
                                   darcy_flux=q, along_flow_diffusivity=np.zeros(e),
-                                  reaction_rate=np.full(e, lam), element_length=h,
+                                  element_length=h,
                                   courant_rate=float(np.max(speed / h))),
         isotherms=(), reaction=None, in_user_law=False, sorbed_decay=lam,
         dissolved_volume=lumped(site, theta * vol), sorbed_capacity=np.zeros(n),
