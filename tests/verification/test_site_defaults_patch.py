@@ -30,7 +30,7 @@ the values below are above exact. The budget closes to 1e-8 (theory.md T9) and n
 falls below −1e-10 c0 (the solver tolerance; issue 11 "Bounds").
 
 Measured when written (74,130 nodes, 291 steps, about 35 s on a shared machine): at 100,
-200 and 300 m, +1.10 %, +3.41 % and (below the limit) at 2 yr; +1.04 %, +0.92 %, +0.80 %
+200 and 300 m, +1.05 %, +2.92 % and (below the limit) at 2 yr; +1.04 %, +0.92 %, +0.80 %
 at 4 yr; entered +1.86 %; first times −1.6 %, −0.75 %, −0.49 %. With the step 0.1 yr given
 (Courant 6.6) the first times are −72 %, −40 %, −26 % and the run warns; not tested here.
 """
