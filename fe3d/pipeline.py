@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import json
 import logging
 import shutil
 import time
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 
 from fe3d.case.parts import FlowInputs, TransportInputs, TravelInputs
@@ -18,9 +20,11 @@ from fe3d.flow.solve import FlowField, solve_flow
 from fe3d.linalg import SpdPreconditioner
 from fe3d.mesh.build import build_mesh, obtain_mesh
 from fe3d.mesh.corridor import Corridor, site_corridor
+from fe3d.mesh.io import mesh_inputs_hash, save_cached
 from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.post.beside import Beside
 from fe3d.post.handover import write_handover
-from fe3d.post.outputs import SeriesWriter, write_flow_outputs
+from fe3d.post.outputs import SeriesWriter, write_flow_figures, write_flow_files
 from fe3d.post.report import RunSummary
 from fe3d.post.run_place import (
     RunState,
@@ -50,41 +54,98 @@ from fe3d.transport.checkpoint import (
 )
 from fe3d.transport.run import run_transport
 
-__all__ = ["StageClock", "check_case", "estimate_mesh_size", "mesh_and_flow", "mesh_case",
-           "plume_corridor", "run_case"]
+__all__ = ["FirstPass", "StageClock", "check_case", "estimate_mesh_size", "first_pass",
+           "mesh_and_flow", "mesh_case", "plume_corridor", "run_case", "run_mesh"]
 
 logger = logging.getLogger(__name__)
 
 Progress = Callable[[str, float, float], None]
 
 
-def plume_corridor(case: Case, *, base_dir: Path | None = None,
-                   first: SiteMesh | None = None) -> Corridor | None:
+@dataclass(frozen=True)
+class FirstPass:
+    """The plume corridor's first pass: the mesh as the case writes it, its steady flow,
+    and the corridor found along the pathlines (None when nothing needs refining: that mesh
+    and flow are then the final ones)."""
+
+    mesh: SiteMesh
+    flow: FlowField
+    corridor: Corridor | None
+
+
+def first_pass(case: Case, *, base_dir: Path | None = None, first: SiteMesh | None = None,
+               preconditioner: SpdPreconditioner | None = None) -> FirstPass | None:
     """The first pass of the corridor mesher: mesh the case as it is written (or take that
-    mesh as ``first``), solve the flow, track forward pathlines from every source and turn
-    them into a corridor (:func:`fe3d.mesh.corridor.site_corridor`). ``None`` when
-    ``mesh.corridor`` is off, the mesh is imported, the case has no source, or nothing needs
-    refining."""
+    mesh as ``first``), solve the flow (with ``preconditioner``'s AMG hierarchy, kept there
+    for later solves), track forward pathlines from every source and turn them into a
+    corridor (:func:`fe3d.mesh.corridor.site_corridor`). ``None`` when ``mesh.corridor`` is
+    off, the mesh is imported or the case has no source."""
     mc = case.mesh
     if not mc.corridor or mc.import_file is not None or not case.sources:
         return None
     first = first or build_mesh(case)
-    flow = solve_flow(first, FlowInputs.of(case), base_dir=base_dir)
+    flow = solve_flow(first, FlowInputs.of(case), base_dir=base_dir,
+                      preconditioner=preconditioner)
     paths = travel_paths(first, flow, TravelInputs.of(case))
     lines = {name: [(p.points, p.times) for p in found]
              for name, found in paths.forward.items()}
     corridor = site_corridor(case, first, lines)
     if corridor is not None:
         logger.info("%s", "; ".join(corridor.lines()))
-    return corridor
+    return FirstPass(first, flow, corridor)
+
+
+def plume_corridor(case: Case, *, base_dir: Path | None = None,
+                   first: SiteMesh | None = None) -> Corridor | None:
+    """The corridor of :func:`first_pass`; ``None`` when there is no first pass or nothing
+    needs refining."""
+    done = first_pass(case, base_dir=base_dir, first=first)
+    return None if done is None else done.corridor
+
+
+def run_mesh(case: Case, folders: list[Path], out_dir: Path, *, base_dir: Path | None = None,
+             preconditioner: SpdPreconditioner | None = None,
+             ) -> tuple[SiteMesh, FlowField | None]:
+    """The run's mesh, saved in ``out_dir``, and its flow when that is already solved.
+
+    When the first pass (:func:`first_pass`) finds nothing to refine, its mesh is the run's
+    and so is its flow (solved with ``preconditioner``), unless a mesh of the same mesh
+    inputs is cached in ``folders``: that one is taken, so that a rerun or a resumed run
+    keeps its mesh. Otherwise the mesh refined along the corridor (or as written) is reused
+    from ``folders`` or built (:func:`fe3d.mesh.build.obtain_mesh`) and its flow is
+    ``None``."""
+    done = first_pass(case, base_dir=base_dir, preconditioner=preconditioner)
+    if done is not None and done.corridor is None and not _mesh_cached(case, folders):
+        save_cached(done.mesh, out_dir, mesh_inputs_hash(case))
+        return done.mesh, done.flow
+    site, _reused = obtain_mesh(case, folders, save_to=out_dir,
+                                corridor=None if done is None else done.corridor)
+    return site, None
+
+
+def _mesh_cached(case: Case, folders: list[Path]) -> bool:
+    """Whether a folder's ``mesh.json`` names the hash of the case's mesh inputs without a
+    corridor (:func:`fe3d.mesh.build.obtain_mesh` then reuses that folder's mesh)."""
+    digest = mesh_inputs_hash(case)
+    for folder in folders:
+        try:
+            meta = json.loads((folder / "mesh.json").read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            continue
+        if isinstance(meta, dict) and meta.get("mesh_inputs_sha256") == digest:
+            return True
+    return False
 
 
 def mesh_and_flow(case: Case, *, base_dir: Path | None = None) -> tuple[SiteMesh, FlowField]:
-    """Build the mesh (refined along the plume corridor, :func:`plume_corridor`) and solve the
-    steady flow of ``case``."""
-    site = build_mesh(case, corridor=plume_corridor(case, base_dir=base_dir))
-    flow = solve_flow(site, FlowInputs.of(case), base_dir=base_dir)
-    return site, flow
+    """Build the mesh (refined along the plume corridor, :func:`first_pass`) and solve the
+    steady flow of ``case``; when the first pass finds nothing to refine, its mesh and flow
+    are returned (no second mesh or flow solve)."""
+    done = first_pass(case, base_dir=base_dir)
+    if done is not None and done.corridor is None:
+        return done.mesh, done.flow
+    site = build_mesh(case, corridor=None if done is None else done.corridor)
+    return site, solve_flow(site, FlowInputs.of(case), base_dir=base_dir)
 
 
 def check_case(case: Case, base_dir: Path | None, mesh_folders: list[Path]) -> None:
@@ -234,16 +295,17 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     tell = clock.tell
     out_dir.mkdir(parents=True, exist_ok=True)
     tell("mesh", 0, 1)
-    # reuse a mesh cached (run folder first) when the mesh inputs and corridor are unchanged
-    if site is None:
-        site, _reused = obtain_mesh(case, [out_dir, *(mesh_folders or [])], save_to=out_dir,
-                                    corridor=plume_corridor(case, base_dir=base_dir))
+    kept = SpdPreconditioner()  # the flow's AMG hierarchy, for the drawdown's solve
+    flow = None  # solved by the corridor's first pass when its mesh is the run's
+    if site is None:  # reuse a mesh cached (run folder first) when nothing changed
+        site, flow = run_mesh(case, [out_dir, *(mesh_folders or [])], out_dir,
+                              base_dir=base_dir, preconditioner=kept)
     files = [p.name for p in write_mesh(
         site, out_dir, formats=("msh", "vtu") if case.output.vtu_series else ())]
     tell("flow", 0, 1)
     flow_inputs = FlowInputs.of(case)
-    kept = SpdPreconditioner()  # the flow's AMG hierarchy, for the drawdown's solve
-    flow = solve_flow(site, flow_inputs, base_dir=base_dir, preconditioner=kept)
+    if flow is None:
+        flow = solve_flow(site, flow_inputs, base_dir=base_dir, preconditioner=kept)
     if saved is not None:
         check_resumable(saved.checkpoint, site, flow)
     # the drawdown of the wells: one more flow solve (the same matrix, so the same
@@ -253,15 +315,24 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     del kept  # the hierarchy is not held through the transport
     tell("travel paths", 0, 1)
     paths = travel_paths(site, flow, TravelInputs.of(case))
-    tell("flow outputs", 0, 1)  # the flow's files and figures, timed apart from paths
-    files += write_flow_outputs(out_dir, case, site, flow, paths, figures=not compact,
-                                drawdown=drawdown)
-    writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow, figures=not compact,
-                          drawdown=drawdown, receptors_every_step=True)
-    tell("transport", 0.0, case.time.end)  # its set-up counts as transport, not paths
-    _transport(case, site, flow, writer, keeper=keeper, saved=saved, base_dir=base_dir,
-               on_step=lambda t, end: tell("transport", t, end))
+    tell("flow outputs", 0, 1)  # the flow's files, then its figures beside the transport
+    files += write_flow_files(out_dir, case, site, flow, paths, drawdown=drawdown)
+    flow_figures = Beside(lambda: [] if compact else write_flow_figures(
+        out_dir, case, site, flow, paths, drawdown=drawdown), name="flow figures")
+    try:
+        writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow,
+                              figures=not compact, drawdown=drawdown,
+                              receptors_every_step=True)
+        tell("transport", 0.0, case.time.end)  # its set-up counts as transport, not paths
+        _transport(case, site, flow, writer, keeper=keeper, saved=saved, base_dir=base_dir,
+                   on_step=lambda t, end: tell("transport", t, end))
+    except BaseException:
+        flow_figures.wait()  # it draws in the run folder: let it end before that moves
+        raise
     tell("outputs", 0, 1)
+    files += flow_figures.result()
+    clock.beside("flow figures", flow_figures.seconds, flow_figures.cpu_seconds,
+                 "the transport")
     summary = writer.finish(flow, paths, files, started)
     logger.info("time per stage: %s", clock.words())
     return summary
@@ -306,6 +377,8 @@ class StageClock:
     def __init__(self, progress: Progress | None) -> None:
         self.progress = progress
         self.spent: dict[str, float] = {}
+        # stage -> (wall clock [s], its thread's processor time [s], beside which stage)
+        self.alongside: dict[str, tuple[float, float, str]] = {}
         self._stage: str | None = None
         self._since = time.perf_counter()
 
@@ -318,11 +391,21 @@ class StageClock:
         if self.progress is not None:
             self.progress(stage, done, total)
 
+    def beside(self, stage: str, seconds: float, cpu_seconds: float, other: str) -> None:
+        """Note that the work of ``stage`` ran on its own thread beside the stage ``other``
+        for ``seconds`` [s] of wall clock and ``cpu_seconds`` [s] of its processor time
+        (its own stage time is only the moment it took to start)."""
+        self.alongside[stage] = (seconds, cpu_seconds, other)
+
     def words(self) -> str:
-        """The stages so far and their times, the running one included."""
+        """The stages so far and their times, the running one included, then the work done
+        beside another stage and its own time."""
         running = {} if self._stage is None else {
             self._stage: self.spent.get(self._stage, 0.0) + time.perf_counter() - self._since}
-        return ", ".join(f"{k} {v:.1f} s" for k, v in {**self.spent, **running}.items())
+        stages = ", ".join(f"{k} {v:.1f} s" for k, v in {**self.spent, **running}.items())
+        beside = "".join(f"; {k} written beside {other} in {v:.1f} s ({cpu:.1f} s CPU)"
+                         for k, (v, cpu, other) in self.alongside.items())
+        return stages + beside
 
 
 def mesh_case(case: Case, out_dir: Path, *, base_dir: Path | None = None,

@@ -70,7 +70,8 @@ from fe3d.transport.run_wide import RunWideField
 from fe3d.units import from_si, to_seconds
 
 __all__ = ["RUN_FIELDS", "SERIES_FILE", "PlumeRow", "SeriesWriter", "flow_cell_data",
-           "flow_point_data", "method_words", "write_flow_outputs"]
+           "flow_point_data", "method_words", "write_flow_figures", "write_flow_files",
+           "write_flow_outputs"]
 
 logger = logging.getLogger(__name__)
 
@@ -81,10 +82,18 @@ RUN_FIELDS = "over_the_run.vtu"
 def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField,
                        paths: TravelPaths, *, figures: bool = True,
                        drawdown: FloatArray | None = None) -> list[str]:
-    """``flow_budget.csv``, the forward and backward pathlines, the head on the top face
-    (``heads_plan.png``) and the head map with capture zones and the contours of
-    ``drawdown`` [m] per node when given (``head_map.png``; not without ``figures``), and
-    with ``output.vtu_series`` ``flow.vtu`` (head and drawdown in m, Darcy flux, seepage
+    """The flow's files (:func:`write_flow_files`) and, with ``figures``, its figures
+    (:func:`write_flow_figures`); returns the names of the files written."""
+    names = write_flow_files(out_dir, case, site, flow, paths, drawdown=drawdown)
+    if figures:
+        names += write_flow_figures(out_dir, case, site, flow, paths, drawdown=drawdown)
+    return names
+
+
+def write_flow_files(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField,
+                     paths: TravelPaths, *, drawdown: FloatArray | None = None) -> list[str]:
+    """``flow_budget.csv``, the forward and backward pathlines and, with
+    ``output.vtu_series``, ``flow.vtu`` (head and ``drawdown`` in m, Darcy flux, seepage
     velocity, conductivity in m/d; else they are in the series file); returns the names of
     the files written."""
     names = ["flow_budget.csv", "pathlines_forward.vtp", "pathlines_backward.vtp"]
@@ -95,14 +104,21 @@ def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowFiel
     write_flow_budget(out_dir / "flow_budget.csv", flow)
     tu = case.output.time_unit
     tsec = to_seconds(tu)
-    forward = [p for lines in paths.forward.values() for p in lines]
-    backward = [p for lines in paths.backward.values() for p in lines]
-    write_pathlines(out_dir / "pathlines_forward.vtp", [(p.points, p.times) for p in forward],
-                    time_unit_seconds=tsec, time_unit=tu)
-    write_pathlines(out_dir / "pathlines_backward.vtp", [(p.points, p.times) for p in backward],
-                    time_unit_seconds=tsec, time_unit=tu)
-    if not figures:
-        return names
+    for name, lines in (("pathlines_forward.vtp", paths.forward),
+                        ("pathlines_backward.vtp", paths.backward)):
+        write_pathlines(out_dir / name, [(p.points, p.times) for found in lines.values()
+                                         for p in found], time_unit_seconds=tsec, time_unit=tu)
+    return names
+
+
+def write_flow_figures(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField,
+                       paths: TravelPaths, *, drawdown: FloatArray | None = None
+                       ) -> list[str]:
+    """The head on the top face (``heads_plan.png``) and the head map with capture zones
+    and the contours of ``drawdown`` [m] per node when given (``head_map.png``); returns
+    the names of the files written."""
+    forward = [p.points for lines in paths.forward.values() for p in lines]
+    backward = [p.points for lines in paths.backward.values() for p in lines]
     top = site.faces["top"]
     under_top = np.isin(site.cells, np.unique(top)).sum(axis=0) >= 3
     centres = site.points[:2, site.cells[:, under_top]].mean(axis=1)
@@ -110,13 +126,11 @@ def write_flow_outputs(out_dir: Path, case: Case, site: SiteMesh, flow: FlowFiel
                (centres, flow.darcy_flux[:2, under_top]),
                markers={**{o.name: (o.x, o.y) for o in case.observation_points},
                         **{w.name: (w.x, w.y) for w in case.wells}},
-               pathlines=[p.points for p in forward],
-               backward_pathlines=[p.points for p in backward],
+               pathlines=forward, backward_pathlines=backward,
                title=f"{case.site or case.title}: head on the top face",
                corridor=None if site.report is None else site.report.corridor)
-    return [*names, "heads_plan.png",
-            *write_head_figure(out_dir, case, site, flow, paths, head_unit="m",
-                               drawdown=drawdown)]
+    return ["heads_plan.png", *write_head_figure(out_dir, case, site, flow, paths,
+                                                 head_unit="m", drawdown=drawdown)]
 
 
 def flow_point_data(flow: FlowField, drawdown: FloatArray | None) -> dict[str, FloatArray]:

@@ -15,6 +15,7 @@ from fe3d.case.schema import Case
 from fe3d.flow.paths import TravelPaths
 from fe3d.flow.solve import FlowField
 from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.post.beside import Beside
 from fe3d.post.figures import plot_plume_over_time
 from fe3d.post.map_figures import plot_head_map, plot_plan_maximum, plot_section
 from fe3d.post.maps import (
@@ -128,25 +129,17 @@ class PlumeFigures:
 
     def finish(self) -> list[str]:
         """The whole run's plan map, section and 3D view per species, and the plume sizes
-        over time; returns the names of all figures written by this object."""
+        over time; returns the names of all figures written by this object. The 3D views
+        are rendered on a second thread while the maps are drawn (:class:`Beside`)."""
         cu, tu = self.case.output.concentration_unit, self.case.output.time_unit
-        for sp, c in self.largest.items():
-            limit = self.case.species[sp].limit
-            self._plan(f"plan_{sp}_run.png", c, sp, "largest over the whole run")
-            start, end = self.section_trace(sp)
-            reach = 2.0 * (self.case.mesh.fine_cell_size or self.case.mesh.cell_size)
-            plot_section(self.out_dir / f"section_{sp}_run.png",
-                         vertical_section(self.site.points, self.site.cells, c, start, end),
-                         limit=limit, conc_unit=cu, species=sp,
-                         when="largest over the whole run", site=self.features.site,
-                         marks=section_marks(self.case, start, end, within=reach))
-            self.files += [f"plan_{sp}_run.png", f"section_{sp}_run.png"]
-            level = _quantity(limit, cu)
-            if render_limit_surface(self.out_dir / f"surface_{sp}_run.png", self.site.points,
-                                    self.site.cells, c, limit, features=self.features,
-                                    label=f"{sp}: largest over the run, surface at the "
-                                          f"limit {level}") is not None:
-                self.files.append(f"surface_{sp}_run.png")
+        views = Beside(self._views, name="3D views")
+        try:
+            maps = {sp: self._run_maps(sp, c) for sp, c in self.largest.items()}
+        finally:
+            views.wait()
+        drawn = views.result()
+        for sp, names in maps.items():
+            self.files += [*names, *([drawn[sp]] if sp in drawn else [])]
         sizes = {sp: tuple(np.array(col) for col in zip(*rows, strict=True))
                  for sp, rows in self.sizes.items() if rows}
         if sizes:
@@ -156,3 +149,30 @@ class PlumeFigures:
             self.files.append("plume_size.png")
         return list(self.files)
 
+    def _run_maps(self, species: str, c: FloatArray) -> list[str]:
+        """The plan map and the section of the largest value over the run (``c``
+        [kg/m³] per node); returns their names."""
+        cu = self.case.output.concentration_unit
+        self._plan(f"plan_{species}_run.png", c, species, "largest over the whole run")
+        start, end = self.section_trace(species)
+        reach = 2.0 * (self.case.mesh.fine_cell_size or self.case.mesh.cell_size)
+        plot_section(self.out_dir / f"section_{species}_run.png",
+                     vertical_section(self.site.points, self.site.cells, c, start, end),
+                     limit=self.case.species[species].limit, conc_unit=cu, species=species,
+                     when="largest over the whole run", site=self.features.site,
+                     marks=section_marks(self.case, start, end, within=reach))
+        return [f"plan_{species}_run.png", f"section_{species}_run.png"]
+
+    def _views(self) -> dict[str, str]:
+        """The 3D view of each species' surface at its limit, largest over the run; returns
+        species → file name, for the species that have one."""
+        drawn = {}
+        for sp, c in self.largest.items():
+            limit = self.case.species[sp].limit
+            level = _quantity(limit, self.case.output.concentration_unit)
+            if render_limit_surface(self.out_dir / f"surface_{sp}_run.png", self.site.points,
+                                    self.site.cells, c, limit, features=self.features,
+                                    label=f"{sp}: largest over the run, surface at the "
+                                          f"limit {level}") is not None:
+                drawn[sp] = f"surface_{sp}_run.png"
+        return drawn

@@ -79,13 +79,15 @@ class SeriesFile:
         root.attrs["Version"] = np.array([2, 2], dtype=np.int64)
         _ascii_attribute(root, "Type", "UnstructuredGrid")
         self._write_mesh(root, points, cells)
-        self.static_point = {array_name(k): v for k, v in (static_point_data or {}).items()}
-        self.static_cell = {array_name(k): v for k, v in (static_cell_data or {}).items()}
-        for group, arrays in (("PointData", self.static_point), ("CellData", self.static_cell)):
+        # the names of the arrays stored once (the arrays are not held: written, then freed)
+        self.static_point = [array_name(k) for k in static_point_data or {}]
+        self.static_cell = [array_name(k) for k in static_cell_data or {}]
+        for group, arrays in (("PointData", static_point_data), ("CellData", static_cell_data)):
             g = root.create_group(group)
-            for name, values in arrays.items():
+            for name, values in (arrays or {}).items():
                 kind = self.dtype if np.issubdtype(values.dtype, np.floating) else values.dtype
-                g.create_dataset(name, data=np.ascontiguousarray(values, dtype=kind))
+                g.create_dataset(array_name(name),
+                                 data=np.ascontiguousarray(values, dtype=kind))
         root.create_group("FieldData")
         steps = root.create_group("Steps")
         steps.attrs["NSteps"] = np.int64(0)
@@ -133,7 +135,7 @@ class SeriesFile:
                 root[group].create_dataset(key, data=np.ascontiguousarray(values, dtype=kind))
                 if steps is not None:
                     _offsets(steps[f"{group}Offsets"], key, step_count=self.n_steps)
-                known[key] = values
+                known.append(key)
         self._file.flush()
 
     def add(self, time: float, point_data: dict[str, FloatArray]) -> None:

@@ -17,6 +17,7 @@ import math
 import numpy as np
 import pytest
 
+from fe3d.case.schema import Case
 from fe3d.mesh.corridor import (
     CELLS_PER_SPREAD,
     SPREAD,
@@ -194,3 +195,50 @@ def test_corridor_gap_near_the_edge_is_the_exact_distance() -> None:
     assert np.all(gap[exact > within] > within)
     assert np.all(gap[exact < -within] < -within)
     assert np.abs(corridor_gap(c, px, py) - exact).max() <= 1e-12 * 500.0  # measured all
+
+
+def _coarse_enough_case() -> Case:
+    """A 40 m × 20 m sand box, 4 m cells, one source, longitudinal dispersivity 10 m: grid
+    Péclet h/α_L = 0.4, below the target 2, so the first pass finds nothing to refine."""
+    from fe3d.case.builder import Layer, Material, Source, Species, Time, box_case
+
+    sand = Material(10.0, 10.0, longitudinal_dispersivity=10.0, transverse_dispersivity=1.0)
+    return box_case(length=40.0, width=20.0, cell=4.0, dz=1.0, heads={"west": 0.1, "east": 0.0},
+                    layers=[Layer("sand", -2.0, sand)], species=[Species("tracer")],
+                    sources=[Source("spill", species="tracer", x=(4.0, 8.0), y=(8.0, 12.0),
+                                    z=(-1.0, 0.0), concentration=1.0)],
+                    time=Time("100 d", "10 d"))
+
+
+def test_run_keeps_the_first_pass_mesh_and_flow_when_nothing_needs_refining(tmp_path) -> None:
+    """When the corridor's first pass finds nothing to refine, the run meshes and solves
+    the flow once: its mesh and flow are the first pass's (so they equal a fresh build of
+    the case as written and its flow, to the flow solver's tolerance), the mesh is saved in
+    the run folder, and a second run takes that saved mesh (a rerun or a resumed run keeps
+    its mesh) and solves its own flow. Tolerance of the head: 1e-6 of the 0.1 m head drop,
+    well above the flow solver's relative residual tolerance (fe3d.linalg.FLOW_TOLERANCE)
+    times the matrix's conditioning on a 11 × 6 × 3-node box (common practice, no
+    source)."""
+    from fe3d.case.parts import FlowInputs
+    from fe3d.flow.solve import solve_flow
+    from fe3d.mesh.build import build_mesh
+    from fe3d.mesh.io import load_cached, mesh_inputs_hash
+    from fe3d.pipeline import first_pass, run_mesh
+
+    case = _coarse_enough_case()
+    done = first_pass(case)
+    assert done is not None
+    assert done.corridor is None
+    site, flow = run_mesh(case, [tmp_path], tmp_path)
+    assert flow is not None  # solved once, by the first pass
+    plain = build_mesh(case)
+    assert np.array_equal(site.points, plain.points)
+    assert np.array_equal(site.cells, plain.cells)
+    head = solve_flow(plain, FlowInputs.of(case)).head
+    assert np.abs(flow.head - head).max() <= 1e-6 * 0.1
+    saved = load_cached(tmp_path, mesh_inputs_hash(case))
+    assert saved is not None
+    assert np.array_equal(saved.points, site.points)
+    again, no_flow = run_mesh(case, [tmp_path], tmp_path)
+    assert no_flow is None  # the saved mesh is taken and its flow solved by the run
+    assert np.array_equal(again.cells, site.cells)
