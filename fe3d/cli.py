@@ -115,6 +115,11 @@ def _parser() -> argparse.ArgumentParser:
                    help="refinement ratio between levels, in (1, 3] (default 1.5)")
     f.add_argument("--levels", type=int, default=3,
                    help="number of levels, 2 to 5 (default 3; an order needs 3)")
+    f.add_argument("--refine", default="both", choices=("both", "mesh", "step"),
+                   help="what the levels refine: cell sizes and time step together (both, "
+                        "default: the Courant number fixed), the cell sizes alone (mesh) or "
+                        "the time step alone on one mesh (step): the last two separate the "
+                        "mesh's error from the step's")
     f.add_argument("--threshold", type=float, default=5.0,
                    help="GCI below which a quantity is 'converged' [%%] (default 5)")
     f.add_argument("--workers", type=int, default=None,
@@ -328,7 +333,7 @@ def _mesh(case_path: Path, out: Path | None) -> int:
     return 0
 
 
-def _refine(case_path: Path, out: Path | None, *, ratio: float, levels: int,
+def _refine(case_path: Path, out: Path | None, *, ratio: float, levels: int, refine: str,
             threshold: float, workers: int | None, scheduler: str | None) -> int:
     from rich.console import Console
 
@@ -350,10 +355,15 @@ def _refine(case_path: Path, out: Path | None, *, ratio: float, levels: int,
     case = load_case(case_path)
     folder = out or Path(f"runs/{case_path.stem}_refinement")
     con = Console()
-    con.print(f"refinement study of {case_path}: {levels} levels, ratio {ratio:g}; cell sizes "
-              "and time step are divided by the same factor on each level, so the Courant "
-              "number stays fixed (its largest value still varies with the smallest cells "
-              "the mesher makes)", highlight=False)
+    what = {"both": "cell sizes and time step are divided by the same factor on each level, "
+                    "so the Courant number stays fixed (its largest value still varies with "
+                    "the smallest cells the mesher makes)",
+            "mesh": "cell sizes are divided by the factor on each level, the time step kept "
+                    "(the Courant number grows): the mesh's error alone",
+            "step": "the time step is divided by the factor on each level, on one mesh: the "
+                    "time step's error alone"}[refine]
+    con.print(f"refinement study of {case_path}: {levels} levels, ratio {ratio:g}; {what}",
+              highlight=False)
 
     def tell(lv: LevelResult) -> None:
         if lv.summary is None:
@@ -369,7 +379,7 @@ def _refine(case_path: Path, out: Path | None, *, ratio: float, levels: int,
     with study_executor(n_runs=levels, scheduler=scheduler,
                         workers=None if workers is None else min(workers, levels)) as ex:
         con.print(f"levels run on {ex.where}", highlight=False)
-        study = refinement_study(case, folder, ratio=ratio, levels=levels,
+        study = refinement_study(case, folder, ratio=ratio, levels=levels, refined=refine,
                                  threshold=threshold / 100.0,
                                  base_dir=case_path.resolve().parent, executor=ex.executor,
                                  on_level=tell)
@@ -529,7 +539,7 @@ def main(argv: list[str] | None = None) -> int:
             return _mesh(args.case, args.out)
         if args.command == "refine":
             return _refine(args.case, args.out, ratio=args.ratio, levels=args.levels,
-                           threshold=args.threshold, workers=args.workers,
+                           refine=args.refine, threshold=args.threshold, workers=args.workers,
                            scheduler=args.scheduler)
         if args.command == "ensemble":
             return _ensemble(args.case, args.out, members=args.members,

@@ -8,8 +8,11 @@ ratios, its fixed-point iteration for the apparent order, Eqs. 1–7); Roache, P
 *Perspective: a method for uniform reporting of grid refinement studies*, J. Fluids Eng. 116,
 405–413 (the safety factor 1.25 for three or more grids).
 
-Every level divides every target cell size **and** the time step by the same factor, so the
-Courant number v·Δt/h stays the same on every level while the grid Péclet number falls.
+By default every level divides every target cell size **and** the time step by the same
+factor, so the Courant number v·Δt/h stays the same on every level while the grid Péclet
+number falls. A study of the step alone (``refined="step"``: one mesh, the step divided) or of
+the mesh alone (``refined="mesh"``: one step, the Courant number growing with the levels)
+separates the two errors that the default study lumps together.
 Levels run concurrently on the studies' executor (:mod:`fe3d.studies.executors`: a local
 dask cluster, or any cluster by address); a level that fails is named
 with its message and the levels that ran are still reported and written.
@@ -26,6 +29,7 @@ from concurrent.futures import Executor, as_completed
 from contextlib import ExitStack
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Literal
 
 import numpy as np
 
@@ -57,6 +61,13 @@ SAFETY_FACTOR = 1.25  # Roache (1994); Celik et al. (2008) step 5, three or more
 ROUND_OFF = 8.0  # values within 8 eps × |value| of each other are equal (a few roundings)
 DEFAULT_THRESHOLD = 0.05  # GCI below 5 % → "converged" (common practice, no source)
 _MAX_ITERATIONS = 200
+
+Refined = Literal["both", "mesh", "step"]
+"""What a study refines: cell sizes and time step together (``both``), or one of them."""
+
+REFINED_WORDS: dict[str, str] = {
+    "both": "sizes and step", "mesh": "sizes", "step": "step"}
+"""What a level's factor divides, in the words of the reports."""
 _EPS = float(np.finfo(float).eps)
 
 
@@ -215,14 +226,30 @@ def judge(values: Sequence[float | None], factors: Sequence[float], *,
 # ----------------------------------------------------------------------------- levels
 
 
-def refine_case(case: Case, factor: float) -> Case:
+def refine_case(case: Case, factor: float, refined: Refined = "both") -> Case:
     """The case with every target cell size and every time step divided by ``factor`` (a
-    unit's ``sublayers`` multiplied by it, rounded up).
+    unit's ``sublayers`` multiplied by it, rounded up); with ``refined="mesh"`` or ``"step"``
+    only the sizes or only the steps.
 
     Dividing the step with the cell sizes keeps the Courant number v·Δt/h of every cell the
-    same on every level. Raises :class:`CaseError` for an imported mesh (fe3d cannot refine
-    it).
+    same on every level. Raises :class:`CaseError` for an imported mesh whose sizes would
+    change (fe3d cannot refine it).
     """
+    out = case
+    if refined in ("both", "mesh"):
+        out = _finer_mesh(out, factor)
+    if refined in ("both", "step"):
+        t = case.time
+        out = out.model_copy(update={"time": t.model_copy(update={
+            "step": None if t.step is None else t.step / factor,  # None: steps follow the plume
+            "min_step": None if t.min_step is None else t.min_step / factor,
+            "max_step": None if t.max_step is None else t.max_step / factor,
+        })})
+    return out
+
+
+def _finer_mesh(case: Case, factor: float) -> Case:
+    """The case with every target cell size divided by ``factor``."""
     m = case.mesh
     if m.import_file is not None:
         err = CaseError("mesh.import_file", m.import_file, "an imported mesh cannot be "
@@ -237,12 +264,6 @@ def refine_case(case: Case, factor: float) -> Case:
         "cells_across_source": m.cells_across_source * factor,  # theory.md M6
         "max_nodes": int(m.max_nodes * factor**3),
     })
-    t = case.time
-    time = t.model_copy(update={
-        "step": None if t.step is None else t.step / factor,  # None: steps follow the plume
-        "min_step": None if t.min_step is None else t.min_step / factor,
-        "max_step": None if t.max_step is None else t.max_step / factor,
-    })
     lines = [ln.model_copy(update={"cell_size": ln.cell_size / factor})
              for ln in case.refinement_lines]
     # a unit's own layer count or thickness refines too (a count rounded up, so it grows)
@@ -251,8 +272,7 @@ def refine_case(case: Case, factor: float) -> Case:
             200, math.ceil(ly.sublayers * factor - 1e-9)),
         "cell_thickness": None if ly.cell_thickness is None else ly.cell_thickness / factor})
         for ly in case.layers]
-    return case.model_copy(update={"mesh": mesh, "time": time, "refinement_lines": lines,
-                                   "layers": layers})
+    return case.model_copy(update={"mesh": mesh, "refinement_lines": lines, "layers": layers})
 
 
 @dataclass(frozen=True)
@@ -326,6 +346,7 @@ class RefinementStudy:
     time_unit: str
     concentration_unit: str
     dissimilar_layers: tuple[str, ...] = ()  # units whose cell layers miss the ratio
+    refined: Refined = "both"  # what each level's factor divides
 
     def unit(self, q: Quantity) -> str:
         """Display unit of a quantity."""
@@ -362,7 +383,8 @@ def _detail(v: QuantityVerdict) -> str:
 
 def refinement_study(
     case: Case, out_dir: Path, *, ratio: float = 1.5, levels: int = 3,
-    threshold: float = DEFAULT_THRESHOLD, base_dir: Path | None = None,
+    refined: Refined = "both", threshold: float = DEFAULT_THRESHOLD,
+    base_dir: Path | None = None,
     executor: Executor | None = None,
     on_level: Callable[[LevelResult], None] | None = None,
 ) -> RefinementStudy:
@@ -377,6 +399,9 @@ def refinement_study(
         ``refinement_breakthrough.png``.
     ratio, levels
         Refinement ratio between successive levels (> 1) and the number of levels.
+    refined
+        What the levels refine: ``both`` (cell sizes and time step, the Courant number
+        fixed), ``mesh`` (cell sizes only) or ``step`` (the time step only, one mesh).
     threshold
         GCI_fine below which a quantity is ``converged`` (fraction).
     base_dir
@@ -397,7 +422,7 @@ def refinement_study(
         that ran are written.
     """
     factors = [ratio**k for k in range(levels)]
-    cases = [refine_case(case, f) for f in factors]
+    cases = [refine_case(case, f, refined) for f in factors]
     results: list[LevelResult | None] = [None] * levels
     unexpected: BaseException | None = None
     with ExitStack() as stack:
@@ -419,15 +444,15 @@ def refinement_study(
             if on_level is not None:
                 on_level(res)
     done = [r for r in results if r is not None]
-    study = _judge_levels(case, done, threshold)
+    study = _judge_levels(case, done, threshold, refined)
     _write_reports(case, study, out_dir)
     if unexpected is not None:
         raise unexpected
     return study
 
 
-def _judge_levels(case: Case, levels: list[LevelResult], threshold: float
-                  ) -> RefinementStudy:
+def _judge_levels(case: Case, levels: list[LevelResult], threshold: float,
+                  refined: Refined = "both") -> RefinementStudy:
     ran = [lv for lv in levels if lv.summary is not None]
     per_level = {lv.index: _level_values(case, lv) for lv in ran}
     keys: list[Quantity] = []
@@ -436,8 +461,9 @@ def _judge_levels(case: Case, levels: list[LevelResult], threshold: float
     factors = [lv.factor for lv in ran]
     verdicts = {q: judge([per_level[lv.index].get(q) for lv in ran], factors,
                          threshold=threshold) for q in keys}
+    layers = () if refined == "step" else _dissimilar_layers(ran)  # one mesh: no layers
     return RefinementStudy(levels, verdicts, threshold, case.output.time_unit,
-                           case.output.concentration_unit, _dissimilar_layers(ran))
+                           case.output.concentration_unit, layers, refined)
 
 
 def _dissimilar_layers(ran: list[LevelResult]) -> tuple[str, ...]:
@@ -482,7 +508,8 @@ def _write_reports(case: Case, study: RefinementStudy, out_dir: Path) -> None:
     out_dir.mkdir(parents=True, exist_ok=True)
     ran = [lv for lv in study.levels if lv.summary is not None]
     tu = study.time_unit
-    heads = [f"level {lv.index} (sizes and step / {lv.factor:.4g})" for lv in ran]
+    heads = [f"level {lv.index} ({REFINED_WORDS[study.refined]} / {lv.factor:.4g})"
+             for lv in ran]
     rows = [["point", "species", "quantity", "unit", *heads, "observed order [-]",
              "extrapolated (unit of the row)", "GCI fine [%]", "verdict",
              "oscillation amplitude [%]"]]
@@ -500,7 +527,9 @@ def _write_reports(case: Case, study: RefinementStudy, out_dir: Path) -> None:
     csv.writer(buf, lineterminator="\n").writerows(rows)
     write_text_atomic(out_dir / "refinement.csv", buf.getvalue())
 
-    lines = [f"# Mesh-refinement study: {case.title}", "", f"> {CAUTION}", "",
+    title = {"both": "Mesh-refinement", "mesh": "Mesh-refinement (one time step)",
+             "step": "Time-step refinement (one mesh)"}[study.refined]
+    lines = [f"# {title} study: {case.title}", "", f"> {CAUTION}", "",
              *_level_lines(study), "",
              f"Verdicts: converged = GCI (fine) below {100 * study.threshold:g} %; converging "
              "= monotone, GCI above that; oscillatory = the differences change sign "
@@ -531,13 +560,25 @@ def _write_reports(case: Case, study: RefinementStudy, out_dir: Path) -> None:
     _write_figure(case, study, out_dir)
 
 
+LEVELS_TEXT: dict[str, str] = {
+    "both": "Each level divides every target cell size and the time step by the same factor, "
+            "so the Courant number is the same on every level (the largest per level is "
+            "listed; it varies with the smallest cells the mesher makes) while the grid Péclet "
+            "number falls.",
+    "mesh": "Each level divides every target cell size by its factor and keeps the case's "
+            "time step, so the Courant number grows with the levels (the largest per level is "
+            "listed): the differences are the mesh's error at this step.",
+    "step": "Each level divides the time step by its factor on the case's own mesh (the same "
+            "on every level), so the Courant number falls with the levels: the differences "
+            "are the time step's error on this mesh, and the extrapolated value is this mesh's "
+            "answer without it.",
+}
+"""The levels' paragraph of refinement.md, by what the study refines."""
+
+
 def _level_lines(study: RefinementStudy) -> list[str]:
     """Per level: factor, step, nodes, largest Courant number; then the failures."""
-    out = ["## Levels", "",
-           "Each level divides every target cell size and the time step by the same factor, "
-           "so the Courant number is the same on every level (the largest per level is "
-           "listed; it varies with the smallest cells the mesher makes) while the grid Péclet "
-           "number falls.", ""]
+    out = ["## Levels", "", LEVELS_TEXT[study.refined], ""]
     for lv in study.levels:
         s = lv.summary
         if s is None:
