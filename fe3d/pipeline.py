@@ -11,11 +11,12 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
+from fe3d._typing import FloatArray
 from fe3d.case.parts import FlowInputs, TransportInputs, TravelInputs
 from fe3d.case.schema import Case
 from fe3d.errors import CaseError
 from fe3d.flow.drawdown import well_drawdown
-from fe3d.flow.paths import travel_paths
+from fe3d.flow.paths import TravelPaths, travel_paths
 from fe3d.flow.solve import FlowField, solve_flow
 from fe3d.linalg import SpdPreconditioner
 from fe3d.mesh.build import build_mesh, obtain_mesh
@@ -317,12 +318,11 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     paths = travel_paths(site, flow, TravelInputs.of(case))
     tell("flow outputs", 0, 1)  # the flow's files, then its figures beside the transport
     files += write_flow_files(out_dir, case, site, flow, paths, drawdown=drawdown)
-    flow_figures = Beside(lambda: [] if compact else write_flow_figures(
-        out_dir, case, site, flow, paths, drawdown=drawdown), name="flow figures")
+    writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow, figures=not compact,
+                          drawdown=drawdown, receptors_every_step=True)
+    flow_figures = Beside(lambda: _flow_figures(out_dir, case, site, flow, paths, writer,
+                                                drawdown=drawdown), name="flow figures")
     try:
-        writer = SeriesWriter(out_dir, case, site, flow.porosity, flow=flow,
-                              figures=not compact, drawdown=drawdown,
-                              receptors_every_step=True)
         tell("transport", 0.0, case.time.end)  # its set-up counts as transport, not paths
         _transport(case, site, flow, writer, keeper=keeper, saved=saved, base_dir=base_dir,
                    on_step=lambda t, end: tell("transport", t, end))
@@ -336,6 +336,19 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     summary = writer.finish(flow, paths, files, started)
     logger.info("time per stage: %s", clock.words())
     return summary
+
+
+def _flow_figures(out_dir: Path, case: Case, site: SiteMesh, flow: FlowField,
+                  paths: TravelPaths, writer: SeriesWriter, *,
+                  drawdown: FloatArray | None) -> list[str]:
+    """The work beside the transport: the flow's figures, then what the run's figures at
+    the end can prepare (:meth:`fe3d.post.run_figures.PlumeFigures.prepare`); none for a
+    run without figures. Returns the names of the files written."""
+    if writer.figures is None:
+        return []
+    names = write_flow_figures(out_dir, case, site, flow, paths, drawdown=drawdown)
+    writer.figures.prepare()
+    return names
 
 
 def _transport(case: Case, site: SiteMesh, flow: FlowField, writer: SeriesWriter, *,

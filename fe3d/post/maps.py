@@ -17,6 +17,7 @@ from fe3d.post.cut_grid import crossing_grid
 
 __all__ = [
     "PlanField",
+    "PlanLayout",
     "PlanMark",
     "PlanShape",
     "Section",
@@ -24,6 +25,7 @@ __all__ = [
     "horizontal_section",
     "mean_flow_direction",
     "plan_columns",
+    "plan_layout",
     "plan_maximum",
     "section_marks",
     "section_through",
@@ -116,25 +118,46 @@ class PlanField:
     values: FloatArray
 
 
-def plan_maximum(points: FloatArray, values: FloatArray, outline: FloatArray) -> PlanField:
+@dataclass(frozen=True)
+class PlanLayout:
+    """Where a mesh's node columns stand in plan: the first node of each column ``(k,)``,
+    each node's column ``(n,)`` and the plan triangles ``(3, t)`` between the columns that
+    lie inside the site outline. Fixed by the mesh, so made once per run."""
+
+    first: IndexArray
+    column: IndexArray
+    triangles: IndexArray
+
+
+def plan_layout(points: FloatArray, outline: FloatArray) -> PlanLayout:
+    """The :class:`PlanLayout` of the nodes ``(3, n)`` [m]: columns by
+    :func:`plan_columns`, their Delaunay triangles, those whose centre lies outside
+    ``outline`` ``(2, k)`` [m] (a concave site) dropped."""
+    from scipy.spatial import Delaunay
+
+    first, column = plan_columns(points)
+    x, y = points[0, first], points[1, first]
+    tri = Delaunay(np.column_stack([x, y])).simplices.T
+    cx, cy = x[tri].mean(axis=0), y[tri].mean(axis=0)
+    inside = in_polygon(cx, cy, [tuple(p) for p in outline.T])
+    return PlanLayout(first, column, np.ascontiguousarray(tri[:, inside]))
+
+
+def plan_maximum(points: FloatArray, values: FloatArray, outline: FloatArray, *,
+                 layout: PlanLayout | None = None) -> PlanField:
     """The largest nodal value over depth at each plan position of the mesh's nodes.
 
     fe3d's meshes are extruded from a plan triangulation: the nodes stand in vertical columns
     joined by vertical edges, along which a P1 field is linear between nodes, so the column's
     largest nodal value is the field's largest value on that vertical (exact there).
     Positions are grouped to 1e-9 of the site's size. ``outline`` ``(2, k)`` [m] masks the
-    Delaunay triangles outside a concave site.
+    Delaunay triangles outside a concave site. ``layout``: the columns and triangles made
+    once by :func:`plan_layout` for these ``points`` and ``outline`` (made here if not).
     """
-    from scipy.spatial import Delaunay
-
-    first, column = plan_columns(points)
-    top = np.full(first.size, -np.inf)
-    np.maximum.at(top, column, values)
-    x, y = points[0, first], points[1, first]
-    tri = Delaunay(np.column_stack([x, y])).simplices.T
-    cx, cy = x[tri].mean(axis=0), y[tri].mean(axis=0)
-    inside = in_polygon(cx, cy, [tuple(p) for p in outline.T])
-    return PlanField(x, y, np.ascontiguousarray(tri[:, inside]), top)
+    layout = layout or plan_layout(points, outline)
+    top = np.full(layout.first.size, -np.inf)
+    np.maximum.at(top, layout.column, values)
+    return PlanField(points[0, layout.first], points[1, layout.first], layout.triangles, top)
 
 
 def plan_columns(points: FloatArray) -> tuple[IndexArray, IndexArray]:

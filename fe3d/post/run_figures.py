@@ -19,15 +19,17 @@ from fe3d.post.beside import Beside
 from fe3d.post.figures import plot_plume_over_time
 from fe3d.post.map_figures import plot_head_map, plot_plan_maximum, plot_section
 from fe3d.post.maps import (
+    PlanLayout,
     horizontal_section,
     mean_flow_direction,
+    plan_layout,
     plan_maximum,
     section_marks,
     section_through,
     site_features,
     vertical_section,
 )
-from fe3d.post.render3d import render_limit_surface
+from fe3d.post.render3d import load_renderer, render_limit_surface
 from fe3d.units import from_si
 
 __all__ = ["PlumeFigures", "head_map_elevation", "write_head_figure"]
@@ -87,6 +89,14 @@ class PlumeFigures:
         self.sizes: dict[str, list[tuple[float, float, float]]] = {sp: [] for sp in
                                                                    case.species}
         self.files: list[str] = []
+        self.layout: PlanLayout | None = None  # made by prepare() or the first plan map
+
+    def prepare(self) -> None:
+        """Make what the figures at the end need and the run's records already fix: the
+        plan layout of the mesh's columns, and the 3D renderer loaded. Meant to run beside
+        the transport; the figures make what is missing themselves."""
+        self.layout = plan_layout(self.site.points, self.features.outline.xy)
+        load_renderer()
 
     def section_trace(self, species: str) -> tuple[FloatArray, FloatArray]:
         """Plan end points [m] of the section along the mean flow through the species'
@@ -120,8 +130,11 @@ class PlumeFigures:
         top = max([s.peak_concentration for s in self.case.sources
                    if s.species == species and s.peak_concentration is not None]
                   + [self.case.species[species].initial_concentration], default=0.0)
+        if self.layout is None:
+            self.layout = plan_layout(self.site.points, self.features.outline.xy)
         plot_plan_maximum(self.out_dir / name,
-                          plan_maximum(self.site.points, c, self.features.outline.xy),
+                          plan_maximum(self.site.points, c, self.features.outline.xy,
+                                       layout=self.layout),
                           limit=self.case.species[species].limit, features=self.features,
                           conc_unit=self.case.output.concentration_unit, species=species,
                           when=when, section=self.section_trace(species),

@@ -25,6 +25,7 @@ from scipy.optimize import brentq
 
 from fe3d.post.maps import (
     horizontal_section,
+    plan_layout,
     plan_maximum,
     section_through,
     swept_area,
@@ -73,6 +74,11 @@ def test_plan_maximum_of_a_linear_field_is_its_value_at_the_top(box):
     area = 0.5 * np.abs((x[t[1]] - x[t[0]]) * (y[t[2]] - y[t[0]])
                         - (x[t[2]] - x[t[0]]) * (y[t[1]] - y[t[0]])).sum()
     assert area == pytest.approx(100.0 * 50.0, rel=REL)
+    # the run makes the columns and triangles once, beside the transport: the same map
+    again = plan_maximum(points, _linear(points), outline, layout=plan_layout(points, outline))
+    for a, b in ((again.x, plan.x), (again.y, plan.y), (again.values, plan.values),
+                 (again.triangles, plan.triangles)):
+        assert np.array_equal(a, b)
 
 
 def test_sections_of_a_linear_field_are_the_field(box):
