@@ -11,7 +11,7 @@ import dataclasses
 
 import numpy as np
 import pytest
-from test_release_and_injection import SPILL, TINY
+from test_release_and_injection import SPILL, TINY, nodes_wholly_inside
 
 from fe3d.case.builder import with_changes
 from fe3d.case.parts import TransportInputs
@@ -39,12 +39,20 @@ def test_mass_loading_injects_rate_times_duration():
 
 
 def test_initial_plume_is_there_at_the_start_and_conserved():
+    """The spill box x, y ∈ [8, 12] m, z ∈ [2, 4] m (32 m³) at c0 = 5 mg/L in the tiny
+    case's sand (θ = 0.3, ρ_b = 1600 kg/m³, Kd = 0.1 L/kg, so R = 1 + ρ_b Kd/θ = 1.5333):
+    the nodes whose cells all lie in it start at c0 exactly, none above; the initial mass,
+    dissolved and sorbed, is θ R c0 |box| within 2 % (issue 11's criterion for sources the
+    size they are; theory.md T3, ``initial_plume``); the budget then closes."""
     site, snaps = _run(kind="initial_plume", stop=None)
     first = snaps[0]
-    inside = (np.abs(site.points[0] - 10) <= 2) & (np.abs(site.points[1] - 10) <= 2) & \
-        (site.points[2] >= 2) & (site.points[2] <= 4)
-    np.testing.assert_allclose(first.concentration["tracer"][inside], 5e-3, rtol=1e-12)
-    assert first.budgets["tracer"].initial > 0
+    c = first.concentration["tracer"]
+    whole = nodes_wholly_inside(site, (8, 8, 2), (12, 12, 4))
+    assert whole.any()
+    np.testing.assert_allclose(c[whole], 5e-3, rtol=1e-12)
+    assert c.max() <= 5e-3 * (1 + 1e-12)
+    exact = 0.3 * (1 + 1600 * 1e-4 / 0.3) * 5e-3 * 32.0
+    assert first.budgets["tracer"].initial == pytest.approx(exact, rel=0.02)
     for snap in snaps:
         b = snap.budgets["tracer"]
         assert b.relative_error <= 1e-8
