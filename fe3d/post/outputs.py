@@ -497,14 +497,19 @@ class SeriesWriter:
     def _boundary_contacts(self) -> list[BoundaryContact]:
         """Faces where the part above a limit touched nodes that let no water out: not
         on a fixed-head face where water leaves (outward flux at an adjacent facet, as the
-        transport's outflow term, theory.md T3b) nor at a budget item taking water out."""
+        transport's outflow term, theory.md T3b) nor at a budget item taking water out.
+        A face that carries a source patch of the species is the source's own boundary
+        (the patch is meant to sit on it), so it is not checked for that species."""
         site, n = self.site, self.site.n_nodes
         leaves = outflow_nodes(n, {r.name: r.water_out for r in self.receptors}, {})
         contacts = []
         for sp, first in self.first_above.items():
             everywhere = np.full(n, np.nan)
             everywhere[self.boundary_nodes] = first
-            contacts += boundary_contacts(sp, everywhere, site.faces, leaves)
+            own = {src.face for src in self.case.sources
+                   if src.species == sp and src.shape == "face_patch"}
+            faces = {name: ids for name, ids in site.faces.items() if name not in own}
+            contacts += boundary_contacts(sp, everywhere, faces, leaves)
         return contacts
 
 

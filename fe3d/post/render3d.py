@@ -54,7 +54,11 @@ def render_limit_surface(path: Path, points: FloatArray, cells: IndexArray,
         logger.info("no 3D view: nothing above the limit (%s)", label)
         return None
     grid = crossing_grid(points, cells, values - limit, {"c": values})
-    surface = grid.contour([limit], scalars="c")  # not None: some value is above the limit
+    if grid is None:  # every node above the limit: the surface would be the model's own
+        logger.warning("no 3D view: the whole model is above the limit (%s); the model is "
+                       "too small for this plume", label)
+        return None
+    surface = grid.contour([limit], scalars="c")
     stretch = (1.0, 1.0, vertical_scale)
     top = float(points[2].max())
     ring = np.vstack([features.outline.xy, np.full(features.outline.xy.shape[1], top)]).T

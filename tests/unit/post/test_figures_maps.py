@@ -267,3 +267,21 @@ def test_breakthrough_axis_shows_negative_values():
     assert ax.get_yscale() == "symlog"
     assert ax.get_ylim()[0] <= values.min()
     plt.close(fig)
+
+
+def test_no_3d_view_when_the_whole_model_is_above_the_limit(box, tmp_path, caplog):
+    """Every node above the limit: no cell is cut, so there is no surface to draw; the view
+    is left out with one log line naming the cause (it used to fail the whole run with an
+    AttributeError after the transport)."""
+    from fe3d.post.maps import PlanShape, SiteFeatures
+    from fe3d.post.render3d import render_limit_surface
+
+    points, cells, outline = box
+    features = SiteFeatures("Test box (invented)", PlanShape("site outline", outline, True),
+                            (), (), (), (), ())
+    with caplog.at_level("WARNING"):
+        got = render_limit_surface(tmp_path / "surface.png", points, cells,
+                                   np.full(points.shape[1], 1e-3), 5e-6, features=features,
+                                   label="solvent at 2 yr")
+    assert got is None and not (tmp_path / "surface.png").exists()
+    assert "whole model is above the limit" in caplog.text

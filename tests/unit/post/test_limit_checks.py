@@ -102,3 +102,26 @@ def test_widen_window_follows_the_running_extreme():
     assert widen_window(w, -1.0, -1.0, 2.0, 4.0, lower=True) == (0.0, 2.0)
     assert widen_window(w, -1.0, -3.0, 4.0, 6.0, lower=True) == (4.0, 6.0)
     assert widen_window(None, 1.0, 2.0, 0.0, 2.0, lower=False) == (0.0, 2.0)
+
+
+def test_a_patch_on_the_inflow_face_is_not_the_plume_reaching_it(tmp_path):
+    """A fixed-concentration patch on the west (inflow) face: the part above the limit
+    touches the west face at and beside the patch, which is where the source is meant to
+    be, not the model cutting the plume; the south and north faces, 1 m from the patch's
+    sides, are reached and still flagged (behaviour test, no published reference)."""
+    from fe3d.case.builder import Layer, Material, Source, Species, Time, box_case
+    from fe3d.pipeline import run_case
+
+    sand = Material(10.0, 10.0, porosity=0.3, longitudinal_dispersivity=1.0,
+                    transverse_dispersivity=0.5)
+    case = box_case(length=30.0, width=6.0, cell=1.0, dz=1.0, heads={"west": 0.3, "east": 0.0},
+                    layers=[Layer("sand", -3.0, sand)],
+                    species=[Species("solvent", limit="1 ug/L")],
+                    sources=[Source("patch", species="solvent", shape="face_patch",
+                                    face="west", concentration="10 mg/L", y=(1.0, 5.0),
+                                    z=(-3.0, 0.0))],
+                    time=Time("20 d", "1 d", output_interval="10 d"))
+    summary = run_case(case, tmp_path / "run")
+    faces = {b.face for b in summary.boundary_contacts}
+    assert "west" not in faces
+    assert {"south", "north"} <= faces

@@ -52,6 +52,18 @@ def test_each_threshold_warns(field, value, word):
     assert word in w[0]
 
 
+@pytest.mark.parametrize(("peclet", "warns"), [(2.0, False), (2.04, False), (2.06, True)])
+def test_grid_peclet_is_compared_as_shown(peclet, warns):
+    """The advice 'grid Péclet at most 2' (common practice, no source) is compared with the
+    value as the report shows it, two digits: the corridor's own target of 2 measures
+    2.02-2.04 on gmsh's cells and no longer warns "2 > 2"; 2.06 shows as 2.1 and warns,
+    printed to three digits."""
+    w = quality_warnings(_summary(max_grid_peclet={"x": peclet}))
+    assert bool(w) == warns
+    if warns:
+        assert "grid Péclet number in the plume 2.06 > 2" in w[0]
+
+
 def test_negative_values_advice_follows_the_scheme():
     """The advice names the monotone option, or, when it was on, backward Euler (T16)."""
     low = {"x": species_extremes("x", 1.0, lowest=(-0.05, None), highest=(1.0, None))}
