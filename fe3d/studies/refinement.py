@@ -229,7 +229,8 @@ def judge(values: Sequence[float | None], factors: Sequence[float], *,
 def refine_case(case: Case, factor: float, refined: Refined = "both") -> Case:
     """The case with every target cell size and every time step divided by ``factor`` (a
     unit's ``sublayers`` multiplied by it, rounded up); with ``refined="mesh"`` or ``"step"``
-    only the sizes or only the steps.
+    only the sizes or only the steps (for steps that follow the plume, ``time.courant``:
+    with the sizes alone such steps still shrink with the cells).
 
     Dividing the step with the cell sizes keeps the Courant number v·Δt/h of every cell the
     same on every level. Raises :class:`CaseError` for an imported mesh whose sizes would
@@ -240,11 +241,14 @@ def refine_case(case: Case, factor: float, refined: Refined = "both") -> Case:
         out = _finer_mesh(out, factor)
     if refined in ("both", "step"):
         t = case.time
-        out = out.model_copy(update={"time": t.model_copy(update={
+        steps = {
             "step": None if t.step is None else t.step / factor,  # None: steps follow the plume
             "min_step": None if t.min_step is None else t.min_step / factor,
             "max_step": None if t.max_step is None else t.max_step / factor,
-        })})
+        }
+        if refined == "step" and t.step is None:  # steps that follow the plume: their target
+            steps["courant"] = t.courant / factor
+        out = out.model_copy(update={"time": t.model_copy(update=steps)})
     return out
 
 

@@ -334,12 +334,17 @@ def test_column_study_order_and_gci_bracket_the_exact_error(tmp_path):
 
 def test_refine_case_can_refine_the_step_or_the_mesh_alone():
     """``refined="step"`` divides the steps and leaves every mesh input as it is (one mesh on
-    every level); ``refined="mesh"`` divides the sizes and keeps the steps."""
+    every level), or the Courant target of steps that follow the plume; ``refined="mesh"``
+    divides the sizes and keeps the steps."""
     case = load_case(TINY)
     step = refine_case(case, 2.0, "step")
     assert step.mesh == case.mesh and step.layers == case.layers
     assert step.refinement_lines == case.refinement_lines
     assert step.time.step == case.time.step / 2
+    plume = refine_case(with_changes(case, time={"step": None}), 2.0, "step")
+    assert plume.time.step is None and plume.time.courant == case.time.courant / 2
+    assert refine_case(with_changes(case, time={"step": None}), 2.0).time.courant \
+        == case.time.courant  # both: the Courant number is what stays
     mesh = refine_case(case, 2.0, "mesh")
     assert mesh.time == case.time
     assert mesh.mesh.cell_size == case.mesh.cell_size / 2
