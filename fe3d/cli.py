@@ -267,7 +267,7 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool, overwrite: bool,
 
         clock = StageClock(progress)
         try:
-            summary = run_case(case, folder, progress=clock.tell,
+            summary = run_case(case, folder, progress=clock,
                                base_dir=case_path.resolve().parent,
                                mesh_folders=[_default_mesh_folder(case_path)],
                                overwrite=overwrite, force=force, inputs=[case_path],

@@ -116,12 +116,21 @@ def run_mesh(case: Case, folders: list[Path], out_dir: Path, *, base_dir: Path |
     from ``folders`` or built (:func:`fe3d.mesh.build.obtain_mesh`) and its flow is
     ``None``."""
     done = first_pass(case, base_dir=base_dir, preconditioner=preconditioner)
+    site, _reused = _final_mesh(case, done, folders, out_dir)
+    return site, None if done is None or site is not done.mesh else done.flow
+
+
+def _final_mesh(case: Case, done: FirstPass | None, folders: list[Path], out_dir: Path,
+                ) -> tuple[SiteMesh, bool]:
+    """The mesh after the first pass ``done``, saved in ``out_dir``, and whether it was
+    reused from ``folders``: the first pass's own when it found nothing to refine and no
+    mesh of the same inputs is cached, else the cached or newly built one
+    (:func:`fe3d.mesh.build.obtain_mesh`, refined along the corridor)."""
     if done is not None and done.corridor is None and not _mesh_cached(case, folders):
         save_cached(done.mesh, out_dir, mesh_inputs_hash(case))
-        return done.mesh, done.flow
-    site, _reused = obtain_mesh(case, folders, save_to=out_dir,
-                                corridor=None if done is None else done.corridor)
-    return site, None
+        return done.mesh, False
+    return obtain_mesh(case, folders, save_to=out_dir,
+                       corridor=None if done is None else done.corridor)
 
 
 def _mesh_cached(case: Case, folders: list[Path]) -> bool:
@@ -292,7 +301,9 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     ``keeper`` saves the transport's checkpoints; ``saved``: the stopped run to continue.
     """
     started = time.perf_counter()
-    clock = StageClock(progress)
+    # a caller's own clock (the command line's) is used as it is, so that it also learns
+    # of the work done beside the transport
+    clock = progress if isinstance(progress, StageClock) else StageClock(progress)
     tell = clock.tell
     out_dir.mkdir(parents=True, exist_ok=True)
     tell("mesh", 0, 1)
@@ -395,6 +406,10 @@ class StageClock:
         self._stage: str | None = None
         self._since = time.perf_counter()
 
+    def __call__(self, stage: str, done: float, total: float) -> None:
+        """A clock is itself a progress callback (:meth:`tell`)."""
+        self.tell(stage, done, total)
+
     def tell(self, stage: str, done: float, total: float) -> None:
         if stage != self._stage:
             now = time.perf_counter()
@@ -425,13 +440,13 @@ def mesh_case(case: Case, out_dir: Path, *, base_dir: Path | None = None,
               ) -> tuple[SiteMesh, bool, list[Path]]:
     """Build (or reuse, when the mesh inputs and the plume corridor are unchanged) the mesh
     of ``case`` and write ``mesh.msh``, ``mesh.vtu``, ``mesh.npz`` and ``mesh.json`` in
-    ``out_dir``. The corridor needs a first mesh and flow solve (:func:`plume_corridor`),
-    which run every time; only the final mesh is reused.
+    ``out_dir``. The corridor needs a first mesh and flow solve (:func:`first_pass`), which
+    run every time; only the final mesh is reused, and when the first pass finds nothing to
+    refine its mesh is the final one (no second build).
 
     Returns the mesh, whether it was reused, and the files written.
     """
     out_dir.mkdir(parents=True, exist_ok=True)
-    site, reused = obtain_mesh(case, [out_dir], save_to=out_dir,
-                               corridor=plume_corridor(case, base_dir=base_dir))
+    site, reused = _final_mesh(case, first_pass(case, base_dir=base_dir), [out_dir], out_dir)
     files = write_mesh(site, out_dir)
     return site, reused, [*files, out_dir / "mesh.npz", out_dir / "mesh.json"]
