@@ -86,7 +86,8 @@ def _first_sweep(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatAr
     sums P_i^± and ranges Q_i^± of c_L (the upper end raised to ``cap``) into ``sums`` and
     ``ranges`` (2i, 2i + 1), in one sweep over the CSR arrays. No prelimiting: dropping the
     fluxes that run down the gradient of c_L removed the target's own spreading (T16b).
-    The added diffusion d_ij = l_ij − k_ij is formed from L and the Galerkin K (``k``)."""
+    The added diffusion d_ij = l_ij − k_ij is formed from L and the Galerkin K (``k``);
+    l_ji is read at L's own position ``low_t[p]`` of entry (j, i)."""
     for i in range(c_low.size):
         x_i = c_low[i] - c_mean[i]
         ci = c_low[i]
@@ -97,7 +98,7 @@ def _first_sweep(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatAr
             fij = 0.0
             if j != i:
                 fij = (m[p] * (rate[i] - rate[j]) - (low[p] - k[p]) * (c_mean[i] - c_mean[j])
-                       + low[p] * (c_low[j] - c_mean[j]) - low_t[p] * x_i)
+                       + low[p] * (c_low[j] - c_mean[j]) - low[low_t[p]] * x_i)
             f[p] = fij
             p_plus += max(fij, 0.0)
             p_minus += min(fij, 0.0)
@@ -213,14 +214,15 @@ class TargetFluxes:
     """The operators the correction towards a high-order target needs, on one CSR pattern:
     the consistent mass M, the Galerkin spatial operator K, the low-order operator L = K + D
     (D the diffusion it added, T16, nonpositive off-diagonal entries: formed as L − K where
-    it is read, not held) and its transpose's values on the same pattern, the lumped mass
+    it is read, not held) and, for each entry (i, j), the position of entry (j, i) in L's
+    arrays (int32 where the pattern allows: half of a transposed copy), the lumped mass
     m_L (row sums of M) and L's column sums [m³/s] (the nodal decay and outflow: the
     sinks)."""
 
     mass: sp.csr_matrix
     galerkin: sp.csr_matrix
     low_order: sp.csr_matrix
-    low_order_transposed: FloatArray
+    transposed_at: IndexArray
     lumped: FloatArray
     sink: FloatArray
     exchange: FloatArray  # the diagonal of D [m³/s]: a node's exchange with its neighbours
@@ -245,15 +247,18 @@ class TargetFluxes:
     def of(cls, mass: sp.csr_matrix, galerkin: sp.csr_matrix,
            low_order: sp.csr_matrix) -> TargetFluxes:
         """From the Galerkin operators M, K and the low-order spatial operator L."""
-        lt = low_order.T.tocsr()
-        lt.sort_indices()
+        nnz = low_order.indices.size
+        at = sp.csr_matrix((np.arange(nnz, dtype=np.int64), low_order.indices,
+                            low_order.indptr), shape=low_order.shape).T.tocsr()
+        at.sort_indices()  # entry p of the transpose holds the position of (j, i)
         if not (np.array_equal(mass.indptr, low_order.indptr)
                 and np.array_equal(mass.indices, low_order.indices)
-                and np.array_equal(lt.indices, low_order.indices)):
+                and np.array_equal(at.indices, low_order.indices)):
             msg = "the operators must share one structurally symmetric CSR pattern"
             raise ValueError(msg)
         return cls(mass=mass, galerkin=galerkin, low_order=low_order,
-                   low_order_transposed=np.ascontiguousarray(lt.data),
+                   transposed_at=np.ascontiguousarray(
+                       at.data, dtype=np.int32 if nnz < 2**31 else np.int64),
                    lumped=np.asarray(mass.sum(axis=1)).ravel(),
                    sink=np.asarray(low_order.sum(axis=0)).ravel(),
                    exchange=low_order.diagonal() - galerkin.diagonal(),
@@ -419,7 +424,7 @@ def _correct(ops: TargetFluxes, c_low: FloatArray, target: TargetStep, c_old: Fl
     rate, c_mean = target.rate, target.mean
     scale = max(float(np.max(np.abs(c_low))), float(np.max(np.abs(c_old + dt * rate))))
     used, swept = _limit(indptr, cols, ops.mass.data, ops.galerkin.data,
-                         ops.low_order.data, ops.low_order_transposed, c_low, rate, c_mean,
+                         ops.low_order.data, ops.transposed_at, c_low, rate, c_mean,
                          cap, ops.lumped, float(dt), held, blocked, passes,
                          PASS_TOLERANCE * scale, CLOSE_TOLERANCE * scale, c, total,
                          ops.scratch())
@@ -483,7 +488,7 @@ def raw_flux_sums(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray,
                                   np.asarray(c_old, dtype=float), dt, theta)
     f, sums, ranges = np.empty(ops.mass.indices.size), np.empty(2 * n), np.empty(2 * n)
     _first_sweep(ops.mass.indptr, ops.mass.indices, ops.mass.data, ops.galerkin.data,
-                 ops.low_order.data, ops.low_order_transposed, c_low, rate, c_mean,
+                 ops.low_order.data, ops.transposed_at, c_low, rate, c_mean,
                  np.full(n, -np.inf), f, sums, ranges)
     rows = np.repeat(np.arange(n), np.diff(ops.mass.indptr))
     return np.bincount(rows, weights=f, minlength=n)

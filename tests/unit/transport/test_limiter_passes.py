@@ -38,9 +38,11 @@ def _zalesak_reference(ops: TargetFluxes, c_low: np.ndarray, c_high: np.ndarray,
     off = rows != cols
     rate, mean = (c_high - c_old) / dt, theta * c_high + (1.0 - theta) * c_old
     x = c_low - mean
+    lt = ops.low_order.T.tocsr()  # l_ji on L's pattern, from scipy (the kernel reads positions)
+    lt.sort_indices()
     f = np.where(off, A.data * (rate[rows] - rate[cols])
                  - ops.diffusion.data * (mean[rows] - mean[cols])
-                 + ops.low_order.data * x[cols] - ops.low_order_transposed * x[rows], 0.0)
+                 + ops.low_order.data * x[cols] - lt.data * x[rows], 0.0)
     held = np.zeros(n, dtype=bool)
     held[fixed] = True
     c, total = c_low.copy(), np.zeros(n)
