@@ -78,6 +78,11 @@ class SpdPreconditioner:
         self.levels = 0
         self.operator_complexity = 0.0
 
+    def forget(self) -> None:
+        """Let the kept hierarchy go (its matrix's mesh is no longer used); the next
+        :meth:`hierarchy` builds a new one."""
+        self._ml, self._shape = None, None
+
     def hierarchy(self, A: sp.csr_matrix) -> Any:
         """The kept hierarchy when it was built for a matrix of ``A``'s shape, else a new
         one built from ``A`` (and kept)."""

@@ -115,22 +115,31 @@ def run_mesh(case: Case, folders: list[Path], out_dir: Path, *, base_dir: Path |
     keeps its mesh. Otherwise the mesh refined along the corridor (or as written) is reused
     from ``folders`` or built (:func:`fe3d.mesh.build.obtain_mesh`) and its flow is
     ``None``."""
-    done = first_pass(case, base_dir=base_dir, preconditioner=preconditioner)
-    site, _reused = _final_mesh(case, done, folders, out_dir)
-    return site, None if done is None or site is not done.mesh else done.flow
+    site, flow, _reused = _final_mesh(
+        case, first_pass(case, base_dir=base_dir, preconditioner=preconditioner), folders,
+        out_dir, preconditioner=preconditioner)
+    return site, flow
 
 
-def _final_mesh(case: Case, done: FirstPass | None, folders: list[Path], out_dir: Path,
-                ) -> tuple[SiteMesh, bool]:
-    """The mesh after the first pass ``done``, saved in ``out_dir``, and whether it was
-    reused from ``folders``: the first pass's own when it found nothing to refine and no
-    mesh of the same inputs is cached, else the cached or newly built one
-    (:func:`fe3d.mesh.build.obtain_mesh`, refined along the corridor)."""
+def _final_mesh(case: Case, done: FirstPass | None, folders: list[Path], out_dir: Path, *,
+                preconditioner: SpdPreconditioner | None = None,
+                ) -> tuple[SiteMesh, FlowField | None, bool]:
+    """The mesh after the first pass ``done``, saved in ``out_dir``, its flow when that is
+    the first pass's, and whether the mesh was reused from ``folders``: the first pass's own
+    when it found nothing to refine and no mesh of the same inputs is cached, else the
+    cached or newly built one (:func:`fe3d.mesh.build.obtain_mesh`, refined along the
+    corridor). Pass ``done`` straight from :func:`first_pass`: in the second case its mesh
+    and flow, and ``preconditioner``'s hierarchy built on them, are let go before the final
+    mesh is built, so the two meshes are not held at once."""
     if done is not None and done.corridor is None and not _mesh_cached(case, folders):
         save_cached(done.mesh, out_dir, mesh_inputs_hash(case))
-        return done.mesh, False
-    return obtain_mesh(case, folders, save_to=out_dir,
-                       corridor=None if done is None else done.corridor)
+        return done.mesh, done.flow, False
+    corridor = None if done is None else done.corridor
+    del done
+    if preconditioner is not None:
+        preconditioner.forget()
+    site, reused = obtain_mesh(case, folders, save_to=out_dir, corridor=corridor)
+    return site, None, reused
 
 
 def _mesh_cached(case: Case, folders: list[Path]) -> bool:
@@ -154,7 +163,9 @@ def mesh_and_flow(case: Case, *, base_dir: Path | None = None) -> tuple[SiteMesh
     done = first_pass(case, base_dir=base_dir)
     if done is not None and done.corridor is None:
         return done.mesh, done.flow
-    site = build_mesh(case, corridor=None if done is None else done.corridor)
+    corridor = None if done is None else done.corridor
+    del done  # the first pass's mesh and flow are let go before the final mesh is built
+    site = build_mesh(case, corridor=corridor)
     return site, solve_flow(site, FlowInputs.of(case), base_dir=base_dir)
 
 
@@ -447,6 +458,7 @@ def mesh_case(case: Case, out_dir: Path, *, base_dir: Path | None = None,
     Returns the mesh, whether it was reused, and the files written.
     """
     out_dir.mkdir(parents=True, exist_ok=True)
-    site, reused = _final_mesh(case, first_pass(case, base_dir=base_dir), [out_dir], out_dir)
+    site, _flow, reused = _final_mesh(case, first_pass(case, base_dir=base_dir), [out_dir],
+                                      out_dir)
     files = write_mesh(site, out_dir)
     return site, reused, [*files, out_dir / "mesh.npz", out_dir / "mesh.json"]

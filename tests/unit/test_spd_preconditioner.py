@@ -84,3 +84,14 @@ def test_level_by_level_hierarchy_is_pyamgs_with_one_threshold(monkeypatch) -> N
     monkeypatch.undo()
     default = linalg._amg_hierarchy(A)
     assert default.levels[1].A.shape[0] <= mine.levels[1].A.shape[0]
+
+
+def test_a_forgotten_hierarchy_is_built_again() -> None:
+    """``forget`` lets the hierarchy go (the run calls it when the corridor's first-pass
+    mesh is dropped, so that it is not held while the final mesh is built): the next matrix,
+    even of the same shape, gets a new one."""
+    kept = SpdPreconditioner()
+    A = _laplacian(12)
+    first = kept.hierarchy(A)
+    kept.forget()
+    assert kept.hierarchy(A) is not first and kept.builds == 2
