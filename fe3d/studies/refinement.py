@@ -35,7 +35,8 @@ import numpy as np
 
 from fe3d.case.schema import Case
 from fe3d.errors import CaseError, Fe3dError
-from fe3d.pipeline import run_case
+from fe3d.mesh.site_mesh import SiteMesh
+from fe3d.pipeline import mesh_case, run_case
 from fe3d.post.figures import plot_refinement_breakthrough
 from fe3d.post.files import write_text_atomic
 from fe3d.post.probes import breakthrough
@@ -290,10 +291,13 @@ class LevelResult:
     error: str | None = None
 
 
-def _run_level(case: Case, folder: Path, base_dir: Path | None) -> RunSummary | str:
-    """Worker: run one level; an :class:`Fe3dError` comes back as its one-line message."""
+def _run_level(case: Case, folder: Path, base_dir: Path | None,
+               site: SiteMesh | None = None) -> RunSummary | str:
+    """Worker: run one level (on ``site`` when given: the one mesh of a study of the step);
+    an :class:`Fe3dError` comes back as its one-line message."""
     try:
-        return run_case(case, folder, base_dir=base_dir, mesh_folders=[], overwrite=True)
+        return run_case(case, folder, base_dir=base_dir, mesh_folders=[], overwrite=True,
+                        site=site)
     except Fe3dError as exc:
         return f"{type(exc).__name__}: " + "; ".join(str(exc).splitlines())
 
@@ -432,7 +436,10 @@ def refinement_study(
     with ExitStack() as stack:
         pool = executor if executor is not None else stack.enter_context(
             study_executor(n_runs=levels)).executor
-        futures = {pool.submit(_run_level, c, out_dir / f"level_{k}", base_dir): k
+        # a study of the step meshes once (folder ``mesh``) and runs every level on it
+        site = None if refined != "step" else mesh_case(case, out_dir / "mesh",
+                                                        base_dir=base_dir)[0]
+        futures = {pool.submit(_run_level, c, out_dir / f"level_{k}", base_dir, site): k
                    for k, c in enumerate(cases)}
         for fut in as_completed(futures):
             k = futures[fut]

@@ -365,6 +365,7 @@ def test_step_study_on_one_mesh_finds_backward_eulers_first_order(tmp_path):
                              refined="step", executor=SerialExecutor())
     nodes = {lv.summary.n_nodes for lv in study.levels}
     assert len(nodes) == 1, nodes
+    assert (tmp_path / "mesh" / "mesh.json").is_file()  # meshed once, beside the levels
     assert study.dissimilar_layers == ()
     peaks = {q: v for q, v in study.verdicts.items() if q.measure == "peak"}
     assert len(peaks) == len(RECEPTORS)
