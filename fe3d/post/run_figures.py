@@ -95,8 +95,14 @@ class PlumeFigures:
         """Make what the figures at the end need and the run's records already fix: the
         plan layout of the mesh's columns, and the 3D renderer loaded. Meant to run beside
         the transport; the figures make what is missing themselves."""
-        self.layout = plan_layout(self.site.points, self.features.outline.xy)
+        self._plan_layout()
         load_renderer()
+
+    def _plan_layout(self) -> PlanLayout:
+        """The plan layout of the mesh's columns, made on first use and kept."""
+        if self.layout is None:
+            self.layout = plan_layout(self.site.points, self.features.outline.xy)
+        return self.layout
 
     def section_trace(self, species: str) -> tuple[FloatArray, FloatArray]:
         """Plan end points [m] of the section along the mean flow through the species'
@@ -130,11 +136,9 @@ class PlumeFigures:
         top = max([s.peak_concentration for s in self.case.sources
                    if s.species == species and s.peak_concentration is not None]
                   + [self.case.species[species].initial_concentration], default=0.0)
-        if self.layout is None:
-            self.layout = plan_layout(self.site.points, self.features.outline.xy)
         plot_plan_maximum(self.out_dir / name,
                           plan_maximum(self.site.points, c, self.features.outline.xy,
-                                       layout=self.layout),
+                                       layout=self._plan_layout()),
                           limit=self.case.species[species].limit, features=self.features,
                           conc_unit=self.case.output.concentration_unit, species=species,
                           when=when, section=self.section_trace(species),

@@ -33,7 +33,8 @@ class PlumeCourant:
         self.node_rate, self.node_peclet = {}, {}
         for s in species:
             c = s.coefficients
-            speed = np.sqrt(np.sum(c.velocity * c.velocity, axis=0))
+            a = c.velocity  # formed from q/m on each access: once here
+            speed = np.sqrt(np.sum(a * a, axis=0))
             self.node_rate[s.name] = _largest_around(site, speed / c.element_length)
             # grid Péclet |v| h / D_L of each cell (the retardation cancels: a = v/R, D/R)
             d_l = c.along_flow_diffusivity
