@@ -44,15 +44,6 @@ __all__ = ["StepBudget", "StepContext", "StepResult", "StepState",
 
 logger = logging.getLogger(__name__)
 
-LIMITING_REACH = 4.0
-"""Flux limiting (T16b) acts at a node only while Δt Σ_j |d_ij| ≤ LIMITING_REACH · m_i (the
-step at most about four times the node's low-order exchange time); such nodes keep the
-low-order value. Measured: with no such bound the explicit correction pushed nodes of the
-steady 3D point-source case (Courant ≈ 50) to their neighbours' extremes, centreline error
-34 % against 23 % for the low-order scheme alone (with the bound: 23 %); the sharp-front
-column keeps its whole gain up to a cell Courant number of 4 (error 0.118 against 0.135
-low order, 0.112 SUPG), and the 3D slug at Courant 20 keeps part of it."""
-
 ROUND_OFF_FACTOR = 64.0
 """Newton inside a step stops once ‖R‖ ≤ ROUND_OFF_FACTOR · ε · max(‖rhs‖, ‖S cⁿ‖): the
 round-off of evaluating R from terms of that size (a sum over about 30 neighbours per
@@ -376,10 +367,10 @@ class _Solve:
         theta, upper = target.scheme.theta, self.ctx.sources.upper_bound[self.s.name]
         if target.system is None:  # linearised at c_L: no second solve
             return linearised_correction(ops, low, self.old, self.dt, theta, sy.fixed,
-                                         reach=LIMITING_REACH, upper=upper), 0
+                                         upper=upper), 0
         high = self._target_step(guess, low)
         return limited_target_fluxes(ops, low, high, self.old, self.dt, theta, sy.fixed,
-                                     reach=LIMITING_REACH, upper=upper), \
+                                     upper=upper), \
             _last_iterations(target.system.solver)
 
     def _target_step(self, guess: FloatArray, low: FloatArray) -> FloatArray:

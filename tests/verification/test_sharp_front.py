@@ -356,16 +356,34 @@ def test_flux_limiting_sharpens_the_monotone_front(column, courant):
     assert err["limited"] * 1.3 <= err["low"], err
 
 
-def test_flux_limiting_on_long_steps_keeps_the_low_order_value(column):
-    """At a nominal Courant number of 8 (13.7 over the cells) every node's step is long
-    against its low-order exchange (theory.md T16b, LIMITING_REACH): the run reports the
-    blocked share (measured: all free nodes; 1 % at a nominal Courant number of 2, none at
-    1) and its result is the low-order one to round-off."""
-    site, flow, _ = column
-    case = _case(8.0 * CELL / V, linear_solver="direct", monotone=True)
-    low = list(run_transport(site, flow, TransportInputs.of(case)))[-1]
-    limited = TransportInputs.of(with_changes(case, solver={"flux_limiting": True}))
-    lim = list(run_transport(site, flow, limited))[-1]
-    assert lim.diagnostics.limiting_blocked["tracer"] == 1.0
-    np.testing.assert_allclose(lim.concentration["tracer"], low.concentration["tracer"],
-                               rtol=0, atol=1e-12 * C0)
+@pytest.mark.parametrize("courant", [4.0, 16.0])
+def test_flux_limiting_on_long_steps(column, courant):
+    """Steps long against a node's exchange with its neighbours (nominal Courant numbers 4
+    and 16): the limited correction still keeps every concentration in [0, c0] (round-off
+    1e-12 c0) and closes the budget ≤ 1e-8, and it keeps its gain: its mean absolute error
+    along the centre line against Ogata & Banks (1961) is at most that of the SUPG run
+    (within 1 %) and below the low-order scheme's; project criteria, no source. At these
+    steps backward Euler's own error is most of each error, so the three lie close.
+    Measured (mean |c − c_exact|/c0, SUPG / low order / limited): Courant 4 0.158 / 0.173 /
+    0.157; 8 0.196 / 0.207 / 0.195; 16 0.228 / 0.237 / 0.227. Until 2026-12 the correction
+    was left out at nodes whose step was over four times their low-order exchange time,
+    and these runs were the low-order ones (theory.md T16b)."""
+    site, flow, line = column
+    dt = courant * CELL / V
+    xs, nodes, bary = line
+    exact = ogata_banks(xs, T_END)
+    err = {}
+    for name, extra in (("supg", {}), ("low", {"monotone": True}),
+                        ("limited", {"monotone": True, "flux_limiting": True})):
+        snaps = list(run_transport(
+            site, flow, TransportInputs.of(_case(dt, linear_solver="direct", **extra))))
+        if name == "limited":
+            for snap in snaps:
+                c = snap.concentration["tracer"]
+                assert c.min() >= -1e-12 * C0 and c.max() <= C0 * (1.0 + 1e-12)
+                assert snap.budgets["tracer"].relative_error <= 1e-8
+        prof = np.sum(bary * snaps[-1].concentration["tracer"][nodes], axis=0) / C0
+        err[name] = float(np.mean(np.abs(prof - exact)))
+    print(f"Courant {courant}: mean |error| {err}")
+    assert err["limited"] <= 1.01 * err["supg"], err
+    assert err["limited"] < err["low"], err
