@@ -81,7 +81,6 @@ class RunSummary:
     rejected_steps: int = 0
     method: str = ""  # the time scheme and the spatial scheme, in words
     monotone: bool = False  # solver.monotone was on (T16)
-    limiting_blocked: dict[str, float] = field(default_factory=dict)  # T16b, fraction
     max_plume_courant: dict[str, float] = field(default_factory=dict)  # plume cells, T14b
     extremes: dict[str, SpeciesExtremes] = field(default_factory=dict)
     boundary_contacts: list[BoundaryContact] = field(default_factory=list)
@@ -114,11 +113,6 @@ def quality_warnings(s: RunSummary) -> list[str]:
             out.append(f"{sp}: largest grid Péclet number in the plume "
                        f"{s.max_grid_peclet[sp]:.3g} > 2; the mesh is coarse against the "
                        "dispersivities where the plume went: refine and compare")
-        if s.limiting_blocked.get(sp, 0.0) >= 0.005:
-            out.append(f"{sp}: flux limiting left up to {s.limiting_blocked[sp]:.0%} of the "
-                       "nodes at the low-order value in a step (the step is long against "
-                       "their exchange with their neighbours, theory.md T16b): shorten "
-                       "time.step and compare")
         if sp in s.extremes:
             out += _limit_warnings(s.extremes[sp], s)
     # the top and bottom faces are the aquifer's own limits (water table, base), not a model

@@ -26,10 +26,8 @@ class TransportDiagnostics:
 
     Per species: the largest grid Péclet number over the cells the plume has reached (T14b),
     the largest Courant number (over all cells, and over the cells of the plume), the most
-    negative value
-    [kg/m³] and where [m] (None before any value fell below zero), the largest value over
-    the run [kg/m³] and where (None at t = 0), and the largest share of
-    free nodes flux limiting left at low order in a step (T16b). For the run: steps taken,
+    negative value [kg/m³] and where [m] (None before any value fell below zero) and the
+    largest value over the run [kg/m³] and where (None at t = 0). For the run: steps taken,
     the linear solver used, step cuts and rejections, the smallest and largest step [s],
     the most Newton iterations and user-law sweeps (T11b) in one step."""
 
@@ -44,7 +42,6 @@ class TransportDiagnostics:
     largest_step: float = 0.0
     max_newton_iterations: int = 0
     max_coupling_sweeps: int = 0
-    limiting_blocked: dict[str, float] = field(default_factory=dict)
     max_concentration: dict[str, tuple[float, tuple[float, ...] | None]] = field(
         default_factory=dict)
     max_plume_courant: dict[str, float] = field(default_factory=dict)
@@ -78,16 +75,14 @@ class TotalsState:
 class StatisticsState:
     """The running diagnostics (for a checkpoint): per species the grid Péclet number, the
     largest Courant numbers (all cells, plume), the lowest and highest values [kg/m³] and
-    where, the largest share of nodes left at low order; for the run the steps taken, the
-    smallest and largest step [s], the most Newton iterations and coupling sweeps in a
-    step and the last solver kind."""
+    where; for the run the steps taken, the smallest and largest step [s], the most
+    Newton iterations and coupling sweeps in a step and the last solver kind."""
 
     peclet: dict[str, float]
     courant: dict[str, float]
     plume_courant: dict[str, float]
     lowest: dict[str, Extreme]
     highest: dict[str, Extreme]
-    blocked: dict[str, float]
     n_steps: int
     dt_min: float
     dt_max: float
@@ -148,7 +143,6 @@ class RunStatistics:
         self.plume_courant = dict.fromkeys(peclet, 0.0)
         self.lowest: dict[str, Extreme] = dict.fromkeys(peclet, (0.0, None))
         self.highest: dict[str, Extreme] = dict.fromkeys(peclet, (-np.inf, None))
-        self.blocked: dict[str, float] = {}
         self.n_steps = 0
         self.dt_min, self.dt_max = math.inf, 0.0
         self.newton = self.sweeps = 0
@@ -159,7 +153,7 @@ class RunStatistics:
         return StatisticsState(
             peclet=dict(self.peclet), courant=dict(self.courant),
             plume_courant=dict(self.plume_courant), lowest=dict(self.lowest),
-            highest=dict(self.highest), blocked=dict(self.blocked), n_steps=self.n_steps,
+            highest=dict(self.highest), n_steps=self.n_steps,
             dt_min=self.dt_min, dt_max=self.dt_max, newton=self.newton, sweeps=self.sweeps,
             solver=self.solver)
 
@@ -168,7 +162,7 @@ class RunStatistics:
         self.peclet, self.courant = dict(saved.peclet), dict(saved.courant)
         self.plume_courant = dict(saved.plume_courant)
         self.lowest, self.highest = dict(saved.lowest), dict(saved.highest)
-        self.blocked, self.n_steps = dict(saved.blocked), saved.n_steps
+        self.n_steps = saved.n_steps
         self.dt_min, self.dt_max = saved.dt_min, saved.dt_max
         self.newton, self.sweeps, self.solver = saved.newton, saved.sweeps, saved.solver
 
@@ -183,8 +177,6 @@ class RunStatistics:
         if result.solver_kind == "newton":
             self.newton = max(self.newton, result.newton_iterations)
         self.sweeps = max(self.sweeps, result.sweeps)
-        for name, share in result.limiting_blocked.items():
-            self.blocked[name] = max(self.blocked.get(name, 0.0), share)
         lows = []
         for s in species:
             new = result.fields[s.name]
@@ -217,6 +209,6 @@ class RunStatistics:
             solver=self.solver, step_cuts=step_cuts, rejected_steps=rejected,
             smallest_step=0.0 if self.n_steps == 0 else float(self.dt_min),
             largest_step=float(self.dt_max), max_newton_iterations=self.newton,
-            max_coupling_sweeps=self.sweeps, limiting_blocked=dict(self.blocked),
+            max_coupling_sweeps=self.sweeps,
             max_plume_courant=dict(self.plume_courant),
             max_concentration={k: v for k, v in self.highest.items() if v[1] is not None})

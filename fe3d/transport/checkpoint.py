@@ -54,8 +54,9 @@ __all__ = [
 CHECKPOINT_FOLDER = "checkpoint"
 """The checkpoint folder's name inside a run folder."""
 
-FORMAT = 2
-"""Version of the checkpoint layout; a checkpoint of another version is not read."""
+FORMAT = 3
+"""Version of the checkpoint layout; a checkpoint of another version is not read (3: the
+diagnostics no longer hold the share of nodes flux limiting left at low order)."""
 
 RESUME_KEY = "--resume"
 """What a refused resume is named by: the command-line option that asks for it."""
@@ -250,9 +251,8 @@ def read_checkpoint(folder: Path) -> tuple[Checkpoint, str] | None:
     stats = StatisticsState(
         peclet=_floats(s["peclet"]), courant=_floats(s["courant"]),
         plume_courant=_floats(s["plume_courant"]), lowest=_extremes(s["lowest"]),
-        highest=_extremes(s["highest"]), blocked=_floats(s["blocked"]),
-        n_steps=s["n_steps"], dt_min=float(s["dt_min"]), dt_max=float(s["dt_max"]),
-        newton=s["newton"], sweeps=s["sweeps"], solver=s["solver"])
+        highest=_extremes(s["highest"]), n_steps=s["n_steps"], dt_min=float(s["dt_min"]),
+        dt_max=float(s["dt_max"]), newton=s["newton"], sweeps=s["sweeps"], solver=s["solver"])
     accepted = tuple((float(tj), {n: a[f"accepted_{j}_{k}"] for k, n in enumerate(names)})
                      for j, tj in enumerate(h["accepted_times"]))
     ckpt = Checkpoint(state=state, planner=planner, totals=totals, statistics=stats,
@@ -305,7 +305,7 @@ def read_outputs(folder: Path, ckpt: Checkpoint) -> list[Snapshot]:
                    for n, b in h["budgets"].items()}
         diagnostics = TransportDiagnostics(**{
             **d, **{k: _floats(d[k]) for k in ("max_grid_peclet", "max_courant",
-                                               "limiting_blocked", "max_plume_courant")},
+                                               "max_plume_courant")},
             "min_concentration": _extremes(d["min_concentration"]),
             "max_concentration": _extremes(d["max_concentration"]),
             "smallest_step": float(d["smallest_step"]),

@@ -65,15 +65,13 @@ source)."""
 
 @numba.njit(cache=True, nogil=True)
 def _ratios(rows: IndexArray, sums: FloatArray, ranges: FloatArray, lumped: FloatArray,
-            dt: float, held: np.ndarray, blocked: np.ndarray, r: FloatArray) -> None:
+            dt: float, held: np.ndarray, r: FloatArray) -> None:
     """Zalesak's R_i^± of the ``rows`` into r[2i], r[2i + 1] from the flux sums P_i^±
-    (``sums``) and the ranges Q_i^± (``ranges``), same layout: 1 at held nodes, 0 at
-    blocked ones, else min(1, m_i Q_i^± / (Δt P_i^±)) (1 where P_i^± = 0)."""
+    (``sums``) and the ranges Q_i^± (``ranges``), same layout: 1 at held nodes, else
+    min(1, m_i Q_i^± / (Δt P_i^±)) (1 where P_i^± = 0)."""
     for i in rows:
         rp = rm = 1.0
-        if blocked[i]:
-            rp = rm = 0.0
-        elif not held[i]:
+        if not held[i]:
             p_plus, p_minus = sums[2 * i], sums[2 * i + 1]
             if p_plus > 0.0:
                 rp = min(1.0, lumped[i] * ranges[2 * i] / (dt * p_plus))
@@ -187,7 +185,7 @@ def _still_open(rows: IndexArray, sums: FloatArray, lumped: FloatArray, dt: floa
 def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatArray,
            low: FloatArray, low_t: FloatArray, c_low: FloatArray, rate: FloatArray,
            c_mean: FloatArray, cap: FloatArray, lumped: FloatArray, dt: float,
-           held: np.ndarray, blocked: np.ndarray, passes: int, stop: float, floor: float,
+           held: np.ndarray, passes: int, stop: float, floor: float,
            c: FloatArray, total: FloatArray, work: FloatArray) -> tuple[int, int]:
     """Up to ``passes`` passes of Zalesak's limiter over the raw fluxes towards the target,
     each over the part of every flux not yet used and against the corrected field ``c``
@@ -205,7 +203,7 @@ def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatArray,
     rows = np.arange(n).astype(indptr.dtype)
     used, swept = 1, n
     while True:
-        _ratios(rows, sums, ranges, lumped, dt, held, blocked, r)
+        _ratios(rows, sums, ranges, lumped, dt, held, r)
         moved = _apply_sweep(rows, indptr, cols, f, lumped, c, dt, held, r, total, sums)
         if used >= passes or (used > 1 and moved <= stop):
             return used, swept
@@ -231,7 +229,6 @@ class TargetFluxes:
     transposed_at: IndexArray
     lumped: FloatArray
     sink: FloatArray
-    exchange: FloatArray  # the diagonal of D [m³/s]: a node's exchange with its neighbours
     work: FloatArray = field(repr=False, compare=False, default_factory=lambda: np.empty(0))
     """Scratch space of the passes (one value per CSR entry, then 3 × 2 per node), reused
     by every call so that no step allocates (and first touches) a flux array; its contents
@@ -267,7 +264,6 @@ class TargetFluxes:
                        at.data, dtype=np.int32 if nnz < 2**31 else np.int64),
                    lumped=np.asarray(mass.sum(axis=1)).ravel(),
                    sink=np.asarray(low_order.sum(axis=0)).ravel(),
-                   exchange=low_order.diagonal() - galerkin.diagonal(),
                    work=np.empty(low_order.indices.size + 6 * low_order.shape[0]))
 
 
@@ -288,21 +284,20 @@ class Correction:
     ``fluxes`` [kg/s per node]: the net limited fluxes, Σ = 0 (the fixed nodes' share goes
     to the source input through the residual); ``corrected``: the new field (c_L plus both
     corrections at the free nodes); ``sink_state``: the field the sinks (decay, outflow)
-    acted on, for the budget; ``blocked`` nodes, limiter ``passes`` and ``row_sweeps``, the
-    rows the passes swept over all passes divided by the number of rows (1 per full pass:
-    a load-independent measure of the limiter's work)."""
+    acted on, for the budget; limiter ``passes`` and ``row_sweeps``, the rows the passes
+    swept over all passes divided by the number of rows (1 per full pass: a
+    load-independent measure of the limiter's work)."""
 
     fluxes: FloatArray
     corrected: FloatArray
     sink_state: FloatArray
-    blocked: int
     passes: int
     row_sweeps: float = 1.0
 
 
 def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray,
                           c_old: FloatArray, dt: float, theta: float, fixed: IndexArray,
-                          *, reach: float = np.inf, passes: int = LIMITER_PASSES,
+                          *, passes: int = LIMITER_PASSES,
                           upper: FloatArray | None = None) -> Correction:
     """Move the low-order step c_L towards a high-order target step c_H (theory.md T16b),
     as far as the local bounds allow.
@@ -329,19 +324,16 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
     start (where it raises it).
     Every pass stays bounded, so the result is bounded whatever the step. Nodes ``fixed``
     take no correction; the fluxes they exchange still appear in ``fluxes`` (with the
-    opposite sign at the fixed node), so their sum is 0. A node whose step is long against
-    its exchange with its neighbours, Δt Σ_j d_ij > ``reach`` m_i, takes and gives no
-    flux."""
+    opposite sign at the fixed node), so their sum is 0."""
     c_old = np.asarray(c_old, dtype=float)
     rate, c_mean = _rate_and_mean(np.asarray(c_high, dtype=float), c_old, dt, theta)
     return _correct(ops, c_low, TargetStep(rate=rate, mean=c_mean), c_old, dt, theta,
-                    fixed, reach=reach, passes=passes, upper=upper)
+                    fixed, passes=passes, upper=upper)
 
 
 def linearised_correction(ops: TargetFluxes, c_low: FloatArray, c_old: FloatArray,
                           dt: float, theta: float, fixed: IndexArray, *,
-                          reach: float = np.inf, passes: int = LIMITER_PASSES,
-                          upper: FloatArray | None = None,
+                          passes: int = LIMITER_PASSES, upper: FloatArray | None = None,
                           sweeps: int = MASS_SWEEPS) -> Correction:
     """As :func:`limited_target_fluxes`, with the target's rate and mean taken from the
     low-order step instead of a second solve (linearised correction, Kuzmin 2009; theory.md
@@ -349,8 +341,7 @@ def linearised_correction(ops: TargetFluxes, c_low: FloatArray, c_old: FloatArra
     Unlimited, the result is cⁿ + Δt ċ with one more Jacobi sweep of M."""
     c_old = np.asarray(c_old, dtype=float)
     target = linearised_target(ops, c_low, c_old, dt, theta, fixed, sweeps=sweeps)
-    return _correct(ops, c_low, target, c_old, dt, theta, fixed, reach=reach, passes=passes,
-                    upper=upper)
+    return _correct(ops, c_low, target, c_old, dt, theta, fixed, passes=passes, upper=upper)
 
 
 def linearised_target(ops: TargetFluxes, c_low: FloatArray, c_old: FloatArray, dt: float,
@@ -415,13 +406,12 @@ def _mass_sweep(indptr: IndexArray, cols: IndexArray, m: FloatArray, lumped: Flo
 
 
 def _correct(ops: TargetFluxes, c_low: FloatArray, target: TargetStep, c_old: FloatArray,
-             dt: float, theta: float, fixed: IndexArray, *, reach: float, passes: int,
+             dt: float, theta: float, fixed: IndexArray, *, passes: int,
              upper: FloatArray | None) -> Correction:
     """The limited correction of c_L towards ``target`` (see :func:`limited_target_fluxes`)."""
     n = ops.lumped.size
     held = np.zeros(n, dtype=np.bool_)
     held[fixed] = True
-    blocked = ~held & (dt * ops.exchange > reach * ops.lumped)
     c_low = np.ascontiguousarray(c_low, dtype=float)
     indptr, cols = ops.mass.indptr, ops.mass.indices
     c, total = c_low.copy(), np.zeros(n)
@@ -431,17 +421,16 @@ def _correct(ops: TargetFluxes, c_low: FloatArray, target: TargetStep, c_old: Fl
     scale = max(float(np.max(np.abs(c_low))), float(np.max(np.abs(c_old + dt * rate))))
     used, swept = _limit(indptr, cols, ops.mass.data, ops.galerkin.data,
                          ops.low_order.data, ops.transposed_at, c_low, rate, c_mean,
-                         cap, ops.lumped, float(dt), held, blocked, passes,
+                         cap, ops.lumped, float(dt), held, passes,
                          PASS_TOLERANCE * scale, CLOSE_TOLERANCE * scale, c, total,
                          ops.scratch())
     change, a = _sink_change(ops, c, c_low, c_old, dt, theta)
-    share = _sink_share(indptr, cols, c, c_old, change,
-                        free & ~blocked, cap)
+    share = _sink_share(indptr, cols, c, c_old, change, free, cap)
     c[free] += share[free] * change[free]
     # the sinks acted on c_L − (m/Δt)(c − c*)/s = c_L − (c − c*)/a
     acted = c_low - np.divide(share * change, a, out=np.zeros(n), where=a > 0.0)
-    return Correction(fluxes=total, corrected=c, sink_state=acted,
-                      blocked=int(blocked.sum()), passes=used, row_sweeps=swept / max(n, 1))
+    return Correction(fluxes=total, corrected=c, sink_state=acted, passes=used,
+                      row_sweeps=swept / max(n, 1))
 
 
 def _sink_change(ops: TargetFluxes, c_star: FloatArray, c_low: FloatArray,

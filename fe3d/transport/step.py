@@ -128,14 +128,12 @@ class StepBudget:
 @dataclass(frozen=True)
 class StepResult:
     """New fields [kg/m³], budget terms, largest Newton iteration count, the kind of solver
-    used, the fraction of free nodes flux limiting left at low order per species, and the
-    sweeps a user law needed (0 without one)."""
+    used and the sweeps a user law needed (0 without one)."""
 
     fields: dict[str, FloatArray]
     budget: dict[str, StepBudget]
     newton_iterations: int
     solver_kind: str
-    limiting_blocked: dict[str, float]
     sweeps: int
 
 
@@ -150,7 +148,6 @@ def take_step(ctx: StepContext, state: StepState, t0: float, t1: float, dt: floa
     new_conc = dict(conc)
     budget: dict[str, StepBudget] = {}
     decay_loss: dict[str, FloatArray] = {}
-    blocked: dict[str, float] = {}
     newton_max, kind = 1, "none"
     coupled = [s.name for s in ctx.species if s.in_user_law]
     order = list(ctx.species)
@@ -161,10 +158,8 @@ def take_step(ctx: StepContext, state: StepState, t0: float, t1: float, dt: floa
         before = {k: new_conc[k] for k in coupled}
         for s in order:
             user_rates = _user_rates(ctx, s, new_conc, conc)
-            new, step_budget, its, loss, n_blocked, method = _step_species(
+            new, step_budget, its, loss, method = _step_species(
                 ctx, state, s, t0, t1, dt, formula, decay_loss, user_rates)
-            if n_blocked is not None:
-                blocked[s.name] = n_blocked
             if loss is not None:
                 decay_loss[s.name] = loss
             if s.nonlinear:
@@ -189,8 +184,7 @@ def take_step(ctx: StepContext, state: StepState, t0: float, t1: float, dt: floa
                f"in the step from t = {t0:.6g} s")
         raise SolverError(msg)
     return StepResult(fields=new_conc, budget=budget, newton_iterations=newton_max,
-                      solver_kind=kind, limiting_blocked=blocked,
-                      sweeps=sweep + 1 if len(coupled) >= 2 else 0)
+                      solver_kind=kind, sweeps=sweep + 1 if len(coupled) >= 2 else 0)
 
 
 def _user_rates(ctx: StepContext, s: SpeciesModel, current: dict[str, FloatArray],
@@ -206,11 +200,10 @@ def _step_species(
     ctx: StepContext, state: StepState, s: SpeciesModel, t0: float, t1: float, dt: float,
     formula: StepCoefficients, decay_loss: dict[str, FloatArray],
     user_rates: tuple[RateLaw, RateLaw] | None,
-) -> tuple[FloatArray, StepBudget, int, FloatArray | None, float | None, str]:
+) -> tuple[FloatArray, StepBudget, int, FloatArray | None, str]:
     """One species over one step: new field, budget terms, Newton iterations, the decay
-    loss rate it hands to its daughters [kg/s per node] (None when it has none), the
-    fraction of free nodes flux limiting blocked (None when not limited) and the kind of
-    linear solver of the step system."""
+    loss rate it hands to its daughters [kg/s per node] (None when it has none) and the
+    kind of linear solver of the step system."""
     step = (ctx, state, s, t0, t1, dt)
     if ctx.systems.limited(s):  # T16b: a low-order backward Euler step, then corrected
         return _attempt(*step, BACKWARD_EULER, formula, decay_loss, user_rates)
@@ -243,7 +236,7 @@ def _attempt(
     ctx: StepContext, state: StepState, s: SpeciesModel, t0: float, t1: float, dt: float,
     formula: StepCoefficients, target: StepCoefficients | None,
     decay_loss: dict[str, FloatArray], user_rates: tuple[RateLaw, RateLaw] | None,
-) -> tuple[FloatArray, StepBudget, int, FloatArray | None, float | None, str]:
+) -> tuple[FloatArray, StepBudget, int, FloatArray | None, str]:
     """One species over one step with the coefficients ``formula``, corrected towards the
     Galerkin step of ``target`` when given (T16b); returns as :func:`_step_species`."""
     # sources are evaluated at the step's mean (θ-schemes) or its end (BDF2)
@@ -305,7 +298,7 @@ def _attempt(
             produced=(now.produced + a2 * last.produced) / a0,
             decayed=(now.decayed + a2 * last.decayed) / a0,
             outflow={f: (x + a2 * last.outflow[f]) / a0 for f, x in now.outflow.items()})
-    return new, now, its, loss, solve.blocked, step_system.solver.method
+    return new, now, its, loss, step_system.solver.method
 
 
 @dataclass(frozen=True)
@@ -323,7 +316,7 @@ class Target:
 class _Solve:
     """Solves one species' step system: Newton when nonlinear, else one linear solve with
     the flux correction of T16b when limited. Remembers the low-order field the limited
-    fluxes acted on (the budget's state) and the share of nodes the limiter blocked."""
+    fluxes acted on (the budget's state)."""
 
     def __init__(self, ctx: StepContext, s: SpeciesModel, old: FloatArray,
                  prev: FloatArray | None, dt: float, formula: StepCoefficients,
@@ -331,7 +324,6 @@ class _Solve:
         self.ctx, self.s, self.old, self.prev, self.dt, self.co = ctx, s, old, prev, dt, formula
         self.user_rates, self.target = user_rates, target
         self.limited_state: FloatArray | None = None
-        self.blocked: float | None = None
 
     def __call__(self, sy: StepSystem, rhs: FloatArray, guess: FloatArray,
                  ) -> tuple[FloatArray, FloatArray, float, int]:
@@ -350,7 +342,6 @@ class _Solve:
         counts = {"target_iterations": 0, "limiter_passes": 0, "limiter_row_sweeps": 0.0}
         if ops is not None and self.target is not None:  # T16b: the limited fluxes, explicit
             fix, its = self._correct(ops, self.target, sy, guess, out)
-            self.blocked = max(self.blocked or 0.0, fix.blocked / max(sy.free.size, 1))
             counts = {"target_iterations": its, "limiter_passes": fix.passes,
                       "limiter_row_sweeps": fix.row_sweeps}
             self.limited_state = fix.sink_state  # the state decay and outflow acted on

@@ -42,7 +42,6 @@ def test_no_warning_for_a_resolved_run():
                                         highest=(1.0, None), bound=1.0)}, "negative"),
     ("extremes", {"x": species_extremes("x", 1.0, lowest=(0.0, None),
                                         highest=(1.05, None), bound=1.0)}, "overshoot"),
-    ("limiting_blocked", {"x": 0.25}, "25% of the nodes"),
 ])
 def test_each_threshold_warns(field, value, word):
     """Thresholds: Courant 1 in the plume, grid Péclet 2, undershoot and overshoot 1 % of the limit
