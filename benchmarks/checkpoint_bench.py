@@ -56,7 +56,7 @@ def _checkpoint(n_species: int, rng: np.random.Generator) -> Checkpoint:
         statistics=StatisticsState(peclet=zero, courant=zero, plume_courant=zero,
                                    lowest=dict.fromkeys(names, (0.0, None)),
                                    highest=dict.fromkeys(names, (1.0, (0.0, 0.0, 0.0))),
-                                   blocked={}, n_steps=N_STEPS, dt_min=1.0, dt_max=2.0,
+                                   n_steps=N_STEPS, dt_min=1.0, dt_max=2.0,
                                    newton=3, sweeps=0, solver="newton"),
         history_times=np.linspace(0.0, 1e8, N_STEPS),
         history={n: rng.random((N_STEPS, N_OBS)) for n in names},

@@ -294,7 +294,6 @@ def bounded_steps(site: Any, pattern: Any, *, m: Any, k: Any, q: Any, a: Any, th
     from fe3d.p1 import split_rows
     from fe3d.transport.assembly import monotone_operators, transport_operators
     from fe3d.transport.limiter import LIMITER_PASSES, TargetFluxes, limited_target_fluxes
-    from fe3d.transport.step import LIMITING_REACH
     from fe3d.transport.systems import TARGET_TOLERANCE
 
     n = site.n_nodes
@@ -360,8 +359,7 @@ def bounded_steps(site: Any, pattern: Any, *, m: Any, k: Any, q: Any, a: Any, th
             high = old.copy()
             high[free] = high_solver.solve(b_h, x0=low[free])
             t_high = lap()
-            fix = limited_target_fluxes(ops, low, high, old, dt, 0.5, fixed,
-                                        reach=LIMITING_REACH, upper=upper)
+            fix = limited_target_fluxes(ops, low, high, old, dt, 0.5, fixed, upper=upper)
             t_lim = lap()
             u = 0.5 * (unit + spmv_unit())
             row: dict[str, Any] = {
@@ -380,16 +378,15 @@ def bounded_steps(site: Any, pattern: Any, *, m: Any, k: Any, q: Any, a: Any, th
                 lap()
                 hx[free] = sv.solve(b_h, x0=low[free])
                 row[f"high_{name}"] = lap() / (0.5 * (unit + spmv_unit()))
-                fx = limited_target_fluxes(ops, low, hx, old, dt, 0.5, fixed,
-                                           reach=LIMITING_REACH, upper=upper)
+                fx = limited_target_fluxes(ops, low, hx, old, dt, 0.5, fixed, upper=upper)
                 row[f"high_{name}_its"] = sv.iterations[-1]
                 row[f"change_{name}"] = float(
                     np.max(np.abs(fx.corrected - fix.corrected))) / C0
             for passes in (1, 2):
                 unit = spmv_unit()
                 lap()
-                fx = limited_target_fluxes(ops, low, high, old, dt, 0.5, fixed,
-                                           reach=LIMITING_REACH, upper=upper, passes=passes)
+                fx = limited_target_fluxes(ops, low, high, old, dt, 0.5, fixed, upper=upper,
+                                           passes=passes)
                 row[f"limiter_{passes}"] = lap() / (0.5 * (unit + spmv_unit()))
                 row[f"change_passes_{passes}"] = float(
                     np.max(np.abs(fx.corrected - fix.corrected))) / C0
@@ -404,7 +401,7 @@ def bounded_steps(site: Any, pattern: Any, *, m: Any, k: Any, q: Any, a: Any, th
             for _ in range(3):
                 t = time.perf_counter()
                 limited_target_fluxes(ops, state[1], state[2], state[0], dt, 0.5, fixed,
-                                      reach=LIMITING_REACH, upper=upper, passes=passes)
+                                      upper=upper, passes=passes)
                 spent.append(time.perf_counter() - t)
             fastest[f"limiter_{passes}"] = min(spent)
         spmv_min = min(spmv_unit() for _ in range(3))
