@@ -102,9 +102,10 @@ def quality_warnings(s: RunSummary) -> list[str]:
             out.append(f"{sp}: largest Courant number in the plume "
                        f"{s.max_plume_courant[sp]:.2g} > 1; first arrival times at low "
                        "concentrations may come too early (numerical spreading; in an "
-                       "outside check of a site-scale column, first times above c0/4000 "
-                       "came 8 % early at a plume Courant number of 1.5, 15 % at 1.9 and "
-                       "70 % at 5: docs/verification.md): shorten "
+                       "outside check of a site-scale column at grid Péclet 10, first times "
+                       "above c0/4000 came 6 % early at a plume Courant number of 1.5, 9 % "
+                       "at 1.9 and 42 % at 4.7; at grid Péclet 2, 1 % at 1.5 and 11 % at "
+                       "5.5: docs/verification.md): shorten "
                        "time.step (or leave it out: the steps then follow the plume) and "
                        "compare")
         # compared as shown, to two digits: the advice 'at most 2' is no sharper (common

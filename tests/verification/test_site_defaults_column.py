@@ -47,9 +47,11 @@ first times at c0/1000 and c0/4000: −0.30 % and −0.38 % at 100 m, −0.13 % 
 200 m, the value at 900 d within 1e-5 of c0; the flux-inlet pulse: peak −0.33 % and −0.30 %,
 peak time −0.004 % and +0.012 %, first time at c0/4000 −0.12 % and −0.04 %.
 
-Not tested here, because they fail: the same column with a step given by hand, at the run's
-Courant number 1.9 (10 d), puts the first time at c0/4000 8–15 % early, and at 4.7 (25 d)
-60–70 % early (the run warns in both). That is the step the user chose, not the default.
+Not tested here, because they fail: the same column at grid Péclet 10 with a step given by
+hand, at the run's Courant number 1.9 (10 d), puts the first time at c0/4000 9 % early, and
+at 4.7 (25 d) 42 % early (the run warns in both; 8–15 % and 60–70 % before the limiter's
+passes ran longer, 3 Dec 2026; docs/verification.md). That is the step the user chose, not
+the default.
 """
 
 from __future__ import annotations
