@@ -124,7 +124,16 @@ def _client(scheduler: str | None, workers: int | None, n_runs: int
         # and no statistical profiler in the workers: it samples every thread's stack
         # every 10 ms, which cost a member about 10 % more processor time (measured,
         # docs/performance.md, Ensembles)
-        with dask.config.set({"distributed.worker.profile.enabled": False}):
+        # and glibc's own memory thresholds in the workers: dask sets MALLOC_TRIM_THRESHOLD_
+        # before a worker starts, which also fixes the threshold above which glibc maps
+        # each allocation afresh, so every array of a step was mapped, zeroed page by page
+        # and unmapped again (on the demo's refinement study 9.7 of its 21.6 min were
+        # system time; docs/performance.md, Refinement study)
+        environ = {k: v for k, v in dask.config.get("distributed.nanny.pre-spawn-environ",
+                                                    {}).items()
+                   if not k.startswith("MALLOC_")}
+        with dask.config.set({"distributed.worker.profile.enabled": False,
+                              "distributed.nanny.pre-spawn-environ": environ}):
             cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
                                    dashboard_address=":0",
                                    scheduler_kwargs={"dashboard": False},
