@@ -33,6 +33,7 @@ from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
 from fe3d.mesh.corridor import FINE_SIZE_MARGIN, Corridor, corridor_zones, project_to_edges
 from fe3d.mesh.geometry import points_in_polygon
+from fe3d.mesh.plan_lines import plan_outlines
 from fe3d.mesh.prisms import (
     boundary_triangles,
     order_by_lowest_node,
@@ -52,6 +53,10 @@ __all__ = ["PlanMesh", "RefineZone", "build_mesh", "check_volumes", "extrude", "
            "obtain_mesh", "plan_mesh"]
 
 logger = logging.getLogger(__name__)
+
+PLAN_TOLERANCE = 1e-9
+"""Share of the plan's extent below which two plan points are one (a feature on a boundary
+or an outline joins it)."""
 
 
 @dataclass(frozen=True)
@@ -141,13 +146,15 @@ def plan_mesh(
     points
         Points that must be mesh nodes, by key (boreholes, wells, observation points, ...).
     outlines
-        Closed polygons inside the boundary whose edges must be mesh edges (lens outlines).
+        Closed polygons inside the boundary whose edges must be mesh edges (lens and source
+        box outlines, :func:`fe3d.mesh.plan_lines.plan_outlines`: no two cross, and the
+        ``points`` on their sides are among their vertices).
     """
     import gmsh
 
     xs, ys = [v[0] for v in vertices], [v[1] for v in vertices]
     scale = max(max(xs) - min(xs), max(ys) - min(ys))
-    tol = 1e-9 * scale
+    tol = PLAN_TOLERANCE * scale
     was_initialized = gmsh.isInitialized()
     if not was_initialized:
         gmsh.initialize(interruptible=False)
@@ -173,17 +180,25 @@ def plan_mesh(
             all_v.append(vertices[i])
             all_v += [p for _, p in sorted(split.get(i, []))]
         nv = len(all_v)
-        corner = [geo.addPoint(x, y, 0) for x, y in all_v]
+        placed: list[tuple[float, float, int]] = []
+
+        def point(x: float, y: float) -> int:  # one geometry point per place
+            for px, py, tag in placed:
+                if math.hypot(px - x, py - y) < tol:
+                    return tag
+            placed.append((x, y, geo.addPoint(x, y, 0)))
+            return placed[-1][2]
+
+        corner = [point(x, y) for x, y in all_v]
         lines = [geo.addLine(corner[i], corner[(i + 1) % nv]) for i in range(nv)]
         surf = geo.addPlaneSurface([geo.addCurveLoop(lines)])
-        inner_lines = []
+        inner_lines, on_lines = [], set(corner)
         for poly in outlines or []:
-            pp = [geo.addPoint(x, y, 0) for x, y in poly]
+            pp = [point(x, y) for x, y in poly]
+            on_lines.update(pp)
             inner_lines += [geo.addLine(pp[i], pp[(i + 1) % len(pp)]) for i in range(len(pp))]
-        inner = []
-        for px, py in _unique(list(points.values())):
-            if not any(math.hypot(px - vx, py - vy) < tol for vx, vy in all_v):
-                inner.append(geo.addPoint(px, py, 0))
+        inner = [t for t in dict.fromkeys(point(px, py) for px, py in points.values())
+                 if t not in on_lines]
         zone_tags = [[geo.addPoint(x, y, 0) for x, y in z.points] for z in zones]
         geo.synchronize()
         if inner:
@@ -461,8 +476,15 @@ def build_mesh(case: Case, *, corridor: Corridor | None = None) -> SiteMesh:
     mc = case.mesh
     lens_polys = [[(float(x), float(y)) for x, y in lens.polygon] for lens in case.lenses]
     boxes = _source_boxes(case)
+    points = _embedded_points(case)
+    scale = max(np.ptp([v[0] for v in verts]), np.ptp([v[1] for v in verts]))
+    outlines = plan_outlines(lens_polys, {name: [(x0, y0), (x1, y0), (x1, y1), (x0, y1)]
+                                          for name, ((x0, x1), (y0, y1), _) in boxes.items()},
+                             list(points.values()), PLAN_TOLERANCE * scale)
+    for line in outlines.left_out:
+        logger.warning("%s", line)
     plan = plan_mesh(verts, names, cell_size=mc.cell_size, zones=_refine_zones(case, corridor),
-                     points=_embedded_points(case), outlines=lens_polys)
+                     points=points, outlines=outlines.polygons)
     xy, tri = plan.xy, plan.tri
     node_area = _node_areas(xy, tri)
     boreholes = {k.split(" ", 1)[1]: v for k, v in plan.point_nodes.items()
@@ -658,15 +680,15 @@ def _classify_faces(points: FloatArray, cells: IndexArray, node_level: IndexArra
     return out
 
 
-def _source_boxes(case: Case) -> list[tuple[tuple[float, float], ...]]:
-    """The (x, y, z) ranges [m] of the source boxes that lie inside the plan outline: cell
-    levels go through their top and base (:func:`_box_levels`), so that a held box is as
-    thick as it is (theory.md M5). Their plan sides are not mesh edges (embedding them made
-    gmsh fail next to the refinement zones)."""
+def _source_boxes(case: Case) -> dict[str, tuple[tuple[float, float], ...]]:
+    """The (x, y, z) ranges [m] of the source boxes that lie inside the plan outline, by
+    source name: their plan sides become mesh edges (:func:`plan_outlines`) and cell levels
+    go through their top and base (:func:`_box_levels`), so that a held box is the size it
+    is (theory.md M5)."""
     from fe3d.case.geology import point_in_polygon
 
     verts = case.outline()[0]
-    out = []
+    out = {}
     for s in case.sources:
         if s.shape != "box" or s.x is None or s.y is None or s.z is None:
             continue
@@ -675,7 +697,7 @@ def _source_boxes(case: Case) -> list[tuple[tuple[float, float], ...]]:
         corners = ((x0 - e, y0 - e), (x1 + e, y0 - e), (x1 + e, y1 + e), (x0 - e, y1 + e))
         if x1 > x0 and y1 > y0 and all(point_in_polygon(x, y, verts, tol=0.0)
                                        for x, y in corners):
-            out.append((s.x, s.y, s.z))
+            out[s.name] = (s.x, s.y, s.z)
     return out
 
 
@@ -691,11 +713,11 @@ class BoxLevel:
     inside: np.ndarray
 
 
-def _box_levels(boxes: list[tuple[tuple[float, float], ...]], xy: FloatArray,
+def _box_levels(boxes: dict[str, tuple[tuple[float, float], ...]], xy: FloatArray,
                 surfaces: list[FloatArray]) -> list[BoxLevel]:
     """The cell levels through each box's top and base (:class:`BoxLevel`)."""
     needs: list[BoxLevel] = []
-    for (x0, x1), (y0, y1), zs in boxes:
+    for (x0, x1), (y0, y1), zs in boxes.values():
         inside = (xy[0] >= x0 - 1e-9) & (xy[0] <= x1 + 1e-9) & (xy[1] >= y0 - 1e-9) & \
             (xy[1] <= y1 + 1e-9)
         if not inside.any():
