@@ -95,7 +95,8 @@ def _first_sweep(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatAr
     ``ranges`` (2i, 2i + 1), in one sweep over the CSR arrays. No prelimiting: dropping the
     fluxes that run down the gradient of c_L removed the target's own spreading (T16b).
     The added diffusion d_ij = l_ij − k_ij is formed from L and the Galerkin K (``k``);
-    l_ji is read at L's own position ``low_t[p]`` of entry (j, i)."""
+    l_ji is ``low_t[p]``, L's transpose on the same pattern (read in order: read at L's own
+    position of entry (j, i) instead, the scattered reads took half of this sweep's time)."""
     for i in range(c_low.size):
         x_i = c_low[i] - c_mean[i]
         ci = c_low[i]
@@ -106,7 +107,7 @@ def _first_sweep(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatAr
             fij = 0.0
             if j != i:
                 fij = (m[p] * (rate[i] - rate[j]) - (low[p] - k[p]) * (c_mean[i] - c_mean[j])
-                       + low[p] * (c_low[j] - c_mean[j]) - low[low_t[p]] * x_i)
+                       + low[p] * (c_low[j] - c_mean[j]) - low_t[p] * x_i)
             f[p] = fij
             p_plus += max(fij, 0.0)
             p_minus += min(fij, 0.0)
@@ -222,15 +223,15 @@ class TargetFluxes:
     """The operators the correction towards a high-order target needs, on one CSR pattern:
     the consistent mass M, the Galerkin spatial operator K, the low-order operator L = K + D
     (D the diffusion it added, T16, nonpositive off-diagonal entries: formed as L − K where
-    it is read, not held) and, for each entry (i, j), the position of entry (j, i) in L's
-    arrays (int32 where the pattern allows: half of a transposed copy), the lumped mass
+    it is read, not held) and its transpose's values on the same pattern (l_ji at the
+    position of entry (i, j): read in order by the limiter's first sweep), the lumped mass
     m_L (row sums of M) and L's column sums [m³/s] (the nodal decay and outflow: the
     sinks)."""
 
     mass: sp.csr_matrix
     galerkin: sp.csr_matrix
     low_order: sp.csr_matrix
-    transposed_at: IndexArray
+    low_order_transposed: FloatArray
     lumped: FloatArray
     sink: FloatArray
     work: FloatArray = field(repr=False, compare=False, default_factory=lambda: np.empty(0))
@@ -264,8 +265,7 @@ class TargetFluxes:
             msg = "the operators must share one structurally symmetric CSR pattern"
             raise ValueError(msg)
         return cls(mass=mass, galerkin=galerkin, low_order=low_order,
-                   transposed_at=np.ascontiguousarray(
-                       at.data, dtype=np.int32 if nnz < 2**31 else np.int64),
+                   low_order_transposed=low_order.data[at.data],
                    lumped=np.asarray(mass.sum(axis=1)).ravel(),
                    sink=np.asarray(low_order.sum(axis=0)).ravel(),
                    work=np.empty(low_order.indices.size + 6 * low_order.shape[0]))
@@ -424,7 +424,7 @@ def _correct(ops: TargetFluxes, c_low: FloatArray, target: TargetStep, c_old: Fl
     rate, c_mean = target.rate, target.mean
     scale = max(float(np.max(np.abs(c_low))), float(np.max(np.abs(c_old + dt * rate))))
     used, swept = _limit(indptr, cols, ops.mass.data, ops.galerkin.data,
-                         ops.low_order.data, ops.transposed_at, c_low, rate, c_mean,
+                         ops.low_order.data, ops.low_order_transposed, c_low, rate, c_mean,
                          cap, ops.lumped, float(dt), held, passes,
                          PASS_TOLERANCE * scale, CLOSE_TOLERANCE * scale, c, total,
                          ops.scratch())
@@ -487,7 +487,7 @@ def raw_flux_sums(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray,
                                   np.asarray(c_old, dtype=float), dt, theta)
     f, sums, ranges = np.empty(ops.mass.indices.size), np.empty(2 * n), np.empty(2 * n)
     _first_sweep(ops.mass.indptr, ops.mass.indices, ops.mass.data, ops.galerkin.data,
-                 ops.low_order.data, ops.transposed_at, c_low, rate, c_mean,
+                 ops.low_order.data, ops.low_order_transposed, c_low, rate, c_mean,
                  np.full(n, -np.inf), f, sums, ranges)
     rows = np.repeat(np.arange(n), np.diff(ops.mass.indptr))
     return np.bincount(rows, weights=f, minlength=n)
