@@ -27,7 +27,7 @@ if TYPE_CHECKING:
 __all__ = ["faces_from_outline", "load_cached", "mesh_inputs_hash", "read_site_mesh",
            "save_cached"]
 
-MESH_FORMAT = 6  # bump when the mesher's output for the same inputs changes
+MESH_FORMAT = 7  # bump when the mesher's output for the same inputs changes
 
 
 def read_site_mesh(path: Path, *, unit_tag: str | None = None, key: str = "mesh file",
