@@ -33,7 +33,7 @@ from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
 from fe3d.mesh.corridor import FINE_SIZE_MARGIN, Corridor, corridor_zones, project_to_edges
 from fe3d.mesh.geometry import points_in_polygon
-from fe3d.mesh.plan_lines import plan_outlines
+from fe3d.mesh.plan_lines import distance_to_side, plan_outlines
 from fe3d.mesh.prisms import (
     boundary_triangles,
     order_by_lowest_node,
@@ -168,13 +168,11 @@ def plan_mesh(
         for px, py in _unique(list(points.values())):
             if any(math.hypot(px - vx, py - vy) < tol for vx, vy in vertices):
                 continue
-            d = [_seg_dist((px, py), vertices[i], vertices[(i + 1) % nv0]) for i in range(nv0)]
-            i = int(np.argmin(d))
-            if d[i] < tol:
-                (ax, ay), (bx, by) = vertices[i], vertices[(i + 1) % nv0]
-                t = ((px - ax) * (bx - ax) + (py - ay) * (by - ay)) / ((bx - ax) ** 2
-                                                                      + (by - ay) ** 2)
-                split.setdefault(i, []).append((t, (px, py)))
+            near = [distance_to_side((px, py), vertices[i], vertices[(i + 1) % nv0])
+                    for i in range(nv0)]
+            i = int(np.argmin([d for d, _ in near]))
+            if near[i][0] < tol:
+                split.setdefault(i, []).append((near[i][1], (px, py)))
         all_v: list[tuple[float, float]] = []
         for i in range(nv0):
             all_v.append(vertices[i])
@@ -268,12 +266,6 @@ def plan_mesh(
             raise MeshError(msg)
         point_nodes[key] = int(j)
     return PlanMesh(xy=xy, tri=tri, edges=edges, point_nodes=point_nodes)
-
-
-def _seg_dist(p: tuple[float, float], a: tuple[float, float], b: tuple[float, float]) -> float:
-    dx, dy = b[0] - a[0], b[1] - a[1]
-    t = max(0.0, min(1.0, ((p[0] - a[0]) * dx + (p[1] - a[1]) * dy) / (dx * dx + dy * dy)))
-    return math.hypot(p[0] - a[0] - t * dx, p[1] - a[1] - t * dy)
 
 
 def _name_boundary_edges(xy: FloatArray, tri: IndexArray, vertices: list[tuple[float, float]],

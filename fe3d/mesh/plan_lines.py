@@ -12,7 +12,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-__all__ = ["PlanOutlines", "plan_outlines"]
+__all__ = ["PlanOutlines", "distance_to_side", "plan_outlines"]
 
 Point = tuple[float, float]
 
@@ -68,7 +68,7 @@ def _close(p: Point, q: Point, tol: float) -> bool:
     return math.hypot(p[0] - q[0], p[1] - q[1]) <= tol
 
 
-def _distance_to_side(p: Point, a: Point, b: Point) -> tuple[float, float]:
+def distance_to_side(p: Point, a: Point, b: Point) -> tuple[float, float]:
     """Distance from p to the side a–b and the parameter t ∈ [0, 1] of its nearest point."""
     dx, dy = b[0] - a[0], b[1] - a[1]
     t = ((p[0] - a[0]) * dx + (p[1] - a[1]) * dy) / (dx * dx + dy * dy)
@@ -85,7 +85,7 @@ def _outlines_meet(a: list[Point], b: list[Point], tol: float) -> bool:
             if len(shared) == 2:  # the same side: the outlines run along each other
                 return True
             ends = [v for v in (p, q, r, s) if not any(_close(v, w, tol) for w in shared)]
-            if any(_distance_to_side(v, *side)[0] <= tol for v in ends
+            if any(distance_to_side(v, *side)[0] <= tol for v in ends
                    for side in ((p, q), (r, s)) if v not in side):
                 return True
             if not shared and _cross(p, q, r, s):
@@ -108,6 +108,6 @@ def _with_points_on_sides(poly: list[Point], points: list[Point], tol: float) ->
         out.append(a)
         on = sorted((t, p) for p in points
                     if not _close(p, a, tol) and not _close(p, b, tol)
-                    for d, t in [_distance_to_side(p, a, b)] if d <= tol)
+                    for d, t in [distance_to_side(p, a, b)] if d <= tol)
         out += [p for _, p in on]
     return out
