@@ -47,8 +47,7 @@ def plan_outlines(lenses: list[list[Point]], boxes: dict[str, list[Point]],
     for name, rect in boxes.items():
         if any(_same_polygon(rect, k, tol) for k in kept):
             continue
-        other = next((k for k in kept if _outlines_meet(rect, k, tol)), None)
-        if other is not None:
+        if any(_outlines_meet(rect, k, tol) for k in kept):
             left_out.append(f"source {name}: its plan outline meets another outline, so its "
                             "sides are not mesh edges (the fine cells around it remain)")
             continue
