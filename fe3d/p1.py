@@ -206,20 +206,15 @@ def _insertion_sort(row: IndexArray, count: int) -> None:
 
 
 @_jit
-def _pattern_kernel(cells: IndexArray, n: int,
-                    slots: IndexArray) -> tuple[IndexArray, IndexArray]:
+def _pattern_kernel(cells: IndexArray, n: int) -> tuple[IndexArray, IndexArray]:
     """Row pointers and sorted columns of the node pairs sharing a cell, in one pass over
-    the rows (the column array grows by doubling); when ``slots`` has a row per cell, each
-    cell's 16 entry positions are written in the same pass, read from the row's column →
-    position map instead of searched for."""
+    the rows (the column array grows by doubling)."""
     start, incident = _incident_cells(cells, n, np.ones(n, np.bool_))
     widest = 0
     for r in range(n):
         widest = max(widest, start[r + 1] - start[r])
     row = np.empty(4 * widest, np.int64)
     mark = np.full(n, -1, np.int64)
-    where = np.empty(n, np.int64)  # column → position, valid for the current row's columns
-    with_slots = slots.shape[0] == cells.shape[1]
     indptr = np.zeros(n + 1, np.int64)
     indices = np.empty(max(16 * n, 16), np.int32)
     for r in range(n):
@@ -232,15 +227,7 @@ def _pattern_kernel(cells: IndexArray, n: int,
             indices = grown
         for k in range(count):
             indices[first + k] = row[k]
-            where[row[k]] = first + k
         indptr[r + 1] = first + count
-        if with_slots:
-            for p in range(start[r], start[r + 1]):
-                e = incident[p]
-                for a in range(4):
-                    if cells[a, e] == r:
-                        for j in range(4):
-                            slots[e, 4 * a + j] = where[cells[j, e]]
     return indptr, indices[:indptr[n]].copy()
 
 
@@ -248,8 +235,7 @@ def node_graph(cells: IndexArray, n: int) -> sp.csr_matrix:
     """The node adjacency of tetrahedra ``cells`` ``(4, m)`` as an ``(n, n)`` CSR matrix of
     ones (node pairs sharing a cell, the diagonal included), without the (16 m)-entry COO
     temporaries."""
-    indptr, indices = _pattern_kernel(np.ascontiguousarray(cells, dtype=np.int64), n,
-                                      np.empty((0, 16), np.int32))
+    indptr, indices = _pattern_kernel(np.ascontiguousarray(cells, dtype=np.int64), n)
     return sp.csr_matrix((np.ones(indices.size, dtype=np.int8), indices, indptr),
                          shape=(n, n))
 
@@ -358,6 +344,33 @@ def _slot(indptr: IndexArray, indices: IndexArray, row: int, col: int) -> int:
     return lo
 
 
+@numba.njit(inline="always")
+def _cell_slots(indptr: IndexArray, indices: IndexArray, cells: IndexArray, e: int,
+                pos: IndexArray) -> None:
+    """Positions of cell e's 16 element-matrix entries (entry (i, j) at 4i + j) in the CSR
+    value array, found by one walk along each of the cell's four sorted rows with the
+    cell's nodes in increasing order (nothing is stored per cell)."""
+    a, b, c, d = 0, 1, 2, 3
+    # the four local indices sorted by node id (a 4-element sorting network)
+    if cells[a, e] > cells[b, e]:
+        a, b = b, a
+    if cells[c, e] > cells[d, e]:
+        c, d = d, c
+    if cells[a, e] > cells[c, e]:
+        a, c = c, a
+    if cells[b, e] > cells[d, e]:
+        b, d = d, b
+    if cells[b, e] > cells[c, e]:
+        b, c = c, b
+    for i in range(4):
+        p = indptr[cells[i, e]]
+        for j in (a, b, c, d):
+            col = cells[j, e]
+            while indices[p] < col:
+                p += 1
+            pos[4 * i + j] = p
+
+
 @_jit
 def _absorb_kernel(indptr: IndexArray, indices: IndexArray, a_indptr: IndexArray,
                    a_indices: IndexArray, a_data: FloatArray, data: FloatArray) -> int:
@@ -372,24 +385,28 @@ def _absorb_kernel(indptr: IndexArray, indices: IndexArray, a_indptr: IndexArray
 
 
 @_jit
-def _local_kernel(slots: IndexArray, cell_ids: IndexArray, local: FloatArray,
-                  data: FloatArray) -> None:
+def _local_kernel(indptr: IndexArray, indices: IndexArray, cells: IndexArray,
+                  cell_ids: IndexArray, local: FloatArray, data: FloatArray) -> None:
+    pos = np.empty(16, np.int64)
     for p in range(cell_ids.size):
         e = cell_ids[p]
+        _cell_slots(indptr, indices, cells, e, pos)
         for i in range(4):
             for j in range(4):
-                data[slots[e, 4 * i + j]] += local[p, i, j]
+                data[pos[4 * i + j]] += local[p, i, j]
 
 
 @_jit
-def _stiffness_kernel(slots: IndexArray, cell_ids: IndexArray, points: FloatArray,
-                      cells: IndexArray, tensors: FloatArray, tensor_of: IndexArray,
-                      scale: FloatArray, data: FloatArray) -> None:
+def _stiffness_kernel(indptr: IndexArray, indices: IndexArray, cell_ids: IndexArray,
+                      points: FloatArray, cells: IndexArray, tensors: FloatArray,
+                      tensor_of: IndexArray, scale: FloatArray, data: FloatArray) -> None:
     """Σ over cells ``cell_ids[p]`` of scale[p] · T[tensor_of[p]] stiffness entries."""
     g = np.empty((4, 3))
     tg = np.empty((4, 3))
+    pos = np.empty(16, np.int64)
     for p in range(cell_ids.size):
         e = cell_ids[p]
+        _cell_slots(indptr, indices, cells, e, pos)
         t = tensor_of[p]
         v = abs(cell_gradients(points, cells, e, g)) * scale[p]
         for j in range(4):
@@ -398,12 +415,13 @@ def _stiffness_kernel(slots: IndexArray, cell_ids: IndexArray, points: FloatArra
                             + tensors[a, 2, t] * g[j, 2])
         for i in range(4):
             for j in range(4):
-                data[slots[e, 4 * i + j]] += v * (g[i, 0] * tg[j, 0] + g[i, 1] * tg[j, 1]
+                data[pos[4 * i + j]] += v * (g[i, 0] * tg[j, 0] + g[i, 1] * tg[j, 1]
                                                   + g[i, 2] * tg[j, 2])
 
 
 @_jit
-def _transport_kernel(slots: IndexArray, points: FloatArray, cells: IndexArray, m: FloatArray,
+def _transport_kernel(indptr: IndexArray, indices: IndexArray, points: FloatArray,
+                      cells: IndexArray, m: FloatArray,
                       m_supg: FloatArray, k: FloatArray, q: FloatArray, a: FloatArray,
                       tau: FloatArray, theta_d: FloatArray, first: int, galerkin: bool,
                       supg: bool, mass: FloatArray, spatial: FloatArray) -> None:
@@ -412,8 +430,10 @@ def _transport_kernel(slots: IndexArray, points: FloatArray, cells: IndexArray, 
     tg = np.empty((4, 3))
     ag = np.empty(4)
     qg = np.empty(4)
+    pos = np.empty(16, np.int64)
     for e in range(first, first + theta_d.shape[2]):
         v = abs(cell_gradients(points, cells, e, g))
+        _cell_slots(indptr, indices, cells, e, pos)
         t = e - first
         for i in range(4):
             ag[i] = a[0, e] * g[i, 0] + a[1, e] * g[i, 1] + a[2, e] * g[i, 2]
@@ -434,7 +454,7 @@ def _transport_kernel(slots: IndexArray, points: FloatArray, cells: IndexArray, 
                 if supg:  # T6: τ (a·∇φ_i) × (storage, advection, decay)
                     mv += w * m_supg[e] * 0.25 * ag[i]
                     kv += w * ag[i] * qg[j] + w * k[e] * 0.25 * ag[i]
-                s = slots[e, 4 * i + j]
+                s = pos[4 * i + j]
                 mass[s] += mv
                 spatial[s] += kv
 
@@ -442,27 +462,27 @@ def _transport_kernel(slots: IndexArray, points: FloatArray, cells: IndexArray, 
 @dataclass(frozen=True)
 class CsrPattern:
     """Sparsity pattern of the P1 operators on one mesh: row pointers and sorted column
-    indices of every node pair that shares a cell (the diagonal included), and for every
-    cell the positions of its 16 element-matrix entries in the value array (``slots``,
-    ``(n_cells, 16)``, entry (i, j) at 4i + j), so that assembly is one pass over the cells
-    without a search or a sort."""
+    indices of every node pair that shares a cell (the diagonal included), and the cells
+    ``(4, n_cells)`` it was built from (the mesh's own array, not a copy). Assembly is one
+    pass over the cells; each cell's 16 entry positions are searched in its four sorted
+    rows as the cell is added, so nothing is stored per cell (a table of them took 64
+    bytes per cell, 0.35 KiB per node; docs/performance.md)."""
 
     indptr: IndexArray
     indices: IndexArray
-    slots: IndexArray
+    cells: IndexArray
     n: int
 
     @classmethod
     def of_cells(cls, cells: IndexArray, n: int) -> CsrPattern:
         """The pattern of tetrahedra ``cells`` ``(4, m)`` on ``n`` nodes."""
         c = np.ascontiguousarray(cells, dtype=np.int64)
-        slots = np.empty((c.shape[1], 16), np.int32)  # positions < 2**31, checked below
-        indptr, indices = _pattern_kernel(c, n, slots)
+        indptr, indices = _pattern_kernel(c, n)
         if indptr[-1] >= 2**31:
             msg = f"{int(indptr[-1])} matrix entries: more than 32-bit indices can hold"
             raise ValueError(msg)
         indptr = indptr.astype(np.int32)
-        return cls(indptr=indptr, indices=indices, slots=slots, n=n)
+        return cls(indptr=indptr, indices=indices, cells=c, n=n)
 
     @property
     def nnz(self) -> int:
@@ -491,7 +511,7 @@ class CsrPattern:
 
     def _ids(self, cell_ids: IndexArray | None) -> IndexArray:
         if cell_ids is None:
-            return np.arange(self.slots.shape[0], dtype=np.int64)
+            return np.arange(self.cells.shape[1], dtype=np.int64)
         return np.ascontiguousarray(cell_ids, dtype=np.int64)
 
     def element_sum(self, local: FloatArray,
@@ -499,7 +519,7 @@ class CsrPattern:
         """Σ_e of element matrices ``local[p, i, j]`` of the cells ``cell_ids`` (all cells
         when None, in order)."""
         data = np.zeros(self.nnz)
-        _local_kernel(self.slots, self._ids(cell_ids),
+        _local_kernel(self.indptr, self.indices, self.cells, self._ids(cell_ids),
                       np.ascontiguousarray(local, dtype=float), data)
         return self.matrix(data)
 
@@ -519,7 +539,8 @@ class CsrPattern:
         if tensor_of is None:
             tensor_of = np.arange(ids.size)
         data = np.zeros(self.nnz)
-        _stiffness_kernel(self.slots, ids, *_pc(points, cells), np.asarray(tensors, dtype=float),
+        _stiffness_kernel(self.indptr, self.indices, ids, *_pc(points, cells),
+                          np.asarray(tensors, dtype=float),
                           np.ascontiguousarray(tensor_of, dtype=np.int64),
                           np.ones(ids.size) if scale is None else np.asarray(scale, dtype=float),
                           data)
@@ -545,6 +566,6 @@ class CsrPattern:
                         f(q, dtype=float), f(a, dtype=float), f(tau, dtype=float))
         for start, stop in blocks:
             tensors = theta_d(start, stop) if callable(theta_d) else theta_d
-            _transport_kernel(self.slots, *pc, *coefficients, f(tensors, dtype=float), start,
-                              galerkin, supg, mass, spatial)
+            _transport_kernel(self.indptr, self.indices, *pc, *coefficients,
+                              f(tensors, dtype=float), start, galerkin, supg, mass, spatial)
         return self.matrix(mass), self.matrix(spatial)
