@@ -16,7 +16,7 @@ from fe3d.case.parts import FlowInputs
 from fe3d.errors import CaseError, SolverError
 from fe3d.flow.assembly import conductance_matrix
 from fe3d.flow.boundaries import lumped_face_weights
-from fe3d.flow.conductivity import cell_conductivity
+from fe3d.flow.conductivity import CellConductivity, cell_conductivity
 from fe3d.flow.site_rules import (
     head_dependent_problems,
     recharge_mask,
@@ -61,8 +61,10 @@ class FlowField:
         Hydraulic head at the nodes [m], shape ``(n_nodes,)``.
     darcy_flux
         Darcy flux q = −K∇h per cell [m/s], shape ``(3, n_cells)``.
-    conductivity
-        Principal conductivities (K_h, K_h, K_v) per cell [m/s], shape ``(3, n_cells)``.
+    cell_conductivity
+        Conductivity of every cell as solved (:class:`~fe3d.flow.conductivity.CellConductivity`:
+        K_h per cell, the unit of each cell, K_v/K_h and the bedding normal per unit);
+        ``conductivity`` forms the principal values per cell from it when read.
     porosity
         Porosity of each cell's material [-], shape ``(n_cells,)``: carried with the flow so
         that the seepage velocity, the tracking, the transport and the outputs share one
@@ -86,7 +88,7 @@ class FlowField:
 
     head: FloatArray
     darcy_flux: FloatArray
-    conductivity: FloatArray
+    cell_conductivity: CellConductivity
     porosity: FloatArray
     budget: tuple[BoundaryFlow, ...]
     fixed_head_nodes: dict[str, IndexArray]
@@ -94,6 +96,12 @@ class FlowField:
     exchange: dict[str, FloatArray] = field(default_factory=dict)
     solver_iterations: int = 0
     timings: dict[str, float] = field(default_factory=dict)
+
+    @property
+    def conductivity(self) -> FloatArray:
+        """Principal conductivities (K_h, K_h, K_v) per cell [m/s], shape ``(3, n_cells)``,
+        formed on each access (not held: 24 bytes per cell)."""
+        return self.cell_conductivity.principal
 
     @property
     def seepage_velocity(self) -> FloatArray:
@@ -245,7 +253,7 @@ def solve_flow(
               for name, nodes in owner.items()]
     budget += [BoundaryFlow(name, kind, *_split(f)) for name, kind, f in items]
     well_heads = {name: float((op @ head)[0]) for name, op in well_ops.items()}
-    result = FlowField(head=head, darcy_flux=q, conductivity=conductivity.principal,
+    result = FlowField(head=head, darcy_flux=q, cell_conductivity=conductivity,
                        porosity=cell_values(mats, site, "porosity"), budget=tuple(budget),
                        fixed_head_nodes=owner, well_heads=well_heads,
                        exchange={name: f for name, _, f in items},

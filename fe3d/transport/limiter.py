@@ -237,12 +237,13 @@ class TargetFluxes:
     work: FloatArray = field(repr=False, compare=False, default_factory=lambda: np.empty(0))
     """Scratch space of the passes (one value per CSR entry, then 3 × 2 per node), reused
     by every call so that no step allocates (and first touches) a flux array; its contents
-    mean nothing between calls."""
+    mean nothing between calls, so the species of a run share one (they are corrected one
+    after another)."""
 
     def scratch(self) -> FloatArray:
         """The passes' scratch space (:attr:`work`), allocated here when the record was
         built without it."""
-        need = self.mass.indices.size + 6 * self.lumped.size
+        need = self.scratch_size(self.mass.indices.size, self.lumped.size)
         return self.work if self.work.size == need else np.empty(need)
 
     @property
@@ -251,10 +252,17 @@ class TargetFluxes:
         return sp.csr_matrix((self.low_order.data - self.galerkin.data, self.low_order.indices,
                               self.low_order.indptr), shape=self.low_order.shape)
 
+    @staticmethod
+    def scratch_size(pattern_entries: int, n: int) -> int:
+        """Length of the passes' scratch space on a pattern of ``pattern_entries`` entries
+        and ``n`` rows."""
+        return pattern_entries + 6 * n
+
     @classmethod
-    def of(cls, mass: sp.csr_matrix, galerkin: sp.csr_matrix,
-           low_order: sp.csr_matrix) -> TargetFluxes:
-        """From the Galerkin operators M, K and the low-order spatial operator L."""
+    def of(cls, mass: sp.csr_matrix, galerkin: sp.csr_matrix, low_order: sp.csr_matrix,
+           work: FloatArray | None = None) -> TargetFluxes:
+        """From the Galerkin operators M, K and the low-order spatial operator L; ``work``
+        is the scratch space to use (of :meth:`scratch_size`; allocated here when None)."""
         nnz = low_order.indices.size
         at = sp.csr_matrix((np.arange(nnz, dtype=np.int64), low_order.indices,
                             low_order.indptr), shape=low_order.shape).T.tocsr()
@@ -268,7 +276,8 @@ class TargetFluxes:
                    low_order_transposed=low_order.data[at.data],
                    lumped=np.asarray(mass.sum(axis=1)).ravel(),
                    sink=np.asarray(low_order.sum(axis=0)).ravel(),
-                   work=np.empty(low_order.indices.size + 6 * low_order.shape[0]))
+                   work=np.empty(cls.scratch_size(nnz, low_order.shape[0])) if work is None
+                   else work)
 
 
 @dataclass(frozen=True)

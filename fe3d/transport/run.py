@@ -336,7 +336,7 @@ def _observation_operator(site: SiteMesh, flow: FlowField, inputs: TransportInpu
                           ) -> sp.csr_matrix:
     """Rows that sample the nodal field at each observation point: a point value, or the
     conductivity-weighted mean over a well screen."""
-    kh_cell = flow.conductivity[0]
+    kh_cell = flow.cell_conductivity.horizontal
     spacing = inputs.sample_spacing
     rows = []
     for o in inputs.observation_points:

@@ -134,6 +134,7 @@ class StepSystems:
         self.scheme, self.time, self.solver = scheme, time, solver
         self.held_nodes = held_nodes
         self._cache: dict[str, _SpeciesCache] = {}
+        self._scratch: FloatArray | None = None
 
     def _of(self, s: SpeciesModel) -> _SpeciesCache:
         return self._cache.setdefault(s.name, _SpeciesCache())
@@ -170,7 +171,7 @@ class StepSystems:
                 cache.operators[0.0] = (sp.diags(ML.diagonal(), format="csr"), KD)
                 del ML
                 if self.limited(s):  # the Galerkin operators are the target's (T16b)
-                    cache.limiter = TargetFluxes.of(M0, K0, KD)
+                    cache.limiter = TargetFluxes.of(M0, K0, KD, work=self._limiter_scratch())
                 else:
                     cache.galerkin = None  # not needed again: free its memory
             return cache.operators[0.0]
@@ -187,6 +188,15 @@ class StepSystems:
                 cache.operators.pop(next(iter(cache.operators)))
             cache.operators[dt_tau] = (M, K)
         return cache.operators[dt_tau]
+
+    def _limiter_scratch(self) -> FloatArray:
+        """The flux limiter's scratch space, one for every species of the run: the species
+        are corrected one after another (0.16 KiB per node saved for each further
+        species)."""
+        if self._scratch is None:
+            p = self.site.pattern
+            self._scratch = np.empty(TargetFluxes.scratch_size(p.nnz, p.n))
+        return self._scratch
 
     def _terms(self, s: SpeciesModel) -> dict[str, Any]:
         """Coefficients of the species' operators (T1–T6) for transport_operators."""
