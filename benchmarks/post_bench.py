@@ -50,7 +50,7 @@ def measure_parts(points: np.ndarray, cells: np.ndarray, conc: np.ndarray,
     vol = volumes(points, cells)
     n_cells = cells.shape[1]
     porosity = np.full(n_cells, 0.3)
-    sorbed = SorbedPhase(np.full(n_cells, 1650.0), np.zeros(n_cells, dtype=int),
+    sorbed = SorbedPhase(np.full(1, 1650.0), np.zeros(n_cells, dtype=int),
                          (("linear", {"kd": 1e-4}),))
     frame = MeasuringFrame((300.0, 500.0), (1.0, 0.0))
     parts: list[Part] = []

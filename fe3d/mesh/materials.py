@@ -16,7 +16,7 @@ if TYPE_CHECKING:
     from fe3d.case.parts import Ground
     from fe3d.case.schema import Material
 
-__all__ = ["cell_values", "unit_materials"]
+__all__ = ["cell_values", "unit_materials", "unit_values"]
 
 
 def unit_materials(ground: Ground, site: SiteMesh) -> tuple[list[Material], list[str]]:
@@ -38,10 +38,14 @@ def unit_materials(ground: Ground, site: SiteMesh) -> tuple[list[Material], list
     return mats, keys
 
 
+def unit_values(materials: Sequence[Material], attribute: str) -> FloatArray:
+    """``attribute`` (a field or property of :class:`~fe3d.case.schema.Material`, e.g.
+    ``"porosity"``, ``"bulk_density"``, ``"k_vertical"``) of each unit's material, shape
+    ``(n_units,)`` (``materials`` from :func:`unit_materials`)."""
+    return np.array([float(getattr(m, attribute)) for m in materials])
+
+
 def cell_values(materials: Sequence[Material], site: SiteMesh, attribute: str) -> FloatArray:
-    """A material value per cell, shape ``(n_cells,)``: ``attribute`` (a field or property
-    of :class:`~fe3d.case.schema.Material`, e.g. ``"porosity"``, ``"bulk_density"``,
-    ``"k_vertical"``) of the material of each cell's unit (``materials`` from
-    :func:`unit_materials`)."""
-    per_unit = np.array([float(getattr(m, attribute)) for m in materials])
-    return per_unit[site.cell_layer]
+    """A material value per cell, shape ``(n_cells,)``: :func:`unit_values` of each cell's
+    unit."""
+    return unit_values(materials, attribute)[site.cell_layer]

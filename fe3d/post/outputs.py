@@ -23,7 +23,7 @@ from fe3d.case.parts import Ground
 from fe3d.case.schema import Case
 from fe3d.flow.paths import TravelPaths
 from fe3d.flow.solve import FlowField
-from fe3d.mesh.materials import cell_values, unit_materials
+from fe3d.mesh.materials import unit_materials, unit_values
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.post.figures import plot_breakthrough, plot_heads
 from fe3d.post.limit_checks import (
@@ -187,7 +187,7 @@ class SeriesWriter:
         self.receptor_rows_written = 0  # rows of receptors.csv written so far
         self.porosity = porosity
         materials, names = unit_materials(Ground.of(case), site)
-        bulk_density = cell_values(materials, site, "bulk_density")
+        bulk_density = unit_values(materials, "bulk_density")
         self.sorbed = {sp: SorbedPhase(bulk_density, site.cell_layer,
                                        tuple(s.isotherm_of(m) for m in names))
                        for sp, s in case.species.items()}

@@ -43,11 +43,12 @@ class MeasuringFrame:
 
 @dataclass(frozen=True)
 class SorbedPhase:
-    """What sorbs in each cell: bulk density ρ_b [kg/m³] ``(n_cells,)``, the unit of each
-    cell ``(n_cells,)`` and the isotherm of each unit (law name and SI parameters, as
-    :meth:`fe3d.case.schema.Species.isotherm_of` gives them; theory.md R1–R3)."""
+    """What sorbs in each cell: the bulk density ρ_b [kg/m³] of each unit ``(n_units,)``,
+    the unit of each cell ``(n_cells,)`` and the isotherm of each unit (law name and SI
+    parameters, as :meth:`fe3d.case.schema.Species.isotherm_of` gives them; theory.md
+    R1–R3). Nothing is held per cell but the units (the mesh's own array)."""
 
-    bulk_density: FloatArray
+    unit_bulk_density: FloatArray
     unit_of_cell: IndexArray
     isotherms: tuple[tuple[str, dict[str, float]], ...]
 
@@ -59,7 +60,7 @@ class SorbedPhase:
     def linear_capacity(self) -> FloatArray:
         """ρ_b K_d per cell [-] (linear isotherms only)."""
         kd = np.array([par["kd"] for _, par in self.isotherms])
-        return self.bulk_density * kd[self.unit_of_cell]
+        return (self.unit_bulk_density * kd)[self.unit_of_cell]
 
     def sorbed_density(self, c: FloatArray, cell_ids: IndexArray) -> FloatArray:
         """ρ_b s(c) [kg/m³] at concentrations ``c`` [kg/m³] in cells ``cell_ids`` (same
@@ -69,8 +70,7 @@ class SorbedPhase:
         for u, (law, par) in enumerate(self.isotherms):
             here = units == u
             if np.any(here):
-                out[here] = ISOTHERMS[law](c[here], **par)[0] * \
-                    self.bulk_density[cell_ids[here]]
+                out[here] = ISOTHERMS[law](c[here], **par)[0] * self.unit_bulk_density[u]
         return out
 
 

@@ -15,7 +15,7 @@ from pathlib import Path
 from fe3d.case.parts import Ground
 from fe3d.case.schema import Case
 from fe3d.flow.solve import FlowField
-from fe3d.mesh.materials import cell_values, unit_materials
+from fe3d.mesh.materials import unit_materials, unit_values
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.post.files import write_text_atomic
 from fe3d.post.plume import PlumeMeasures, SorbedPhase, measure_plume, measuring_frames
@@ -51,7 +51,7 @@ def measure_steady_plume(case: Case, site: SiteMesh, flow: FlowField,
     flow (theory.md O1, O2)."""
     frames = measuring_frames(case, site, flow)
     materials, names = unit_materials(Ground.of(case), site)
-    bulk_density = cell_values(materials, site, "bulk_density")
+    bulk_density = unit_values(materials, "bulk_density")
     rows = []
     for s in steady.species:
         spec = case.species[s.name]

@@ -16,9 +16,9 @@ import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.parts import Ground, TransportInputs
-from fe3d.case.schema import Material, Species
+from fe3d.case.schema import Species
 from fe3d.flow.solve import FlowField
-from fe3d.mesh.materials import cell_values, unit_materials
+from fe3d.mesh.materials import cell_values, unit_materials, unit_values
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import CELL_BLOCK, BoundaryFacets, length_along, volumes
 from fe3d.reactions import kinetics, sorption
@@ -108,11 +108,6 @@ class MediumFields:
     outflow_matrix: sp.csr_matrix
 
 
-def _unit_values(materials: list[Material], attribute: str) -> FloatArray:
-    """``attribute`` of each unit's material, shape ``(n_units,)``."""
-    return np.array([float(getattr(m, attribute)) for m in materials])
-
-
 def build_medium(site: SiteMesh, flow: FlowField, ground: Ground) -> MediumFields:
     """Porosity, bulk density, θD's parts and the outflow terms per cell and node (T3b, T4)."""
     n = site.n_nodes
@@ -121,10 +116,10 @@ def build_medium(site: SiteMesh, flow: FlowField, ground: Ground) -> MediumField
     q = flow.darcy_flux
     dispersion = Dispersion(
         darcy_flux=q, porosity=theta, cell_unit=site.cell_layer,
-        longitudinal=_unit_values(mats, "longitudinal_dispersivity"),
-        transverse_horizontal=_unit_values(mats, "transverse_dispersivity"),
-        transverse_vertical=_unit_values(mats, "alpha_vertical"),
-        effective_diffusion=_unit_values(mats, "effective_diffusion"))
+        longitudinal=unit_values(mats, "longitudinal_dispersivity"),
+        transverse_horizontal=unit_values(mats, "transverse_dispersivity"),
+        transverse_vertical=unit_values(mats, "alpha_vertical"),
+        effective_diffusion=unit_values(mats, "effective_diffusion"))
     facets = {name: BoundaryFacets.of(site.points, site.cells, site.faces[name])
               for name in flow.fixed_head_nodes}
     qn_out = {name: np.clip(fb.normal_flux(q), 0.0, None) for name, fb in facets.items()}

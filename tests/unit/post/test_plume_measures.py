@@ -42,7 +42,7 @@ def test_face_source_is_measured_from_its_patch_along_the_mean_flow():
     assert frame.origin[1] == pytest.approx(6.0, abs=1.0)  # mean of the patch's nodes
     assert frame.along == pytest.approx((1.0, 0.0), abs=1e-9)
     n = site.n_cells
-    none = SorbedPhase(np.zeros(n), np.zeros(n, dtype=int), (("linear", {"kd": 0.0}),))
+    none = SorbedPhase(np.zeros(1), np.zeros(n, dtype=int), (("linear", {"kd": 0.0}),))
     conc = 1.0 - site.points[0] / 40.0
     m = measure_plume(site.points, site.cells, site.cell_volumes(), np.full(n, 0.3), none,
                       conc, 0.5, frame)
@@ -62,7 +62,7 @@ def test_point_frame_distances_across_and_against_the_flow():
     along it y runs from −1 to 1: downstream 1, upstream 1; extent hypot(2, 1) (exact)."""
     p, t, v = _bar()
     n = t.shape[1]
-    none = SorbedPhase(np.zeros(n), np.zeros(n, dtype=int), (("linear", {"kd": 0.0}),))
+    none = SorbedPhase(np.zeros(1), np.zeros(n, dtype=int), (("linear", {"kd": 0.0}),))
     m = measure_plume(p, t, v, np.ones(n), none, p[0] / 4.0, 0.5,
                       MeasuringFrame((2.0, 0.0), (0.0, 1.0)))
     assert m.across == pytest.approx((-2.0, 0.0), abs=1e-12)
@@ -79,15 +79,15 @@ def test_sorbed_mass_with_a_nonlinear_isotherm_uses_the_isotherm():
     n = t.shape[1]
     conc = 0.5 + p[0] / 4.0 + 0.1 * p[1]
     rho, kf = 1600.0, 2e-4
-    squared = SorbedPhase(np.full(n, rho), np.zeros(n, dtype=int),
+    squared = SorbedPhase(np.full(1, rho), np.zeros(n, dtype=int),
                           (("freundlich", {"k_f": kf, "n": 2.0}),))
     frame = MeasuringFrame((0.0, 0.0), (1.0, 0.0))
     m = measure_plume(p, t, v, np.ones(n), squared, conc, 0.0, frame)
     ct = conc[t]
     exact = rho * kf * float((np.abs(v) / 20 * ((ct ** 2).sum(0) + ct.sum(0) ** 2)).sum())
     assert m.sorbed_mass == pytest.approx(exact, rel=1e3 * EPS)
-    linear = SorbedPhase(np.full(n, rho), np.zeros(n, dtype=int), (("linear", {"kd": kf}),))
-    power_one = SorbedPhase(np.full(n, rho), np.zeros(n, dtype=int),
+    linear = SorbedPhase(np.full(1, rho), np.zeros(n, dtype=int), (("linear", {"kd": kf}),))
+    power_one = SorbedPhase(np.full(1, rho), np.zeros(n, dtype=int),
                             (("freundlich", {"k_f": kf, "n": 1.0}),))
     assert measure_plume(p, t, v, np.ones(n), power_one, conc, 0.6, frame).sorbed_mass == \
         pytest.approx(measure_plume(p, t, v, np.ones(n), linear, conc, 0.6, frame).sorbed_mass,

@@ -145,7 +145,7 @@ def test_plume_measures_and_isosurface_of_a_linear_field(tmp_path):
     pts, cells = m.p, m.t
     conc = 1.0 - pts[0] / 4.0  # 1 at x = 0, 0 at x = 4
     n = cells.shape[1]
-    no_sorption = SorbedPhase(np.zeros(n), np.zeros(n, dtype=int), (("linear", {"kd": 0.0}),))
+    no_sorption = SorbedPhase(np.zeros(1), np.zeros(n, dtype=int), (("linear", {"kd": 0.0}),))
     frame = MeasuringFrame((0.0, 0.0), (1.0, 0.0))
     ext = measure_plume(pts, cells, volumes(pts, cells), np.full(n, 0.25), no_sorption, conc,
                         0.4, frame)

@@ -15,7 +15,7 @@ from _readings import peak_bracket
 from fe3d.case.builder import with_changes
 from fe3d.case.load import load_case
 from fe3d.case.parts import Ground, TransportInputs
-from fe3d.mesh.materials import cell_values, unit_materials
+from fe3d.mesh.materials import cell_values, unit_materials, unit_values
 from fe3d.pipeline import mesh_and_flow, run_case
 from fe3d.post.plume import SorbedPhase, measure_plume, measuring_frames
 from fe3d.transport.run import run_transport
@@ -102,7 +102,7 @@ def test_measures_below_every_value_are_the_budgets_masses():
     site, flow = mesh_and_flow(case)
     snap = list(run_transport(site, flow, TransportInputs.of(case)))[1]  # the first output
     mats, names = unit_materials(Ground.of(case), site)
-    sorbed = SorbedPhase(cell_values(mats, site, "bulk_density"), site.cell_layer,
+    sorbed = SorbedPhase(unit_values(mats, "bulk_density"), site.cell_layer,
                          tuple(case.species["tracer"].isotherm_of(m) for m in names))
     frames = measuring_frames(case, site, flow)
     assert frames["tracer"].origin == (10.0, 10.0)  # the source box's plan centre
