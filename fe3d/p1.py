@@ -416,7 +416,7 @@ def _stiffness_kernel(indptr: IndexArray, indices: IndexArray, cell_ids: IndexAr
         for i in range(4):
             for j in range(4):
                 data[pos[4 * i + j]] += v * (g[i, 0] * tg[j, 0] + g[i, 1] * tg[j, 1]
-                                                  + g[i, 2] * tg[j, 2])
+                                             + g[i, 2] * tg[j, 2])
 
 
 @_jit
