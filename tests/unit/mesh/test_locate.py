@@ -42,3 +42,19 @@ def test_points_outside_are_reported() -> None:
     assert ids_sub.tolist() == sub[:5].tolist()
     with pytest.raises(MeshError, match="outside the mesh"):
         locate_points(points, cells, outside)
+
+
+def test_a_site_mesh_holds_its_arrays_in_the_kernels_layout() -> None:
+    """The compiled kernels read C-ordered float64 points and int64 cells; a SiteMesh given
+    a transposed view (as the mesher's points were) holds a C-ordered copy of the same
+    values, so no kernel call copies them again (docs/performance.md, the mesh stage)."""
+    from fe3d.mesh.site_mesh import SiteMesh
+
+    points, cells = _flat_box()
+    view = np.ascontiguousarray(points.T).T  # same values, Fortran order
+    assert not view.flags.c_contiguous
+    site = SiteMesh(points=view, cells=cells.astype(np.int32), cell_layer=np.zeros(
+        cells.shape[1], dtype=np.int64), layer_names=("box",), faces={})
+    assert site.points.flags.c_contiguous and site.points.dtype == np.float64
+    assert site.cells.flags.c_contiguous and site.cells.dtype == np.int64
+    assert np.array_equal(site.points, points) and np.array_equal(site.cells, cells)
