@@ -258,10 +258,10 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool, overwrite: bool,
                   TextColumn("{task.fields[info]}"), TimeElapsedColumn(),
                   disable=quiet, console=con) as bar:
         task = bar.add_task("mesh", total=1.0, info="")
+        steps = StepsSeen(tu)
 
         def progress(stage: str, done: float, total: float) -> None:
-            info = f"t = {from_si(done, tu):.3g} / {from_si(total, tu):.3g} {tu}" \
-                if stage == "transport" else ""
+            info = steps.info(done, total) if stage == "transport" else ""
             bar.update(task, description=stage, completed=done / total if total else 0,
                        info=info)
 
@@ -304,6 +304,31 @@ def _run(case_path: Path, out: Path | None, *, quiet: bool, overwrite: bool,
         con.print(f"[yellow]warning:[/yellow] {w}", markup=True, highlight=False)
     con.print(CAUTION)
     return 0
+
+
+class StepsSeen:
+    """The transport's progress line: the time reached, the last step and how many more
+    steps of that length the run needs (plume-following steps can be short: a user sees
+    it at once). ``unit``: the case's time unit."""
+
+    def __init__(self, unit: str) -> None:
+        self.unit, self.count = unit, 0
+        self.last: float | None = None  # a resumed run starts late: no step before it
+
+    def info(self, done: float, total: float) -> str:
+        """Called after every step with the time reached and the end time [s]."""
+        from fe3d.units import from_si
+
+        step = 0.0 if self.last is None else done - self.last
+        self.last = done
+        self.count += step > 0.0
+        text = f"t = {from_si(done, self.unit):.3g} / {from_si(total, self.unit):.3g} " \
+               f"{self.unit}"
+        if step <= 0.0:
+            return text
+        left = max(0, round((total - done) / step))
+        return (f"{text}, step {from_si(step, self.unit):.3g} {self.unit} ({self.count:,} "
+                f"steps; {left:,} more at this step)")
 
 
 def _default_mesh_folder(case_path: Path) -> Path:

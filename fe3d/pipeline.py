@@ -345,7 +345,8 @@ def _run_case(case: Case, out_dir: Path, *, progress: Progress | None = None,
     flow_figures = Beside(lambda: _flow_figures(out_dir, case, site, flow, paths, writer,
                                                 drawdown=drawdown), name="flow figures")
     try:
-        tell("transport", 0.0, case.time.end)  # its set-up counts as transport, not paths
+        # its set-up counts as transport, not paths; a resumed run starts where it stopped
+        tell("transport", 0.0 if saved is None else saved.checkpoint.time, case.time.end)
         _transport(case, site, flow, writer, keeper=keeper, saved=saved, base_dir=base_dir,
                    on_step=lambda t, end: tell("transport", t, end))
     except BaseException:
