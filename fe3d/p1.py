@@ -24,7 +24,8 @@ from fe3d._typing import FloatArray, IndexArray
 from fe3d.sgs import split_csr
 
 __all__ = ["CELL_BLOCK", "MASS_FRACTION", "BoundaryFacets", "CsrPattern", "cell_gradients",
-           "gradients", "length_along", "node_graph", "split_rows", "tensor_gradient", "volumes"]
+           "gradients", "index_array", "index_type", "length_along", "node_graph", "split_rows",
+           "sum_at_corners", "tensor_gradient", "volumes"]
 
 MASS_FRACTION = (np.ones((4, 4)) + np.eye(4)) / 20.0
 """∫φ_iφ_j dV / V on a tetrahedron (exact for P1)."""
@@ -34,6 +35,22 @@ CELL_BLOCK = 1 << 16
 every cell (the dispersion tensor: 72 bytes per cell whole, 4.5 MiB per block)."""
 
 _jit = numba.njit(cache=True, nogil=True)
+
+
+def index_type(count: int) -> type[np.signedinteger]:
+    """The integer type that holds the ids 0 … ``count`` − 1: int32 (4 bytes) below 2³¹,
+    int64 beyond."""
+    return np.int32 if count < 2**31 else np.int64
+
+
+def index_array(ids: IndexArray) -> IndexArray:
+    """``ids`` (cells, node or cell ids) as a C-contiguous int32 or int64 array: itself when
+    it already is one, int64 for any other type. The compiled kernels read either type (the
+    arithmetic inside them is int64), so a mesh's int32 cells reach them without a copy (an
+    int64 copy of the cells is 32 bytes per cell, about 0.18 KiB per node)."""
+    ids = np.asarray(ids)
+    kind = ids.dtype if ids.dtype in (np.int32, np.int64) else np.int64
+    return np.ascontiguousarray(ids, dtype=kind)
 
 
 @numba.njit(inline="always")
@@ -110,8 +127,7 @@ def _tensor_gradient_kernel(points: FloatArray, cells: IndexArray, field: FloatA
 
 
 def _pc(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, IndexArray]:
-    return (np.ascontiguousarray(points, dtype=float),
-            np.ascontiguousarray(cells, dtype=np.int64))
+    return np.ascontiguousarray(points, dtype=float), index_array(cells)
 
 
 def gradients(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, FloatArray]:
@@ -150,6 +166,23 @@ def length_along(points: FloatArray, cells: IndexArray, a: FloatArray) -> FloatA
     ``(n_cells, 4, 3)`` gradients)."""
     out = np.empty(cells.shape[1])
     _length_kernel(*_pc(points, cells), np.asarray(a, dtype=float), out)
+    return out
+
+
+@_jit
+def _corner_sum_kernel(cells: IndexArray, per_cell: FloatArray, out: FloatArray) -> None:
+    for i in range(4):  # vertex 0 of every cell first: the order of cells.ravel()
+        for e in range(cells.shape[1]):
+            out[cells[i, e]] += per_cell[e]
+
+
+def sum_at_corners(cells: IndexArray, per_cell: FloatArray, n_nodes: int) -> FloatArray:
+    """Σ over the cells at each node of the cell's value ``per_cell`` ``(n_cells,)``, shape
+    ``(n_nodes,)``. Added in the order of ``np.bincount(cells.ravel(), weights=np.tile(
+    per_cell, 4), minlength=n_nodes)``, so equal to it bit for bit, without its two
+    ``(4 n_cells)`` temporaries (the tiled values, and an int64 copy of int32 cells)."""
+    out = np.zeros(n_nodes)
+    _corner_sum_kernel(index_array(cells), np.ascontiguousarray(per_cell, dtype=float), out)
     return out
 
 
@@ -235,7 +268,7 @@ def node_graph(cells: IndexArray, n: int) -> sp.csr_matrix:
     """The node adjacency of tetrahedra ``cells`` ``(4, m)`` as an ``(n, n)`` CSR matrix of
     ones (node pairs sharing a cell, the diagonal included), without the (16 m)-entry COO
     temporaries."""
-    indptr, indices = _pattern_kernel(np.ascontiguousarray(cells, dtype=np.int64), n)
+    indptr, indices = _pattern_kernel(index_array(cells), n)
     return sp.csr_matrix((np.ones(indices.size, dtype=np.int8), indices, indptr),
                          shape=(n, n))
 
@@ -295,8 +328,7 @@ class BoundaryFacets:
     def of(cls, points: FloatArray, cells: IndexArray, tri: IndexArray) -> BoundaryFacets:
         """Facets ``tri`` of the mesh (``ValueError`` if one is not a face of any cell)."""
         tri = np.ascontiguousarray(tri, dtype=np.int64)
-        owner = _owner_kernel(np.ascontiguousarray(cells, dtype=np.int64), tri,
-                              points.shape[1])
+        owner = _owner_kernel(index_array(cells), tri, points.shape[1])
         if np.any(owner < 0):
             msg = "a boundary triangle is not a face of any cell of the mesh"
             raise ValueError(msg)
@@ -476,7 +508,7 @@ class CsrPattern:
     @classmethod
     def of_cells(cls, cells: IndexArray, n: int) -> CsrPattern:
         """The pattern of tetrahedra ``cells`` ``(4, m)`` on ``n`` nodes."""
-        c = np.ascontiguousarray(cells, dtype=np.int64)
+        c = index_array(cells)
         indptr, indices = _pattern_kernel(c, n)
         if indptr[-1] >= 2**31:
             msg = f"{int(indptr[-1])} matrix entries: more than 32-bit indices can hold"

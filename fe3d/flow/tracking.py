@@ -24,7 +24,7 @@ import numba
 import numpy as np
 
 from fe3d._typing import BoolArray, FloatArray, IndexArray
-from fe3d.p1 import cell_gradients
+from fe3d.p1 import cell_gradients, index_array
 
 __all__ = ["Pathline", "Tracker", "cell_neighbours", "thin_pathline"]
 
@@ -136,7 +136,7 @@ def cell_neighbours(cells: IndexArray, n_nodes: int | None = None) -> IndexArray
         ``neighbour[k, e]``: the cell across the face of cell e opposite its local vertex k,
         −1 on the boundary; shape ``(4, n_cells)``, int32 (int64 beyond 2³¹ faces).
     """
-    cells = _index_array(cells)
+    cells = index_array(cells)
     n = int(cells.max()) + 1 if n_nodes is None else int(n_nodes)
     m = cells.shape[1]
     index = np.int32 if 4 * m < 2**31 else np.int64
@@ -145,12 +145,6 @@ def cell_neighbours(cells: IndexArray, n_nodes: int | None = None) -> IndexArray
     nb = np.full(4 * m, -1, dtype=index)
     _pair_faces(cells, start, face, nb)
     return nb.reshape(4, m)
-
-
-def _index_array(cells: IndexArray) -> IndexArray:
-    """``cells`` as a C-contiguous int32 or int64 array: itself when it already is one."""
-    kind = cells.dtype if cells.dtype in (np.int32, np.int64) else np.int64
-    return np.ascontiguousarray(cells, dtype=kind)
 
 
 # ------------------------------------------------------------------ cell geometry, location
@@ -395,7 +389,7 @@ class Tracker:
     def __init__(self, points: FloatArray, cells: IndexArray, velocity: FloatArray, *,
                  porosity: FloatArray | None = None) -> None:
         self.points = np.ascontiguousarray(points, dtype=float)
-        self.cells = _index_array(cells)
+        self.cells = index_array(cells)
         self.velocity = np.ascontiguousarray(velocity, dtype=float)
         self.porosity = (np.zeros(0) if porosity is None
                          else np.ascontiguousarray(porosity, dtype=float))

@@ -44,7 +44,7 @@ from fe3d.mesh.quality import quality_report
 from fe3d.mesh.report import LensFit, MeshReport, PlanLayout
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.mesh.stratigraphy import unit_surfaces
-from fe3d.p1 import node_graph
+from fe3d.p1 import index_type, node_graph
 
 if TYPE_CHECKING:
     from fe3d.case.schema import Case
@@ -338,7 +338,7 @@ def _extrude(xy: FloatArray, tri: IndexArray, z: FloatArray, layer_unit: IndexAr
     is_used[cells.ravel()] = True
     used = np.flatnonzero(is_used)
     del is_used
-    remap = np.full(n_levels * n2, -1, dtype=np.int64)
+    remap = np.full(n_levels * n2, -1, dtype=index_type(used.size))  # int32: remap[cells] too
     remap[used] = np.arange(used.size)
     lv_of, plan_of = np.divmod(used, n2)
     points = np.vstack([xy[:, plan_of], z[lv_of, plan_of][None]])

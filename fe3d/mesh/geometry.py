@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
-from fe3d.p1 import gradients
+from fe3d.p1 import gradients, sum_at_corners
 
 __all__ = ["lump_to_nodes", "p1_gradients", "points_in_polygon"]
 
@@ -50,12 +50,10 @@ def lump_to_nodes(cells: IndexArray, volumes: FloatArray, per_cell: FloatArray,
     -------
     Nodal sums [value · m³], shape ``(n_nodes,)`` or ``(k, n_nodes)``.
     """
-    flat = cells.ravel()
     size = np.abs(volumes)
     v = np.asarray(per_cell, dtype=float)
     rows = v[None] if v.ndim == 1 else v
-    out = np.vstack([np.bincount(flat, weights=np.tile(row * size / 4.0, 4),
-                                 minlength=n_nodes) for row in rows])
+    out = np.vstack([sum_at_corners(cells, row * size / 4.0, n_nodes) for row in rows])
     return out[0] if v.ndim == 1 else out
 
 

@@ -9,6 +9,7 @@ import scipy.sparse as sp
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.errors import MeshError
 from fe3d.mesh.geometry import p1_gradients
+from fe3d.p1 import index_array
 
 __all__ = ["CellFinder", "locate_points", "sample_operator", "screen_points"]
 
@@ -106,7 +107,7 @@ def locate_points(points: FloatArray, cells: IndexArray, xs: FloatArray, *,
     # only cells whose bounding box meets the points' bounding box can hold them (a small
     # tree is quick to build): one compiled pass over the cells, no gather of their corners
     near = _cells_meeting_box(np.ascontiguousarray(points, dtype=float),
-                              np.ascontiguousarray(cells, dtype=np.int64),
+                              index_array(cells),
                               xs.min(axis=1) - 1e-9, xs.max(axis=1) + 1e-9)
     found = np.full(xs.shape[1], -1, dtype=np.int64)
     bary = np.zeros((4, xs.shape[1]))

@@ -14,6 +14,7 @@ import numba
 import numpy as np
 
 from fe3d._typing import IndexArray
+from fe3d.p1 import index_array, index_type
 
 __all__ = ["boundary_triangles", "order_by_lowest_node", "orient_positive", "signed_volumes",
            "split_prisms"]
@@ -75,15 +76,15 @@ def split_prisms(tri: IndexArray, canon: IndexArray, layer_unit: IndexArray,
     Returns
     -------
     cells, unit, level, plan_tri
-        Tetrahedra ``(4, m)`` (node ids of ``canon``) and each one's unit, upper level and
-        plan triangle ``(m,)``.
+        Tetrahedra ``(4, m)`` (node ids of ``canon``; int32 unless ``canon`` has 2³¹ entries
+        or more) and each one's unit, upper level and plan triangle ``(m,)``.
     """
     t = np.ascontiguousarray(tri, dtype=np.int64)
     canon = np.ascontiguousarray(canon, dtype=np.int64)
     layer_unit = np.ascontiguousarray(layer_unit, dtype=np.int64)
     none = np.empty((4, 0), np.int64)
     m = _prism_kernel(t, canon, layer_unit, none, none[0], none[0], none[0])
-    cells = np.empty((4, m), np.int64)
+    cells = np.empty((4, m), index_type(canon.size))  # ids of canon: below its size
     unit, level, plan_tri = (np.empty(m, np.int64) for _ in range(3))
     _prism_kernel(t, canon, layer_unit, cells, unit, level, plan_tri)
     return cells, unit, level, plan_tri
@@ -118,7 +119,7 @@ def order_by_lowest_node(cells: IndexArray, n: int, new_id: IndexArray | None = 
     ``np.argsort(new_id[cells].min(axis=0), kind="stable")``, in linear time and without
     the renumbered copy), shape ``(m,)``. ``new_id`` ``(n,)``: a renumbering of the nodes
     (none when not given)."""
-    return _order_kernel(np.ascontiguousarray(cells, dtype=np.int64), _ids(new_id, n))
+    return _order_kernel(index_array(cells), _ids(new_id, n))
 
 
 @numba.njit(inline="always")
@@ -153,7 +154,7 @@ def signed_volumes(points: np.ndarray, cells: IndexArray) -> np.ndarray:
     ``einsum(b − a, cross(c − a, d − a)) / 6`` rounds it."""
     out = np.empty(cells.shape[1])
     _volume_kernel(np.ascontiguousarray(points, dtype=float),
-                   np.ascontiguousarray(cells, dtype=np.int64), out)
+                   index_array(cells), out)
     return out
 
 
@@ -169,9 +170,10 @@ def orient_positive(points: np.ndarray, cells: IndexArray, order: IndexArray,
                     new_id: IndexArray | None = None) -> IndexArray:
     """``new_id[cells[:, order]]`` ``(4, m)`` (``cells[:, order]`` without ``new_id``) with
     nodes 1 and 2 swapped where the signed volume is negative, so that every cell of nonzero
-    volume is positively oriented (a new array; ``points`` are those of the new ids)."""
-    out = np.empty((4, order.size), np.int64)
-    _take_columns(np.ascontiguousarray(cells, dtype=np.int64), order,
+    volume is positively oriented (a new array, int32 below 2³¹ nodes; ``points`` are those
+    of the new ids)."""
+    out = np.empty((4, order.size), index_type(points.shape[1]))
+    _take_columns(index_array(cells), order,
                   _ids(new_id, points.shape[1]), out)
     _orient_kernel(np.ascontiguousarray(points, dtype=float), out)
     return out
@@ -246,4 +248,4 @@ def _boundary_kernel(cells: IndexArray, n: int) -> IndexArray:
 def boundary_triangles(cells: IndexArray, n: int) -> IndexArray:
     """Faces of exactly one tetrahedron, shape ``(3, k)``: each triangle's nodes increasing,
     the triangles in increasing (first, second, third) order (linear time)."""
-    return _boundary_kernel(np.ascontiguousarray(cells, dtype=np.int64), n)
+    return _boundary_kernel(index_array(cells), n)

@@ -19,6 +19,7 @@ import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.mesh.report import MeshQuality
+from fe3d.p1 import index_array
 
 if TYPE_CHECKING:
     from fe3d.mesh.site_mesh import SiteMesh
@@ -79,7 +80,7 @@ def _measure(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, FloatAr
     angles = np.empty((6, cells.shape[1]))
     aspect = np.empty(cells.shape[1])
     _quality_kernel(np.ascontiguousarray(points, dtype=float),
-                    np.ascontiguousarray(cells, dtype=np.int64), angles, aspect)
+                    index_array(cells), angles, aspect)
     return angles, aspect
 
 

@@ -12,7 +12,7 @@ from fe3d._typing import FloatArray, IndexArray
 from fe3d.mesh.geometry import lump_to_nodes
 from fe3d.mesh.prisms import signed_volumes
 from fe3d.mesh.report import MeshReport
-from fe3d.p1 import CsrPattern
+from fe3d.p1 import CsrPattern, index_type
 
 __all__ = ["SiteMesh"]
 
@@ -26,7 +26,8 @@ class SiteMesh:
     points
         Node coordinates [m], shape ``(3, n_nodes)``.
     cells
-        Tetrahedra (node ids), shape ``(4, n_cells)``, positively oriented.
+        Tetrahedra (node ids), shape ``(4, n_cells)``, positively oriented; C-ordered int32
+        (int64 from 2³¹ nodes on), whatever integer type they were given in.
     cell_layer
         Index into ``layer_names`` of each cell, shape ``(n_cells,)``.
     layer_names
@@ -48,12 +49,15 @@ class SiteMesh:
     report: MeshReport | None = None
 
     def __post_init__(self) -> None:
-        # the compiled kernels read C-ordered float64 points and int64 cells; held in any
-        # other layout (the mesher's points were a transposed view) every kernel call made
-        # a copy: at 1 M nodes 12 of the 38 s of meshing and solving the flow went to
-        # copying the points for each pathline point the plume corridor located
-        object.__setattr__(self, "points", np.ascontiguousarray(self.points, dtype=float))
-        object.__setattr__(self, "cells", np.ascontiguousarray(self.cells, dtype=np.int64))
+        # the compiled kernels read C-ordered float64 points and int32 or int64 cells; held
+        # in any other layout (the mesher's points were a transposed view) every kernel call
+        # made a copy: at 1 M nodes 12 of the 38 s of meshing and solving the flow went to
+        # copying the points for each pathline point the plume corridor located. Cells are
+        # int32 below 2³¹ nodes: 16 bytes per cell instead of 32, about 93 bytes per node
+        points = np.ascontiguousarray(self.points, dtype=float)
+        cells = np.ascontiguousarray(self.cells, dtype=index_type(points.shape[1]))
+        object.__setattr__(self, "points", points)
+        object.__setattr__(self, "cells", cells)
 
     @property
     def n_nodes(self) -> int:
@@ -101,7 +105,8 @@ class SiteMesh:
         """The scikit-fem ``MeshTet`` with named subdomains (layers) and boundaries (faces)."""
         from skfem import MeshTet
 
-        mesh = MeshTet(np.ascontiguousarray(self.points), np.ascontiguousarray(self.cells))
+        # int64 node ids, as scikit-fem makes its own meshes (a copy: this is for checks)
+        mesh = MeshTet(self.points, self.cells.astype(np.int64))
         subdomains = {name: np.nonzero(self.cell_layer == i)[0]
                       for i, name in enumerate(self.layer_names)}
         boundaries = {name: _facet_ids(mesh, tri) for name, tri in self.faces.items()}

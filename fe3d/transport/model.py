@@ -20,7 +20,7 @@ from fe3d.case.schema import Species
 from fe3d.flow.solve import FlowField
 from fe3d.mesh.materials import cell_values, unit_materials, unit_values
 from fe3d.mesh.site_mesh import SiteMesh
-from fe3d.p1 import CELL_BLOCK, BoundaryFacets, length_along, volumes
+from fe3d.p1 import CELL_BLOCK, BoundaryFacets, length_along, sum_at_corners, volumes
 from fe3d.reactions import kinetics, sorption
 from fe3d.transport.dispersion import dispersion_tensor
 
@@ -37,8 +37,7 @@ RateLaw = Callable[[FloatArray], tuple[FloatArray, FloatArray]]
 def lumped(site: SiteMesh, per_cell_volume_weighted: FloatArray) -> FloatArray:
     """Σ over cells of the value/4 at each of their nodes (∫φ_j = V/4 for P1); the value is
     per cell already multiplied by the cell volume, shape ``(n_cells,)``."""
-    return np.bincount(site.cells.ravel(), weights=np.tile(per_cell_volume_weighted / 4.0, 4),
-                       minlength=site.n_nodes)
+    return sum_at_corners(site.cells, per_cell_volume_weighted / 4.0, site.n_nodes)
 
 
 @dataclass(frozen=True)

@@ -45,16 +45,45 @@ def test_points_outside_are_reported() -> None:
 
 
 def test_a_site_mesh_holds_its_arrays_in_the_kernels_layout() -> None:
-    """The compiled kernels read C-ordered float64 points and int64 cells; a SiteMesh given
-    a transposed view (as the mesher's points were) holds a C-ordered copy of the same
-    values, so no kernel call copies them again (docs/performance.md, the mesh stage)."""
+    """The compiled kernels read C-ordered float64 points and int32 or int64 cells; a
+    SiteMesh given a transposed view (as the mesher's points were) holds a C-ordered copy of
+    the same values, and given int64 cells it holds them as int32 (16 bytes per cell instead
+    of 32, about 93 bytes per node: docs/performance.md, memory per node)."""
     from fe3d.mesh.site_mesh import SiteMesh
 
     points, cells = _flat_box()
     view = np.ascontiguousarray(points.T).T  # same values, Fortran order
     assert not view.flags.c_contiguous
-    site = SiteMesh(points=view, cells=cells.astype(np.int32), cell_layer=np.zeros(
+    site = SiteMesh(points=view, cells=cells, cell_layer=np.zeros(
         cells.shape[1], dtype=np.int64), layer_names=("box",), faces={})
     assert site.points.flags.c_contiguous and site.points.dtype == np.float64
-    assert site.cells.flags.c_contiguous and site.cells.dtype == np.int64
+    assert site.cells.flags.c_contiguous and site.cells.dtype == np.int32
     assert np.array_equal(site.points, points) and np.array_equal(site.cells, cells)
+
+
+def test_p1_operators_on_int32_cells_equal_those_on_int64_cells_bit_for_bit() -> None:
+    """A mesh's int32 cells reach the compiled kernels as they are (no int64 copy) and give
+    the same CSR pattern and matrix values, bit for bit, as int64 cells: the pattern, a
+    stiffness matrix with one tensor per cell, and the nodal lumping (against numpy's
+    ``bincount``, the sum it replaced, in the same order)."""
+    from fe3d.mesh.site_mesh import SiteMesh
+    from fe3d.p1 import CsrPattern, index_array, sum_at_corners
+
+    points, cells = _flat_box()
+    site = SiteMesh(points=points, cells=cells, cell_layer=np.zeros(
+        cells.shape[1], dtype=np.int64), layer_names=("box",), faces={})
+    assert index_array(site.cells) is site.cells  # no copy on the way to a kernel
+    rng = np.random.default_rng(5)
+    a = rng.random((3, 3, cells.shape[1]))
+    tensors = a + a.transpose(1, 0, 2)
+    wide = CsrPattern.of_cells(cells, site.n_nodes)
+    narrow = site.pattern
+    assert narrow.cells is site.cells
+    A64 = wide.stiffness(points, cells, tensors)
+    A32 = narrow.stiffness(site.points, site.cells, tensors)
+    assert np.array_equal(A64.indptr, A32.indptr) and np.array_equal(A64.indices, A32.indices)
+    assert A64.data.tobytes() == A32.data.tobytes()
+    weight = rng.random(cells.shape[1])
+    expected = np.bincount(cells.ravel(), weights=np.tile(weight, 4), minlength=site.n_nodes)
+    assert sum_at_corners(site.cells, weight, site.n_nodes).tobytes() == expected.tobytes()
+    assert sum_at_corners(cells, weight, site.n_nodes).tobytes() == expected.tobytes()

@@ -228,3 +228,25 @@ def test_checkpoint_write_that_fails_keeps_the_previous_one(prepared, tmp_path, 
         keeper.save(ckpt)
     assert (tmp_path / "state.npz").read_bytes() == before
     assert sorted(p.name for p in tmp_path.iterdir()) == ["state.npz"]
+
+
+def test_a_mesh_fingerprint_does_not_depend_on_the_cells_integer_type() -> None:
+    """A checkpoint names its mesh by a SHA-256 fingerprint of the points and cells. Cells
+    held as int32 (SiteMesh from issue 16 on) give the fingerprint the same int64 cells gave
+    before, computed here with the standard library's hashlib the way the former fingerprint
+    was (type, shape, then the whole array's bytes), so that a run checkpointed with int64
+    cells resumes on the same mesh."""
+    import hashlib
+
+    from fe3d.transport.checkpoint import fingerprint
+
+    rng = np.random.default_rng(3)
+    points = rng.random((3, 2_500_001))  # more than one hashing block
+    cells = rng.integers(0, points.shape[1], (4, 300_000))
+    former = hashlib.sha256()
+    for a in (points, cells.astype(np.int64)):
+        former.update(f"{a.dtype.str}{a.shape}".encode())
+        former.update(a.tobytes())
+    assert fingerprint(points, cells.astype(np.int32)) == former.hexdigest()
+    assert fingerprint(points, cells.astype(np.int64)) == former.hexdigest()
+    assert fingerprint(points, cells[:, ::-1].astype(np.int32)) != former.hexdigest()
