@@ -5,8 +5,10 @@ discrete upwinding: bounded at any step), and a high-order target step, the Gale
 θ-scheme M (c_H − cⁿ)/Δt + K(θ c_H + (1 − θ) cⁿ) = b (Crank–Nicolson or backward Euler),
 differ by a sum of antisymmetric fluxes between neighbours plus a remainder at the sinks
 (decay and outflow; :func:`limited_target_fluxes`). Flux correction adds back as much of
-each flux as keeps every node within the range of its neighbours' values (Zalesak's
-limiter), and repeats that on the unused part of the fluxes against the corrected field:
+each flux as keeps every node within the range of its neighbours' values, those of the
+field so far and of the step's start (Zalesak's limiter with Zalesak's own bounds: bounds
+from the low-order field alone clip a moving peak), and repeats that on the unused part
+of the fluxes against the corrected field:
 
     c_i = c_L,i + Δt/m_i Σ_j α_ij f_ij,   0 ≤ α_ij = α_ji ≤ 1.
 
@@ -88,10 +90,11 @@ def _ratios(rows: IndexArray, sums: FloatArray, ranges: FloatArray, lumped: Floa
 @numba.njit(cache=True, nogil=True)
 def _first_sweep(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatArray,
                  low: FloatArray, low_t: FloatArray, c_low: FloatArray, rate: FloatArray,
-                 c_mean: FloatArray, cap: FloatArray, f: FloatArray, sums: FloatArray,
-                 ranges: FloatArray) -> None:
+                 c_mean: FloatArray, c_old: FloatArray, cap: FloatArray, f: FloatArray,
+                 sums: FloatArray, ranges: FloatArray) -> None:
     """The raw fluxes f_ij towards the target (T16b) into ``f``, with the first pass's flux
-    sums P_i^± and ranges Q_i^± of c_L (the upper end raised to ``cap``) into ``sums`` and
+    sums P_i^± and ranges Q_i^± of c_L and cⁿ (``c_old``; the upper end raised to ``cap``)
+    into ``sums`` and
     ``ranges`` (2i, 2i + 1), in one sweep over the CSR arrays. No prelimiting: dropping the
     fluxes that run down the gradient of c_L removed the target's own spreading (T16b).
     The added diffusion d_ij = l_ij − k_ij is formed from L and the Galerkin K (``k``);
@@ -111,9 +114,8 @@ def _first_sweep(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatAr
             f[p] = fij
             p_plus += max(fij, 0.0)
             p_minus += min(fij, 0.0)
-            dc = c_low[j] - ci
-            q_plus = max(q_plus, dc)
-            q_minus = min(q_minus, dc)
+            q_plus = max(q_plus, c_low[j] - ci, c_old[j] - ci)
+            q_minus = min(q_minus, c_low[j] - ci, c_old[j] - ci)
         sums[2 * i] = p_plus
         sums[2 * i + 1] = p_minus
         ranges[2 * i] = q_plus
@@ -154,17 +156,17 @@ def _apply_sweep(rows: IndexArray, indptr: IndexArray, cols: IndexArray, f: Floa
 
 @numba.njit(cache=True, nogil=True)
 def _range_sweep(rows: IndexArray, indptr: IndexArray, cols: IndexArray, c: FloatArray,
-                 cap: FloatArray, ranges: FloatArray) -> None:
-    """The neighbours' range Q_i^± of ``c`` (the upper end raised to ``cap``) at the
-    ``rows`` into ``ranges`` (2i, 2i + 1), for a later pass. Reads no flux."""
+                 c_old: FloatArray, cap: FloatArray, ranges: FloatArray) -> None:
+    """The neighbours' range Q_i^± of ``c`` and ``c_old`` (the upper end raised to ``cap``)
+    at the ``rows`` into ``ranges`` (2i, 2i + 1), for a later pass. Reads no flux."""
     for i in rows:
         ci = c[i]
         q_minus = 0.0
         q_plus = max(0.0, cap[i] - ci)
         for p in range(indptr[i], indptr[i + 1]):
-            dc = c[cols[p]] - ci
-            q_plus = max(q_plus, dc)
-            q_minus = min(q_minus, dc)
+            j = cols[p]
+            q_plus = max(q_plus, c[j] - ci, c_old[j] - ci)
+            q_minus = min(q_minus, c[j] - ci, c_old[j] - ci)
         ranges[2 * i] = q_plus
         ranges[2 * i + 1] = q_minus
 
@@ -189,7 +191,8 @@ def _still_open(rows: IndexArray, sums: FloatArray, lumped: FloatArray, dt: floa
 @numba.njit(cache=True, nogil=True)
 def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatArray,
            low: FloatArray, low_t: FloatArray, c_low: FloatArray, rate: FloatArray,
-           c_mean: FloatArray, cap: FloatArray, lumped: FloatArray, dt: float,
+           c_mean: FloatArray, c_old: FloatArray, cap: FloatArray, lumped: FloatArray,
+           dt: float,
            held: np.ndarray, passes: int, stop: float, floor: float,
            c: FloatArray, total: FloatArray, work: FloatArray) -> tuple[int, int]:
     """Up to ``passes`` passes of Zalesak's limiter over the raw fluxes towards the target,
@@ -204,7 +207,8 @@ def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatArray,
     n, nnz = lumped.size, cols.size
     f = work[:nnz]
     r, sums, ranges = work[nnz:nnz + 2 * n], work[nnz + 2 * n:nnz + 4 * n], work[nnz + 4 * n:]
-    _first_sweep(indptr, cols, m, k, low, low_t, c_low, rate, c_mean, cap, f, sums, ranges)
+    _first_sweep(indptr, cols, m, k, low, low_t, c_low, rate, c_mean, c_old, cap, f, sums,
+                 ranges)
     rows = np.arange(n).astype(indptr.dtype)
     used, swept = 1, n
     while True:
@@ -214,7 +218,7 @@ def _limit(indptr: IndexArray, cols: IndexArray, m: FloatArray, k: FloatArray,
             return used, swept
         rows = _still_open(rows, sums, lumped, dt, floor, r)
         swept += rows.size
-        _range_sweep(rows, indptr, cols, c, cap, ranges)
+        _range_sweep(rows, indptr, cols, c, c_old, cap, ranges)
         used += 1
 
 
@@ -326,17 +330,16 @@ def limited_target_fluxes(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArr
     where L's column sums are: at the sinks (decay and outflow, which the low-order step
     takes at c_L and the target at ĉ). Unlimited, the two corrections give c_H exactly.
     Zalesak's limiter keeps every corrected value within the range of its neighbours'
-    values; it is applied again to the part of each flux not yet used, against the
-    corrected field, up to ``passes`` times and until a pass moves no node by more than
-    ``PASS_TOLERANCE`` of the fields' scale (iterative flux correction). ``upper`` [kg/m³]
-    raises a node's upper bound to what its sources bring (injected or inflowing water's
-    concentration; +inf for a mass load), so a source node is not held down to its
-    neighbours' values. The remainder is
-    then added at each free node as far as the node stays at or above zero (where it
-    lowers it) or within its neighbours' range of the corrected field and of the step's
-    start (where it raises it).
-    Every pass stays bounded, so the result is bounded whatever the step. Nodes ``fixed``
-    take no correction; the fluxes they exchange still appear in ``fluxes`` (with the
+    values of the field so far and of cⁿ; it is applied again to the part of each flux not
+    yet used, against the corrected field, up to ``passes`` times and until a pass moves no
+    node by more than ``PASS_TOLERANCE`` of the fields' scale (iterative flux correction).
+    ``upper`` [kg/m³] raises a node's upper bound to what its sources bring (injected or
+    inflowing water's concentration; +inf for a mass load), so a source node is not held
+    down to its neighbours' values. The remainder is then added at each free node as far as
+    the node stays at or above zero (where it lowers it) or within its neighbours' range of
+    the corrected field and of the step's start (where it raises it). Every pass stays
+    bounded, so the result is bounded whatever the step. Nodes ``fixed`` take no
+    correction; the fluxes they exchange still appear in ``fluxes`` (with the
     opposite sign at the fixed node), so their sum is 0."""
     c_old = np.asarray(c_old, dtype=float)
     rate, c_mean = _rate_and_mean(np.asarray(c_high, dtype=float), c_old, dt, theta)
@@ -434,7 +437,8 @@ def _correct(ops: TargetFluxes, c_low: FloatArray, target: TargetStep, c_old: Fl
     scale = max(float(np.max(np.abs(c_low))), float(np.max(np.abs(c_old + dt * rate))))
     used, swept = _limit(indptr, cols, ops.mass.data, ops.galerkin.data,
                          ops.low_order.data, ops.low_order_transposed, c_low, rate, c_mean,
-                         cap, ops.lumped, float(dt), held, passes,
+                         np.ascontiguousarray(c_old, dtype=float), cap, ops.lumped,
+                         float(dt), held, passes,
                          PASS_TOLERANCE * scale, CLOSE_TOLERANCE * scale, c, total,
                          ops.scratch())
     change, a = _sink_change(ops, c, c_low, c_old, dt, theta)
@@ -497,6 +501,6 @@ def raw_flux_sums(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray,
     f, sums, ranges = np.empty(ops.mass.indices.size), np.empty(2 * n), np.empty(2 * n)
     _first_sweep(ops.mass.indptr, ops.mass.indices, ops.mass.data, ops.galerkin.data,
                  ops.low_order.data, ops.low_order_transposed, c_low, rate, c_mean,
-                 np.full(n, -np.inf), f, sums, ranges)
+                 np.asarray(c_old, dtype=float), np.full(n, -np.inf), f, sums, ranges)
     rows = np.repeat(np.arange(n), np.diff(ops.mass.indptr))
     return np.bincount(rows, weights=f, minlength=n)

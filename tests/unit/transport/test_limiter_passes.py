@@ -50,10 +50,12 @@ def _zalesak_reference(ops: TargetFluxes, c_low: np.ndarray, c_high: np.ndarray,
     for used in range(1, passes + 1):
         p_plus = np.bincount(rows, np.maximum(f, 0.0), n)
         p_minus = np.bincount(rows, np.minimum(f, 0.0), n)
-        diff = c[cols] - c[rows]
-        q_plus = np.maximum(np.maximum.reduceat(np.maximum(diff, 0.0), A.indptr[:-1]),
+        # the bounds: the neighbours' range of the field so far and of the step's start
+        up = np.maximum(c[cols], c_old[cols]) - c[rows]
+        down = np.minimum(c[cols], c_old[cols]) - c[rows]
+        q_plus = np.maximum(np.maximum.reduceat(np.maximum(up, 0.0), A.indptr[:-1]),
                             upper - c)
-        q_minus = np.minimum.reduceat(np.minimum(diff, 0.0), A.indptr[:-1])
+        q_minus = np.minimum.reduceat(np.minimum(down, 0.0), A.indptr[:-1])
         with np.errstate(divide="ignore", invalid="ignore"):
             r_plus = np.where(p_plus > 0, np.minimum(1, ops.lumped * q_plus / (dt * p_plus)), 1)
             r_minus = np.where(p_minus < 0, np.minimum(1, ops.lumped * q_minus / (dt * p_minus)),
