@@ -21,7 +21,8 @@ smooth peak little beside the mesh's own error). The mesh's error is reported, n
 tested. Measured when written (65,569 nodes, 256 steps at plume Courant ≤ 0.93, about 25 s):
 first times −2.3 % and −0.7 %; peaks 2.144 and 0.979 mg/L against exact 2.369 and 1.076
 (−9.5 %, −9.0 %; unlimited Galerkin −8.9 %, −8.2 %: the rest is the mesh's, σ_T ≈ 6 m and
-σ_V ≈ 2 m at the first receptor), 0.7 % and 0.9 % below Galerkin; peak times within 0.1 %.
+σ_V ≈ 2 m at the first receptor; 0.7 m layers: −6.8 %, −5.5 %; `corridor_peclet = 1`,
+446 k nodes: −3.6 %, −2.9 %), 0.7 % and 0.9 % below Galerkin; peak times within 0.1 %.
 Until 3 Dec 2026 the limiter took its bounds from the low-order step alone and clipped
 the moving peak: −16.9 % and −13.4 % against exact, 8.8 % and 5.7 % below Galerkin,
 peak times 3 % early (theory.md T16b). Bounds: no value below −1e-10 c0 (the solver
