@@ -46,6 +46,8 @@ Measured when written (514 steps, about 10 s a run on a shared machine): continu
 first times at c0/1000 and c0/4000: −0.30 % and −0.38 % at 100 m, −0.13 % and −0.15 % at
 200 m, the value at 900 d within 1e-5 of c0; the flux-inlet pulse: peak −0.33 % and −0.30 %,
 peak time −0.004 % and +0.012 %, first time at c0/4000 −0.12 % and −0.04 %.
+With the limiter's bounds taken from cⁿ as well (3 Dec 2026): pulse peak +0.08 % and
++0.01 % (−0.26 % and −0.22 % with the former bounds on the same day's code).
 
 Not tested here, because they fail: the same column at grid Péclet 10 with a step given by
 hand, at the run's Courant number 1.9 (10 d), puts the first time at c0/4000 9 % early, and
