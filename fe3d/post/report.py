@@ -103,8 +103,8 @@ def quality_warnings(s: RunSummary) -> list[str]:
                        f"{s.max_plume_courant[sp]:.2g} > 1; first arrival times at low "
                        "concentrations may come too early (numerical spreading; in an "
                        "outside check of a site-scale column at grid Péclet 10, first times "
-                       "above c0/4000 came 6 % early at a plume Courant number of 1.5, 9 % "
-                       "at 1.9 and 42 % at 4.7; at grid Péclet 2, 1 % at 1.5 and 11 % at "
+                       "above c0/4000 came 6 % early at a plume Courant number of 1.4, 9 % "
+                       "at 1.9 and 40 % at 4.7; at grid Péclet 2, 1 % at 1.5 and 9 % at "
                        "5.5: docs/verification.md): shorten "
                        "time.step (or leave it out: the steps then follow the plume) and "
                        "compare")

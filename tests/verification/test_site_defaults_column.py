@@ -51,8 +51,9 @@ With the limiter's bounds taken from cⁿ as well (3 Dec 2026): pulse peak +0.08
 
 Not tested here, because they fail: the same column at grid Péclet 10 with a step given by
 hand, at the run's Courant number 1.9 (10 d), puts the first time at c0/4000 9 % early, and
-at 4.7 (25 d) 42 % early (the run warns in both; 8–15 % and 60–70 % before the limiter's
-passes ran longer, 3 Dec 2026; docs/verification.md). That is the step the user chose, not
+at 4.7 (25 d) 40 % early (the run warns in both; 42 % at 4.7 before the limiter's bounds
+took in cⁿ, and 8–15 % and 60–70 % before its passes ran longer, both 3 Dec 2026;
+docs/verification.md). That is the step the user chose, not
 the default.
 """
 
