@@ -32,8 +32,9 @@ falls below −1e-10 c0 (the solver tolerance; issue 11 "Bounds").
 Measured when written (74,130 nodes, 291 steps, about 35 s on a shared machine): at 100,
 200 and 300 m, +1.05 %, +2.92 % and (below the limit) at 2 yr; +1.04 %, +0.92 %, +0.80 %
 at 4 yr; entered +1.86 %; first times −1.6 %, −0.75 %, −0.49 %. With the step 0.1 yr given
-(Courant 6.6) the first times are −47 %, −17 %, −8.8 % (−72 %, −40 %, −26 % before the
-limiter's passes ran longer, 3 Dec 2026) and the run warns; not tested here.
+(Courant 6.6) the first times are −37 %, −13 %, −7.6 % (−47 %, −17 %, −8.8 % before the
+limiter's bounds took in cⁿ, and −72 %, −40 %, −26 % before its passes ran longer, both
+3 Dec 2026) and the run warns; not tested here.
 """
 
 from __future__ import annotations
