@@ -463,6 +463,7 @@ class SeriesWriter:
             monotone=case.solver.monotone, mass_balance_error=worst, flow_inflow=flow.total_inflow,
             flow_discrepancy=flow.discrepancy, max_grid_peclet=d.max_grid_peclet,
             max_courant=d.max_courant, max_plume_courant=d.max_plume_courant,
+            max_plume_courant_at=d.max_plume_courant_at,
             min_concentration={k: v[0] for k, v in d.min_concentration.items()},
             min_concentration_at={k: v[1] for k, v in d.min_concentration.items()},
             source_max=source_max, plume=plume,

@@ -82,6 +82,7 @@ class RunSummary:
     method: str = ""  # the time scheme and the spatial scheme, in words
     monotone: bool = False  # solver.monotone was on (T16)
     max_plume_courant: dict[str, float] = field(default_factory=dict)  # plume cells, T14b
+    max_plume_courant_at: dict[str, tuple[float, ...] | None] = field(default_factory=dict)
     extremes: dict[str, SpeciesExtremes] = field(default_factory=dict)
     boundary_contacts: list[BoundaryContact] = field(default_factory=list)
     solver_tolerance: float = 0.0  # relative tolerance of the linear solver [-]
@@ -99,8 +100,10 @@ def quality_warnings(s: RunSummary) -> list[str]:
     out: list[str] = []
     for sp in s.mass_balance_error:
         if s.max_plume_courant.get(sp, 0.0) > 1.0:
+            at = s.max_plume_courant_at.get(sp)
+            where = "" if at is None else " (at (" + ", ".join(f"{x:.0f}" for x in at) + ") m)"
             out.append(f"{sp}: largest Courant number in the plume "
-                       f"{s.max_plume_courant[sp]:.2g} > 1; first arrival times at low "
+                       f"{s.max_plume_courant[sp]:.2g} > 1{where}; first arrival times at low "
                        "concentrations may come too early (numerical spreading; in an "
                        "outside check of a site-scale column at grid Péclet 10, first times "
                        "above c0/4000 came 6 % early at a plume Courant number of 1.4, 9 % "

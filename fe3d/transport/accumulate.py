@@ -45,6 +45,7 @@ class TransportDiagnostics:
     max_concentration: dict[str, tuple[float, tuple[float, ...] | None]] = field(
         default_factory=dict)
     max_plume_courant: dict[str, float] = field(default_factory=dict)
+    max_plume_courant_at: dict[str, tuple[float, ...] | None] = field(default_factory=dict)
 
 
 def grid_peclet(s: SpeciesModel, seepage_velocity: FloatArray, porosity: FloatArray) -> float:
@@ -89,6 +90,7 @@ class StatisticsState:
     newton: int
     sweeps: int
     solver: str
+    plume_courant_at: dict[str, tuple[float, ...] | None] = field(default_factory=dict)
 
 
 class BudgetTotals:
@@ -141,6 +143,7 @@ class RunStatistics:
         self.peclet = peclet
         self.courant = dict.fromkeys(peclet, 0.0)
         self.plume_courant = dict.fromkeys(peclet, 0.0)
+        self.plume_courant_at: dict[str, tuple[float, ...] | None] = dict.fromkeys(peclet)
         self.lowest: dict[str, Extreme] = dict.fromkeys(peclet, (0.0, None))
         self.highest: dict[str, Extreme] = dict.fromkeys(peclet, (-np.inf, None))
         self.n_steps = 0
@@ -155,22 +158,24 @@ class RunStatistics:
             plume_courant=dict(self.plume_courant), lowest=dict(self.lowest),
             highest=dict(self.highest), n_steps=self.n_steps,
             dt_min=self.dt_min, dt_max=self.dt_max, newton=self.newton, sweeps=self.sweeps,
-            solver=self.solver)
+            solver=self.solver, plume_courant_at=dict(self.plume_courant_at))
 
     def resume_from(self, saved: StatisticsState) -> None:
         """Continue from diagnostics saved by :meth:`state`."""
         self.peclet, self.courant = dict(saved.peclet), dict(saved.courant)
         self.plume_courant = dict(saved.plume_courant)
+        self.plume_courant_at = {**dict.fromkeys(self.plume_courant), **saved.plume_courant_at}
         self.lowest, self.highest = dict(saved.lowest), dict(saved.highest)
         self.n_steps = saved.n_steps
         self.dt_min, self.dt_max = saved.dt_min, saved.dt_max
         self.newton, self.sweeps, self.solver = saved.newton, saved.sweeps, saved.solver
 
     def add(self, result: StepResult, dt: float, species: tuple[SpeciesModel, ...],
-            points: FloatArray, plume_rates: dict[str, float]) -> list[str]:
+            points: FloatArray, plume_rates: dict[str, float],
+            plume_nodes: dict[str, int]) -> list[str]:
         """Fold one accepted step in; ``plume_rates`` [1/s] are the largest |a|/h over each
-        species' plume at the step's start. Returns a log line per species (its lowest
-        value)."""
+        species' plume at the step's start, at the nodes ``plume_nodes``. Returns a log line
+        per species (its lowest value)."""
         self.n_steps += 1
         self.solver = result.solver_kind
         self.dt_min, self.dt_max = min(self.dt_min, dt), max(self.dt_max, dt)
@@ -190,8 +195,10 @@ class RunStatistics:
             lows.append(f"{s.name} min {new[j]:.3g} kg/m³ at ({where}) m")
             self.courant[s.name] = max(self.courant[s.name],
                                        dt * s.coefficients.courant_rate)
-            self.plume_courant[s.name] = max(self.plume_courant[s.name],
-                                             dt * plume_rates[s.name])
+            if dt * plume_rates[s.name] > self.plume_courant[s.name]:
+                self.plume_courant[s.name] = dt * plume_rates[s.name]
+                self.plume_courant_at[s.name] = tuple(
+                    float(x) for x in points[:, plume_nodes[s.name]])
         return lows
 
     def note_plume_peclet(self, largest: dict[str, float]) -> None:
@@ -211,4 +218,5 @@ class RunStatistics:
             largest_step=float(self.dt_max), max_newton_iterations=self.newton,
             max_coupling_sweeps=self.sweeps,
             max_plume_courant=dict(self.plume_courant),
+            max_plume_courant_at=dict(self.plume_courant_at),
             max_concentration={k: v for k, v in self.highest.items() if v[1] is not None})

@@ -200,6 +200,10 @@ def _floats(saved: dict[str, Any]) -> dict[str, float]:
     return {k: float(v) for k, v in saved.items()}
 
 
+def _points(saved: dict[str, Any]) -> dict[str, tuple[float, ...] | None]:
+    return {k: None if v is None else tuple(float(x) for x in v) for k, v in saved.items()}
+
+
 def write_checkpoint(folder: Path, ckpt: Checkpoint, *, case: str) -> Path:
     """Save ``ckpt`` (and ``case``, the fingerprint of the case it belongs to) as
     ``folder/state.npz``, replacing the previous one atomically."""
@@ -261,7 +265,8 @@ def read_checkpoint(folder: Path) -> tuple[Checkpoint, str] | None:
         peclet=_floats(s["peclet"]), courant=_floats(s["courant"]),
         plume_courant=_floats(s["plume_courant"]), lowest=_extremes(s["lowest"]),
         highest=_extremes(s["highest"]), n_steps=s["n_steps"], dt_min=float(s["dt_min"]),
-        dt_max=float(s["dt_max"]), newton=s["newton"], sweeps=s["sweeps"], solver=s["solver"])
+        dt_max=float(s["dt_max"]), newton=s["newton"], sweeps=s["sweeps"], solver=s["solver"],
+        plume_courant_at=_points(s.get("plume_courant_at", {})))  # none in older checkpoints
     accepted = tuple((float(tj), {n: a[f"accepted_{j}_{k}"] for k, n in enumerate(names)})
                      for j, tj in enumerate(h["accepted_times"]))
     ckpt = Checkpoint(state=state, planner=planner, totals=totals, statistics=stats,
@@ -317,6 +322,7 @@ def read_outputs(folder: Path, ckpt: Checkpoint) -> list[Snapshot]:
                                                "max_plume_courant")},
             "min_concentration": _extremes(d["min_concentration"]),
             "max_concentration": _extremes(d["max_concentration"]),
+            "max_plume_courant_at": _points(d.get("max_plume_courant_at", {})),
             "smallest_step": float(d["smallest_step"]),
             "largest_step": float(d["largest_step"])})
         out.append(Snapshot(

@@ -24,9 +24,10 @@ is already inside)."""
 
 
 class PlumeCourant:
-    """Courant rate [1/s] of the plume of every species, from the current fields, and the
-    largest grid Péclet number |v| h / D_L of the cells the plume has reached so far
-    (``largest_peclet``, updated by :meth:`rates`)."""
+    """Courant rate [1/s] of the plume of every species, from the current fields, the node
+    where it is largest (``largest_node``, −1 without a plume) and the largest grid Péclet
+    number |v| h / D_L of the cells the plume has reached so far (``largest_peclet``); both
+    updated by :meth:`rates`."""
 
     def __init__(self, site: SiteMesh, species: tuple[SpeciesModel, ...],
                  sources: SourceGeometry) -> None:
@@ -42,6 +43,7 @@ class PlumeCourant:
                 speed * c.element_length, d_l, out=np.where(speed > 0, np.inf, 0.0),
                 where=d_l > 0))
         self.largest_peclet = {s.name: 0.0 for s in species}
+        self.largest_node = {s.name: -1 for s in species}
         self.limits = {s.name: s.spec.limit for s in species}
         self.sources = sources
         self._source_nodes = {src.name: self._nodes_of(src.name, site.n_nodes)
@@ -69,8 +71,10 @@ class PlumeCourant:
                                                                or t < src.stop):
                     inside |= self._source_nodes[src.name]
             inside |= self.sources.injection[name] > 0.0
-            rate = self.node_rate[name][inside]
+            nodes = np.flatnonzero(inside)
+            rate = self.node_rate[name][nodes]
             out[name] = float(rate.max()) if rate.size else 0.0
+            self.largest_node[name] = int(nodes[np.argmax(rate)]) if rate.size else -1
             if rate.size:
                 self.largest_peclet[name] = max(self.largest_peclet[name],
                                                 float(self.node_peclet[name][inside].max()))

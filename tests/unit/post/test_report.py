@@ -51,6 +51,15 @@ def test_each_threshold_warns(field, value, word):
     assert word in w[0]
 
 
+def test_the_courant_warning_says_where():
+    """The plume's Courant warning names the node where the number was largest, in metres
+    to the nearest metre (so a user sees, e.g., that it sits at a pumped screen)."""
+    w = quality_warnings(_summary(max_plume_courant={"x": 65.0},
+                                  max_plume_courant_at={"x": (352.06, 98.4, -2.38)}))
+    assert "65 > 1 (at (352, 98, -2) m)" in w[0]
+    assert "(at" not in quality_warnings(_summary(max_plume_courant={"x": 65.0}))[0]
+
+
 @pytest.mark.parametrize(("peclet", "warns"), [(2.0, False), (2.04, False), (2.06, True)])
 def test_grid_peclet_is_compared_as_shown(peclet, warns):
     """The advice 'grid Péclet at most 2' (common practice, no source) is compared with the

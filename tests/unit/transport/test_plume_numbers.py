@@ -56,3 +56,19 @@ def test_plume_peclet_counts_the_cells_the_plume_reached() -> None:
     assert numbers.largest_peclet["tracer"] == pytest.approx(everywhere, rel=1e-12)
     numbers.rates({"tracer": np.zeros(site.n_nodes)}, t=86400.0)  # a running maximum
     assert numbers.largest_peclet["tracer"] == pytest.approx(everywhere, rel=1e-12)
+
+
+def test_plume_courant_names_the_node_where_it_is_largest() -> None:
+    """The plume's largest Courant rate comes with its node (reported in summary.json and
+    the report's warning): the node of the largest per-node rate among the plume's nodes,
+    −1 without a plume. Exact: an argmax over the same numbers."""
+    site, _, ctx = _two_sands()
+    numbers = PlumeCourant(site, ctx.species, ctx.sources)
+    upper = site.points[2] > -2.9
+    rates = numbers.rates({"tracer": np.where(upper, 1.0, 0.0)}, t=86400.0)
+    node = numbers.largest_node["tracer"]
+    assert upper[node]
+    assert numbers.node_rate["tracer"][node] == rates["tracer"]
+    assert rates["tracer"] == float(numbers.node_rate["tracer"][upper].max())
+    numbers.rates({"tracer": np.zeros(site.n_nodes)}, t=86400.0)
+    assert numbers.largest_node["tracer"] == -1
