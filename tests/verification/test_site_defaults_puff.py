@@ -15,24 +15,24 @@ X = ½[erf((x − x1 − ut)/(2√(D_x t))) − erf((x − x2 − ut)/(2√(D_x 
 is below 0.1 %).
 
 Tolerances. First time above the limit: 10 % of exact (issue 11's criterion at site
-resolution). Peak: the bounded default within 3 % of the unlimited Galerkin Crank–Nicolson
-step on the same mesh and steps (common practice, no source: a limiter should cost a
-smooth peak little beside the mesh's own error). The mesh's error is reported, not
-tested. Measured when written (65,569 nodes, 256 steps at plume Courant ≤ 0.93, about 25 s):
-first times −2.3 % and −0.7 %; peaks 2.144 and 0.979 mg/L against exact 2.369 and 1.076
-(−9.5 %, −9.0 %; unlimited Galerkin −8.9 %, −8.2 %: the rest is the mesh's, σ_T ≈ 6 m and
-σ_V ≈ 2 m at the first receptor; 0.7 m layers: −6.8 %, −5.5 %; `corridor_peclet = 1`,
-446 k nodes: −3.6 %, −2.9 %), 0.7 % and 0.9 % below Galerkin; peak times within 0.1 %.
-Until 3 Dec 2026 the limiter took its bounds from the low-order step alone and clipped
-the moving peak: −16.9 % and −13.4 % against exact, 8.8 % and 5.7 % below Galerkin,
-peak times 3 % early (theory.md T16b). Bounds: no value below −1e-10 c0 (the solver
-tolerance; issue 11).
+resolution); peak time 5 % of exact (issue 11's audit threshold, as in
+``test_site_defaults_column.py``). Peak: the bounded default within 3 % of the unlimited
+Galerkin Crank–Nicolson step on the same mesh and steps (common practice, no source: a
+limiter should cost a smooth peak little beside the mesh's own error). The mesh's error is
+reported, not tested. Measured when written (65,569 nodes, 256 steps at plume Courant ≤
+0.93, about 25 s): first times −2.3 % and −0.7 %; peaks 2.144 and 0.979 mg/L against exact
+2.369 and 1.076 (−9.5 %, −9.0 %; unlimited Galerkin −8.9 %, −8.2 %: the rest is the mesh's,
+σ_T ≈ 6 m and σ_V ≈ 2 m at the first receptor; 0.7 m layers: −6.8 %, −5.5 %;
+`corridor_peclet = 1`, 446 k nodes: −3.6 %, −2.9 %), 0.7 % and 0.9 % below Galerkin; peak
+times within 0.1 %. Until 3 Dec 2026 the limiter took its bounds from the low-order step
+alone and clipped the moving peak: −16.9 % and −13.4 % against exact, 8.8 % and 5.7 % below
+Galerkin, peak times 3 % early (theory.md T16b). Bounds: no value below −1e-10 c0 (the
+solver tolerance; issue 11).
 """
 
 from __future__ import annotations
 
 import json
-import math
 
 import numpy as np
 import pytest
@@ -119,4 +119,5 @@ def test_release_at_site_resolution_with_the_defaults(tmp_path) -> None:
         first = float(t[np.argmax(c > LIMIT)])
         assert o["first_above_limit"] / DAY == pytest.approx(first, rel=0.10), o["name"]
         assert o["peak"] == pytest.approx(peak_galerkin[o["name"]], rel=0.03), o["name"]
-        assert math.isfinite(o["peak_time"])
+        peak_time = float(t[np.argmax(c)])
+        assert o["peak_time"] / DAY == pytest.approx(peak_time, rel=0.05), o["name"]
