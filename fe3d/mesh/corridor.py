@@ -17,9 +17,10 @@ Along a pathline of arc length s from its source, in the unit crossed at s (disp
 * length: to where the pathline leaves the model, or to where the fastest species the source
   makes is at the end time (the water's travel × its retardation) plus m σ_L of longitudinal
   spread ahead of it, σ_L² = ∫ 2 α_L ds (M3);
-* cell-layer thickness of each unit crossed: σ_V(L/2) / :data:`CELLS_PER_SPREAD` × Pe*/2
-  with σ_V² = ∫ 2 α_TV ds, taken at half the corridor length L (M4; at the default target
-  2 layers per σ_V, more with a finer target, so refinement studies refine layers too).
+* cell-layer thickness of each unit crossed: σ_V(s_ref) / :data:`CELLS_PER_SPREAD` × Pe*/2
+  with σ_V² = ∫ 2 α_TV ds, taken at half the corridor length L or at the nearest receptor
+  inside the corridor (M4; at the default target 2 layers per σ_V, more with a finer
+  target, so refinement studies refine layers too).
   fe3d extrudes one cell-layer thickness per unit, so this thickness applies to the whole
   unit, not only inside the corridor (the node estimate counts it so).
 
@@ -220,10 +221,10 @@ def _stop_length(path: PathSample, s: FloatArray, var_l: FloatArray, end_time: f
     return min(float(s[-1]), s_end + ahead)
 
 
-def _pieces(path: PathSample, *, peclet: float, end_time: float,
+def _pieces(path: PathSample, *, peclet: float, end_time: float, receptors: FloatArray,
             ) -> tuple[list[CorridorPiece], float, float, FloatArray]:
-    """Pieces of one pathline, its corridor length [m], σ_V at half of it [m], and the units
-    it crosses within the corridor."""
+    """Pieces of one pathline, its corridor length [m], σ_V where the layers are sized [m]
+    (:func:`_layer_reference`), and the units it crosses within the corridor."""
     s, var_l, var_t, var_v = _along(path)
     stop = _stop_length(path, s, var_l, end_time)
     breaks = sorted({0.0, *(stop * 0.5**j for j in range(_BREAKS))})
@@ -239,8 +240,27 @@ def _pieces(path: PathSample, *, peclet: float, end_time: float,
         radius = path.half_width + SPREAD * math.sqrt(float(np.interp(b, s, var_t)))
         out.append(CorridorPiece(points=tuple(map(tuple, xy.tolist())),
                                  radius=max(radius, 2.0 * size), cell_size=size))
-    sigma_v = math.sqrt(float(np.interp(0.5 * stop, s, var_v)))
+    at = _layer_reference(path, s, var_t, stop, receptors, first_cell=out[0].cell_size)
+    sigma_v = math.sqrt(float(np.interp(at, s, var_v)))
     return out, stop, sigma_v, np.unique(path.unit[s <= stop])
+
+
+def _layer_reference(path: PathSample, s: FloatArray, var_t: FloatArray, stop: float,
+                     receptors: FloatArray, *, first_cell: float) -> float:
+    """Arc length [m] where the cell layers are sized (M4): half the corridor length, or
+    nearer where a receptor (plan points ``(2, k)`` [m]) lies inside the corridor, at the
+    pathline point closest to it; receptors within one cell of the source are left out
+    (the source's own extent, not σ_V, sets the plume's thickness there)."""
+    at = 0.5 * stop
+    keep = s <= stop
+    xy, arc = path.points[:2, keep], s[keep]
+    for rx, ry in receptors.T:
+        d = np.hypot(xy[0] - rx, xy[1] - ry)
+        j = int(np.argmin(d))
+        reach = path.half_width + SPREAD * math.sqrt(float(var_t[keep][j]))
+        if d[j] <= max(reach, first_cell) and arc[j] >= first_cell:
+            at = min(at, float(arc[j]))
+    return at
 
 
 def _inside(px: FloatArray, py: FloatArray, outline: FloatArray) -> np.ndarray:
@@ -363,6 +383,7 @@ def _levels(units: Sequence[UnitColumn], thickness: dict[str, float]) -> int:
 def plan_corridor(
     paths: Sequence[PathSample], *, peclet: float, end_time: float, outline: FloatArray,
     background_size: float, plan_nodes: int, units: Sequence[UnitColumn], max_nodes: int,
+    receptors: FloatArray | None = None,
 ) -> Corridor | None:
     """The corridor of ``paths`` (docs/theory.md M1–M4), coarsened to fit ``max_nodes``.
 
@@ -386,6 +407,10 @@ def plan_corridor(
     max_nodes
         Node budget: above it, the corridor's plan cells and layers are coarsened by one
         common factor until the estimate fits (a warning line says so).
+    receptors
+        Plan positions [m], shape ``(2, k)``, of the observation points and extraction
+        wells: a unit's layers resolve σ_V at the nearest of them inside the corridor, not
+        only at half its length (M4).
 
     Returns
     -------
@@ -394,10 +419,12 @@ def plan_corridor(
     """
     pieces: list[CorridorPiece] = []
     length, thick = 0.0, {}
+    at = np.zeros((2, 0)) if receptors is None else np.asarray(receptors, dtype=float)
     for path in paths:
         if path.points.shape[1] < 2:
             continue
-        got, stop, sigma_v, crossed = _pieces(path, peclet=peclet, end_time=end_time)
+        got, stop, sigma_v, crossed = _pieces(path, peclet=peclet, end_time=end_time,
+                                              receptors=at)
         # α_L = 0 (diffusion only) gives no size: the grid Péclet number is then not h/α_L
         pieces += [p for p in got if 0.0 < p.cell_size < background_size]
         length = max(length, stop)
@@ -577,7 +604,10 @@ def site_corridor(case: Case, site: SiteMesh,
                         cell_thickness=ly.cell_thickness or mc.layer_cell_thickness,
                         fixed=ly.sublayers is not None) for k, ly in enumerate(case.layers)]
     verts, _ = case.outline()
+    receptors = np.array([[p.x, p.y] for p in case.observation_points]
+                         + [[w.x, w.y] for w in case.wells if w.kind == "extraction"],
+                         dtype=float).reshape(-1, 2).T
     return plan_corridor(samples, peclet=mc.corridor_peclet, end_time=case.time.end,
                          outline=np.array(verts, dtype=float).T,
                          background_size=mc.cell_size, plan_nodes=int(report.plan.xy.shape[1]),
-                         units=units, max_nodes=mc.max_nodes)
+                         units=units, max_nodes=mc.max_nodes, receptors=receptors)

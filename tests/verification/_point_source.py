@@ -31,6 +31,20 @@ stretched radius r' = √D_x ρ = √(x² + y² D_x/D_y + z² D_x/D_z)::
 
     c = Ṁ / (4π θ r' √(D_y D_z)) · exp( βx − r' √(β² + λ/D_x) ),   β = v/(2D_x).
 
+Growing plume. With storage θR (retardation R, decay of the dissolved phase only) the
+transient equation divided by θR is the same problem with u = v/R, D_i/R, λ/R and source
+Ṁ/(θR); its solution from c = 0 at t = 0 is the time integral of the instantaneous point
+source (Carslaw & Jaeger 1959, *Conduction of heat in solids*, §10.4, continuous point
+source, with a moving medium; Wexler 1992 as above; from memory)::
+
+    c = Ṁ / (8π θ r' √(D_y D_z)) · exp(βx) · [ exp(−r'w) erfc((r' − U t/R)/(2√(D_x t/R)))
+                                             + exp(r'w) erfc((r' + U t/R)/(2√(D_x t/R))) ],
+
+w = √(β² + λ/D_x), U = 2 D_x w = √(v² + 4λD_x); at t → ∞ the bracket tends to 2 exp(−r'w)
+and c to the steady formula. :func:`point_source_growing` evaluates it, and
+``test_site_defaults_point.py`` checks it against a numerical time integral of the
+instantaneous source and against the steady formula before trusting it.
+
 Image method. A plane x_i = const with no normal flux and the flow parallel to it is a
 mirror: the solution for a source near it is the free-space solution of the source plus its
 reflection. Between two parallel no-flux planes the images repeat with period twice the
@@ -40,10 +54,12 @@ gap. :func:`mirrored` sums them for the no-flux faces of a box.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
+from typing import Any
 
 import numpy as np
 
-__all__ = ["mirrored", "point_source"]
+__all__ = ["mirrored", "point_source", "point_source_growing"]
 
 
 def point_source(x: np.ndarray, y: np.ndarray, z: np.ndarray, *, mass_rate: float,
@@ -66,7 +82,8 @@ def point_source(x: np.ndarray, y: np.ndarray, z: np.ndarray, *, mass_rate: floa
 
 def mirrored(targets: np.ndarray, sources: np.ndarray, weights: np.ndarray, *,
              y_walls: tuple[float, float], z_walls: tuple[float, float], n_images: int,
-             **params: float | tuple[float, float, float]) -> np.ndarray:
+             kernel: Callable[..., np.ndarray] = point_source,
+             **params: Any) -> np.ndarray:
     """Sum of point sources and their images in two pairs of no-flux planes.
 
     Parameters
@@ -82,8 +99,10 @@ def mirrored(targets: np.ndarray, sources: np.ndarray, weights: np.ndarray, *,
     n_images
         Periods kept on each side: images at ±(y_s − a) + a + 2n(b − a) for |n| ≤ n_images,
         and the same in z, so (2 (2 n_images + 1))² copies of every source.
+    kernel
+        :func:`point_source` (steady) or :func:`point_source_growing` (give ``time``).
     params
-        Keyword arguments of :func:`point_source` except ``mass_rate``.
+        Keyword arguments of ``kernel`` except ``mass_rate``.
     """
     out = np.zeros(targets.shape[1])
     (ya, yb), (za, zb) = y_walls, z_walls
@@ -93,6 +112,29 @@ def mirrored(targets: np.ndarray, sources: np.ndarray, weights: np.ndarray, *,
         z_img = [za + s * (zs - za) + 2 * n * (zb - za) for n in shifts for s in (1, -1)]
         for yi in y_img:
             for zi in z_img:
-                out += point_source(targets[0] - xs, targets[1] - yi, targets[2] - zi,
-                                    mass_rate=rate, **params)  # type: ignore[arg-type]
+                out += kernel(targets[0] - xs, targets[1] - yi, targets[2] - zi,
+                              mass_rate=rate, **params)
     return out
+
+
+def point_source_growing(x: np.ndarray, y: np.ndarray, z: np.ndarray, *, time: np.ndarray,
+                         mass_rate: float, porosity: float, velocity: float,
+                         dispersion: tuple[float, float, float], decay: float,
+                         retardation: float = 1.0) -> np.ndarray:
+    """Concentration [kg/m³] at ``time`` [s] (broadcast with the positions) of a point
+    source of ``mass_rate`` [kg/s] at the origin switched on at t = 0 in clean water; the
+    other arguments as :func:`point_source`, ``retardation`` R [-]. The second term is
+    formed with the scaled complementary error function, so it never overflows."""
+    from scipy.special import erfc, erfcx
+
+    dx, dy, dz = dispersion
+    beta = velocity / (2.0 * dx)
+    w = math.sqrt(beta**2 + decay / dx)
+    u = 2.0 * dx * w / retardation  # U/R
+    r = np.sqrt(x**2 + y**2 * (dx / dy) + z**2 * (dx / dz))
+    spread = 2.0 * np.sqrt(dx * time / retardation)
+    b1, b2 = (r - u * time) / spread, (r + u * time) / spread
+    with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+        bracket = (np.exp(beta * x - r * w) * erfc(b1)
+                   + erfcx(b2) * np.exp(beta * x + r * w - b2**2))
+        return mass_rate / (8.0 * math.pi * porosity * r * math.sqrt(dy * dz)) * bracket

@@ -26,7 +26,10 @@ reported, not tested. Measured when written (65,569 nodes, 256 steps at plume Co
 `corridor_peclet = 1`, 446 k nodes: −3.6 %, −2.9 %), 0.7 % and 0.9 % below Galerkin; peak
 times within 0.1 %. Until 3 Dec 2026 the limiter took its bounds from the low-order step
 alone and clipped the moving peak: −16.9 % and −13.4 % against exact, 8.8 % and 5.7 % below
-Galerkin, peak times 3 % early (theory.md T16b). Bounds: no value below −1e-10 c0 (the
+Galerkin, peak times 3 % early (theory.md T16b). With the corridor's layers sized by σ_V at the
+nearest receptor (theory.md M4; 75,922 nodes, 3 Dec 2026): first times −1.7 % and −0.6 %,
+peaks −10.0 % and −8.7 % against exact (Galerkin −9.3 %, −7.9 %), 0.8 % and 0.9 % below
+Galerkin. Bounds: no value below −1e-10 c0 (the
 solver tolerance; issue 11).
 """
 

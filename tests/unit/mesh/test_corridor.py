@@ -97,6 +97,20 @@ def test_corridor_layers_resolve_the_vertical_spread() -> None:
     assert c.layer_thickness["sand"] == pytest.approx(sigma_v / CELLS_PER_SPREAD, rel=ROUNDING)
 
 
+def test_corridor_layers_resolve_the_spread_at_the_nearest_receptor_inside_it() -> None:
+    """M4: a receptor inside the corridor 50 m down the path sizes the layers by σ_V there;
+    one off to the side (outside the corridor's half-width) or within a cell of the source
+    does not."""
+    inside = np.array([[50.0], [52.0]])  # 2 m off the path: inside the corridor
+    c = corridor([straight_path(alpha_tv=0.01)], receptors=inside)
+    sigma_v = math.sqrt(2 * 0.01 * 50.0)
+    assert c.layer_thickness["sand"] == pytest.approx(sigma_v / CELLS_PER_SPREAD, rel=ROUNDING)
+    outside = np.array([[50.0, 1.0], [95.0, 50.0]])  # beyond the half-width; at the source
+    c = corridor([straight_path(alpha_tv=0.01)], receptors=outside)
+    sigma_v = math.sqrt(2 * 0.01 * 200.0)  # at half the corridor length, as without them
+    assert c.layer_thickness["sand"] == pytest.approx(sigma_v / CELLS_PER_SPREAD, rel=ROUNDING)
+
+
 def test_corridor_keeps_finer_case_layers_and_fixed_sublayers() -> None:
     fine = [UnitColumn("sand", thickness=10.0, cell_thickness=0.5)]
     assert corridor([straight_path()], units=fine).layer_thickness == {}
