@@ -51,8 +51,8 @@ if TYPE_CHECKING:
     from fe3d.mesh.site_mesh import SiteMesh
 
 __all__ = ["CELLS_PER_SPREAD", "FINE_SIZE_MARGIN", "SPREAD", "Corridor", "CorridorPiece",
-           "PathSample", "UnitColumn", "corridor_gap", "corridor_zones", "plan_corridor",
-           "project_to_edges", "site_corridor"]
+           "PathSample", "ReceptorSpread", "UnitColumn", "corridor_gap", "corridor_zones",
+           "plan_corridor", "project_to_edges", "site_corridor"]
 
 logger = logging.getLogger(__name__)
 
@@ -125,6 +125,33 @@ class CorridorPiece:
 
 
 @dataclass(frozen=True)
+class ReceptorSpread:
+    """The plume's spread where a receptor (observation point or extraction well) lies in
+    the corridor: its ``name``, the arc length ``along`` [m] from the source to the nearest
+    pathline point, the transverse and vertical standard deviations ``sigma_t``,
+    ``sigma_v`` [m] there (√(∫ 2α ds), M2 and M4) and the corridor's plan ``cell_size`` [m]
+    there."""
+
+    name: str
+    along: float
+    sigma_t: float
+    sigma_v: float
+    cell_size: float
+
+    def line(self) -> str:
+        """One report line with units."""
+        return (f"plume corridor at {self.name}: {self.along:.0f} m down the path, spread "
+                f"σ_T {self.sigma_t:.3g} m across and σ_V {self.sigma_v:.3g} m vertically, "
+                f"corridor cells {self.cell_size:.3g} m")
+
+    @property
+    def thin(self) -> bool:
+        """Fewer than one corridor cell per σ_T: the plume reads low there (verification
+        N30: 16 % low at 0.7 cells per σ_T)."""
+        return self.sigma_t < self.cell_size
+
+
+@dataclass(frozen=True)
 class Corridor:
     """Where the mesh is refined along the plume's path, and what it costs.
 
@@ -148,6 +175,8 @@ class Corridor:
         Estimated node count of the mesh with the corridor.
     note
         One line when the node budget coarsened the corridor ('' otherwise).
+    receptors
+        The plume's spread at each receptor inside the corridor (M4).
     """
 
     pieces: tuple[CorridorPiece, ...]
@@ -159,6 +188,7 @@ class Corridor:
     cell_size_range: tuple[float, float]
     expected_nodes: int
     note: str = ""
+    receptors: tuple[ReceptorSpread, ...] = ()
 
     def as_dict(self) -> dict[str, Any]:
         """JSON-ready form (stored in ``mesh.json`` and hashed into the mesh-cache key)."""
@@ -167,6 +197,7 @@ class Corridor:
                           "cell_size": pc.cell_size} for pc in self.pieces]
         out["width_range"] = list(self.width_range)
         out["cell_size_range"] = list(self.cell_size_range)
+        out["receptors"] = [asdict(r) for r in self.receptors]
         return out
 
     @classmethod
@@ -179,10 +210,13 @@ class Corridor:
                       "layer_thickness": {k: float(v) for k, v in
                                           data["layer_thickness"].items()},
                       "width_range": tuple(data["width_range"]),
-                      "cell_size_range": tuple(data["cell_size_range"])})
+                      "cell_size_range": tuple(data["cell_size_range"]),
+                      "receptors": tuple(ReceptorSpread(**r)
+                                         for r in data.get("receptors", ()))})
 
     def lines(self) -> list[str]:
-        """Two report lines with units (for ``fe3d mesh``)."""
+        """Report lines with units (for ``fe3d mesh``): the corridor, its layers, and the
+        plume's spread at each receptor inside it."""
         lo, hi = self.cell_size_range
         sizes = f"{lo:.3g} m" if math.isclose(lo, hi, rel_tol=1e-3) else f"{lo:.3g}–{hi:.3g} m"
         layers = ", ".join(f"{k} {v:.3g} m" for k, v in self.layer_thickness.items())
@@ -191,7 +225,8 @@ class Corridor:
                 f"{self.peclet_reached:.3g}, target {self.peclet_target:.3g})",
                 "plume corridor: cell layers "
                 + (layers or "as the case asks (already fine enough)")
-                + f"; about {self.expected_nodes:,} nodes expected"]
+                + f"; about {self.expected_nodes:,} nodes expected",
+                *(r.line() for r in self.receptors)]
 
 
 def _sig(x: float, digits: int = 4) -> float:
@@ -221,10 +256,13 @@ def _stop_length(path: PathSample, s: FloatArray, var_l: FloatArray, end_time: f
     return min(float(s[-1]), s_end + ahead)
 
 
-def _pieces(path: PathSample, *, peclet: float, end_time: float, receptors: FloatArray,
-            ) -> tuple[list[CorridorPiece], float, float, FloatArray]:
-    """Pieces of one pathline, its corridor length [m], σ_V where the layers are sized [m]
-    (:func:`_layer_reference`), and the units it crosses within the corridor."""
+def _pieces(path: PathSample, *, peclet: float, end_time: float,
+            receptors: Sequence[tuple[str, float, float]],
+            ) -> tuple[list[CorridorPiece], float, float, FloatArray,
+                       list[tuple[float, ReceptorSpread]]]:
+    """Pieces of one pathline, its corridor length [m], σ_V where the layers are sized [m],
+    the units it crosses within the corridor, and the receptors inside it with their plan
+    distance [m] from the pathline (:func:`_receptor_spreads`)."""
     s, var_l, var_t, var_v = _along(path)
     stop = _stop_length(path, s, var_l, end_time)
     breaks = sorted({0.0, *(stop * 0.5**j for j in range(_BREAKS))})
@@ -240,27 +278,34 @@ def _pieces(path: PathSample, *, peclet: float, end_time: float, receptors: Floa
         radius = path.half_width + SPREAD * math.sqrt(float(np.interp(b, s, var_t)))
         out.append(CorridorPiece(points=tuple(map(tuple, xy.tolist())),
                                  radius=max(radius, 2.0 * size), cell_size=size))
-    at = _layer_reference(path, s, var_t, stop, receptors, first_cell=out[0].cell_size)
+    spreads = _receptor_spreads(path, (s, var_t, var_v), stop, receptors, out)
+    # M4: layers sized at half the corridor, or at a nearer receptor at least a cell out
+    # (nearer, the source's own extent, not σ_V, sets the plume's thickness)
+    at = min([0.5 * stop] + [r.along for _, r in spreads if r.along >= out[0].cell_size])
     sigma_v = math.sqrt(float(np.interp(at, s, var_v)))
-    return out, stop, sigma_v, np.unique(path.unit[s <= stop])
+    return out, stop, sigma_v, np.unique(path.unit[s <= stop]), spreads
 
 
-def _layer_reference(path: PathSample, s: FloatArray, var_t: FloatArray, stop: float,
-                     receptors: FloatArray, *, first_cell: float) -> float:
-    """Arc length [m] where the cell layers are sized (M4): half the corridor length, or
-    nearer where a receptor (plan points ``(2, k)`` [m]) lies inside the corridor, at the
-    pathline point closest to it; receptors within one cell of the source are left out
-    (the source's own extent, not σ_V, sets the plume's thickness there)."""
-    at = 0.5 * stop
-    keep = s <= stop
-    xy, arc = path.points[:2, keep], s[keep]
-    for rx, ry in receptors.T:
+def _receptor_spreads(path: PathSample, along: tuple[FloatArray, FloatArray, FloatArray],
+                      stop: float, receptors: Sequence[tuple[str, float, float]],
+                      pieces: Sequence[CorridorPiece]) -> list[tuple[float, ReceptorSpread]]:
+    """The receptors (name, x, y [m]) inside this pathline's corridor, each with its plan
+    distance [m] from the pathline point nearest to it and the plume's spread there;
+    ``along`` holds the arc length and the cumulative ∫2α_T ds and ∫2α_TV ds [m²]."""
+    s, var_t, var_v = (a[along[0] <= stop] for a in along)
+    xy = path.points[:2, :s.size]
+    out = []
+    for name, rx, ry in receptors:
         d = np.hypot(xy[0] - rx, xy[1] - ry)
         j = int(np.argmin(d))
-        reach = path.half_width + SPREAD * math.sqrt(float(var_t[keep][j]))
-        if d[j] <= max(reach, first_cell) and arc[j] >= first_cell:
-            at = min(at, float(arc[j]))
-    return at
+        cell = min((p.cell_size for p in pieces
+                    if min(math.dist(q, (rx, ry)) for q in p.points) <= p.radius),
+                   default=pieces[-1].cell_size)
+        if d[j] <= max(path.half_width + SPREAD * math.sqrt(float(var_t[j])), cell):
+            out.append((float(d[j]), ReceptorSpread(
+                name=name, along=_sig(float(s[j])), sigma_t=_sig(math.sqrt(float(var_t[j]))),
+                sigma_v=_sig(math.sqrt(float(var_v[j]))), cell_size=cell)))
+    return out
 
 
 def _inside(px: FloatArray, py: FloatArray, outline: FloatArray) -> np.ndarray:
@@ -383,7 +428,7 @@ def _levels(units: Sequence[UnitColumn], thickness: dict[str, float]) -> int:
 def plan_corridor(
     paths: Sequence[PathSample], *, peclet: float, end_time: float, outline: FloatArray,
     background_size: float, plan_nodes: int, units: Sequence[UnitColumn], max_nodes: int,
-    receptors: FloatArray | None = None,
+    receptors: Sequence[tuple[str, float, float]] = (),
 ) -> Corridor | None:
     """The corridor of ``paths`` (docs/theory.md M1–M4), coarsened to fit ``max_nodes``.
 
@@ -408,9 +453,9 @@ def plan_corridor(
         Node budget: above it, the corridor's plan cells and layers are coarsened by one
         common factor until the estimate fits (a warning line says so).
     receptors
-        Plan positions [m], shape ``(2, k)``, of the observation points and extraction
-        wells: a unit's layers resolve σ_V at the nearest of them inside the corridor, not
-        only at half its length (M4).
+        Name and plan position (x, y) [m] of the observation points and extraction wells: a
+        unit's layers resolve σ_V at the nearest of them inside the corridor, not only at
+        half its length (M4), and the record gives the plume's spread at each.
 
     Returns
     -------
@@ -419,12 +464,16 @@ def plan_corridor(
     """
     pieces: list[CorridorPiece] = []
     length, thick = 0.0, {}
-    at = np.zeros((2, 0)) if receptors is None else np.asarray(receptors, dtype=float)
+    nearest: dict[str, tuple[float, ReceptorSpread]] = {}
     for path in paths:
         if path.points.shape[1] < 2:
             continue
-        got, stop, sigma_v, crossed = _pieces(path, peclet=peclet, end_time=end_time,
-                                              receptors=at)
+        got, stop, sigma_v, crossed, spreads = _pieces(path, peclet=peclet, end_time=end_time,
+                                                       receptors=receptors)
+        for d, spread in spreads:  # the pathline passing nearest to each receptor
+            if d < nearest.get(spread.name, (math.inf,))[0]:
+                nearest[spread.name] = (d, replace(spread, cell_size=min(spread.cell_size,
+                                                                         background_size)))
         # α_L = 0 (diffusion only) gives no size: the grid Péclet number is then not h/α_L
         pieces += [p for p in got if 0.0 < p.cell_size < background_size]
         length = max(length, stop)
@@ -466,7 +515,8 @@ def plan_corridor(
                 f"Péclet {_sig(peclet * factor, 3):g} (about {estimate(factor):,} nodes)")
         logger.warning("%s", note)
     return _finish(pieces, layer_thickness, units, factor=factor, peclet=peclet,
-                   length=length, expected=estimate(factor), note=note)
+                   length=length, expected=estimate(factor), note=note,
+                   receptors=tuple(r for _, r in nearest.values()))
 
 
 def _distinct(pieces: list[CorridorPiece]) -> list[CorridorPiece]:
@@ -485,7 +535,7 @@ def _distinct(pieces: list[CorridorPiece]) -> list[CorridorPiece]:
 
 def _finish(pieces: list[CorridorPiece], layer_thickness: dict[str, float],
             units: Sequence[UnitColumn], *, factor: float, peclet: float, length: float,
-            expected: int, note: str) -> Corridor:
+            expected: int, note: str, receptors: tuple[ReceptorSpread, ...]) -> Corridor:
     """The corridor record, with sizes multiplied by the budget ``factor``."""
     asked = {u.name: u.cell_thickness for u in units}
     scaled = [replace(p, cell_size=_sig(p.cell_size * factor),
@@ -498,7 +548,8 @@ def _finish(pieces: list[CorridorPiece], layer_thickness: dict[str, float],
                     peclet_reached=_sig(peclet * factor, 3), length=_sig(length),
                     width_range=(min(widths), max(widths)),
                     cell_size_range=(min(cells), max(cells)), expected_nodes=expected,
-                    note=note)
+                    note=note, receptors=tuple(replace(r, cell_size=_sig(r.cell_size * factor))
+                                               for r in receptors))
 
 
 def corridor_zones(corridor: Corridor) -> list[tuple[list[tuple[float, float]], float, float]]:
@@ -604,9 +655,8 @@ def site_corridor(case: Case, site: SiteMesh,
                         cell_thickness=ly.cell_thickness or mc.layer_cell_thickness,
                         fixed=ly.sublayers is not None) for k, ly in enumerate(case.layers)]
     verts, _ = case.outline()
-    receptors = np.array([[p.x, p.y] for p in case.observation_points]
-                         + [[w.x, w.y] for w in case.wells if w.kind == "extraction"],
-                         dtype=float).reshape(-1, 2).T
+    receptors = [(p.name, p.x, p.y) for p in case.observation_points] + [
+        (w.name, w.x, w.y) for w in case.wells if w.kind == "extraction"]
     return plan_corridor(samples, peclet=mc.corridor_peclet, end_time=case.time.end,
                          outline=np.array(verts, dtype=float).T,
                          background_size=mc.cell_size, plan_nodes=int(report.plan.xy.shape[1]),

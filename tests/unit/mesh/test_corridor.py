@@ -98,17 +98,26 @@ def test_corridor_layers_resolve_the_vertical_spread() -> None:
 
 
 def test_corridor_layers_resolve_the_spread_at_the_nearest_receptor_inside_it() -> None:
-    """M4: a receptor inside the corridor 50 m down the path sizes the layers by σ_V there;
-    one off to the side (outside the corridor's half-width) or within a cell of the source
-    does not."""
-    inside = np.array([[50.0], [52.0]])  # 2 m off the path: inside the corridor
-    c = corridor([straight_path(alpha_tv=0.01)], receptors=inside)
+    """M4: a receptor inside the corridor 50 m down the path sizes the layers by σ_V there,
+    and the record gives the plume's spread there (σ = √(2αs), Bear 1972 as above); one off
+    to the side (outside the corridor's half-width) is left out, and one within a cell of
+    the source is reported but does not size the layers."""
+    c = corridor([straight_path(alpha_tv=0.01)], receptors=[("MW", 50.0, 52.0)])  # 2 m off
     sigma_v = math.sqrt(2 * 0.01 * 50.0)
     assert c.layer_thickness["sand"] == pytest.approx(sigma_v / CELLS_PER_SPREAD, rel=ROUNDING)
-    outside = np.array([[50.0, 1.0], [95.0, 50.0]])  # beyond the half-width; at the source
-    c = corridor([straight_path(alpha_tv=0.01)], receptors=outside)
+    (spread,) = c.receptors
+    assert (spread.name, spread.along, spread.cell_size) == ("MW", 50.0, 2.0)
+    assert spread.sigma_t == pytest.approx(math.sqrt(2 * 0.1 * 50.0), rel=ROUNDING)
+    assert spread.sigma_v == pytest.approx(sigma_v, rel=ROUNDING)
+    assert not spread.thin  # σ_T 3.2 m against 2 m cells
+    assert "plume corridor at MW: 50 m down the path" in "\n".join(c.lines())
+    c = corridor([straight_path(alpha_tv=0.01)],
+                 receptors=[("side", 50.0, 1.0), ("at source", 1.0, 50.0)])
     sigma_v = math.sqrt(2 * 0.01 * 200.0)  # at half the corridor length, as without them
     assert c.layer_thickness["sand"] == pytest.approx(sigma_v / CELLS_PER_SPREAD, rel=ROUNDING)
+    assert [r.name for r in c.receptors] == ["at source"]
+    assert c.receptors[0].thin  # σ_T 0.45 m at 1 m against 2 m cells
+    assert Corridor.from_dict(c.as_dict()) == c
 
 
 def test_corridor_keeps_finer_case_layers_and_fixed_sublayers() -> None:
