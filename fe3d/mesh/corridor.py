@@ -129,8 +129,9 @@ class ReceptorSpread:
     """The plume's spread where a receptor (observation point or extraction well) lies in
     the corridor: its ``name``, the arc length ``along`` [m] from the source to the nearest
     pathline point, the transverse and vertical standard deviations ``sigma_t``,
-    ``sigma_v`` [m] there (√(∫ 2α ds), M2 and M4) and the corridor's plan ``cell_size`` [m]
-    there."""
+    ``sigma_v`` [m] there and the corridor's plan ``cell_size`` [m] there. σ_V = √(∫ 2α_TV
+    ds) (M4); σ_T = √(∫ 2α_T ds + w²/3) (M2) with the source's own half-width w (a uniform
+    strip of half-width w has variance w²/3)."""
 
     name: str
     along: float
@@ -303,7 +304,8 @@ def _receptor_spreads(path: PathSample, along: tuple[FloatArray, FloatArray, Flo
                    default=pieces[-1].cell_size)
         if d[j] <= max(path.half_width + SPREAD * math.sqrt(float(var_t[j])), cell):
             out.append((float(d[j]), ReceptorSpread(
-                name=name, along=_sig(float(s[j])), sigma_t=_sig(math.sqrt(float(var_t[j]))),
+                name=name, along=_sig(float(s[j])),
+                sigma_t=_sig(math.sqrt(float(var_t[j]) + path.half_width**2 / 3.0)),
                 sigma_v=_sig(math.sqrt(float(var_v[j]))), cell_size=cell)))
     return out
 

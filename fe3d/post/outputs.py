@@ -23,6 +23,7 @@ from fe3d.case.parts import Ground
 from fe3d.case.schema import Case
 from fe3d.flow.paths import TravelPaths
 from fe3d.flow.solve import FlowField
+from fe3d.mesh.corridor import ReceptorSpread
 from fe3d.mesh.materials import unit_materials, unit_values
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.post.figures import plot_breakthrough, plot_heads
@@ -486,7 +487,15 @@ class SeriesWriter:
             well_heads=dict(flow.well_heads),
             wall_time=time.perf_counter() - started, time_unit=case.output.time_unit,
             concentration_unit=case.output.concentration_unit, files=files,
-            receptors=self._receptor_results(), output_step=self._output_step())
+            receptors=self._receptor_results(), output_step=self._output_step(),
+            thin_plumes=self._thin_plumes())
+
+    def _thin_plumes(self) -> list[ReceptorSpread]:
+        """The receptors where the plume is narrower than a corridor cell (the mesher's
+        record, theory.md M4)."""
+        report = self.site.report
+        corridor = None if report is None else report.corridor
+        return [] if corridor is None else [r for r in corridor.receptors if r.thin]
 
     def _output_step(self) -> float:
         """The longest interval between output times [s] (receptor and run-wide values are

@@ -8,6 +8,7 @@ import json
 import numpy as np
 import pytest
 
+from fe3d.mesh.corridor import ReceptorSpread
 from fe3d.post.limit_checks import BoundaryContact, species_extremes
 from fe3d.post.probes import breakthrough
 from fe3d.post.report import (
@@ -58,6 +59,16 @@ def test_the_courant_warning_says_where():
                                   max_plume_courant_at={"x": (352.06, 98.4, -2.38)}))
     assert "65 > 1 (at (352, 98, -2) m)" in w[0]
     assert "(at" not in quality_warnings(_summary(max_plume_courant={"x": 65.0}))[0]
+
+
+def test_a_receptor_in_a_plume_narrower_than_a_cell_warns():
+    """The mesher's thin-plume record (theory.md M4) becomes one warning naming the
+    receptor, its σ_T and the corridor's cell, in metres, and summary.json keeps the record."""
+    spread = ReceptorSpread(name="MW-1", along=62.0, sigma_t=8.42, sigma_v=2.5, cell_size=10.0)
+    w = quality_warnings(_summary(thin_plumes=[spread]))
+    assert len(w) == 1
+    assert w[0].startswith("MW-1: the plume there is narrower than a corridor cell (σ_T 8.42 m")
+    assert "cells 10 m" in w[0]
 
 
 @pytest.mark.parametrize(("peclet", "warns"), [(2.0, False), (2.04, False), (2.06, True)])
