@@ -158,8 +158,9 @@ class QuantityVerdict:
     ``unchanged`` (equal to round-off, or a limit not reached on any of three or more
     levels), ``missing`` (a value is absent on some level only: ``missing_levels``) or
     ``incomplete`` (fewer than three levels ran: values without an order). ``amplitude`` is
-    (max − min)/|fine| of the last three values for ``oscillatory`` (absolute when the fine
-    value is 0); ``growth`` is |ε21/ε32| for ``diverging``.
+    the spread (max − min)/|fine| of the last three values for ``oscillatory`` and
+    ``diverging`` (absolute when the fine value is 0), so that a reader sees whether the
+    levels disagree by 0.1 % or by 30 %; ``growth`` is |ε21/ε32| for ``diverging``.
     """
 
     values: tuple[float | None, ...]
@@ -213,13 +214,13 @@ def judge(values: Sequence[float | None], factors: Sequence[float], *,
     if _equal(phi1, phi2, scale):  # the fine pair agrees to round-off: nothing left to gain
         zero = GridConvergence(r21, r32, None, phi1, 0.0, 0.0, 0.0)
         return QuantityVerdict(vals, "converged", zero)
+    spread = max(phi1, phi2, phi3) - min(phi1, phi2, phi3)
+    amplitude = spread / abs(phi1) if phi1 != 0.0 else spread
     if not _equal(phi2, phi3, scale) and e32 / e21 < 0.0:
-        amp = max(phi1, phi2, phi3) - min(phi1, phi2, phi3)
-        return QuantityVerdict(vals, "oscillatory", conv,
-                               amplitude=amp / abs(phi1) if phi1 != 0.0 else amp)
+        return QuantityVerdict(vals, "oscillatory", conv, amplitude=amplitude)
     if _equal(phi2, phi3, scale) or e32 / e21 <= math.log(r32) / math.log(r21):
         growth = math.inf if e32 == 0.0 else abs(e21 / e32)
-        return QuantityVerdict(vals, "diverging", conv, growth=growth)
+        return QuantityVerdict(vals, "diverging", conv, amplitude=amplitude, growth=growth)
     ok = conv.gci is not None and conv.gci < threshold
     return QuantityVerdict(vals, "converged" if ok else "converging", conv)
 
@@ -379,7 +380,9 @@ def _detail(v: QuantityVerdict) -> str:
     if v.verdict == "oscillatory" and v.amplitude is not None:
         return f" (amplitude {100 * v.amplitude:.2g} % of the fine value)"
     if v.verdict == "diverging" and v.growth is not None:
-        return f" (fine difference {v.growth:.2g}× the coarse one)"
+        spread = "" if v.amplitude is None else (
+            f"; the levels span {100 * v.amplitude:.2g} % of the fine value")
+        return f" (fine difference {v.growth:.2g}× the coarse one{spread})"
     if v.verdict in ("converged", "converging") and c is not None and c.gci is not None:
         order = "" if c.order is None else f"order {c.order:.3g}, "
         return f" ({order}GCI {100 * c.gci:.2g} %)"
@@ -523,7 +526,7 @@ def _write_reports(case: Case, study: RefinementStudy, out_dir: Path) -> None:
              for lv in ran]
     rows = [["point", "species", "quantity", "unit", *heads, "observed order [-]",
              "extrapolated (unit of the row)", "GCI fine [%]", "verdict",
-             "oscillation amplitude [%]"]]
+             "spread of the three finest [%]"]]
     for q, v in study.verdicts.items():
         c = v.convergence
         unit = study.unit(q)
@@ -545,7 +548,8 @@ def _write_reports(case: Case, study: RefinementStudy, out_dir: Path) -> None:
              f"Verdicts: converged = GCI (fine) below {100 * study.threshold:g} %; converging "
              "= monotone, GCI above that; oscillatory = the differences change sign "
              "(amplitude: max − min of the three finest values over the fine value); "
-             "diverging = monotone with differences growing with refinement; unchanged = "
+             "diverging = monotone with differences growing with refinement (its spread "
+             "given the same way, to show how much the levels differ); unchanged = "
              "equal to round-off, or a limit not reached on any level; missing = a limit "
              "not reached on some levels only. Order, "
              "extrapolated value and GCI: Celik et al. (2008), safety factor 1.25.", "",

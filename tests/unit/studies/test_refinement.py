@@ -155,6 +155,16 @@ def test_growing_differences_diverge(factors, values):
     assert judge(values, factors).verdict == "diverging"
 
 
+def test_diverging_states_how_far_apart_the_levels_are():
+    """A "diverging" verdict on values 0.1 % apart must say so (the demo's chloride at the
+    supply screen, 11.06 → 11.06 → 11.05 mg/L): spread (max − min)/|fine| of the three
+    values, arithmetic to 1e-12, and the report line names it."""
+    v = judge([11.064, 11.060, 11.050], [1.0, 1.5, 2.25])
+    assert v.verdict == "diverging"
+    assert v.amplitude == pytest.approx((11.064 - 11.050) / 11.050, rel=1e-12)
+    assert "the levels span 0.13 % of the fine value" in refinement._detail(v)
+
+
 def test_missing_and_incomplete():
     v = judge([None, 3.0, 2.9], [1.0, 1.5, 2.25])
     assert v.verdict == "missing"
