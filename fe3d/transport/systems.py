@@ -17,6 +17,7 @@ import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import SolverControl, TimeControl
+from fe3d.free_block import FreeBlock
 from fe3d.linalg import LinearSolver, solve_with_preconditioner
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import split_rows
@@ -41,6 +42,11 @@ Measured through the engine at 223 k nodes (benchmarks/step_cost.py's box, 12 st
 on): the fields at 1e-4 and 1e-6 differ by at most 1.1e-4 C0 at Courant 1 and 5.1e-4 C0 at
 Courant 10, below the pass rule, and 1e-4 saves one of two target iterations at Courant 1
 and two of five at Courant 10 (docs/performance.md)."""
+
+PATTERN_MASS_IN_PLACE = True
+"""Whether a step matrix whose M is on the mesh's pattern (the Galerkin target, SUPG) is
+solved on its operators' own arrays (:class:`fe3d.free_block.FreeBlock`) like one with a
+lumped M, instead of on a copy of its free block."""
 
 MAX_CACHED = 3
 """Step systems (matrix + factor or preconditioner) kept per species: a few step lengths."""
@@ -245,7 +251,11 @@ class StepSystems:
             is_fixed[self.held_nodes[name]] = True
         free = np.nonzero(~is_fixed)[0]
         fixed = np.nonzero(is_fixed)[0]
-        S_ff, S_fD = split_rows(S.tocsr(), free, fixed)
+        if lumped or PATTERN_MASS_IN_PLACE:  # S_ff read off M's and K's arrays: no copy
+            block = FreeBlock(S, free, fixed)
+            S_ff, S_fD = block, block.held_columns()
+        else:
+            S_ff, S_fD = split_rows(S.tocsr(), free, fixed)
         solver = LinearSolver(S_ff, method=self.solver.linear_solver,
                               tol=self.solver.tolerance if tol is None else tol)
         explicit = None if formula.theta == 1.0 else ScaledMatrix(K, formula.theta - 1.0)

@@ -1,0 +1,290 @@
+"""A step matrix's free block and its SSOR splitting, read off the step operators in place.
+
+A step matrix S = ca·A + cb·B is held as a :class:`fe3d.sgs.LinearCombination` on the arrays
+of its operators (B on the mesh's pattern; A on that pattern too, or a diagonal matrix of its
+own). A solve needs its block S_ff on the free (not held) nodes, and the Gauss–Seidel
+splitting of S_ff (fe3d/sgs.py). Copying S_ff into two CSR triangles costs a value and a
+column index per entry (about 12 bytes) for every step system kept. Here the passes run
+instead over S's rows r = free[i], skip held columns, and form every value as S's own CSR
+copy would, ``ca * a[p] + cb * b[p]`` (A on the pattern) or ``cb * b[p]`` with
+``ca * A_rr`` added at the diagonal (A diagonal). The free nodes keep their order
+(``free`` sorted), so an entry below the diagonal in the free numbering is below it in S's,
+and the entries of a triangle come in the same order as in the copy: with the same partial
+sums (the second of two alternates over the kept entries only) every product and solve is
+bit for bit that of :class:`fe3d.sgs.SymmetricGaussSeidel` on the copy.
+"""
+
+from __future__ import annotations
+
+import numba
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+
+from fe3d._typing import FloatArray, IndexArray
+from fe3d.sgs import GaussSeidelSplitting, LinearCombination, _is_sorted
+
+__all__ = ["BlockGaussSeidel", "FreeBlock"]
+
+_jit = numba.njit(cache=True, nogil=True)
+
+# Every kernel takes S's free block as the ten arrays and numbers of FreeBlock.operator:
+# indptr, indices, a, ca, b, cb, on_pattern (A on B's pattern, else a is not read), rows
+# (the free rows), place (a node's index among the free nodes, < 0 for a held node) and
+# at (each free row's diagonal position in B's pattern). As in fe3d/sgs.py the triangular
+# solves keep two partial sums, written out in each kernel; here the two sums swap after
+# every kept entry, so that they take the kept entries alternately, as on the copy.
+
+
+@_jit
+def _diagonal_at(indptr: IndexArray, indices: IndexArray, rows: IndexArray) -> IndexArray:
+    """Position of (r, r) in each row r of ``rows`` (−1 where it is not stored)."""
+    out = np.full(rows.size, -1, indptr.dtype)
+    for i in range(rows.size):
+        r = rows[i]
+        for p in range(indptr[r], indptr[r + 1]):
+            if indices[p] == r:
+                out[i] = p
+    return out
+
+
+@_jit
+def _upper_solve(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
+                 b: FloatArray, cb: float, on_pattern: bool, rows: IndexArray,
+                 place: IndexArray, at: IndexArray, inv_d: FloatArray, v: FloatArray,
+                 out: FloatArray) -> None:
+    """out = (D + U)⁻¹ v."""
+    for i in range(rows.size - 1, -1, -1):
+        s1, s2 = v[i], 0.0
+        for p in range(at[i] + 1, indptr[rows[i] + 1]):
+            j = place[indices[p]]
+            if j >= 0:
+                x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
+                s1, s2 = s2, s1 - x * out[j]
+        out[i] = (s1 + s2) * inv_d[i]
+
+
+@_jit
+def _lower_solve(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
+                 b: FloatArray, cb: float, on_pattern: bool, rows: IndexArray,
+                 place: IndexArray, at: IndexArray, inv_d: FloatArray, v: FloatArray,
+                 out: FloatArray) -> None:
+    """out = (D + L)⁻¹ v."""
+    for i in range(rows.size):
+        s1, s2 = v[i], 0.0
+        for p in range(indptr[rows[i]], at[i]):
+            j = place[indices[p]]
+            if j >= 0:
+                x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
+                s1, s2 = s2, s1 - x * out[j]
+        out[i] = (s1 + s2) * inv_d[i]
+
+
+@_jit
+def _lower_solve_pair(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
+                      b: FloatArray, cb: float, on_pattern: bool, rows: IndexArray,
+                      place: IndexArray, at: IndexArray, inv_d: FloatArray, v1: FloatArray,
+                      v2: FloatArray, out1: FloatArray, out2: FloatArray) -> None:
+    """out1 = (D + L)⁻¹ v1 and out2 = (D + L)⁻¹ v2 in one pass over L."""
+    for i in range(rows.size):
+        s1, s2 = v1[i], v2[i]
+        for p in range(indptr[rows[i]], at[i]):
+            j = place[indices[p]]
+            if j >= 0:
+                x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
+                s1 -= x * out1[j]
+                s2 -= x * out2[j]
+        out1[i] = s1 * inv_d[i]
+        out2[i] = s2 * inv_d[i]
+
+
+@_jit
+def _split_product(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
+                   b: FloatArray, cb: float, on_pattern: bool, rows: IndexArray,
+                   place: IndexArray, at: IndexArray, d: FloatArray, inv_d: FloatArray,
+                   e: FloatArray, v: FloatArray, w: FloatArray, out: FloatArray) -> None:
+    """out = Â v (fe3d/sgs.py) with d = D/ω and e = 2D/ω − D: w = (D/ω + U)⁻¹ v, then
+    out = D/ω [w + (D/ω + L)⁻¹(v − e w)]."""
+    n = rows.size
+    for i in range(n - 1, -1, -1):
+        s1, s2 = v[i], 0.0
+        for p in range(at[i] + 1, indptr[rows[i] + 1]):
+            j = place[indices[p]]
+            if j >= 0:
+                x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
+                s1, s2 = s2, s1 - x * w[j]
+        w[i] = (s1 + s2) * inv_d[i]
+    for i in range(n):
+        s1, s2 = v[i] - e[i] * w[i], 0.0
+        for p in range(indptr[rows[i]], at[i]):
+            j = place[indices[p]]
+            if j >= 0:
+                x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
+                s1, s2 = s2, s1 - x * out[j]
+        out[i] = (s1 + s2) * inv_d[i]
+    for i in range(n):
+        out[i] = d[i] * (w[i] + out[i])
+
+
+@_jit
+def _upper_product(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
+                   b: FloatArray, cb: float, on_pattern: bool, rows: IndexArray,
+                   place: IndexArray, at: IndexArray, d: FloatArray, v: FloatArray,
+                   out: FloatArray) -> None:
+    """out = (D + U) v."""
+    for i in range(rows.size):
+        s = d[i] * v[i]
+        for p in range(at[i] + 1, indptr[rows[i] + 1]):
+            j = place[indices[p]]
+            if j >= 0:
+                x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
+                s += x * v[j]
+        out[i] = s
+
+
+@_jit
+def _full_product(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
+                  b: FloatArray, cb: float, on_pattern: bool, rows: IndexArray,
+                  place: IndexArray, at: IndexArray, diagonal: FloatArray, v: FloatArray,
+                  out: FloatArray) -> None:
+    """out = S_ff v, each row summed from zero in column order: the rounding of scipy's
+    CSR product of the copied block (sorted columns)."""
+    for i in range(rows.size):
+        r = rows[i]
+        s = 0.0
+        for p in range(indptr[r], at[i]):
+            j = place[indices[p]]
+            if j >= 0:
+                x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
+                s += x * v[j]
+        s += diagonal[i] * v[i]
+        for p in range(at[i] + 1, indptr[r + 1]):
+            j = place[indices[p]]
+            if j >= 0:
+                x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
+                s += x * v[j]
+        out[i] = s
+
+
+@_jit
+def _block(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
+           b: FloatArray, cb: float, on_pattern: bool, rows: IndexArray, place: IndexArray,
+           at: IndexArray, diagonal: FloatArray,
+           held: bool) -> tuple[IndexArray, IndexArray, FloatArray]:
+    """The CSR arrays of S_ff, or with ``held`` of S_fD (columns numbered among the held
+    nodes, −1 − place), in column order."""
+    m = rows.size
+    ptr = np.zeros(m + 1, np.int64)
+    for i in range(m):
+        r = rows[i]
+        k = 0
+        for p in range(indptr[r], indptr[r + 1]):
+            if (place[indices[p]] < 0) == held:
+                k += 1
+        ptr[i + 1] = ptr[i] + k
+    columns, values = np.empty(ptr[m], np.int32), np.empty(ptr[m])
+    for i in range(m):
+        r = rows[i]
+        k = ptr[i]
+        for p in range(indptr[r], indptr[r + 1]):
+            j = place[indices[p]]
+            if (j < 0) != held:
+                continue
+            columns[k] = -1 - j if held else j
+            if p == at[i]:
+                values[k] = diagonal[i]
+            else:
+                values[k] = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
+            k += 1
+    return ptr, columns, values
+
+
+class FreeBlock(spla.LinearOperator):
+    """S_ff = S[free][:, free] of a step matrix S held as a
+    :class:`~fe3d.sgs.LinearCombination`, as an operator on S's own arrays (module
+    docstring): products bit for bit those of the copied block. Holds ``free`` (the
+    caller's array, not copied), every node's place (its index among the free nodes, or
+    −1 − its index among the held ones: 4 bytes per node), the position of each free row's
+    diagonal in S's pattern (4 bytes per free node), the block's ``main_diagonal`` (8) and
+    the number of ``held`` nodes. S's
+    pattern must have sorted columns and store its whole diagonal (``ValueError``)."""
+
+    def __init__(self, S: LinearCombination, free: IndexArray, fixed: IndexArray) -> None:
+        B = S.B
+        super().__init__(dtype=np.dtype(float), shape=(free.size, free.size))
+        if not _is_sorted(B.indptr, B.indices):
+            msg = "the step matrix's pattern has unsorted columns"
+            raise ValueError(msg)
+        n = B.shape[0]
+        place = np.empty(n, np.int32 if n < 2**31 else np.int64)
+        place[free] = np.arange(free.size)
+        place[fixed] = -1 - np.arange(fixed.size)
+        at = _diagonal_at(B.indptr, B.indices, free)
+        if np.any(at < 0):
+            msg = "the step matrix's pattern does not store its whole diagonal"
+            raise ValueError(msg)
+        lumped = S.a_diagonal
+        a = B.data if lumped is not None else S.A.data  # B.data: a stand-in, never read
+        self.operator = (B.indptr, B.indices, np.asarray(a, dtype=float), S.ca,
+                         np.asarray(B.data, dtype=float), S.cb, lumped is None, free, place,
+                         at)
+        self.held = fixed.size
+        # the values S.tocsr() gives these entries (fe3d.sgs.LinearCombination.tocsr)
+        self.main_diagonal = (S.ca * S.A.data[at] + S.cb * B.data[at] if lumped is None
+                          else S.cb * B.data[at] + S.ca * lumped[free])
+
+    def _matvec(self, x: FloatArray) -> FloatArray:
+        out = np.empty(self.shape[0])
+        _full_product(*self.operator, self.main_diagonal,
+                      np.ascontiguousarray(x, dtype=float).ravel(), out)
+        return out
+
+    def diagonal(self) -> FloatArray:
+        """The diagonal of S_ff."""
+        return self.main_diagonal.copy()
+
+    def tocsr(self) -> sp.csr_matrix:
+        """S_ff as a new CSR matrix (sorted columns): for a method that needs the matrix
+        itself (a direct factor, an AMG hierarchy, a Newton Jacobian formed)."""
+        ptr, columns, values = _block(*self.operator, self.main_diagonal, False)
+        A = sp.csr_matrix((values, columns, ptr), shape=self.shape)
+        A.has_sorted_indices = True
+        return A
+
+    def held_columns(self) -> sp.csr_matrix:
+        """S_fD = S[free][:, fixed] as a CSR matrix (its columns numbered as ``fixed``)."""
+        ptr, columns, values = _block(*self.operator, self.main_diagonal, True)
+        A = sp.csr_matrix((values, columns, ptr), shape=(self.shape[0], self.held))
+        A.has_sorted_indices = True
+        return A
+
+
+class BlockGaussSeidel(GaussSeidelSplitting):
+    """The SSOR splitting (:class:`fe3d.sgs.GaussSeidelSplitting`) of a :class:`FreeBlock`,
+    its passes over S's own arrays: holds the block and the four diagonals (no triangle
+    copied); products and solves bit for bit those of
+    :class:`fe3d.sgs.SymmetricGaussSeidel` on the copied block."""
+
+    def __init__(self, block: FreeBlock, omega: float = 1.0) -> None:
+        super().__init__(block.main_diagonal, omega)
+        self.block = block
+
+    def matrix(self) -> FreeBlock:
+        """S_ff as an operator: the block itself."""
+        return self.block
+
+    def _upper_solve(self, v: FloatArray, out: FloatArray) -> None:
+        _upper_solve(*self.block.operator, self.inv_d, v, out)
+
+    def _lower_solve(self, v: FloatArray, out: FloatArray) -> None:
+        _lower_solve(*self.block.operator, self.inv_d, v, out)
+
+    def _lower_solve_pair(self, v1: FloatArray, v2: FloatArray, out1: FloatArray,
+                          out2: FloatArray) -> None:
+        _lower_solve_pair(*self.block.operator, self.inv_d, v1, v2, out1, out2)
+
+    def _eisenstat(self, v: FloatArray, w: FloatArray, out: FloatArray) -> None:
+        _split_product(*self.block.operator, self.d, self.inv_d, self.e, v, w, out)
+
+    def _upper_product(self, v: FloatArray, out: FloatArray) -> None:
+        _upper_product(*self.block.operator, self.d, v, out)
