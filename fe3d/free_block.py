@@ -49,35 +49,49 @@ def _diagonal_at(indptr: IndexArray, indices: IndexArray, rows: IndexArray) -> I
 
 
 @_jit
-def _upper_solve(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
-                 b: FloatArray, cb: float, on_pattern: bool, rows: IndexArray,
-                 place: IndexArray, at: IndexArray, inv_d: FloatArray, v: FloatArray,
-                 out: FloatArray) -> None:
-    """out = (D + U)⁻¹ v."""
-    for i in range(rows.size - 1, -1, -1):
-        s1, s2 = v[i], 0.0
-        for p in range(at[i] + 1, indptr[rows[i] + 1]):
-            j = place[indices[p]]
-            if j >= 0:
-                x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
-                s1, s2 = s2, s1 - x * out[j]
-        out[i] = (s1 + s2) * inv_d[i]
+def _touches_held(indptr: IndexArray, indices: IndexArray, rows: IndexArray,
+                  place: IndexArray) -> np.ndarray:
+    """True for each row of ``rows`` with an entry in a held column."""
+    out = np.zeros(rows.size, np.bool_)
+    for i in range(rows.size):
+        for p in range(indptr[rows[i]], indptr[rows[i] + 1]):
+            if place[indices[p]] < 0:
+                out[i] = True
+    return out
 
 
 @_jit
-def _lower_solve(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
-                 b: FloatArray, cb: float, on_pattern: bool, rows: IndexArray,
-                 place: IndexArray, at: IndexArray, inv_d: FloatArray, v: FloatArray,
-                 out: FloatArray) -> None:
-    """out = (D + L)⁻¹ v."""
-    for i in range(rows.size):
+def _solve(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float, b: FloatArray,
+           cb: float, on_pattern: bool, rows: IndexArray, place: IndexArray, at: IndexArray,
+           touches_held: np.ndarray, upper: bool, inv_d: FloatArray, v: FloatArray,
+           out: FloatArray, f: FloatArray) -> None:
+    """out = (D + U)⁻¹ v (``upper``, rows last to first) or (D + L)⁻¹ v (first to last).
+    Each result is also kept by node number in ``f`` (length n, scratch), so that a row
+    with no held column (all but a few) reads it without the free-index map and takes its
+    entries in pairs, as on the copy; a row with one skips it."""
+    n = rows.size
+    for k in range(n):
+        i = n - 1 - k if upper else k
+        r = rows[i]
+        p, q = (at[i] + 1, indptr[r + 1]) if upper else (indptr[r], at[i])
         s1, s2 = v[i], 0.0
-        for p in range(indptr[rows[i]], at[i]):
-            j = place[indices[p]]
-            if j >= 0:
-                x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
-                s1, s2 = s2, s1 - x * out[j]
-        out[i] = (s1 + s2) * inv_d[i]
+        if touches_held[i]:
+            for m in range(p, q):
+                c = indices[m]
+                if place[c] >= 0:
+                    x = ca * a[m] + cb * b[m] if on_pattern else cb * b[m]
+                    s1, s2 = s2, s1 - x * f[c]
+        else:
+            while p + 1 < q:
+                x1 = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
+                x2 = ca * a[p + 1] + cb * b[p + 1] if on_pattern else cb * b[p + 1]
+                s1 -= x1 * f[indices[p]]
+                s2 -= x2 * f[indices[p + 1]]
+                p += 2
+            if p < q:
+                x1 = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
+                s1 -= x1 * f[indices[p]]
+        out[i] = f[r] = (s1 + s2) * inv_d[i]
 
 
 @_jit
@@ -96,34 +110,6 @@ def _lower_solve_pair(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca
                 s2 -= x * out2[j]
         out1[i] = s1 * inv_d[i]
         out2[i] = s2 * inv_d[i]
-
-
-@_jit
-def _split_product(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
-                   b: FloatArray, cb: float, on_pattern: bool, rows: IndexArray,
-                   place: IndexArray, at: IndexArray, d: FloatArray, inv_d: FloatArray,
-                   e: FloatArray, v: FloatArray, w: FloatArray, out: FloatArray) -> None:
-    """out = Â v (fe3d/sgs.py) with d = D/ω and e = 2D/ω − D: w = (D/ω + U)⁻¹ v, then
-    out = D/ω [w + (D/ω + L)⁻¹(v − e w)]."""
-    n = rows.size
-    for i in range(n - 1, -1, -1):
-        s1, s2 = v[i], 0.0
-        for p in range(at[i] + 1, indptr[rows[i] + 1]):
-            j = place[indices[p]]
-            if j >= 0:
-                x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
-                s1, s2 = s2, s1 - x * w[j]
-        w[i] = (s1 + s2) * inv_d[i]
-    for i in range(n):
-        s1, s2 = v[i] - e[i] * w[i], 0.0
-        for p in range(indptr[rows[i]], at[i]):
-            j = place[indices[p]]
-            if j >= 0:
-                x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
-                s1, s2 = s2, s1 - x * out[j]
-        out[i] = (s1 + s2) * inv_d[i]
-    for i in range(n):
-        out[i] = d[i] * (w[i] + out[i])
 
 
 @_jit
@@ -228,7 +214,8 @@ class FreeBlock(spla.LinearOperator):
         self.operator = (B.indptr, B.indices, np.asarray(a, dtype=float), S.ca,
                          np.asarray(B.data, dtype=float), S.cb, lumped is None, free, place,
                          at)
-        self.held = fixed.size
+        self.held, self.nodes = fixed.size, n
+        self.touches_held = _touches_held(B.indptr, B.indices, free, place)
         # the values S.tocsr() gives these entries (fe3d.sgs.LinearCombination.tocsr)
         self.main_diagonal = (S.ca * S.A.data[at] + S.cb * B.data[at] if lumped is None
                           else S.cb * B.data[at] + S.ca * lumped[free])
@@ -273,18 +260,26 @@ class BlockGaussSeidel(GaussSeidelSplitting):
         """S_ff as an operator: the block itself."""
         return self.block
 
+    def _solve(self, v: FloatArray, out: FloatArray, upper: bool) -> None:
+        b = self.block
+        _solve(*b.operator, b.touches_held, upper, self.inv_d, v, out, np.empty(b.nodes))
+
     def _upper_solve(self, v: FloatArray, out: FloatArray) -> None:
-        _upper_solve(*self.block.operator, self.inv_d, v, out)
+        self._solve(v, out, True)
 
     def _lower_solve(self, v: FloatArray, out: FloatArray) -> None:
-        _lower_solve(*self.block.operator, self.inv_d, v, out)
+        self._solve(v, out, False)
 
     def _lower_solve_pair(self, v1: FloatArray, v2: FloatArray, out1: FloatArray,
                           out2: FloatArray) -> None:
         _lower_solve_pair(*self.block.operator, self.inv_d, v1, v2, out1, out2)
 
     def _eisenstat(self, v: FloatArray, w: FloatArray, out: FloatArray) -> None:
-        _split_product(*self.block.operator, self.d, self.inv_d, self.e, v, w, out)
+        # the passes and vector steps of fe3d.sgs._split_product, in the same arithmetic
+        self._solve(v, w, True)
+        self._solve(v - self.e * w, out, False)
+        out += w
+        out *= self.d
 
     def _upper_product(self, v: FloatArray, out: FloatArray) -> None:
         _upper_product(*self.block.operator, self.d, v, out)

@@ -43,10 +43,17 @@ on): the fields at 1e-4 and 1e-6 differ by at most 1.1e-4 C0 at Courant 1 and 5.
 Courant 10, below the pass rule, and 1e-4 saves one of two target iterations at Courant 1
 and two of five at Courant 10 (docs/performance.md)."""
 
-PATTERN_MASS_IN_PLACE = True
-"""Whether a step matrix whose M is on the mesh's pattern (the Galerkin target, SUPG) is
-solved on its operators' own arrays (:class:`fe3d.free_block.FreeBlock`) like one with a
-lumped M, instead of on a copy of its free block."""
+IN_PLACE = {"low-order": True, "target": True, "SUPG or Galerkin": False}
+"""Which step systems are solved on their operators' own arrays
+(:class:`fe3d.free_block.FreeBlock`: no copy of the free block, about 12 bytes per matrix
+entry or 0.17 KiB per node saved for each system kept) rather than on a CSR copy of it. The
+passes in place read whole rows of the pattern twice per product where the copy reads each
+triangle once, and with M on the pattern 20 bytes per entry instead of 12: one product of
+the split operator costs about 1.9-2.2 SpMV with a lumped M and 2.6-3.0 with M on the
+pattern, against 1.3-1.5 on the copy (223 k nodes, docs/performance.md). Measured through
+the engine (benchmarks/step_cost.py, 223 k nodes): the bounded step 10-20 % slower with the
+low-order and target systems in place; the SUPG step (every iteration on a pattern M) 60 %
+slower, so it keeps its copy."""
 
 MAX_CACHED = 3
 """Step systems (matrix + factor or preconditioner) kept per species: a few step lengths."""
@@ -234,15 +241,17 @@ class StepSystems:
             while len(cache.targets) >= MAX_CACHED:
                 cache.targets.pop(next(iter(cache.targets)))
             cache.targets[key] = self._split(M, K, dt, formula, active,
-                                             tol=max(self.solver.tolerance, TARGET_TOLERANCE))
+                                             tol=max(self.solver.tolerance, TARGET_TOLERANCE),
+                                             in_place=IN_PLACE["target"])
         return cache.targets[key]
 
     def _split(self, M: sp.csr_matrix, K: sp.csr_matrix, dt: float, formula: StepCoefficients,
                active: tuple[str, ...], tol: float | None = None,
-               lumped: bool = False) -> StepSystem:
+               lumped: bool = False, in_place: bool = False) -> StepSystem:
         """S = a0/Δt M + θK split by held and free nodes, with its solver (relative
         tolerance ``tol``, default ``solver.tolerance``); ``lumped``: M is a diagonal
-        matrix (its own pattern), else M is on the mesh's pattern."""
+        matrix (its own pattern), else M is on the mesh's pattern; ``in_place``: the solver
+        reads S_ff off M's and K's arrays (:data:`IN_PLACE`), else a CSR copy of it."""
         n = self.site.n_nodes
         # held as an operator on M's and K's arrays; its CSR copy only while it is split
         S = LinearCombination(M, formula.a0 / dt, K, formula.theta)
@@ -251,7 +260,7 @@ class StepSystems:
             is_fixed[self.held_nodes[name]] = True
         free = np.nonzero(~is_fixed)[0]
         fixed = np.nonzero(is_fixed)[0]
-        if lumped or PATTERN_MASS_IN_PLACE:  # S_ff read off M's and K's arrays: no copy
+        if in_place:  # S_ff read off M's and K's arrays: no copy
             block = FreeBlock(S, free, fixed)
             S_ff, S_fD = block, block.held_columns()
         else:
@@ -273,6 +282,8 @@ class StepSystems:
             M, K = self.operators(s, dt_tau)
             while len(cache.systems) >= MAX_CACHED:
                 cache.systems.pop(next(iter(cache.systems)))
-            cache.systems[key] = self._split(M, K, dt, formula, active,
-                                             lumped=self.scheme.monotone)
+            low_order = self.scheme.monotone
+            cache.systems[key] = self._split(
+                M, K, dt, formula, active, lumped=low_order,
+                in_place=IN_PLACE["low-order" if low_order else "SUPG or Galerkin"])
         return cache.systems[key]
