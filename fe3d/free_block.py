@@ -95,6 +95,25 @@ def _solve(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float, b:
 
 
 @_jit
+def _split_product(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
+                   b: FloatArray, cb: float, on_pattern: bool, rows: IndexArray,
+                   place: IndexArray, at: IndexArray, touches_held: np.ndarray,
+                   d: FloatArray, inv_d: FloatArray, e: FloatArray, v: FloatArray,
+                   w: FloatArray, out: FloatArray, f: FloatArray) -> None:
+    """out = Â v (fe3d/sgs.py, ``_split_product``: the same arithmetic) with d = D/ω and
+    e = 2D/ω − D: w = (D/ω + U)⁻¹ v, then out = D/ω [w + (D/ω + L)⁻¹(v − e w)]."""
+    _solve(indptr, indices, a, ca, b, cb, on_pattern, rows, place, at, touches_held, True,
+           inv_d, v, w, f)
+    for i in range(v.size):
+        out[i] = v[i] - e[i] * w[i]
+    # in place: row i reads out[i] before it writes it, and the others' values from f
+    _solve(indptr, indices, a, ca, b, cb, on_pattern, rows, place, at, touches_held, False,
+           inv_d, out, out, f)
+    for i in range(v.size):
+        out[i] = d[i] * (w[i] + out[i])
+
+
+@_jit
 def _lower_solve_pair(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
                       b: FloatArray, cb: float, on_pattern: bool, rows: IndexArray,
                       place: IndexArray, at: IndexArray, inv_d: FloatArray, v1: FloatArray,
@@ -275,11 +294,9 @@ class BlockGaussSeidel(GaussSeidelSplitting):
         _lower_solve_pair(*self.block.operator, self.inv_d, v1, v2, out1, out2)
 
     def _eisenstat(self, v: FloatArray, w: FloatArray, out: FloatArray) -> None:
-        # the passes and vector steps of fe3d.sgs._split_product, in the same arithmetic
-        self._solve(v, w, True)
-        self._solve(v - self.e * w, out, False)
-        out += w
-        out *= self.d
+        b = self.block
+        _split_product(*b.operator, b.touches_held, self.d, self.inv_d, self.e, v, w, out,
+                       np.empty(b.nodes))
 
     def _upper_product(self, v: FloatArray, out: FloatArray) -> None:
         _upper_product(*self.block.operator, self.d, v, out)
