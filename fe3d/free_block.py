@@ -16,6 +16,8 @@ bit for bit that of :class:`fe3d.sgs.SymmetricGaussSeidel` on the copy.
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import numba
 import numpy as np
 import scipy.sparse as sp
@@ -24,16 +26,30 @@ import scipy.sparse.linalg as spla
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.sgs import GaussSeidelSplitting, LinearCombination, _is_sorted
 
-__all__ = ["BlockGaussSeidel", "FreeBlock"]
+__all__ = ["BlockArrays", "BlockGaussSeidel", "FreeBlock"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
-# Every kernel takes S's free block as the ten arrays and numbers of FreeBlock.operator:
-# indptr, indices, a, ca, b, cb, on_pattern (A on B's pattern, else a is not read), rows
-# (the free rows), place (a node's index among the free nodes, < 0 for a held node) and
-# at (each free row's diagonal position in B's pattern). As in fe3d/sgs.py the triangular
-# solves keep two partial sums, written out in each kernel; here the two sums swap after
-# every kept entry, so that they take the kept entries alternately, as on the copy.
+# Every kernel takes S's free block as the ten fields of a BlockArrays, in order. As in
+# fe3d/sgs.py the triangular solves keep two partial sums: in pairs of entries on a row with
+# no held column, and on a row with one alternately over the kept entries (the two sums
+# swap after each), so that every row's sums are those of the copy.
+
+
+class BlockArrays(NamedTuple):
+    """What the kernels read of S_ff (S's own arrays, not copied, and the free block's
+    maps)."""
+
+    indptr: IndexArray  # S's pattern (B's): row pointers
+    indices: IndexArray  # its sorted columns
+    a: FloatArray  # A's values on the pattern (B's values as a stand-in when A is diagonal)
+    ca: float
+    b: FloatArray  # B's values
+    cb: float
+    on_pattern: bool  # A on the pattern (else its diagonal is in the block's main diagonal)
+    rows: IndexArray  # the free rows, sorted (the caller's array)
+    place: IndexArray  # each node's index among the free nodes, or −1 − among the held ones
+    at: IndexArray  # each free row's diagonal position in the pattern
 
 
 @_jit
@@ -207,12 +223,12 @@ def _block(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float,
 class FreeBlock(spla.LinearOperator):
     """S_ff = S[free][:, free] of a step matrix S held as a
     :class:`~fe3d.sgs.LinearCombination`, as an operator on S's own arrays (module
-    docstring): products bit for bit those of the copied block. Holds ``free`` (the
-    caller's array, not copied), every node's place (its index among the free nodes, or
-    −1 − its index among the held ones: 4 bytes per node), the position of each free row's
-    diagonal in S's pattern (4 bytes per free node), the block's ``main_diagonal`` (8) and
-    the number of ``held`` nodes. S's
-    pattern must have sorted columns and store its whole diagonal (``ValueError``)."""
+    docstring): products bit for bit those of the copied block. Holds ``arrays``
+    (:class:`BlockArrays`: S's arrays and ``free`` shared, not copied; per node its place,
+    4 bytes; per free node its diagonal's position, 4 bytes), ``touches_held`` (1 byte per
+    free node), the block's ``main_diagonal`` (8 bytes per free node), the number of
+    ``held`` nodes and of all ``nodes``. S's pattern must have sorted columns and store its
+    whole diagonal (``ValueError``)."""
 
     def __init__(self, S: LinearCombination, free: IndexArray, fixed: IndexArray) -> None:
         B = S.B
@@ -230,18 +246,18 @@ class FreeBlock(spla.LinearOperator):
             raise ValueError(msg)
         lumped = S.a_diagonal
         a = B.data if lumped is not None else S.A.data  # B.data: a stand-in, never read
-        self.operator = (B.indptr, B.indices, np.asarray(a, dtype=float), S.ca,
-                         np.asarray(B.data, dtype=float), S.cb, lumped is None, free, place,
-                         at)
+        self.arrays = BlockArrays(B.indptr, B.indices, np.asarray(a, dtype=float), S.ca,
+                                  np.asarray(B.data, dtype=float), S.cb, lumped is None,
+                                  free, place, at)
         self.held, self.nodes = fixed.size, n
         self.touches_held = _touches_held(B.indptr, B.indices, free, place)
         # the values S.tocsr() gives these entries (fe3d.sgs.LinearCombination.tocsr)
         self.main_diagonal = (S.ca * S.A.data[at] + S.cb * B.data[at] if lumped is None
-                          else S.cb * B.data[at] + S.ca * lumped[free])
+                              else S.cb * B.data[at] + S.ca * lumped[free])
 
     def _matvec(self, x: FloatArray) -> FloatArray:
         out = np.empty(self.shape[0])
-        _full_product(*self.operator, self.main_diagonal,
+        _full_product(*self.arrays, self.main_diagonal,
                       np.ascontiguousarray(x, dtype=float).ravel(), out)
         return out
 
@@ -252,14 +268,14 @@ class FreeBlock(spla.LinearOperator):
     def tocsr(self) -> sp.csr_matrix:
         """S_ff as a new CSR matrix (sorted columns): for a method that needs the matrix
         itself (a direct factor, an AMG hierarchy, a Newton Jacobian formed)."""
-        ptr, columns, values = _block(*self.operator, self.main_diagonal, False)
+        ptr, columns, values = _block(*self.arrays, self.main_diagonal, False)
         A = sp.csr_matrix((values, columns, ptr), shape=self.shape)
         A.has_sorted_indices = True
         return A
 
     def held_columns(self) -> sp.csr_matrix:
         """S_fD = S[free][:, fixed] as a CSR matrix (its columns numbered as ``fixed``)."""
-        ptr, columns, values = _block(*self.operator, self.main_diagonal, True)
+        ptr, columns, values = _block(*self.arrays, self.main_diagonal, True)
         A = sp.csr_matrix((values, columns, ptr), shape=(self.shape[0], self.held))
         A.has_sorted_indices = True
         return A
@@ -281,7 +297,7 @@ class BlockGaussSeidel(GaussSeidelSplitting):
 
     def _solve(self, v: FloatArray, out: FloatArray, upper: bool) -> None:
         b = self.block
-        _solve(*b.operator, b.touches_held, upper, self.inv_d, v, out, np.empty(b.nodes))
+        _solve(*b.arrays, b.touches_held, upper, self.inv_d, v, out, np.empty(b.nodes))
 
     def _upper_solve(self, v: FloatArray, out: FloatArray) -> None:
         self._solve(v, out, True)
@@ -291,12 +307,12 @@ class BlockGaussSeidel(GaussSeidelSplitting):
 
     def _lower_solve_pair(self, v1: FloatArray, v2: FloatArray, out1: FloatArray,
                           out2: FloatArray) -> None:
-        _lower_solve_pair(*self.block.operator, self.inv_d, v1, v2, out1, out2)
+        _lower_solve_pair(*self.block.arrays, self.inv_d, v1, v2, out1, out2)
 
     def _eisenstat(self, v: FloatArray, w: FloatArray, out: FloatArray) -> None:
         b = self.block
-        _split_product(*b.operator, b.touches_held, self.d, self.inv_d, self.e, v, w, out,
+        _split_product(*b.arrays, b.touches_held, self.d, self.inv_d, self.e, v, w, out,
                        np.empty(b.nodes))
 
     def _upper_product(self, v: FloatArray, out: FloatArray) -> None:
-        _upper_product(*self.block.operator, self.d, v, out)
+        _upper_product(*self.block.arrays, self.d, v, out)
