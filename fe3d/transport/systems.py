@@ -43,17 +43,20 @@ on): the fields at 1e-4 and 1e-6 differ by at most 1.1e-4 C0 at Courant 1 and 5.
 Courant 10, below the pass rule, and 1e-4 saves one of two target iterations at Courant 1
 and two of five at Courant 10 (docs/performance.md)."""
 
-IN_PLACE = {"low-order": True, "target": True, "SUPG or Galerkin": False}
+IN_PLACE: dict[str, bool] = {"low-order": True, "target": True, "SUPG or Galerkin": False}
 """Which step systems are solved on their operators' own arrays
-(:class:`fe3d.free_block.FreeBlock`: no copy of the free block, about 12 bytes per matrix
-entry or 0.17 KiB per node saved for each system kept) rather than on a CSR copy of it. The
-passes in place read whole rows of the pattern twice per product where the copy reads each
-triangle once, and with M on the pattern 20 bytes per entry instead of 12: one product of
-the split operator costs about 1.9-2.2 SpMV with a lumped M and 2.6-3.0 with M on the
-pattern, against 1.3-1.5 on the copy (223 k nodes, docs/performance.md). Measured through
-the engine (benchmarks/step_cost.py, 223 k nodes): the bounded step 10-20 % slower with the
-low-order and target systems in place; the SUPG step (every iteration on a pattern M) 60 %
-slower, so it keeps its copy."""
+(:class:`fe3d.free_block.FreeBlock`: no copy of the free block, 12 bytes per matrix entry
+or about 0.17 KiB per node for each system kept) rather than on a CSR copy of it. Results
+are the same bit for bit either way; the cost is time. A pass in place reads the pattern's
+whole rows where the copy reads one triangle, and with M on the pattern 20 bytes per entry
+instead of 12: one product of the split operator costs about 2 SpMV with a lumped M and
+about 3 with M on the pattern, against 1.3-1.5 on the copy (223 k nodes). Measured at
+1,039,075 nodes (benchmarks/memory_bench.py) and 223 k nodes (benchmarks/step_cost.py),
+docs/performance.md, 3 Dec 2026: the low-order system in place −0.16 KiB per node of the
+run's peak, the target too another −0.19; the bounded step then costs 74–78 and 147–159
+SpMV at Courant 1 and 10 against 47–61 and 109–116 (low-order alone 68–69 and 132–140), and
+the 10 steps at 1 M nodes 1.55 times the time. The SUPG step with its system in place took
+1.8 times as long (every iteration on a pattern M), so it keeps its copy."""
 
 MAX_CACHED = 3
 """Step systems (matrix + factor or preconditioner) kept per species: a few step lengths."""
