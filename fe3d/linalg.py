@@ -21,8 +21,9 @@ import scipy.sparse.linalg as spla
 
 from fe3d._typing import FloatArray
 from fe3d.errors import SolverError
+from fe3d.free_block import BlockGaussSeidel, FreeBlock
 from fe3d.krylov import SolutionWindow, bicgstab
-from fe3d.sgs import SymmetricGaussSeidel
+from fe3d.sgs import GaussSeidelSplitting, SymmetricGaussSeidel
 
 __all__ = ["COARSEST", "DIRECT_LIMIT", "FIRST_STRENGTH", "FLOW_TOLERANCE", "PROBE_ITERATIONS",
            "RELAXATION", "START_WINDOW", "STRENGTH", "TRANSPORT_METHODS", "LinearSolver",
@@ -305,21 +306,25 @@ class LinearSolver:
     With ``"gauss_seidel"`` the attribute ``A`` is then the matrix as an operator on its
     splitting's own arrays (:class:`fe3d.sgs.SplitMatrix`, products bit for bit those of
     the CSR matrix): the CSR copy is not kept (one value and one column index per entry).
+    ``A`` may also be a step matrix's free block held on the step operators' own arrays
+    (:class:`fe3d.free_block.FreeBlock`): its Gauss–Seidel splitting then reads those
+    arrays too (no copy of A at all, results bit for bit those of the copy); a direct
+    factor or an AMG hierarchy takes a CSR copy of it.
     ``iterations`` lists the Krylov iterations of every solve (0 for direct); ``stats`` sums
     them up. A BiCGSTAB solve that misses the tolerance (BiCGSTAB can stall, or report
     success above the true residual) switches the solver to AMG-GMRES for that solve,
     continued from where it stopped, and for the later ones.
     """
 
-    def __init__(self, A: sp.csr_matrix, *, method: str = "auto", tol: float = 1e-10,
-                 max_iter: int = 300, window: int = START_WINDOW,
+    def __init__(self, A: sp.csr_matrix | FreeBlock, *, method: str = "auto",
+                 tol: float = 1e-10, max_iter: int = 300, window: int = START_WINDOW,
                  omega: float = RELAXATION) -> None:
         import time
 
         if method not in TRANSPORT_METHODS:
             msg = f"linear solver method {method!r}: expected one of {TRANSPORT_METHODS}"
             raise SolverError(msg)
-        self.A = A.tocsr()
+        self.A: Any = A if isinstance(A, FreeBlock) else A.tocsr()
         self.tol = tol
         self.max_iter = max_iter
         self.omega = omega
@@ -327,11 +332,12 @@ class LinearSolver:
         self.probe_iterations = 0
         self._ml: Any = None
         self._inv_diag: FloatArray | None = None
-        self._split: SymmetricGaussSeidel | None = None
+        self._split: GaussSeidelSplitting | None = None
         n = self.A.shape[0]
         t0 = time.perf_counter()
         if method == "direct" or (method == "auto" and n <= DIRECT_LIMIT):
             self.method = "direct"
+            self.A = self.A.tocsr()  # a FreeBlock's copy: small
             self._lu = spla.splu(self.A.tocsc())
         elif method in ("gauss_seidel", "jacobi", "amg"):
             self.method = method
@@ -358,11 +364,13 @@ class LinearSolver:
         n = self.A.shape[0]
         return spla.LinearOperator((n, n), matvec=lambda v: inv * np.ravel(v), dtype=float)
 
-    def _sgs(self) -> SymmetricGaussSeidel:
-        """The compiled symmetric Gauss–Seidel splitting of A, built once."""
+    def _sgs(self) -> GaussSeidelSplitting:
+        """The compiled symmetric Gauss–Seidel splitting of A, built once: on a copy of a
+        CSR matrix's triangles, or on a :class:`fe3d.free_block.FreeBlock`'s operators."""
         if self._split is None:
             try:
-                self._split = SymmetricGaussSeidel(self.A, omega=self.omega)
+                self._split = BlockGaussSeidel(self.A, omega=self.omega) if isinstance(
+                    self.A, FreeBlock) else SymmetricGaussSeidel(self.A, omega=self.omega)
             except ValueError as exc:
                 raise SolverError(str(exc)) from exc
         return self._split

@@ -20,6 +20,8 @@ usual SSOR matrix changes no Krylov iterate and is left out.
 
 from __future__ import annotations
 
+from abc import ABC, abstractmethod
+
 import numba
 import numpy as np
 import scipy.sparse as sp
@@ -27,8 +29,8 @@ import scipy.sparse.linalg as spla
 
 from fe3d._typing import FloatArray, IndexArray
 
-__all__ = ["LinearCombination", "ScaledMatrix", "SplitMatrix", "SymmetricGaussSeidel",
-           "plus_diagonal", "split_csr"]
+__all__ = ["GaussSeidelSplitting", "LinearCombination", "ScaledMatrix", "SplitMatrix",
+           "SymmetricGaussSeidel", "plus_diagonal", "split_csr"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -348,6 +350,12 @@ class LinearCombination(spla.LinearOperator):
             msg = "B does not store its whole diagonal"
             raise ValueError(msg)
 
+    @property
+    def a_diagonal(self) -> FloatArray | None:
+        """A's diagonal when A is a diagonal matrix of its own, None when A is on B's
+        pattern."""
+        return self._diagonal
+
     def _matvec(self, x: FloatArray) -> FloatArray:
         out = np.empty(self.shape[0])
         v = np.ascontiguousarray(x, dtype=float).ravel()
@@ -382,13 +390,112 @@ def plus_diagonal(A: sp.csr_matrix, d: FloatArray) -> sp.csr_matrix:
     return sp.csr_matrix((data, A.indices, A.indptr), shape=A.shape, copy=False)
 
 
-class SymmetricGaussSeidel:
-    """SGS (``omega`` = 1) or SSOR (0 < ``omega`` < 2) splitting of a square CSR matrix
-    with a nonzero diagonal (``ValueError`` otherwise); column indices are sorted on a copy
-    when they are not. Holds the strictly lower and upper parts as two CSR arrays (about
-    the memory of A once more) and the diagonal D: together the whole of A, which
-    :meth:`matrix` gives as an operator so that the caller need not keep A. ``d`` is the
-    relaxed diagonal D/ω."""
+class GaussSeidelSplitting(ABC):
+    """SGS (``omega`` = 1) or SSOR (0 < ``omega`` < 2) splitting A = L + D + U of a square
+    matrix with a nonzero diagonal (``ValueError`` otherwise), and the products and solves
+    built on it (module docstring). Holds D (``diagonal``), the relaxed diagonal ``d`` =
+    D/ω, its inverse ``inv_d`` and ``e`` = 2D/ω − D; a Newton step exchanges these four for
+    those of A + diag (fe3d/transport/newton_correction.py). How L and U are held, and so
+    the passes over them, is the subclass's: :class:`SymmetricGaussSeidel` copies them,
+    ``fe3d.free_block.BlockGaussSeidel`` reads the step operators themselves."""
+
+    def __init__(self, diagonal: FloatArray, omega: float) -> None:
+        if np.any(diagonal == 0.0):
+            msg = "the matrix has a zero on its diagonal: no Gauss–Seidel"
+            raise ValueError(msg)
+        if not 0.0 < omega < 2.0:
+            msg = f"relaxation factor omega = {omega!r}: expected 0 < omega < 2"
+            raise ValueError(msg)
+        self.omega = float(omega)
+        self.n = diagonal.size
+        self.diagonal = diagonal  # D itself
+        self.d = diagonal / self.omega  # the relaxed diagonal D/ω
+        self.inv_d = 1.0 / self.d
+        self.e = 2.0 * self.d - diagonal
+
+    @abstractmethod
+    def matrix(self) -> spla.LinearOperator:
+        """A as an operator on the arrays the splitting reads, so that A need not be kept;
+        its product has the rounding of scipy's CSR product of A, and ``tocsr()`` rebuilds
+        A."""
+
+    # the passes over L and U, each written into ``out`` (``v`` contiguous float64)
+    @abstractmethod
+    def _upper_solve(self, v: FloatArray, out: FloatArray) -> None:
+        """out = (D/ω + U)⁻¹ v (with ``inv_d``)."""
+
+    @abstractmethod
+    def _lower_solve(self, v: FloatArray, out: FloatArray) -> None:
+        """out = (D/ω + L)⁻¹ v (with ``inv_d``)."""
+
+    @abstractmethod
+    def _lower_solve_pair(self, v1: FloatArray, v2: FloatArray, out1: FloatArray,
+                          out2: FloatArray) -> None:
+        """:meth:`_lower_solve` of two vectors in one pass over L."""
+
+    @abstractmethod
+    def _eisenstat(self, v: FloatArray, w: FloatArray, out: FloatArray) -> None:
+        """out = Â v, ``w`` scratch (module docstring)."""
+
+    @abstractmethod
+    def _upper_product(self, v: FloatArray, out: FloatArray) -> None:
+        """out = (D/ω + U) v."""
+
+    def preconditioner(self) -> spla.LinearOperator:
+        """M⁻¹ = (D/ω + U)⁻¹ D/ω (D/ω + L)⁻¹ as an operator (one forward and one backward pass)."""
+        n = self.n
+
+        def apply(v: FloatArray) -> FloatArray:
+            t = np.empty(n)
+            self._lower_solve(np.ascontiguousarray(v, dtype=float).ravel(), t)
+            t *= self.d
+            out = np.empty(n)
+            self._upper_solve(t, out)
+            return out
+
+        return spla.LinearOperator((n, n), matvec=apply, dtype=float)
+
+    def split_product(self, v: FloatArray) -> FloatArray:
+        """Â v = M_L⁻¹ A M_R⁻¹ v by Eisenstat's product (module docstring): one backward and
+        one forward pass; ``v`` contiguous float64."""
+        out, w = np.empty(self.n), np.empty(self.n)
+        self._eisenstat(v, w, out)
+        return out
+
+    def left(self, b: FloatArray) -> FloatArray:
+        """M_L⁻¹ b = D/ω (D/ω + L)⁻¹ b."""
+        out = np.empty(self.n)
+        self._lower_solve(np.ascontiguousarray(b, dtype=float), out)
+        return out * self.d
+
+    def left_pair(self, b: FloatArray, r: FloatArray) -> tuple[FloatArray, FloatArray]:
+        """(M_L⁻¹ b, M_L⁻¹ r) in one pass over the lower triangle."""
+        out1, out2 = np.empty(self.n), np.empty(self.n)
+        self._lower_solve_pair(np.ascontiguousarray(b, dtype=float),
+                               np.ascontiguousarray(r, dtype=float), out1, out2)
+        out1 *= self.d
+        out2 *= self.d
+        return out1, out2
+
+    def right(self, x: FloatArray) -> FloatArray:
+        """M_R x = (D/ω + U) x."""
+        out = np.empty(self.n)
+        self._upper_product(np.ascontiguousarray(x, dtype=float), out)
+        return out
+
+    def right_solve(self, y: FloatArray) -> FloatArray:
+        """M_R⁻¹ y = (D/ω + U)⁻¹ y."""
+        out = np.empty(self.n)
+        self._upper_solve(np.ascontiguousarray(y, dtype=float), out)
+        return out
+
+
+class SymmetricGaussSeidel(GaussSeidelSplitting):
+    """The splitting (:class:`GaussSeidelSplitting`) of a square CSR matrix, column indices
+    sorted on a copy when they are not. Holds the strictly lower and upper parts as two CSR
+    arrays (``lower``, ``upper``: about the memory of A once more) and the diagonal:
+    together the whole of A, which :meth:`matrix` gives as an operator so that the caller
+    need not keep A."""
 
     def __init__(self, A: sp.csr_matrix, omega: float = 1.0) -> None:
         A = A.tocsr()
@@ -397,18 +504,10 @@ class SymmetricGaussSeidel:
             A.sort_indices()
         data = np.asarray(A.data, dtype=float)
         dpos = _diagonal_positions(A.indptr, A.indices)
-        if np.any(dpos < 0) or np.any(data[np.maximum(dpos, 0)] == 0.0):
+        if np.any(dpos < 0):
             msg = "the matrix has a zero on its diagonal: no Gauss–Seidel"
             raise ValueError(msg)
-        if not 0.0 < omega < 2.0:
-            msg = f"relaxation factor omega = {omega!r}: expected 0 < omega < 2"
-            raise ValueError(msg)
-        self.omega = float(omega)
-        self.diagonal = data[dpos]  # D itself: with L and U the whole of A (SplitMatrix)
-        self.d = self.diagonal / self.omega  # the relaxed diagonal D/ω
-        self.inv_d = 1.0 / self.d
-        self.e = 2.0 * self.d - self.diagonal
-        self.n = A.shape[0]
+        super().__init__(data[dpos], omega)
         all_rows = np.arange(self.n, dtype=np.int64)
         lp, li, ld, up, ui, ud = split_csr(A, all_rows, None, all_rows)
         self.lower = (lp, li, ld)
@@ -418,51 +517,18 @@ class SymmetricGaussSeidel:
         """A as an operator on the splitting's arrays, so that A need not be kept."""
         return SplitMatrix(self)
 
-    def preconditioner(self) -> spla.LinearOperator:
-        """M⁻¹ = (D/ω + U)⁻¹ D/ω (D/ω + L)⁻¹ as an operator (one forward and one backward pass)."""
-        n = self.n
+    def _upper_solve(self, v: FloatArray, out: FloatArray) -> None:
+        _upper_solve(*self.upper, self.inv_d, v, out)
 
-        def apply(v: FloatArray) -> FloatArray:
-            t = np.empty(n)
-            _lower_solve(*self.lower, self.inv_d,
-                         np.ascontiguousarray(v, dtype=float).ravel(), t)
-            t *= self.d
-            out = np.empty(n)
-            _upper_solve(*self.upper, self.inv_d, t, out)
-            return out
+    def _lower_solve(self, v: FloatArray, out: FloatArray) -> None:
+        _lower_solve(*self.lower, self.inv_d, v, out)
 
-        return spla.LinearOperator((n, n), matvec=apply, dtype=float)
+    def _lower_solve_pair(self, v1: FloatArray, v2: FloatArray, out1: FloatArray,
+                          out2: FloatArray) -> None:
+        _lower_solve_pair(*self.lower, self.inv_d, v1, v2, out1, out2)
 
-    def split_product(self, v: FloatArray) -> FloatArray:
-        """Â v = M_L⁻¹ A M_R⁻¹ v by Eisenstat's product (module docstring): one backward and
-        one forward pass; ``v`` contiguous float64."""
-        out, w = np.empty(self.n), np.empty(self.n)
+    def _eisenstat(self, v: FloatArray, w: FloatArray, out: FloatArray) -> None:
         _split_product(*self.lower, *self.upper, self.d, self.inv_d, self.e, v, w, out)
-        return out
 
-    def left(self, b: FloatArray) -> FloatArray:
-        """M_L⁻¹ b = D/ω (D/ω + L)⁻¹ b."""
-        out = np.empty(self.n)
-        _lower_solve(*self.lower, self.inv_d, np.ascontiguousarray(b, dtype=float), out)
-        return out * self.d
-
-    def left_pair(self, b: FloatArray, r: FloatArray) -> tuple[FloatArray, FloatArray]:
-        """(M_L⁻¹ b, M_L⁻¹ r) in one pass over the lower triangle."""
-        out1, out2 = np.empty(self.n), np.empty(self.n)
-        _lower_solve_pair(*self.lower, self.inv_d, np.ascontiguousarray(b, dtype=float),
-                          np.ascontiguousarray(r, dtype=float), out1, out2)
-        out1 *= self.d
-        out2 *= self.d
-        return out1, out2
-
-    def right(self, x: FloatArray) -> FloatArray:
-        """M_R x = (D/ω + U) x."""
-        out = np.empty(self.n)
-        _upper_product(*self.upper, self.d, np.ascontiguousarray(x, dtype=float), out)
-        return out
-
-    def right_solve(self, y: FloatArray) -> FloatArray:
-        """M_R⁻¹ y = (D/ω + U)⁻¹ y."""
-        out = np.empty(self.n)
-        _upper_solve(*self.upper, self.inv_d, np.ascontiguousarray(y, dtype=float), out)
-        return out
+    def _upper_product(self, v: FloatArray, out: FloatArray) -> None:
+        _upper_product(*self.upper, self.d, v, out)

@@ -17,6 +17,7 @@ import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import SolverControl, TimeControl
+from fe3d.free_block import FreeBlock
 from fe3d.linalg import LinearSolver, solve_with_preconditioner
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import split_rows
@@ -41,6 +42,21 @@ Measured through the engine at 223 k nodes (benchmarks/step_cost.py's box, 12 st
 on): the fields at 1e-4 and 1e-6 differ by at most 1.1e-4 C0 at Courant 1 and 5.1e-4 C0 at
 Courant 10, below the pass rule, and 1e-4 saves one of two target iterations at Courant 1
 and two of five at Courant 10 (docs/performance.md)."""
+
+IN_PLACE: dict[str, bool] = {"low-order": True, "target": True, "SUPG or Galerkin": False}
+"""Which step systems are solved on their operators' own arrays
+(:class:`fe3d.free_block.FreeBlock`: no copy of the free block, 12 bytes per matrix entry
+or about 0.17 KiB per node for each system kept) rather than on a CSR copy of it. Results
+are the same bit for bit either way; the cost is time. A pass in place reads the pattern's
+whole rows where the copy reads one triangle, and with M on the pattern 20 bytes per entry
+instead of 12: one product of the split operator costs about 2 SpMV with a lumped M and
+about 3 with M on the pattern, against 1.3-1.5 on the copy (223 k nodes). Measured at
+1,039,075 nodes (benchmarks/memory_bench.py) and 223 k nodes (benchmarks/step_cost.py),
+docs/performance.md, 3 Dec 2026: the low-order system in place −0.16 KiB per node of the
+run's peak, the target too another −0.19; the bounded step then costs 74–78 and 147–159
+SpMV at Courant 1 and 10 against 47–61 and 109–116 (low-order alone 68–69 and 132–140), and
+the 10 steps at 1 M nodes 1.55 times the time. The SUPG step with its system in place took
+1.8 times as long (every iteration on a pattern M), so it keeps its copy."""
 
 MAX_CACHED = 3
 """Step systems (matrix + factor or preconditioner) kept per species: a few step lengths."""
@@ -228,15 +244,17 @@ class StepSystems:
             while len(cache.targets) >= MAX_CACHED:
                 cache.targets.pop(next(iter(cache.targets)))
             cache.targets[key] = self._split(M, K, dt, formula, active,
-                                             tol=max(self.solver.tolerance, TARGET_TOLERANCE))
+                                             tol=max(self.solver.tolerance, TARGET_TOLERANCE),
+                                             in_place=IN_PLACE["target"])
         return cache.targets[key]
 
     def _split(self, M: sp.csr_matrix, K: sp.csr_matrix, dt: float, formula: StepCoefficients,
                active: tuple[str, ...], tol: float | None = None,
-               lumped: bool = False) -> StepSystem:
+               lumped: bool = False, in_place: bool = False) -> StepSystem:
         """S = a0/Δt M + θK split by held and free nodes, with its solver (relative
         tolerance ``tol``, default ``solver.tolerance``); ``lumped``: M is a diagonal
-        matrix (its own pattern), else M is on the mesh's pattern."""
+        matrix (its own pattern), else M is on the mesh's pattern; ``in_place``: the solver
+        reads S_ff off M's and K's arrays (:data:`IN_PLACE`), else a CSR copy of it."""
         n = self.site.n_nodes
         # held as an operator on M's and K's arrays; its CSR copy only while it is split
         S = LinearCombination(M, formula.a0 / dt, K, formula.theta)
@@ -245,7 +263,11 @@ class StepSystems:
             is_fixed[self.held_nodes[name]] = True
         free = np.nonzero(~is_fixed)[0]
         fixed = np.nonzero(is_fixed)[0]
-        S_ff, S_fD = split_rows(S.tocsr(), free, fixed)
+        if in_place:  # S_ff read off M's and K's arrays: no copy
+            block = FreeBlock(S, free, fixed)
+            S_ff, S_fD = block, block.held_columns()
+        else:
+            S_ff, S_fD = split_rows(S.tocsr(), free, fixed)
         solver = LinearSolver(S_ff, method=self.solver.linear_solver,
                               tol=self.solver.tolerance if tol is None else tol)
         explicit = None if formula.theta == 1.0 else ScaledMatrix(K, formula.theta - 1.0)
@@ -263,6 +285,8 @@ class StepSystems:
             M, K = self.operators(s, dt_tau)
             while len(cache.systems) >= MAX_CACHED:
                 cache.systems.pop(next(iter(cache.systems)))
-            cache.systems[key] = self._split(M, K, dt, formula, active,
-                                             lumped=self.scheme.monotone)
+            low_order = self.scheme.monotone
+            cache.systems[key] = self._split(
+                M, K, dt, formula, active, lumped=low_order,
+                in_place=IN_PLACE["low-order" if low_order else "SUPG or Galerkin"])
         return cache.systems[key]
