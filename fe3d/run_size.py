@@ -3,7 +3,7 @@
 Estimates, not promises: the mesh size from the target cell sizes (the plume corridor adds
 to it), the steps from ``time.step`` and the breakpoints (without ``time.step`` the flow
 sets them), the memory from the whole-run peak measured on this machine (docs/performance.md:
-about 350 MiB plus 4.1 KiB per node for one species) and the written output from the sizes
+about 529 MiB plus 2.79 KiB per node for one species) and the written output from the sizes
 of the files a run writes, with the checkpoint it keeps on disk while it runs.
 :func:`check_fits` refuses, with the numbers, a run whose memory exceeds the machine's or
 whose output exceeds the free disk.
@@ -12,13 +12,13 @@ whose output exceeds the free disk.
 from __future__ import annotations
 
 import math
-import os
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
+from fe3d._machine import machine_memory
 from fe3d.case.schema import Case
 from fe3d.errors import CaseError
 
@@ -26,13 +26,16 @@ __all__ = ["RunSize", "check_fits", "estimate_mesh_size", "estimate_run", "machi
 
 MiB = 1 << 20
 
-BASE_MEMORY = 350 * MiB
+BASE_MEMORY = 529 * MiB
 """Peak memory of a run apart from its mesh [bytes] (interpreter, libraries, compiled
-kernels; measured, docs/performance.md)."""
+kernels; the fixed part of the fit below)."""
 
-MEMORY_PER_NODE = 4.1 * 1024
-"""Peak memory per node of a one-species run [bytes] (measured from 50 k to 518 k nodes,
-docs/performance.md)."""
+MEMORY_PER_NODE = 2.79 * 1024
+"""Peak memory per node of a one-species run [bytes]: least-squares fit of whole runs from
+72 k to 2.1 M nodes, 3 Dec 2026 (benchmarks/memory_bench.py, docs/performance.md "Memory
+per node"; a 5.9 M-node run peaked at 2.69 KiB per node). Models large enough to solve
+their bounded steps in place (fe3d.transport.systems.splittings_in_place) need about
+0.35 KiB per node less: not counted, so the estimate errs on the large side."""
 
 MEMORY_PER_NODE_SPECIES = 1024
 """Further memory per node for each further species [bytes]: its fields, operators and
@@ -144,14 +147,6 @@ def _zone_triangles(radius: float, size: float, background: float) -> float:
     local = size + rho * (background - size) / (4.0 * background)
     ring = 2.3 * 2.0 * math.pi * (radius + rho) * (1.0 / local**2 - 1.0 / background**2)
     return inner + float(np.sum((ring[1:] + ring[:-1]) / 2.0 * np.diff(rho)))
-
-
-def machine_memory() -> int:
-    """Physical memory of this machine [bytes] (0 when the system does not say)."""
-    try:
-        return int(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES"))
-    except (ValueError, OSError, AttributeError):
-        return 0
 
 
 def _free_disk(folder: Path) -> int:

@@ -15,6 +15,7 @@ from typing import Any, Literal
 import numpy as np
 import scipy.sparse as sp
 
+from fe3d._machine import machine_memory
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import SolverControl, TimeControl
 from fe3d.free_block import FreeBlock
@@ -28,7 +29,8 @@ from fe3d.transport.model import MediumFields, SpeciesModel
 from fe3d.transport.stabilization import supg_tau
 from fe3d.transport.timeschemes import StepCoefficients
 
-__all__ = ["NearbySolver", "Scheme", "StepSystem", "StepSystems", "TargetKind"]
+__all__ = ["IN_PLACE_SHARE", "PEAK_WITH_COPIES", "NearbySolver", "Scheme", "StepSystem",
+           "StepSystems", "TargetKind", "splittings_in_place"]
 
 TargetKind = Literal["linearised", "solved"]
 """How flux correction's target step is found (T16b)."""
@@ -43,20 +45,33 @@ on): the fields at 1e-4 and 1e-6 differ by at most 1.1e-4 C0 at Courant 1 and 5.
 Courant 10, below the pass rule, and 1e-4 saves one of two target iterations at Courant 1
 and two of five at Courant 10 (docs/performance.md)."""
 
-IN_PLACE: dict[str, bool] = {"low-order": True, "target": True, "SUPG or Galerkin": False}
-"""Which step systems are solved on their operators' own arrays
-(:class:`fe3d.free_block.FreeBlock`: no copy of the free block, 12 bytes per matrix entry
-or about 0.17 KiB per node for each system kept) rather than on a CSR copy of it. Results
-are the same bit for bit either way; the cost is time. A pass in place reads the pattern's
-whole rows where the copy reads one triangle, and with M on the pattern 20 bytes per entry
-instead of 12: one product of the split operator costs about 2 SpMV with a lumped M and
-about 3 with M on the pattern, against 1.3-1.5 on the copy (223 k nodes). Measured at
-1,039,075 nodes (benchmarks/memory_bench.py) and 223 k nodes (benchmarks/step_cost.py),
-docs/performance.md, 3 Dec 2026: the low-order system in place −0.16 KiB per node of the
-run's peak, the target too another −0.19; the bounded step then costs 74–78 and 147–159
-SpMV at Courant 1 and 10 against 47–61 and 109–116 (low-order alone 68–69 and 132–140), and
-the 10 steps at 1 M nodes 1.55 times the time. The SUPG step with its system in place took
-1.8 times as long (every iteration on a pattern M), so it keeps its copy."""
+PEAK_WITH_COPIES = (529 * 2**20, 2.79 * 1024)
+"""A run's peak memory with every step system's Gauss–Seidel splitting copied [bytes]: a
+fixed part and a part per node (least-squares fit of one-species whole runs from 72 k to
+2.1 M nodes, benchmarks/memory_bench.py, docs/performance.md "Memory per node")."""
+
+IN_PLACE_SHARE = 0.5
+"""Share of the machine's memory above which the estimate :data:`PEAK_WITH_COPIES` makes a
+run solve its bounded steps in place (:func:`splittings_in_place`; common practice, no
+source: below half the memory, speed is worth more than the memory saved)."""
+
+
+def splittings_in_place(n_nodes: int, memory: int) -> bool:
+    """True when the low-order and target step systems of a bounded run (T16, T16b) are to
+    be solved on their operators' own arrays (:class:`fe3d.free_block.FreeBlock`: no copy
+    of the free block) rather than on a CSR copy: when a one-species run with copies would
+    need more than :data:`IN_PLACE_SHARE` of the machine's ``memory`` [bytes] (never when
+    the machine does not say, ``memory`` 0). Results are the same bit for bit either way;
+    the choice trades time for memory. Measured 3 Dec 2026 (docs/performance.md): in place,
+    the run's peak falls by 0.35 KiB per node (0.16 the low-order system, 0.19 the target;
+    1,039,075 nodes), and the bounded step costs 74–78 and 147–159 SpMV at Courant 1 and
+    10 against 47–61 and 109–116 (223 k nodes; 10 steps at 1 M nodes 1.55 times the time):
+    a pass in place reads the pattern's whole rows where the copy reads one triangle, and
+    20 bytes per entry instead of 12 with M on the pattern. SUPG steps always keep the copy
+    (in place they took 1.8 times as long)."""
+    fixed, per_node = PEAK_WITH_COPIES
+    return memory > 0 and fixed + per_node * n_nodes > IN_PLACE_SHARE * memory
+
 
 MAX_CACHED = 3
 """Step systems (matrix + factor or preconditioner) kept per species: a few step lengths."""
@@ -151,6 +166,9 @@ class StepSystems:
         self.held_nodes = held_nodes
         self._cache: dict[str, _SpeciesCache] = {}
         self._scratch: FloatArray | None = None
+        # bounded steps solved without copies of their free blocks on a large model
+        self.in_place = scheme.monotone and splittings_in_place(site.n_nodes,
+                                                                machine_memory())
 
     def _of(self, s: SpeciesModel) -> _SpeciesCache:
         return self._cache.setdefault(s.name, _SpeciesCache())
@@ -245,7 +263,7 @@ class StepSystems:
                 cache.targets.pop(next(iter(cache.targets)))
             cache.targets[key] = self._split(M, K, dt, formula, active,
                                              tol=max(self.solver.tolerance, TARGET_TOLERANCE),
-                                             in_place=IN_PLACE["target"])
+                                             in_place=self.in_place)
         return cache.targets[key]
 
     def _split(self, M: sp.csr_matrix, K: sp.csr_matrix, dt: float, formula: StepCoefficients,
@@ -254,7 +272,8 @@ class StepSystems:
         """S = a0/Δt M + θK split by held and free nodes, with its solver (relative
         tolerance ``tol``, default ``solver.tolerance``); ``lumped``: M is a diagonal
         matrix (its own pattern), else M is on the mesh's pattern; ``in_place``: the solver
-        reads S_ff off M's and K's arrays (:data:`IN_PLACE`), else a CSR copy of it."""
+        reads S_ff off M's and K's arrays (:func:`splittings_in_place`), else a CSR copy of
+        it."""
         n = self.site.n_nodes
         # held as an operator on M's and K's arrays; its CSR copy only while it is split
         S = LinearCombination(M, formula.a0 / dt, K, formula.theta)
@@ -285,8 +304,7 @@ class StepSystems:
             M, K = self.operators(s, dt_tau)
             while len(cache.systems) >= MAX_CACHED:
                 cache.systems.pop(next(iter(cache.systems)))
-            low_order = self.scheme.monotone
-            cache.systems[key] = self._split(
-                M, K, dt, formula, active, lumped=low_order,
-                in_place=IN_PLACE["low-order" if low_order else "SUPG or Galerkin"])
+            cache.systems[key] = self._split(M, K, dt, formula, active,
+                                             lumped=self.scheme.monotone,
+                                             in_place=self.in_place)
         return cache.systems[key]

@@ -7,28 +7,13 @@ be equal bit for bit."""
 from __future__ import annotations
 
 import numpy as np
+from _two_species_strip import two_species_strip
 
-from fe3d.case.builder import Layer, Material, Source, Species, Time, box_case
 from fe3d.case.parts import TransportInputs
 from fe3d.pipeline import mesh_and_flow
 from fe3d.transport.limiter import TargetFluxes
 from fe3d.transport.run import run_transport, step_context
 from fe3d.transport.systems import StepSystems
-
-
-def _two_species() -> object:
-    """A 30 m sand strip with two sorbing species fed at the west face for 2 d."""
-    sand = Material(10.0, 10.0, porosity=0.3, bulk_density=1600.0,
-                    longitudinal_dispersivity=0.5, transverse_dispersivity=0.05)
-    return box_case(
-        length=30.0, width=4.0, cell=1.0, dz=1.0, heads={"west": 1.5, "east": 0.0},
-        layers=[Layer("sand", -2.0, sand)],
-        species=[Species("fast", limit=0.01, kd=0.0), Species("slow", limit=0.01, kd=0.2)],
-        sources=[Source("inlet_fast", species="fast", shape="face_patch", face="west",
-                        concentration="100 mg/L", stop=2.0),
-                 Source("inlet_slow", species="slow", shape="face_patch", face="west",
-                        concentration="50 mg/L", stop=2.0)],
-        time=Time(6.0, 0.5))
 
 
 def _last_fields(case: object) -> dict[str, np.ndarray]:
@@ -37,7 +22,7 @@ def _last_fields(case: object) -> dict[str, np.ndarray]:
 
 
 def test_species_share_the_scratch_and_it_changes_no_value(monkeypatch) -> None:
-    case = _two_species()
+    case = two_species_strip()
     site, flow = mesh_and_flow(case)
     ctx = step_context(site, flow, TransportInputs.of(case), None)
     for s in ctx.species:

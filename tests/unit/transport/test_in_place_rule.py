@@ -1,0 +1,50 @@
+"""Large bounded runs solve their step systems without copies of the free blocks
+(fe3d/transport/systems.py, ``splittings_in_place``; fe3d/free_block.py). The reference is
+the same run with copied splittings (a property of the code, not a published value): the
+values are formed by the same expression and summed in the same order, so the fields must
+be equal bit for bit. The rule's threshold is arithmetic on the measured fit it names."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from _two_species_strip import two_species_strip
+
+from fe3d.case.builder import Solver
+from fe3d.case.parts import TransportInputs
+from fe3d.pipeline import mesh_and_flow
+from fe3d.transport import systems
+from fe3d.transport.run import run_transport, step_context
+from fe3d.transport.systems import IN_PLACE_SHARE, PEAK_WITH_COPIES, splittings_in_place
+
+GiB = 2**30
+
+
+def test_in_place_only_above_the_share_of_the_memory() -> None:
+    fixed, per_node = PEAK_WITH_COPIES
+    memory = 24 * GiB
+    edge = (IN_PLACE_SHARE * memory - fixed) / per_node  # about 4.3 M nodes on 24 GiB
+    assert 4.0e6 < edge < 4.6e6
+    assert not splittings_in_place(int(edge) - 1, memory)
+    assert splittings_in_place(int(edge) + 1, memory)
+    assert not splittings_in_place(10**9, 0)  # the machine does not say: keep the copies
+
+
+def _run(case: object, memory: int, monkeypatch: pytest.MonkeyPatch,
+         ) -> tuple[bool, dict[str, np.ndarray]]:
+    monkeypatch.setattr(systems, "machine_memory", lambda: memory)
+    site, flow = mesh_and_flow(case)
+    inputs = TransportInputs.of(case)
+    in_place = step_context(site, flow, inputs, None).systems.in_place
+    return in_place, list(run_transport(site, flow, inputs))[-1].concentration
+
+
+def test_in_place_run_equals_the_copied_one_bit_for_bit(monkeypatch) -> None:
+    # Gauss–Seidel-BiCGSTAB: the solver that reads the splitting (small models solve directly)
+    case = two_species_strip(Solver(linear_solver="gauss_seidel"))
+    copied_flag, copied = _run(case, 0, monkeypatch)  # memory unknown: copies
+    in_place_flag, in_place = _run(case, 1, monkeypatch)  # one byte: every model is large
+    assert (copied_flag, in_place_flag) == (False, True)
+    for name in copied:
+        assert np.array_equal(copied[name], in_place[name]), name
+        assert copied[name].max() > 0.0
