@@ -50,10 +50,11 @@ PEAK_WITH_COPIES = (529 * 2**20, 2.79 * 1024)
 fixed part and a part per node (least-squares fit of one-species whole runs from 72 k to
 2.1 M nodes, benchmarks/memory_bench.py, docs/performance.md "Memory per node")."""
 
-IN_PLACE_SHARE = 0.5
+IN_PLACE_SHARE = 0.8
 """Share of the machine's memory above which the estimate :data:`PEAK_WITH_COPIES` makes a
-run solve its bounded steps in place (:func:`splittings_in_place`; common practice, no
-source: below half the memory, speed is worth more than the memory saved)."""
+run solve its bounded steps in place (:func:`splittings_in_place`): only where the copies
+might not fit, since in place the steps are 1.5 (1 M nodes) to 3.8 (7.9 M nodes) times
+slower (docs/performance.md; the share itself is common practice, no source)."""
 
 
 def splittings_in_place(n_nodes: int, memory: int) -> bool:
