@@ -21,21 +21,19 @@ import numpy as np
 from fe3d._machine import machine_memory
 from fe3d.case.schema import Case
 from fe3d.errors import CaseError
+from fe3d.transport.systems import PEAK_WITH_COPIES
 
 __all__ = ["RunSize", "check_fits", "estimate_mesh_size", "estimate_run", "machine_memory"]
 
 MiB = 1 << 20
 
-BASE_MEMORY = 529 * MiB
-"""Peak memory of a run apart from its mesh [bytes] (interpreter, libraries, compiled
-kernels; the fixed part of the fit below)."""
-
-MEMORY_PER_NODE = 2.79 * 1024
-"""Peak memory per node of a one-species run [bytes]: least-squares fit of whole runs from
-72 k to 2.1 M nodes, 3 Dec 2026 (benchmarks/memory_bench.py, docs/performance.md "Memory
-per node"; a 5.9 M-node run peaked at 2.69 KiB per node). Models large enough to solve
-their bounded steps in place (fe3d.transport.systems.splittings_in_place) need about
-0.35 KiB per node less: not counted, so the estimate errs on the large side."""
+BASE_MEMORY, MEMORY_PER_NODE = PEAK_WITH_COPIES
+"""Peak memory of a one-species run [bytes]: a fixed part (interpreter, libraries, compiled
+kernels) and a part per node, the transport's own measured fit (3 Dec 2026: 529 MiB +
+2.79 KiB per node, whole runs from 72 k to 2.1 M nodes; a 5.9 M-node run peaked at 2.69
+KiB per node). Models large enough to solve their bounded steps in place
+(fe3d.transport.systems.splittings_in_place) need about 0.35 KiB per node less: not
+counted, so the estimate errs on the large side."""
 
 MEMORY_PER_NODE_SPECIES = 1024
 """Further memory per node for each further species [bytes]: its fields, operators and
