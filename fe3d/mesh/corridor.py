@@ -151,6 +151,15 @@ class ReceptorSpread:
         N30: 16 % low at 0.7 cells per σ_T)."""
         return self.sigma_t < self.cell_size
 
+    def thin_warning(self) -> str:
+        """The one warning line for a :attr:`thin` plume (``fe3d mesh`` and the run's
+        report say the same)."""
+        return (f"{self.name}: the plume there is narrower than a corridor cell (σ_T "
+                f"{self.sigma_t:.3g} m across, cells {self.cell_size:.3g} m); concentrations "
+                "there may read low (an outside check read a point source's plume 16 % low at "
+                "0.7 cells per σ_T: docs/verification.md N30): refine (mesh.corridor_peclet) "
+                "and compare")
+
 
 @dataclass(frozen=True)
 class Corridor:

@@ -31,10 +31,7 @@ def mesh_lines(site: SiteMesh) -> list[MeshLine]:
         out += [MeshLine(line) for line in corridor.lines()]
         if corridor.note:
             out.append(MeshLine(corridor.note, "warning"))
-        out += [MeshLine(f"the plume at {r.name} is narrower than a corridor cell (σ_T "
-                         f"{r.sigma_t:.3g} m, cells {r.cell_size:.3g} m): concentrations "
-                         "there may read low; refine (mesh.corridor_peclet) or check with "
-                         "fe3d refine", "warning") for r in corridor.receptors if r.thin]
+        out += [MeshLine(r.thin_warning(), "warning") for r in corridor.receptors if r.thin]
     out.append(MeshLine("sublayers: " + ", ".join(
         f"{k} {v}" for k, v in report.sublayers.items())))
     out.append(MeshLine("faces: " + ", ".join(f"{k} ({v.shape[1]} triangles)"

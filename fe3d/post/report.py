@@ -123,11 +123,7 @@ def quality_warnings(s: RunSummary) -> list[str]:
             out += _limit_warnings(s.extremes[sp], s)
     # the top and bottom faces are the aquifer's own limits (water table, base), not a model
     # boundary drawn too close: only the side faces can cut a plume short
-    out += [f"{r.name}: the plume there is narrower than a corridor cell (σ_T {r.sigma_t:.3g} m "
-            f"across, cells {r.cell_size:.3g} m); concentrations there may read low (an "
-            "outside check read a point source's plume 16 % low at 0.7 cells per σ_T: "
-            "docs/verification.md N30): refine (mesh.corridor_peclet) and compare"
-            for r in s.thin_plumes]
+    out += [r.thin_warning() for r in s.thin_plumes]
     out += [f"{b.species}: the part above the limit reaches the {b.face} face where no water "
             f"leaves the model, first at {_t(b.first_time, s.time_unit)}: the boundary cuts "
             "the plume; move it farther out and compare" for b in s.boundary_contacts
