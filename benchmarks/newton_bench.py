@@ -163,7 +163,7 @@ def measure(h: float, dz: float, scheme: str) -> dict[str, Any]:
         for courant in (1.0, 10.0):
             probe = with_changes(base, time={"end": "1 d", "step": "1 d"}, species=species)
             rate = step_context(site, flow, TransportInputs.of(probe), None)
-            dt = courant / max(s.coefficients.courant_rate for s in rate.species)
+            dt = courant / max(s.courant_rate for s in rate.species)
             time_changes: dict[str, Any] = {"end": f"{dt * STEPS} s", "step": f"{dt} s"}
             if time_scheme is not None:
                 time_changes["scheme"] = time_scheme

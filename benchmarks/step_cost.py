@@ -109,7 +109,7 @@ def measure(h: float, dz: float) -> dict[str, Any]:
         for courant in (1.0, 10.0):
             probe = with_changes(base, time={"end": "1 d", "step": "1 d"})
             rate = step_context(site, flow, TransportInputs.of(probe), None)
-            dt = courant / max(s.coefficients.courant_rate for s in rate.species)
+            dt = courant / max(s.courant_rate for s in rate.species)
             time_changes: dict[str, Any] = {"end": f"{dt * STEPS} s", "step": f"{dt} s"}
             if scheme is not None:
                 time_changes["scheme"] = scheme

@@ -24,6 +24,7 @@ from fe3d._typing import FloatArray, IndexArray
 from fe3d.sgs import split_csr
 
 __all__ = ["CELL_BLOCK", "MASS_FRACTION", "BoundaryFacets", "CsrPattern", "cell_gradients",
+           "cells_spanning_zero",
            "gradients", "index_array", "index_type", "length_along", "node_graph", "split_rows",
            "sum_at_corners", "tensor_gradient", "volumes"]
 
@@ -183,6 +184,27 @@ def sum_at_corners(cells: IndexArray, per_cell: FloatArray, n_nodes: int) -> Flo
     ``(4 n_cells)`` temporaries (the tiled values, and an int64 copy of int32 cells)."""
     out = np.zeros(n_nodes)
     _corner_sum_kernel(index_array(cells), np.ascontiguousarray(per_cell, dtype=float), out)
+    return out
+
+
+@_jit
+def _spanning_kernel(cells: IndexArray, distance: FloatArray, out: np.ndarray) -> None:
+    for e in range(cells.shape[1]):
+        low = high = distance[cells[0, e]]
+        for i in range(1, 4):
+            d = distance[cells[i, e]]
+            low, high = min(low, d), max(high, d)
+        out[e] = high >= 0.0 and low <= 0.0
+
+
+def cells_spanning_zero(cells: IndexArray, distance: FloatArray) -> np.ndarray:
+    """True for each cell whose nodal ``distance`` ``(n_nodes,)`` has a value at or above
+    zero and one at or below it (the cells its zero level crosses or touches), shape
+    ``(n_cells,)``: one pass over the cells, without the ``(4, n_cells)`` gather of
+    ``distance[cells]`` and its minimum and maximum (48 bytes per cell, about 0.26 KiB per
+    node, the largest transient of a run's end)."""
+    out = np.empty(np.shape(cells)[1], dtype=np.bool_)
+    _spanning_kernel(index_array(cells), np.ascontiguousarray(distance, dtype=float), out)
     return out
 
 

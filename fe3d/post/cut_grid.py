@@ -14,6 +14,7 @@ from typing import Any
 import numpy as np
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.p1 import cells_spanning_zero
 
 __all__ = ["crossing_grid"]
 
@@ -26,9 +27,7 @@ def crossing_grid(points: FloatArray, cells: IndexArray, distance: FloatArray,
     their nodes; None when no cell is crossed."""
     import pyvista as pv
 
-    side = distance[cells]
-    touches = (side.max(axis=0) >= 0.0) & (side.min(axis=0) <= 0.0)
-    cut = cells[:, touches]
+    cut = cells[:, cells_spanning_zero(cells, distance)]
     if cut.size == 0:
         return None
     nodes, local = np.unique(cut, return_inverse=True)

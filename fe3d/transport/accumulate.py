@@ -194,7 +194,7 @@ class RunStatistics:
             where = ", ".join(f"{x:.1f}" for x in points[:, j])
             lows.append(f"{s.name} min {new[j]:.3g} kg/m³ at ({where}) m")
             self.courant[s.name] = max(self.courant[s.name],
-                                       dt * s.coefficients.courant_rate)
+                                       dt * s.courant_rate)
             if dt * plume_rates[s.name] > self.plume_courant[s.name]:
                 self.plume_courant[s.name] = dt * plume_rates[s.name]
                 self.plume_courant_at[s.name] = tuple(

@@ -9,7 +9,7 @@ parents before daughters. Pure data and pointwise laws: no operators, no time st
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import scipy.sparse as sp
@@ -154,15 +154,13 @@ class Coefficients:
     decays), ``darcy_flux`` q [m/s] shape ``(3, n_cells)`` (the flow field's, not a copy;
     :attr:`velocity` a = q/m is formed from it where needed), ``along_flow_diffusivity``
     κ = aᵀθDa/(|a|² m) [m²/s], :attr:`reaction_rate` σ = k/m [1/s] (τ, T8, formed where
-    needed), ``element_length``
-    h along a [m]; ``courant_rate`` max |a|/h [1/s] (Courant number per second of step)."""
+    needed), ``element_length`` h along a [m]."""
 
     storage: FloatArray
     decay: FloatArray
     darcy_flux: FloatArray
     along_flow_diffusivity: FloatArray
     element_length: FloatArray
-    courant_rate: float
 
     @property
     def reaction_rate(self) -> FloatArray:
@@ -183,11 +181,17 @@ class SpeciesModel:
     ``reaction`` is a nonlinear rate law (name, parameters) or None; ``in_user_law`` tells
     whether a user rate law includes the species (T11b); ``sorbed_decay`` [1/s] is λ when
     the sorbed phase decays. Nodal weights [m³ or kg, lumped, T9]: ``dissolved_volume``
-    ∫θφ, ``sorbed_capacity`` ∫ρ_b K_d φ, ``decay_weight`` ∫kφ."""
+    ∫θφ, ``sorbed_capacity`` ∫ρ_b K_d φ, ``decay_weight`` ∫kφ. ``courant_rate`` max |a|/h
+    [1/s] over the cells (Courant number per second of step).
+
+    ``coefficients`` holds the per-cell values the operators are built from (32 bytes per
+    cell); it is None in a run whose steps no longer read them
+    (:meth:`without_cell_coefficients`)."""
 
     name: str
     spec: Species
-    coefficients: Coefficients
+    coefficients: Coefficients | None
+    courant_rate: float
     isotherms: tuple[Isotherm, ...]
     reaction: tuple[str, dict[str, float]] | None
     in_user_law: bool
@@ -196,6 +200,12 @@ class SpeciesModel:
     sorbed_capacity: FloatArray
     decay_weight: FloatArray
     outflow_weights: dict[str, FloatArray]
+
+    def without_cell_coefficients(self) -> SpeciesModel:
+        """The same species without its per-cell coefficients (about 0.17 KiB per node):
+        for the steps of a run whose operators are built once and not rebuilt
+        (:meth:`fe3d.transport.step.StepContext.set_up`)."""
+        return replace(self, coefficients=None)
 
     @property
     def nonlinear(self) -> bool:
@@ -289,8 +299,8 @@ def build_species(site: SiteMesh, flow: FlowField, inputs: TransportInputs,
             name=name, spec=spec,
             coefficients=Coefficients(
                 storage=m, decay=k, darcy_flux=q, along_flow_diffusivity=kappa,
-                element_length=h,
-                courant_rate=float(np.max(np.sqrt(speed2) / h))),
+                element_length=h),
+            courant_rate=float(np.max(np.sqrt(speed2) / h)),
             isotherms=tuple(isotherms), reaction=spec.nonlinear_reaction,
             in_user_law=user is not None and name in user.species,
             sorbed_decay=lam if spec.decay_in_sorbed_phase else 0.0,

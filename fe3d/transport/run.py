@@ -115,6 +115,8 @@ def run_transport(
     """
     limit_blas_threads()
     ctx = step_context(site, flow, inputs, base_dir)
+    courant = PlumeCourant(site, ctx.species, ctx.sources)  # reads the per-cell coefficients
+    ctx = ctx.set_up()  # operators built; per-cell coefficients freed where no step reads them
     species, tc = ctx.species, inputs.time
     probe = _observation_operator(site, flow, inputs)
     if extra_probe is not None:
@@ -128,7 +130,6 @@ def run_transport(
     run = _RunningState.started(site, flow, inputs, ctx, planner, probe) \
         if resume_from is None else _RunningState.resumed(site, flow, ctx, planner, probe,
                                                           resume_from)
-    courant = PlumeCourant(site, species, ctx.sources)
     if run.outputs < _yields_until(planner.t, out_set):  # t = 0, or an output not yet given
         run.outputs += 1
         yield run.snapshot(planner.t)

@@ -25,12 +25,12 @@ from fe3d.p1 import split_rows
 from fe3d.sgs import LinearCombination, ScaledMatrix
 from fe3d.transport.assembly import monotone_operators, transport_operators
 from fe3d.transport.limiter import TargetFluxes
-from fe3d.transport.model import MediumFields, SpeciesModel
+from fe3d.transport.model import Coefficients, MediumFields, SpeciesModel
 from fe3d.transport.stabilization import supg_tau
 from fe3d.transport.timeschemes import StepCoefficients
 
 __all__ = ["IN_PLACE_SHARE", "PEAK_WITH_COPIES", "NearbySolver", "Scheme", "StepSystem",
-           "StepSystems", "TargetKind", "splittings_in_place"]
+           "StepSystems", "TargetKind", "cell_coefficients", "splittings_in_place"]
 
 TargetKind = Literal["linearised", "solved"]
 """How flux correction's target step is found (T16b)."""
@@ -72,6 +72,16 @@ def splittings_in_place(n_nodes: int, memory: int) -> bool:
     (in place they took 1.8 times as long)."""
     fixed, per_node = PEAK_WITH_COPIES
     return memory > 0 and fixed + per_node * n_nodes > IN_PLACE_SHARE * memory
+
+
+def cell_coefficients(s: SpeciesModel) -> Coefficients:
+    """The species' per-cell coefficients; a clear error where a run that freed them
+    (:meth:`SpeciesModel.without_cell_coefficients`) would build an operator again."""
+    if s.coefficients is None:
+        msg = (f"{s.name}: the per-cell coefficients were freed after the run's set-up, "
+               "but an operator is to be built again")
+        raise RuntimeError(msg)
+    return s.coefficients
 
 
 MAX_CACHED = 3
@@ -213,7 +223,7 @@ class StepSystems:
         if dt_tau not in cache.operators:
             M, K = self.galerkin(s)
             if self.scheme.supg:  # same pattern: the parts add by their value arrays
-                c = s.coefficients
+                c = cell_coefficients(s)
                 tau = supg_tau(c.velocity, c.along_flow_diffusivity, c.reaction_rate,
                                c.element_length, dt_tau)
                 Ms, Ks = transport_operators(self.site.points, self.site.cells, tau=tau,
@@ -235,7 +245,7 @@ class StepSystems:
 
     def _terms(self, s: SpeciesModel) -> dict[str, Any]:
         """Coefficients of the species' operators (T1–T6) for transport_operators."""
-        c = s.coefficients
+        c = cell_coefficients(s)
         nonlinear_sorption = bool(s.isotherms)
         return {"m": self.porosity if nonlinear_sorption else c.storage, "k": c.decay,
                 "q": self.q, "a": c.velocity, "theta_d": self.dispersion.of_cells,
@@ -246,7 +256,7 @@ class StepSystems:
         cache, pattern = self._of(s), self.site.pattern
         if cache.galerkin is None:
             M0, K0 = transport_operators(self.site.points, self.site.cells,
-                                         tau=np.zeros_like(s.coefficients.storage),
+                                         tau=np.zeros_like(cell_coefficients(s).storage),
                                          parts="galerkin", pattern=pattern, **self._terms(s))
             K0.data += pattern.values_of(self.outflow_matrix)
             cache.galerkin = (M0, K0)

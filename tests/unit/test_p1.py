@@ -12,6 +12,7 @@ from skfem import MeshTet
 
 from fe3d.p1 import (
     CsrPattern,
+    cells_spanning_zero,
     gradients,
     length_along,
     node_graph,
@@ -192,3 +193,18 @@ def test_node_graph_is_the_pattern_without_entry_positions(mesh: MeshTet) -> Non
     assert np.array_equal(dense_pat.indptr, ref.indptr)
     assert np.array_equal(dense_pat.indices, ref.indices)
     _each_entry_lands_on_its_own_pair(dense_pat, dense)
+
+
+def test_cells_spanning_zero_equal_the_numpy_gather(mesh: MeshTet) -> None:
+    """The compiled pass picks exactly the cells numpy's gather ``d[cells]`` picks (some
+    node ≥ 0 and some ≤ 0), on int32 and int64 cells, for a field with exact zeros at nodes
+    (touching counts) and for one below zero everywhere (no cell)."""
+    rng = np.random.default_rng(3)
+    for d in (rng.standard_normal(mesh.p.shape[1]),
+              np.round(2.0 * rng.standard_normal(mesh.p.shape[1])),
+              -1.0 - rng.random(mesh.p.shape[1])):
+        side = d[mesh.t]
+        expected = (side.max(axis=0) >= 0.0) & (side.min(axis=0) <= 0.0)
+        for cells in (mesh.t.astype(np.int32), mesh.t.astype(np.int64)):
+            assert np.array_equal(cells_spanning_zero(cells, d), expected)
+    assert not cells_spanning_zero(mesh.t, -np.ones(mesh.p.shape[1])).any()

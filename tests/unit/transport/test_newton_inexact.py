@@ -99,9 +99,9 @@ def _second_order_species(n: int, rate: float) -> SpeciesModel:
     """A species of second-order decay r = −k c|c| on n nodes of unit pore volume."""
     one = np.ones(n)
     coefficients = Coefficients(storage=one, decay=0 * one, darcy_flux=np.zeros((3, n)),
-                                along_flow_diffusivity=0 * one, element_length=one,
-                                courant_rate=1.0)
+                                along_flow_diffusivity=0 * one, element_length=one)
     return SpeciesModel(name="s", spec=Species(limit="1 mg/L"), coefficients=coefficients,
+                        courant_rate=1.0,
                         isotherms=(), reaction=("second_order", {"rate": rate}),
                         in_user_law=False, sorbed_decay=0.0, dissolved_volume=one,
                         sorbed_capacity=0 * one, decay_weight=0 * one, outflow_weights={})

@@ -122,8 +122,8 @@ def _context(site: SiteMesh, q: np.ndarray, *, half_life_days: float | None, sch
         name="s", spec=spec,
         coefficients=Coefficients(storage=np.full(e, theta), decay=np.full(e, lam * theta),
                                   darcy_flux=q, along_flow_diffusivity=np.zeros(e),
-                                  element_length=h,
-                                  courant_rate=float(np.max(speed / h))),
+                                  element_length=h),
+        courant_rate=float(np.max(speed / h)),
         isotherms=(), reaction=None, in_user_law=False, sorbed_decay=lam,
         dissolved_volume=lumped(site, theta * vol), sorbed_capacity=np.zeros(n),
         decay_weight=lumped(site, lam * theta * vol), outflow_weights={})
