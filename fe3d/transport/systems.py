@@ -19,7 +19,7 @@ from fe3d._machine import machine_memory
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.case.schema import SolverControl, TimeControl
 from fe3d.free_block import FreeBlock
-from fe3d.linalg import LinearSolver, solve_with_preconditioner
+from fe3d.linalg import START_WINDOW, LinearSolver, solve_with_preconditioner
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import split_rows
 from fe3d.sgs import LinearCombination, ScaledMatrix
@@ -29,8 +29,9 @@ from fe3d.transport.model import Coefficients, MediumFields, SpeciesModel
 from fe3d.transport.stabilization import supg_tau
 from fe3d.transport.timeschemes import StepCoefficients
 
-__all__ = ["IN_PLACE_SHARE", "PEAK_WITH_COPIES", "NearbySolver", "Scheme", "StepSystem",
-           "StepSystems", "TargetKind", "cell_coefficients", "splittings_in_place"]
+__all__ = ["IN_PLACE_SHARE", "IN_PLACE_WINDOW", "PEAK_WITH_COPIES", "NearbySolver", "Scheme",
+           "StepSystem", "StepSystems", "TargetKind", "cell_coefficients",
+           "splittings_in_place"]
 
 TargetKind = Literal["linearised", "solved"]
 """How flux correction's target step is found (T16b)."""
@@ -82,6 +83,13 @@ def cell_coefficients(s: SpeciesModel) -> Coefficients:
                "but an operator is to be built again")
         raise RuntimeError(msg)
     return s.coefficients
+
+
+IN_PLACE_WINDOW = 3
+"""Earlier solutions the solver of an in-place step system keeps to start from
+(:data:`fe3d.linalg.START_WINDOW`, 6, otherwise): the windows of the two bounded systems
+hold 2 × 2 × 6 vectors of the free nodes (0.19 KiB per node), so half of that where memory
+is what limits the run (docs/performance.md for what it costs in iterations)."""
 
 
 MAX_CACHED = 3
@@ -299,7 +307,8 @@ class StepSystems:
         else:
             S_ff, S_fD = split_rows(S.tocsr(), free, fixed)
         solver = LinearSolver(S_ff, method=self.solver.linear_solver,
-                              tol=self.solver.tolerance if tol is None else tol)
+                              tol=self.solver.tolerance if tol is None else tol,
+                              window=IN_PLACE_WINDOW if in_place else START_WINDOW)
         explicit = None if formula.theta == 1.0 else ScaledMatrix(K, formula.theta - 1.0)
         return StepSystem(S=S, explicit_part=explicit, M=M,
                           lumped=M.diagonal() if lumped else None, solver=solver,
