@@ -11,6 +11,10 @@ Targets (issue 16): peak memory ≤ 2 KiB per node; growth exponent of the whole
 nodes ≤ 1.1 from 50 k to 2 M. Writes the "Memory per node" section of docs/performance.md
 (``python benchmarks/memory_bench.py``; ``--quick`` runs the smallest size only and writes
 nothing; ``--sizes=4.3:1.3,2.6:0.8`` picks plan cell : layer cell thickness pairs [m]).
+``--one H DZ [--in-place] [--steps N]`` runs one size in this process and prints its row:
+``--in-place`` solves the bounded steps in place whatever the model's size (as a model too
+large for copies does, fe3d.transport.systems.splittings_in_place), ``--steps`` sets the
+number of steps (10).
 """
 
 from __future__ import annotations
@@ -36,7 +40,7 @@ STAGES = ["mesh", "flow", "travel paths", "flow outputs", "transport set-up", "t
 PAGE = 4096  # bytes per page of /proc/self/statm (Linux x86-64)
 
 
-def run_case_of(h: float, dz: float) -> Any:
+def run_case_of(h: float, dz: float, steps: int = STEPS) -> Any:
     """The Harrow Flats test box (invented) with a solvent source box upstream and an
     extraction well downstream, plan cell ``h`` and layer cell thickness ``dz`` [m]."""
     from fe3d.case.builder import Layer, Material, Source, Species, Time, box_case
@@ -49,7 +53,7 @@ def run_case_of(h: float, dz: float) -> Any:
         cell=h, dz=dz, fine_cell=h, heads={"west": 9.5, "east": 8.3},
         layers=[Layer("sand", 2.0, sand), Layer("silt", -2.0, silt)],
         species=[Species("solvent", limit="5 ug/L", kd=0.1, half_life="3 yr")],
-        time=Time(73.0 * STEPS, 73.0),
+        time=Time(73.0 * steps, 73.0),
         sources=[Source("spill", species="solvent", concentration=100.0,
                         x=(40.0, 60.0), y=(90.0, 110.0), z=(6.0, 9.0))],
         sections={"wells": [{"name": "PW", "x": "300 m", "y": "100 m",
@@ -108,11 +112,16 @@ def _mark_substages(sampler: _Sampler) -> None:
     pipeline.run_transport = marked("transport set-up", pipeline.run_transport)
 
 
-def one(h: float, dz: float) -> dict[str, Any]:
-    """One whole run in this process; its sizes, stage times and peaks."""
+def one(h: float, dz: float, *, in_place: bool = False, steps: int = STEPS,
+        ) -> dict[str, Any]:
+    """One whole run in this process; its sizes, stage times and peaks. ``in_place``: the
+    bounded steps solved in place whatever the size (patched in this process only)."""
     from fe3d.pipeline import run_case
+    from fe3d.transport import systems
 
-    case = run_case_of(h, dz)
+    if in_place:
+        systems.splittings_in_place = lambda _nodes, _memory: True
+    case = run_case_of(h, dz, steps)
     sampler = _Sampler()
     _mark_substages(sampler)
     cpu, t0 = time.process_time(), time.perf_counter()
@@ -122,7 +131,8 @@ def one(h: float, dz: float) -> dict[str, Any]:
         cpu = time.process_time() - cpu
         sampler.stop()
     mib = 1024.0 * 1024.0
-    return {"nodes": int(summary.n_nodes), "cells": int(summary.n_cells), "wall_s": wall,
+    return {"nodes": int(summary.n_nodes), "cells": int(summary.n_cells), "steps": steps,
+            "in_place": in_place, "wall_s": wall,
             "cpu_s": cpu, "stage_s": {s: v for s, v in sampler.spent.items() if s != "start"},
             "stage_peak_mib": {s: v / mib for s, v in sampler.peak.items()},
             "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0}
@@ -144,8 +154,11 @@ def fit(rows: list[dict[str, Any]], key: str = "wall_s") -> tuple[float, float, 
 
 
 def main() -> int:
-    if len(sys.argv) == 4 and sys.argv[1] == "--one":
-        print(json.dumps(one(float(sys.argv[2]), float(sys.argv[3]))))
+    if len(sys.argv) >= 4 and sys.argv[1] == "--one":
+        steps = int(sys.argv[sys.argv.index("--steps") + 1]) if "--steps" in sys.argv \
+            else STEPS
+        print(json.dumps(one(float(sys.argv[2]), float(sys.argv[3]),
+                             in_place="--in-place" in sys.argv, steps=steps)))
         return 0
     sizes = SIZES[:1] if "--quick" in sys.argv else SIZES
     for arg in sys.argv[1:]:

@@ -24,9 +24,9 @@ from fe3d._typing import FloatArray, IndexArray
 from fe3d.sgs import split_csr
 
 __all__ = ["CELL_BLOCK", "MASS_FRACTION", "BoundaryFacets", "CsrPattern", "cell_gradients",
-           "cells_spanning_zero",
-           "gradients", "index_array", "index_type", "length_along", "node_graph", "split_rows",
-           "sum_at_corners", "tensor_gradient", "volumes"]
+           "cells_spanning_zero", "gradients", "index_array", "index_type", "length_along",
+           "node_graph", "split_rows", "sum_at_corners", "tensor_gradient",
+           "transpose_positions", "volumes"]
 
 MASS_FRACTION = (np.ones((4, 4)) + np.eye(4)) / 20.0
 """∫φ_iφ_j dV / V on a tetrahedron (exact for P1)."""
@@ -184,6 +184,39 @@ def sum_at_corners(cells: IndexArray, per_cell: FloatArray, n_nodes: int) -> Flo
     ``(4 n_cells)`` temporaries (the tiled values, and an int64 copy of int32 cells)."""
     out = np.zeros(n_nodes)
     _corner_sum_kernel(index_array(cells), np.ascontiguousarray(per_cell, dtype=float), out)
+    return out
+
+
+@_jit
+def _transpose_kernel(indptr: IndexArray, indices: IndexArray, out: IndexArray) -> None:
+    for i in range(indptr.size - 1):
+        for p in range(indptr[i], indptr[i + 1]):
+            j = indices[p]
+            lo, hi = indptr[j], indptr[j + 1]
+            while lo < hi:  # row j's columns are sorted: bisect for column i
+                mid = (lo + hi) // 2
+                if indices[mid] < i:
+                    lo = mid + 1
+                else:
+                    hi = mid
+            out[p] = lo if lo < indptr[j + 1] and indices[lo] == i else -1
+
+
+def transpose_positions(A: sp.csr_matrix) -> IndexArray:
+    """For each stored entry p = (i, j) of ``A``, the position of its mirror entry (j, i)
+    on the same CSR arrays (int32 below 2³¹ entries): ``A.data[transpose_positions(A)]`` are
+    the values of Aᵀ on A's pattern. Needs sorted columns in every row and a structurally
+    symmetric pattern; raises ValueError otherwise. One bisection per entry, and no
+    transposed copy (scipy's ``A.T.tocsr()`` of the positions holds about 28 bytes per
+    entry at once)."""
+    if not A.has_sorted_indices:
+        msg = "transpose positions need sorted column indices in every row"
+        raise ValueError(msg)
+    out = np.empty(A.indices.size, dtype=index_type(A.indices.size))
+    _transpose_kernel(index_array(A.indptr), index_array(A.indices), out)
+    if out.size and out.min() < 0:
+        msg = "the pattern is not structurally symmetric: an entry (i, j) without (j, i)"
+        raise ValueError(msg)
     return out
 
 

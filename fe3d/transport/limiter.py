@@ -34,6 +34,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from fe3d._typing import FloatArray, IndexArray
+from fe3d.p1 import transpose_positions
 
 __all__ = ["CLOSE_TOLERANCE", "LIMITER_PASSES", "MASS_SWEEPS", "PASS_TOLERANCE", "Correction",
            "TargetFluxes", "TargetStep", "limited_target_fluxes", "linearised_correction",
@@ -268,16 +269,16 @@ class TargetFluxes:
         """From the Galerkin operators M, K and the low-order spatial operator L; ``work``
         is the scratch space to use (of :meth:`scratch_size`; allocated here when None)."""
         nnz = low_order.indices.size
-        at = sp.csr_matrix((np.arange(nnz, dtype=np.int64), low_order.indices,
-                            low_order.indptr), shape=low_order.shape).T.tocsr()
-        at.sort_indices()  # entry p of the transpose holds the position of (j, i)
+        msg = "the operators must share one structurally symmetric CSR pattern"
         if not (np.array_equal(mass.indptr, low_order.indptr)
-                and np.array_equal(mass.indices, low_order.indices)
-                and np.array_equal(at.indices, low_order.indices)):
-            msg = "the operators must share one structurally symmetric CSR pattern"
+                and np.array_equal(mass.indices, low_order.indices)):
             raise ValueError(msg)
+        try:  # the position of (j, i) for each entry (i, j)
+            mirror = transpose_positions(low_order)
+        except ValueError as exc:
+            raise ValueError(msg) from exc
         return cls(mass=mass, galerkin=galerkin, low_order=low_order,
-                   low_order_transposed=low_order.data[at.data],
+                   low_order_transposed=low_order.data[mirror],
                    lumped=np.asarray(mass.sum(axis=1)).ravel(),
                    sink=np.asarray(low_order.sum(axis=0)).ravel(),
                    work=np.empty(cls.scratch_size(nnz, low_order.shape[0])) if work is None

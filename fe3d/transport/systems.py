@@ -23,7 +23,7 @@ from fe3d.linalg import START_WINDOW, LinearSolver, solve_with_preconditioner
 from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.p1 import split_rows
 from fe3d.sgs import LinearCombination, ScaledMatrix
-from fe3d.transport.assembly import monotone_operators, transport_operators
+from fe3d.transport.assembly import low_order_operators, transport_operators
 from fe3d.transport.limiter import TargetFluxes
 from fe3d.transport.model import Coefficients, MediumFields, SpeciesModel
 from fe3d.transport.stabilization import supg_tau
@@ -219,10 +219,9 @@ class StepSystems:
         if self.scheme.monotone:  # T16: no step-length dependence, built once per species
             if not cache.operators:
                 M0, K0 = self.galerkin(s)
-                ML, KD = monotone_operators(M0, K0)
+                lumped, KD = low_order_operators(M0, K0)
                 # the lumped mass as its diagonal alone: not a value per entry of the pattern
-                cache.operators[0.0] = (sp.diags(ML.diagonal(), format="csr"), KD)
-                del ML
+                cache.operators[0.0] = (sp.diags(lumped, format="csr"), KD)
                 if self.limited(s):  # the Galerkin operators are the target's (T16b)
                     cache.limiter = TargetFluxes.of(M0, K0, KD, work=self._limiter_scratch())
                 else:

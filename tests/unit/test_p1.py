@@ -18,6 +18,7 @@ from fe3d.p1 import (
     node_graph,
     split_rows,
     tensor_gradient,
+    transpose_positions,
     volumes,
 )
 
@@ -208,3 +209,15 @@ def test_cells_spanning_zero_equal_the_numpy_gather(mesh: MeshTet) -> None:
         for cells in (mesh.t.astype(np.int32), mesh.t.astype(np.int64)):
             assert np.array_equal(cells_spanning_zero(cells, d), expected)
     assert not cells_spanning_zero(mesh.t, -np.ones(mesh.p.shape[1])).any()
+
+
+def test_transpose_positions_give_scipys_transpose(mesh: MeshTet) -> None:
+    """The mirror entries read off the pattern equal scipy's transpose (reference
+    library) value for value; a pattern that is not structurally symmetric is refused."""
+    pattern = CsrPattern.of_cells(mesh.t, mesh.p.shape[1])
+    A = pattern.matrix(np.random.default_rng(5).standard_normal(pattern.nnz))
+    mirror = transpose_positions(A)
+    assert mirror.dtype == np.int32
+    assert np.array_equal(A.data[mirror], A.T.tocsr().data)
+    with pytest.raises(ValueError, match="structurally symmetric"):
+        transpose_positions(sp.csr_matrix(np.triu(np.ones((4, 4)))))

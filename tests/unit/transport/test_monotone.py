@@ -16,7 +16,11 @@ import pytest
 import scipy.sparse as sp
 from skfem import MeshTet
 
-from fe3d.transport.assembly import monotone_operators, transport_operators
+from fe3d.transport.assembly import (
+    low_order_operators,
+    monotone_operators,
+    transport_operators,
+)
 from fe3d.transport.dispersion import dispersion_tensor
 from fe3d.transport.limiter import TargetFluxes, limited_target_fluxes, raw_flux_sums
 
@@ -52,6 +56,8 @@ def test_discrete_upwinding_properties() -> None:
     assert np.allclose(ml.sum(axis=1), M.toarray().sum(axis=1), rtol=1e-12, atol=0)
     # the same CSR structure: operators of one mesh still add by their value arrays
     assert np.array_equal(KD.indices, K.indices) and np.array_equal(ML.indptr, M.indptr)
+    lumped, KD_run = low_order_operators(M, K)  # what a run holds: the diagonal alone
+    assert np.array_equal(lumped, ML.diagonal()) and np.array_equal(KD_run.data, KD.data)
 
 
 @pytest.mark.parametrize("dt", [1e5, 1e7, 1e9])
