@@ -21,7 +21,7 @@ import numpy as np
 from fe3d._machine import machine_memory
 from fe3d.case.schema import Case
 from fe3d.errors import CaseError
-from fe3d.transport.systems import PEAK_WITH_COPIES
+from fe3d.transport.systems import PEAK_IN_PLACE, PEAK_WITH_COPIES, splittings_in_place
 
 __all__ = ["RunSize", "check_fits", "estimate_mesh_size", "estimate_run", "machine_memory"]
 
@@ -30,10 +30,10 @@ MiB = 1 << 20
 BASE_MEMORY, MEMORY_PER_NODE = PEAK_WITH_COPIES
 """Peak memory of a one-species run [bytes]: a fixed part (interpreter, libraries, compiled
 kernels) and a part per node, the transport's own measured fit (3 Dec 2026: 529 MiB +
-2.79 KiB per node, whole runs from 72 k to 2.1 M nodes; a 5.9 M-node run peaked at 2.69
-KiB per node). Models large enough to solve their bounded steps in place
-(fe3d.transport.systems.splittings_in_place) need about 0.35 KiB per node less: not
-counted, so the estimate errs on the large side."""
+2.79 KiB per node, whole runs from 72 k to 2.1 M nodes, measured before the run's end and
+set-up lost their largest temporaries, so it errs on the large side). A model large enough
+to solve its bounded steps in place (fe3d.transport.systems.splittings_in_place) is
+estimated with that fit instead, ``PEAK_IN_PLACE`` (590 MiB + 1.86 KiB per node)."""
 
 MEMORY_PER_NODE_SPECIES = 1024
 """Further memory per node for each further species [bytes]: its fields, operators and
@@ -118,20 +118,25 @@ def _fixed_steps(case: Case) -> int | None:
     return count
 
 
-def estimate_run(case: Case) -> RunSize:
-    """The size of a run of ``case`` (module docstring)."""
+def estimate_run(case: Case, *, memory: int | None = None) -> RunSize:
+    """The size of a run of ``case`` (module docstring) on a machine of ``memory`` [bytes]
+    (default :func:`machine_memory`), which decides whether its bounded steps are solved in
+    place."""
     nodes, cells = estimate_mesh_size(case)
     n_species, n_obs = len(case.species), len(case.observation_points)
     steps = _fixed_steps(case)
     outputs = len(case.output_schedule()) + 1  # t = 0 as well
     per_step = BYTES_PER_STEP + 8 * (1 + n_obs * n_species)
-    memory = (BASE_MEMORY + nodes * (MEMORY_PER_NODE + (n_species - 1) * MEMORY_PER_NODE_SPECIES)
-              + (steps or 0) * per_step)
+    machine = machine_memory() if memory is None else memory
+    in_place = case.solver.monotone and splittings_in_place(nodes, machine)
+    base, per_node = PEAK_IN_PLACE if in_place else (BASE_MEMORY, MEMORY_PER_NODE)
+    peak = (base + nodes * (per_node + (n_species - 1) * MEMORY_PER_NODE_SPECIES)
+            + (steps or 0) * per_step)
     mesh_once = nodes * 24 + cells * (16 + 3 * 3 * 4)  # points, tetrahedra, flow arrays
     output = mesh_once + outputs * nodes * n_species * (4 + 8)  # series, run-wide fields
     output += nodes * n_species * 8 * (CHECKPOINT_ARRAYS + OUTPUT_ARRAYS * outputs)
     return RunSize(nodes=nodes, cells=cells, steps=steps, output_times=outputs,
-                   memory=memory, output=output)
+                   memory=peak, output=output)
 
 
 def _zone_triangles(radius: float, size: float, background: float) -> float:

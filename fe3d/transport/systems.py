@@ -29,9 +29,9 @@ from fe3d.transport.model import Coefficients, MediumFields, SpeciesModel
 from fe3d.transport.stabilization import supg_tau
 from fe3d.transport.timeschemes import StepCoefficients
 
-__all__ = ["IN_PLACE_SHARE", "IN_PLACE_WINDOW", "PEAK_WITH_COPIES", "NearbySolver", "Scheme",
-           "StepSystem", "StepSystems", "TargetKind", "cell_coefficients",
-           "splittings_in_place"]
+__all__ = ["IN_PLACE_SHARE", "IN_PLACE_WINDOW", "PEAK_IN_PLACE", "PEAK_WITH_COPIES",
+           "NearbySolver", "Scheme", "StepSystem", "StepSystems", "TargetKind",
+           "cell_coefficients", "splittings_in_place"]
 
 TargetKind = Literal["linearised", "solved"]
 """How flux correction's target step is found (T16b)."""
@@ -50,6 +50,11 @@ PEAK_WITH_COPIES = (529 * 2**20, 2.79 * 1024)
 """A run's peak memory with every step system's Gauss–Seidel splitting copied [bytes]: a
 fixed part and a part per node (least-squares fit of one-species whole runs from 72 k to
 2.1 M nodes, benchmarks/memory_bench.py, docs/performance.md "Memory per node")."""
+
+PEAK_IN_PLACE = (590 * 2**20, 1.86 * 1024)
+"""The same with the bounded steps solved in place (:func:`splittings_in_place`) [bytes]:
+least-squares fit of one-species whole runs at 223 k, 1.04 M and 2.1 M nodes, each made to
+solve in place (benchmarks/memory_bench.py ``--in-place``, 3 Dec 2026)."""
 
 IN_PLACE_SHARE = 0.8
 """Share of the machine's memory above which the estimate :data:`PEAK_WITH_COPIES` makes a
