@@ -46,15 +46,16 @@ on): the fields at 1e-4 and 1e-6 differ by at most 1.1e-4 C0 at Courant 1 and 5.
 Courant 10, below the pass rule, and 1e-4 saves one of two target iterations at Courant 1
 and two of five at Courant 10 (docs/performance.md)."""
 
-PEAK_WITH_COPIES = (529 * 2**20, 2.79 * 1024)
+PEAK_WITH_COPIES = (530 * 2**20, 2.32 * 1024)
 """A run's peak memory with every step system's Gauss–Seidel splitting copied [bytes]: a
-fixed part and a part per node (least-squares fit of one-species whole runs from 72 k to
-2.1 M nodes, benchmarks/memory_bench.py, docs/performance.md "Memory per node")."""
+fixed part and a part per node (least-squares fit of one-species whole runs at 223 k,
+1.04 M and 2.1 M nodes, 1,027, 2,907 and 5,310 MiB; benchmarks/memory_bench.py, 3 Dec
+2026, docs/performance.md "Memory per node")."""
 
 PEAK_IN_PLACE = (590 * 2**20, 1.86 * 1024)
 """The same with the bounded steps solved in place (:func:`splittings_in_place`) [bytes]:
-least-squares fit of one-species whole runs at 223 k, 1.04 M and 2.1 M nodes, each made to
-solve in place (benchmarks/memory_bench.py ``--in-place``, 3 Dec 2026)."""
+least-squares fit of the same runs made to solve in place (benchmarks/memory_bench.py
+``--in-place``): 969, 2,527 and 4,404 MiB."""
 
 IN_PLACE_SHARE = 0.8
 """Share of the machine's memory above which the estimate :data:`PEAK_WITH_COPIES` makes a
@@ -70,8 +71,9 @@ def splittings_in_place(n_nodes: int, memory: int) -> bool:
     need more than :data:`IN_PLACE_SHARE` of the machine's ``memory`` [bytes] (never when
     the machine does not say, ``memory`` 0). Results are the same bit for bit either way;
     the choice trades time for memory. Measured 3 Dec 2026 (docs/performance.md): in place,
-    the run's peak falls by 0.35 KiB per node (0.16 the low-order system, 0.19 the target;
-    1,039,075 nodes), and the bounded step costs 74–78 and 147–159 SpMV at Courant 1 and
+    the run's peak falls by about 0.45 KiB per node (:data:`PEAK_IN_PLACE`; the copies
+    0.16 the low-order system, 0.19 the target, the shorter start window 0.09), and the
+    bounded step costs 74–78 and 147–159 SpMV at Courant 1 and
     10 against 47–61 and 109–116 (223 k nodes; 10 steps at 1 M nodes 1.55 times the time):
     a pass in place reads the pattern's whole rows where the copy reads one triangle, and
     20 bytes per entry instead of 12 with M on the pattern. SUPG steps always keep the copy
