@@ -24,7 +24,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from fe3d._typing import FloatArray, IndexArray
-from fe3d.sgs import GaussSeidelSplitting, LinearCombination, _is_sorted
+from fe3d.sgs import GaussSeidelSplitting, LinearCombination, rows_sorted
 
 __all__ = ["BlockArrays", "BlockGaussSeidel", "FreeBlock"]
 
@@ -233,7 +233,7 @@ class FreeBlock(spla.LinearOperator):
     def __init__(self, S: LinearCombination, free: IndexArray, fixed: IndexArray) -> None:
         B = S.B
         super().__init__(dtype=np.dtype(float), shape=(free.size, free.size))
-        if not _is_sorted(B.indptr, B.indices):
+        if not rows_sorted(B.indptr, B.indices):
             msg = "the step matrix's pattern has unsorted columns"
             raise ValueError(msg)
         n = B.shape[0]

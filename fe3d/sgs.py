@@ -30,7 +30,7 @@ import scipy.sparse.linalg as spla
 from fe3d._typing import FloatArray, IndexArray
 
 __all__ = ["GaussSeidelSplitting", "LinearCombination", "ScaledMatrix", "SplitMatrix",
-           "SymmetricGaussSeidel", "plus_diagonal", "split_csr"]
+           "SymmetricGaussSeidel", "plus_diagonal", "rows_sorted", "split_csr"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -47,7 +47,9 @@ def _diagonal_positions(indptr: IndexArray, indices: IndexArray) -> IndexArray:
 
 
 @_jit
-def _is_sorted(indptr: IndexArray, indices: IndexArray) -> bool:
+def rows_sorted(indptr: IndexArray, indices: IndexArray) -> bool:
+    """True when every row of the CSR arrays lists its columns in strictly increasing order
+    (what the splittings' sweeps rely on); one compiled pass, no temporary."""
     for i in range(indptr.size - 1):
         for p in range(indptr[i] + 1, indptr[i + 1]):
             if indices[p] <= indices[p - 1]:
@@ -499,7 +501,7 @@ class SymmetricGaussSeidel(GaussSeidelSplitting):
 
     def __init__(self, A: sp.csr_matrix, omega: float = 1.0) -> None:
         A = A.tocsr()
-        if not _is_sorted(A.indptr, A.indices):
+        if not rows_sorted(A.indptr, A.indices):
             A = A.copy()
             A.sort_indices()
         data = np.asarray(A.data, dtype=float)
