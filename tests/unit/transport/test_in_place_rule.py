@@ -67,3 +67,20 @@ def test_in_place_run_equals_the_copied_one_bit_for_bit(monkeypatch) -> None:
         # largest value bounds a change of start
         scale = copied[name].max()
         assert np.max(np.abs(short[name] - copied[name])) <= 10 * TARGET_TOLERANCE * scale
+
+
+def test_in_place_systems_take_gauss_seidel_whatever_the_automatic_choice(monkeypatch):
+    """The free block in place exists for Gauss–Seidel's sweeps: with the automatic solver
+    choice (which would factor this small strip, and whose probe picks AMG, a CSR copy and
+    a hierarchy, on hard large systems) an in-place system is solved by Gauss–Seidel; with
+    copies the automatic choice stands."""
+    from fe3d.transport.step import BACKWARD_EULER
+
+    case = two_species_strip()  # linear_solver "auto"
+    site, flow = mesh_and_flow(case)
+    inputs = TransportInputs.of(case)
+    for memory, expected in ((1, "gauss_seidel"), (0, "direct")):
+        monkeypatch.setattr(systems, "machine_memory", lambda m=memory: m)
+        ctx = step_context(site, flow, inputs, None)
+        s = ctx.species[0]
+        assert ctx.systems.system(s, 3600.0, BACKWARD_EULER, ()).solver.method == expected
