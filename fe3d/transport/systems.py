@@ -60,8 +60,8 @@ least-squares fit of the same runs made to solve in place (benchmarks/memory_ben
 IN_PLACE_SHARE = 0.8
 """Share of the machine's memory above which the estimate :data:`PEAK_WITH_COPIES` makes a
 run solve its bounded steps in place (:func:`splittings_in_place`): only where the copies
-might not fit, since in place the steps are 1.5 (1 M nodes) to 3.8 (7.9 M nodes) times
-slower (docs/performance.md; the share itself is common practice, no source)."""
+might not fit, since in place the steps take 1.3–1.55 times as long (223 k–2.1 M nodes;
+docs/performance.md; the share itself is common practice, no source)."""
 
 
 def splittings_in_place(n_nodes: int, memory: int) -> bool:
