@@ -108,13 +108,12 @@ def low_order_operators(M: sp.csr_matrix, K: sp.csr_matrix,
     compiled pass over the rows: besides the results, only the mirror positions (4 bytes
     per entry) are held while it runs."""
     M, K = M.tocsr(), K.tocsr()
+    msg = "monotone operators need one structurally symmetric pattern with sorted columns"
     if not (np.array_equal(M.indptr, K.indptr) and np.array_equal(M.indices, K.indices)):
-        msg = "monotone operators need one structurally symmetric pattern with sorted columns"
         raise ValueError(msg)
     try:
-        mirror = transpose_positions(K)
+        mirror = transpose_positions(K)  # the position of (j, i) for each entry (i, j)
     except ValueError as exc:
-        msg = "monotone operators need one structurally symmetric pattern with sorted columns"
         raise ValueError(msg) from exc
     kd, lumped = np.empty_like(K.data, dtype=float), np.empty(K.shape[0])
     _upwind_kernel(K.indptr, K.indices, np.ascontiguousarray(K.data, dtype=float), mirror,
