@@ -69,15 +69,16 @@ def splittings_in_place(n_nodes: int, memory: int) -> bool:
     be solved on their operators' own arrays (:class:`fe3d.free_block.FreeBlock`: no copy
     of the free block) rather than on a CSR copy: when a one-species run with copies would
     need more than :data:`IN_PLACE_SHARE` of the machine's ``memory`` [bytes] (never when
-    the machine does not say, ``memory`` 0). Results are the same bit for bit either way;
-    the choice trades time for memory. Measured 3 Dec 2026 (docs/performance.md): in place,
-    the run's peak falls by about 0.45 KiB per node (:data:`PEAK_IN_PLACE`; the copies
-    0.16 the low-order system, 0.19 the target, the shorter start window 0.09), and the
-    bounded step costs 74–78 and 147–159 SpMV at Courant 1 and
-    10 against 47–61 and 109–116 (223 k nodes; 10 steps at 1 M nodes 1.55 times the time):
-    a pass in place reads the pattern's whole rows where the copy reads one triangle, and
-    20 bytes per entry instead of 12 with M on the pattern. SUPG steps always keep the copy
-    (in place they took 1.8 times as long)."""
+    the machine does not say, ``memory`` 0). With the same start window the results are the
+    same bit for bit either way; in place the window is shorter (:data:`IN_PLACE_WINDOW`),
+    so the fields agree within the target's solve tolerance. The choice trades time for
+    memory. Measured 3 Dec 2026 (docs/performance.md): in place, the run's peak falls by
+    about 0.45 KiB per node (:data:`PEAK_IN_PLACE`; the copies 0.16 the low-order system,
+    0.19 the target, the shorter window 0.09), and the bounded step costs 72 and 144 SpMV at
+    Courant 1 and 10 against 47–61 and 109–116 on copies (223 k nodes; 10 steps at 1 M
+    nodes 1.55 times the time): a pass in place reads the pattern's whole rows where the
+    copy reads one triangle, and 20 bytes per entry instead of 12 with M on the pattern.
+    SUPG steps always keep the copy (in place they took 1.8 times as long)."""
     fixed, per_node = PEAK_WITH_COPIES
     return memory > 0 and fixed + per_node * n_nodes > IN_PLACE_SHARE * memory
 
