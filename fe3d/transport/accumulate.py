@@ -14,7 +14,7 @@ from fe3d.transport.model import SpeciesModel
 from fe3d.transport.step import StepBudget, StepResult
 
 __all__ = ["BudgetTotals", "RunStatistics", "StatisticsState", "TotalsState",
-           "TransportDiagnostics", "grid_peclet"]
+           "TransportDiagnostics"]
 
 Extreme = tuple[float, tuple[float, ...] | None]
 """A value [kg/m³] and where it was reached (x, y, z) [m], None before any step."""
@@ -46,17 +46,6 @@ class TransportDiagnostics:
         default_factory=dict)
     max_plume_courant: dict[str, float] = field(default_factory=dict)
     max_plume_courant_at: dict[str, tuple[float, ...] | None] = field(default_factory=dict)
-
-
-def grid_peclet(s: SpeciesModel, seepage_velocity: FloatArray, porosity: FloatArray) -> float:
-    """Largest grid Péclet number |v| h / D_L of the species over the cells (0 without flow)."""
-    speed = np.sqrt(np.sum(seepage_velocity * seepage_velocity, axis=0))
-    if not np.any(speed > 0):
-        return 0.0
-    c = s.coefficients
-    d_l = c.along_flow_diffusivity * c.storage / porosity
-    return float(np.max(np.divide(speed * c.element_length, d_l,
-                                  out=np.full_like(d_l, np.inf), where=d_l > 0)))
 
 
 @dataclass(frozen=True)
