@@ -309,7 +309,8 @@ class LinearSolver:
     ``A`` may also be a step matrix's free block held on the step operators' own arrays
     (:class:`fe3d.free_block.FreeBlock`): its Gauss–Seidel splitting then reads those
     arrays too (no copy of A at all, results bit for bit those of the copy); a direct
-    factor or an AMG hierarchy takes a CSR copy of it.
+    factor or an AMG hierarchy takes a CSR copy of it, so with ``"auto"`` or
+    ``"iterative"`` such a block is solved by ``"gauss_seidel"``.
     ``iterations`` lists the Krylov iterations of every solve (0 for direct); ``stats`` sums
     them up. A BiCGSTAB solve that misses the tolerance (BiCGSTAB can stall, or report
     success above the true residual) switches the solver to AMG-GMRES for that solve,
@@ -335,6 +336,11 @@ class LinearSolver:
         self._split: GaussSeidelSplitting | None = None
         n = self.A.shape[0]
         t0 = time.perf_counter()
+        if isinstance(A, FreeBlock) and method in ("auto", "iterative"):
+            # a block read in place is there for Gauss–Seidel's sweeps: the probe could pick
+            # AMG, which copies the block and builds a hierarchy beside it (a 10.5 M-node
+            # run: +2 GiB); a solve Gauss–Seidel cannot finish still turns to AMG (solve)
+            method = "gauss_seidel"
         if method == "direct" or (method == "auto" and n <= DIRECT_LIMIT):
             self.method = "direct"
             self.A = self.A.tocsr()  # a FreeBlock's copy: small

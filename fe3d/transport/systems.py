@@ -313,14 +313,7 @@ class StepSystems:
             S_ff, S_fD = block, block.held_columns()
         else:
             S_ff, S_fD = split_rows(S.tocsr(), free, fixed)
-        method = self.solver.linear_solver
-        if in_place and method in ("auto", "iterative"):
-            # the free block in place is there for Gauss–Seidel's sweeps: the automatic
-            # choice's probe could pick AMG, which copies the block and builds a hierarchy
-            # beside it (a 10.5 M-node run: +2 GiB); a step Gauss–Seidel cannot finish still
-            # turns to AMG (LinearSolver.solve)
-            method = "gauss_seidel"
-        solver = LinearSolver(S_ff, method=method,
+        solver = LinearSolver(S_ff, method=self.solver.linear_solver,
                               tol=self.solver.tolerance if tol is None else tol,
                               window=IN_PLACE_WINDOW if in_place else START_WINDOW)
         explicit = None if formula.theta == 1.0 else ScaledMatrix(K, formula.theta - 1.0)
