@@ -10,6 +10,7 @@ import numpy as np
 
 from fe3d._typing import FloatArray
 from fe3d.transport.budget import MassBudget
+from fe3d.transport.courant import PlumeRate
 from fe3d.transport.model import SpeciesModel
 from fe3d.transport.step import StepBudget, StepResult
 
@@ -25,9 +26,10 @@ class TransportDiagnostics:
     """Numbers that tell whether the discretisation was adequate.
 
     Per species: the largest grid Péclet number over the cells the plume has reached (T14b),
-    the largest Courant number (over all cells, and over the cells of the plume), the most
-    negative value [kg/m³] and where [m] (None before any value fell below zero) and the
-    largest value over the run [kg/m³] and where (None at t = 0). For the run: steps taken,
+    the largest Courant number over all cells, and over the cells of the plume with the
+    node where it was reached [m] (None before the plume had a step), the most negative
+    value [kg/m³] and where [m] (None before any value fell below zero) and the largest
+    value over the run [kg/m³] and where (None at t = 0). For the run: steps taken,
     the linear solver used, step cuts and rejections, the smallest and largest step [s],
     the most Newton iterations and user-law sweeps (T11b) in one step."""
 
@@ -44,8 +46,7 @@ class TransportDiagnostics:
     max_coupling_sweeps: int = 0
     max_concentration: dict[str, tuple[float, tuple[float, ...] | None]] = field(
         default_factory=dict)
-    max_plume_courant: dict[str, float] = field(default_factory=dict)
-    max_plume_courant_at: dict[str, tuple[float, ...] | None] = field(default_factory=dict)
+    max_plume_courant: dict[str, Extreme] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -64,13 +65,13 @@ class TotalsState:
 @dataclass(frozen=True)
 class StatisticsState:
     """The running diagnostics (for a checkpoint): per species the grid Péclet number, the
-    largest Courant numbers (all cells, plume), the lowest and highest values [kg/m³] and
-    where; for the run the steps taken, the smallest and largest step [s], the most
+    largest Courant numbers (all cells; plume, and where), the lowest and highest values
+    [kg/m³] and where; for the run the steps taken, the smallest and largest step [s], the most
     Newton iterations and coupling sweeps in a step and the last solver kind."""
 
     peclet: dict[str, float]
     courant: dict[str, float]
-    plume_courant: dict[str, float]
+    plume_courant: dict[str, Extreme]
     lowest: dict[str, Extreme]
     highest: dict[str, Extreme]
     n_steps: int
@@ -79,7 +80,6 @@ class StatisticsState:
     newton: int
     sweeps: int
     solver: str
-    plume_courant_at: dict[str, tuple[float, ...] | None] = field(default_factory=dict)
 
 
 class BudgetTotals:
@@ -131,8 +131,7 @@ class RunStatistics:
     def __init__(self, peclet: dict[str, float]) -> None:
         self.peclet = peclet
         self.courant = dict.fromkeys(peclet, 0.0)
-        self.plume_courant = dict.fromkeys(peclet, 0.0)
-        self.plume_courant_at: dict[str, tuple[float, ...] | None] = dict.fromkeys(peclet)
+        self.plume_courant: dict[str, Extreme] = dict.fromkeys(peclet, (0.0, None))
         self.lowest: dict[str, Extreme] = dict.fromkeys(peclet, (0.0, None))
         self.highest: dict[str, Extreme] = dict.fromkeys(peclet, (-np.inf, None))
         self.n_steps = 0
@@ -147,24 +146,22 @@ class RunStatistics:
             plume_courant=dict(self.plume_courant), lowest=dict(self.lowest),
             highest=dict(self.highest), n_steps=self.n_steps,
             dt_min=self.dt_min, dt_max=self.dt_max, newton=self.newton, sweeps=self.sweeps,
-            solver=self.solver, plume_courant_at=dict(self.plume_courant_at))
+            solver=self.solver)
 
     def resume_from(self, saved: StatisticsState) -> None:
         """Continue from diagnostics saved by :meth:`state`."""
         self.peclet, self.courant = dict(saved.peclet), dict(saved.courant)
         self.plume_courant = dict(saved.plume_courant)
-        self.plume_courant_at = {**dict.fromkeys(self.plume_courant), **saved.plume_courant_at}
         self.lowest, self.highest = dict(saved.lowest), dict(saved.highest)
         self.n_steps = saved.n_steps
         self.dt_min, self.dt_max = saved.dt_min, saved.dt_max
         self.newton, self.sweeps, self.solver = saved.newton, saved.sweeps, saved.solver
 
     def add(self, result: StepResult, dt: float, species: tuple[SpeciesModel, ...],
-            points: FloatArray, plume_rates: dict[str, float],
-            plume_nodes: dict[str, int]) -> list[str]:
-        """Fold one accepted step in; ``plume_rates`` [1/s] are the largest |a|/h over each
-        species' plume at the step's start, at the nodes ``plume_nodes``. Returns a log line
-        per species (its lowest value)."""
+            points: FloatArray, plume_rates: dict[str, PlumeRate]) -> list[str]:
+        """Fold one accepted step in; ``plume_rates``: the largest |a|/h over each species'
+        plume at the step's start and its node. Returns a log line per species (its lowest
+        value)."""
         self.n_steps += 1
         self.solver = result.solver_kind
         self.dt_min, self.dt_max = min(self.dt_min, dt), max(self.dt_max, dt)
@@ -184,10 +181,10 @@ class RunStatistics:
             lows.append(f"{s.name} min {new[j]:.3g} kg/m³ at ({where}) m")
             self.courant[s.name] = max(self.courant[s.name],
                                        dt * s.courant_rate)
-            if dt * plume_rates[s.name] > self.plume_courant[s.name]:
-                self.plume_courant[s.name] = dt * plume_rates[s.name]
-                self.plume_courant_at[s.name] = tuple(
-                    float(x) for x in points[:, plume_nodes[s.name]])
+            plume = plume_rates[s.name]
+            if dt * plume.rate > self.plume_courant[s.name][0]:
+                self.plume_courant[s.name] = (dt * plume.rate,
+                                              tuple(float(x) for x in points[:, plume.node]))
         return lows
 
     def note_plume_peclet(self, largest: dict[str, float]) -> None:
@@ -207,5 +204,4 @@ class RunStatistics:
             largest_step=float(self.dt_max), max_newton_iterations=self.newton,
             max_coupling_sweeps=self.sweeps,
             max_plume_courant=dict(self.plume_courant),
-            max_plume_courant_at=dict(self.plume_courant_at),
             max_concentration={k: v for k, v in self.highest.items() if v[1] is not None})

@@ -196,12 +196,16 @@ def _extremes(saved: dict[str, Any]) -> dict[str, tuple[float, tuple[float, ...]
             for k, (v, where) in saved.items()}
 
 
+def _plume_courant(saved: dict[str, Any], where: dict[str, Any]
+                   ) -> dict[str, tuple[float, tuple[float, ...] | None]]:
+    """The largest plume Courant numbers and where, saved as (value, where) pairs, or, by
+    fe3d before 4 Dec 2026, as values with the places apart (``where``; none before 3 Dec)."""
+    pairs = {k: v if isinstance(v, list) else [v, where.get(k)] for k, v in saved.items()}
+    return _extremes(pairs)
+
+
 def _floats(saved: dict[str, Any]) -> dict[str, float]:
     return {k: float(v) for k, v in saved.items()}
-
-
-def _points(saved: dict[str, Any]) -> dict[str, tuple[float, ...] | None]:
-    return {k: None if v is None else tuple(float(x) for x in v) for k, v in saved.items()}
 
 
 def write_checkpoint(folder: Path, ckpt: Checkpoint, *, case: str) -> Path:
@@ -263,10 +267,10 @@ def read_checkpoint(folder: Path) -> tuple[Checkpoint, str] | None:
                          outflow={k: _floats(v) for k, v in t["outflow"].items()})
     stats = StatisticsState(
         peclet=_floats(s["peclet"]), courant=_floats(s["courant"]),
-        plume_courant=_floats(s["plume_courant"]), lowest=_extremes(s["lowest"]),
+        plume_courant=_plume_courant(s["plume_courant"], s.get("plume_courant_at", {})),
+        lowest=_extremes(s["lowest"]),
         highest=_extremes(s["highest"]), n_steps=s["n_steps"], dt_min=float(s["dt_min"]),
-        dt_max=float(s["dt_max"]), newton=s["newton"], sweeps=s["sweeps"], solver=s["solver"],
-        plume_courant_at=_points(s.get("plume_courant_at", {})))  # none in older checkpoints
+        dt_max=float(s["dt_max"]), newton=s["newton"], sweeps=s["sweeps"], solver=s["solver"])
     accepted = tuple((float(tj), {n: a[f"accepted_{j}_{k}"] for k, n in enumerate(names)})
                      for j, tj in enumerate(h["accepted_times"]))
     ckpt = Checkpoint(state=state, planner=planner, totals=totals, statistics=stats,
@@ -318,11 +322,12 @@ def read_outputs(folder: Path, ckpt: Checkpoint) -> list[Snapshot]:
                                     "outflow": _floats(b["outflow"])})
                    for n, b in h["budgets"].items()}
         diagnostics = TransportDiagnostics(**{
-            **d, **{k: _floats(d[k]) for k in ("max_grid_peclet", "max_courant",
-                                               "max_plume_courant")},
+            **{k: v for k, v in d.items() if k != "max_plume_courant_at"},
+            **{k: _floats(d[k]) for k in ("max_grid_peclet", "max_courant")},
+            "max_plume_courant": _plume_courant(d["max_plume_courant"],
+                                                d.get("max_plume_courant_at", {})),
             "min_concentration": _extremes(d["min_concentration"]),
             "max_concentration": _extremes(d["max_concentration"]),
-            "max_plume_courant_at": _points(d.get("max_plume_courant_at", {})),
             "smallest_step": float(d["smallest_step"]),
             "largest_step": float(d["largest_step"])})
         out.append(Snapshot(

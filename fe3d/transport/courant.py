@@ -8,6 +8,8 @@ fraction of the species' limit, and those of the sources active at the time. Pur
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 from fe3d._typing import BoolArray, FloatArray
@@ -15,7 +17,7 @@ from fe3d.mesh.site_mesh import SiteMesh
 from fe3d.transport.model import SpeciesModel
 from fe3d.transport.sources import SourceGeometry
 
-__all__ = ["PLUME_THRESHOLD", "PlumeCourant"]
+__all__ = ["PLUME_THRESHOLD", "PlumeCourant", "PlumeRate"]
 
 PLUME_THRESHOLD = 1e-3
 """A node is in a species' plume once its concentration exceeds this share of the limit
@@ -23,11 +25,19 @@ PLUME_THRESHOLD = 1e-3
 is already inside)."""
 
 
+@dataclass(frozen=True)
+class PlumeRate:
+    """The largest Courant rate |a|/h [1/s] over one species' plume and the node where it
+    is reached (``rate`` 0 and ``node`` −1 while the species has no plume)."""
+
+    rate: float
+    node: int
+
+
 class PlumeCourant:
-    """Courant rate [1/s] of the plume of every species, from the current fields, the node
-    where it is largest (``largest_node``, −1 without a plume) and the largest grid Péclet
-    number |v| h / D_L of the cells the plume has reached so far (``largest_peclet``); both
-    updated by :meth:`rates`."""
+    """Courant rate [1/s] of the plume of every species, from the current fields
+    (:meth:`rates`), and the largest grid Péclet number |v| h / D_L of the cells the plume
+    has reached so far (``largest_peclet``, a running maximum that :meth:`rates` raises)."""
 
     def __init__(self, site: SiteMesh, species: tuple[SpeciesModel, ...],
                  sources: SourceGeometry) -> None:
@@ -43,7 +53,6 @@ class PlumeCourant:
                 speed * c.element_length, d_l, out=np.where(speed > 0, np.inf, 0.0),
                 where=d_l > 0))
         self.largest_peclet = {s.name: 0.0 for s in species}
-        self.largest_node = {s.name: -1 for s in species}
         self.limits = {s.name: s.spec.limit for s in species}
         self.sources = sources
         self._source_nodes = {src.name: self._nodes_of(src.name, site.n_nodes)
@@ -60,9 +69,8 @@ class PlumeCourant:
                 mask |= weights[name] > 0.0
         return mask
 
-    def rates(self, fields: dict[str, FloatArray], t: float) -> dict[str, float]:
-        """Largest |a|/h [1/s] over each species' plume at time ``t`` [s] (0 when it has
-        none yet)."""
+    def rates(self, fields: dict[str, FloatArray], t: float) -> dict[str, PlumeRate]:
+        """Largest |a|/h [1/s] over each species' plume at time ``t`` [s] and its node."""
         out = {}
         for name, c in fields.items():
             inside = c > PLUME_THRESHOLD * self.limits[name]
@@ -73,18 +81,20 @@ class PlumeCourant:
             inside |= self.sources.injection[name] > 0.0
             nodes = np.flatnonzero(inside)
             rate = self.node_rate[name][nodes]
-            out[name] = float(rate.max()) if rate.size else 0.0
-            self.largest_node[name] = int(nodes[np.argmax(rate)]) if rate.size else -1
-            if rate.size:
-                self.largest_peclet[name] = max(self.largest_peclet[name],
-                                                float(self.node_peclet[name][inside].max()))
+            if rate.size == 0:
+                out[name] = PlumeRate(rate=0.0, node=-1)
+                continue
+            largest = int(np.argmax(rate))
+            out[name] = PlumeRate(rate=float(rate[largest]), node=int(nodes[largest]))
+            self.largest_peclet[name] = max(self.largest_peclet[name],
+                                            float(self.node_peclet[name][inside].max()))
         return out
 
     @staticmethod
-    def step(rates: dict[str, float], target: float, longest: float) -> float:
+    def step(rates: dict[str, PlumeRate], target: float, longest: float) -> float:
         """The longest step ``longest``/2^k [s] that keeps every plume's Courant number at
         or below ``target`` (steps of that form reuse their operators)."""
-        rate = max(rates.values(), default=0.0)
+        rate = max((r.rate for r in rates.values()), default=0.0)
         if rate <= 0.0:
             return longest
         k = max(0, int(np.ceil(np.log2(longest * rate / target) - 1e-12)))

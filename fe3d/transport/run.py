@@ -47,7 +47,7 @@ from fe3d.transport.checkpoint import (
     check_resumable,
     run_fingerprints,
 )
-from fe3d.transport.courant import PlumeCourant
+from fe3d.transport.courant import PlumeCourant, PlumeRate
 from fe3d.transport.model import SpeciesModel, build_medium, build_species
 from fe3d.transport.planner import PlannedStep, StepPlanner, time_steps
 from fe3d.transport.run_wide import RunWideField
@@ -147,7 +147,7 @@ def run_transport(
             if planner.adaptive else None
         if not planner.judge(step, result.newton_iterations, error):
             continue
-        run.commit(step, result, rates, courant.largest_node)
+        run.commit(step, result, rates)
         run.stats.note_plume_peclet(courant.largest_peclet)
         try:
             if on_step is not None:
@@ -229,14 +229,13 @@ class _RunningState:
                    dt_prev=saved.dt_prev,
                    outputs=saved.outputs, fingerprints=run_fingerprints(site, flow))
 
-    def commit(self, step: PlannedStep, result: StepResult, rates: dict[str, float],
-               rate_nodes: dict[str, int]) -> None:
+    def commit(self, step: PlannedStep, result: StepResult,
+               rates: dict[str, PlumeRate]) -> None:
         """Fold an accepted step in: totals, diagnostics, fields, the fields over the run, levels
-        and histories. ``rates`` [1/s]: each plume's largest Courant rate at the step's start,
-        at the nodes ``rate_nodes``."""
+        and histories. ``rates``: each plume's largest Courant rate at the step's start and
+        its node."""
         self.totals.add(result.budget)
-        lows = self.stats.add(result, step.dt, self.species, self.site.points, rates,
-                              rate_nodes)
+        lows = self.stats.add(result, step.dt, self.species, self.site.points, rates)
         if logger.isEnabledFor(logging.INFO):
             logger.info("step %d: t = %.6g s, Δt = %.4g s, %s%s", self.stats.n_steps, step.t1,
                         step.dt, "; ".join(lows), f"; Newton {result.newton_iterations} "

@@ -230,6 +230,38 @@ def test_checkpoint_write_that_fails_keeps_the_previous_one(prepared, tmp_path, 
     assert sorted(p.name for p in tmp_path.iterdir()) == ["state.npz"]
 
 
+def _as_saved_before_4_dec(path, record: str, value: str) -> None:
+    """Rewrite a saved file's header the way fe3d wrote it before 4 Dec 2026: the largest
+    plume Courant numbers (``header[record][value]``) as values, the places where they
+    were reached apart (``value + "_at"``)."""
+    import json
+
+    with np.load(path) as saved:
+        arrays = {k: saved[k] for k in saved.files}
+    header = json.loads(str(arrays.pop("header")))
+    pairs = header[record][value]
+    header[record][f"{value}_at"] = {k: v[1] for k, v in pairs.items()}
+    header[record][value] = {k: v[0] for k, v in pairs.items()}
+    np.savez(path, header=np.array(json.dumps(header)), **arrays)
+
+
+def test_checkpoint_saved_before_the_plume_courant_record_resumes(prepared, tmp_path):
+    """A checkpoint saved before the plume's Courant number and its place became one record
+    (4 Dec 2026) still continues the run bit for bit."""
+    site, flow, inputs, whole = prepared
+    keeper = Checkpointer(tmp_path, case="case")
+    with pytest.raises(KeyboardInterrupt):
+        for k, snap in enumerate(run_transport(site, flow, inputs, checkpoints=keeper,
+                                               on_step=_stop_after(12, KeyboardInterrupt()))):
+            keeper.add_output(k, snap)
+    _as_saved_before_4_dec(tmp_path / "state.npz", "statistics", "plume_courant")
+    for output in tmp_path.glob("output_*.npz"):
+        _as_saved_before_4_dec(output, "diagnostics", "max_plume_courant")
+    resumed = _continue(site, flow, inputs, tmp_path)
+    for got, want in zip(resumed, whole, strict=True):
+        _assert_same(got, want)
+
+
 def test_a_mesh_fingerprint_does_not_depend_on_the_cells_integer_type() -> None:
     """A checkpoint names its mesh by a SHA-256 fingerprint of the points and cells. Cells
     held as int32 (SiteMesh from issue 16 on) give the fingerprint the same int64 cells gave

@@ -74,10 +74,9 @@ def test_plume_courant_names_the_node_where_it_is_largest() -> None:
     site, _, ctx = _two_sands()
     numbers = PlumeCourant(site, ctx.species, ctx.sources)
     upper = site.points[2] > -2.9
-    rates = numbers.rates({"tracer": np.where(upper, 1.0, 0.0)}, t=86400.0)
-    node = numbers.largest_node["tracer"]
-    assert upper[node]
-    assert numbers.node_rate["tracer"][node] == rates["tracer"]
-    assert rates["tracer"] == float(numbers.node_rate["tracer"][upper].max())
-    numbers.rates({"tracer": np.zeros(site.n_nodes)}, t=86400.0)
-    assert numbers.largest_node["tracer"] == -1
+    largest = numbers.rates({"tracer": np.where(upper, 1.0, 0.0)}, t=86400.0)["tracer"]
+    assert upper[largest.node]
+    assert numbers.node_rate["tracer"][largest.node] == largest.rate
+    assert largest.rate == float(numbers.node_rate["tracer"][upper].max())
+    none = numbers.rates({"tracer": np.zeros(site.n_nodes)}, t=86400.0)["tracer"]
+    assert (none.rate, none.node) == (0.0, -1)
