@@ -126,3 +126,17 @@ def test_site_features_of_the_pumped_case(pumped):
     np.testing.assert_allclose(area.xy, [[8, 12, 12, 8], [8, 8, 12, 12]])
     assert {(m.name, m.kind) for m in f.marks} == {
         ("PW-1", "extraction"), ("BH-A", "monitoring"), ("fence_well", "receptor")}
+
+
+def test_cells_under_the_top_face_are_those_numpy_finds(pumped) -> None:
+    """The flow arrows of ``heads_plan.png`` sit on the cells with three corners on the top
+    face; counted a corner at a time they are exactly the cells numpy's ``isin`` finds
+    (the reference library; equality, no tolerance)."""
+    from fe3d.post.outputs import _cells_on_face
+
+    site = pumped[1]
+    top = site.faces["top"]
+    want = np.isin(site.cells, np.unique(top)).sum(axis=0) >= 3
+    got = _cells_on_face(site, top)
+    assert want.any()
+    np.testing.assert_array_equal(got, want)
