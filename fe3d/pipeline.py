@@ -88,7 +88,7 @@ def first_pass(case: Case, *, base_dir: Path | None = None, first: SiteMesh | No
     flow = solve_flow(first, FlowInputs.of(case), base_dir=base_dir,
                       preconditioner=preconditioner)
     paths = travel_paths(first, flow, TravelInputs.of(case))
-    lines = {name: [(p.points, p.times) for p in found]
+    lines = {name: [(p.points, p.times, p.cells) for p in found]
              for name, found in paths.forward.items()}
     corridor = site_corridor(case, first, lines)
     if corridor is not None:

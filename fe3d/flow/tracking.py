@@ -43,13 +43,16 @@ _INSIDE = 1e-9
 
 @dataclass(frozen=True)
 class Pathline:
-    """Positions [m] ``(3, k)`` and times [s] ``(k,)`` of one particle, why it stopped, and
-    the number of cells it crossed."""
+    """Positions [m] ``(3, k)`` and times [s] ``(k,)`` of one particle, why it stopped, the
+    number of cells it crossed, and at each position the cell the particle moves through
+    from there on (``cells`` ``(k,)``; at the last position the cell it ended in; −1 for a
+    start outside the mesh)."""
 
     points: FloatArray
     times: FloatArray
     end: str  # "boundary", "stagnant", "captured", "max_time", "max_steps"
-    cells_crossed: int = 0
+    cells_crossed: int
+    cells: IndexArray
 
 
 # ----------------------------------------------------------------------------- adjacency
@@ -252,15 +255,18 @@ def _along(g: FloatArray, v: FloatArray, speed: float) -> float:
 def _track(points: FloatArray, cells: IndexArray, nb: IndexArray, velocity: FloatArray,
            porosity: FloatArray, nodal: FloatArray, capture: BoolArray, x0: FloatArray,
            e0: int, sign: float, max_time: float, step_fraction: float,
-           out_x: FloatArray, out_t: FloatArray) -> tuple[int, int, int]:
+           out_x: FloatArray, out_t: FloatArray, out_e: IndexArray) -> tuple[int, int, int]:
     """Follow one particle from x0 in cell e0; positions and times go to ``out_x`` ``(3, s)``
-    and ``out_t`` ``(s,)``. Returns (points written, end code, cells crossed)."""
+    and ``out_t`` ``(s,)``, and the cell it moves through from each position (the last: the
+    cell it ended in) to ``out_e`` ``(s,)``. Returns (points written, end code, cells
+    crossed)."""
     max_steps = out_t.size - 1
     x = x0.copy()
     e = e0
     t = 0.0
     out_x[:, 0] = x
     out_t[0] = 0.0
+    out_e[0] = e
     n = 1
     crossed = 0
     came_from = -1
@@ -295,6 +301,7 @@ def _track(points: FloatArray, cells: IndexArray, nb: IndexArray, velocity: Floa
                 f = nb[k, e]
                 if f >= 0 and f != came_from and idle < _IDLE_LIMIT:
                     came_from, e, idle = e, f, idle + 1  # round an edge or a vertex
+                    out_e[n - 1] = e
                     continue
                 stalled = f >= 0
                 if not stalled:
@@ -307,6 +314,7 @@ def _track(points: FloatArray, cells: IndexArray, nb: IndexArray, velocity: Floa
                 t += tau
                 out_x[:, n] = x
                 out_t[n] = t
+                out_e[n] = e
                 n += 1
                 if t >= max_time:
                     return n, _MAX_TIME, crossed
@@ -315,6 +323,7 @@ def _track(points: FloatArray, cells: IndexArray, nb: IndexArray, velocity: Floa
                     return n, _BOUNDARY, crossed
                 crossed += 1
                 came_from, e, idle = e, f, 0
+                out_e[n - 1] = e
                 continue
         # no exact move possible: one midpoint step on the node-averaged velocity
         _barycentric(points, cells, e, x, lam, g)
@@ -350,11 +359,14 @@ def _track(points: FloatArray, cells: IndexArray, nb: IndexArray, velocity: Floa
             t += lo * dt
             out_x[:, n] = x
             out_t[n] = t
+            last = _locate(points, cells, nb, x, e, False)
+            out_e[n] = last if last >= 0 else e
             return n + 1, _BOUNDARY, crossed
         x[:] = xs
         t += dt
         out_x[:, n] = x
         out_t[n] = t
+        out_e[n] = en
         n += 1
         if t >= max_time:
             return n, _MAX_TIME, crossed
@@ -421,7 +433,7 @@ class Tracker:
         x = np.asarray(x0, dtype=float).copy()
         e = self.locate(x)
         if e < 0:
-            return Pathline(x[:, None], np.zeros(1), "boundary")
+            return Pathline(x[:, None], np.zeros(1), "boundary", 0, np.full(1, -1))
         capture = np.zeros(0, dtype=np.bool_)
         if isinstance(capture_cells, np.ndarray):
             capture = np.ascontiguousarray(capture_cells, dtype=np.bool_)
@@ -433,11 +445,13 @@ class Tracker:
             capture[np.fromiter(capture_cells, dtype=np.int64)] = True
         out_x = np.empty((3, max_steps + 1))
         out_t = np.empty(max_steps + 1)
+        out_e = np.empty(max_steps + 1, dtype=np.int64)
         n, end, crossed = _track(self.points, self.cells, self.neighbour, self.velocity,
                                  self.porosity, self._nodal, capture, x, e,
                                  -1.0 if backward else 1.0, float(max_time),
-                                 float(step_fraction), out_x, out_t)
-        return Pathline(out_x[:, :n].copy(), out_t[:n].copy(), _ENDS[end], int(crossed))
+                                 float(step_fraction), out_x, out_t, out_e)
+        return Pathline(out_x[:, :n].copy(), out_t[:n].copy(), _ENDS[end], int(crossed),
+                        out_e[:n].copy())
 
 
 # ------------------------------------------------------------------------------- thinning
@@ -481,4 +495,5 @@ def thin_pathline(path: Pathline, tolerance: float) -> Pathline:
     if path.times.size <= 2:
         return path
     keep = _keep_points(np.ascontiguousarray(path.points.T), float(tolerance))
-    return Pathline(path.points[:, keep], path.times[keep], path.end, path.cells_crossed)
+    return Pathline(path.points[:, keep], path.times[keep], path.end, path.cells_crossed,
+                    path.cells[keep])

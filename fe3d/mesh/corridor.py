@@ -626,32 +626,29 @@ def _fastest_retardation(case: Case, source: str, mats: Sequence[Any],
 
 
 def site_corridor(case: Case, site: SiteMesh,
-                  pathlines: dict[str, list[tuple[FloatArray, FloatArray]]],
+                  pathlines: dict[str, list[tuple[FloatArray, FloatArray, IndexArray]]],
                   ) -> Corridor | None:
     """The corridor of ``case`` from forward pathlines tracked on ``site`` (the first mesh).
 
     ``pathlines`` maps a source name to its pathlines as (points ``(3, k)`` [m], the water's
-    travel times ``(k,)`` [s]). Reads the unit at each point, the source extents, the
+    travel times ``(k,)`` [s], the cell of ``site`` the particle moves through from each
+    point ``(k,)``, as the tracker recorded it). Reads the unit of each stretch, the
+    source extents, the
     retardation of the fastest species the source makes (:func:`_fastest_retardation`) and
     the ``[mesh]`` settings; returns ``None`` when nothing needs refining.
     """
-    from fe3d.mesh.locate import CellFinder
     from fe3d.mesh.materials import unit_materials
 
     mats, keys = unit_materials(Ground.of(case), site)
     alpha = np.array([[m.longitudinal_dispersivity, m.transverse_dispersivity,
                        m.alpha_vertical] for m in mats])
-    finder = CellFinder(site.points, site.cells)
     samples = []
     for name, lines in pathlines.items():
-        seeds = np.array([p[:, 0] for p, _ in lines]).T if lines else np.zeros((3, 0))
+        seeds = np.array([p[:, 0] for p, _, _ in lines]).T if lines else np.zeros((3, 0))
         half = _source_half_widths(case, seeds, name) if lines else 0.0
         retardation = _fastest_retardation(case, name, mats, keys)
-        for points, water_times in lines:
-            cell, _ = finder.find(points, tol=1e-6)
-            # a point on the outer boundary found in no cell takes its predecessor's cell
-            found = np.maximum.accumulate(np.where(cell >= 0, np.arange(cell.size), 0))
-            unit = site.cell_layer[np.maximum(cell[found], 0)]
+        for points, water_times, cells in lines:
+            unit = site.cell_layer[np.maximum(cells, 0)]  # −1: a start outside the mesh
             a = alpha[unit]
             times = np.concatenate([[0.0], np.cumsum(retardation[unit[:-1]]
                                                      * np.diff(water_times))])

@@ -106,6 +106,27 @@ def test_uniform_flow_is_followed_exactly_across_many_cells():
     assert back.times[-1] == pytest.approx(9.0 / v[0], rel=16 * EPS * back.cells_crossed)
 
 
+def test_each_recorded_point_names_the_cell_the_particle_moves_through_next():
+    """The cells a pathline records (read by the plume corridor for each stretch's unit)
+    are the cells the particle crosses: the midpoint of every stretch lies in the cell
+    recorded at its start, by Qhull's point location (scipy.spatial.Delaunay.find_simplex
+    on the same tetrahedra: an exact index), and the last point in the cell it ended in."""
+    pts, cells, _ = _random_mesh(600, seed=2)
+    pts[:, :8] = np.array([[x, y, z] for x in (0, 10) for y in (0, 6) for z in (0, 2)],
+                          dtype=float).T
+    tri = Delaunay(pts.T)
+    cells = tri.simplices.T.copy()
+    v = np.array([2.0e-5, 0.3e-5, 0.1e-5])
+    path = Tracker(pts, cells, np.repeat(v[:, None], cells.shape[1], axis=1)).track(
+        np.array([0.5, 1.0, 0.5]))
+    assert path.cells.shape == path.times.shape and path.cells_crossed > 20
+    middles = 0.5 * (path.points[:, 1:] + path.points[:, :-1])
+    np.testing.assert_array_equal(path.cells[:-1], tri.find_simplex(middles.T))
+    last = tri.transform[path.cells[-1]]
+    lam = last[:3] @ (path.points[:, -1] - last[3])
+    assert lam.min() >= -1e-9 and lam.sum() <= 1.0 + 1e-9  # barycentric, tolerance 1e-9
+
+
 def test_converging_faces_do_not_stall_a_particle():
     """Two cells of equal volume, mirror images across their shared face x + y + z = 1,
     whose velocities u ± n/2 (u in the face, n its unit normal) both point into that face:
@@ -139,7 +160,7 @@ def test_thinning_keeps_the_ends_and_stays_within_the_tolerance():
     and points on a straight stretch are dropped."""
     s = np.linspace(0.0, 1.0, 201)
     pts = np.vstack([10.0 * s, np.where(s < 0.5, 0.0, 4.0 * (s - 0.5)), 0.01 * np.sin(40 * s)])
-    line = Pathline(pts, 100.0 * s, "boundary", 200)
+    line = Pathline(pts, 100.0 * s, "boundary", 200, np.arange(201))
     thin = thin_pathline(line, 0.05)
     assert 3 <= thin.times.size < 40
     assert thin.times[0] == 0.0 and thin.times[-1] == 100.0
