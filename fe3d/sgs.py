@@ -27,6 +27,7 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
+from fe3d._indices import ONE, unsigned
 from fe3d._typing import FloatArray, IndexArray
 
 __all__ = ["GaussSeidelSplitting", "LinearCombination", "ScaledMatrix", "SplitMatrix",
@@ -126,10 +127,10 @@ def _upper_solve(up: IndexArray, ui: IndexArray, ud: FloatArray, inv_d: FloatArr
     for i in range(v.size - 1, -1, -1):
         s1, s2 = v[i], 0.0
         p, b = up[i], up[i + 1]
-        while p + 1 < b:
+        while p + ONE < b:
             s1 -= ud[p] * out[ui[p]]
-            s2 -= ud[p + 1] * out[ui[p + 1]]
-            p += 2
+            s2 -= ud[p + ONE] * out[ui[p + ONE]]
+            p += ONE + ONE
         if p < b:
             s1 -= ud[p] * out[ui[p]]
         out[i] = (s1 + s2) * inv_d[i]
@@ -142,10 +143,10 @@ def _lower_solve(lp: IndexArray, li: IndexArray, ld: FloatArray, inv_d: FloatArr
     for i in range(v.size):
         s1, s2 = v[i], 0.0
         p, b = lp[i], lp[i + 1]
-        while p + 1 < b:
+        while p + ONE < b:
             s1 -= ld[p] * out[li[p]]
-            s2 -= ld[p + 1] * out[li[p + 1]]
-            p += 2
+            s2 -= ld[p + ONE] * out[li[p + ONE]]
+            p += ONE + ONE
         if p < b:
             s1 -= ld[p] * out[li[p]]
         out[i] = (s1 + s2) * inv_d[i]
@@ -176,20 +177,20 @@ def _split_product(lp: IndexArray, li: IndexArray, ld: FloatArray, up: IndexArra
     for i in range(n - 1, -1, -1):
         s1, s2 = v[i], 0.0
         p, b = up[i], up[i + 1]
-        while p + 1 < b:
+        while p + ONE < b:
             s1 -= ud[p] * w[ui[p]]
-            s2 -= ud[p + 1] * w[ui[p + 1]]
-            p += 2
+            s2 -= ud[p + ONE] * w[ui[p + ONE]]
+            p += ONE + ONE
         if p < b:
             s1 -= ud[p] * w[ui[p]]
         w[i] = (s1 + s2) * inv_d[i]
     for i in range(n):
         s1, s2 = v[i] - e[i] * w[i], 0.0
         p, b = lp[i], lp[i + 1]
-        while p + 1 < b:
+        while p + ONE < b:
             s1 -= ld[p] * out[li[p]]
-            s2 -= ld[p + 1] * out[li[p + 1]]
-            p += 2
+            s2 -= ld[p + ONE] * out[li[p + ONE]]
+            p += ONE + ONE
         if p < b:
             s1 -= ld[p] * out[li[p]]
         out[i] = (s1 + s2) * inv_d[i]
@@ -233,7 +234,8 @@ def _joined(lp: IndexArray, li: IndexArray, ld: FloatArray, up: IndexArray, ui: 
     indptr = np.empty(n + 1, np.int64)
     indptr[0] = 0
     for i in range(n):
-        indptr[i + 1] = indptr[i] + (lp[i + 1] - lp[i]) + 1 + (up[i + 1] - up[i])
+        indptr[i + 1] = indptr[i] + np.int64(lp[i + 1] - lp[i]) + 1 + np.int64(up[i + 1]
+                                                                                - up[i])
     indices = np.empty(indptr[n], np.int32)
     data = np.empty(indptr[n])
     for i in range(n):
@@ -301,7 +303,8 @@ class ScaledMatrix(spla.LinearOperator):
 
     def _matvec(self, x: FloatArray) -> FloatArray:
         out = np.empty(self.shape[0])
-        _scaled_product(self.A.indptr, self.A.indices, np.asarray(self.A.data, dtype=float),
+        _scaled_product(unsigned(self.A.indptr), unsigned(self.A.indices),
+                        np.asarray(self.A.data, dtype=float),
                         self.factor, np.ascontiguousarray(x, dtype=float).ravel(), out)
         return out
 
@@ -363,9 +366,11 @@ class LinearCombination(spla.LinearOperator):
         v = np.ascontiguousarray(x, dtype=float).ravel()
         B = self.B
         if self._diagonal is None:
-            _sum_product(B.indptr, B.indices, self.A.data, self.ca, B.data, self.cb, v, out)
+            _sum_product(unsigned(B.indptr), unsigned(B.indices), self.A.data, self.ca,
+                         B.data, self.cb, v, out)
         else:
-            _diagonal_sum_product(B.indptr, B.indices, B.data, self.cb, self._positions,
+            _diagonal_sum_product(unsigned(B.indptr), unsigned(B.indices), B.data, self.cb,
+                                  unsigned(self._positions),
                                   self._diagonal, self.ca, v, out)
         return out
 
@@ -512,8 +517,8 @@ class SymmetricGaussSeidel(GaussSeidelSplitting):
         super().__init__(data[dpos], omega)
         all_rows = np.arange(self.n, dtype=np.int64)
         lp, li, ld, up, ui, ud = split_csr(A, all_rows, None, all_rows)
-        self.lower = (lp, li, ld)
-        self.upper = (up, ui, ud)
+        self.lower = (unsigned(lp), unsigned(li), ld)  # unsigned: see fe3d.p1.unsigned
+        self.upper = (unsigned(up), unsigned(ui), ud)
 
     def matrix(self) -> SplitMatrix:
         """A as an operator on the splitting's arrays, so that A need not be kept."""

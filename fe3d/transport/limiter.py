@@ -33,6 +33,7 @@ import numba
 import numpy as np
 import scipy.sparse as sp
 
+from fe3d._indices import unsigned
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.p1 import transpose_positions
 
@@ -377,12 +378,13 @@ def linearised_target(ops: TargetFluxes, c_low: FloatArray, c_old: FloatArray, d
     c_old = np.ascontiguousarray(c_old, dtype=float)
     mean = theta * c_low + (1.0 - theta) * c_old
     residual, rate = np.empty(n), np.empty(n)
-    _galerkin_residual(ops.mass.indptr, ops.mass.indices, ops.low_order.data,
+    indptr, cols = unsigned(ops.mass.indptr), unsigned(ops.mass.indices)
+    _galerkin_residual(indptr, cols, ops.low_order.data,
                        ops.galerkin.data, c_low, mean, c_old, ops.lumped, float(dt), held,
                        residual, rate)
     other = np.empty(n)
     for _ in range(sweeps):
-        _mass_sweep(ops.mass.indptr, ops.mass.indices, ops.mass.data, ops.lumped, residual,
+        _mass_sweep(indptr, cols, ops.mass.data, ops.lumped, residual,
                     held, rate, other)
         rate, other = other, rate
     return TargetStep(rate=rate, mean=mean)
@@ -430,7 +432,7 @@ def _correct(ops: TargetFluxes, c_low: FloatArray, target: TargetStep, c_old: Fl
     held = np.zeros(n, dtype=np.bool_)
     held[fixed] = True
     c_low = np.ascontiguousarray(c_low, dtype=float)
-    indptr, cols = ops.mass.indptr, ops.mass.indices
+    indptr, cols = unsigned(ops.mass.indptr), unsigned(ops.mass.indices)
     c, total = c_low.copy(), np.zeros(n)
     free = ~held
     cap = np.full(n, -np.inf) if upper is None else np.asarray(upper, dtype=float)
@@ -500,7 +502,8 @@ def raw_flux_sums(ops: TargetFluxes, c_low: FloatArray, c_high: FloatArray,
     rate, c_mean = _rate_and_mean(np.asarray(c_high, dtype=float),
                                   np.asarray(c_old, dtype=float), dt, theta)
     f, sums, ranges = np.empty(ops.mass.indices.size), np.empty(2 * n), np.empty(2 * n)
-    _first_sweep(ops.mass.indptr, ops.mass.indices, ops.mass.data, ops.galerkin.data,
+    _first_sweep(unsigned(ops.mass.indptr), unsigned(ops.mass.indices), ops.mass.data,
+                 ops.galerkin.data,
                  ops.low_order.data, ops.low_order_transposed, c_low, rate, c_mean,
                  np.asarray(c_old, dtype=float), np.full(n, -np.inf), f, sums, ranges)
     rows = np.repeat(np.arange(n), np.diff(ops.mass.indptr))
