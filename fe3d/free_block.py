@@ -23,6 +23,7 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
+from fe3d._indices import ONE, unsigned
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.sgs import GaussSeidelSplitting, LinearCombination, rows_sorted
 
@@ -89,7 +90,7 @@ def _solve(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float, b:
     for k in range(n):
         i = n - 1 - k if upper else k
         r = rows[i]
-        p, q = (at[i] + 1, indptr[r + 1]) if upper else (indptr[r], at[i])
+        p, q = (at[i] + ONE, indptr[r + 1]) if upper else (indptr[r], at[i])
         s1, s2 = v[i], 0.0
         if touches_held[i]:
             for m in range(p, q):
@@ -98,12 +99,12 @@ def _solve(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: float, b:
                     x = ca * a[m] + cb * b[m] if on_pattern else cb * b[m]
                     s1, s2 = s2, s1 - x * f[c]
         else:
-            while p + 1 < q:
+            while p + ONE < q:
                 x1 = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
-                x2 = ca * a[p + 1] + cb * b[p + 1] if on_pattern else cb * b[p + 1]
+                x2 = ca * a[p + ONE] + cb * b[p + ONE] if on_pattern else cb * b[p + ONE]
                 s1 -= x1 * f[indices[p]]
-                s2 -= x2 * f[indices[p + 1]]
-                p += 2
+                s2 -= x2 * f[indices[p + ONE]]
+                p += ONE + ONE
             if p < q:
                 x1 = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
                 s1 -= x1 * f[indices[p]]
@@ -155,7 +156,7 @@ def _upper_product(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: f
     """out = (D + U) v."""
     for i in range(rows.size):
         s = d[i] * v[i]
-        for p in range(at[i] + 1, indptr[rows[i] + 1]):
+        for p in range(at[i] + ONE, indptr[rows[i] + 1]):
             j = place[indices[p]]
             if j >= 0:
                 x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
@@ -179,7 +180,7 @@ def _full_product(indptr: IndexArray, indices: IndexArray, a: FloatArray, ca: fl
                 x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
                 s += x * v[j]
         s += diagonal[i] * v[i]
-        for p in range(at[i] + 1, indptr[r + 1]):
+        for p in range(at[i] + ONE, indptr[r + 1]):
             j = place[indices[p]]
             if j >= 0:
                 x = ca * a[p] + cb * b[p] if on_pattern else cb * b[p]
@@ -246,9 +247,11 @@ class FreeBlock(spla.LinearOperator):
             raise ValueError(msg)
         lumped = S.a_diagonal
         a = B.data if lumped is not None else S.A.data  # B.data: a stand-in, never read
-        self.arrays = BlockArrays(B.indptr, B.indices, np.asarray(a, dtype=float), S.ca,
+        # pointers, columns, rows and diagonal positions as unsigned views (fe3d._indices)
+        self.arrays = BlockArrays(unsigned(B.indptr), unsigned(B.indices),
+                                  np.asarray(a, dtype=float), S.ca,
                                   np.asarray(B.data, dtype=float), S.cb, lumped is None,
-                                  free, place, at)
+                                  unsigned(free), place, unsigned(at))
         self.held, self.nodes = fixed.size, n
         self.touches_held = _touches_held(B.indptr, B.indices, free, place)
         # the values S.tocsr() gives these entries (fe3d.sgs.LinearCombination.tocsr)
