@@ -4,6 +4,11 @@
 R(c) = S c − known + (a0/Δt + θλ_s) Σ(c) + θ L(c), where ``known`` gathers once everything
 that does not change with c: the right-hand side, the sorbed mass of the earlier levels, and
 the (1 − θ) parts at cⁿ. J = S + diag((a0/Δt + θλ_s) Σ'(c) + θ L'(c)).
+
+On the free nodes Newton's residual is S_ff x + S_fD c_D − known_f + …: the held values
+c_D do not change within the step, so S_fD c_D − known_f is formed once and each
+evaluation multiplies by S_ff only, as the step's solver holds it (one product with the
+free block instead of one with S, which the Newton step reads as two value arrays).
 """
 
 from __future__ import annotations
@@ -54,6 +59,8 @@ class StepResidual:
         self.storage_weight = formula.a0 / dt + th * lam_s
         self.s, self.system, self.held, self.theta = s, system, held, th
         self.rate_now = rate_now
+        free, fixed = system.free, system.fixed
+        self.known_free = self.known[free] - system.S_fD @ held[fixed]
         self._last: _LawAt | None = None
 
     def full(self, c: FloatArray) -> FloatArray:
@@ -73,10 +80,16 @@ class StepResidual:
         return c
 
     def free_rows(self, x: FloatArray) -> FloatArray:
-        """R on the free nodes at the free values ``x``."""
-        out = self.full(self.field(x))[self.system.free]
-        assert self._last is not None
-        self._last = _LawAt(x, self._last.c, self._last.loss, self._last.dloss)
+        """R on the free nodes at the free values ``x``: S_ff x − (known_f − S_fD c_D)
+        plus the nonlinear terms, S_ff the step solver's operator."""
+        c = self.field(x)
+        free = self.system.free
+        loss, dloss = self.s.reaction_loss(c, self.rate_now)
+        out = self.system.solver.A @ x - self.known_free
+        out += self.theta * loss[free]
+        if self.nonlinear_sorption:
+            out += self.storage_weight * self.s.sorbed(c)[0][free]
+        self._last = _LawAt(x, c, loss, dloss)
         return out
 
     def jacobian_diagonal(self, x: FloatArray) -> FloatArray:
