@@ -38,7 +38,8 @@ class Forcing:
     leaves η_0 free (its experiments used 0.5, from memory); ``first`` = 0.1 is measured
     on the benchmark box at 223 k nodes (second-order decay, SUPG, backward Euler): step
     cost 51, 46, 45 SpMV at Courant 1 and 91, 83, 86 at Courant 10 for η_0 = 0.5, 0.1,
-    0.01 (docs/performance.md, "Newton steps")."""
+    0.01 (docs/performance.md, "Newton steps"). It serves a start from cⁿ; a start
+    that already lowered ‖R‖ takes η_0 from the formula (:func:`forcing_term`, R14c)."""
 
     gamma: float = 0.9
     alpha: float = 2.0
@@ -50,18 +51,20 @@ def forcing_term(forcing: Forcing, previous: float | None, r_norm: float,
                  r_previous: float | None, target: float) -> float:
     """The relative accuracy η_k asked of the k-th linear solve (R14b).
 
-    η_0 = ``forcing.first`` (``previous`` is None); then η_k = γ(‖R_k‖/‖R_{k−1}‖)^α, raised
-    to γ η_{k−1}^α when that exceeds 0.1 (the paper's safeguard against η falling too fast
-    when the residual ratio is briefly small), and at most η_max. Last, η_k is at least
-    0.5 τ/‖R_k‖ with τ the Newton target (Kelley 1995, "Iterative methods for linear and
-    nonlinear equations", SIAM, §6.3, from memory): the final solve is not asked for more
-    than the target needs.
+    η_0 = ``forcing.first`` (``r_previous`` is None); then η_k = γ(‖R_k‖/‖R_{k−1}‖)^α,
+    raised to γ η_{k−1}^α when that exceeds 0.1 (the paper's safeguard against η falling
+    too fast when the residual ratio is briefly small; not for η_0, which has no
+    predecessor), and at most η_max. A start that already reduced ‖R‖ from ‖R_{−1}‖
+    (``r_previous`` given with ``previous`` None, R14c) sets η_0 by the same formula.
+    Last, η_k is at least 0.5 τ/‖R_k‖ with τ the Newton target (Kelley 1995, "Iterative
+    methods for linear and nonlinear equations", SIAM, §6.3, from memory): the final solve
+    is not asked for more than the target needs.
     """
-    if previous is None or r_previous is None:
+    if r_previous is None:
         eta = forcing.first
     else:
         eta = forcing.gamma * (r_norm / r_previous) ** forcing.alpha
-        guard = forcing.gamma * previous ** forcing.alpha
+        guard = 0.0 if previous is None else forcing.gamma * previous ** forcing.alpha
         if guard > 0.1:
             eta = max(eta, guard)
     if r_norm > 0:
@@ -111,6 +114,8 @@ def newton(
     max_halvings: int = 10,
     norm: Callable[[FloatArray], float] = _l2,
     forcing: Forcing | None = None,
+    started_from: float | None = None,
+    r0: FloatArray | None = None,
 ) -> NewtonResult:
     """Solve R(x) = 0 from ``x0``.
 
@@ -122,11 +127,18 @@ def newton(
         (x, r) ↦ δ with J(x) δ = r, J = ∂R/∂x at x; with ``forcing``, (x, r, η) ↦ δ with
         ‖r − J δ‖ ≤ η ‖r‖ (the solve's own measure of it).
     rtol, atol
-        Converged when ‖R(x_k)‖ ≤ max(atol, rtol ‖R(x_0)‖), or when the correction is at
+        Converged when ‖R(x_k)‖ ≤ max(atol, rtol ‖R(x_0)‖) (``started_from`` in place of
+        ‖R(x_0)‖ when given), or when the correction is at
         round-off level (max|δ| ≤ 4ε max|x|, see ``ROUND_OFF``), whichever comes first.
     forcing
         Inexact Newton with Eisenstat & Walker's forcing terms (R14b); None: the solve is
         called as (x, r) and trusted to be accurate.
+    started_from
+        ‖R‖ at the point ``x0`` was improved from (R14c), at least ‖R(x0)‖: the target is
+        then rtol times it instead of rtol ‖R(x0)‖, and η_0 follows from the reduction
+        (:func:`forcing_term`). None: ``x0`` is the reference itself.
+    r0
+        R(x0) when the caller has already evaluated it (not evaluated again).
     max_iter
         Largest number of Newton iterations.
     line_search
@@ -142,15 +154,17 @@ def newton(
         ``max_halvings`` halvings; not converged after ``max_iter`` iterations. The error
         carries the residual norms reached.
     """
-    x = np.array(x0, dtype=float, copy=True)
-    r = residual(x)
+    x = np.asarray(x0, dtype=float)  # never written to: every update makes a new array
+    r = residual(x) if r0 is None else r0
     r_norm = norm(r)
     norms = [r_norm]
     steps: list[float] = []
     if not np.isfinite(r_norm):
         msg = "Newton: the residual is not finite at the starting point"
         raise NewtonError(msg, norms)
-    target = max(atol, rtol * r_norm)
+    reference = r_norm if started_from is None else max(started_from, r_norm)
+    target = max(atol, rtol * reference)
+    before = [] if started_from is None else [reference]
     etas: list[float] = []
     for _ in range(max_iter):
         if r_norm <= target:
@@ -158,8 +172,9 @@ def newton(
         if forcing is None:
             delta = jacobian_solve(x, r)
         else:
+            history = before + norms
             etas.append(forcing_term(forcing, etas[-1] if etas else None, r_norm,
-                                     norms[-2] if len(norms) > 1 else None, target))
+                                     history[-2] if len(history) > 1 else None, target))
             delta = jacobian_solve(x, r, etas[-1])
         if not np.all(np.isfinite(delta)):
             msg = (f"Newton: non-finite correction at iteration {len(steps) + 1} "

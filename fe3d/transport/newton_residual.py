@@ -4,6 +4,12 @@
 R(c) = S c − known + (a0/Δt + θλ_s) Σ(c) + θ L(c), where ``known`` gathers once everything
 that does not change with c: the right-hand side, the sorbed mass of the earlier levels, and
 the (1 − θ) parts at cⁿ. J = S + diag((a0/Δt + θλ_s) Σ'(c) + θ L'(c)).
+
+On the free nodes Newton's residual is S_ff x + S_fD c_D − known_f + …: the held values
+c_D do not change within the step, so S_fD c_D − known_f is formed once and each
+evaluation multiplies by S_ff only, as the step's solver holds it (one product with the
+free block instead of one with S, which the Newton step reads as two value arrays). Given
+S_ff x already (a combination of stored images, theory.md R14c), R needs no product.
 """
 
 from __future__ import annotations
@@ -23,12 +29,14 @@ __all__ = ["StepResidual"]
 @dataclass(frozen=True)
 class _LawAt:
     """The reaction law at one field: the free values it came from (None when evaluated on
-    a whole field), the field [kg/m³], the nodal loss [kg/s] and its derivative [m³/s]."""
+    a whole field), the field [kg/m³], the nodal loss [kg/s] and its derivative [m³/s],
+    and S_ff x when R was evaluated on the free rows (else None)."""
 
     x: FloatArray | None
     c: FloatArray
     loss: FloatArray
     dloss: FloatArray
+    product: FloatArray | None = None
 
 
 class StepResidual:
@@ -54,6 +62,8 @@ class StepResidual:
         self.storage_weight = formula.a0 / dt + th * lam_s
         self.s, self.system, self.held, self.theta = s, system, held, th
         self.rate_now = rate_now
+        free, fixed = system.free, system.fixed
+        self.known_free = self.known[free] - system.S_fD @ held[fixed]
         self._last: _LawAt | None = None
 
     def full(self, c: FloatArray) -> FloatArray:
@@ -73,11 +83,27 @@ class StepResidual:
         return c
 
     def free_rows(self, x: FloatArray) -> FloatArray:
-        """R on the free nodes at the free values ``x``."""
-        out = self.full(self.field(x))[self.system.free]
-        assert self._last is not None
-        self._last = _LawAt(x, self._last.c, self._last.loss, self._last.dloss)
+        """R on the free nodes at the free values ``x``, with S_ff the step solver's
+        operator."""
+        return self.rows_with_product(x, self.system.solver.A @ x)
+
+    def rows_with_product(self, x: FloatArray, product: FloatArray) -> FloatArray:
+        """R on the free nodes at ``x`` given ``product`` = S_ff x: S_ff x −
+        (known_f − S_fD c_D) plus the nonlinear terms."""
+        c = self.field(x)
+        free = self.system.free
+        loss, dloss = self.s.reaction_loss(c, self.rate_now)
+        out = product - self.known_free
+        out += self.theta * loss[free]
+        if self.nonlinear_sorption:
+            out += self.storage_weight * self.s.sorbed(c)[0][free]
+        self._last = _LawAt(x, c, loss, dloss, product)
         return out
+
+    def last_product(self, x: FloatArray) -> FloatArray | None:
+        """S_ff x when R was last evaluated on the free rows at ``x`` itself, else None."""
+        last = self._last
+        return last.product if last is not None and last.x is x else None
 
     def jacobian_diagonal(self, x: FloatArray) -> FloatArray:
         """J − S_ff on the free nodes at ``x`` [m³/s] (T10, T11)."""

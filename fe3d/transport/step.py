@@ -31,6 +31,7 @@ from fe3d.transport.model import RateLaw, SpeciesModel
 from fe3d.transport.newton import Forcing, newton
 from fe3d.transport.newton_correction import CorrectionSolver
 from fe3d.transport.newton_residual import StepResidual
+from fe3d.transport.newton_start import StepWindow, WindowStart, window_start
 from fe3d.transport.shock import isotropic_stiffness, shock_diffusivity
 from fe3d.transport.sources import SourceGeometry
 from fe3d.transport.systems import NearbySolver, StepSystem, StepSystems, cell_coefficients
@@ -416,7 +417,7 @@ def _with_shock_capturing(
     solver_x: LinearSolver | NearbySolver = LinearSolver(S_x_ff, method="direct", tol=tol) \
         if step_system.solver.method == "direct" else NearbySolver(
             S_x_ff, step_system.solver.preconditioner(), tol, step_system.solver.method)
-    return (replace(step_system, S=S_x, S_fD=S_x_fD, solver=solver_x),
+    return (replace(step_system, S=S_x, S_fD=S_x_fD, solver=solver_x, newton_window=None),
             (formula.theta - 1.0) * (Kx @ old))
 
 
@@ -469,19 +470,40 @@ def nonlinear_step(
     def jacobian_solve(x: FloatArray, r: FloatArray, eta: float) -> FloatArray:
         return corrections.solve(res.jacobian_diagonal(x), r, eta)
 
+    start = _window_start(step_system.newton_window, res, old[free])
     # an absolute floor at the round-off of evaluating R: near a steady state the first
     # residual is already tiny and tol times it would lie below what floating point reaches
-    scale = max(float(np.linalg.norm(rhs[free])), float(np.linalg.norm(S_ff @ old[free])))
-    # Newton starts from cⁿ: its first iterate is the linearised step's solution (R14c)
-    result = newton(res.free_rows, jacobian_solve, old[free].copy(), rtol=tol,
+    old_image = S_ff @ old[free] if start is None else start.old_image
+    scale = max(float(np.linalg.norm(rhs[free])), float(np.linalg.norm(old_image)))
+    # from cⁿ the first iterate is the linearised step's solution; from the window's start
+    # the target stays tol ‖R(cⁿ)‖ (R14c)
+    result = newton(res.free_rows, jacobian_solve,
+                    old[free].copy() if start is None else start.x, rtol=tol,
                     atol=ROUND_OFF_FACTOR * np.finfo(float).eps * scale, max_iter=max_iter,
-                    forcing=Forcing())
-    logger.info("%s: Newton %d iterations, residual norms %s, Krylov iterations %s",
+                    forcing=Forcing(), started_from=None if start is None else start.reference,
+                    r0=None if start is None else start.residual)
+    logger.info("%s: Newton %d iterations, residual norms %s, Krylov iterations %s%s",
                 s.name, result.iterations, ", ".join(f"{r:.2e}" for r in result.residual_norms),
-                corrections.iterations, extra={"krylov_iterations": corrections.iterations})
+                corrections.iterations, "" if start is None else
+                f" (started from earlier steps; |R(c^n)| = {start.reference:.2e})",
+                extra={"krylov_iterations": corrections.iterations})
+    if step_system.newton_window is not None:
+        image = res.last_product(result.x)
+        step_system.newton_window.add(result.x, S_ff @ result.x if image is None else image)
     c = res.field(result.x)
     r_full = res.full(c)
     return c, r_full, res.decayed(c, loss_old, dt), result.iterations
+
+
+def _window_start(window: StepWindow | None, res: StepResidual,
+                  old_free: FloatArray) -> WindowStart | None:
+    """Newton's start from the earlier steps of this step matrix (R14c): when their window
+    ends at cⁿ and the best combination lowers ‖R‖ below ‖R(cⁿ)‖; else None (start
+    from cⁿ)."""
+    if window is None or not window.ends_at(old_free):
+        return None
+    start = window_start(window, res.rows_with_product, res.jacobian_diagonal)
+    return start if start is not None and start.norm < start.reference else None
 
 
 def _sorbed_decay_rate(s: SpeciesModel, new: FloatArray, old: FloatArray,

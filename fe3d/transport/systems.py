@@ -26,6 +26,7 @@ from fe3d.sgs import LinearCombination, ScaledMatrix
 from fe3d.transport.assembly import low_order_operators, transport_operators
 from fe3d.transport.limiter import TargetFluxes
 from fe3d.transport.model import Coefficients, MediumFields, SpeciesModel
+from fe3d.transport.newton_start import StepWindow
 from fe3d.transport.stabilization import supg_tau
 from fe3d.transport.timeschemes import StepCoefficients
 
@@ -136,6 +137,7 @@ class StepSystem:
     free: IndexArray
     fixed: IndexArray
     S_fD: sp.csr_matrix
+    newton_window: StepWindow | None = None
 
     def known_terms(self, history: FloatArray, old: FloatArray, dt: float) -> FloatArray:
         """−M·history/Δt + (θ − 1)K cⁿ [kg/s]: the right-hand side of the step before its
@@ -294,12 +296,17 @@ class StepSystems:
 
     def _split(self, M: sp.csr_matrix, K: sp.csr_matrix, dt: float, formula: StepCoefficients,
                active: tuple[str, ...], tol: float | None = None,
-               lumped: bool = False, in_place: bool = False) -> StepSystem:
+               lumped: bool = False, in_place: bool = False,
+               nonlinear: bool = False) -> StepSystem:
         """S = a0/Δt M + θK split by held and free nodes, with its solver (relative
         tolerance ``tol``, default ``solver.tolerance``); ``lumped``: M is a diagonal
         matrix (its own pattern), else M is on the mesh's pattern; ``in_place``: the solver
         reads S_ff off M's and K's arrays (:func:`splittings_in_place`), else a CSR copy of
-        it."""
+        it. ``nonlinear``: the system of a Newton step, whose solver solves no system of
+        its own (only its splitting or preconditioner serves the corrections, T10): the
+        window of earlier solutions is Newton's start window (R14c), not the solver's, and
+        like the solver's only with Gauss–Seidel (direct solves stay bit for bit the same
+        when a run is resumed from a checkpoint, which holds no window)."""
         n = self.site.n_nodes
         # held as an operator on M's and K's arrays; its CSR copy only while it is split
         S = LinearCombination(M, formula.a0 / dt, K, formula.theta)
@@ -313,13 +320,16 @@ class StepSystems:
             S_ff, S_fD = block, block.held_columns()
         else:
             S_ff, S_fD = split_rows(S.tocsr(), free, fixed)
+        window = IN_PLACE_WINDOW if in_place else START_WINDOW
         solver = LinearSolver(S_ff, method=self.solver.linear_solver,
                               tol=self.solver.tolerance if tol is None else tol,
-                              window=IN_PLACE_WINDOW if in_place else START_WINDOW)
+                              window=0 if nonlinear else window)
         explicit = None if formula.theta == 1.0 else ScaledMatrix(K, formula.theta - 1.0)
         return StepSystem(S=S, explicit_part=explicit, M=M,
                           lumped=M.diagonal() if lumped else None, solver=solver,
-                          free=free, fixed=fixed, S_fD=S_fD)
+                          free=free, fixed=fixed, S_fD=S_fD,
+                          newton_window=StepWindow(free.size, window) if nonlinear and (
+                              solver.method == "gauss_seidel") else None)
 
     def system(self, s: SpeciesModel, dt: float, formula: StepCoefficients,
                active: tuple[str, ...]) -> StepSystem:
@@ -333,5 +343,5 @@ class StepSystems:
                 cache.systems.pop(next(iter(cache.systems)))
             cache.systems[key] = self._split(M, K, dt, formula, active,
                                              lumped=self.scheme.monotone,
-                                             in_place=self.in_place)
+                                             in_place=self.in_place, nonlinear=s.nonlinear)
         return cache.systems[key]
