@@ -26,7 +26,7 @@ import numpy as np
 
 from fe3d._typing import FloatArray
 
-__all__ = ["SolutionWindow", "bicgstab"]
+__all__ = ["SolutionWindow", "bicgstab", "gram_least_squares"]
 
 _jit = numba.njit(cache=True, nogil=True)
 
@@ -128,6 +128,18 @@ def bicgstab(apply: Callable[[FloatArray], FloatArray], r: FloatArray, y: FloatA
     return its, r
 
 
+def gram_least_squares(gram: FloatArray, projections: FloatArray) -> FloatArray:
+    """The coefficients c minimising ‖b − Σ_k c_k v_k‖₂ from the Gram matrix of the vectors
+    (gram_jk = v_j·v_k, no zero diagonal) and their products with b (``projections``,
+    v_k·b): solved on the Gram matrix scaled to a unit diagonal, keeping eigenvalues above
+    1e-13 of the largest (successive solutions are close to parallel)."""
+    scale = 1.0 / np.sqrt(np.diag(gram))
+    w, V = np.linalg.eigh(gram * scale[:, None] * scale[None, :])
+    keep = w > 1e-13 * w.max()
+    f = scale * projections
+    return scale * (V[:, keep] @ ((V[:, keep].T @ f) / w[keep]))
+
+
 class SolutionWindow:
     """The last ``size`` solutions of one matrix, kept with their images under the matrix
     (module docstring). The solutions may be stored in any linear transform of x (a split
@@ -151,12 +163,8 @@ class SolutionWindow:
         the images, scaled to a unit diagonal, keeping eigenvalues above 1e-13 of the
         largest (successive solutions are close to parallel)."""
         k = self.count
-        images, gram = self.images[:k], self.gram[:k, :k]
-        scale = 1.0 / np.sqrt(np.diag(gram))
-        w, V = np.linalg.eigh(gram * scale[:, None] * scale[None, :])
-        keep = w > 1e-13 * w.max()
-        f = scale * (images @ b)
-        c = scale * (V[:, keep] @ ((V[:, keep].T @ f) / w[keep]))
+        images = self.images[:k]
+        c = gram_least_squares(self.gram[:k, :k], images @ b)
         return c @ self.solutions[:k], b - c @ images
 
     def add(self, solution: FloatArray, image: FloatArray) -> None:

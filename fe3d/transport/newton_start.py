@@ -17,6 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from fe3d._typing import FloatArray
+from fe3d.krylov import gram_least_squares
 
 __all__ = ["GAUSS_NEWTON_STEPS", "StepWindow", "WindowStart", "window_start"]
 
@@ -71,20 +72,13 @@ ResidualFromImage = Callable[[FloatArray, FloatArray], FloatArray]
 
 
 def _least_squares(images: FloatArray, r: FloatArray) -> FloatArray:
-    """The coefficients c minimising ‖r − Σ c_j images_j‖₂, on the Gram matrix scaled to a
-    unit diagonal, eigenvalues below 1e-13 of the largest dropped (nearly parallel
-    solutions), as fe3d.krylov.SolutionWindow.start; a zero image gets c_j = 0."""
+    """The coefficients c minimising ‖r − Σ c_j images_j‖₂ (fe3d.krylov.gram_least_squares);
+    a zero image gets c_j = 0."""
     out = np.zeros(images.shape[0])
     gram = images @ images.T
     used = np.diag(gram) > 0.0
-    if not np.any(used):
-        return out
-    gram = gram[np.ix_(used, used)]
-    scale = 1.0 / np.sqrt(np.diag(gram))
-    w, V = np.linalg.eigh(gram * scale[:, None] * scale[None, :])
-    keep = w > 1e-13 * w.max()
-    f = scale * (images[used] @ r)
-    out[used] = scale * (V[:, keep] @ ((V[:, keep].T @ f) / w[keep]))
+    if np.any(used):
+        out[used] = gram_least_squares(gram[np.ix_(used, used)], images[used] @ r)
     return out
 
 
