@@ -20,6 +20,7 @@ import numba
 import numpy as np
 import scipy.sparse as sp
 
+from fe3d._indices import ONE, unsigned
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.sgs import split_csr
 
@@ -129,6 +130,12 @@ def _tensor_gradient_kernel(points: FloatArray, cells: IndexArray, field: FloatA
 
 def _pc(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, IndexArray]:
     return np.ascontiguousarray(points, dtype=float), index_array(cells)
+
+
+def _pc_unsigned(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, IndexArray]:
+    """As :func:`_pc`, the cells as an unsigned view (fe3d._indices.unsigned): for the
+    kernels that walk the pattern's rows (:func:`_cell_slots`)."""
+    return np.ascontiguousarray(points, dtype=float), unsigned(index_array(cells))
 
 
 def gradients(points: FloatArray, cells: IndexArray) -> tuple[FloatArray, FloatArray]:
@@ -454,7 +461,7 @@ def _cell_slots(indptr: IndexArray, indices: IndexArray, cells: IndexArray, e: i
         for j in (a, b, c, d):
             col = cells[j, e]
             while indices[p] < col:
-                p += 1
+                p += ONE
             pos[4 * i + j] = p
 
 
@@ -606,7 +613,8 @@ class CsrPattern:
         """Σ_e of element matrices ``local[p, i, j]`` of the cells ``cell_ids`` (all cells
         when None, in order)."""
         data = np.zeros(self.nnz)
-        _local_kernel(self.indptr, self.indices, self.cells, self._ids(cell_ids),
+        _local_kernel(unsigned(self.indptr), unsigned(self.indices), unsigned(self.cells),
+                      self._ids(cell_ids),
                       np.ascontiguousarray(local, dtype=float), data)
         return self.matrix(data)
 
@@ -626,7 +634,8 @@ class CsrPattern:
         if tensor_of is None:
             tensor_of = np.arange(ids.size)
         data = np.zeros(self.nnz)
-        _stiffness_kernel(self.indptr, self.indices, ids, *_pc(points, cells),
+        _stiffness_kernel(unsigned(self.indptr), unsigned(self.indices), ids,
+                          *_pc_unsigned(points, cells),
                           np.asarray(tensors, dtype=float),
                           np.ascontiguousarray(tensor_of, dtype=np.int64),
                           np.ones(ids.size) if scale is None else np.asarray(scale, dtype=float),
@@ -648,11 +657,12 @@ class CsrPattern:
         n_cells = cells.shape[1]
         blocks = [(0, n_cells)] if not callable(theta_d) else [
             (s, min(s + CELL_BLOCK, n_cells)) for s in range(0, n_cells, CELL_BLOCK)]
-        pc = _pc(points, cells)
+        pc = _pc_unsigned(points, cells)
         coefficients = (f(m, dtype=float), f(m_supg, dtype=float), f(k, dtype=float),
                         f(q, dtype=float), f(a, dtype=float), f(tau, dtype=float))
         for start, stop in blocks:
             tensors = theta_d(start, stop) if callable(theta_d) else theta_d
-            _transport_kernel(self.indptr, self.indices, *pc, *coefficients,
+            _transport_kernel(unsigned(self.indptr), unsigned(self.indices), *pc,
+                              *coefficients,
                               f(tensors, dtype=float), start, galerkin, supg, mass, spatial)
         return self.matrix(mass), self.matrix(spatial)
