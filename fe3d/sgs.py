@@ -234,8 +234,8 @@ def _joined(lp: IndexArray, li: IndexArray, ld: FloatArray, up: IndexArray, ui: 
     indptr = np.empty(n + 1, np.int64)
     indptr[0] = 0
     for i in range(n):
-        indptr[i + 1] = indptr[i] + np.int64(lp[i + 1] - lp[i]) + 1 + np.int64(up[i + 1]
-                                                                                - up[i])
+        below, above = np.int64(lp[i + 1] - lp[i]), np.int64(up[i + 1] - up[i])
+        indptr[i + 1] = indptr[i] + below + 1 + above
     indices = np.empty(indptr[n], np.int32)
     data = np.empty(indptr[n])
     for i in range(n):
@@ -517,7 +517,7 @@ class SymmetricGaussSeidel(GaussSeidelSplitting):
         super().__init__(data[dpos], omega)
         all_rows = np.arange(self.n, dtype=np.int64)
         lp, li, ld, up, ui, ud = split_csr(A, all_rows, None, all_rows)
-        self.lower = (unsigned(lp), unsigned(li), ld)  # unsigned: see fe3d.p1.unsigned
+        self.lower = (unsigned(lp), unsigned(li), ld)  # unsigned: fe3d._indices.unsigned
         self.upper = (unsigned(up), unsigned(ui), ud)
 
     def matrix(self) -> SplitMatrix:
