@@ -24,7 +24,7 @@ import scipy.sparse as sp
 from fe3d._typing import FloatArray, IndexArray
 from fe3d.p1 import MASS_FRACTION, CsrPattern, transpose_positions
 
-__all__ = ["P1_MASS", "low_order_operators", "monotone_operators", "transport_operators"]
+__all__ = ["P1_MASS", "low_order_operators", "transport_operators"]
 
 P1_MASS = MASS_FRACTION  # ∫φ_iφ_j dV / V on a tetrahedron
 
@@ -120,13 +120,3 @@ def low_order_operators(M: sp.csr_matrix, K: sp.csr_matrix,
                    np.ascontiguousarray(M.data, dtype=float), kd, lumped)
     return lumped, sp.csr_matrix((kd, K.indices, K.indptr), shape=K.shape)
 
-
-def monotone_operators(M: sp.csr_matrix, K: sp.csr_matrix,
-                       ) -> tuple[sp.csr_matrix, sp.csr_matrix]:
-    """:func:`low_order_operators` with the lumped mass as a matrix on the pattern of ``M``
-    (zero off the diagonal): M_L and K + D, each on the one pattern."""
-    lumped, KD = low_order_operators(M, K)
-    M = M.tocsr()
-    rows = np.repeat(np.arange(M.shape[0]), np.diff(M.indptr))
-    values = np.where(rows == M.indices, lumped[rows], 0.0)
-    return sp.csr_matrix((values, M.indices, M.indptr), shape=M.shape), KD

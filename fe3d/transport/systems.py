@@ -65,6 +65,13 @@ might not fit, since in place the steps take 1.3–1.55 times as long (223 k–2
 docs/performance.md; the share itself is common practice, no source)."""
 
 
+IN_PLACE_WINDOW = 3
+"""Earlier solutions the solver of an in-place step system keeps to start from
+(:data:`fe3d.linalg.START_WINDOW`, 6, otherwise): the windows of the two bounded systems
+hold 2 × 2 × 6 vectors of the free nodes (0.19 KiB per node), so half of that where memory
+is what limits the run (docs/performance.md for what it costs in iterations)."""
+
+
 def splittings_in_place(n_nodes: int, memory: int) -> bool:
     """True when the low-order and target step systems of a bounded run (T16, T16b) are to
     be solved on their operators' own arrays (:class:`fe3d.free_block.FreeBlock`: no copy
@@ -92,13 +99,6 @@ def cell_coefficients(s: SpeciesModel) -> Coefficients:
                "but an operator is to be built again")
         raise RuntimeError(msg)
     return s.coefficients
-
-
-IN_PLACE_WINDOW = 3
-"""Earlier solutions the solver of an in-place step system keeps to start from
-(:data:`fe3d.linalg.START_WINDOW`, 6, otherwise): the windows of the two bounded systems
-hold 2 × 2 × 6 vectors of the free nodes (0.19 KiB per node), so half of that where memory
-is what limits the run (docs/performance.md for what it costs in iterations)."""
 
 
 MAX_CACHED = 3

@@ -12,10 +12,9 @@ linearised rate against numpy's dense solve (reference library).
 from __future__ import annotations
 
 import numpy as np
-from test_monotone import _limiter_inputs, _operators
+from test_monotone import _limiter_inputs, _operators, lumped_operators
 
 import fe3d.transport.limiter as limiter
-from fe3d.transport.assembly import monotone_operators
 from fe3d.transport.limiter import (
     CLOSE_TOLERANCE,
     PASS_TOLERANCE,
@@ -104,7 +103,7 @@ def _low_order_step(seed: int) -> tuple[TargetFluxes, np.ndarray, np.ndarray, np
     """Operators, cⁿ, load b, the dense low-order backward Euler step c_L and the dense
     Galerkin matrices (M, K) stacked, with Δt [s]."""
     M, K = _operators()
-    ML, KD = monotone_operators(M, K)
+    ML, KD = lumped_operators(M, K)
     rng = np.random.default_rng(seed)
     n = K.shape[0]
     c_old, b, dt = rng.random(n), 1e-7 * rng.random(n), 3e5
